@@ -1,0 +1,34 @@
+// The model file: our own versioned binary format with a checksum.
+//
+// Layout (little-endian): magic "NUWM" | u32 format_version | u64 payload_bytes | payload |
+// u32 CRC-32 (IEEE) of the payload. The payload holds the ModelParts field by field.
+// Writes are atomic: temp file in the same directory, fsync, rename, fsync of the directory.
+// Thread safety: reentrant.
+#pragma once
+
+#include <cstdint>
+#include <string>
+#include <vector>
+
+#include "nuwatch/model.h"
+
+namespace nuwatch {
+
+inline constexpr uint32_t kModelFormatVersion = 1;
+
+// Serialises to bytes and back. Decode throws ModelFileError with a clear reason (truncated,
+// checksum mismatch, newer format version, inconsistent sizes); it never reads out of bounds.
+std::vector<uint8_t> EncodeModel(const Model& model);
+Model DecodeModel(const uint8_t* data, std::size_t size);
+
+// Throws ModelFileError naming the path on any I/O failure.
+void SaveModel(const Model& model, const std::string& path);
+Model LoadModel(const std::string& path);
+
+// Durable file replacement of `path` by `bytes` (temp, fsync, rename, fsync dir). Throws
+// ModelFileError naming the path on failure.
+void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size);
+// CRC-32 (IEEE 802.3 polynomial, reflected), as zlib computes it.
+uint32_t Crc32(const uint8_t* data, std::size_t size, uint32_t crc = 0);
+
+}  // namespace nuwatch

@@ -1,0 +1,275 @@
+#include "nuwatch/model_file.h"
+
+#include <fcntl.h>
+#include <unistd.h>
+
+#include <array>
+#include <cerrno>
+#include <cstring>
+#include <fstream>
+#include <iterator>
+
+namespace nuwatch {
+namespace {
+
+constexpr char kMagic[4] = {'N', 'U', 'W', 'M'};
+constexpr std::size_t kHeaderBytes = 4 + 4 + 8;
+constexpr uint64_t kMaxPayloadBytes = uint64_t{1} << 34;  // 16 GiB: larger is corruption
+
+class Writer {
+ public:
+  template <typename T>
+  void Put(T value) {
+    static_assert(std::is_trivially_copyable_v<T>);
+    const auto* p = reinterpret_cast<const uint8_t*>(&value);
+    bytes.insert(bytes.end(), p, p + sizeof(T));  // x86-64 and aarch64 are little-endian
+  }
+  void PutString(const std::string& s) {
+    Put<uint32_t>(static_cast<uint32_t>(s.size()));
+    bytes.insert(bytes.end(), s.begin(), s.end());
+  }
+  void PutDoubles(const double* p, std::size_t n) {
+    const auto* b = reinterpret_cast<const uint8_t*>(p);
+    bytes.insert(bytes.end(), b, b + n * sizeof(double));
+  }
+  std::vector<uint8_t> bytes;
+};
+
+class Reader {
+ public:
+  Reader(const uint8_t* data, std::size_t size) : data_(data), size_(size) {}
+  template <typename T>
+  T Get(const char* what) {
+    T value;
+    Need(sizeof(T), what);
+    std::memcpy(&value, data_ + pos_, sizeof(T));
+    pos_ += sizeof(T);
+    return value;
+  }
+  std::string GetString(const char* what) {
+    const uint32_t n = Get<uint32_t>(what);
+    Need(n, what);
+    std::string s(reinterpret_cast<const char*>(data_ + pos_), n);
+    pos_ += n;
+    return s;
+  }
+  void GetDoubles(double* out, uint64_t n, const char* what) {
+    if (n > (size_ - pos_) / sizeof(double)) Fail(what);
+    std::memcpy(out, data_ + pos_, n * sizeof(double));
+    pos_ += n * sizeof(double);
+  }
+  std::size_t remaining() const { return size_ - pos_; }
+
+ private:
+  void Need(std::size_t n, const char* what) {
+    if (n > size_ - pos_) Fail(what);
+  }
+  [[noreturn]] void Fail(const char* what) {
+    throw ModelFileError(std::string("model payload ends inside ") + what);
+  }
+  const uint8_t* data_;
+  std::size_t size_;
+  std::size_t pos_ = 0;
+};
+
+std::array<uint32_t, 256> MakeCrcTable() {
+  std::array<uint32_t, 256> table{};
+  for (uint32_t i = 0; i < 256; ++i) {
+    uint32_t c = i;
+    for (int k = 0; k < 8; ++k) c = (c & 1) ? 0xEDB88320u ^ (c >> 1) : c >> 1;
+    table[i] = c;
+  }
+  return table;
+}
+
+}  // namespace
+
+uint32_t Crc32(const uint8_t* data, std::size_t size, uint32_t crc) {
+  static const std::array<uint32_t, 256> table = MakeCrcTable();
+  crc = ~crc;
+  for (std::size_t i = 0; i < size; ++i) crc = table[(crc ^ data[i]) & 0xFF] ^ (crc >> 8);
+  return ~crc;
+}
+
+std::vector<uint8_t> EncodeModel(const Model& model) {
+  const ModelParts& p = model.parts();
+  Writer w;
+  w.Put<uint8_t>(static_cast<uint8_t>(p.kernel.type));
+  w.Put<double>(p.kernel.gamma);
+  w.Put<int32_t>(p.kernel.degree);
+  w.Put<double>(p.kernel.coef0);
+  w.Put<uint8_t>(static_cast<uint8_t>(p.gamma_spec.mode));
+  w.Put<double>(p.gamma_spec.value);
+  w.Put<double>(p.nu);
+  const uint32_t d = static_cast<uint32_t>(model.dims());
+  const uint32_t n = static_cast<uint32_t>(model.num_support());
+  w.Put<uint32_t>(d);
+  w.Put<uint32_t>(n);
+  w.Put<uint8_t>(static_cast<uint8_t>(p.scaler.type()));
+  w.PutDoubles(p.scaler.center().data(), d);
+  w.PutDoubles(p.scaler.scale().data(), d);
+  for (uint32_t i = 0; i < n; ++i) w.PutDoubles(&p.support_vectors(i, 0), d);
+  w.PutDoubles(p.coefficients.data(), n);
+  w.Put<double>(p.rho);
+  w.Put<int64_t>(p.training.n_train);
+  w.Put<int64_t>(p.training.n_support);
+  w.Put<int64_t>(p.training.n_bounded);
+  w.Put<int64_t>(p.training.iterations);
+  w.Put<uint8_t>(p.training.converged ? 1 : 0);
+  w.Put<double>(p.training.objective);
+  w.Put<double>(p.training.seconds);
+  w.Put<int64_t>(p.compression.support_vectors_before);
+  w.Put<int64_t>(p.compression.support_vectors_after);
+  w.Put<double>(p.compression.weight_degradation);
+  w.Put<double>(p.compression.rho_before);
+  w.Put<double>(p.compression.seconds);
+  w.Put<uint64_t>(p.version);
+  w.Put<uint32_t>(static_cast<uint32_t>(p.feature_names.size()));
+  for (const auto& name : p.feature_names) w.PutString(name);
+
+  Writer file;
+  for (char c : kMagic) file.Put<char>(c);
+  file.Put<uint32_t>(kModelFormatVersion);
+  file.Put<uint64_t>(w.bytes.size());
+  file.bytes.insert(file.bytes.end(), w.bytes.begin(), w.bytes.end());
+  file.Put<uint32_t>(Crc32(w.bytes.data(), w.bytes.size()));
+  return file.bytes;
+}
+
+Model DecodeModel(const uint8_t* data, std::size_t size) {
+  if (size < kHeaderBytes + 4) {
+    throw ModelFileError("truncated: " + std::to_string(size) + " bytes, not even a header");
+  }
+  if (std::memcmp(data, kMagic, 4) != 0) throw ModelFileError("not a nuwatch model file");
+  uint32_t version;
+  uint64_t payload_bytes;
+  std::memcpy(&version, data + 4, 4);
+  std::memcpy(&payload_bytes, data + 8, 8);
+  if (version > kModelFormatVersion) {
+    throw ModelFileError("format version " + std::to_string(version) +
+                         " is newer than this program reads (" +
+                         std::to_string(kModelFormatVersion) + ")");
+  }
+  if (version == 0) throw ModelFileError("format version 0 is invalid");
+  if (payload_bytes > kMaxPayloadBytes || payload_bytes + kHeaderBytes + 4 != size) {
+    throw ModelFileError("truncated or padded: header announces " + std::to_string(payload_bytes) +
+                         " payload bytes, the file holds " + std::to_string(size) + " bytes");
+  }
+  const uint8_t* payload = data + kHeaderBytes;
+  uint32_t stored_crc;
+  std::memcpy(&stored_crc, payload + payload_bytes, 4);
+  if (Crc32(payload, payload_bytes) != stored_crc) {
+    throw ModelFileError("checksum mismatch: the file is corrupted");
+  }
+  Reader r(payload, payload_bytes);
+  ModelParts p;
+  const uint8_t kernel_type = r.Get<uint8_t>("kernel");
+  if (kernel_type > 2) throw ModelFileError("unknown kernel type " + std::to_string(kernel_type));
+  p.kernel.type = static_cast<KernelType>(kernel_type);
+  p.kernel.gamma = r.Get<double>("kernel");
+  p.kernel.degree = r.Get<int32_t>("kernel");
+  p.kernel.coef0 = r.Get<double>("kernel");
+  const uint8_t gamma_mode = r.Get<uint8_t>("gamma");
+  if (gamma_mode > 2) throw ModelFileError("unknown gamma mode " + std::to_string(gamma_mode));
+  p.gamma_spec.mode = static_cast<GammaSpec::Mode>(gamma_mode);
+  p.gamma_spec.value = r.Get<double>("gamma");
+  p.nu = r.Get<double>("nu");
+  const uint32_t d = r.Get<uint32_t>("dimensions");
+  const uint32_t n = r.Get<uint32_t>("dimensions");
+  const uint8_t scaler_type = r.Get<uint8_t>("scaler");
+  if (scaler_type > 2) throw ModelFileError("unknown scaler type " + std::to_string(scaler_type));
+  // Sizes are checked against what is left before anything is allocated.
+  if (d == 0 || n == 0 ||
+      (static_cast<uint64_t>(d) * (n + 2) + n) > r.remaining() / sizeof(double)) {
+    throw ModelFileError("inconsistent sizes: " + std::to_string(n) + " support vectors of " +
+                         std::to_string(d) + " dimensions do not fit the payload");
+  }
+  VectorD center(d), scale(d);
+  r.GetDoubles(center.data(), d, "scaler");
+  r.GetDoubles(scale.data(), d, "scaler");
+  p.support_vectors.resize(n, d);
+  r.GetDoubles(p.support_vectors.data(), static_cast<uint64_t>(n) * d, "support vectors");
+  p.coefficients.resize(n);
+  r.GetDoubles(p.coefficients.data(), n, "coefficients");
+  p.rho = r.Get<double>("rho");
+  p.training.n_train = r.Get<int64_t>("training statistics");
+  p.training.n_support = r.Get<int64_t>("training statistics");
+  p.training.n_bounded = r.Get<int64_t>("training statistics");
+  p.training.iterations = r.Get<int64_t>("training statistics");
+  p.training.converged = r.Get<uint8_t>("training statistics") != 0;
+  p.training.objective = r.Get<double>("training statistics");
+  p.training.seconds = r.Get<double>("training statistics");
+  p.compression.support_vectors_before = r.Get<int64_t>("compression statistics");
+  p.compression.support_vectors_after = r.Get<int64_t>("compression statistics");
+  p.compression.weight_degradation = r.Get<double>("compression statistics");
+  p.compression.rho_before = r.Get<double>("compression statistics");
+  p.compression.seconds = r.Get<double>("compression statistics");
+  p.version = r.Get<uint64_t>("version");
+  const uint32_t names = r.Get<uint32_t>("feature names");
+  if (names != 0 && names != d) {
+    throw ModelFileError(std::to_string(names) + " feature names for " + std::to_string(d) +
+                         " features");
+  }
+  for (uint32_t i = 0; i < names; ++i) p.feature_names.push_back(r.GetString("feature names"));
+  if (r.remaining() != 0) throw ModelFileError("trailing bytes after the feature names");
+  try {
+    p.scaler = Scaler::FromParameters(static_cast<ScalerType>(scaler_type), center, scale);
+    return Model(std::move(p));
+  } catch (const PreconditionError& e) {
+    throw ModelFileError(std::string("invalid model contents: ") + e.what());
+  }
+}
+
+void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size) {
+  const std::string temp = path + ".tmp." + std::to_string(::getpid());
+  auto fail = [&](const std::string& what) {
+    const std::string reason = std::strerror(errno);
+    ::unlink(temp.c_str());
+    throw ModelFileError(path + ": " + what + ": " + reason);
+  };
+  int fd = ::open(temp.c_str(), O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0644);
+  if (fd < 0) fail("cannot create temporary file");
+  std::size_t written = 0;
+  while (written < size) {
+    ssize_t n = ::write(fd, bytes + written, size - written);
+    if (n < 0) {
+      if (errno == EINTR) continue;
+      ::close(fd);
+      fail("write failed");
+    }
+    written += static_cast<std::size_t>(n);
+  }
+  if (::fsync(fd) != 0) {
+    ::close(fd);
+    fail("fsync failed");
+  }
+  if (::close(fd) != 0) fail("close failed");
+  if (::rename(temp.c_str(), path.c_str()) != 0) fail("rename failed");
+  const auto slash = path.find_last_of('/');
+  const std::string directory = slash == std::string::npos ? "." : path.substr(0, slash + 1);
+  int dir_fd = ::open(directory.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
+  if (dir_fd >= 0) {
+    ::fsync(dir_fd);  // makes the rename durable
+    ::close(dir_fd);
+  }
+}
+
+void SaveModel(const Model& model, const std::string& path) {
+  const std::vector<uint8_t> bytes = EncodeModel(model);
+  WriteFileAtomically(path, bytes.data(), bytes.size());
+}
+
+Model LoadModel(const std::string& path) {
+  std::ifstream in(path, std::ios::binary);
+  if (!in) throw ModelFileError(path + ": cannot open for reading");
+  std::vector<uint8_t> bytes((std::istreambuf_iterator<char>(in)),
+                             std::istreambuf_iterator<char>());
+  if (in.bad()) throw ModelFileError(path + ": read error");
+  try {
+    return DecodeModel(bytes.data(), bytes.size());
+  } catch (const ModelFileError& e) {
+    throw ModelFileError(path + ": " + e.what());
+  }
+}
+
+}  // namespace nuwatch
