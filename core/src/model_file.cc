@@ -262,8 +262,12 @@ void SaveModel(const Model& model, const std::string& path) {
 Model LoadModel(const std::string& path) {
   std::ifstream in(path, std::ios::binary);
   if (!in) throw ModelFileError(path + ": cannot open for reading");
-  std::vector<uint8_t> bytes((std::istreambuf_iterator<char>(in)),
-                             std::istreambuf_iterator<char>());
+  std::vector<uint8_t> bytes;
+  try {
+    bytes.assign(std::istreambuf_iterator<char>(in), std::istreambuf_iterator<char>());
+  } catch (const std::exception& e) {  // e.g. a directory: the stream buffer throws on read
+    throw ModelFileError(path + ": read error: " + e.what());
+  }
   if (in.bad()) throw ModelFileError(path + ": read error");
   try {
     return DecodeModel(bytes.data(), bytes.size());

@@ -192,7 +192,9 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
           << 1.0 / scale << "]";
         throw PreconditionError(m.str());
       }
-      alpha[i] = std::clamp(a, 0.0, upper);
+      // Rounding in 1/(nu l) * nu l can leave a bounded alpha one ulp below the bound, where it
+      // would count as free and cost a step: snap what is within 1e-9 of a bound onto it.
+      alpha[i] = a > upper - 1e-9 ? upper : (a < 1e-9 * upper ? 0.0 : a);
     }
   } else {
     VectorD cold = ColdStartAlpha(l, options.nu);
@@ -231,8 +233,9 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
     for (int64_t i = 0; i < l; ++i) active[i] = i;
   };
 
+  bool just_restored = false;  // the active set was just restored: check optimality before shrinking
   while (iterations < max_iterations) {
-    if (options.shrinking && --countdown == 0) {
+    if (options.shrinking && !just_restored && --countdown == 0) {
       countdown = shrink_interval;
       double min_up = std::numeric_limits<double>::infinity();
       double max_low = -std::numeric_limits<double>::infinity();
@@ -240,7 +243,9 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
         if (alpha[t] < upper) min_up = std::min(min_up, gradient[t]);
         if (alpha[t] > 0) max_low = std::max(max_low, gradient[t]);
       }
-      if (!unshrunk && max_low - min_up <= 10 * eps) {
+      // With no candidate on one side the working-set selection below stops; nothing to shrink.
+      const bool one_sided = std::isinf(min_up) || std::isinf(max_low);
+      if (!one_sided && !unshrunk && max_low - min_up <= 10 * eps) {
         unshrunk = true;
         restore_all();
       }
@@ -248,11 +253,12 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
       // the active set (LIBSVM's be_shrunk for y = +1).
       std::size_t kept = 0;
       for (int64_t t : active) {
+        if (one_sided) break;
         const bool stuck =
             (alpha[t] >= upper && gradient[t] < min_up) || (alpha[t] <= 0 && gradient[t] > max_low);
         if (!stuck) active[kept++] = t;
       }
-      active.resize(kept);
+      if (!one_sided) active.resize(kept);
     }
 
     // Working set: i = argmin G over a < C; j by the second-order gain among a > 0.
@@ -291,12 +297,14 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
         restore_all();  // re-check optimality on the full set
         unshrunk = true;
         countdown = shrink_interval;
+        just_restored = true;
         continue;
       }
       converged = true;
       break;
     }
     ++iterations;
+    just_restored = false;
 
     const float* column_i = cache.Column(i);
     const float* column_j = cache.Column(j);

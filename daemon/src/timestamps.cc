@@ -48,7 +48,7 @@ int64_t DaysFromCivil(int64_t y, unsigned m, unsigned d) {
 
 std::optional<double> ParseIso8601(std::string_view text) {
   std::size_t pos = 0;
-  int year, month, day, hour, minute, second;
+  int year = 0, month = 0, day = 0, hour = 0, minute = 0, second = 0;
   if (!ReadDigits(text, &pos, 4, &year) || !Expect(text, &pos, '-') ||
       !ReadDigits(text, &pos, 2, &month) || !Expect(text, &pos, '-') ||
       !ReadDigits(text, &pos, 2, &day))
@@ -78,7 +78,7 @@ std::optional<double> ParseIso8601(std::string_view text) {
       ++pos;
     } else if (c == '+' || c == '-') {
       ++pos;
-      int oh, om;
+      int oh = 0, om = 0;
       if (!ReadDigits(text, &pos, 2, &oh)) return std::nullopt;
       if (pos < text.size() && text[pos] == ':') ++pos;
       if (!ReadDigits(text, &pos, 2, &om) || oh > 23 || om > 59) return std::nullopt;
@@ -111,7 +111,7 @@ std::string FormatTimestamp(double seconds_since_epoch) {
   const std::time_t t = static_cast<std::time_t>(whole);
   std::tm tm{};
   gmtime_r(&t, &tm);
-  char buffer[40];
+  char buffer[96];
   if (millis == 0) {
     std::snprintf(buffer, sizeof buffer, "%04d-%02d-%02dT%02d:%02d:%02dZ", tm.tm_year + 1900,
                   tm.tm_mon + 1, tm.tm_mday, tm.tm_hour, tm.tm_min, tm.tm_sec);

@@ -21,8 +21,9 @@ CommandRegistration::CommandRegistration(int order, CommandAdder adder) {
 }  // namespace nuwatch::cli
 
 int main(int argc, char** argv) {
-  CLI::App app{"nuwatch: learn each stream's normal envelope with a nu one-class SVM and flag what "
-               "falls outside it"};
+  CLI::App app{
+      "nuwatch: learn each stream's normal envelope with a nu one-class SVM and flag what "
+      "falls outside it"};
   app.require_subcommand(1);
   app.set_version_flag("--version", NUWATCH_VERSION);
   auto commands = nuwatch::cli::RegisteredCommands();

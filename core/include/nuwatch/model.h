@@ -41,7 +41,8 @@ struct CompressionStats {
 
 struct FeatureShare {
   int feature = 0;       // column index
-  double share = 0;      // |gradient component| / sum of |gradient components|, in [0, 1]
+  double share = 0;      // |d f / d z_j| / sum_k |d f / d z_k| with z the scaled features (so
+                         // shares do not depend on the features' units), in [0, 1]
   double gradient = 0;   // d f / d x_feature in raw units (positive: increasing x moves inward)
 };
 
@@ -83,8 +84,8 @@ class Model {
   // sum_i coef_i k(s_i, z) for already scaled rows z (double). Used for rho recalibration.
   VectorD KernelSumsScaled(const MatrixD& z) const;
 
-  // Per-feature attribution of f at x: the analytic gradient of f with respect to the raw features,
-  // its components' magnitudes normalised to shares. Ensures: at most top_k entries, sorted by
+  // Per-feature attribution of f at x: the analytic gradient of f with respect to the scaled
+  // features, its components' magnitudes normalised to shares (`gradient` is in raw units). Ensures: at most top_k entries, sorted by
   // decreasing share. For rbf far from every support vector the gradient is computed with the
   // kernel values renormalised by the largest one, so it does not underflow to zero.
   std::vector<FeatureShare> Explain(std::span<const double> x, int top_k) const;

@@ -1,0 +1,115 @@
+// The training window of one stream: a ring buffer of the vectors accepted for training, bounded by
+// count and optionally by age. Each entry carries a sample id, assigned on push and strictly
+// increasing over the window's life (Clear does not reuse ids), so that a refit can map the
+// previous fit's alphas onto the samples that survived the slide (MapWarmStart below).
+//
+// Storage is one contiguous capacity x dims buffer allocated at construction; Push, Expire and the
+// accessors never allocate. Snapshot and Restore may (they are on the refit and state-file paths).
+// Thread safety: not thread-safe. One window per stream, owned by the stream's thread; a refit
+// works on a Snapshot, never on the window itself.
+#pragma once
+
+#include <cstddef>
+#include <cstdint>
+#include <span>
+#include <vector>
+
+#include "nuwatch/types.h"
+
+namespace nuwatch {
+
+class SampleWindow {
+ public:
+  // Requires: capacity >= 1, dims >= 1, max_age_seconds finite and >= 0 (0: no age limit).
+  // Throws PreconditionError naming the offending value. The first id handed out is 1.
+  SampleWindow(int64_t capacity, int dims, double max_age_seconds = 0);
+
+  // Appends x with its timestamp (seconds, any epoch) and returns its id. When the window is full
+  // the oldest entry is evicted first. Push does not apply the age limit: call ExpireOlderThan.
+  // Requires: x.size() == dims(), finite time and values (PreconditionError otherwise; the window
+  // is unchanged then). No allocation.
+  uint64_t Push(double time, std::span<const double> x);
+
+  // Drops entries from the oldest end while their time < now - max_age_seconds. Entries leave in
+  // push order, so an entry pushed with an earlier time than its predecessor stays until that
+  // predecessor has gone (timestamps are expected to be non-decreasing; this keeps the ring a
+  // ring). No-op when max_age_seconds == 0. Requires: finite now.
+  void ExpireOlderThan(double now);
+
+  // Empties the window. Ids keep increasing: the next push gets next_id().
+  void Clear();
+
+  int64_t size() const { return size_; }
+  bool empty() const { return size_ == 0; }
+  int64_t capacity() const { return capacity_; }
+  int dims() const { return dims_; }
+  double max_age_seconds() const { return max_age_seconds_; }
+  // The id the next Push will return.
+  uint64_t next_id() const { return next_id_; }
+
+  // Logical index i: 0 is the oldest entry, size() - 1 the newest.
+  // Requires: 0 <= i < size() (PreconditionError otherwise). The span is valid until the next
+  // non-const call.
+  std::span<const double> Row(int64_t i) const;
+  uint64_t Id(int64_t i) const;
+  double Time(int64_t i) const;
+
+  // Copies the contents, oldest first: out becomes size() x dims(); ids and times (either may be
+  // null) get size() entries. Ids in a snapshot are strictly increasing.
+  // Requires: out != nullptr.
+  void Snapshot(MatrixD* out, std::vector<uint64_t>* ids, std::vector<double>* times) const;
+
+  // Replaces the contents with saved rows (oldest first), as from a state file. When there are more
+  // rows than capacity() (the configured window shrank) only the newest capacity() are kept, as
+  // pushing them in order would. The age limit is not applied: call ExpireOlderThan.
+  // Requires: rows.cols() == dims(); ids.size() == times.size() == rows.rows(); ids strictly
+  // increasing and >= 1; next_id > the last id (any next_id >= 1 when there are no rows); finite
+  // values and times. Throws PreconditionError naming the offending row and value; the window is
+  // unchanged then.
+  void Restore(const MatrixD& rows, std::span<const uint64_t> ids, std::span<const double> times,
+               uint64_t next_id);
+
+  // Bytes held by this window (object plus buffers); constant after construction.
+  std::size_t MemoryBytes() const;
+
+ private:
+  int64_t Physical(int64_t i) const;  // logical index -> slot
+  void CheckIndex(int64_t i, const char* caller) const;
+
+  int64_t capacity_;
+  int dims_;
+  double max_age_seconds_;
+  std::vector<double> values_;  // capacity x dims, row-major by slot
+  std::vector<uint64_t> ids_;   // by slot
+  std::vector<double> times_;   // by slot
+  int64_t head_ = 0;            // slot of the oldest entry
+  int64_t size_ = 0;
+  uint64_t next_id_ = 1;
+};
+
+// Warm start for a refit on a window that slid (alpha seeding, DeCoste & Wagstaff, KDD 2000;
+// methods.md "Warm starts on a sliding window"). Builds a feasible alpha for the new window:
+//   1. a surviving sample (its id is in old_ids) keeps its old alpha, clipped to the new bound
+//      1/(nu l_new); a new sample starts at 0;
+//   2. the missing mass 1 - sum is handed out, at most up to the bound each, in priority order:
+//      with new_gradient, the lowest gradient first (the samples the previous solution puts
+//      furthest outside, which the optimum is most likely to make support vectors; ties: the newer
+//      sample first); without it (nullptr), newest first, since new samples are the ones the
+//      previous fit knew nothing about. Only the order of new_gradient matters: G = K a of the
+//      surviving alphas, or the previous model's decision values on the new window, will do;
+//   3. a surplus (sum > 1, only possible if old_alpha summed to more than 1) is taken off the
+//      largest alphas by lowering them to a common level.
+// The result is only a starting point; SMO converges from any feasible alpha. It is a good one only
+// if the problem is the same apart from the samples: the same scaler, kernel and gamma. After a
+// cold refit (scaler or gamma re-estimated) start cold instead (ColdStartAlpha in solver.h).
+// Requires: old_ids.size() == old_alpha.size(); old_ids and new_ids strictly increasing (as
+// SampleWindow::Snapshot gives them); new_ids non-empty; old_alpha finite and >= 0; 0 < nu <= 1;
+// new_gradient null or of size new_ids.size() with finite values. The alphas are unscaled
+// (sum 1, the convention of solver.h).
+// Ensures: size new_ids.size(), 0 <= a_i <= 1/(nu l_new), |sum - 1| <= 1e-12. Throws
+// PreconditionError naming the offending value otherwise. Reentrant; allocates.
+VectorD MapWarmStart(const std::vector<uint64_t>& old_ids, const VectorD& old_alpha,
+                     const std::vector<uint64_t>& new_ids, double nu,
+                     const VectorD* new_gradient = nullptr);
+
+}  // namespace nuwatch

@@ -1,0 +1,505 @@
+#include "nuwatch/detector.h"
+
+#include <atomic>
+#include <chrono>
+#include <condition_variable>
+#include <mutex>
+#include <sstream>
+
+#include "nuwatch/budget.h"
+
+namespace nuwatch {
+
+std::string_view StreamStateName(StreamState state) {
+  return state == StreamState::kLearning ? "learning" : "scoring";
+}
+
+std::string_view RefitReasonName(RefitReason reason) {
+  switch (reason) {
+    case RefitReason::kWarmup:
+      return "warmup";
+    case RefitReason::kSchedule:
+      return "schedule";
+    case RefitReason::kDrift:
+      return "drift";
+    case RefitReason::kModelAge:
+      return "model_age";
+    case RefitReason::kReload:
+      return "reload";
+  }
+  return "unknown";
+}
+
+void CheckDetectorOptions(const DetectorOptions& o, std::string_view where) {
+  std::ostringstream m;
+  m << where << ": ";
+  auto fail = [&](const std::string& text) {
+    m << text;
+    throw PreconditionError(m.str());
+  };
+  auto value = [](double v) {
+    std::ostringstream s;
+    s << v;
+    return s.str();
+  };
+  if (!(o.nu > 0 && o.nu <= 1)) fail("nu = " + value(o.nu) + " is outside (0, 1]");
+  if (o.gamma.mode == GammaSpec::Mode::kValue && !(o.gamma.value > 0))
+    fail("gamma = " + value(o.gamma.value) + " must be > 0");
+  if (o.kernel == KernelType::kPolynomial && o.degree < 1)
+    fail("degree = " + std::to_string(o.degree) + " must be >= 1");
+  if (!(o.tolerance > 0)) fail("tolerance = " + value(o.tolerance) + " must be > 0");
+  if (o.max_iterations < 0)
+    fail("max_iterations = " + std::to_string(o.max_iterations) + " must be >= 0");
+  if (o.window < 2) fail("window = " + std::to_string(o.window) + " must be >= 2");
+  if (o.warmup < 2 || o.warmup > o.window)
+    fail("warmup = " + std::to_string(o.warmup) +
+         " must be in [2, window = " + std::to_string(o.window) + "]");
+  if (o.max_age_seconds < 0)
+    fail("max_age_seconds = " + value(o.max_age_seconds) + " must be >= 0");
+  if (o.refit_every < 0) fail("refit_every = " + std::to_string(o.refit_every) + " must be >= 0");
+  if (o.max_model_age_seconds < 0)
+    fail("max_model_age_seconds = " + value(o.max_model_age_seconds) + " must be >= 0");
+  if (o.cold_refit_every < 1)
+    fail("cold_refit_every = " + std::to_string(o.cold_refit_every) + " must be >= 1");
+  if (o.support_vector_budget < 1)
+    fail("support_vector_budget = " + std::to_string(o.support_vector_budget) + " must be >= 1");
+  if (o.drift_delta < 0) fail("drift_delta = " + value(o.drift_delta) + " must be >= 0");
+  if (!(o.drift_lambda > 0)) fail("drift_lambda = " + value(o.drift_lambda) + " must be > 0");
+  if (o.drift_min_samples < 0) fail("drift_min_samples must be >= 0");
+  if (o.open_window < 1 || o.open_after < 1 || o.open_after > o.open_window)
+    fail("open_after = " + std::to_string(o.open_after) + ", open_window = " +
+         std::to_string(o.open_window) + ": need 1 <= open_after <= open_window");
+  if (o.close_after < 1) fail("close_after = " + std::to_string(o.close_after) + " must be >= 1");
+}
+
+namespace {
+
+IncidentTrackerOptions TrackerOptions(const DetectorOptions& o) {
+  return {o.open_after, o.open_window, o.close_after};
+}
+
+PageHinkleyOptions DriftOptions(const DetectorOptions& o) {
+  PageHinkleyOptions p;
+  p.delta = o.drift_delta;
+  p.lambda = o.drift_lambda;
+  p.min_samples = o.drift_min_samples;
+  // A process leaving its envelope pushes decision values down; a model that has become too wide
+  // (the process tightened) pushes them up. Both call for a refit.
+  p.direction = DriftDirection::kBoth;
+  return p;
+}
+
+double Seconds(std::chrono::steady_clock::time_point since) {
+  return std::chrono::duration<double>(std::chrono::steady_clock::now() - since).count();
+}
+
+}  // namespace
+
+struct Detector::Shared {
+  std::atomic<std::shared_ptr<const Model>> model;
+  std::atomic<double> model_time{0};
+  mutable std::mutex mutex;
+  mutable std::condition_variable idle;
+  bool in_flight = false;              // guarded by mutex
+  uint64_t generation = 0;             // guarded by mutex; bumped by Relearn
+  uint64_t next_version = 1;           // guarded by mutex
+  std::vector<uint64_t> solution_ids;  // guarded by mutex
+  VectorD solution_alpha;              // guarded by mutex
+  RefitReport last_report;             // guarded by mutex
+  std::function<void(const RefitReport&)> listener;
+};
+
+namespace {
+
+struct RefitInput {
+  DetectorOptions options;
+  MatrixD rows;
+  std::vector<uint64_t> ids;
+  std::shared_ptr<const Model> base;  // null for a cold fit
+  RefitReason reason;
+  double time;
+  uint64_t generation;
+};
+
+// The refit proper; runs on any thread and touches the detector only through `shared`.
+template <typename SharedT>
+void RunRefit(SharedT& shared, const RefitInput& in) {
+  const auto started = std::chrono::steady_clock::now();
+  RefitReport report;
+  report.reason = in.reason;
+  report.window_vectors = in.rows.rows();
+  std::shared_ptr<const Model> result;
+  std::vector<uint64_t> solution_ids;
+  VectorD solution_alpha;
+  try {
+    const DetectorOptions& o = in.options;
+    Scaler scaler;
+    Kernel kernel;
+    MatrixD z;
+    VectorD seed;
+    const bool warm = in.base != nullptr;
+    if (warm) {
+      scaler = in.base->parts().scaler;
+      kernel = in.base->kernel();
+      z = scaler.Transform(in.rows);
+      std::vector<uint64_t> old_ids;
+      VectorD old_alpha;
+      {
+        std::lock_guard<std::mutex> lock(shared.mutex);
+        old_ids = shared.solution_ids;
+        old_alpha = shared.solution_alpha;
+      }
+      seed = MapWarmStart(old_ids, old_alpha, in.ids, o.nu);
+    } else {
+      scaler = Scaler::Fit(o.scaler, in.rows);
+      z = scaler.Transform(in.rows);
+      kernel.type = o.kernel;
+      kernel.gamma = o.kernel == KernelType::kLinear ? 1.0 : ResolveGamma(o.gamma, z);
+      kernel.degree = o.degree;
+      kernel.coef0 = o.coef0;
+    }
+    report.warm = warm;
+    SolverOptions solver;
+    solver.nu = o.nu;
+    solver.tolerance = o.tolerance;
+    solver.cache_bytes = o.cache_bytes;
+    solver.max_iterations = o.max_iterations;
+    uint64_t version;
+    {
+      std::lock_guard<std::mutex> lock(shared.mutex);
+      version = shared.next_version++;
+    }
+    WindowFit fit = FitScaled(z, scaler, kernel, o.gamma, solver, warm ? &seed : nullptr, version,
+                              o.feature_names);
+    report.iterations = fit.solution.iterations;
+    report.converged = fit.solution.converged;
+    report.solve_seconds = fit.solution.seconds;
+    report.support_vectors_fitted = fit.model->num_support();
+    result = fit.model;
+    if (fit.model->num_support() > o.support_vector_budget) {
+      const auto compress_started = std::chrono::steady_clock::now();
+      const ModelParts& fitted = fit.model->parts();
+      BudgetResult compressed = CompressToBudget(fitted.support_vectors, fitted.coefficients,
+                                                 kernel, o.support_vector_budget);
+      ModelParts parts = fitted;
+      parts.support_vectors = std::move(compressed.support_vectors);
+      parts.coefficients = std::move(compressed.coefficients);
+      // The old rho belongs to the uncompressed weight vector; recalibrate on the window so that
+      // the window's outlier fraction is nu again (methods.md).
+      parts.rho = 0;
+      Model unshifted(parts);
+      parts.rho = RecalibrateRho(unshifted.KernelSumsScaled(z), o.nu);
+      parts.compression.support_vectors_before = fitted.support_vectors.rows();
+      parts.compression.support_vectors_after = parts.support_vectors.rows();
+      parts.compression.weight_degradation = compressed.weight_degradation;
+      parts.compression.rho_before = fitted.rho;
+      parts.compression.seconds = Seconds(compress_started);
+      report.compress_seconds = parts.compression.seconds;
+      report.weight_degradation = compressed.weight_degradation;
+      result = std::make_shared<const Model>(std::move(parts));
+    }
+    report.support_vectors = result->num_support();
+    report.model_version = version;
+    report.ok = true;
+    // Only the support vectors' alphas are kept: the rest are 0, and a warm start maps by id.
+    const VectorD& alpha = fit.solution.alpha;
+    solution_alpha.resize((alpha.array() > 0).count());
+    for (int64_t i = 0, k = 0; i < alpha.size(); ++i) {
+      if (alpha[i] > 0) {
+        solution_ids.push_back(in.ids[i]);
+        solution_alpha[k++] = alpha[i];
+      }
+    }
+  } catch (const std::exception& e) {
+    report.ok = false;
+    report.error = e.what();
+  }
+  report.total_seconds = Seconds(started);
+  std::function<void(const RefitReport&)> listener;
+  {
+    std::lock_guard<std::mutex> lock(shared.mutex);
+    if (shared.generation != in.generation) {
+      report.discarded = true;
+    } else if (report.ok) {
+      shared.solution_ids = std::move(solution_ids);
+      shared.solution_alpha = std::move(solution_alpha);
+      shared.model_time.store(in.time);
+      shared.model.store(result);
+    }
+    shared.last_report = report;
+    listener = shared.listener;
+  }
+  if (listener) listener(report);
+  {
+    std::lock_guard<std::mutex> lock(shared.mutex);
+    shared.in_flight = false;
+  }
+  shared.idle.notify_all();
+}
+
+}  // namespace
+
+Detector::Detector(const DetectorOptions& options, int dims, RefitExecutor* executor)
+    : options_(options),
+      dims_(dims),
+      executor_(executor),
+      window_((CheckDetectorOptions(options, "Detector"), options.window),
+              dims >= 1 ? dims
+                        : throw PreconditionError("Detector: dims = " + std::to_string(dims) +
+                                                  " must be >= 1"),
+              options.max_age_seconds),
+      incidents_(TrackerOptions(options)),
+      drift_(DriftOptions(options)),
+      shared_(std::make_shared<Shared>()) {}
+
+Detector::~Detector() { WaitForRefit(); }
+
+void Detector::WaitForRefit() const {
+  std::unique_lock<std::mutex> lock(shared_->mutex);
+  shared_->idle.wait(lock, [&] { return !shared_->in_flight; });
+}
+
+void Detector::set_refit_listener(std::function<void(const RefitReport&)> listener) {
+  std::lock_guard<std::mutex> lock(shared_->mutex);
+  shared_->listener = std::move(listener);
+}
+
+std::shared_ptr<const Model> Detector::model() const { return shared_->model.load(); }
+
+StreamState Detector::state() const {
+  return model() ? StreamState::kScoring : StreamState::kLearning;
+}
+
+RefitReport Detector::last_refit() const {
+  std::lock_guard<std::mutex> lock(shared_->mutex);
+  return shared_->last_report;
+}
+
+double Detector::model_time() const { return shared_->model_time.load(); }
+
+Verdict Detector::Observe(double time, std::span<const double> x) {
+  if (static_cast<int>(x.size()) != dims_) {
+    throw PreconditionError("Detector::Observe: vector has " + std::to_string(x.size()) +
+                            " values, the stream " + std::to_string(dims_));
+  }
+  if (!std::isfinite(time)) throw PreconditionError("Detector::Observe: non-finite time");
+  for (double v : x)
+    if (!std::isfinite(v)) throw PreconditionError("Detector::Observe: non-finite value");
+
+  ++counters_.vectors;
+  if (options_.max_age_seconds > 0) window_.ExpireOlderThan(time);
+  Verdict verdict;
+  std::shared_ptr<const Model> model = shared_->model.load();
+  if (!model) {
+    window_.Push(time, x);
+    verdict.accepted = true;
+    ++counters_.accepted;
+    if (window_.size() >= options_.warmup) PostRefit(time, RefitReason::kWarmup);
+    return verdict;
+  }
+
+  verdict.state = StreamState::kScoring;
+  verdict.decision = model->Decision(x);
+  verdict.outlier = verdict.decision < 0;
+  verdict.model_version = model->version();
+  verdict.support_vectors = model->num_support();
+  if (verdict.outlier) ++counters_.anomalies;
+  verdict.transition = incidents_.Update(time, verdict.outlier, verdict.decision);
+  const auto open = incidents_.open_incident();
+  verdict.incident_id = open ? open->id : 0;
+
+  if (options_.learn_from_anomalies || !verdict.outlier || !open) {
+    window_.Push(time, x);
+    verdict.accepted = true;
+    ++counters_.accepted;
+    ++accepted_since_refit_;
+  }
+  bool drift_alarm = false;
+  if (options_.drift_detection && drift_.Update(verdict.decision)) {
+    drift_alarm = true;
+    ++counters_.drift_alarms;
+    drift_.Reset();
+  }
+  if (RefitDue(time, drift_alarm)) {
+    RefitReason reason = RefitReason::kSchedule;
+    if (drift_alarm || drift_pending_)
+      reason = RefitReason::kDrift;
+    else if (options_.max_model_age_seconds > 0 &&
+             time - shared_->model_time.load() >= options_.max_model_age_seconds)
+      reason = RefitReason::kModelAge;
+    if (pending_options_) reason = RefitReason::kReload;
+    PostRefit(time, reason);
+  }
+  return verdict;
+}
+
+bool Detector::RefitDue(double time, bool drift_alarm) const {
+  if (drift_alarm || drift_pending_ || pending_options_) return true;
+  if (options_.refit_every > 0 && accepted_since_refit_ >= options_.refit_every) return true;
+  return options_.max_model_age_seconds > 0 &&
+         time - shared_->model_time.load() >= options_.max_model_age_seconds;
+}
+
+void Detector::PostRefit(double time, RefitReason reason) {
+  {
+    std::lock_guard<std::mutex> lock(shared_->mutex);
+    if (shared_->in_flight) {
+      if (reason != RefitReason::kWarmup) ++counters_.refits_coalesced;
+      if (reason == RefitReason::kDrift) drift_pending_ = true;
+      return;
+    }
+    shared_->in_flight = true;
+  }
+  ApplyPendingOptions();
+  auto input = std::make_shared<RefitInput>();
+  input->options = options_;
+  window_.Snapshot(&input->rows, &input->ids, nullptr);
+  const bool cold = force_cold_ || reason == RefitReason::kWarmup ||
+                    refits_since_cold_ + 1 >= options_.cold_refit_every || !model();
+  input->base = cold ? nullptr : model();
+  input->reason = reason;
+  input->time = time;
+  {
+    std::lock_guard<std::mutex> lock(shared_->mutex);
+    input->generation = shared_->generation;
+  }
+  refits_since_cold_ = cold ? 0 : refits_since_cold_ + 1;
+  force_cold_ = false;
+  accepted_since_refit_ = 0;
+  drift_pending_ = false;
+  ++counters_.refits_started;
+  auto job = [shared = shared_, input] { RunRefit(*shared, *input); };
+  if (executor_ == nullptr) {
+    job();
+  } else {
+    executor_->Post(std::move(job));
+  }
+}
+
+void Detector::ApplyPendingOptions() {
+  if (!pending_options_) return;
+  DetectorOptions next = std::move(*pending_options_);
+  pending_options_.reset();
+  const DetectorOptions& old = options_;
+  if (next.nu != old.nu || next.kernel != old.kernel || next.gamma.mode != old.gamma.mode ||
+      next.gamma.value != old.gamma.value || next.scaler != old.scaler ||
+      next.degree != old.degree || next.coef0 != old.coef0) {
+    force_cold_ = true;  // a different problem: the last solution is no warm start for it
+  }
+  if (next.window != old.window || next.max_age_seconds != old.max_age_seconds) {
+    MatrixD rows;
+    std::vector<uint64_t> ids;
+    std::vector<double> times;
+    window_.Snapshot(&rows, &ids, &times);
+    SampleWindow resized(next.window, dims_, next.max_age_seconds);
+    resized.Restore(rows, ids, times, window_.next_id());
+    window_ = std::move(resized);
+  }
+  if (next.open_after != old.open_after || next.open_window != old.open_window ||
+      next.close_after != old.close_after) {
+    IncidentTrackerState state = incidents_.ExportState();
+    incidents_ = IncidentTracker(TrackerOptions(next));
+    incidents_.ImportState(state);
+  }
+  if (next.drift_delta != old.drift_delta || next.drift_lambda != old.drift_lambda ||
+      next.drift_min_samples != old.drift_min_samples) {
+    drift_ = PageHinkley(DriftOptions(next));
+  }
+  options_ = std::move(next);
+}
+
+void Detector::UpdateOptions(const DetectorOptions& options) {
+  CheckDetectorOptions(options, "Detector::UpdateOptions");
+  pending_options_ = options;
+  if (!model()) ApplyPendingOptions();  // nothing to refit yet: take them now
+}
+
+void Detector::Relearn() {
+  {
+    std::lock_guard<std::mutex> lock(shared_->mutex);
+    ++shared_->generation;
+    shared_->solution_ids.clear();
+    shared_->solution_alpha.resize(0);
+    shared_->model.store(nullptr);
+  }
+  window_.Clear();
+  const uint64_t next_id = incidents_.next_id();
+  incidents_ = IncidentTracker(TrackerOptions(options_));
+  incidents_.set_next_id(next_id);
+  drift_.Reset();
+  accepted_since_refit_ = 0;
+  refits_since_cold_ = 0;
+  drift_pending_ = false;
+}
+
+std::size_t Detector::MemoryBytes() const {
+  std::size_t bytes = sizeof(Detector) + sizeof(Shared) + window_.MemoryBytes();
+  bytes += static_cast<std::size_t>(options_.open_window) * 24;
+  if (auto m = model()) bytes += m->MemoryBytes();
+  std::lock_guard<std::mutex> lock(shared_->mutex);
+  bytes += shared_->solution_ids.capacity() * sizeof(uint64_t) +
+           static_cast<std::size_t>(shared_->solution_alpha.size()) * sizeof(double);
+  return bytes;
+}
+
+DetectorState Detector::ExportState() const {
+  WaitForRefit();
+  DetectorState state;
+  window_.Snapshot(&state.window_rows, &state.window_ids, &state.window_times);
+  state.next_sample_id = window_.next_id();
+  state.model = model();
+  {
+    std::lock_guard<std::mutex> lock(shared_->mutex);
+    state.solution_ids = shared_->solution_ids;
+    state.solution_alpha = shared_->solution_alpha;
+  }
+  state.incidents = incidents_.ExportState();
+  state.drift = drift_.state();
+  state.accepted_since_refit = accepted_since_refit_;
+  state.refits_since_cold = refits_since_cold_;
+  state.model_time = shared_->model_time.load();
+  state.counters = counters_;
+  return state;
+}
+
+void Detector::ImportState(const DetectorState& state) {
+  if (state.window_rows.rows() > 0 && state.window_rows.cols() != dims_) {
+    throw PreconditionError("Detector::ImportState: window has " +
+                            std::to_string(state.window_rows.cols()) + " columns, the stream " +
+                            std::to_string(dims_));
+  }
+  if (state.model && state.model->dims() != dims_) {
+    throw PreconditionError("Detector::ImportState: model has " +
+                            std::to_string(state.model->dims()) + " dimensions, the stream " +
+                            std::to_string(dims_));
+  }
+  if (static_cast<int64_t>(state.solution_ids.size()) != state.solution_alpha.size()) {
+    throw PreconditionError("Detector::ImportState: " + std::to_string(state.solution_ids.size()) +
+                            " solution ids, " + std::to_string(state.solution_alpha.size()) +
+                            " alphas");
+  }
+  WaitForRefit();
+  // Build everything first, so a bad state leaves the detector unchanged.
+  SampleWindow window(options_.window, dims_, options_.max_age_seconds);
+  window.Restore(state.window_rows, state.window_ids, state.window_times, state.next_sample_id);
+  IncidentTracker incidents(TrackerOptions(options_));
+  incidents.ImportState(state.incidents);
+  PageHinkley drift(DriftOptions(options_));
+  drift.Restore(state.drift);
+  window_ = std::move(window);
+  incidents_ = std::move(incidents);
+  drift_ = std::move(drift);
+  accepted_since_refit_ = state.accepted_since_refit;
+  refits_since_cold_ = state.refits_since_cold;
+  counters_ = state.counters;
+  std::lock_guard<std::mutex> lock(shared_->mutex);
+  ++shared_->generation;
+  shared_->solution_ids = state.solution_ids;
+  shared_->solution_alpha = state.solution_alpha;
+  shared_->model_time.store(state.model_time);
+  shared_->model.store(state.model);
+  if (state.model)
+    shared_->next_version = std::max(shared_->next_version, state.model->version() + 1);
+}
+
+}  // namespace nuwatch

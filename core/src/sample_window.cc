@@ -1,0 +1,305 @@
+#include "nuwatch/sample_window.h"
+
+#include <algorithm>
+#include <cmath>
+#include <cstdio>
+#include <numeric>
+#include <string>
+
+namespace nuwatch {
+namespace {
+
+std::string Num(double value) {
+  char buffer[32];
+  std::snprintf(buffer, sizeof buffer, "%.17g", value);
+  return buffer;
+}
+
+std::string Num(int64_t value) { return std::to_string(value); }
+std::string Num(uint64_t value) { return std::to_string(value); }
+
+}  // namespace
+
+SampleWindow::SampleWindow(int64_t capacity, int dims, double max_age_seconds)
+    : capacity_(capacity), dims_(dims), max_age_seconds_(max_age_seconds) {
+  if (capacity < 1) {
+    throw PreconditionError("SampleWindow: capacity = " + Num(capacity) + " must be >= 1");
+  }
+  if (dims < 1) {
+    throw PreconditionError("SampleWindow: dims = " + std::to_string(dims) + " must be >= 1");
+  }
+  if (!std::isfinite(max_age_seconds) || max_age_seconds < 0) {
+    throw PreconditionError("SampleWindow: max_age_seconds = " + Num(max_age_seconds) +
+                            " must be finite and >= 0");
+  }
+  values_.assign(static_cast<std::size_t>(capacity) * static_cast<std::size_t>(dims), 0.0);
+  ids_.assign(static_cast<std::size_t>(capacity), 0);
+  times_.assign(static_cast<std::size_t>(capacity), 0.0);
+}
+
+int64_t SampleWindow::Physical(int64_t i) const {
+  const int64_t slot = head_ + i;
+  return slot < capacity_ ? slot : slot - capacity_;
+}
+
+void SampleWindow::CheckIndex(int64_t i, const char* caller) const {
+  if (i < 0 || i >= size_) {
+    throw PreconditionError(std::string(caller) + ": index " + Num(i) + " outside [0, " +
+                            Num(size_) + ")");
+  }
+}
+
+uint64_t SampleWindow::Push(double time, std::span<const double> x) {
+  if (x.size() != static_cast<std::size_t>(dims_)) {
+    throw PreconditionError("SampleWindow::Push: vector has " + std::to_string(x.size()) +
+                            " values, the window has dims = " + std::to_string(dims_));
+  }
+  if (!std::isfinite(time)) {
+    throw PreconditionError("SampleWindow::Push: time = " + Num(time) + " is not finite");
+  }
+  for (std::size_t j = 0; j < x.size(); ++j) {
+    if (!std::isfinite(x[j])) {
+      throw PreconditionError("SampleWindow::Push: value " + std::to_string(j) + " = " + Num(x[j]) +
+                              " is not finite");
+    }
+  }
+  int64_t slot;
+  if (size_ == capacity_) {
+    slot = head_;  // overwrite the oldest
+    head_ = head_ + 1 == capacity_ ? 0 : head_ + 1;
+  } else {
+    slot = Physical(size_);
+    ++size_;
+  }
+  std::copy(x.begin(), x.end(), values_.begin() + slot * dims_);
+  const uint64_t id = next_id_++;
+  ids_[slot] = id;
+  times_[slot] = time;
+  return id;
+}
+
+void SampleWindow::ExpireOlderThan(double now) {
+  if (!std::isfinite(now)) {
+    throw PreconditionError("SampleWindow::ExpireOlderThan: now = " + Num(now) + " is not finite");
+  }
+  if (max_age_seconds_ == 0) return;
+  const double cutoff = now - max_age_seconds_;
+  while (size_ > 0 && times_[head_] < cutoff) {
+    head_ = head_ + 1 == capacity_ ? 0 : head_ + 1;
+    --size_;
+  }
+}
+
+void SampleWindow::Clear() {
+  head_ = 0;
+  size_ = 0;
+}
+
+std::span<const double> SampleWindow::Row(int64_t i) const {
+  CheckIndex(i, "SampleWindow::Row");
+  return {values_.data() + Physical(i) * dims_, static_cast<std::size_t>(dims_)};
+}
+
+uint64_t SampleWindow::Id(int64_t i) const {
+  CheckIndex(i, "SampleWindow::Id");
+  return ids_[Physical(i)];
+}
+
+double SampleWindow::Time(int64_t i) const {
+  CheckIndex(i, "SampleWindow::Time");
+  return times_[Physical(i)];
+}
+
+void SampleWindow::Snapshot(MatrixD* out, std::vector<uint64_t>* ids,
+                            std::vector<double>* times) const {
+  if (out == nullptr) throw PreconditionError("SampleWindow::Snapshot: out is null");
+  out->resize(size_, dims_);
+  if (ids != nullptr) ids->resize(static_cast<std::size_t>(size_));
+  if (times != nullptr) times->resize(static_cast<std::size_t>(size_));
+  // The occupied slots are at most two contiguous runs: [head, end) and [0, wrap).
+  const int64_t first_run = std::min(size_, capacity_ - head_);
+  const int64_t second_run = size_ - first_run;
+  std::copy_n(values_.data() + head_ * dims_, first_run * dims_, out->data());
+  std::copy_n(values_.data(), second_run * dims_, out->data() + first_run * dims_);
+  if (ids != nullptr) {
+    std::copy_n(ids_.data() + head_, first_run, ids->data());
+    std::copy_n(ids_.data(), second_run, ids->data() + first_run);
+  }
+  if (times != nullptr) {
+    std::copy_n(times_.data() + head_, first_run, times->data());
+    std::copy_n(times_.data(), second_run, times->data() + first_run);
+  }
+}
+
+void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
+                           std::span<const double> times, uint64_t next_id) {
+  const int64_t n = rows.rows();
+  if (rows.cols() != dims_ && n > 0) {
+    throw PreconditionError("SampleWindow::Restore: rows have " + Num(int64_t{rows.cols()}) +
+                            " columns, the window has dims = " + std::to_string(dims_));
+  }
+  if (ids.size() != static_cast<std::size_t>(n) || times.size() != static_cast<std::size_t>(n)) {
+    throw PreconditionError("SampleWindow::Restore: " + Num(n) + " rows but " +
+                            std::to_string(ids.size()) + " ids and " +
+                            std::to_string(times.size()) + " times");
+  }
+  for (int64_t r = 0; r < n; ++r) {
+    if (ids[r] < 1 || (r > 0 && ids[r] <= ids[r - 1])) {
+      throw PreconditionError("SampleWindow::Restore: row " + Num(r) + ": id " + Num(ids[r]) +
+                              (r > 0 ? " after id " + Num(ids[r - 1]) : std::string()) +
+                              "; ids must be >= 1 and strictly increasing");
+    }
+    if (!std::isfinite(times[r])) {
+      throw PreconditionError("SampleWindow::Restore: row " + Num(r) + ": time = " + Num(times[r]) +
+                              " is not finite");
+    }
+    for (int j = 0; j < dims_; ++j) {
+      if (!std::isfinite(rows(r, j))) {
+        throw PreconditionError("SampleWindow::Restore: row " + Num(r) + ", column " +
+                                std::to_string(j) + ": value " + Num(rows(r, j)) +
+                                " is not finite");
+      }
+    }
+  }
+  if (next_id < 1 || (n > 0 && next_id <= ids[n - 1])) {
+    throw PreconditionError("SampleWindow::Restore: next_id = " + Num(next_id) +
+                            " must be >= 1 and greater than the last id" +
+                            (n > 0 ? " (" + Num(ids[n - 1]) + ")" : std::string()));
+  }
+  const int64_t skip = std::max<int64_t>(0, n - capacity_);
+  head_ = 0;
+  size_ = n - skip;
+  for (int64_t r = 0; r < size_; ++r) {
+    std::copy_n(rows.row(skip + r).data(), dims_, values_.data() + r * dims_);
+    ids_[r] = ids[skip + r];
+    times_[r] = times[skip + r];
+  }
+  next_id_ = next_id;
+}
+
+std::size_t SampleWindow::MemoryBytes() const {
+  return sizeof(*this) + values_.capacity() * sizeof(double) + ids_.capacity() * sizeof(uint64_t) +
+         times_.capacity() * sizeof(double);
+}
+
+VectorD MapWarmStart(const std::vector<uint64_t>& old_ids, const VectorD& old_alpha,
+                     const std::vector<uint64_t>& new_ids, double nu, const VectorD* new_gradient) {
+  const std::size_t l_old = old_ids.size();
+  const std::size_t l_new = new_ids.size();
+  if (static_cast<std::size_t>(old_alpha.size()) != l_old) {
+    throw PreconditionError("MapWarmStart: " + std::to_string(l_old) + " old ids but " +
+                            Num(int64_t{old_alpha.size()}) + " old alphas");
+  }
+  if (l_new == 0) throw PreconditionError("MapWarmStart: the new window is empty");
+  if (!(nu > 0 && nu <= 1)) {
+    throw PreconditionError("MapWarmStart: nu = " + Num(nu) + " is outside (0, 1]");
+  }
+  if (new_gradient != nullptr && static_cast<std::size_t>(new_gradient->size()) != l_new) {
+    throw PreconditionError("MapWarmStart: " + Num(int64_t{new_gradient->size()}) +
+                            " gradient values for " + std::to_string(l_new) + " new samples");
+  }
+  for (std::size_t k = 0; k < l_old; ++k) {
+    if (k > 0 && old_ids[k] <= old_ids[k - 1]) {
+      throw PreconditionError("MapWarmStart: old id " + Num(old_ids[k]) + " at " +
+                              std::to_string(k) + " follows " + Num(old_ids[k - 1]) +
+                              "; ids must be strictly increasing");
+    }
+    if (!std::isfinite(old_alpha[k]) || old_alpha[k] < 0) {
+      throw PreconditionError("MapWarmStart: old alpha " + std::to_string(k) + " = " +
+                              Num(old_alpha[k]) + " must be finite and >= 0");
+    }
+  }
+  for (std::size_t j = 1; j < l_new; ++j) {
+    if (new_ids[j] <= new_ids[j - 1]) {
+      throw PreconditionError("MapWarmStart: new id " + Num(new_ids[j]) + " at " +
+                              std::to_string(j) + " follows " + Num(new_ids[j - 1]) +
+                              "; ids must be strictly increasing");
+    }
+  }
+  if (new_gradient != nullptr) {
+    for (std::size_t j = 0; j < l_new; ++j) {
+      if (!std::isfinite((*new_gradient)[j])) {
+        throw PreconditionError("MapWarmStart: gradient " + std::to_string(j) + " = " +
+                                Num((*new_gradient)[j]) + " is not finite");
+      }
+    }
+  }
+
+  const double bound = 1.0 / (nu * static_cast<double>(l_new));
+  VectorD alpha = VectorD::Zero(static_cast<Eigen::Index>(l_new));
+
+  // 1. Survivors keep their alpha (both id lists are sorted: a merge join).
+  for (std::size_t k = 0, j = 0; k < l_old && j < l_new;) {
+    if (old_ids[k] < new_ids[j]) {
+      ++k;
+    } else if (new_ids[j] < old_ids[k]) {
+      ++j;
+    } else {
+      alpha[j] = std::min(old_alpha[k], bound);
+      ++k;
+      ++j;
+    }
+  }
+
+  double missing = 1.0 - alpha.sum();
+  if (missing > 0) {
+    // 2. Hand out the missing mass by priority.
+    std::vector<std::size_t> order(l_new);
+    std::iota(order.begin(), order.end(), std::size_t{0});
+    if (new_gradient != nullptr) {
+      const VectorD& g = *new_gradient;
+      std::sort(order.begin(), order.end(),
+                [&g](std::size_t a, std::size_t b) { return g[a] != g[b] ? g[a] < g[b] : a > b; });
+    } else {
+      std::reverse(order.begin(), order.end());
+    }
+    for (std::size_t i : order) {
+      if (missing <= 0) break;
+      const double room = bound - alpha[i];
+      if (room <= 0) continue;
+      if (room <= missing) {
+        alpha[i] = bound;  // exactly the bound, not alpha + room (which may round past it)
+        missing -= room;
+      } else {
+        // When room was rounded, alpha + missing can land an ulp past the bound: clip (the ulp of
+        // mass lost is far inside the 1e-12 tolerance).
+        alpha[i] = std::min(alpha[i] + missing, bound);
+        missing = 0;
+      }
+    }
+  } else if (missing < 0) {
+    // 3. Lower the largest alphas to a common level t with sum max(a_i - t, 0) = surplus.
+    const double surplus = -missing;
+    std::vector<double> sorted(alpha.data(), alpha.data() + l_new);
+    std::sort(sorted.begin(), sorted.end(), std::greater<double>());
+    double level = 0;
+    double top_sum = 0;
+    for (std::size_t k = 0; k < l_new; ++k) {
+      top_sum += sorted[k];
+      // Lowering the k + 1 largest to t removes top_sum - (k + 1) t; valid while t >= next value.
+      const double t = (top_sum - surplus) / static_cast<double>(k + 1);
+      const double next = k + 1 < l_new ? sorted[k + 1] : 0.0;
+      if (t >= next) {
+        level = std::max(t, 0.0);
+        break;
+      }
+    }
+    for (std::size_t i = 0; i < l_new; ++i) alpha[i] = std::min(alpha[i], level);
+  }
+
+  const double total = alpha.sum();
+  if (std::abs(total - 1.0) > 1e-12) {
+    throw PreconditionError("MapWarmStart: the mapped alpha sums to " + Num(total) +
+                            " (nu = " + Num(nu) + ", l_new = " + std::to_string(l_new) +
+                            ", bound = " + Num(bound) + ")");
+  }
+  for (Eigen::Index i = 0; i < alpha.size(); ++i) {
+    if (!(alpha[i] >= 0 && alpha[i] <= bound)) {
+      throw PreconditionError("MapWarmStart: mapped alpha " + std::to_string(i) + " = " +
+                              Num(alpha[i]) + " is outside [0, " + Num(bound) + "]");
+    }
+  }
+  return alpha;
+}
+
+}  // namespace nuwatch

@@ -1,0 +1,108 @@
+// libFuzzer target for the wire protocol (daemon/PROTOCOL.md). Not built by CMake; from the
+// repository root:
+//
+//   clang++ -std=c++20 -O1 -g -fsanitize=fuzzer,address,undefined \
+//     -Icore/include -I/usr/include/eigen3 -Idaemon/src \
+//     tests/fuzz/wire_protocol_fuzz.cc daemon/src/wire_protocol.cc -o /tmp/wire_protocol_fuzz
+//   /tmp/wire_protocol_fuzz -max_total_time=60 -max_len=8192
+//
+// (Debian: apt-get install -y clang libclang-rt-14-dev.)
+//
+// Input layout: byte 0 gives the key length k (mod 131), the next k bytes are the stream key, the
+// rest is the payload. Besides the sanitizers' checks it traps when a decoded message breaks the
+// decoder's contract, when re-encoding an accepted message and decoding it again changes a number,
+// or when the result encoder writes something that is not valid JSON.
+#include <algorithm>
+#include <cmath>
+#include <cstdint>
+#include <cstring>
+#include <nlohmann/json.hpp>
+#include <span>
+#include <string>
+#include <string_view>
+#include <vector>
+
+#include "wire_protocol.h"
+
+namespace {
+
+void Require(bool condition) {
+  if (!condition) __builtin_trap();
+}
+
+bool SameBits(double a, double b) { return std::memcmp(&a, &b, sizeof a) == 0; }
+
+// Decodes `encoded` and checks that it holds exactly `times` and `values` (bit for bit, except
+// that the sign of zero may be lost in JSON, which §5 allows).
+void RequireSameNumbers(const std::string& encoded, const std::vector<double>& times,
+                        const std::vector<double>& values, int dims, bool exact_zero_sign) {
+  nuwatch::WireLimits limits;
+  limits.max_message_bytes = encoded.size() + 1;
+  limits.max_dims = 65535;
+  limits.max_vectors_per_message = static_cast<int>(times.size());
+  nuwatch::JsonScratch scratch;
+  const nuwatch::DecodeResult again = nuwatch::DecodePayload(encoded, limits, &scratch);
+  Require(again.ok());
+  Require(again.payload.count == static_cast<int>(times.size()));
+  Require(again.payload.dims == dims);
+  for (int i = 0; i < again.payload.count; ++i) {
+    Require(SameBits(again.payload.time(i), times[i]) ||
+            (!exact_zero_sign && times[i] == 0 && again.payload.time(i) == 0));
+    for (int j = 0; j < dims; ++j) {
+      const double v = values[static_cast<std::size_t>(i) * dims + j];
+      const double w = again.payload.value(i, j);
+      Require(SameBits(v, w) || (!exact_zero_sign && v == 0 && w == 0));
+    }
+  }
+}
+
+}  // namespace
+
+extern "C" int LLVMFuzzerTestOneInput(const std::uint8_t* data, std::size_t size) {
+  if (size == 0) return 0;
+  const std::size_t key_length = std::min<std::size_t>(data[0] % 131, size - 1);
+  const std::string_view key(reinterpret_cast<const char*>(data) + 1, key_length);
+  const std::string_view payload(reinterpret_cast<const char*>(data) + 1 + key_length,
+                                 size - 1 - key_length);
+
+  const nuwatch::WireLimits limits;
+  nuwatch::JsonScratch scratch;
+  const nuwatch::DecodeResult result = nuwatch::DecodeIngest(key, payload, limits, &scratch);
+  Require(!nuwatch::RejectReasonLabel(result.reason).empty());
+  if (result.ok()) {
+    const nuwatch::PayloadView& view = result.payload;
+    Require(view.count >= 1 && view.count <= limits.max_vectors_per_message);
+    Require(view.dims >= 1 && view.dims <= limits.max_dims);
+    std::vector<double> times(view.count);
+    std::vector<double> values(static_cast<std::size_t>(view.count) * view.dims);
+    for (int i = 0; i < view.count; ++i) {
+      times[i] = view.time(i);
+      Require(std::isfinite(times[i]));
+      view.CopyRow(
+          i, std::span<double>(values).subspan(static_cast<std::size_t>(i) * view.dims, view.dims));
+      for (int j = 0; j < view.dims; ++j) {
+        Require(std::isfinite(values[static_cast<std::size_t>(i) * view.dims + j]));
+      }
+    }
+    std::string encoded;
+    nuwatch::EncodeBinaryPayload(times, values.data(), view.dims, nuwatch::Dtype::kFloat64,
+                                 &encoded);
+    RequireSameNumbers(encoded, times, values, view.dims, /*exact_zero_sign=*/true);
+    nuwatch::EncodeJsonPayload(times, values.data(), view.dims, &encoded);
+    RequireSameNumbers(encoded, times, values, view.dims, /*exact_zero_sign=*/true);
+  }
+
+  // The payload bytes as a feature name: whatever they are, the result must be valid JSON.
+  const nuwatch::FeatureShareView top[] = {{payload, 0, 0.5}, {"", static_cast<int>(size), 0.25}};
+  nuwatch::ScoredVector scored;
+  scored.learning = false;
+  scored.anomaly = true;
+  // Any 8 bytes as the decision, NaN and infinities included (written as null).
+  scored.decision = -1.0;
+  if (size >= 8) std::memcpy(&scored.decision, data, sizeof scored.decision);
+  scored.top_features = top;
+  std::string out;
+  nuwatch::EncodeResultJson(scored, &out);
+  Require(nlohmann::json::accept(out));
+  return 0;
+}
