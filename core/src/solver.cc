@@ -8,6 +8,7 @@
 #include <chrono>
 #include <cmath>
 #include <limits>
+#include <memory>
 #include <sstream>
 #include <vector>
 
@@ -23,6 +24,7 @@ class ColumnCache {
   ColumnCache(const MatrixD& x, const Kernel& kernel, std::size_t cache_bytes)
       : x_(x), kernel_(kernel), rows_(x.rows()) {
     squared_norms_ = x.rowwise().squaredNorm();
+    x_by_column_ = x;
     const std::size_t column_bytes = static_cast<std::size_t>(rows_) * sizeof(float);
     capacity_ = std::max<std::size_t>(2, cache_bytes / std::max<std::size_t>(1, column_bytes));
     capacity_ = std::min<std::size_t>(capacity_, static_cast<std::size_t>(rows_));
@@ -41,10 +43,68 @@ class ColumnCache {
     int slot = slot_of_[j];
     if (slot >= 0) {
       Touch(slot);
-      return slots_[slot].values.data();
+      return slots_[slot].values.get();
     }
+    slot = AcquireSlot(j);
+    Compute(j, slots_[slot].values.get());
+    return slots_[slot].values.get();
+  }
+
+  // Computes the missing columns among `columns` in blocks with one GEMM each, which is several
+  // times faster than one GEMV per column (warm starts begin with every support vector's column).
+  // Stops when the cache would start evicting what it just filled.
+  void Prefetch(const std::vector<int64_t>& columns) {
+    std::vector<int64_t> missing;
+    for (int64_t j : columns)
+      if (slot_of_[j] < 0) missing.push_back(j);
+    const std::size_t room = capacity_ > 2 ? capacity_ - 2 : 0;
+    if (missing.size() > room) missing.resize(room);
+    constexpr std::size_t kBlock = 128;
+    Eigen::MatrixXd rows, block;  // column-major: one kernel column is contiguous
+    for (std::size_t start = 0; start < missing.size(); start += kBlock) {
+      const std::size_t m = std::min(kBlock, missing.size() - start);
+      rows.resize(x_.cols(), static_cast<int64_t>(m));
+      Eigen::VectorXd norms(static_cast<int64_t>(m));
+      for (std::size_t k = 0; k < m; ++k) {
+        rows.col(k) = x_.row(missing[start + k]).transpose();
+        norms[k] = squared_norms_[missing[start + k]];
+      }
+      block.noalias() = x_by_column_ * rows;  // rows_ x m dot products
+      switch (kernel_.type) {
+        case KernelType::kLinear:
+          break;
+        case KernelType::kRbf:
+          // In steps: a broadcast inside the exp expression would keep Eigen from vectorising it.
+          block *= -2.0;
+          block.colwise() += squared_norms_;
+          block.rowwise() += norms.transpose();
+          block = (-kernel_.gamma * block.array().max(0.0)).exp().matrix();
+          break;
+        case KernelType::kPolynomial:
+          block = (kernel_.gamma * block.array() + kernel_.coef0)
+                      .pow(static_cast<double>(kernel_.degree))
+                      .matrix();
+          break;
+      }
+      for (std::size_t k = 0; k < m; ++k) {
+        float* out = slots_[AcquireSlot(missing[start + k])].values.get();
+        Eigen::Map<Eigen::VectorXf>(out, rows_) = block.col(k).cast<float>();
+      }
+    }
+  }
+
+ private:
+  struct Slot {
+    std::unique_ptr<float[]> values;  // uninitialised: every entry is written before use
+    int64_t owner;
+    int prev, next;
+  };
+
+  // A slot for column j (not cached): a new one while there is room, else the least recently used.
+  int AcquireSlot(int64_t j) {
+    int slot;
     if (slots_.size() < capacity_) {
-      slots_.push_back({std::vector<float>(rows_), j, -1, -1});
+      slots_.push_back({std::unique_ptr<float[]>(new float[rows_]), j, -1, -1});
       slot = static_cast<int>(slots_.size()) - 1;
       LinkFront(slot);
     } else {
@@ -55,19 +115,13 @@ class ColumnCache {
       LinkFront(slot);
     }
     slot_of_[j] = slot;
-    Compute(j, slots_[slot].values.data());
-    return slots_[slot].values.data();
+    return slot;
   }
 
- private:
-  struct Slot {
-    std::vector<float> values;
-    int64_t owner;
-    int prev, next;
-  };
-
   void Compute(int64_t j, float* out) {
-    scratch_.noalias() = x_ * x_.row(j).transpose();
+    // Column-major: the product is d axpy passes over contiguous columns of length l, which
+    // vectorises far better than l dot products of length d when d is small.
+    scratch_.noalias() = x_by_column_ * x_.row(j).transpose();
     switch (kernel_.type) {
       case KernelType::kLinear:
         break;
@@ -117,6 +171,7 @@ class ColumnCache {
   const int64_t rows_;
   VectorD squared_norms_;
   VectorD scratch_;
+  Eigen::MatrixXd x_by_column_;
   std::vector<double> diagonal_;
   std::vector<int> slot_of_;
   std::vector<Slot> slots_;
@@ -205,6 +260,10 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
   std::vector<double> gradient(l, 0.0);
   auto reconstruct_gradient = [&](const std::vector<int64_t>& targets) {
     for (int64_t t : targets) gradient[t] = 0;
+    std::vector<int64_t> nonzero;
+    for (int64_t j = 0; j < l; ++j)
+      if (alpha[j] > 0) nonzero.push_back(j);
+    cache.Prefetch(nonzero);
     for (int64_t j = 0; j < l; ++j) {
       if (alpha[j] <= 0) continue;
       const float* column = cache.Column(j);
@@ -233,7 +292,8 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
     for (int64_t i = 0; i < l; ++i) active[i] = i;
   };
 
-  bool just_restored = false;  // the active set was just restored: check optimality before shrinking
+  bool just_restored =
+      false;  // the active set was just restored: check optimality before shrinking
   while (iterations < max_iterations) {
     if (options.shrinking && !just_restored && --countdown == 0) {
       countdown = shrink_interval;
