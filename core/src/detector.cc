@@ -54,18 +54,23 @@ void CheckDetectorOptions(const DetectorOptions& o, std::string_view where) {
   if (o.warmup < 2 || o.warmup > o.window)
     fail("warmup = " + std::to_string(o.warmup) +
          " must be in [2, window = " + std::to_string(o.window) + "]");
-  if (o.max_age_seconds < 0)
-    fail("max_age_seconds = " + value(o.max_age_seconds) + " must be >= 0");
+  // Non-finite values must be caught here: the window and the drift test are rebuilt from these
+  // options inside a refit, where a throw would leave the refit marked in flight for good.
+  if (!(std::isfinite(o.max_age_seconds) && o.max_age_seconds >= 0))
+    fail("max_age_seconds = " + value(o.max_age_seconds) + " must be finite and >= 0");
   if (o.refit_every < 0) fail("refit_every = " + std::to_string(o.refit_every) + " must be >= 0");
-  if (o.max_model_age_seconds < 0)
+  if (!(o.max_model_age_seconds >= 0))
     fail("max_model_age_seconds = " + value(o.max_model_age_seconds) + " must be >= 0");
   if (o.cold_refit_every < 1)
     fail("cold_refit_every = " + std::to_string(o.cold_refit_every) + " must be >= 1");
   if (o.support_vector_budget < 1)
     fail("support_vector_budget = " + std::to_string(o.support_vector_budget) + " must be >= 1");
-  if (o.drift_delta < 0) fail("drift_delta = " + value(o.drift_delta) + " must be >= 0");
-  if (!(o.drift_lambda > 0)) fail("drift_lambda = " + value(o.drift_lambda) + " must be > 0");
-  if (o.drift_min_samples < 0) fail("drift_min_samples must be >= 0");
+  if (!(std::isfinite(o.drift_delta) && o.drift_delta >= 0))
+    fail("drift_delta = " + value(o.drift_delta) + " must be finite and >= 0");
+  if (!(std::isfinite(o.drift_lambda) && o.drift_lambda > 0))
+    fail("drift_lambda = " + value(o.drift_lambda) + " must be finite and > 0");
+  if (o.drift_min_samples < 0)
+    fail("drift_min_samples = " + std::to_string(o.drift_min_samples) + " must be >= 0");
   if (o.open_window < 1 || o.open_after < 1 || o.open_after > o.open_window)
     fail("open_after = " + std::to_string(o.open_after) + ", open_window = " +
          std::to_string(o.open_window) + ": need 1 <= open_after <= open_window");
@@ -101,6 +106,7 @@ struct Detector::Shared {
   mutable std::mutex mutex;
   mutable std::condition_variable idle;
   bool in_flight = false;              // guarded by mutex
+  bool refit_waiting = false;          // guarded by mutex; a due refit waits for the in-flight one
   uint64_t generation = 0;             // guarded by mutex; bumped by Relearn
   uint64_t next_version = 1;           // guarded by mutex
   std::vector<uint64_t> solution_ids;  // guarded by mutex
@@ -282,9 +288,19 @@ Verdict Detector::Observe(double time, std::span<const double> x) {
     throw PreconditionError("Detector::Observe: vector has " + std::to_string(x.size()) +
                             " values, the stream " + std::to_string(dims_));
   }
-  if (!std::isfinite(time)) throw PreconditionError("Detector::Observe: non-finite time");
-  for (double v : x)
-    if (!std::isfinite(v)) throw PreconditionError("Detector::Observe: non-finite value");
+  auto text = [](double v) {
+    std::ostringstream s;
+    s << v;
+    return s.str();
+  };
+  if (!std::isfinite(time))
+    throw PreconditionError("Detector::Observe: time = " + text(time) + " is not finite");
+  for (std::size_t j = 0; j < x.size(); ++j) {
+    if (!std::isfinite(x[j])) {
+      throw PreconditionError("Detector::Observe: x[" + std::to_string(j) + "] = " + text(x[j]) +
+                              " is not finite");
+    }
+  }
 
   ++counters_.vectors;
   if (options_.max_age_seconds > 0) window_.ExpireOlderThan(time);
@@ -344,11 +360,15 @@ void Detector::PostRefit(double time, RefitReason reason) {
   {
     std::lock_guard<std::mutex> lock(shared_->mutex);
     if (shared_->in_flight) {
-      if (reason != RefitReason::kWarmup) ++counters_.refits_coalesced;
+      // The due refit stays due and is posted once the in-flight one is done: count it once, not
+      // once per vector observed while it waits.
+      if (reason != RefitReason::kWarmup && !shared_->refit_waiting) ++counters_.refits_coalesced;
+      if (reason != RefitReason::kWarmup) shared_->refit_waiting = true;
       if (reason == RefitReason::kDrift) drift_pending_ = true;
       return;
     }
     shared_->in_flight = true;
+    shared_->refit_waiting = false;
   }
   ApplyPendingOptions();
   auto input = std::make_shared<RefitInput>();

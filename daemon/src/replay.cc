@@ -64,8 +64,8 @@ StreamRecording ReadStreamRecording(const std::string& path) {
           r.feature_names.emplace_back(fields[i]);
         }
       }
-      if (time_column < 0) throw CsvError(path + ": no column named time");
-      if (feature_columns.empty()) throw CsvError(path + ": no feature columns");
+      if (time_column < 0) throw CsvError(where() + "no column named time in the header");
+      if (feature_columns.empty()) throw CsvError(where() + "no feature columns in the header");
       continue;
     }
     if (fields.size() != columns) {

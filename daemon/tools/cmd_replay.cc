@@ -20,7 +20,7 @@ struct ReplayArgs {
 };
 
 void RunReplay(const ReplayArgs& a) {
-  Config config = a.detector.Resolve("nuwatch replay");
+  Config config = a.detector.Resolve();
   StreamRecording recording;
   try {
     recording = ReadStreamRecording(a.input);

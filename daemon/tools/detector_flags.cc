@@ -22,7 +22,7 @@ void DetectorFlags::AddTo(CLI::App* sub) {
   sub->add_flag("--drift", drift, "Refit on a Page-Hinkley drift alarm on the decision values");
 }
 
-Config DetectorFlags::Resolve(const std::string& where) const {
+Config DetectorFlags::Resolve() const {
   Config config;
   try {
     config = config_path.empty() ? DefaultConfig() : LoadConfig(config_path);
@@ -49,7 +49,7 @@ Config DetectorFlags::Resolve(const std::string& where) const {
   };
   apply(config.detector);
   try {
-    ValidateDetectorOptions(config.detector, where);
+    ValidateDetectorOptions(config.detector, "");
   } catch (const std::exception& e) {
     throw CommandError(e.what());
   }

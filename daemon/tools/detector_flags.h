@@ -24,7 +24,7 @@ struct DetectorFlags {
   void AddTo(CLI::App* sub);
   // The config (file or defaults) with every given flag applied to [detector] and to every
   // [[stream]] override (a flag beats the file). Throws CommandError on a bad file or value.
-  Config Resolve(const std::string& where) const;
+  Config Resolve() const;
 };
 
 }  // namespace nuwatch::cli

@@ -32,8 +32,18 @@ int main(int argc, char** argv) {
   for (const auto& command : commands) command.adder(app);
   try {
     app.parse(argc, argv);
-  } catch (const CLI::ParseError& e) {
+  } catch (const CLI::CallForHelp& e) {
     return app.exit(e);
+  } catch (const CLI::CallForAllHelp& e) {
+    return app.exit(e);
+  } catch (const CLI::CallForVersion& e) {
+    return app.exit(e);
+  } catch (const CLI::ParseError& e) {
+    // One line and status 1, like every other bad input ("--nu: Value abc not a number").
+    std::string name = "nuwatch";
+    for (const CLI::App* sub : app.get_subcommands()) name += " " + sub->get_name();
+    std::cerr << name << ": " << e.what() << " (see --help)\n";
+    return 1;
   } catch (const std::exception& e) {
     std::string name = "nuwatch";
     for (const CLI::App* sub : app.get_subcommands()) name += " " + sub->get_name();

@@ -113,7 +113,7 @@ struct DetectorState {
 
 class Detector {
  public:
-  // Requires: dims >= 1; options valid (window >= 2, 1 <= warmup <= window, budget >= 1, ...);
+  // Requires: dims >= 1; options valid (window >= 2, 2 <= warmup <= window, budget >= 1, ...);
   // throws PreconditionError naming the value otherwise. executor: null runs refits inline; else it
   // must outlive the detector.
   Detector(const DetectorOptions& options, int dims, RefitExecutor* executor = nullptr);
