@@ -7,21 +7,22 @@
 #include <unordered_set>
 
 namespace nuwatch {
-namespace {
 
-std::string_view Trim(std::string_view s) {
+std::string_view TrimField(std::string_view s) {
   while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
   while (!s.empty() && (s.back() == ' ' || s.back() == '\t' || s.back() == '\r'))
     s.remove_suffix(1);
   return s;
 }
 
+namespace {
+
 void SplitFields(std::string_view line, std::vector<std::string>* fields) {
   fields->clear();
   std::size_t start = 0;
   while (true) {
     std::size_t comma = line.find(',', start);
-    fields->emplace_back(Trim(line.substr(start, comma - start)));
+    fields->emplace_back(TrimField(line.substr(start, comma - start)));
     if (comma == std::string_view::npos) break;
     start = comma + 1;
   }
@@ -58,7 +59,7 @@ CsvTable ParseCsv(std::string_view text, const std::string& path_for_messages) {
         text.substr(pos, newline == std::string_view::npos ? text.npos : newline - pos);
     pos = newline == std::string_view::npos ? text.size() : newline + 1;
     ++line_number;
-    if (Trim(line).empty()) continue;
+    if (TrimField(line).empty()) continue;
     SplitFields(line, &fields);
     if (!have_header) {
       std::unordered_set<std::string> seen;
@@ -95,7 +96,7 @@ CsvTable ReadCsv(const std::string& path) {
 }
 
 std::optional<double> ParseFiniteNumber(std::string_view text) {
-  text = Trim(text);
+  text = TrimField(text);
   if (!text.empty() && text.front() == '+') text.remove_prefix(1);
   if (text.empty()) return std::nullopt;
   double value = 0;

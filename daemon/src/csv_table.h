@@ -39,6 +39,9 @@ struct CsvTable {
 CsvTable ReadCsv(const std::string& path);
 CsvTable ParseCsv(std::string_view text, const std::string& path_for_messages);
 
+// The field without surrounding blanks, tabs and a trailing '\r'.
+std::string_view TrimField(std::string_view field);
+
 // A strict finite number; nullopt for text, empty, NaN, Inf.
 std::optional<double> ParseFiniteNumber(std::string_view text);
 

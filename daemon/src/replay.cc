@@ -9,16 +9,6 @@
 #include "timestamps.h"
 
 namespace nuwatch {
-namespace {
-
-std::string_view Trim(std::string_view s) {
-  while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
-  while (!s.empty() && (s.back() == ' ' || s.back() == '\t' || s.back() == '\r'))
-    s.remove_suffix(1);
-  return s;
-}
-
-}  // namespace
 
 StreamRecording ReadStreamRecording(const std::string& path) {
   // A dedicated reader rather than ReadCsv: recordings run to millions of rows, and a table of
@@ -35,7 +25,7 @@ StreamRecording ReadStreamRecording(const std::string& path) {
     std::size_t start = 0;
     while (true) {
       std::size_t comma = text.find(',', start);
-      fields.push_back(Trim(text.substr(start, comma - start)));
+      fields.push_back(TrimField(text.substr(start, comma - start)));
       if (comma == std::string_view::npos) break;
       start = comma + 1;
     }
@@ -48,7 +38,7 @@ StreamRecording ReadStreamRecording(const std::string& path) {
   auto where = [&] { return path + ":" + std::to_string(line_number) + ": "; };
   while (std::getline(in, line)) {
     ++line_number;
-    if (Trim(line).empty()) continue;
+    if (TrimField(line).empty()) continue;
     split(line);
     if (columns == 0) {
       columns = fields.size();
