@@ -78,7 +78,7 @@ class ColumnCache {
           block *= -2.0;
           block.colwise() += squared_norms_;
           block.rowwise() += norms.transpose();
-          block = (-kernel_.gamma * block.array().max(0.0)).exp().matrix();
+          block = (-kernel_.gamma * block.array().max(0.0)).matrix();  // the exponent
           break;
         case KernelType::kPolynomial:
           block = (kernel_.gamma * block.array() + kernel_.coef0)
@@ -88,7 +88,7 @@ class ColumnCache {
       }
       for (std::size_t k = 0; k < m; ++k) {
         float* out = slots_[AcquireSlot(missing[start + k])].values.get();
-        Eigen::Map<Eigen::VectorXf>(out, rows_) = block.col(k).cast<float>();
+        Store(block.col(k), out);
       }
     }
   }
@@ -128,8 +128,7 @@ class ColumnCache {
       case KernelType::kRbf:
         scratch_ = (-kernel_.gamma *
                     (squared_norms_.array() + squared_norms_[j] - 2.0 * scratch_.array()).max(0.0))
-                       .exp()
-                       .matrix();
+                       .matrix();  // the exponent
         break;
       case KernelType::kPolynomial:
         scratch_ = (kernel_.gamma * scratch_.array() + kernel_.coef0)
@@ -137,7 +136,19 @@ class ColumnCache {
                        .matrix();
         break;
     }
-    for (int64_t i = 0; i < rows_; ++i) out[i] = static_cast<float>(scratch_[i]);
+    Store(scratch_, out);
+  }
+
+  // Writes one column as float. For rbf the input is the exponent, computed in double so that the
+  // distance keeps its accuracy; exp itself runs in float, which has twice the SIMD lanes and is
+  // as accurate as the float the cache stores anyway (as LIBSVM stores its columns). Prefetch and
+  // Compute both end here, so a column is the same whichever path filled it.
+  template <typename Column>
+  void Store(const Column& values, float* out) const {
+    Eigen::Map<VectorF> column(out, rows_);
+    column = values.template cast<float>();
+    // A separate pass: exp over a mixed double-to-float expression would not be vectorised.
+    if (kernel_.type == KernelType::kRbf) column = column.array().exp().matrix();
   }
 
   void Unlink(int slot) {
