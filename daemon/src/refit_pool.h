@@ -1,0 +1,63 @@
+// Where the daemon's refits run: a fixed Boost.Asio thread_pool behind nuwatch::RefitExecutor,
+// and a per-stream adapter that knows whether the stream has a refit queued or running.
+//
+// The pool's queue needs no bound of its own: each Detector has at most one refit in flight
+// (later ones are coalesced), so at most one job per stream is ever queued.
+// Thread safety: Post may be called from any thread, concurrently. Join from one thread, once no
+// more jobs are posted.
+#pragma once
+
+#include <atomic>
+#include <cstdint>
+#include <functional>
+#include <memory>
+
+#include "nuwatch/detector.h"
+
+namespace boost::asio {
+class thread_pool;
+}
+
+namespace nuwatch {
+
+class RefitPool : public RefitExecutor {
+ public:
+  // Requires: threads >= 1 (PreconditionError otherwise).
+  explicit RefitPool(int threads);
+  ~RefitPool() override;  // Join()
+
+  int threads() const { return threads_; }
+  // Runs `job` on a pool thread. Ensures: it runs exactly once, unless Post is called after Join
+  // (a precondition violation: the job is then run on the caller's thread, so it still runs).
+  void Post(std::function<void()> job) override;
+  // Waits until every posted job has finished; the pool takes no more jobs afterwards.
+  void Join();
+
+ private:
+  int threads_;
+  std::unique_ptr<boost::asio::thread_pool> pool_;
+  std::atomic<bool> joined_{false};
+};
+
+// A stream's view of the pool: counts the jobs it posted and those that finished, and calls
+// `on_finished` on the pool thread after each job has returned (the detector has marked its refit
+// done by then, so idle() implies that Detector::ExportState will not wait).
+// Thread safety: Post and idle() from the stream's owner thread; the counts are atomics.
+class TrackedRefitExecutor : public RefitExecutor {
+ public:
+  // Requires: `base` outlives this object and every job it posted.
+  TrackedRefitExecutor(RefitExecutor* base, std::function<void()> on_finished);
+
+  void Post(std::function<void()> job) override;
+  // No job of this stream is queued or running.
+  bool idle() const { return posted_ == finished_.load(std::memory_order_acquire); }
+  int64_t posted() const { return posted_; }
+
+ private:
+  RefitExecutor* base_;
+  std::function<void()> on_finished_;
+  int64_t posted_ = 0;  // owner thread only
+  std::atomic<int64_t> finished_{0};
+};
+
+}  // namespace nuwatch

@@ -1,0 +1,68 @@
+// Runs tests/integration/daemon_e2e_test.py, the end-to-end tests of nuwatchd with third-party
+// tools (pyzmq, an independent Python implementation of daemon/PROTOCOL.md, urllib, promtool),
+// one unittest class per test here, and asserts that it passes. The script's output is shown on
+// failure.
+#include <gtest/gtest.h>
+#include <sys/wait.h>
+#include <unistd.h>
+
+#include <array>
+#include <cstdio>
+#include <string>
+
+namespace {
+
+const std::string kNuwatchd = NUWATCH_BINARY_DIR "/daemon/nuwatchd";
+const std::string kNuwatch = NUWATCH_BINARY_DIR "/daemon/nuwatch";
+const std::string kScript = NUWATCH_SOURCE_DIR "/tests/integration/daemon_e2e_test.py";
+
+std::string Quote(const std::string& text) {
+  std::string quoted = "'";
+  for (char c : text) quoted += c == '\'' ? std::string("'\\''") : std::string(1, c);
+  return quoted + "'";
+}
+
+struct RunResult {
+  int exit_code = -1;
+  std::string output;
+};
+
+// Runs `command` through the shell with stderr joined to stdout.
+RunResult Run(const std::string& command) {
+  RunResult result;
+  std::FILE* pipe = ::popen((command + " 2>&1").c_str(), "r");
+  if (pipe == nullptr) return result;
+  std::array<char, 4096> buffer;
+  std::size_t n;
+  while ((n = std::fread(buffer.data(), 1, buffer.size(), pipe)) > 0)
+    result.output.append(buffer.data(), n);
+  const int status = ::pclose(pipe);
+  result.exit_code = WIFEXITED(status) ? WEXITSTATUS(status) : 128 + WTERMSIG(status);
+  return result;
+}
+
+// The script's unittest class `test_class`, which must pass.
+void RunScript(const std::string& test_class) {
+  // CI always builds both programs; a missing one is a failure, never a skip.
+  ASSERT_EQ(::access(kNuwatchd.c_str(), X_OK), 0)
+      << kNuwatchd << " is missing: build the nuwatchd target first";
+  ASSERT_EQ(::access(kNuwatch.c_str(), X_OK), 0)
+      << kNuwatch << " is missing: build the nuwatch target first";
+  const RunResult run = Run(std::string(NUWATCH_PYTHON) + " " + Quote(kScript) + " --nuwatchd " +
+                            Quote(kNuwatchd) + " --nuwatch " + Quote(kNuwatch) + " " + test_class);
+  EXPECT_EQ(run.exit_code, 0) << run.output;
+  // unittest's closing line on success; guards against a script that exits 0 without running.
+  EXPECT_NE(run.output.find("\nOK"), std::string::npos) << run.output;
+}
+
+TEST(DaemonEndToEnd, ScoresFlagsRejectsCountsAndStops) { RunScript("ScoringRejectionsAndMetrics"); }
+
+TEST(DaemonEndToEnd, RestartResumesModelsAndMovesCorruptStateAside) {
+  RunScript("RestartFromState");
+}
+
+TEST(DaemonEndToEnd, SendAndTailTalkToTheDaemon) { RunScript("SendAndTail"); }
+
+TEST(DaemonEndToEnd, SendAndTailRefuseBadInputWithOneLine) { RunScript("ClientBadInput"); }
+
+}  // namespace

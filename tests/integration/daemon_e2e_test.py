@@ -1,0 +1,872 @@
+#!/usr/bin/python3
+"""End-to-end tests of nuwatchd driven by third-party tools.
+
+nuwatchd runs as a real process on loopback sockets. The peer here is pyzmq (python3-zmq) with the
+wire protocol of daemon/PROTOCOL.md as implemented independently in python_codec_check.py (its
+encoders for ingest messages, its §9 validator for every published object); metrics are read with
+urllib over HTTP and linted by `promtool check metrics` (Debian's prometheus package). Section
+numbers ("§") refer to daemon/PROTOCOL.md.
+
+Every wait is bounded: sockets are polled with timeouts and files are polled until a deadline.
+Nothing sleeps to let time pass. The daemon is killed in a finally block whatever happens.
+
+Usage (run by tests/integration/daemon_e2e_test.cc):
+  daemon_e2e_test.py --nuwatchd BIN --nuwatch BIN [--promtool BIN] [unittest arguments]
+"""
+
+import argparse
+import glob
+import json
+import math
+import os
+import random
+import re
+import select
+import shutil
+import signal
+import struct
+import subprocess
+import sys
+import tempfile
+import time
+import unittest
+import urllib.request
+
+import zmq
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+import python_codec_check as codec  # noqa: E402  (the independent §5/§6/§9 implementation)
+
+NUWATCHD = None
+NUWATCH = None
+PROMTOOL = "/usr/bin/promtool"
+
+T0 = 1767225600.0  # 2026-01-01T00:00:00Z
+FEATURES = ["pressure", "flow", "vibration"]
+CENTER = [10.0, 50.0, 1.0]
+SPREAD = [0.5, 2.0, 0.1]
+
+# The detector and limits the tests run with (small, so that a model exists after 100 vectors).
+WINDOW, WARMUP, BUDGET = 200, 100, 32
+OPEN_AFTER, OPEN_WINDOW, CLOSE_AFTER = 3, 5, 10
+MAX_DIMS, MAX_VECTORS, MAX_MESSAGE_BYTES = 16, 64, 65536
+
+START_TIMEOUT = 15.0  # seconds for the ready file to appear
+WAIT_TIMEOUT = 10.0   # seconds for any one expected message or state
+
+
+def config_text(refit_every, max_streams):
+    return """\
+# Written by daemon_e2e_test.py.
+[daemon]
+log_level = "info"
+refit_threads = 1
+
+[metrics]
+anomaly_ratio_window = 100
+
+[limits]
+max_streams = %d
+max_dims = %d
+max_vectors_per_message = %d
+max_message_bytes = %d
+
+[detector]
+nu = 0.05
+window = %d
+warmup = %d
+refit_every = %d
+support_vector_budget = %d
+open_after = %d
+open_window = %d
+close_after = %d
+feature_names = [%s]
+""" % (max_streams, MAX_DIMS, MAX_VECTORS, MAX_MESSAGE_BYTES, WINDOW, WARMUP, refit_every, BUDGET,
+       OPEN_AFTER, OPEN_WINDOW, CLOSE_AFTER, ", ".join('"%s"' % f for f in FEATURES))
+
+
+class Daemon:
+    """One nuwatchd process, started with wildcard ports and a ready file."""
+
+    def __init__(self, workdir, state_dir, refit_every=50, max_streams=3):
+        self.workdir = workdir
+        self.state_dir = state_dir
+        self.config_path = os.path.join(workdir, "nuwatchd.toml")
+        with open(self.config_path, "w") as f:
+            f.write(config_text(refit_every, max_streams))
+        self.ready_path = os.path.join(workdir, "ready.json")
+        self.log_path = os.path.join(workdir, "nuwatchd-%d.log" % len(glob.glob(
+            os.path.join(workdir, "nuwatchd-*.log"))))
+        self.process = None
+        self.endpoints = None
+
+    def start(self):
+        if os.path.exists(self.ready_path):
+            os.remove(self.ready_path)
+        self.log = open(self.log_path, "wb")
+        self.process = subprocess.Popen(
+            [NUWATCHD, "--config", self.config_path,
+             "--ingest", "tcp://127.0.0.1:*", "--publish", "tcp://127.0.0.1:*",
+             "--control", "tcp://127.0.0.1:*", "--metrics", "127.0.0.1:0",
+             "--state-dir", self.state_dir, "--ready-file", self.ready_path],
+            stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
+        deadline = time.monotonic() + START_TIMEOUT
+        while not os.path.exists(self.ready_path):
+            if self.process.poll() is not None:
+                raise AssertionError("nuwatchd exited with %d before it was ready:\n%s"
+                                     % (self.process.returncode, self.log_tail()))
+            if time.monotonic() > deadline:
+                raise AssertionError("no ready file after %.0f s:\n%s"
+                                     % (START_TIMEOUT, self.log_tail()))
+            time.sleep(0.02)  # polling a file for its appearance, bounded by the deadline
+        with open(self.ready_path) as f:
+            self.endpoints = json.load(f)  # written atomically, so complete once it exists
+        return self.endpoints
+
+    def stop(self, sig=signal.SIGTERM, timeout=WAIT_TIMEOUT):
+        """Sends `sig` and returns the exit code (fails if the process does not exit in time)."""
+        self.process.send_signal(sig)
+        try:
+            code = self.process.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            raise AssertionError("nuwatchd did not exit within %.0f s of signal %d:\n%s"
+                                 % (timeout, sig, self.log_tail()))
+        self.log.close()
+        return code
+
+    def kill(self):
+        if self.process is not None and self.process.poll() is None:
+            self.process.kill()
+            self.process.wait(timeout=WAIT_TIMEOUT)
+        if self.process is not None and not self.log.closed:
+            self.log.close()
+
+    def log_text(self):
+        if not self.log.closed:
+            self.log.flush()
+        with open(self.log_path, "rb") as f:
+            return f.read().decode("utf-8", "replace")
+
+    def log_tail(self, lines=40):
+        return "\n".join(self.log_text().splitlines()[-lines:])
+
+    def wait_for_log(self, condition, what, timeout=WAIT_TIMEOUT):
+        """Polls the log (nuwatchd flushes every line) until condition(text) holds."""
+        deadline = time.monotonic() + timeout
+        while not condition(self.log_text()):
+            if time.monotonic() > deadline:
+                raise AssertionError("the log shows no %s within %.0f s:\n%s"
+                                     % (what, timeout, self.log_tail()))
+            time.sleep(0.02)  # polling a file for a line, bounded by the deadline
+
+
+class Peer:
+    """pyzmq sockets on one daemon: PUSH to ingest, SUB to results, REQ to control.
+
+    Every published message is checked by codec.parse_published (§9) and kept per stream, results
+    and events together in arrival order.
+    """
+
+    def __init__(self, endpoints):
+        self.context = zmq.Context()
+        self.push = self.context.socket(zmq.PUSH)
+        self.push.setsockopt(zmq.LINGER, 2000)
+        self.push.connect(endpoints["ingest"][0])
+        self.sub = self.context.socket(zmq.SUB)
+        self.sub.setsockopt(zmq.LINGER, 0)
+        self.sub.setsockopt(zmq.SUBSCRIBE, b"")
+        self.sub.connect(endpoints["publish"])
+        self.control_endpoint = endpoints["control"]
+        self.metrics_address = endpoints["metrics"]
+        self.published = {}  # stream -> [normalised §9 objects, raw objects attached as "raw"]
+
+    def close(self):
+        self.context.destroy(linger=0)
+
+    def send(self, key, payload):
+        self.push.send_multipart([key.encode() if isinstance(key, str) else key, payload])
+
+    def send_frames(self, frames):
+        self.push.send_multipart(frames)
+
+    def results(self, stream):
+        return [m for m in self.published.get(stream, []) if m["kind"] == "result"]
+
+    def events(self, stream):
+        return [m for m in self.published.get(stream, []) if m["kind"] == "event"]
+
+    def wait_for(self, condition, what, timeout=WAIT_TIMEOUT):
+        """Receives until condition() holds; fails naming `what` after `timeout` seconds."""
+        deadline = time.monotonic() + timeout
+        while not condition():
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise AssertionError("timed out after %.0f s waiting for %s" % (timeout, what))
+            if self.sub.poll(int(min(left, 0.2) * 1000), zmq.POLLIN):
+                while True:
+                    try:
+                        frames = self.sub.recv_multipart(zmq.NOBLOCK)
+                    except zmq.Again:
+                        break
+                    self._keep(frames)
+
+    def _keep(self, frames):
+        if len(frames) != 2:
+            raise AssertionError("a published message has %d frames, §9 says 2" % len(frames))
+        key = frames[0].decode("ascii")
+        text = frames[1].decode("utf-8")
+        try:
+            normalised = codec.parse_published(text)
+        except codec.ProtocolError as e:
+            raise AssertionError("%s published an object that breaks §9 (%s): %s" % (key, e, text))
+        normalised["raw"] = json.loads(text)
+        self.published.setdefault(key, []).append(normalised)
+
+    def subscribe_with_probe(self, stream="probe"):
+        """ZeroMQ drops what a PUB sends before the subscription reaches it. Sends one vector at a
+        time to `stream` until its result arrives; from then on nothing published is lost."""
+        data = PROBE_DATA
+        deadline = time.monotonic() + WAIT_TIMEOUT
+        while not self.results(stream):
+            if time.monotonic() > deadline:
+                raise AssertionError("no result for the probe stream within %.0f s" % WAIT_TIMEOUT)
+            t, x = data.normal()
+            self.send(stream, codec.encode_json([t], [x]))
+            try:
+                self.wait_for(lambda: bool(self.results(stream)), "a probe result", timeout=0.2)
+            except AssertionError:
+                pass  # not subscribed yet: send another
+
+    def control(self, request):
+        req = self.context.socket(zmq.REQ)
+        req.setsockopt(zmq.LINGER, 0)
+        req.setsockopt(zmq.RCVTIMEO, int(WAIT_TIMEOUT * 1000))
+        req.connect(self.control_endpoint)
+        try:
+            req.send(json.dumps(request).encode())
+            return json.loads(req.recv())
+        except zmq.Again:
+            raise AssertionError("no control reply to %r within %.0f s" % (request, WAIT_TIMEOUT))
+        finally:
+            req.close()
+
+    def scrape(self):
+        url = "http://%s/metrics" % self.metrics_address
+        with urllib.request.urlopen(url, timeout=WAIT_TIMEOUT) as response:
+            if response.status != 200:
+                raise AssertionError("GET %s: HTTP %d" % (url, response.status))
+            return response.read().decode("utf-8")
+
+
+SAMPLE = re.compile(r'^([a-zA-Z_:][a-zA-Z0-9_:]*)(?:\{(.*)\})?\s+(\S+)(?:\s+\d+)?$')
+LABEL = re.compile(r'([a-zA-Z_][a-zA-Z0-9_]*)="((?:[^"\\]|\\.)*)"')
+
+
+def parse_metrics(text):
+    """The text exposition format (Prometheus' documented format, as far as the samples go):
+    {(name, frozenset(labels)): value}."""
+    samples = {}
+    for line in text.splitlines():
+        if not line or line.startswith("#"):
+            continue
+        m = SAMPLE.match(line)
+        if not m:
+            raise AssertionError("unparsable metrics line: %r" % line)
+        labels = frozenset(LABEL.findall(m.group(2) or ""))
+        samples[(m.group(1), labels)] = float(m.group(3))
+    return samples
+
+
+def metric(samples, name, **labels):
+    key = (name, frozenset(labels.items()))
+    if key not in samples:
+        raise AssertionError("no sample %s%r in /metrics" % (name, labels))
+    return samples[key]
+
+
+class StreamData:
+    """Invented readings of one unit: independent Gaussian noise around a fixed point."""
+
+    def __init__(self, seed, start=T0):
+        self.rng = random.Random(seed)
+        self.next_t = start
+        self.sent_times = []
+
+    def _tick(self):
+        t = self.next_t
+        self.next_t += 10.0
+        self.sent_times.append(t)
+        return t
+
+    def normal(self):
+        return self._tick(), [c + self.rng.gauss(0.0, s) for c, s in zip(CENTER, SPREAD)]
+
+    def outlier(self):
+        t, x = self.normal()
+        x[2] = CENTER[2] + 40.0 * SPREAD[2]  # vibration 40 standard deviations out, the rest normal
+        return t, x
+
+
+# One probe stream for every daemon of a run, so that its timestamps keep increasing across
+# restarts on the same state directory.
+PROBE_DATA = StreamData(seed=99, start=T0 + 1e8)
+
+
+def send_vectors(peer, stream, vectors, form):
+    """form: "json" (single shape), "json_batch", "f64" (binary single), "f32_batch"."""
+    times = [t for t, _ in vectors]
+    rows = [x for _, x in vectors]
+    if form == "json":
+        for t, x in vectors:
+            peer.send(stream, codec.encode_json([t], [x]))
+    elif form == "json_batch":
+        peer.send(stream, codec.encode_json(times, rows, batch=True))
+    elif form == "f64":
+        for t, x in vectors:
+            peer.send(stream, codec.encode_binary([t], [x], codec.DTYPE_F64))
+    elif form == "f32_batch":
+        peer.send(stream, codec.encode_binary(times, rows, codec.DTYPE_F32))
+    else:
+        raise ValueError(form)
+
+
+def feed_until_scoring(peer, stream, data, forms, limit=1000):
+    """Sends normal vectors in chunks of 4, each chunk in the next of `forms`, waiting for each
+    chunk's results, until a result is "scoring" (the model is fitted in the background)."""
+    chunk = 0
+    while not any(r["state"] == "scoring" for r in peer.results(stream)):
+        if len(data.sent_times) > limit:
+            raise AssertionError("%s still learning after %d vectors" % (stream, limit))
+        send_vectors(peer, stream, [data.normal() for _ in range(4)], forms[chunk % len(forms)])
+        chunk += 1
+        expected = len(data.sent_times)
+        peer.wait_for(lambda: len(peer.results(stream)) >= expected,
+                      "%d results for %s" % (expected, stream))
+
+
+def state_files(state_dir):
+    return sorted(os.path.basename(p) for p in glob.glob(os.path.join(state_dir, "*")))
+
+
+class DaemonTestCase(unittest.TestCase):
+    def setUp(self):
+        if not NUWATCHD or not os.access(NUWATCHD, os.X_OK):
+            self.fail("nuwatchd binary not found or not executable: %r" % NUWATCHD)
+        self.workdir = tempfile.mkdtemp(prefix="nuwatch-e2e-")
+        self.state_dir = os.path.join(self.workdir, "state")
+        self.daemons = []
+        self.peers = []
+
+    def tearDown(self):
+        for peer in self.peers:
+            peer.close()
+        for daemon in self.daemons:
+            daemon.kill()
+        if self._failed():
+            for daemon in self.daemons:
+                sys.stderr.write("--- %s ---\n%s\n" % (daemon.log_path, daemon.log_tail()))
+        shutil.rmtree(self.workdir, ignore_errors=True)
+
+    def _failed(self):
+        # Python 3.11 reports a failure to the result as soon as it happens, before tearDown.
+        result = getattr(getattr(self, "_outcome", None), "result", None)
+        if result is None:
+            return True  # cannot tell: show the logs
+        return any(test is self for test, _ in result.errors + result.failures)
+
+    def start_daemon(self, **kwargs):
+        daemon = Daemon(self.workdir, self.state_dir, **kwargs)
+        self.daemons.append(daemon)
+        endpoints = daemon.start()
+        peer = Peer(endpoints)
+        self.peers.append(peer)
+        return daemon, peer
+
+    def stop_daemon(self, daemon, peer):
+        peer.close()
+        self.peers.remove(peer)
+        code = daemon.stop(signal.SIGTERM)
+        self.assertEqual(code, 0, "nuwatchd exit code after SIGTERM:\n" + daemon.log_tail())
+
+
+class ScoringRejectionsAndMetrics(DaemonTestCase):
+    def test_scores_flags_rejects_counts_and_stops(self):
+        daemon, peer = self.start_daemon(refit_every=50, max_streams=3)
+        self.assertEqual(len(daemon.endpoints["ingest"]), 1)
+        for name in ("publish", "control"):
+            self.assertRegex(daemon.endpoints[name], r"^tcp://127\.0\.0\.1:\d+$")
+        self.assertRegex(daemon.endpoints["metrics"], r"^127\.0\.0\.1:\d+$")
+        self.assertNotRegex(daemon.endpoints["metrics"], r":0$", "port 0 must be resolved")
+        # The listening lines name the same, resolved endpoints as the ready file.
+        listening = ["listening ingest=" + daemon.endpoints["ingest"][0]] + [
+            "listening %s=%s" % (name, daemon.endpoints[name])
+            for name in ("publish", "control", "metrics")]
+        daemon.wait_for_log(lambda text: all(line in text for line in listening),
+                            "listening lines")
+        peer.subscribe_with_probe()
+
+        # Learning, then scoring: pump-a in both JSON shapes (§5), pump-b in both binary dtypes
+        # (§6).
+        a, b = StreamData(seed=1), StreamData(seed=2)
+        feed_until_scoring(peer, "pump-a", a, ["json", "json_batch"])
+        feed_until_scoring(peer, "pump-b", b, ["f64", "f32_batch"])
+        for stream, data in (("pump-a", a), ("pump-b", b)):
+            results = peer.results(stream)
+            # §9: one result per accepted vector, in order, carrying the vector's timestamp.
+            self.assertEqual([r["t"] for r in results], data.sent_times)
+            states = [r["state"] for r in results]
+            self.assertEqual(states[0], "learning")
+            first_scoring = states.index("scoring")
+            # The model is fitted after `warmup` vectors (config), never before.
+            self.assertGreaterEqual(first_scoring, WARMUP)
+            self.assertEqual(states[first_scoring:], ["scoring"] * (len(states) - first_scoring),
+                             "a stream with a model keeps scoring")
+            self.assertTrue(all(r["decision"] is None and r["model_version"] == 0
+                                for r in results[:first_scoring]))
+            self.assertTrue(all(r["model_version"] >= 1 and 1 <= r["support_vectors"] <= BUDGET
+                                for r in results[first_scoring:]))
+
+        # An obvious outlier burst on pump-a: flagged, explained, and an incident opens (§9.2).
+        before = len(peer.published["pump-a"])
+        burst = [a.outlier() for _ in range(8)]
+        send_vectors(peer, "pump-a", burst, "json")
+        burst_times = [t for t, _ in burst]
+        peer.wait_for(lambda: len([m for m in peer.published["pump-a"][before:]
+                                   if m["kind"] == "result"]) == len(burst), "the burst's results")
+        after = peer.published["pump-a"][before:]
+        burst_results = [m for m in after if m["kind"] == "result"]
+        self.assertEqual([r["t"] for r in burst_results], burst_times)
+        for r in burst_results:
+            self.assertTrue(r["anomaly"], r)
+            self.assertLess(r["decision"], 0, "§9.1: < 0 outside the envelope")
+            # Only the vibration feature is off, so it must lead the explanation. The attribution
+            # is the gradient of the decision function (design.md); for the RBF kernel that is
+            # sum_i alpha_i K(x, s_i) (-2 gamma) (x - s_i) with alpha_i, K >= 0, so feature j's
+            # component is a positive mix of the (scaled) offsets x_j - s_ij: about 40 for
+            # vibration, all of one sign, against about +-1 for the other features.
+            self.assertEqual(r["top_features"][0]["feature"], "vibration", r)
+            self.assertLessEqual(sum(f["share"] for f in r["top_features"]), 1 + 1e-9)
+        # open_after = 3 of open_window = 5: open by the third flagged vector at the latest.
+        opened_at = next(i for i, r in enumerate(burst_results) if r["incident"] is not None)
+        self.assertLessEqual(opened_at, OPEN_AFTER - 1)
+        incident = burst_results[opened_at]["incident"]
+        self.assertTrue(all(r["incident"] == incident for r in burst_results[opened_at:]))
+        # §9: the event follows right after the result of the vector that opened the incident.
+        position = after.index(burst_results[opened_at])
+        event = after[position + 1]
+        self.assertEqual(event["kind"], "event")
+        self.assertEqual(event["event"], "incident_open")
+        self.assertEqual(event["incident"], incident)
+        self.assertEqual(event["t"], burst_times[opened_at])
+        self.assertLessEqual(event["start"], burst_times[0])
+        self.assertIn(event["start"], a.sent_times)
+
+        # Clean vectors close it after close_after consecutive unflagged ones.
+        closes = lambda: [e for e in peer.events("pump-a") if e["event"] == "incident_close"]
+        for _ in range(10):
+            if closes():
+                break
+            send_vectors(peer, "pump-a", [a.normal() for _ in range(CLOSE_AFTER)], "json_batch")
+            expected = len(a.sent_times)
+            peer.wait_for(lambda: len(peer.results("pump-a")) >= expected, "pump-a results")
+        self.assertTrue(closes(), "no incident_close after %d clean vectors" % (10 * CLOSE_AFTER))
+        close = closes()[0]
+        self.assertEqual(close["incident"], incident)
+        self.assertEqual(close["start"], event["start"])
+        self.assertGreaterEqual(close["end"], burst_times[-1])
+        self.assertIn(close["end"], a.sent_times)
+
+        # Malformed messages of every kind (§8), each kind counted; pump-b keeps being scored.
+        good = codec.encode_binary([1.0, 2.0], [[1.0, 2.0, 3.0], [4.0, 5.0, 6.0]], codec.DTYPE_F64)
+        j = lambda text: text.encode()
+        f64_header = lambda dims, count, version=1, dtype=2, reserved=0: codec.HEADER.pack(
+            codec.MAGIC, version, dtype, dims, count, reserved)
+        pad = MAX_MESSAGE_BYTES + 1 - len(b'{"t":1,"x":[1,2,3],"pad":""}')
+        malformed = {
+            "wrong_frame_count": [[b"pump-b"], [b"pump-b", good, b"extra"]],
+            "bad_stream_key": [[b"pump b", good], [b"", good], [b"k" * 129, good],
+                               [b"pump-\xc3\xa9", good], [b"a*b", good]],
+            "empty_payload": [[b"pump-b", b""]],
+            "message_too_large": [[b"pump-b", b'{"t":1,"x":[1,2,3],"pad":"' + b"a" * pad + b'"}']],
+            "unknown_format": [[b"pump-b", b'\xef\xbb\xbf{"t":1,"x":[1,2,3]}'],
+                               [b"pump-b", b"t=1 x=1,2,3"]],
+            "bad_json": [[b"pump-b", j('{"t":1,"x":[NaN,1,2]}')],
+                         [b"pump-b", j('{"t":1,"x":[1,2,3]} x')],
+                         [b"pump-b", j('{"t":1,"x":[1,2,3],"t":2}')],
+                         [b"pump-b", j(' [1,2,3]')],
+                         [b"pump-b", j('{"t":1,"x":[1,2,3],"d":' + "[" * 40 + "]" * 40 + "}")],
+                         [b"pump-b", j('{"t":1,"x":[1,2,3],"s":"\\ud800"}')],
+                         [b"pump-b", b'{"t":1,"x":[1,2,3],"s":"\xff"}']],
+            "missing_field": [[b"pump-b", j('{"t":1}')], [b"pump-b", j('{"x":[1,2,3]}')]],
+            "bad_field_type": [[b"pump-b", j('{"t":1,"x":[true,2,3]}')],
+                               [b"pump-b", j('{"t":"1","x":[1,2,3]}')],
+                               [b"pump-b", j('{"t":1,"x":[[1,2,3]]}')],
+                               [b"pump-b", j('{"t":[1],"x":[1,2,3]}')]],
+            "batch_length_mismatch": [[b"pump-b", j('{"t":[1,2],"x":[[1,2,3]]}')]],
+            "ragged_rows": [[b"pump-b", j('{"t":[1,2],"x":[[1,2,3],[1,2]]}')]],
+            "empty_vector": [[b"pump-b", j('{"t":1,"x":[]}')],
+                             [b"pump-b", f64_header(0, 1) + struct.pack("<d", 1.0)]],
+            "empty_batch": [[b"pump-b", j('{"t":[],"x":[]}')], [b"pump-b", f64_header(3, 0)]],
+            "bad_header": [[b"pump-b", b"NUWX" + good[4:]], [b"pump-b", good[:12]],
+                           [b"pump-b", good[:12] + b"\x01\x00\x00\x00" + good[16:]]],
+            "unsupported_version": [[b"pump-b", good[:4] + b"\x02" + good[5:]]],
+            "bad_dtype": [[b"pump-b", good[:5] + b"\x03" + good[6:]]],
+            "size_mismatch": [[b"pump-b", good + b"\x00"], [b"pump-b", good[:-1]]],
+            "non_finite": [[b"pump-b", j('{"t":1,"x":[1e999,2,3]}')],
+                           [b"pump-b", good[:-8] + struct.pack("<d", math.nan)],
+                           [b"pump-b", good[:16] + struct.pack("<d", math.inf) + good[24:]]],
+            "dims_limit": [[b"pump-b", codec.encode_json([1.0], [[1.0] * (MAX_DIMS + 1)])]],
+            "count_limit": [[b"pump-b", codec.encode_binary(
+                [1.0] * (MAX_VECTORS + 1), [[1.0, 2.0, 3.0]] * (MAX_VECTORS + 1))]],
+            # Well formed, but pump-b has 3 features.
+            "dims_mismatch": [[b"pump-b", codec.encode_json([1.0], [[1.0, 2.0, 3.0, 4.0]])]],
+            # Well formed, but probe, pump-a and pump-b are limits.max_streams = 3 already.
+            "stream_limit": [[b"pump-new", codec.encode_json([1.0], [[1.0, 2.0, 3.0]])]],
+        }
+        b_before = len(peer.results("pump-b"))
+        for reason, messages in malformed.items():
+            for frames in messages:
+                peer.send_frames(frames)
+            send_vectors(peer, "pump-b", [b.normal()], "f64")  # a good one between each kind
+        expected_b = len(b.sent_times)
+        # One PUSH connection delivers in order (ZeroMQ), so once the last good vector's result is
+        # here every malformed message before it has been handled.
+        peer.wait_for(lambda: len(peer.results("pump-b")) >= expected_b, "pump-b results")
+        new_b = peer.results("pump-b")[b_before:]
+        self.assertEqual([r["t"] for r in new_b], b.sent_times[-len(malformed):])
+        self.assertTrue(all(r["state"] == "scoring" for r in new_b))
+        self.assertNotIn("pump-new", peer.published)
+
+        text = peer.scrape()
+        samples = parse_metrics(text)
+        for reason, messages in malformed.items():
+            self.assertEqual(metric(samples, "nuwatch_rejected_messages_total", reason=reason),
+                             len(messages), reason)
+        # Vectors and anomalies: exactly what was sent and what was published.
+        for stream, data in (("pump-a", a), ("pump-b", b)):
+            self.assertEqual(metric(samples, "nuwatch_vectors_total", stream=stream),
+                             len(data.sent_times))
+            self.assertEqual(metric(samples, "nuwatch_anomalies_total", stream=stream),
+                             sum(r["anomaly"] for r in peer.results(stream)))
+            self.assertEqual(metric(samples, "nuwatch_support_vector_budget", stream=stream),
+                             BUDGET)
+            self.assertGreaterEqual(metric(samples, "nuwatch_support_vectors", stream=stream), 1)
+            self.assertLessEqual(metric(samples, "nuwatch_support_vectors", stream=stream), BUDGET)
+            self.assertLessEqual(metric(samples, "nuwatch_window_vectors", stream=stream), WINDOW)
+            self.assertEqual(metric(samples, "nuwatch_refits_total", stream=stream,
+                                    result="failed"), 0)
+            ratio = metric(samples, "nuwatch_anomaly_ratio", stream=stream)
+            self.assertTrue(0 <= ratio <= 1, ratio)
+            # The gauge agrees with the last result published for the stream (§9.1 "incident").
+            self.assertEqual(metric(samples, "nuwatch_incidents_open", stream=stream),
+                             0 if peer.results(stream)[-1]["incident"] is None else 1, stream)
+        self.assertEqual(metric(samples, "nuwatch_streams"), 3)
+        self.assertTrue(any(name == "nuwatch_build_info" and value == 1
+                            for (name, _), value in samples.items()))
+        for histogram in ("nuwatch_score_duration_seconds", "nuwatch_refit_duration_seconds"):
+            self.assertGreater(metric(samples, histogram + "_count"), 0, histogram)
+
+        # promtool's linter (Prometheus' own naming and format rules) on the scraped text.
+        lint = subprocess.run([PROMTOOL, "check", "metrics"], input=text.encode(),
+                              capture_output=True, timeout=WAIT_TIMEOUT)
+        output = (lint.stdout + lint.stderr).decode("utf-8", "replace")
+        self.assertEqual(lint.returncode, 0, output)
+        self.assertEqual(output.strip(), "", "promtool check metrics reported problems")
+
+        # The control socket (§11).
+        status = peer.control({"command": "status"})
+        self.assertTrue(status["ok"], status)
+        by_name = {s["stream"]: s for s in status["streams"]}
+        self.assertEqual(set(by_name), {"probe", "pump-a", "pump-b"})
+        for stream, data in (("pump-a", a), ("pump-b", b)):
+            self.assertEqual(by_name[stream]["state"], "scoring")
+            self.assertEqual(by_name[stream]["dims"], 3)
+            self.assertEqual(by_name[stream]["vectors"], len(data.sent_times))
+        self.assertFalse(peer.control({"command": "no-such-command"})["ok"])
+        self.assertFalse(peer.control({"command": "relearn", "stream": "pump-zz"})["ok"])
+
+        # Reload: a file that does not load is refused, by the control socket and on SIGHUP, and
+        # the daemon keeps scoring with the configuration it has.
+        reply = peer.control({"command": "reload"})
+        self.assertTrue(reply["ok"], reply)
+        with open(daemon.config_path) as f:
+            good_config = f.read()
+        with open(daemon.config_path, "w") as f:
+            f.write(good_config.replace("nu = 0.05", "nu = 5.0"))  # outside (0, 1]
+        reply = peer.control({"command": "reload"})
+        self.assertFalse(reply["ok"], reply)
+        self.assertIn("nuwatchd.toml", reply["error"])
+        log_size = len(daemon.log_text())
+        daemon.process.send_signal(signal.SIGHUP)
+        daemon.wait_for_log(lambda text: "reload" in text[log_size:].lower(),
+                            "reaction to SIGHUP")
+        self.assertIsNone(daemon.process.poll(), "nuwatchd exited on a bad reload")
+        send_vectors(peer, "pump-b", [b.normal()], "f64")
+        expected_b = len(b.sent_times)
+        peer.wait_for(lambda: len(peer.results("pump-b")) >= expected_b, "pump-b after SIGHUP")
+        self.assertEqual(peer.results("pump-b")[-1]["state"], "scoring")
+        with open(daemon.config_path, "w") as f:
+            f.write(good_config)
+
+        # SIGTERM: a snapshot of every stream, then exit 0 (state files: state_store.h).
+        self.stop_daemon(daemon, peer)
+        files = state_files(self.state_dir)
+        for stream in ("pump-a", "pump-b"):
+            self.assertIn(stream + ".state", files)
+            with open(os.path.join(self.state_dir, stream + ".state"), "rb") as f:
+                self.assertEqual(f.read(4), b"NUWS")
+
+
+class RestartFromState(DaemonTestCase):
+    def test_restart_resumes_models_and_moves_a_corrupt_file_aside(self):
+        # refit_every = 0 (fit once): the model version at SIGTERM is then the final one.
+        daemon, peer = self.start_daemon(refit_every=0, max_streams=3)
+        peer.subscribe_with_probe()
+        a, b = StreamData(seed=3), StreamData(seed=4)
+        feed_until_scoring(peer, "pump-a", a, ["json_batch"])
+        feed_until_scoring(peer, "pump-b", b, ["f64"])
+        versions = {s: peer.results(s)[-1]["model_version"] for s in ("pump-a", "pump-b")}
+        support = {s: peer.results(s)[-1]["support_vectors"] for s in ("pump-a", "pump-b")}
+        self.stop_daemon(daemon, peer)
+        self.assertIn("pump-a.state", state_files(self.state_dir))
+        self.assertIn("pump-b.state", state_files(self.state_dir))
+
+        # Restart on the same directory: both streams resume with the same model.
+        daemon, peer = self.start_daemon(refit_every=0, max_streams=3)
+        status = {s["stream"]: s for s in peer.control({"command": "status"})["streams"]}
+        for stream in ("pump-a", "pump-b"):
+            self.assertEqual(status[stream]["state"], "scoring", status)
+            self.assertEqual(status[stream]["model_version"], versions[stream])
+        peer.subscribe_with_probe()
+        send_vectors(peer, "pump-a", [a.normal()], "json")
+        send_vectors(peer, "pump-b", [b.normal()], "f64")
+        peer.wait_for(lambda: peer.results("pump-a") and peer.results("pump-b"),
+                      "the first results after the restart")
+        for stream in ("pump-a", "pump-b"):
+            first = peer.results(stream)[0]
+            self.assertEqual(first["state"], "scoring", first)
+            self.assertEqual(first["model_version"], versions[stream])
+            self.assertEqual(first["support_vectors"], support[stream])
+        self.stop_daemon(daemon, peer)
+
+        # Garbage in pump-b's file: pump-b starts afresh, pump-a resumes, the file is kept aside.
+        garbage = b"this is not a nuwatch state file\n" + bytes(range(256))
+        with open(os.path.join(self.state_dir, "pump-b.state"), "wb") as f:
+            f.write(garbage)
+        daemon, peer = self.start_daemon(refit_every=0, max_streams=3)
+        peer.subscribe_with_probe()
+        send_vectors(peer, "pump-a", [a.normal()], "json")
+        send_vectors(peer, "pump-b", [b.normal()], "f64")
+        peer.wait_for(lambda: peer.results("pump-a") and peer.results("pump-b"),
+                      "the first results after the second restart")
+        self.assertEqual(peer.results("pump-a")[0]["state"], "scoring")
+        self.assertEqual(peer.results("pump-a")[0]["model_version"], versions["pump-a"])
+        self.assertEqual(peer.results("pump-b")[0]["state"], "learning")
+        self.assertEqual(peer.results("pump-b")[0]["model_version"], 0)
+        moved = []
+        for name in state_files(self.state_dir):
+            with open(os.path.join(self.state_dir, name), "rb") as f:
+                if f.read() == garbage:
+                    moved.append(name)
+        self.assertEqual(len(moved), 1, "the garbage should be kept in one file: %r"
+                         % state_files(self.state_dir))
+        self.assertNotEqual(moved[0], "pump-b.state")
+        self.assertTrue(moved[0].startswith("pump-b.state"), moved)
+        self.stop_daemon(daemon, peer)
+
+
+class ChildLines:
+    """Lines of a child's stdout, each waited for with a timeout. Reads the pipe's descriptor
+    directly: a buffered reader could hold lines that select() no longer reports."""
+
+    def __init__(self, process):
+        self.fd = process.stdout.fileno()
+        self.buffer = b""
+        self.ended = False
+
+    def next(self, timeout):
+        """The next line (without its newline) within `timeout` seconds, or None."""
+        deadline = time.monotonic() + timeout
+        while b"\n" not in self.buffer:
+            left = deadline - time.monotonic()
+            if self.ended or left <= 0:
+                return None
+            readable, _, _ = select.select([self.fd], [], [], left)
+            if readable:
+                chunk = os.read(self.fd, 65536)
+                self.ended = not chunk
+                self.buffer += chunk
+        line, self.buffer = self.buffer.split(b"\n", 1)
+        return line.decode("utf-8")
+
+
+class SendAndTail(DaemonTestCase):
+    def setUp(self):
+        super().setUp()
+        if not NUWATCH or not os.access(NUWATCH, os.X_OK):
+            self.fail("nuwatch binary not found or not executable: %r" % NUWATCH)
+
+    def test_send_streams_stdin_and_files_and_tail_prints_them(self):
+        daemon, peer = self.start_daemon(refit_every=50, max_streams=3)
+        peer.subscribe_with_probe()
+
+        # `nuwatch send --input -` sends rows as they arrive: their results come back while its
+        # standard input is still open.
+        send = subprocess.Popen(
+            [NUWATCH, "send", "--connect", daemon.endpoints["ingest"][0], "--input", "-",
+             "--format", "binary", "--batch", "4"],
+            stdin=subprocess.PIPE, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        try:
+            c = StreamData(seed=5)
+            send.stdin.write(b"time,stream," + ",".join(FEATURES).encode() + b"\n")
+            rows = [c.normal() for _ in range(6)]
+            for t, x in rows:
+                send.stdin.write(("%r,pump-c,%s\n" % (t, ",".join(repr(v) for v in x))).encode())
+            send.stdin.flush()
+            peer.wait_for(lambda: len(peer.results("pump-c")) == 6,
+                          "results of rows piped to nuwatch send before its input ends")
+            self.assertEqual([r["t"] for r in peer.results("pump-c")], c.sent_times)
+            send.stdin.close()
+            send.wait(timeout=WAIT_TIMEOUT)
+            err = send.stderr.read()
+            send.stderr.close()
+        finally:
+            if send.poll() is None:
+                send.kill()
+                send.wait()
+        self.assertEqual(send.returncode, 0, err)
+        self.assertIn("6 vectors of 1 stream(s)", err.decode())
+
+        # `nuwatch tail` (human form) shows what a file sent by `nuwatch send` produced.
+        csv_path = os.path.join(self.workdir, "pump-c.csv")
+        file_rows = [c.normal() for _ in range(30)]
+        with open(csv_path, "w") as f:
+            f.write("time,stream,%s\n" % ",".join(FEATURES))
+            for t, x in file_rows:
+                iso = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(t))
+                f.write("%s,pump-c,%s\n" % (iso, ",".join(repr(v) for v in x)))
+        tail = subprocess.Popen([NUWATCH, "tail", "--connect", daemon.endpoints["publish"]],
+                                stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        tail_out = ChildLines(tail)
+        try:
+            # Probe until tail shows a line: its subscription is then in place.
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            line = None
+            while line is None:
+                self.assertLess(time.monotonic(), deadline, "nuwatch tail printed nothing")
+                send_vectors(peer, "probe", [PROBE_DATA.normal()], "json")
+                line = tail_out.next(0.2)
+            self.assertIn("probe", line)
+            sent = subprocess.run([NUWATCH, "send", "--connect", daemon.endpoints["ingest"][0],
+                                   "--input", csv_path, "--batch", "5"],
+                                  capture_output=True, timeout=WAIT_TIMEOUT)
+            self.assertEqual(sent.returncode, 0, sent.stderr)
+            self.assertIn("30 vectors of 1 stream(s) in 6 json message(s)", sent.stderr.decode())
+            tail_lines = []
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while len(tail_lines) < len(file_rows):
+                self.assertLess(time.monotonic(), deadline,
+                                "nuwatch tail showed %d of 30 lines" % len(tail_lines))
+                line = tail_out.next(0.2)
+                if line and " pump-c " in line:
+                    tail_lines.append(line)
+            for line, (t, _) in zip(tail_lines, file_rows):
+                fields = line.split()
+                self.assertEqual(fields[0], time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(t)))
+                self.assertEqual(fields[1], "pump-c")
+                self.assertIn(fields[2], ("learning", "scoring"))
+            # Ctrl-C ends tail cleanly.
+            tail.send_signal(signal.SIGINT)
+            _, err = tail.communicate(timeout=WAIT_TIMEOUT)
+            self.assertEqual(tail.returncode, 0, err)
+        finally:
+            if tail.poll() is None:
+                tail.kill()
+                tail.wait()
+
+        # --json --count: exits by itself after N objects, each §9-valid with its stream added.
+        tail = subprocess.Popen([NUWATCH, "tail", "--connect", daemon.endpoints["publish"],
+                                 "--json", "--stream", "pump-c", "--count", "3", "--timeout",
+                                 "10s"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        try:
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while tail.poll() is None:
+                self.assertLess(time.monotonic(), deadline, "tail --count 3 did not exit")
+                send_vectors(peer, "pump-c", [c.normal()], "json")
+                try:
+                    tail.wait(timeout=0.1)
+                except subprocess.TimeoutExpired:
+                    pass
+            out, err = tail.communicate(timeout=WAIT_TIMEOUT)
+        finally:
+            if tail.poll() is None:
+                tail.kill()
+                tail.wait()
+        self.assertEqual(tail.returncode, 0, err)
+        lines = out.decode().splitlines()
+        self.assertEqual(len(lines), 3, out)
+        for text in lines:
+            obj = json.loads(text)
+            self.assertEqual(obj.pop("stream"), "pump-c")
+            codec.parse_published(json.dumps(obj))
+            self.assertIn(obj["t"], c.sent_times)
+        self.stop_daemon(daemon, peer)
+
+
+class ClientBadInput(unittest.TestCase):
+    """Bad input: one line on stderr, exit code 1 (commands.h)."""
+
+    def setUp(self):
+        if not NUWATCH or not os.access(NUWATCH, os.X_OK):
+            self.fail("nuwatch binary not found or not executable: %r" % NUWATCH)
+        self.workdir = tempfile.mkdtemp(prefix="nuwatch-e2e-")
+
+    def tearDown(self):
+        shutil.rmtree(self.workdir, ignore_errors=True)
+
+    def run_nuwatch(self, *args):
+        done = subprocess.run([NUWATCH] + list(args), capture_output=True, timeout=WAIT_TIMEOUT,
+                              stdin=subprocess.DEVNULL)
+        return done.returncode, done.stderr.decode()
+
+    def assert_one_line_error(self, expected_text, *args):
+        code, err = self.run_nuwatch(*args)
+        self.assertEqual(code, 1, err)
+        self.assertEqual(len(err.splitlines()), 1, err)
+        self.assertIn(expected_text, err)
+
+    def test_send_and_tail_refuse_bad_input_with_one_line(self):
+        missing = os.path.join(self.workdir, "missing.csv")
+        endpoint = "tcp://127.0.0.1:9"
+        self.assert_one_line_error(missing, "send", "--connect", endpoint, "--input", missing)
+        bad = os.path.join(self.workdir, "bad.csv")
+        with open(bad, "w") as f:
+            f.write("time,stream,a\n1767225600,pump-01,1.5\n1767225610,pump-01,abc\n")
+        self.assert_one_line_error(bad + ":3:", "send", "--connect", endpoint, "--input", bad)
+        spaced = os.path.join(self.workdir, "spaced.csv")
+        with open(spaced, "w") as f:
+            f.write("time,stream,a\n1767225600,pump 01,1.5\n")
+        self.assert_one_line_error("pump 01", "send", "--connect", endpoint, "--input", spaced)
+        self.assert_one_line_error("--format", "send", "--connect", endpoint, "--input", bad,
+                                   "--format", "xml")
+        self.assert_one_line_error("--rate", "send", "--connect", endpoint, "--input", bad,
+                                   "--rate", "fast")
+        self.assert_one_line_error("--batch", "send", "--connect", endpoint, "--input", bad,
+                                   "--batch", "0")
+        self.assert_one_line_error("--timeout", "tail", "--connect", endpoint, "--timeout", "soon")
+        self.assert_one_line_error("--count", "tail", "--connect", endpoint, "--count", "-1")
+
+
+def main():
+    global NUWATCHD, NUWATCH, PROMTOOL
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--nuwatchd", required=True)
+    parser.add_argument("--nuwatch", required=True)
+    parser.add_argument("--promtool", default=PROMTOOL)
+    args, rest = parser.parse_known_args()
+    NUWATCHD, NUWATCH, PROMTOOL = args.nuwatchd, args.nuwatch, args.promtool
+    unittest.main(argv=[sys.argv[0]] + rest, verbosity=2)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,1062 @@
+// nuwatchd end to end: the Daemon class in-process, and the nuwatchd program as a child process,
+// on real sockets (ZeroMQ on tcp://127.0.0.1:*, the Prometheus endpoint on port 0, read back).
+// What is expected comes from daemon/PROTOCOL.md (the § numbers), config/REFERENCE.md and the
+// metric names of daemon/src/metrics.h. Nothing waits for time to pass: a test waits for the
+// messages it expects (bounded by a deadline), and where it must wait for a condition it polls it.
+#include "daemon.h"
+
+#include <fcntl.h>
+#include <gmock/gmock.h>
+#include <gtest/gtest.h>
+#include <netinet/in.h>
+#include <pthread.h>
+#include <signal.h>
+#include <spawn.h>
+#include <sys/socket.h>
+#include <sys/wait.h>
+#include <unistd.h>
+
+#include <atomic>
+#include <chrono>
+#include <cmath>
+#include <cstdlib>
+#include <cstring>
+#include <filesystem>
+#include <fstream>
+#include <functional>
+#include <new>
+#include <nlohmann/json.hpp>
+#include <optional>
+#include <random>
+#include <sstream>
+#include <string>
+#include <thread>
+#include <vector>
+#include <zmq.hpp>
+
+#include "config.h"
+#include "replay.h"
+#include "state_store.h"
+#include "wire_protocol.h"
+
+extern char** environ;
+
+// Counting the allocations of the daemon's socket thread (named "nuwatchd-socket" by daemon.cc):
+// while g_count_socket_thread_allocations is set, every operator new on that thread is counted.
+namespace {
+std::atomic<bool> g_count_socket_thread_allocations{false};
+std::atomic<long> g_socket_thread_allocations{0};
+
+void CountIfSocketThread() {
+  if (!g_count_socket_thread_allocations.load(std::memory_order_relaxed)) return;
+  char name[32] = {};
+  pthread_getname_np(pthread_self(), name, sizeof name);
+  if (std::strcmp(name, "nuwatchd-socket") == 0) g_socket_thread_allocations.fetch_add(1);
+}
+}  // namespace
+
+// These replace the global allocation functions with malloc and free; GCC sees free() in an
+// operator delete and warns of a mismatch that replacing them in pairs makes correct.
+#pragma GCC diagnostic push
+#pragma GCC diagnostic ignored "-Wmismatched-new-delete"
+void* operator new(std::size_t size) {
+  CountIfSocketThread();
+  if (void* p = std::malloc(size == 0 ? 1 : size)) return p;
+  throw std::bad_alloc();
+}
+void* operator new(std::size_t size, std::align_val_t align) {
+  CountIfSocketThread();
+  const std::size_t a = static_cast<std::size_t>(align);
+  if (void* p = std::aligned_alloc(a, (size + a - 1) / a * a)) return p;
+  throw std::bad_alloc();
+}
+void operator delete(void* p) noexcept { std::free(p); }
+void operator delete(void* p, std::size_t) noexcept { std::free(p); }
+void operator delete(void* p, std::align_val_t) noexcept { std::free(p); }
+void operator delete(void* p, std::size_t, std::align_val_t) noexcept { std::free(p); }
+#pragma GCC diagnostic pop
+
+namespace nuwatch {
+namespace {
+
+using ::testing::HasSubstr;
+using json = nlohmann::json;
+namespace fs = std::filesystem;
+using Clock = std::chrono::steady_clock;
+
+constexpr auto kDeadline = std::chrono::seconds(20);  // generous: the machine is shared
+
+// The daemon part of every test's configuration: ephemeral ports everywhere.
+const char* const kDaemonSections = R"(
+[daemon]
+log_level = "warn"
+[ingest]
+endpoints = ["tcp://127.0.0.1:*"]
+[publish]
+endpoint = "tcp://127.0.0.1:*"
+[control]
+endpoint = "tcp://127.0.0.1:*"
+[metrics]
+listen = "127.0.0.1:0"
+)";
+
+// A small detector so that a warm-up takes 20 vectors; refits only when a test asks for them.
+const char* const kDetectorSection = R"(
+[detector]
+nu = 0.1
+window = 40
+warmup = 20
+refit_every = 0
+open_after = 2
+open_window = 3
+close_after = 2
+)";
+
+// The clients' probe stream (see Client) never leaves its warm-up, so it never refits.
+const char* const kProbeStream = R"(
+[[stream]]
+match = "probe"
+window = 1000
+warmup = 1000
+)";
+
+// `detector_keys` go into [detector]; `tables` ([limits], [[stream]], ...) come last.
+std::string ConfigText(const std::string& detector_keys = "", const std::string& tables = "") {
+  return std::string(kDaemonSections) + kDetectorSection + detector_keys + kProbeStream + tables;
+}
+
+class TempDir {
+ public:
+  TempDir() {
+    path_ = fs::temp_directory_path() /
+            ("nuwatch_daemon_test_" + std::to_string(::getpid()) + "_" + std::to_string(next_++));
+    fs::remove_all(path_);
+    fs::create_directories(path_);
+  }
+  ~TempDir() { fs::remove_all(path_); }
+  std::string path() const { return path_.string(); }
+  std::string operator/(const std::string& name) const { return (path_ / name).string(); }
+
+ private:
+  static inline int next_ = 0;
+  fs::path path_;
+};
+
+DaemonOptions Options(const std::string& detector_keys = "", const std::string& tables = "") {
+  DaemonOptions options;
+  options.config = ParseConfig(ConfigText(detector_keys, tables), "test.toml");
+  options.config.source_path = "";  // as if started without --config
+  return options;
+}
+
+std::unique_ptr<Daemon> Start(DaemonOptions options) {
+  auto daemon = std::make_unique<Daemon>(std::move(options));
+  daemon->Start();
+  return daemon;
+}
+
+// Normal vectors around (5, 100), standard deviations 1 and 3.
+std::vector<std::vector<double>> NormalVectors(int n, uint64_t seed) {
+  std::mt19937_64 generator(seed);
+  std::normal_distribution<double> noise(0.0, 1.0);
+  std::vector<std::vector<double>> out;
+  for (int i = 0; i < n; ++i) out.push_back({5 + noise(generator), 100 + 3 * noise(generator)});
+  return out;
+}
+
+std::string JsonPayload(double t, const std::vector<double>& x) {
+  std::string out;
+  EncodeJsonPayload(std::span<const double>(&t, 1), x.data(), static_cast<int>(x.size()), &out);
+  return out;
+}
+
+struct Message {
+  std::string key;
+  json body;
+};
+
+// A sender, a subscriber and a control client connected to one daemon.
+class Client {
+ public:
+  explicit Client(const DaemonEndpoints& endpoints)
+      : push_(context_, zmq::socket_type::push),
+        sub_(context_, zmq::socket_type::sub),
+        req_(context_, zmq::socket_type::req) {
+    for (auto* socket : {&push_, &sub_, &req_}) socket->set(zmq::sockopt::linger, 0);
+    push_.connect(endpoints.ingest.at(0));
+    sub_.set(zmq::sockopt::subscribe, "");
+    sub_.connect(endpoints.publish);
+    req_.set(zmq::sockopt::rcvtimeo, 10000);
+    req_.connect(endpoints.control);
+    WaitUntilSubscribed();
+  }
+
+  void SendFrames(const std::vector<std::string>& frames) {
+    for (std::size_t i = 0; i < frames.size(); ++i) {
+      push_.send(zmq::buffer(frames[i]),
+                 i + 1 < frames.size() ? zmq::send_flags::sndmore : zmq::send_flags::none);
+    }
+  }
+  void Send(const std::string& key, double t, const std::vector<double>& x) {
+    SendFrames({key, JsonPayload(t, x)});
+  }
+
+  // The next message on the result socket, within the deadline.
+  std::optional<Message> Receive() {
+    std::vector<zmq::pollitem_t> items = {{sub_.handle(), 0, ZMQ_POLLIN, 0}};
+    const auto until = Clock::now() + kDeadline;
+    while (Clock::now() < until) {
+      if (zmq::poll(items, std::chrono::milliseconds(100)) == 0) continue;
+      zmq::message_t key, body;
+      (void)sub_.recv(key);
+      EXPECT_TRUE(key.more()) << "a result message must have two frames (§9)";
+      (void)sub_.recv(body);
+      EXPECT_FALSE(body.more()) << "a result message must have two frames (§9)";
+      return Message{key.to_string(), json::parse(body.to_string())};
+    }
+    return std::nullopt;
+  }
+  // The next message for `key`, skipping others (the probe stream's).
+  Message ReceiveFor(const std::string& key) {
+    while (true) {
+      std::optional<Message> m = Receive();
+      if (!m) {
+        ADD_FAILURE() << "no message for " << key << " before the deadline";
+        return {};
+      }
+      if (m->key == key) return *m;
+    }
+  }
+
+  // The next result (not an incident event) for `key`.
+  json ReceiveResultFor(const std::string& key) {
+    while (true) {
+      const Message m = ReceiveFor(key);
+      if (m.key.empty() || !m.body.contains("event")) return m.body;
+    }
+  }
+
+  json Control(const std::string& request) {
+    req_.send(zmq::buffer(request), zmq::send_flags::none);
+    zmq::message_t reply;
+    if (!req_.recv(reply)) {
+      ADD_FAILURE() << "no control reply to " << request;
+      return json();
+    }
+    return json::parse(reply.to_string());
+  }
+  json Status() { return Control(R"({"command":"status"})"); }
+  // The status entry of `key`; null when the daemon does not track it.
+  json StreamStatus(const std::string& key) {
+    const json status = Status();
+    for (const json& s : status["streams"])
+      if (s["stream"] == key) return s;
+    return json();
+  }
+
+  // Sends `vectors` one by one, each followed by its result, and then further vectors until a
+  // result says "scoring" (the warm-up refit runs in the background). Returns the results.
+  std::vector<json> WarmUp(const std::string& key, const std::vector<std::vector<double>>& vectors,
+                           double t0) {
+    std::vector<json> results;
+    double t = t0;
+    for (const auto& x : vectors) {
+      Send(key, t, x);
+      t += 10;
+      results.push_back(ReceiveFor(key).body);
+    }
+    const auto until = Clock::now() + kDeadline;
+    while (results.back()["state"] != "scoring" && Clock::now() < until) {
+      Send(key, t, {5, 100});
+      t += 10;
+      results.push_back(ReceiveFor(key).body);
+    }
+    EXPECT_EQ(results.back()["state"], "scoring") << key << " never left its warm-up";
+    last_time_ = t;
+    return results;
+  }
+  double last_time() const { return last_time_; }
+
+ private:
+  // PUB/SUB subscriptions take effect asynchronously: send vectors of a probe stream until its
+  // results arrive, so that no later result is lost (publish.include_learning is on).
+  void WaitUntilSubscribed() {
+    std::vector<zmq::pollitem_t> items = {{sub_.handle(), 0, ZMQ_POLLIN, 0}};
+    const auto until = Clock::now() + kDeadline;
+    double t = 0;
+    while (Clock::now() < until) {
+      Send("probe", t++, {0.0});
+      if (zmq::poll(items, std::chrono::milliseconds(20)) > 0) break;
+    }
+    // Drain the probe's results: one per probe sent, all already queued or on their way.
+    while (zmq::poll(items, std::chrono::milliseconds(50)) > 0) {
+      zmq::message_t frame;
+      (void)sub_.recv(frame);
+      while (frame.more()) (void)sub_.recv(frame);
+    }
+  }
+
+  zmq::context_t context_;
+  zmq::socket_t push_;
+  zmq::socket_t sub_;
+  zmq::socket_t req_;
+  double last_time_ = 0;
+};
+
+// A minimal HTTP/1.0 GET: the body, or "" on failure.
+std::string HttpGet(const std::string& host_port, const std::string& path) {
+  const auto colon = host_port.rfind(':');
+  const int port = std::stoi(host_port.substr(colon + 1));
+  const int fd = ::socket(AF_INET, SOCK_STREAM, 0);
+  if (fd < 0) return "";
+  sockaddr_in address{};
+  address.sin_family = AF_INET;
+  address.sin_port = htons(static_cast<uint16_t>(port));
+  address.sin_addr.s_addr = htonl(INADDR_LOOPBACK);
+  if (::connect(fd, reinterpret_cast<sockaddr*>(&address), sizeof address) != 0) {
+    ::close(fd);
+    return "";
+  }
+  const std::string request = "GET " + path + " HTTP/1.0\r\nHost: " + host_port + "\r\n\r\n";
+  if (::send(fd, request.data(), request.size(), 0) != static_cast<ssize_t>(request.size())) {
+    ::close(fd);
+    return "";
+  }
+  std::string response;
+  char buffer[4096];
+  for (ssize_t n; (n = ::recv(fd, buffer, sizeof buffer, 0)) > 0;) response.append(buffer, n);
+  ::close(fd);
+  const auto body = response.find("\r\n\r\n");
+  return body == std::string::npos ? "" : response.substr(body + 4);
+}
+
+// The value of the series `series` (name and labels exactly as exposed, e.g.
+// nuwatch_rejected_messages_total{reason="bad_json"}) in a text exposition.
+std::optional<double> MetricValue(const std::string& text, const std::string& series) {
+  std::istringstream lines(text);
+  for (std::string line; std::getline(lines, line);) {
+    if (line.rfind(series + " ", 0) == 0) return std::stod(line.substr(series.size() + 1));
+  }
+  return std::nullopt;
+}
+
+// ---------------------------------------------------------------------------------------------
+// Configuration
+
+TEST(CheckConfigForDaemon, RefusesDetectorOptionsTheDetectorRefuses) {
+  // The file format admits warmup = 1 (config/REFERENCE.md); a Detector needs at least 2
+  // vectors for its first fit (detector.cc), so the daemon refuses it at start-up and on reload,
+  // naming the section, rather than failing when the first vector arrives.
+  try {
+    CheckConfigForDaemon(ParseConfig("[detector]\nwarmup = 1\n", "d.toml"));
+    ADD_FAILURE() << "warmup = 1 accepted";
+  } catch (const ConfigError& e) {
+    EXPECT_THAT(e.what(), HasSubstr("d.toml: [detector]"));
+    EXPECT_THAT(e.what(), HasSubstr("warmup = 1"));
+  }
+  try {
+    CheckConfigForDaemon(
+        ParseConfig("[detector]\nwarmup = 5\n[[stream]]\nmatch = \"a*\"\nwarmup = 1\n", "d.toml"));
+    ADD_FAILURE() << "a [[stream]] with warmup = 1 accepted";
+  } catch (const ConfigError& e) {
+    EXPECT_THAT(e.what(), HasSubstr("d.toml:3"));  // the [[stream]] table's line
+    EXPECT_THAT(e.what(), HasSubstr("match = \"a*\""));
+  }
+  EXPECT_NO_THROW(CheckConfigForDaemon(ParseConfig(ConfigText(), "t.toml")));
+}
+
+TEST(ApplyOverrides, ReplacesOnlyWhatWasGiven) {
+  DaemonSettings settings = DefaultConfig().daemon;
+  CommandLineOverrides overrides;
+  overrides.ingest_endpoints = std::vector<std::string>{"tcp://127.0.0.1:9000", "ipc:///tmp/x"};
+  overrides.state_dir = "/var/lib/nuwatch";
+  ApplyOverrides(overrides, &settings);
+  EXPECT_EQ(settings.ingest_endpoints,
+            (std::vector<std::string>{"tcp://127.0.0.1:9000", "ipc:///tmp/x"}));
+  EXPECT_EQ(settings.state_dir, "/var/lib/nuwatch");
+  EXPECT_EQ(settings.publish_endpoint, DefaultConfig().daemon.publish_endpoint);
+  EXPECT_EQ(settings.log_level, DefaultConfig().daemon.log_level);
+}
+
+TEST(Daemon, NamesTheEndpointItCannotBind) {
+  auto first = Start(Options());
+  auto options = Options();
+  options.config.daemon.publish_endpoint = first->endpoints().publish;  // taken
+  try {
+    Daemon second(std::move(options));
+    ADD_FAILURE() << "bound an endpoint that is in use";
+  } catch (const DaemonError& e) {
+    EXPECT_THAT(e.what(), HasSubstr("publish.endpoint: cannot bind " + first->endpoints().publish));
+  }
+}
+
+// ---------------------------------------------------------------------------------------------
+// Vectors in, results out
+
+TEST(Daemon, LearnsThenScoresAndPublishesOneResultPerVector) {
+  auto daemon = Start(Options());
+  Client client(daemon->endpoints());
+  const std::vector<json> results = client.WarmUp("pump-01", NormalVectors(20, 1), 1000);
+  // §9.1: while learning, decision null, anomaly false, incident null, model_version 0.
+  for (int i = 0; i < 20; ++i) {
+    const json& r = results[i];
+    EXPECT_EQ(r["t"], 1000 + 10 * i);
+    EXPECT_EQ(r["state"], "learning");
+    EXPECT_TRUE(r["decision"].is_null());
+    EXPECT_EQ(r["anomaly"], false);
+    EXPECT_TRUE(r["incident"].is_null());
+    EXPECT_EQ(r["model_version"], 0);
+    EXPECT_EQ(r["support_vectors"], 0);
+    EXPECT_FALSE(r.contains("top_features"));
+    EXPECT_FALSE(r.contains("event"));
+  }
+  const json& scored = results.back();
+  EXPECT_GE(scored["model_version"].get<int>(), 1);
+  EXPECT_GE(scored["support_vectors"].get<int>(), 1);
+  EXPECT_TRUE(scored["decision"].is_number());
+
+  // The centre of the training cloud lies inside an rbf envelope fitted on it (the decision
+  // function is largest near the mode of unimodal data; common practice).
+  const double t = client.last_time();
+  client.Send("pump-01", t, {5, 100});
+  const json centre = client.ReceiveFor("pump-01").body;
+  EXPECT_EQ(centre["state"], "scoring");
+  EXPECT_GT(centre["decision"].get<double>(), 0);
+  EXPECT_EQ(centre["anomaly"], false);
+
+  // §2: the vectors of a batch are processed in order, each with its own result; here in the
+  // binary form (§6) with f32 values.
+  const std::vector<double> times = {t + 10, t + 20, t + 30};
+  const std::vector<double> values = {5, 100, 5.5, 101, 4.5, 99};
+  std::string binary;
+  EncodeBinaryPayload(times, values.data(), 2, Dtype::kFloat32, &binary);
+  client.SendFrames({"pump-01", binary});
+  for (double expected : times) {
+    const json r = client.ReceiveFor("pump-01").body;
+    EXPECT_EQ(r["t"], expected);
+    EXPECT_EQ(r["state"], "scoring");
+  }
+
+  const json status = client.StreamStatus("pump-01");
+  EXPECT_EQ(status["state"], "scoring");
+  EXPECT_EQ(status["dims"], 2);
+  EXPECT_EQ(status["vectors"].get<int>(), static_cast<int>(results.size()) + 4);
+  EXPECT_EQ(status["model_version"], scored["model_version"]);
+}
+
+TEST(Daemon, SteadyStateScoringAllocatesNothingOnTheSocketThread) {
+  // design.md: "Per-vector work allocates nothing in the steady state". Binary payloads (the
+  // JSON form may grow its scratch), vectors inside the envelope (explaining an anomaly
+  // allocates), no refits (refit_every = 0), no state directory: receive, decode, score, update
+  // the metrics, encode and publish must then reuse their buffers. ZeroMQ's own message buffers
+  // come from malloc inside libzmq and are not counted.
+  auto daemon = Start(Options());
+  Client client(daemon->endpoints());
+  client.WarmUp("pump-01", NormalVectors(20, 13), 1000);
+  std::string binary;
+  double t = client.last_time();
+  auto send_centre = [&] {
+    const double time = t += 10;
+    const double centre[2] = {5, 100};
+    EncodeBinaryPayload(std::span<const double>(&time, 1), centre, 2, Dtype::kFloat64, &binary);
+    client.SendFrames({"pump-01", binary});
+  };
+  for (int i = 0; i < 20; ++i) send_centre();  // buffers grow to their steady size here
+  for (int i = 0; i < 20; ++i) EXPECT_EQ(client.ReceiveResultFor("pump-01")["anomaly"], false);
+  g_socket_thread_allocations = 0;
+  g_count_socket_thread_allocations = true;
+  for (int i = 0; i < 200; ++i) send_centre();
+  for (int i = 0; i < 200; ++i) ASSERT_EQ(client.ReceiveResultFor("pump-01")["state"], "scoring");
+  g_count_socket_thread_allocations = false;
+  EXPECT_EQ(g_socket_thread_allocations.load(), 0);
+}
+
+TEST(Daemon, WithoutIncludeLearningOnlyScoredVectorsArePublished) {
+  auto options = Options();
+  options.config.daemon.publish_learning = false;
+  auto daemon = Start(std::move(options));
+  // Client's probe relies on learning results, so this test uses sockets of its own. Learning
+  // vectors produce no result; keep sending until one arrives: it must be a scoring one.
+  zmq::context_t context;
+  zmq::socket_t push(context, zmq::socket_type::push), sub(context, zmq::socket_type::sub);
+  for (auto* socket : {&push, &sub}) socket->set(zmq::sockopt::linger, 0);
+  push.connect(daemon->endpoints().ingest[0]);
+  sub.set(zmq::sockopt::subscribe, "");
+  sub.connect(daemon->endpoints().publish);
+  auto send = [&](double t, const std::vector<double>& x) {
+    push.send(zmq::str_buffer("s"), zmq::send_flags::sndmore);
+    push.send(zmq::buffer(JsonPayload(t, x)), zmq::send_flags::none);
+  };
+  double t = 0;
+  for (const auto& x : NormalVectors(20, 2)) send(t += 10, x);
+  std::vector<zmq::pollitem_t> items = {{sub.handle(), 0, ZMQ_POLLIN, 0}};
+  const auto until = Clock::now() + kDeadline;
+  bool received = false;
+  while (!received && Clock::now() < until) {
+    send(t += 10, {5, 100});
+    received = zmq::poll(items, std::chrono::milliseconds(20)) > 0;
+  }
+  ASSERT_TRUE(received);
+  zmq::message_t key, body;
+  (void)sub.recv(key);
+  (void)sub.recv(body);
+  EXPECT_EQ(json::parse(body.to_string())["state"], "scoring");
+}
+
+TEST(Daemon, AnAnomalyNamesItsTopFeaturesAndOpensAndClosesAnIncident) {
+  auto daemon = Start(
+      Options("", "[[stream]]\nmatch = \"pump-01\"\nfeature_names = [\"pressure\", \"flow\"]\n"));
+  Client client(daemon->endpoints());
+  client.WarmUp("pump-01", NormalVectors(20, 3), 1000);
+  const double t1 = client.last_time() + 10, t2 = t1 + 10;
+  // Far out in pressure only: 35 standard deviations of pressure away, flow at its mean. For rbf
+  // the gradient is sum_i c_i k(s_i, z) 2 gamma (s_i - z) / scale; with z that far along the
+  // pressure axis every (s_i - z) points almost exactly along it, so pressure takes nearly the
+  // whole attribution (model.h: shares of |gradient| components).
+  client.Send("pump-01", t1, {40, 100});
+  const json first = client.ReceiveFor("pump-01").body;
+  EXPECT_EQ(first["anomaly"], true);
+  EXPECT_LT(first["decision"].get<double>(), 0);
+  EXPECT_TRUE(first["incident"].is_null());  // open_after = 2: one flag does not open it
+  ASSERT_TRUE(first.contains("top_features"));
+  ASSERT_GE(first["top_features"].size(), 1u);
+  EXPECT_EQ(first["top_features"][0]["feature"], "pressure");
+  EXPECT_GT(first["top_features"][0]["share"].get<double>(), 0.9);
+
+  client.Send("pump-01", t2, {41, 100});
+  const json second = client.ReceiveFor("pump-01").body;
+  EXPECT_EQ(second["anomaly"], true);
+  ASSERT_TRUE(second["incident"].is_number_integer());
+  const int64_t id = second["incident"].get<int64_t>();
+  // §9.2: the event follows the result of the vector that opened the incident; start is the
+  // first flagged vector of the opening window (incident_tracker.h).
+  const json opened = client.ReceiveFor("pump-01").body;
+  EXPECT_EQ(opened["event"], "incident_open");
+  EXPECT_EQ(opened["incident"], id);
+  EXPECT_EQ(opened["t"], t2);
+  EXPECT_EQ(opened["start"], t1);
+  EXPECT_FALSE(opened.contains("end"));
+  EXPECT_EQ(opened["peak_decision"],
+            std::min(first["decision"].get<double>(), second["decision"].get<double>()));
+  EXPECT_THAT(daemon->MetricsText(), HasSubstr("nuwatch_incidents_open{stream=\"pump-01\"} 1"));
+
+  // close_after = 2 clean vectors close it; end is the last flagged vector.
+  client.Send("pump-01", t2 + 10, {5, 100});
+  const json clean = client.ReceiveFor("pump-01").body;
+  EXPECT_EQ(clean["anomaly"], false);
+  EXPECT_EQ(clean["incident"], id);  // still open after one clean vector
+  client.Send("pump-01", t2 + 20, {5, 100});
+  const json last = client.ReceiveFor("pump-01").body;
+  EXPECT_TRUE(last["incident"].is_null());
+  const json closed = client.ReceiveFor("pump-01").body;
+  EXPECT_EQ(closed["event"], "incident_close");
+  EXPECT_EQ(closed["incident"], id);
+  EXPECT_EQ(closed["t"], t2 + 20);
+  EXPECT_EQ(closed["start"], t1);
+  EXPECT_EQ(closed["end"], t2);
+  EXPECT_THAT(daemon->MetricsText(), HasSubstr("nuwatch_incidents_open{stream=\"pump-01\"} 0"));
+}
+
+// ---------------------------------------------------------------------------------------------
+// Bad input
+
+TEST(Daemon, CountsEveryRejectionByReasonAndKeepsServingOtherStreams) {
+  // Limits low enough to reach: 3 streams (the probe, "good", "third"), 1 KiB payloads.
+  auto daemon = Start(Options("", "[limits]\nmax_streams = 3\nmax_message_bytes = 1024\n"));
+  Client client(daemon->endpoints());
+  int good_sent = 0;
+  auto send_good = [&] { client.Send("good", 100.0 + good_sent++, {1, 2}); };
+  send_good();  // fixes the stream's dims at 2
+
+  client.SendFrames({"good"});  // wrong_frame_count (1 frame)
+  send_good();
+  client.SendFrames({"good", JsonPayload(1, {1, 2}), "x"});  // wrong_frame_count (3 frames)
+  client.SendFrames({"bad key", JsonPayload(1, {1, 2})});    // bad_stream_key (a space)
+  send_good();
+  client.SendFrames({"good", R"({"t": 1, "x": [1, 2)"});  // bad_json
+  // non_finite: the §6.4 layout by hand, since the encoder refuses NaN: header, t, then NaN, 1.
+  std::string nan_payload = "NUWB";
+  nan_payload += std::string("\x01\x02\x02\x00\x01\x00\x00\x00\x00\x00\x00\x00", 12);
+  const double values[3] = {1.0, std::nan(""), 1.0};
+  nan_payload.append(reinterpret_cast<const char*>(values), sizeof values);
+  ASSERT_EQ(nan_payload.size(), 40u);
+  client.SendFrames({"good", nan_payload});
+  send_good();
+  client.Send("good", 1, {1, 2, 3});                                // dims_mismatch
+  client.SendFrames({"good", "{" + std::string(1100, ' ') + "}"});  // message_too_large
+  client.Send("third", 1, {7});                                     // a third stream: accepted
+  client.Send("fourth", 1, {7});                                    // stream_limit
+  send_good();
+
+  // The last good vector's result arrives after every message before it was handled (one PUSH
+  // connection delivers in order, §2).
+  for (int i = 0; i < good_sent; ++i) {
+    const Message m = client.ReceiveFor("good");
+    EXPECT_EQ(m.body["t"], 100.0 + i) << "a good vector's result is missing";
+  }
+
+  const std::string metrics = HttpGet(daemon->endpoints().metrics, "/metrics");
+  ASSERT_FALSE(metrics.empty());
+  auto rejected = [&](const std::string& reason) {
+    return MetricValue(metrics, "nuwatch_rejected_messages_total{reason=\"" + reason + "\"}");
+  };
+  EXPECT_EQ(rejected("wrong_frame_count"), 2);
+  EXPECT_EQ(rejected("bad_stream_key"), 1);
+  EXPECT_EQ(rejected("bad_json"), 1);
+  EXPECT_EQ(rejected("non_finite"), 1);
+  EXPECT_EQ(rejected("dims_mismatch"), 1);
+  EXPECT_EQ(rejected("message_too_large"), 1);
+  EXPECT_EQ(rejected("stream_limit"), 1);
+  // Every reason's series exists from the start (§8 lists them all), at 0 when unused.
+  for (RejectReason reason : AllRejectReasons()) {
+    EXPECT_TRUE(rejected(std::string(RejectReasonLabel(reason))).has_value())
+        << RejectReasonLabel(reason);
+  }
+  EXPECT_EQ(rejected("bad_header"), 0);
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_vectors_total{stream=\"good\"}"), good_sent);
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_streams"), 3);
+  EXPECT_EQ(client.Status()["streams"].size(), 3u);
+}
+
+TEST(Daemon, FixesDimsFromConfiguredFeatureNames) {
+  auto daemon =
+      Start(Options("", "[[stream]]\nmatch = \"named\"\nfeature_names = [\"a\", \"b\", \"c\"]\n"));
+  Client client(daemon->endpoints());
+  client.Send("named", 1, {1, 2});  // 2 values, the names say 3: dims_mismatch, no stream
+  EXPECT_TRUE(client.StreamStatus("named").is_null());
+  client.Send("named", 2, {1, 2, 3});
+  EXPECT_EQ(client.ReceiveFor("named").body["t"], 2);
+  const std::string metrics = HttpGet(daemon->endpoints().metrics, "/metrics");
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_rejected_messages_total{reason=\"dims_mismatch\"}"), 1);
+  EXPECT_EQ(client.StreamStatus("named")["dims"], 3);
+}
+
+// ---------------------------------------------------------------------------------------------
+// Metrics
+
+TEST(Daemon, ExposesThePrometheusMetricsUnderTheirNames) {
+  auto daemon = Start(Options());
+  Client client(daemon->endpoints());
+  const std::vector<json> results = client.WarmUp("pump-01", NormalVectors(20, 4), 1000);
+  const std::string metrics = HttpGet(daemon->endpoints().metrics, "/metrics");
+  const std::string s = "{stream=\"pump-01\"}";
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_vectors_total" + s), results.size());
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_refits_total{result=\"ok\",stream=\"pump-01\"}"), 1);
+  EXPECT_TRUE(
+      MetricValue(metrics, "nuwatch_refits_total{result=\"coalesced\",stream=\"pump-01\"}"));
+  EXPECT_TRUE(MetricValue(metrics, "nuwatch_refits_total{result=\"failed\",stream=\"pump-01\"}"));
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_support_vectors" + s),
+            results.back()["support_vectors"].get<double>());
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_support_vector_budget" + s), 256);  // the default
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_window_vectors" + s),
+            client.StreamStatus("pump-01")["window"].get<double>());
+  EXPECT_TRUE(MetricValue(metrics, "nuwatch_anomalies_total" + s));
+  EXPECT_TRUE(MetricValue(metrics, "nuwatch_anomaly_ratio" + s));
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_incidents_open" + s), 0);
+  EXPECT_TRUE(MetricValue(metrics, "nuwatch_model_age_seconds" + s));
+  EXPECT_GT(MetricValue(metrics, "nuwatch_stream_memory_bytes" + s).value_or(0), 0);
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_refit_duration_seconds_count"), 1);
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_score_duration_seconds_count").value_or(0),
+            MetricValue(metrics, "nuwatch_vectors_total" + s).value_or(-1) +
+                MetricValue(metrics, "nuwatch_vectors_total{stream=\"probe\"}").value_or(-1));
+  EXPECT_TRUE(MetricValue(metrics, "nuwatch_refit_duration_seconds_bucket{le=\"10\"}"));
+  EXPECT_TRUE(MetricValue(metrics, "nuwatch_score_duration_seconds_bucket{le=\"1e-06\"}"));
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_build_info{version=\"" NUWATCH_VERSION "\"}"), 1);
+  EXPECT_THAT(metrics, HasSubstr("# HELP nuwatch_anomaly_ratio "));
+  EXPECT_THAT(metrics, HasSubstr("# TYPE nuwatch_refit_duration_seconds histogram"));
+}
+
+TEST(Daemon, TheAnomalyRatioIsTheFlaggedFractionOfTheLastScoredVectors) {
+  auto options = Options();
+  options.config.daemon.anomaly_ratio_window = 4;
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  client.WarmUp("pump-01", NormalVectors(20, 5), 1000);  // ends with one scored (centre) vector
+  double t = client.last_time();
+  // Then 3 far vectors: the last 4 scored are centre, far, far, far -> 3/4 flagged (the centre
+  // vector is inside, see the first test).
+  for (int i = 0; i < 3; ++i) {
+    client.Send("pump-01", t += 10, {60.0 + i, 100});
+    EXPECT_EQ(client.ReceiveResultFor("pump-01")["anomaly"], true);
+  }
+  const std::string metrics = HttpGet(daemon->endpoints().metrics, "/metrics");
+  EXPECT_EQ(MetricValue(metrics, "nuwatch_anomaly_ratio{stream=\"pump-01\"}"), 0.75);
+}
+
+// ---------------------------------------------------------------------------------------------
+// Control socket (§11)
+
+TEST(Daemon, AnswersControlRequestsAndRejectsMalformedOnes) {
+  TempDir dir;
+  const std::string config_path = dir / "nuwatchd.toml";
+  std::ofstream(config_path) << ConfigText();
+  DaemonOptions options;
+  options.config = LoadConfig(config_path);
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  client.WarmUp("pump-01", NormalVectors(20, 6), 1000);
+
+  const json status = client.Status();
+  EXPECT_EQ(status["ok"], true);
+  EXPECT_EQ(status["version"], NUWATCH_VERSION);
+  const json pump = client.StreamStatus("pump-01");
+  for (const char* member :
+       {"state", "dims", "vectors", "anomalies", "support_vectors", "window", "model_version",
+        "refits", "incident", "memory_bytes", "snapshot_vectors"}) {
+    EXPECT_TRUE(pump.contains(member)) << member;
+  }
+  EXPECT_EQ(pump["state"], "scoring");
+  EXPECT_TRUE(pump["incident"].is_null());
+
+  for (const char* bad :
+       {"not json", "[1, 2]", R"({"cmd":"status"})", R"({"command": 7})", R"({"command":"launch"})",
+        R"({"command":"relearn"})", R"({"command":"relearn","stream":"nobody"})"}) {
+    const json reply = client.Control(bad);
+    EXPECT_EQ(reply["ok"], false) << bad;
+    EXPECT_TRUE(reply["error"].is_string()) << bad;
+  }
+  EXPECT_EQ(client.Control(R"({"command":"snapshot"})")["ok"], false);  // no state directory
+
+  // reload: a valid change is applied; an invalid file is refused and the old settings stay.
+  std::ofstream(config_path) << ConfigText("support_vector_budget = 64\n");
+  const json reloaded = client.Control(R"({"command":"reload"})");
+  EXPECT_EQ(reloaded["ok"], true);
+  EXPECT_EQ(reloaded["config"], config_path);
+  EXPECT_EQ(reloaded["streams_updated"], 2);  // pump-01 and the probe
+  EXPECT_THAT(daemon->MetricsText(),
+              HasSubstr("nuwatch_support_vector_budget{stream=\"pump-01\"} 64"));
+  std::ofstream(config_path) << ConfigText("support_vector_budgt = 32\n");
+  const json refused = client.Control(R"({"command":"reload"})");
+  EXPECT_EQ(refused["ok"], false);
+  EXPECT_THAT(refused["error"].get<std::string>(), HasSubstr("support_vector_budgt"));
+  EXPECT_THAT(daemon->MetricsText(),
+              HasSubstr("nuwatch_support_vector_budget{stream=\"pump-01\"} 64"));
+
+  // relearn: the stream drops its model and learns again.
+  const json relearn = client.Control(R"({"command":"relearn","stream":"pump-01"})");
+  EXPECT_EQ(relearn["ok"], true);
+  EXPECT_EQ(relearn["stream"], "pump-01");
+  client.Send("pump-01", client.last_time() + 10, {5, 100});
+  const json after = client.ReceiveFor("pump-01").body;
+  EXPECT_EQ(after["state"], "learning");
+  EXPECT_EQ(client.StreamStatus("pump-01")["window"], 1);
+  EXPECT_EQ(client.Status()["ok"], true);  // still serving after all of that
+}
+
+TEST(Daemon, ReloadIsRefusedWithoutAConfigurationFile) {
+  auto daemon = Start(Options());
+  Client client(daemon->endpoints());
+  const json reply = client.Control(R"({"command":"reload"})");
+  EXPECT_EQ(reply["ok"], false);
+  EXPECT_THAT(reply["error"].get<std::string>(), HasSubstr("--config"));
+}
+
+TEST(Daemon, ARequestOfSeveralFramesGetsAnError) {
+  auto daemon = Start(Options());
+  zmq::context_t context;
+  zmq::socket_t req(context, zmq::socket_type::req);
+  req.set(zmq::sockopt::linger, 0);
+  req.set(zmq::sockopt::rcvtimeo, 10000);
+  req.connect(daemon->endpoints().control);
+  req.send(zmq::str_buffer(R"({"command":"status"})"), zmq::send_flags::sndmore);
+  req.send(zmq::str_buffer("extra"), zmq::send_flags::none);
+  zmq::message_t reply;
+  ASSERT_TRUE(req.recv(reply));
+  EXPECT_EQ(json::parse(reply.to_string())["ok"], false);
+}
+
+// ---------------------------------------------------------------------------------------------
+// State across restarts
+
+TEST(Daemon, StateSurvivesARestartAndScoringResumesWithTheSameModel) {
+  TempDir dir;
+  const std::string state = dir / "state";
+  json before;
+  {
+    auto options = Options();
+    options.config.daemon.state_dir = state;
+    auto daemon = Start(std::move(options));
+    Client client(daemon->endpoints());
+    client.WarmUp("plant/pump:01", NormalVectors(20, 7), 1000);
+    before = client.StreamStatus("plant/pump:01");
+  }  // the destructor stops the daemon, which writes every stream's state
+  ASSERT_TRUE(fs::exists(state + "/plant%pump+01.state"));
+
+  auto options = Options();
+  options.config.daemon.state_dir = state;
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  const json after = client.StreamStatus("plant/pump:01");
+  EXPECT_EQ(after["state"], "scoring");
+  EXPECT_EQ(after["model_version"], before["model_version"]);
+  EXPECT_EQ(after["window"], before["window"]);
+  EXPECT_EQ(after["vectors"], before["vectors"]);
+  client.Send("plant/pump:01", 5000, {5, 100});
+  const json result = client.ReceiveFor("plant/pump:01").body;
+  EXPECT_EQ(result["state"], "scoring");  // no new warm-up
+  EXPECT_EQ(result["model_version"], before["model_version"]);
+}
+
+TEST(Daemon, ACorruptStateFileIsMovedAsideAndOnlyThatStreamRelearns) {
+  TempDir dir;
+  const std::string state = dir / "state";
+  json kept_before;
+  {
+    auto options = Options();
+    options.config.daemon.state_dir = state;
+    auto daemon = Start(std::move(options));
+    Client client(daemon->endpoints());
+    client.WarmUp("pump-01", NormalVectors(20, 8), 1000);
+    client.WarmUp("pump-02", NormalVectors(20, 9), 1000);
+    kept_before = client.StreamStatus("pump-01");
+  }
+  const std::string corrupt = state + "/pump-02.state";
+  {
+    std::fstream file(corrupt, std::ios::in | std::ios::out | std::ios::binary);
+    file.seekg(100);
+    char byte;
+    file.read(&byte, 1);
+    byte ^= 0x20;
+    file.seekp(100);
+    file.write(&byte, 1);
+  }
+  auto options = Options();
+  options.config.daemon.state_dir = state;
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  EXPECT_FALSE(fs::exists(corrupt));
+  int moved = 0;
+  for (const auto& entry : fs::directory_iterator(state)) {
+    moved += entry.path().filename().string().rfind("pump-02.state.corrupt-", 0) == 0 ? 1 : 0;
+  }
+  EXPECT_EQ(moved, 1);
+  const json kept = client.StreamStatus("pump-01");
+  EXPECT_EQ(kept["state"], "scoring");
+  EXPECT_EQ(kept["model_version"], kept_before["model_version"]);
+  EXPECT_TRUE(client.StreamStatus("pump-02").is_null());
+  client.Send("pump-02", 5000, {5, 100});
+  EXPECT_EQ(client.ReceiveFor("pump-02").body["state"], "learning");
+  client.Send("pump-01", 5000, {5, 100});
+  EXPECT_EQ(client.ReceiveFor("pump-01").body["state"], "scoring");
+}
+
+TEST(Daemon, SnapshotOnRequestWritesTheStateFiles) {
+  TempDir dir;
+  auto options = Options();
+  options.config.daemon.state_dir = dir / "state";
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  client.WarmUp("pump-01", NormalVectors(20, 10), 1000);
+  const json reply = client.Control(R"({"command":"snapshot"})");
+  EXPECT_EQ(reply["ok"], true);
+  EXPECT_EQ(reply["written"].get<int>() + reply["pending"].get<int>(), 2);  // pump-01, probe
+  // The reply comes after the files are written: the file decodes to the stream's state now.
+  const StateStore store(dir / "state");
+  const StreamStateFile file = store.Load({store.PathFor("pump-01"), "pump-01"});
+  // No refit can be running: the warm-up refit is done and refit_every = 0.
+  EXPECT_EQ(reply["pending"], 0);
+  const json status = client.StreamStatus("pump-01");
+  EXPECT_EQ(file.state.counters.vectors, status["vectors"].get<int64_t>());
+  EXPECT_EQ(status["snapshot_vectors"], status["vectors"]);
+}
+
+// ---------------------------------------------------------------------------------------------
+// Recording
+
+TEST(Daemon, RecordsVectorsInTheReplayFormatAndRotates) {
+  TempDir dir;
+  auto options =
+      Options("", "[[stream]]\nmatch = \"unit/a\"\nfeature_names = [\"pressure\", \"flow\"]\n");
+  options.config.daemon.record_dir = dir / "rec";
+  options.config.daemon.record_rotate_bytes = 300;
+  options.config.daemon.record_keep_files = 2;
+  std::vector<std::vector<double>> sent = NormalVectors(30, 11);
+  {
+    auto daemon = Start(std::move(options));
+    Client client(daemon->endpoints());
+    for (std::size_t i = 0; i < sent.size(); ++i) {
+      client.Send("unit/a", 1000.0 + static_cast<double>(i) + 0.25, sent[i]);
+      client.ReceiveFor("unit/a");
+    }
+  }
+  // Files "unit%a-N.csv"; 2 kept of those written; the newest holds the last vectors.
+  std::vector<std::string> files;
+  for (const auto& entry : fs::directory_iterator(dir / "rec")) {
+    const std::string name = entry.path().filename().string();
+    if (name.rfind("unit%a-", 0) == 0) files.push_back(entry.path().string());
+  }
+  std::sort(files.begin(), files.end(), [](const std::string& a, const std::string& b) {
+    return a.size() != b.size() ? a.size() < b.size() : a < b;  // unit%a-9 before unit%a-10
+  });
+  ASSERT_EQ(files.size(), 2u);
+  std::vector<double> times;
+  std::vector<std::vector<double>> rows;
+  for (const std::string& file : files) {
+    const StreamRecording recording = ReadStreamRecording(file);
+    EXPECT_EQ(recording.feature_names, (std::vector<std::string>{"pressure", "flow"}));
+    EXPECT_EQ(recording.streams, std::vector<std::string>{"unit/a"});
+    for (int64_t r = 0; r < recording.rows(); ++r) {
+      times.push_back(recording.times[r]);
+      rows.push_back({recording.values(r, 0), recording.values(r, 1)});
+    }
+  }
+  // The kept files are the tail of what was sent, exactly (shortest round-trip numbers).
+  ASSERT_FALSE(rows.empty());
+  ASSERT_LT(rows.size(), sent.size());  // rotation removed the oldest
+  const std::size_t offset = sent.size() - rows.size();
+  for (std::size_t i = 0; i < rows.size(); ++i) {
+    EXPECT_EQ(times[i], 1000.0 + static_cast<double>(offset + i) + 0.25);
+    EXPECT_EQ(rows[i], sent[offset + i]);
+  }
+}
+
+// ---------------------------------------------------------------------------------------------
+// The program: flags, log lines, ready file, signals, exit status, kill -9
+
+class Process {
+ public:
+  Process(const std::vector<std::string>& args, const std::string& log_path) {
+    std::vector<char*> argv;
+    for (const auto& a : args) argv.push_back(const_cast<char*>(a.c_str()));
+    argv.push_back(nullptr);
+    posix_spawn_file_actions_t actions;
+    posix_spawn_file_actions_init(&actions);
+    posix_spawn_file_actions_addopen(&actions, 2, log_path.c_str(), O_WRONLY | O_CREAT | O_TRUNC,
+                                     0644);
+    posix_spawn_file_actions_addopen(&actions, 1, "/dev/null", O_WRONLY, 0);
+    const int rc = posix_spawn(&pid_, argv[0], &actions, nullptr, argv.data(), environ);
+    posix_spawn_file_actions_destroy(&actions);
+    if (rc != 0) pid_ = -1;
+  }
+  ~Process() {
+    if (pid_ > 0 && !exited_) {
+      ::kill(pid_, SIGKILL);
+      Wait();
+    }
+  }
+  pid_t pid() const { return pid_; }
+  void Signal(int signal) { ::kill(pid_, signal); }
+  // The exit status, or -signal when killed.
+  int Wait() {
+    int status = 0;
+    ::waitpid(pid_, &status, 0);
+    exited_ = true;
+    return WIFEXITED(status) ? WEXITSTATUS(status) : -WTERMSIG(status);
+  }
+
+ private:
+  pid_t pid_ = -1;
+  bool exited_ = false;
+};
+
+const std::string kNuwatchd = std::string(NUWATCH_BINARY_DIR) + "/daemon/nuwatchd";
+
+std::string ReadText(const std::string& path) {
+  std::ifstream in(path);
+  std::ostringstream text;
+  text << in.rdbuf();
+  return text.str();
+}
+
+// Polls (every few milliseconds) until `condition` holds or the deadline passes.
+bool PollUntil(const std::function<bool()>& condition) {
+  const auto until = Clock::now() + kDeadline;
+  while (Clock::now() < until) {
+    if (condition()) return true;
+    std::this_thread::sleep_for(std::chrono::milliseconds(5));  // pacing, not a wait for time
+  }
+  return condition();
+}
+
+DaemonEndpoints ReadyEndpoints(const std::string& ready_file) {
+  const json ready = json::parse(ReadText(ready_file));
+  DaemonEndpoints endpoints;
+  endpoints.ingest = ready["ingest"].get<std::vector<std::string>>();
+  endpoints.publish = ready["publish"];
+  endpoints.control = ready["control"];
+  endpoints.metrics = ready["metrics"];
+  return endpoints;
+}
+
+std::vector<std::string> DaemonArgs(const TempDir& dir, const std::string& config) {
+  return {
+      kNuwatchd,      "--config",          config,        "--ingest",          "tcp://127.0.0.1:*",
+      "--publish",    "tcp://127.0.0.1:*", "--control",   "tcp://127.0.0.1:*", "--metrics",
+      "127.0.0.1:0",  "--state-dir",       dir / "state", "--log-level",       "info",
+      "--ready-file", dir / "ready.json"};
+}
+
+TEST(Nuwatchd, ResumesScoringAfterKill9FromItsPeriodicSnapshot) {
+  TempDir dir;
+  const std::string config = dir / "nuwatchd.toml";
+  std::ofstream(config) << ConfigText("", "[state]\nsnapshot_interval_seconds = 0.05\n");
+  json before;
+  {
+    Process daemon(DaemonArgs(dir, config), dir / "log1.txt");
+    ASSERT_GT(daemon.pid(), 0);
+    ASSERT_TRUE(PollUntil([&] { return fs::exists(dir / "ready.json"); }));
+    const DaemonEndpoints endpoints = ReadyEndpoints(dir / "ready.json");
+    const std::string log = ReadText(dir / "log1.txt");
+    EXPECT_THAT(log, HasSubstr(" info listening ingest=" + endpoints.ingest[0] + "\n"));
+    EXPECT_THAT(log, HasSubstr(" info listening publish=" + endpoints.publish + "\n"));
+    EXPECT_THAT(log, HasSubstr(" info listening control=" + endpoints.control + "\n"));
+    EXPECT_THAT(log, HasSubstr(" info listening metrics=" + endpoints.metrics + "\n"));
+    EXPECT_EQ(endpoints.ingest[0].find('*'), std::string::npos);  // the real port
+    Client client(endpoints);
+    client.WarmUp("pump-01", NormalVectors(20, 12), 1000);
+    before = client.StreamStatus("pump-01");
+    // Wait until a periodic snapshot holding every vector so far is on disk, then kill -9: no
+    // shutdown, so only the periodic snapshot can carry the state over.
+    const StateStore store(dir / "state");
+    ASSERT_TRUE(PollUntil([&] {
+      try {
+        return store.Load({store.PathFor("pump-01"), "pump-01"}).state.counters.vectors ==
+               before["vectors"].get<int64_t>();
+      } catch (const StateFileError&) {
+        return false;  // not written yet
+      }
+    }));
+    daemon.Signal(SIGKILL);
+    EXPECT_EQ(daemon.Wait(), -SIGKILL);
+  }
+  fs::remove(dir / "ready.json");
+  Process daemon(DaemonArgs(dir, config), dir / "log2.txt");
+  ASSERT_TRUE(PollUntil([&] { return fs::exists(dir / "ready.json"); }));
+  Client client(ReadyEndpoints(dir / "ready.json"));
+  EXPECT_THAT(ReadText(dir / "log2.txt"), HasSubstr("state: restored stream=pump-01"));
+  const json after = client.StreamStatus("pump-01");
+  EXPECT_EQ(after["state"], "scoring");
+  EXPECT_EQ(after["model_version"], before["model_version"]);
+  client.Send("pump-01", 9000, {5, 100});
+  EXPECT_EQ(client.ReceiveFor("pump-01").body["state"], "scoring");
+
+  // SIGHUP with a broken file: refused, logged, the daemon keeps serving; SIGTERM: exit 0.
+  std::ofstream(config) << ConfigText("nuu = 0.2\n");
+  daemon.Signal(SIGHUP);
+  ASSERT_TRUE(PollUntil(
+      [&] { return ReadText(dir / "log2.txt").find("reload rejected") != std::string::npos; }));
+  EXPECT_THAT(ReadText(dir / "log2.txt"), HasSubstr("'detector.nuu' is not a known key"));
+  EXPECT_EQ(client.Status()["ok"], true);
+  daemon.Signal(SIGTERM);
+  EXPECT_EQ(daemon.Wait(), 0);
+  const std::string log = ReadText(dir / "log2.txt");
+  EXPECT_EQ(log.substr(log.rfind(' ', log.size() - 2) + 1), "stopped\n");
+}
+
+TEST(Nuwatchd, AConfigurationErrorExitsWithStatus2AndOneLine) {
+  TempDir dir;
+  const std::string config = dir / "bad.toml";
+  std::ofstream(config) << "[detector]\nrefit_evry = 10\n";
+  Process daemon({kNuwatchd, "--config", config}, dir / "log.txt");
+  EXPECT_EQ(daemon.Wait(), 2);
+  const std::string log = ReadText(dir / "log.txt");
+  EXPECT_EQ(log, "nuwatchd: " + config +
+                     ":2:1: key 'detector.refit_evry' is not a known key (did you mean "
+                     "'refit_every'?)\n");
+  Process flags({kNuwatchd, "--metrics", "no-port"}, dir / "log2.txt");
+  EXPECT_EQ(flags.Wait(), 2);
+  EXPECT_THAT(ReadText(dir / "log2.txt"), HasSubstr("metrics.listen"));
+}
+
+}  // namespace
+}  // namespace nuwatch
