@@ -596,7 +596,8 @@ std::optional<Violation> CheckDetector(const DetectorOptions& o, const Namer& na
     return fail({"max_age_seconds"},
                 show("max_age_seconds", o.max_age_seconds) + " must not be negative (0: no limit)");
   }
-  if (o.warmup < 1) return fail({"warmup"}, show("warmup", o.warmup) + " must be at least 1");
+  // The first fit needs two vectors at least (a single row makes a degenerate problem).
+  if (o.warmup < 2) return fail({"warmup"}, show("warmup", o.warmup) + " must be at least 2");
   if (o.warmup > o.window) {
     return fail({"warmup", "window"},
                 show("warmup", o.warmup) + " must not exceed " + show("window", o.window));

@@ -4,7 +4,8 @@
 Usage: tests/bench/compare_sklearn.py [--nuwatch build/daemon/nuwatch] [--native BIN]
                                       [--n 5000] [--dims 16] [--nu 0.05] [--window 2000]
 
-Prints a table of timings and ratios (these machines are shared and noisy: quote ratios).
+Prints a table of timings and ratios, each timing the best of 3 runs (these machines are shared
+and noisy: quote ratios).
 - cold fit: nuwatch fit's solver time (on the CSV of the data) and `nuwatch bench`'s whole cold fit,
   against OneClassSVM.fit on the same standardised data, the same gamma and tolerance; the decision
   values of both fits are compared (ours times nu l against decision_function).
@@ -24,11 +25,24 @@ import numpy as np
 from sklearn.svm import OneClassSVM
 
 
+REPEAT = 3  # every timing is the best of this many runs: the machines are shared and noisy
+
+
 def bench(binary, dims, window, nu, budget):
-    out = subprocess.run([binary, "bench", "--json", "--dims", str(dims), "--window", str(window),
-                          "--nu", str(nu), "--budget", str(budget)],
-                         check=True, capture_output=True, text=True).stdout
-    return json.loads(out)
+    """`nuwatch bench --json`, best of REPEAT runs for every timing."""
+    runs = []
+    for _ in range(REPEAT):
+        out = subprocess.run([binary, "bench", "--json", "--dims", str(dims), "--window",
+                              str(window), "--nu", str(nu), "--budget", str(budget)],
+                             check=True, capture_output=True, text=True).stdout
+        runs.append(json.loads(out))
+    best = dict(runs[0])
+    for key in best:
+        if key.endswith("_seconds"):
+            best[key] = min(r[key] for r in runs)
+        elif key.endswith("_per_second"):
+            best[key] = max(r[key] for r in runs)
+    return best
 
 
 def main():
@@ -49,17 +63,19 @@ def main():
     queries = rng.normal(size=(20000, a.dims))
 
     rows = []
-    sk = OneClassSVM(nu=a.nu, gamma=gamma, tol=a.tol, cache_size=100)
-    started = time.perf_counter()
-    sk.fit(x)
-    sk_fit = time.perf_counter() - started
+    sk_fit = float("inf")
+    for _ in range(REPEAT):
+        sk = OneClassSVM(nu=a.nu, gamma=gamma, tol=a.tol, cache_size=100)
+        started = time.perf_counter()
+        sk.fit(x)
+        sk_fit = min(sk_fit, time.perf_counter() - started)
     n_sv = len(sk.support_)
     started = time.perf_counter()
     repeats = 0
     while True:
         sk.decision_function(queries)
         repeats += 1
-        if time.perf_counter() - started > 1.0:
+        if time.perf_counter() - started > 1.5:
             break
     sk_rate = repeats * len(queries) / (time.perf_counter() - started)
 
@@ -68,11 +84,15 @@ def main():
         np.savetxt(data, x, delimiter=",", fmt="%.17g",
                    header=",".join("f%d" % j for j in range(a.dims)), comments="")
         model = os.path.join(tmp, "m.nuw")
-        subprocess.run([a.nuwatch, "fit", "--input", data, "--output", model, "--nu", str(a.nu),
-                        "--gamma", repr(gamma), "--scale", "none", "--tol", str(a.tol),
-                        "--cache-mb", "100"], check=True, capture_output=True)
-        info = json.loads(subprocess.run([a.nuwatch, "inspect", model, "--json"], check=True,
-                                         capture_output=True, text=True).stdout)
+        info = None
+        for _ in range(REPEAT):
+            subprocess.run([a.nuwatch, "fit", "--input", data, "--output", model, "--nu",
+                            str(a.nu), "--gamma", repr(gamma), "--scale", "none", "--tol",
+                            str(a.tol), "--cache-mb", "100"], check=True, capture_output=True)
+            run = json.loads(subprocess.run([a.nuwatch, "inspect", model, "--json"], check=True,
+                                            capture_output=True, text=True).stdout)
+            if info is None or run["fit_seconds"] < info["fit_seconds"]:
+                info = run
         scores = subprocess.run([a.nuwatch, "score", "--model", model, "--input", data], check=True,
                                 capture_output=True, text=True).stdout.split("\n")[1:]
         ours = np.array([float(line.split(",")[0]) for line in scores if line])

@@ -348,7 +348,10 @@ TEST(ConfigErrors, OutOfRangeDetectorValuesNameFileLineAndKey) {
   EXPECT_EQ(ErrorOf("[detector]\nwindow = 1\nwarmup = 1\n"),
             "t.toml:2:10: detector.window = 1 must be at least 2");
   EXPECT_EQ(ErrorOf("[detector]\nwarmup = 0\n"),
-            "t.toml:2:10: detector.warmup = 0 must be at least 1");
+            "t.toml:2:10: detector.warmup = 0 must be at least 2");
+  // Regression: warmup = 1 loaded but the detector refuses a one-row first fit.
+  EXPECT_EQ(ErrorOf("[detector]\nwarmup = 1\n"),
+            "t.toml:2:10: detector.warmup = 1 must be at least 2");
   EXPECT_EQ(ErrorOf("[detector]\nrefit_every = -1\n"),
             "t.toml:2:15: detector.refit_every = -1 must not be negative (0: fit once, never "
             "refit)");
