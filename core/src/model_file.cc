@@ -9,68 +9,13 @@
 #include <fstream>
 #include <iterator>
 
+#include "nuwatch/checked_file.h"
+
 namespace nuwatch {
 namespace {
 
 constexpr char kMagic[4] = {'N', 'U', 'W', 'M'};
-constexpr std::size_t kHeaderBytes = 4 + 4 + 8;
 constexpr uint64_t kMaxPayloadBytes = uint64_t{1} << 34;  // 16 GiB: larger is corruption
-
-class Writer {
- public:
-  template <typename T>
-  void Put(T value) {
-    static_assert(std::is_trivially_copyable_v<T>);
-    const auto* p = reinterpret_cast<const uint8_t*>(&value);
-    bytes.insert(bytes.end(), p, p + sizeof(T));  // x86-64 and aarch64 are little-endian
-  }
-  void PutString(const std::string& s) {
-    Put<uint32_t>(static_cast<uint32_t>(s.size()));
-    bytes.insert(bytes.end(), s.begin(), s.end());
-  }
-  void PutDoubles(const double* p, std::size_t n) {
-    const auto* b = reinterpret_cast<const uint8_t*>(p);
-    bytes.insert(bytes.end(), b, b + n * sizeof(double));
-  }
-  std::vector<uint8_t> bytes;
-};
-
-class Reader {
- public:
-  Reader(const uint8_t* data, std::size_t size) : data_(data), size_(size) {}
-  template <typename T>
-  T Get(const char* what) {
-    T value;
-    Need(sizeof(T), what);
-    std::memcpy(&value, data_ + pos_, sizeof(T));
-    pos_ += sizeof(T);
-    return value;
-  }
-  std::string GetString(const char* what) {
-    const uint32_t n = Get<uint32_t>(what);
-    Need(n, what);
-    std::string s(reinterpret_cast<const char*>(data_ + pos_), n);
-    pos_ += n;
-    return s;
-  }
-  void GetDoubles(double* out, uint64_t n, const char* what) {
-    if (n > (size_ - pos_) / sizeof(double)) Fail(what);
-    std::memcpy(out, data_ + pos_, n * sizeof(double));
-    pos_ += n * sizeof(double);
-  }
-  std::size_t remaining() const { return size_ - pos_; }
-
- private:
-  void Need(std::size_t n, const char* what) {
-    if (n > size_ - pos_) Fail(what);
-  }
-  [[noreturn]] void Fail(const char* what) {
-    throw ModelFileError(std::string("model payload ends inside ") + what);
-  }
-  const uint8_t* data_;
-  std::size_t size_;
-  std::size_t pos_ = 0;
-};
 
 std::array<uint32_t, 256> MakeCrcTable() {
   std::array<uint32_t, 256> table{};
@@ -93,7 +38,7 @@ uint32_t Crc32(const uint8_t* data, std::size_t size, uint32_t crc) {
 
 std::vector<uint8_t> EncodeModel(const Model& model) {
   const ModelParts& p = model.parts();
-  Writer w;
+  ByteWriter w;
   w.Put<uint8_t>(static_cast<uint8_t>(p.kernel.type));
   w.Put<double>(p.kernel.gamma);
   w.Put<int32_t>(p.kernel.degree);
@@ -106,10 +51,10 @@ std::vector<uint8_t> EncodeModel(const Model& model) {
   w.Put<uint32_t>(d);
   w.Put<uint32_t>(n);
   w.Put<uint8_t>(static_cast<uint8_t>(p.scaler.type()));
-  w.PutDoubles(p.scaler.center().data(), d);
-  w.PutDoubles(p.scaler.scale().data(), d);
-  for (uint32_t i = 0; i < n; ++i) w.PutDoubles(&p.support_vectors(i, 0), d);
-  w.PutDoubles(p.coefficients.data(), n);
+  w.PutArray(p.scaler.center().data(), d);
+  w.PutArray(p.scaler.scale().data(), d);
+  for (uint32_t i = 0; i < n; ++i) w.PutArray(&p.support_vectors(i, 0), d);
+  w.PutArray(p.coefficients.data(), n);
   w.Put<double>(p.rho);
   w.Put<int64_t>(p.training.n_train);
   w.Put<int64_t>(p.training.n_support);
@@ -127,41 +72,13 @@ std::vector<uint8_t> EncodeModel(const Model& model) {
   w.Put<uint32_t>(static_cast<uint32_t>(p.feature_names.size()));
   for (const auto& name : p.feature_names) w.PutString(name);
 
-  Writer file;
-  for (char c : kMagic) file.Put<char>(c);
-  file.Put<uint32_t>(kModelFormatVersion);
-  file.Put<uint64_t>(w.bytes.size());
-  file.bytes.insert(file.bytes.end(), w.bytes.begin(), w.bytes.end());
-  file.Put<uint32_t>(Crc32(w.bytes.data(), w.bytes.size()));
-  return file.bytes;
+  return WrapChecksummed(kMagic, kModelFormatVersion, w.bytes);
 }
 
-Model DecodeModel(const uint8_t* data, std::size_t size) {
-  if (size < kHeaderBytes + 4) {
-    throw ModelFileError("truncated: " + std::to_string(size) + " bytes, not even a header");
-  }
-  if (std::memcmp(data, kMagic, 4) != 0) throw ModelFileError("not a nuwatch model file");
-  uint32_t version;
-  uint64_t payload_bytes;
-  std::memcpy(&version, data + 4, 4);
-  std::memcpy(&payload_bytes, data + 8, 8);
-  if (version > kModelFormatVersion) {
-    throw ModelFileError("format version " + std::to_string(version) +
-                         " is newer than this program reads (" +
-                         std::to_string(kModelFormatVersion) + ")");
-  }
-  if (version == 0) throw ModelFileError("format version 0 is invalid");
-  if (payload_bytes > kMaxPayloadBytes || payload_bytes + kHeaderBytes + 4 != size) {
-    throw ModelFileError("truncated or padded: header announces " + std::to_string(payload_bytes) +
-                         " payload bytes, the file holds " + std::to_string(size) + " bytes");
-  }
-  const uint8_t* payload = data + kHeaderBytes;
-  uint32_t stored_crc;
-  std::memcpy(&stored_crc, payload + payload_bytes, 4);
-  if (Crc32(payload, payload_bytes) != stored_crc) {
-    throw ModelFileError("checksum mismatch: the file is corrupted");
-  }
-  Reader r(payload, payload_bytes);
+namespace {
+
+// Requires: a payload whose checksum matched.
+Model DecodeModelPayload(ByteReader& r) {
   ModelParts p;
   const uint8_t kernel_type = r.Get<uint8_t>("kernel");
   if (kernel_type > 2) throw ModelFileError("unknown kernel type " + std::to_string(kernel_type));
@@ -185,12 +102,12 @@ Model DecodeModel(const uint8_t* data, std::size_t size) {
                          std::to_string(d) + " dimensions do not fit the payload");
   }
   VectorD center(d), scale(d);
-  r.GetDoubles(center.data(), d, "scaler");
-  r.GetDoubles(scale.data(), d, "scaler");
+  r.GetArray(center.data(), d, "scaler");
+  r.GetArray(scale.data(), d, "scaler");
   p.support_vectors.resize(n, d);
-  r.GetDoubles(p.support_vectors.data(), static_cast<uint64_t>(n) * d, "support vectors");
+  r.GetArray(p.support_vectors.data(), static_cast<uint64_t>(n) * d, "support vectors");
   p.coefficients.resize(n);
-  r.GetDoubles(p.coefficients.data(), n, "coefficients");
+  r.GetArray(p.coefficients.data(), n, "coefficients");
   p.rho = r.Get<double>("rho");
   p.training.n_train = r.Get<int64_t>("training statistics");
   p.training.n_support = r.Get<int64_t>("training statistics");
@@ -218,6 +135,13 @@ Model DecodeModel(const uint8_t* data, std::size_t size) {
   } catch (const PreconditionError& e) {
     throw ModelFileError(std::string("invalid model contents: ") + e.what());
   }
+}
+
+}  // namespace
+
+Model DecodeModel(const uint8_t* data, std::size_t size) {
+  return DecodeChecksummed<ModelFileError>(data, size, kMagic, kModelFormatVersion, "model",
+                                           kMaxPayloadBytes, DecodeModelPayload);
 }
 
 void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size) {

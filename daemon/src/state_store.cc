@@ -8,8 +8,8 @@
 #include <fstream>
 #include <iterator>
 #include <system_error>
-#include <type_traits>
 
+#include "nuwatch/checked_file.h"
 #include "nuwatch/model_file.h"
 #include "wire_protocol.h"
 
@@ -19,67 +19,8 @@ namespace {
 namespace fs = std::filesystem;
 
 constexpr char kMagic[4] = {'N', 'U', 'W', 'S'};
-constexpr std::size_t kHeaderBytes = 4 + 4 + 8;
 constexpr uint64_t kMaxPayloadBytes = uint64_t{1} << 36;  // 64 GiB: larger is corruption
 constexpr std::string_view kSuffix = ".state";
-
-class Writer {
- public:
-  template <typename T>
-  void Put(T value) {
-    static_assert(std::is_trivially_copyable_v<T>);
-    const auto* p = reinterpret_cast<const uint8_t*>(&value);
-    bytes.insert(bytes.end(), p, p + sizeof(T));  // x86-64 and aarch64 are little-endian
-  }
-  void PutBytes(const void* data, std::size_t n) {
-    const auto* p = static_cast<const uint8_t*>(data);
-    bytes.insert(bytes.end(), p, p + n);
-  }
-  template <typename T>
-  void PutArray(const T* data, std::size_t n) {
-    static_assert(std::is_trivially_copyable_v<T>);
-    PutBytes(data, n * sizeof(T));
-  }
-  std::vector<uint8_t> bytes;
-};
-
-class Reader {
- public:
-  Reader(const uint8_t* data, std::size_t size) : data_(data), size_(size) {}
-  template <typename T>
-  T Get(const char* what) {
-    static_assert(std::is_trivially_copyable_v<T>);
-    T value;
-    Need(1, sizeof(T), what);
-    std::memcpy(&value, data_ + pos_, sizeof(T));
-    pos_ += sizeof(T);
-    return value;
-  }
-  // Checks that `count` items of `item_bytes` each are left, without overflowing.
-  void Need(uint64_t count, std::size_t item_bytes, const char* what) const {
-    if (count > (size_ - pos_) / item_bytes) {
-      throw StateFileError(std::string("state payload ends inside ") + what);
-    }
-  }
-  template <typename T>
-  void GetArray(T* out, uint64_t count, const char* what) {
-    Need(count, sizeof(T), what);
-    if (count > 0) std::memcpy(out, data_ + pos_, count * sizeof(T));
-    pos_ += count * sizeof(T);
-  }
-  const uint8_t* Take(uint64_t n, const char* what) {
-    Need(n, 1, what);
-    const uint8_t* p = data_ + pos_;
-    pos_ += n;
-    return p;
-  }
-  std::size_t remaining() const { return size_ - pos_; }
-
- private:
-  const uint8_t* data_;
-  std::size_t size_;
-  std::size_t pos_ = 0;
-};
 
 }  // namespace
 
@@ -130,9 +71,8 @@ std::vector<uint8_t> EncodeStreamState(std::string_view stream_key, int dims,
     fail("incident ring fields of different lengths");
   }
 
-  Writer w;
-  w.Put<uint32_t>(static_cast<uint32_t>(stream_key.size()));
-  w.PutBytes(stream_key.data(), stream_key.size());
+  ByteWriter w;
+  w.PutString(stream_key);
   w.Put<uint32_t>(static_cast<uint32_t>(dims));
   w.Put<uint64_t>(s.next_sample_id);
   w.Put<uint64_t>(rows);
@@ -182,46 +122,15 @@ std::vector<uint8_t> EncodeStreamState(std::string_view stream_key, int dims,
   w.Put<int64_t>(s.counters.refits_coalesced);
   w.Put<int64_t>(s.counters.drift_alarms);
 
-  Writer file;
-  file.PutBytes(kMagic, 4);
-  file.Put<uint32_t>(kStateFormatVersion);
-  file.Put<uint64_t>(w.bytes.size());
-  file.PutBytes(w.bytes.data(), w.bytes.size());
-  file.Put<uint32_t>(Crc32(w.bytes.data(), w.bytes.size()));
-  return std::move(file.bytes);
+  return WrapChecksummed(kMagic, kStateFormatVersion, w.bytes);
 }
 
-StreamStateFile DecodeStreamState(const uint8_t* data, std::size_t size) {
-  if (size < kHeaderBytes + 4) {
-    throw StateFileError("truncated: " + std::to_string(size) + " bytes, not even a header");
-  }
-  if (std::memcmp(data, kMagic, 4) != 0) throw StateFileError("not a nuwatch state file");
-  uint32_t version;
-  uint64_t payload_bytes;
-  std::memcpy(&version, data + 4, 4);
-  std::memcpy(&payload_bytes, data + 8, 8);
-  if (version > kStateFormatVersion) {
-    throw StateFileError("format version " + std::to_string(version) +
-                         " is newer than this program reads (" +
-                         std::to_string(kStateFormatVersion) + ")");
-  }
-  if (version == 0) throw StateFileError("format version 0 is invalid");
-  if (payload_bytes > kMaxPayloadBytes || payload_bytes + kHeaderBytes + 4 != size) {
-    throw StateFileError("truncated or padded: header announces " + std::to_string(payload_bytes) +
-                         " payload bytes, the file holds " + std::to_string(size) + " bytes");
-  }
-  const uint8_t* payload = data + kHeaderBytes;
-  uint32_t stored_crc;
-  std::memcpy(&stored_crc, payload + payload_bytes, 4);
-  if (Crc32(payload, payload_bytes) != stored_crc) {
-    throw StateFileError("checksum mismatch: the file is corrupted");
-  }
+namespace {
 
-  Reader r(payload, payload_bytes);
+// Requires: a payload whose checksum matched.
+StreamStateFile DecodeStatePayload(ByteReader& r) {
   StreamStateFile out;
-  const uint32_t key_bytes = r.Get<uint32_t>("the stream key");
-  const uint8_t* key = r.Take(key_bytes, "the stream key");
-  out.stream_key.assign(reinterpret_cast<const char*>(key), key_bytes);
+  out.stream_key = r.GetString("the stream key");
   if (ValidateStreamKey(out.stream_key, WireLimits{}) != RejectReason::kNone) {
     throw StateFileError("the stored stream key is not a valid key");
   }
@@ -310,6 +219,13 @@ StreamStateFile DecodeStreamState(const uint8_t* data, std::size_t size) {
   s.counters.drift_alarms = r.Get<int64_t>("the counters");
   if (r.remaining() != 0) throw StateFileError("trailing bytes after the counters");
   return out;
+}
+
+}  // namespace
+
+StreamStateFile DecodeStreamState(const uint8_t* data, std::size_t size) {
+  return DecodeChecksummed<StateFileError>(data, size, kMagic, kStateFormatVersion, "state",
+                                           kMaxPayloadBytes, DecodeStatePayload);
 }
 
 StateStore::StateStore(std::string dir) : dir_(std::move(dir)) {

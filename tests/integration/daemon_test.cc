@@ -343,24 +343,24 @@ std::optional<double> MetricValue(const std::string& text, const std::string& se
 // ---------------------------------------------------------------------------------------------
 // Configuration
 
-TEST(CheckConfigForDaemon, RefusesDetectorOptionsTheDetectorRefuses) {
-  // The file format admits warmup = 1 (config/REFERENCE.md); a Detector needs at least 2
-  // vectors for its first fit (detector.cc), so the daemon refuses it at start-up and on reload,
-  // naming the section, rather than failing when the first vector arrives.
+TEST(CheckConfigForDaemon, TheLoaderAlreadyRefusesWhatTheDetectorRefuses) {
+  // A Detector needs at least 2 vectors for its first fit (detector.cc). The loader refuses
+  // warmup = 1 with the file and line, in [detector] and in a [[stream]] table, so the daemon's
+  // own check (CheckConfigForDaemon, a safety net at start-up and on reload) never sees it.
+  // Regression: warmup = 1 used to load and fail only when a stream's first fit was due.
   try {
-    CheckConfigForDaemon(ParseConfig("[detector]\nwarmup = 1\n", "d.toml"));
+    ParseConfig("[detector]\nwarmup = 1\n", "d.toml");
     ADD_FAILURE() << "warmup = 1 accepted";
   } catch (const ConfigError& e) {
-    EXPECT_THAT(e.what(), HasSubstr("d.toml: [detector]"));
-    EXPECT_THAT(e.what(), HasSubstr("warmup = 1"));
+    EXPECT_THAT(e.what(), HasSubstr("d.toml:2"));
+    EXPECT_THAT(e.what(), HasSubstr("warmup = 1 must be at least 2"));
   }
   try {
-    CheckConfigForDaemon(
-        ParseConfig("[detector]\nwarmup = 5\n[[stream]]\nmatch = \"a*\"\nwarmup = 1\n", "d.toml"));
+    ParseConfig("[detector]\nwarmup = 5\n[[stream]]\nmatch = \"a*\"\nwarmup = 1\n", "d.toml");
     ADD_FAILURE() << "a [[stream]] with warmup = 1 accepted";
   } catch (const ConfigError& e) {
-    EXPECT_THAT(e.what(), HasSubstr("d.toml:3"));  // the [[stream]] table's line
-    EXPECT_THAT(e.what(), HasSubstr("match = \"a*\""));
+    EXPECT_THAT(e.what(), HasSubstr("d.toml:5"));
+    EXPECT_THAT(e.what(), HasSubstr("warmup = 1 must be at least 2"));
   }
   EXPECT_NO_THROW(CheckConfigForDaemon(ParseConfig(ConfigText(), "t.toml")));
 }
