@@ -18,6 +18,7 @@
 #include <utility>
 
 #include "csv_table.h"
+#include "evaluation_json.h"
 
 namespace nuwatch {
 namespace {
@@ -107,9 +108,7 @@ std::string CsvNumber(const std::optional<double>& value) {
   return value ? Shortest(*value) : std::string();
 }
 
-nlohmann::json JsonNumber(const std::optional<double>& value) {
-  return value ? nlohmann::json(*value) : nlohmann::json(nullptr);
-}
+nlohmann::json JsonNumber(const std::optional<double>& value) { return OptionalNumber(value); }
 
 std::optional<double> Ratio(int64_t numerator, int64_t denominator) {
   if (denominator <= 0) return std::nullopt;
@@ -703,8 +702,7 @@ std::string ResultsCsv(const TuningReport& report) {
 namespace {
 
 nlohmann::json SettingJson(const SettingResult& s, std::size_t rank, bool chosen) {
-  const StreamEvaluation& e = s.overall;
-  nlohmann::json j;
+  nlohmann::json j = EvaluationJson(s.overall);
   j["index"] = s.index + 1;
   j["rank"] = rank;
   j["chosen"] = chosen;
@@ -715,25 +713,8 @@ nlohmann::json SettingJson(const SettingResult& s, std::size_t rank, bool chosen
   j["budget"] = s.detector.support_vector_budget;
   j["warmup"] = s.detector.warmup;
   j["objective"] = JsonNumber(s.objective);
-  j["point_precision"] = JsonNumber(e.point_precision);
-  j["point_recall"] = JsonNumber(e.point_recall);
-  j["point_f1"] = JsonNumber(e.point_f1);
-  j["range_precision"] = JsonNumber(e.range_precision);
-  j["range_recall"] = JsonNumber(e.range_recall);
   j["range_f1"] = JsonNumber(s.range_f1);
-  j["samples"] = e.samples;
-  j["flagged_samples"] = e.flagged_samples;
-  j["incidents"] = e.incidents;
-  j["incidents_detected"] = e.incidents_detected;
-  j["incidents_missed"] = e.incidents_missed;
   j["incident_recall"] = JsonNumber(s.incident_recall);
-  j["detection_delay_median_seconds"] = JsonNumber(e.detection_delay_median_seconds);
-  j["detection_delay_mean_seconds"] = JsonNumber(e.detection_delay_mean_seconds);
-  j["detection_delay_max_seconds"] = JsonNumber(e.detection_delay_max_seconds);
-  j["alarm_events"] = e.alarm_events;
-  j["false_alarm_events"] = e.false_alarm_events;
-  j["incident_free_seconds"] = JsonNumber(e.incident_free_seconds);
-  j["false_alarms_per_day"] = JsonNumber(e.false_alarms_per_day);
   j["replay_seconds"] = s.replay_seconds;
   return j;
 }

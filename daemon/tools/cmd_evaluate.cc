@@ -12,6 +12,7 @@
 #include "alarm_files.h"
 #include "commands.h"
 #include "csv_table.h"
+#include "evaluation_json.h"
 #include "nuwatch/evaluation.h"
 #include "nuwatch/types.h"
 #include "timestamps.h"
@@ -85,51 +86,16 @@ EvaluationOptions ParseOptions(const EvaluateArguments& arguments) {
   return options;
 }
 
-nlohmann::json Optional(const std::optional<double>& value) {
-  return value ? nlohmann::json(*value) : nlohmann::json(nullptr);
-}
-
-nlohmann::json ToJson(const StreamEvaluation& e) {
-  nlohmann::json j;
-  j["samples_known"] = e.samples_known;
-  j["samples"] = e.samples;
-  j["flagged_samples"] = e.flagged_samples;
-  j["incident_samples"] = e.incident_samples;
-  j["true_positives"] = e.true_positives;
-  j["false_positives"] = e.false_positives;
-  j["false_negatives"] = e.false_negatives;
-  j["true_negatives"] = e.true_negatives;
-  j["point_precision"] = Optional(e.point_precision);
-  j["point_recall"] = Optional(e.point_recall);
-  j["point_f1"] = Optional(e.point_f1);
-  j["incidents"] = e.incidents;
-  j["incidents_detected"] = e.incidents_detected;
-  j["incidents_missed"] = e.incidents_missed;
-  j["detection_delay_median_seconds"] = Optional(e.detection_delay_median_seconds);
-  j["detection_delay_mean_seconds"] = Optional(e.detection_delay_mean_seconds);
-  j["detection_delay_max_seconds"] = Optional(e.detection_delay_max_seconds);
-  j["alarm_events"] = e.alarm_events;
-  j["false_alarm_events"] = e.false_alarm_events;
-  j["observed_seconds"] = Optional(e.observed_seconds);
-  j["incident_free_seconds"] = Optional(e.incident_free_seconds);
-  j["false_alarms_per_day"] = Optional(e.false_alarms_per_day);
-  j["real_ranges"] = e.ranges.real_ranges;
-  j["predicted_ranges"] = e.ranges.predicted_ranges;
-  j["range_precision"] = Optional(e.range_precision);
-  j["range_recall"] = Optional(e.range_recall);
-  return j;
-}
-
 nlohmann::json ReportJson(const EvaluationReport& report) {
   nlohmann::json j;
   j["options"] = {{"grace_seconds", report.options.grace_seconds},
                   {"alpha", report.options.alpha},
                   {"cardinality", std::string(CardinalityName(report.options.cardinality))},
                   {"bias", std::string(PositionalBiasName(report.options.bias))}};
-  j["overall"] = ToJson(report.overall);
+  j["overall"] = EvaluationJson(report.overall);
   j["streams"] = nlohmann::json::object();
   for (const StreamEvaluation& stream : report.streams)
-    j["streams"][stream.stream] = ToJson(stream);
+    j["streams"][stream.stream] = EvaluationJson(stream);
   return j;
 }
 
