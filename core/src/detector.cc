@@ -359,6 +359,10 @@ bool Detector::RefitDue(double time, bool drift_alarm) const {
 void Detector::PostRefit(double time, RefitReason reason) {
   {
     std::lock_guard<std::mutex> lock(shared_->mutex);
+    // Observe found no model, but the warm-up fit may have installed one since (it stores the
+    // model under this mutex before it clears in_flight): a second warm-up fit would be a refit
+    // that refit_every = 0 rules out.
+    if (reason == RefitReason::kWarmup && shared_->model.load()) return;
     if (shared_->in_flight) {
       // The due refit stays due and is posted once the in-flight one is done: count it once, not
       // once per vector observed while it waits.
