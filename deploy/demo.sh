@@ -46,7 +46,7 @@ echo "== 4. The labelled incidents of $pump (what the flags should coincide with
 awk -F, -v p="$pump" 'NR == 1 || $1 == p { printf "  %s\n", $0 }' "$out/plant/incidents.csv"
 echo
 echo "== 5. Live: nuwatchd on loopback with config/demo.toml; 12 pumps streamed 3600x faster than real"
-echo "   time (two simulated days in about a minute: the first day is learning, then scoring)"
+echo "   time (two simulated days in about a minute: the first, fault-free day is learning)"
 nuwatchd=build/daemon/nuwatchd
 py=/usr/bin/python3
 ready="$out/ready.json"
@@ -55,7 +55,9 @@ rm -rf "$ready" "$out/state" "$out/live"
   --control 'tcp://127.0.0.1:*' --metrics 127.0.0.1:0 --state-dir "$out/state" \
   --ready-file "$ready" 2>"$out/nuwatchd.log" &
 daemon=$!
-cleanup() { kill "$daemon" 2>/dev/null || true; kill "${tail_pid:-}" 2>/dev/null || true; }
+cleanup() {
+  kill "$daemon" "${tail_pid:-}" "${json_pid:-}" 2>/dev/null || true
+}
 trap cleanup EXIT
 for _ in $(seq 100); do [ -s "$ready" ] && break; sleep 0.1; done
 [ -s "$ready" ] || { echo "nuwatchd did not start:"; cat "$out/nuwatchd.log"; exit 1; }
@@ -67,8 +69,11 @@ echo
 # Incident events as they happen; every anomaly goes to a file.
 "$nuwatch" tail --connect "$publish" --anomalies-only > "$out/anomalies.txt" &
 tail_pid=$!
+# The same events as JSON, to score the incidents against the simulator's labels at the end.
+"$nuwatch" tail --connect "$publish" --anomalies-only --json > "$out/anomalies.jsonl" 2>/dev/null &
+json_pid=$!
 ( while kill -0 "$tail_pid" 2>/dev/null; do sleep 1; done ) &
-"$nuwatch" simulate --live --speed 3600 --pumps 12 --interval 60s --duration 2d --seed 7 \
+"$nuwatch" simulate --live --speed 3600 --pumps 12 --interval 60s --duration 2d --seed 7 --fault-free 1d \
   --fault-rate 3 --output "$out/live" 2>/dev/null |
   "$nuwatch" send --connect "$ingest" --input - 2>"$out/send.log" &
 feeder=$!
@@ -111,10 +116,21 @@ echo
 echo "== 7. Shut down (SIGTERM: snapshot every stream, exit 0) and sum up"
 kill -TERM "$daemon"
 wait "$daemon" && echo "   nuwatchd exited 0; state files: $(ls "$out/state" | wc -l) in $out/state"
-kill "$tail_pid" 2>/dev/null || true
+kill "$tail_pid" "$json_pid" 2>/dev/null || true
 opened=$(grep -c "OPENED" "$out/anomalies.txt" || true)
 flagged=$(grep -vc INCIDENT "$out/anomalies.txt" || true)
-echo "   $flagged flagged vectors, $opened incidents opened; the simulator labelled these faults:"
+echo "   $flagged flagged vectors, $opened incidents opened. The simulator labelled these faults:"
 sed 's/^/     /' "$out/live/incidents.csv"
+# Closed incidents as alarm events (stream,start,end), scored against the labels.
+"$py" - "$out/anomalies.jsonl" > "$out/alarm-events.csv" <<'PY'
+import json, sys
+print("stream,start,end")
+for line in open(sys.argv[1]):
+    event = json.loads(line)
+    if event.get("event") == "incident_close":
+        print("%s,%s,%s" % (event["stream"], event["start"], event["end"]))
+PY
 echo
-echo "Files are in $out/. Tune nu against the labels: $nuwatch tune --input STREAM.csv --incidents INCIDENTS.csv --report DIR"
+echo "   The incidents scored against the labels (nuwatch evaluate, 10 minutes of grace):"
+"$nuwatch" evaluate --alarms "$out/alarm-events.csv" --incidents "$out/live/incidents.csv" \
+  --grace 10m | sed 's/^/   /' | grep -E "stream|overall|options" || true

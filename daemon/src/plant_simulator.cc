@@ -231,8 +231,11 @@ void PlantSimulator::State::Plan() {
   for (std::size_t i = kinds.size(); i > 1; --i)
     std::swap(kinds[i - 1], kinds[random.Below(static_cast<std::int64_t>(i))]);
 
-  const std::int64_t warm_up =
-      std::max<std::int64_t>(1, static_cast<std::int64_t>(std::ceil(0.25 * ticks)));
+  const std::int64_t warm_up = std::max<std::int64_t>(
+      1, static_cast<std::int64_t>(
+             options.fault_free_seconds >= 0
+                 ? std::ceil(options.fault_free_seconds / options.interval_seconds)
+                 : std::ceil(0.25 * ticks)));
   const std::int64_t room = ticks - warm_up;
   if (kinds.empty() || room < 1 || options.faults_per_pump_week <= 0) return;
   std::int64_t count = std::llround(options.faults_per_pump_week * options.pumps *
@@ -455,6 +458,11 @@ PlantSimulator::PlantSimulator(PlantOptions options) : state_(std::make_unique<S
          std::to_string(options.duration_seconds / options.interval_seconds) +
          " ticks is more than 1e12");
   if (!std::isfinite(options.start_time)) fail("start time must be finite");
+  if (!std::isfinite(options.fault_free_seconds) ||
+      options.fault_free_seconds >= options.duration_seconds)
+    fail("fault-free span = " + std::to_string(options.fault_free_seconds) +
+         " s must be shorter than the duration (" + std::to_string(options.duration_seconds) +
+         " s)");
   if (!std::isfinite(options.faults_per_pump_week) || options.faults_per_pump_week < 0)
     fail("faults per pump-week = " + std::to_string(options.faults_per_pump_week) +
          " must be >= 0");

@@ -48,7 +48,8 @@
 // Each incident draws a severity in 0.75..1.25 and most faults ramp in. Placement:
 // round(faults_per_pump_week * pumps * weeks) incidents (at least one when a kind is enabled, the
 // rate is positive and there is room), kinds taken in turn from a shuffled list so that each kind
-// appears once enough incidents are planned, none in the first 25 % of the run, at least 1 h apart
+// appears once enough incidents are planned, none in the first 25 % of the run (or the first
+// fault_free_seconds), at least 1 h apart
 // on the same pump; an incident that finds no free place is dropped.
 //
 // Determinism: the rows depend only on the options. Random numbers come from std::mt19937_64 with
@@ -77,6 +78,9 @@ struct PlantOptions {
   std::vector<std::string> faults = {"bearing_wear", "cavitation", "impeller_fouling",
                                      "stuck_sensor", "seal_leak"};
   double faults_per_pump_week = 0.5;  // >= 0; how many incidents to plan (see above)
+  // No fault starts before this much simulated time (e.g. a detector's warm-up); < 0: the first
+  // 25 % of the run. Must leave room: less than the duration.
+  double fault_free_seconds = -1;
 };
 
 struct PlantIncident {

@@ -32,6 +32,7 @@ struct SimulateArguments {
   std::string start = "2026-01-01T00:00:00Z";
   std::string faults;  // set from PlantSimulator::FaultKinds()
   std::string fault_rate = "0.5";
+  std::string fault_free;
   bool live = false;
   std::string speed = "1";
   bool speed_given = false;
@@ -109,6 +110,8 @@ PlantOptions ToOptions(const SimulateArguments& args) {
   if (!std::isfinite(rate) || rate < 0)
     throw CommandError("--fault-rate: " + args.fault_rate + " must be a number >= 0");
   options.faults_per_pump_week = rate;
+  if (!args.fault_free.empty())
+    options.fault_free_seconds = ParseDurationFlag("--fault-free", args.fault_free);
   try {
     PlantSimulator check(options);  // the library's own checks, e.g. too many ticks
   } catch (const std::invalid_argument& e) {
@@ -262,6 +265,11 @@ void AddSimulateCommand(CLI::App& app) {
                    "Incidents planned per pump per week of simulated time")
       ->type_name("X")
       ->capture_default_str();
+  command
+      ->add_option("--fault-free", args->fault_free,
+                   "No fault starts within this span from the start, e.g. a detector's warm-up "
+                   "(default: the first 25% of the run)")
+      ->type_name("DURATION");
   command->add_flag("--live", args->live,
                     "Stream stream.csv rows to stdout in time (one tick per interval / speed)");
   command
