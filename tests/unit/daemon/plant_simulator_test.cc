@@ -387,6 +387,23 @@ TEST(PlantSimulator, IncidentsAreOnTheGridAfterWarmUpAndApartPerPump) {
   EXPECT_LE(simulator.incidents()[0].end, short_run.start_time + 3590);
 }
 
+TEST(PlantSimulator, FaultFreeSpanKeepsFaultsOutOfAWarmUp) {
+  // fault_free_seconds replaces the default first quarter (plant_simulator.h): with two days and
+  // one fault-free day, every planned incident starts on day two, and the plan still holds faults.
+  PlantOptions options;
+  options.duration_seconds = 2 * 86400.0;
+  options.interval_seconds = 60;
+  options.faults_per_pump_week = 3;
+  options.fault_free_seconds = 86400;
+  PlantSimulator simulator(options);
+  ASSERT_FALSE(simulator.incidents().empty());
+  for (const PlantIncident& incident : simulator.incidents())
+    EXPECT_GE(incident.start, options.start_time + 86400)
+        << incident.stream << " " << incident.kind;
+  options.fault_free_seconds = options.duration_seconds;  // no room left
+  EXPECT_THROW(PlantSimulator{options}, std::invalid_argument);
+}
+
 TEST(PlantSimulator, RejectsBadOptions) {
   auto rejects = [](PlantOptions options, const std::string& fragment) {
     try {
