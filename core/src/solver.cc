@@ -303,11 +303,17 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
     for (int64_t i = 0; i < l; ++i) active[i] = i;
   };
 
-  bool just_restored =
-      false;  // the active set was just restored: check optimality before shrinking
+  // The active set was just restored: check optimality before shrinking again.
+  bool just_restored = false;
+  // The gradient update also finds the next iteration's i (argmin G over a < C), which saves a
+  // pass over the active set; anything that changes the active set invalidates it.
+  bool next_i_valid = false;
+  int64_t next_i = -1;
+  double next_g_min = 0;
   while (iterations < max_iterations) {
     if (options.shrinking && !just_restored && --countdown == 0) {
       countdown = shrink_interval;
+      next_i_valid = false;
       double min_up = std::numeric_limits<double>::infinity();
       double max_low = -std::numeric_limits<double>::infinity();
       for (int64_t t : active) {
@@ -335,12 +341,18 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
     // Working set: i = argmin G over a < C; j by the second-order gain among a > 0.
     int64_t i = -1;
     double g_min = std::numeric_limits<double>::infinity();
-    for (int64_t t : active) {
-      if (alpha[t] < upper && gradient[t] <= g_min) {
-        g_min = gradient[t];
-        i = t;
+    if (next_i_valid) {
+      i = next_i;
+      g_min = next_g_min;
+    } else {
+      for (int64_t t : active) {
+        if (alpha[t] < upper && gradient[t] <= g_min) {
+          g_min = gradient[t];
+          i = t;
+        }
       }
     }
+    next_i_valid = false;
     int64_t j = -1;
     double g_max = -std::numeric_limits<double>::infinity();
     if (i >= 0) {
@@ -366,6 +378,7 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
     if (i < 0 || j < 0 || g_max - g_min < eps) {
       if (static_cast<int64_t>(active.size()) < l) {
         restore_all();  // re-check optimality on the full set
+        next_i_valid = false;
         unshrunk = true;
         countdown = shrink_interval;
         just_restored = true;
@@ -409,7 +422,17 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
     alpha[j] = new_j;
     const double delta_i = new_i - old_i, delta_j = new_j - old_j;
     // column_i may have been evicted by fetching column_j only if capacity were 1; it is >= 2.
-    for (int64_t t : active) gradient[t] += column_i[t] * delta_i + column_j[t] * delta_j;
+    next_g_min = std::numeric_limits<double>::infinity();
+    next_i = -1;
+    for (int64_t t : active) {
+      const double g = gradient[t] + column_i[t] * delta_i + column_j[t] * delta_j;
+      gradient[t] = g;
+      if (alpha[t] < upper && g <= next_g_min) {
+        next_g_min = g;
+        next_i = t;
+      }
+    }
+    next_i_valid = true;
   }
   if (static_cast<int64_t>(active.size()) < l) restore_all();
 
