@@ -15,6 +15,8 @@
 #include <string>
 #include <vector>
 
+#include "common/random_data.h"
+
 namespace nuwatch {
 namespace {
 
@@ -22,14 +24,7 @@ using ::testing::HasSubstr;
 using ::testing::Not;
 namespace fs = std::filesystem;
 
-MatrixD RandomGaussian(int64_t rows, int64_t cols, uint64_t seed) {
-  std::mt19937_64 generator(seed);
-  std::normal_distribution<double> normal(0.0, 1.0);
-  MatrixD m(rows, cols);
-  for (int64_t i = 0; i < rows; ++i)
-    for (int64_t j = 0; j < cols; ++j) m(i, j) = normal(generator);
-  return m;
-}
+using testing_data::RandomGaussian;
 
 std::vector<double> Row(const MatrixD& x, int64_t i) {
   return std::vector<double>(x.row(i).data(), x.row(i).data() + x.cols());
@@ -491,7 +486,8 @@ TEST(LoadModel, MissingAndCorruptFilesNameThePath) {
   }
 }
 
-// Regression test (was a bug): LoadModel on a path that is a directory lets a std::ios_base::failure escape
+// Regression test (was a bug): LoadModel on a path that is a directory lets a
+// std::ios_base::failure escape
 // ("basic_filebuf::underflow error reading the file: Is a directory", without the path) instead of
 // the ModelFileError naming the path that model_file.h promises for any I/O failure. The ifstream
 // opens a directory without complaint on Linux; the read then throws from inside the

@@ -12,19 +12,14 @@
 #include <string>
 #include <vector>
 
+#include "common/random_data.h"
+
 namespace nuwatch {
 namespace {
 
 using ::testing::HasSubstr;
 
-MatrixD RandomGaussian(int64_t rows, int64_t cols, uint64_t seed) {
-  std::mt19937_64 generator(seed);
-  std::normal_distribution<double> normal(0.0, 1.0);
-  MatrixD m(rows, cols);
-  for (int64_t i = 0; i < rows; ++i)
-    for (int64_t j = 0; j < cols; ++j) m(i, j) = normal(generator);
-  return m;
-}
+using testing_data::RandomGaussian;
 
 // Raw data with per-feature location and spread, so that scaling matters.
 MatrixD RawData(int64_t rows, int64_t cols, uint64_t seed) {

@@ -9,19 +9,14 @@
 #include <limits>
 #include <random>
 
+#include "common/random_data.h"
+
 namespace nuwatch {
 namespace {
 
 using ::testing::HasSubstr;
 
-MatrixD RandomGaussian(int64_t rows, int64_t cols, uint64_t seed) {
-  std::mt19937_64 generator(seed);
-  std::normal_distribution<double> normal(0.0, 1.0);
-  MatrixD m(rows, cols);
-  for (int64_t i = 0; i < rows; ++i)
-    for (int64_t j = 0; j < cols; ++j) m(i, j) = normal(generator);
-  return m;
-}
+using testing_data::RandomGaussian;
 
 TEST(ScalerStandard, HandWorkedParameters) {
   // Column 0 = {1, 2, 3, 4}: mean 2.5, population variance ((1.5^2 + 0.5^2) * 2) / 4 = 1.25.

@@ -38,19 +38,14 @@
 #include <string>
 #include <vector>
 
+#include "common/random_data.h"
+
 namespace nuwatch {
 namespace {
 
 using ::testing::HasSubstr;
 
-MatrixD RandomGaussian(int64_t rows, int64_t cols, uint64_t seed) {
-  std::mt19937_64 generator(seed);
-  std::normal_distribution<double> normal(0.0, 1.0);
-  MatrixD m(rows, cols);
-  for (int64_t i = 0; i < rows; ++i)
-    for (int64_t j = 0; j < cols; ++j) m(i, j) = normal(generator);
-  return m;
-}
+using testing_data::RandomGaussian;
 
 Kernel Rbf(double gamma) {
   Kernel k;
@@ -321,13 +316,13 @@ TEST(WarmStart, FromPerturbedFeasiblePointsReachesTheColdObjective) {
   }
 }
 
-// Regression test (was a bug): the round trip through the unscaled alpha (a = a' / (nu l) in the result, a' = a nu l
-// on the warm start) can turn an alpha at its bound into 1 - 1 ulp, which the solver then treats
-// as free (it is below the bound) with a gradient far below the others, so SMO spends one step per
-// bounded SV pushing it back. Here l = 500, nu = 0.098: nu l = 49 and (1 / 49) * 49 = 1 - 2^-53,
-// so all 39 bounded SVs come back 1 ulp low and the warm start from the optimum takes 39
-// iterations instead of 0 (nu = 0.1525 and 0.3 round-trip exactly and take 0). Snapping seed
-// values within 1e-9 of the bound onto it would fix it.
+// Regression test (was a bug): the round trip through the unscaled alpha (a = a' / (nu l) in the
+// result, a' = a nu l on the warm start) can turn an alpha at its bound into 1 - 1 ulp, which the
+// solver then treats as free (it is below the bound) with a gradient far below the others, so SMO
+// spends one step per bounded SV pushing it back. Here l = 500, nu = 0.098: nu l = 49 and (1 / 49)
+// * 49 = 1 - 2^-53, so all 39 bounded SVs come back 1 ulp low and the warm start from the optimum
+// takes 39 iterations instead of 0 (nu = 0.1525 and 0.3 round-trip exactly and take 0). Snapping
+// seed values within 1e-9 of the bound onto it would fix it.
 TEST(WarmStart, FromTheOptimumTakesAlmostNoIterations) {
   const MatrixD x = RandomGaussian(500, 4, 310);
   const Kernel kernel = RbfScale(x);
@@ -591,13 +586,13 @@ TEST(EdgeCases, SingleRow) {
   }
 }
 
-// Regression test (was a bug): SolveOneClass never returns for a single row with nu = 1 and shrinking on (the
-// defaults otherwise). With l = 1 the shrink interval min(l, 1000) is 1, so every pass of the main
-// loop shrinks; the only alpha sits at its bound with G < min_up = inf, so it is shrunk, the
-// working set is then empty, the full set is restored without counting an iteration, and the next
-// pass shrinks it again: an endless loop that max_iterations does not bound. Expected: alpha = {1},
-// rho = k(x, x) = 1, converged. Run in a child process with a watchdog (alarm) so that the bug
-// fails this test instead of hanging the suite; the solve itself takes microseconds.
+// Regression test (was a bug): SolveOneClass never returns for a single row with nu = 1 and
+// shrinking on (the defaults otherwise). With l = 1 the shrink interval min(l, 1000) is 1, so every
+// pass of the main loop shrinks; the only alpha sits at its bound with G < min_up = inf, so it is
+// shrunk, the working set is then empty, the full set is restored without counting an iteration,
+// and the next pass shrinks it again: an endless loop that max_iterations does not bound. Expected:
+// alpha = {1}, rho = k(x, x) = 1, converged. Run in a child process with a watchdog (alarm) so that
+// the bug fails this test instead of hanging the suite; the solve itself takes microseconds.
 TEST(EdgeCasesDeathTest, SingleRowWithNuOneAndShrinkingReturns) {
   const MatrixD x = SingleRowMatrix();
   SolverOptions options = Options(1.0);
