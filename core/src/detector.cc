@@ -155,7 +155,11 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
         old_ids = shared.solution_ids;
         old_alpha = shared.solution_alpha;
       }
-      seed = MapWarmStart(old_ids, old_alpha, in.ids, o.nu);
+      // The missing mass goes to the samples farthest from the window's mean first, the same
+      // guess the solver's cold start makes (MapWarmStart takes the lowest value first).
+      const Eigen::RowVectorXd mean = z.colwise().mean();
+      const VectorD priority = -(z.rowwise() - mean).rowwise().squaredNorm();
+      seed = MapWarmStart(old_ids, old_alpha, in.ids, o.nu, &priority);
     } else {
       scaler = Scaler::Fit(o.scaler, in.rows);
       z = scaler.Transform(in.rows);

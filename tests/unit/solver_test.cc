@@ -428,8 +428,17 @@ TEST(IterationCap, ReportsNotConvergedWithAFeasibleAlpha) {
   EXPECT_FALSE(r.converged);
   EXPECT_EQ(r.iterations, 5);
   ExpectFeasible(r, x.rows(), 0.3);
-  // Five pairwise steps from the cold start move at most ten alphas.
-  const VectorD cold = ColdStartAlpha(x.rows(), 0.3);
+  // Five pairwise steps from the cold start move at most ten alphas. The cold start (solver.h):
+  // ColdStartAlpha's values on the rows sorted by decreasing distance from the mean.
+  const VectorD libsvm_order = ColdStartAlpha(x.rows(), 0.3);
+  const Eigen::RowVectorXd mean = x.colwise().mean();
+  const VectorD distances = (x.rowwise() - mean).rowwise().squaredNorm();
+  std::vector<int64_t> order(x.rows());
+  for (int64_t i = 0; i < x.rows(); ++i) order[i] = i;
+  std::stable_sort(order.begin(), order.end(),
+                   [&](int64_t p, int64_t q) { return distances[p] > distances[q]; });
+  VectorD cold(x.rows());
+  for (int64_t rank = 0; rank < x.rows(); ++rank) cold[order[rank]] = libsvm_order[rank];
   EXPECT_LE(((r.alpha - cold).array().abs() > 1e-15).count(), 10);
   // Every SMO step minimises the objective exactly along its pair direction (Fan, Chen, Lin 2005),
   // so five steps end strictly below the cold start's objective. Computed on the cold start's

@@ -47,6 +47,8 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
                            const VectorD* initial_alpha = nullptr);
 
 // LIBSVM's cold start: the first floor(nu l) rows at the bound, the remainder on the next row.
+// SolveOneClass without a seed uses these values on the rows sorted by decreasing distance from
+// the mean (the likeliest outliers first), which reaches the same optimum in fewer iterations.
 VectorD ColdStartAlpha(int64_t rows, double nu);
 
 }  // namespace nuwatch
