@@ -10,6 +10,8 @@
 #include <cstdio>
 #include <string>
 
+#include "common/run_command.h"
+
 namespace {
 
 const std::string kNuwatchd = NUWATCH_BINARY_DIR "/daemon/nuwatchd";
@@ -22,24 +24,8 @@ std::string Quote(const std::string& text) {
   return quoted + "'";
 }
 
-struct RunResult {
-  int exit_code = -1;
-  std::string output;
-};
-
-// Runs `command` through the shell with stderr joined to stdout.
-RunResult Run(const std::string& command) {
-  RunResult result;
-  std::FILE* pipe = ::popen((command + " 2>&1").c_str(), "r");
-  if (pipe == nullptr) return result;
-  std::array<char, 4096> buffer;
-  std::size_t n;
-  while ((n = std::fread(buffer.data(), 1, buffer.size(), pipe)) > 0)
-    result.output.append(buffer.data(), n);
-  const int status = ::pclose(pipe);
-  result.exit_code = WIFEXITED(status) ? WEXITSTATUS(status) : 128 + WTERMSIG(status);
-  return result;
-}
+using RunResult = nuwatch::testing_data::CommandResult;
+const auto& Run = nuwatch::testing_data::RunCommand;
 
 // The script's unittest class `test_class`, which must pass.
 void RunScript(const std::string& test_class) {

@@ -11,31 +11,20 @@
 #include <cstdio>
 #include <string>
 
+#include "common/run_command.h"
+
 namespace {
 
 const std::string kPromtool = "/usr/bin/promtool";
 const std::string kPrometheusDir = NUWATCH_SOURCE_DIR "/deploy/prometheus";
 
-struct RunResult {
-  int exit_code = -1;
-  std::string output;
-};
+using RunResult = nuwatch::testing_data::CommandResult;
 
 // Runs promtool with `arguments` (no shell quoting needed: fixed paths) in the rules' directory,
 // so that relative rule_files resolve as they do for a user.
 RunResult RunPromtool(const std::string& arguments) {
-  RunResult result;
-  const std::string command =
-      "cd '" + kPrometheusDir + "' && " + kPromtool + " " + arguments + " 2>&1";
-  std::FILE* pipe = ::popen(command.c_str(), "r");
-  if (pipe == nullptr) return result;
-  std::array<char, 4096> buffer;
-  std::size_t n;
-  while ((n = std::fread(buffer.data(), 1, buffer.size(), pipe)) > 0)
-    result.output.append(buffer.data(), n);
-  const int status = ::pclose(pipe);
-  result.exit_code = WIFEXITED(status) ? WEXITSTATUS(status) : 128 + WTERMSIG(status);
-  return result;
+  return nuwatch::testing_data::RunCommand("cd '" + kPrometheusDir + "' && " + kPromtool + " " +
+                                           arguments);
 }
 
 class PromtoolTest : public ::testing::Test {
