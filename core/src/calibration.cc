@@ -34,7 +34,8 @@ struct Profile {
   GeneralizedPareto fit;
 };
 
-Profile ProfileAt(double theta, std::span<const double> y, double y_max, double y_mean) {
+Profile ProfileAt(double theta, std::span<const double> y, double y_max, double y_mean,
+                  double min_shape) {
   Profile out;
   const double n = static_cast<double>(y.size());
   if (std::abs(theta) * y_max < kExponentialLimit) {
@@ -46,7 +47,7 @@ Profile ProfileAt(double theta, std::span<const double> y, double y_max, double 
   double sum = 0;
   for (const double v : y) sum += std::log1p(theta * v);
   const double shape = sum / n;
-  if (shape < kMinShape || shape == 0) return out;
+  if (shape < min_shape || shape == 0) return out;
   const double scale = shape / theta;
   if (!(scale > 0) || !std::isfinite(scale)) return out;
   out.fit = {shape, scale};
@@ -86,7 +87,11 @@ double GeneralizedPareto::LogLikelihood(std::span<const double> y) const {
   return total;
 }
 
-GeneralizedPareto FitGeneralizedPareto(std::span<const double> y) {
+GeneralizedPareto FitGeneralizedPareto(std::span<const double> y, double min_shape) {
+  if (!(min_shape >= kMinShape && min_shape <= 0)) {
+    throw PreconditionError("FitGeneralizedPareto: min_shape = " + Num(min_shape) +
+                            " must be in [-0.5, 0]");
+  }
   if (y.size() < 3) {
     throw PreconditionError("FitGeneralizedPareto: " + std::to_string(y.size()) +
                             " excesses, need at least 3");
@@ -123,7 +128,7 @@ GeneralizedPareto FitGeneralizedPareto(std::span<const double> y) {
   std::size_t best = 0;
   std::vector<double> values(grid.size());
   for (std::size_t k = 0; k < grid.size(); ++k) {
-    values[k] = ProfileAt(grid[k], y, y_max, y_mean).log_likelihood;
+    values[k] = ProfileAt(grid[k], y, y_max, y_mean, min_shape).log_likelihood;
     if (values[k] > values[best]) best = k;
   }
   if (!std::isfinite(values[best])) {
@@ -135,25 +140,25 @@ GeneralizedPareto FitGeneralizedPareto(std::span<const double> y) {
   double hi = grid[best + 1 < grid.size() ? best + 1 : best];
   const double golden = (std::sqrt(5.0) - 1) / 2;
   double x1 = hi - golden * (hi - lo), x2 = lo + golden * (hi - lo);
-  double f1 = ProfileAt(x1, y, y_max, y_mean).log_likelihood;
-  double f2 = ProfileAt(x2, y, y_max, y_mean).log_likelihood;
+  double f1 = ProfileAt(x1, y, y_max, y_mean, min_shape).log_likelihood;
+  double f2 = ProfileAt(x2, y, y_max, y_mean, min_shape).log_likelihood;
   for (int it = 0; it < 200 && hi - lo > 1e-14 * (std::abs(lo) + std::abs(hi)); ++it) {
     if (f1 >= f2) {
       hi = x2;
       x2 = x1;
       f2 = f1;
       x1 = hi - golden * (hi - lo);
-      f1 = ProfileAt(x1, y, y_max, y_mean).log_likelihood;
+      f1 = ProfileAt(x1, y, y_max, y_mean, min_shape).log_likelihood;
     } else {
       lo = x1;
       x1 = x2;
       f1 = f2;
       x2 = lo + golden * (hi - lo);
-      f2 = ProfileAt(x2, y, y_max, y_mean).log_likelihood;
+      f2 = ProfileAt(x2, y, y_max, y_mean, min_shape).log_likelihood;
     }
   }
-  Profile refined = ProfileAt(f1 >= f2 ? x1 : x2, y, y_max, y_mean);
-  Profile at_grid = ProfileAt(grid[best], y, y_max, y_mean);
+  Profile refined = ProfileAt(f1 >= f2 ? x1 : x2, y, y_max, y_mean, min_shape);
+  Profile at_grid = ProfileAt(grid[best], y, y_max, y_mean, min_shape);
   return refined.log_likelihood >= at_grid.log_likelihood ? refined.fit : at_grid.fit;
 }
 
@@ -177,6 +182,9 @@ void CheckCalibrationOptions(const CalibrationOptions& o, std::string_view where
   }
   if (o.min_tail_exceedances < 3) {
     fail("min_tail_exceedances = " + std::to_string(o.min_tail_exceedances) + " must be >= 3");
+  }
+  if (!(o.min_tail_shape >= kMinShape && o.min_tail_shape <= 0)) {
+    fail("min_tail_shape = " + Num(o.min_tail_shape) + " must be in [-0.5, 0]");
   }
   if (!(o.tail_fraction > 0 && o.tail_fraction <= 0.2)) {
     fail("tail_fraction = " + Num(o.tail_fraction) + " must be in (0, 0.2]");
@@ -208,10 +216,9 @@ IncidentCount CountIncidents(std::span<const double> p_values, std::span<const d
   return count;
 }
 
-double Calibration::PValue(double decision) const {
-  if (std::isnan(decision)) return decision;
+double Calibration::PValue(double a) const {
+  if (std::isnan(a)) return a;
   const auto& s = parts_.sorted_scores;
-  const double a = -decision;
   const double n = static_cast<double>(s.size());
   if (parts_.has_tail && a > parts_.junction_score) {
     const double reference = parts_.tail.Survival(parts_.junction_score - parts_.tail_threshold);
@@ -225,21 +232,21 @@ double Calibration::PValue(double decision) const {
   return (1 + at_or_above) / (n + 1);
 }
 
-double Calibration::DecisionThreshold() const {
+double Calibration::Threshold() const {
   const auto& s = parts_.sorted_scores;
   const int64_t n = static_cast<int64_t>(s.size());
   const double level = parts_.summary.level;
   if (parts_.has_tail && level < parts_.junction_p) {
     const double reference = parts_.tail.Survival(parts_.junction_score - parts_.tail_threshold);
     const double q = level * reference / parts_.junction_p;
-    return -(parts_.tail_threshold + parts_.tail.InverseSurvival(q));
+    return parts_.tail_threshold + parts_.tail.InverseSurvival(q);
   }
   // Flagged iff at most k scores are >= a, with k = floor(level (n + 1) - 1): a above the
   // (k + 1)-th largest score.
   const int64_t k = static_cast<int64_t>(std::floor(level * static_cast<double>(n + 1) - 1 + 1e-9));
-  if (k < 0) return -std::numeric_limits<double>::infinity();
-  if (k >= n) return std::numeric_limits<double>::infinity();
-  return -static_cast<double>(s[static_cast<std::size_t>(n - k - 1)]);
+  if (k < 0) return std::numeric_limits<double>::infinity();
+  if (k >= n) return -std::numeric_limits<double>::infinity();
+  return static_cast<double>(s[static_cast<std::size_t>(n - k - 1)]);
 }
 
 std::string_view Calibration::Method() const {
@@ -324,7 +331,7 @@ Calibration Calibration::Fit(std::span<const double> scores, std::span<const dou
     std::vector<double> excess;
     for (int64_t i = n - exceedances; i < n; ++i) excess.push_back(sorted[i] - u);
     if (excess.back() > excess.front()) {
-      parts.tail = FitGeneralizedPareto(excess);
+      parts.tail = FitGeneralizedPareto(excess, o.min_tail_shape);
       parts.has_tail = true;
       parts.tail_threshold = u;
       parts.junction_score =
@@ -337,7 +344,7 @@ Calibration Calibration::Fit(std::span<const double> scores, std::span<const dou
   if (c.parts_.has_tail) {
     // The conformal p-value at the junction, computed before the tail takes over there.
     c.parts_.has_tail = false;
-    c.parts_.junction_p = c.PValue(-c.parts_.junction_score);
+    c.parts_.junction_p = c.PValue(c.parts_.junction_score);
     c.parts_.has_tail = true;
   }
 
@@ -351,7 +358,7 @@ Calibration Calibration::Fit(std::span<const double> scores, std::span<const dou
   if (!times.empty()) span = times[n - 1] - times[0];
   if (span > 0) {
     std::vector<double> p(static_cast<std::size_t>(n));
-    for (int64_t i = 0; i < n; ++i) p[i] = c.PValue(-scores[i]);
+    for (int64_t i = 0; i < n; ++i) p[i] = c.PValue(scores[i]);
     CalibrationSummary& s = c.parts_.summary;
     s.span_days = span / 86400.0;
     s.vectors_per_day = static_cast<double>(n - 1) / s.span_days;

@@ -75,6 +75,18 @@ void CheckDetectorOptions(const DetectorOptions& o, std::string_view where) {
     fail("open_after = " + std::to_string(o.open_after) + ", open_window = " +
          std::to_string(o.open_window) + ": need 1 <= open_after <= open_window");
   if (o.close_after < 1) fail("close_after = " + std::to_string(o.close_after) + " must be >= 1");
+  if (o.calibration_folds != 0 && (o.calibration_folds < 2 || o.calibration_folds > 50))
+    fail("calibration_folds = " + std::to_string(o.calibration_folds) +
+         " must be 0 (off) or in [2, 50]");
+  if (!(std::isfinite(o.false_alarm_rate) && o.false_alarm_rate >= 0 && o.false_alarm_rate <= 0.5))
+    fail("false_alarm_rate = " + value(o.false_alarm_rate) + " must be in [0, 0.5]");
+  if (!(std::isfinite(o.false_incidents_per_day) && o.false_incidents_per_day >= 0))
+    fail("false_incidents_per_day = " + value(o.false_incidents_per_day) +
+         " must be finite and >= 0");
+  if (o.calibration_folds != 0 && o.false_alarm_rate == 0 && o.false_incidents_per_day == 0)
+    fail(
+        "false_alarm_rate and false_incidents_per_day are both 0: set a false-alarm budget, or "
+        "calibration_folds = 0 to flag decision < 0 uncalibrated");
 }
 
 namespace {
@@ -121,6 +133,7 @@ struct RefitInput {
   DetectorOptions options;
   MatrixD rows;
   std::vector<uint64_t> ids;
+  std::vector<double> times;
   std::shared_ptr<const Model> base;  // null for a cold fit
   RefitReason reason;
   double time;
@@ -132,98 +145,27 @@ template <typename SharedT>
 void RunRefit(SharedT& shared, const RefitInput& in) {
   const auto started = std::chrono::steady_clock::now();
   RefitReport report;
-  report.reason = in.reason;
-  report.window_vectors = in.rows.rows();
-  std::shared_ptr<const Model> result;
-  std::vector<uint64_t> solution_ids;
-  VectorD solution_alpha;
+  WindowFitResult fit;
   try {
-    const DetectorOptions& o = in.options;
-    Scaler scaler;
-    Kernel kernel;
-    MatrixD z;
-    VectorD seed;
-    const bool warm = in.base != nullptr;
-    if (warm) {
-      scaler = in.base->parts().scaler;
-      kernel = in.base->kernel();
-      z = scaler.Transform(in.rows);
-      std::vector<uint64_t> old_ids;
-      VectorD old_alpha;
-      {
-        std::lock_guard<std::mutex> lock(shared.mutex);
-        old_ids = shared.solution_ids;
-        old_alpha = shared.solution_alpha;
-      }
-      // The missing mass goes to the samples farthest from the window's mean first, the same
-      // guess the solver's cold start makes (MapWarmStart takes the lowest value first).
-      const Eigen::RowVectorXd mean = z.colwise().mean();
-      const VectorD priority = -(z.rowwise() - mean).rowwise().squaredNorm();
-      seed = MapWarmStart(old_ids, old_alpha, in.ids, o.nu, &priority);
-    } else {
-      scaler = Scaler::Fit(o.scaler, in.rows);
-      z = scaler.Transform(in.rows);
-      kernel.type = o.kernel;
-      kernel.gamma = o.kernel == KernelType::kLinear ? 1.0 : ResolveGamma(o.gamma, z);
-      kernel.degree = o.degree;
-      kernel.coef0 = o.coef0;
-    }
-    report.warm = warm;
-    SolverOptions solver;
-    solver.nu = o.nu;
-    solver.tolerance = o.tolerance;
-    solver.cache_bytes = o.cache_bytes;
-    solver.max_iterations = o.max_iterations;
     uint64_t version;
+    WarmStart warm;
     {
       std::lock_guard<std::mutex> lock(shared.mutex);
       version = shared.next_version++;
-    }
-    WindowFit fit = FitScaled(z, scaler, kernel, o.gamma, solver, warm ? &seed : nullptr, version,
-                              o.feature_names);
-    report.iterations = fit.solution.iterations;
-    report.converged = fit.solution.converged;
-    report.solve_seconds = fit.solution.seconds;
-    report.support_vectors_fitted = fit.model->num_support();
-    result = fit.model;
-    if (fit.model->num_support() > o.support_vector_budget) {
-      const auto compress_started = std::chrono::steady_clock::now();
-      const ModelParts& fitted = fit.model->parts();
-      BudgetResult compressed = CompressToBudget(fitted.support_vectors, fitted.coefficients,
-                                                 kernel, o.support_vector_budget);
-      ModelParts parts = fitted;
-      parts.support_vectors = std::move(compressed.support_vectors);
-      parts.coefficients = std::move(compressed.coefficients);
-      // The old rho belongs to the uncompressed weight vector; recalibrate on the window so that
-      // the window's outlier fraction is nu again (methods.md).
-      parts.rho = 0;
-      Model unshifted(parts);
-      parts.rho = RecalibrateRho(unshifted.KernelSumsScaled(z), o.nu);
-      parts.compression.support_vectors_before = fitted.support_vectors.rows();
-      parts.compression.support_vectors_after = parts.support_vectors.rows();
-      parts.compression.weight_degradation = compressed.weight_degradation;
-      parts.compression.rho_before = fitted.rho;
-      parts.compression.seconds = Seconds(compress_started);
-      report.compress_seconds = parts.compression.seconds;
-      report.weight_degradation = compressed.weight_degradation;
-      result = std::make_shared<const Model>(std::move(parts));
-    }
-    report.support_vectors = result->num_support();
-    report.model_version = version;
-    report.ok = true;
-    // Only the support vectors' alphas are kept: the rest are 0, and a warm start maps by id.
-    const VectorD& alpha = fit.solution.alpha;
-    solution_alpha.resize((alpha.array() > 0).count());
-    for (int64_t i = 0, k = 0; i < alpha.size(); ++i) {
-      if (alpha[i] > 0) {
-        solution_ids.push_back(in.ids[i]);
-        solution_alpha[k++] = alpha[i];
+      if (in.base) {
+        warm.ids = shared.solution_ids;
+        warm.alpha = shared.solution_alpha;
       }
     }
+    warm.base = in.base;
+    fit = FitWindow(in.rows, in.ids, in.times, in.options, in.base ? &warm : nullptr, version);
+    report = fit.report;
   } catch (const std::exception& e) {
     report.ok = false;
     report.error = e.what();
   }
+  report.reason = in.reason;
+  report.window_vectors = in.rows.rows();
   report.total_seconds = Seconds(started);
   std::function<void(const RefitReport&)> listener;
   {
@@ -231,10 +173,10 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
     if (shared.generation != in.generation) {
       report.discarded = true;
     } else if (report.ok) {
-      shared.solution_ids = std::move(solution_ids);
-      shared.solution_alpha = std::move(solution_alpha);
+      shared.solution_ids = std::move(fit.solution_ids);
+      shared.solution_alpha = std::move(fit.solution_alpha);
       shared.model_time.store(in.time);
-      shared.model.store(result);
+      shared.model.store(fit.model);
     }
     shared.last_report = report;
     listener = shared.listener;
@@ -247,7 +189,168 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
   shared.idle.notify_all();
 }
 
+// One model on the rows: the scaler and kernel from the rows or frozen from `frozen`, the solver
+// (seeded from the solution given by id, if any), and compression to the budget.
+struct SingleFit {
+  std::shared_ptr<const Model> model;
+  SolverResult solution;
+  int64_t support_vectors_fitted = 0;
+  double weight_degradation = 0;
+  double compress_seconds = 0;
+};
+
+SingleFit FitOnce(const MatrixD& rows, const std::vector<uint64_t>& ids, const DetectorOptions& o,
+                  const Model* frozen, const std::vector<uint64_t>* seed_ids,
+                  const VectorD* seed_alpha, uint64_t version) {
+  Scaler scaler;
+  Kernel kernel;
+  GammaSpec gamma_spec = o.gamma;
+  if (frozen != nullptr) {
+    scaler = frozen->parts().scaler;
+    kernel = frozen->kernel();
+    gamma_spec = frozen->parts().gamma_spec;
+  } else {
+    scaler = Scaler::Fit(o.scaler, rows);
+  }
+  const MatrixD z = scaler.Transform(rows);
+  if (frozen == nullptr) {
+    kernel.type = o.kernel;
+    kernel.gamma = o.kernel == KernelType::kLinear ? 1.0 : ResolveGamma(o.gamma, z);
+    kernel.degree = o.degree;
+    kernel.coef0 = o.coef0;
+  }
+  VectorD seed;
+  if (seed_ids != nullptr && seed_alpha != nullptr && !seed_ids->empty()) {
+    // The missing mass goes to the samples farthest from the window's mean first, the same guess
+    // the solver's cold start makes (MapWarmStart takes the lowest value first).
+    const Eigen::RowVectorXd mean = z.colwise().mean();
+    const VectorD priority = -(z.rowwise() - mean).rowwise().squaredNorm();
+    seed = MapWarmStart(*seed_ids, *seed_alpha, ids, o.nu, &priority);
+  }
+  SolverOptions solver;
+  solver.nu = o.nu;
+  solver.tolerance = o.tolerance;
+  solver.cache_bytes = o.cache_bytes;
+  solver.max_iterations = o.max_iterations;
+  WindowFit fit = FitScaled(z, scaler, kernel, gamma_spec, solver, seed.size() ? &seed : nullptr,
+                            version, o.feature_names);
+  SingleFit out;
+  out.support_vectors_fitted = fit.model->num_support();
+  out.model = fit.model;
+  out.solution = std::move(fit.solution);
+  if (fit.model->num_support() > o.support_vector_budget) {
+    const auto compress_started = std::chrono::steady_clock::now();
+    const ModelParts& fitted = fit.model->parts();
+    BudgetResult compressed = CompressToBudget(fitted.support_vectors, fitted.coefficients, kernel,
+                                               o.support_vector_budget);
+    ModelParts parts = fitted;
+    parts.support_vectors = std::move(compressed.support_vectors);
+    parts.coefficients = std::move(compressed.coefficients);
+    // The old rho belongs to the uncompressed weight vector; recalibrate on the window so that
+    // the window's outlier fraction is nu again (methods.md).
+    parts.rho = 0;
+    Model unshifted(parts);
+    parts.rho = RecalibrateRho(unshifted.KernelSumsScaled(z), o.nu);
+    parts.compression.support_vectors_before = fitted.support_vectors.rows();
+    parts.compression.support_vectors_after = parts.support_vectors.rows();
+    parts.compression.weight_degradation = compressed.weight_degradation;
+    parts.compression.rho_before = fitted.rho;
+    parts.compression.seconds = Seconds(compress_started);
+    out.compress_seconds = parts.compression.seconds;
+    out.weight_degradation = compressed.weight_degradation;
+    out.model = std::make_shared<const Model>(std::move(parts));
+  }
+  return out;
+}
+
 }  // namespace
+
+WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
+                          std::span<const double> times, const DetectorOptions& o,
+                          const WarmStart* warm, uint64_t version) {
+  CheckDetectorOptions(o, "FitWindow");
+  const int64_t n = rows.rows();
+  if (n < 2 || static_cast<int64_t>(ids.size()) != n ||
+      (!times.empty() && static_cast<int64_t>(times.size()) != n)) {
+    throw PreconditionError("FitWindow: " + std::to_string(n) + " rows, " +
+                            std::to_string(ids.size()) + " ids, " + std::to_string(times.size()) +
+                            " times (need at least 2 rows and as many ids, and times if any)");
+  }
+  WindowFitResult result;
+  RefitReport& report = result.report;
+  const Model* frozen = warm != nullptr ? warm->base.get() : nullptr;
+  SingleFit full = FitOnce(rows, ids, o, frozen, warm ? &warm->ids : nullptr,
+                           warm ? &warm->alpha : nullptr, version);
+  report.warm = frozen != nullptr;
+  report.iterations = full.solution.iterations;
+  report.converged = full.solution.converged;
+  report.solve_seconds = full.solution.seconds;
+  report.support_vectors_fitted = full.support_vectors_fitted;
+  report.compress_seconds = full.compress_seconds;
+  report.weight_degradation = full.weight_degradation;
+  // Only the support vectors' alphas are kept: the rest are 0, and a warm start maps by id.
+  const VectorD& alpha = full.solution.alpha;
+  result.solution_alpha.resize((alpha.array() > 0).count());
+  for (int64_t i = 0, k = 0; i < alpha.size(); ++i) {
+    if (alpha[i] > 0) {
+      result.solution_ids.push_back(ids[i]);
+      result.solution_alpha[k++] = alpha[i];
+    }
+  }
+  if (full.solution.bounded_support_vectors == 0 && o.nu < 1) {
+    report.warnings.push_back(
+        "nu = " + std::to_string(o.nu) + " does not bind: no support vector is at the bound, so " +
+        "the window's outlier fraction is below nu (the kernel width hugs the data)");
+  }
+  if (o.nu * static_cast<double>(n) < 10) {
+    report.warnings.push_back(
+        "nu x window = " + std::to_string(o.nu * static_cast<double>(n)) +
+        " is below 10: the envelope rests on a handful of support vectors, and the models fitted "
+        "for calibration differ from it enough that the realised false-alarm rate scatters");
+  }
+
+  const int folds = static_cast<int>(std::min<int64_t>(o.calibration_folds, n / 2));
+  if (o.calibration_folds >= 2 && folds < 2) {
+    report.warnings.push_back("calibration skipped: " + std::to_string(n) +
+                              " vectors are too few for " + std::to_string(o.calibration_folds) +
+                              " folds; flagging decision < 0");
+  }
+  if (folds >= 2) {
+    const auto calibration_started = std::chrono::steady_clock::now();
+    std::vector<double> scores(static_cast<std::size_t>(n));
+    for (int k = 0; k < folds; ++k) {
+      const int64_t begin = n * k / folds, end = n * (k + 1) / folds;
+      MatrixD train(n - (end - begin), rows.cols());
+      std::vector<uint64_t> train_ids;
+      train_ids.reserve(static_cast<std::size_t>(train.rows()));
+      train.topRows(begin) = rows.topRows(begin);
+      train.bottomRows(n - end) = rows.bottomRows(n - end);
+      train_ids.insert(train_ids.end(), ids.begin(), ids.begin() + begin);
+      train_ids.insert(train_ids.end(), ids.begin() + end, ids.end());
+      SingleFit fold = FitOnce(train, train_ids, o, frozen, &result.solution_ids,
+                               &result.solution_alpha, version);
+      VectorD nonconformity;
+      fold.model->EvaluateBatch(rows.middleRows(begin, end - begin), nullptr, &nonconformity);
+      for (int64_t i = begin; i < end; ++i) scores[i] = nonconformity[i - begin];
+    }
+    CalibrationOptions c;
+    c.false_alarm_rate = o.false_alarm_rate;
+    c.false_incidents_per_day = o.false_incidents_per_day;
+    c.debounce = {o.open_after, o.open_window, o.close_after};
+    Calibration calibration = Calibration::Fit(scores, times, c);
+    for (const auto& w : calibration.summary().warnings) report.warnings.push_back(w);
+    report.alarm_level = calibration.level();
+    ModelParts parts = full.model->parts();
+    parts.calibration = std::move(calibration);
+    full.model = std::make_shared<const Model>(std::move(parts));
+    report.calibration_seconds = Seconds(calibration_started);
+  }
+  result.model = full.model;
+  report.support_vectors = result.model->num_support();
+  report.model_version = version;
+  report.ok = true;
+  return result;
+}
 
 Detector::Detector(const DetectorOptions& options, int dims, RefitExecutor* executor)
     : options_(options),
@@ -319,8 +422,10 @@ Verdict Detector::Observe(double time, std::span<const double> x) {
   }
 
   verdict.state = StreamState::kScoring;
-  verdict.decision = model->Decision(x);
-  verdict.outlier = verdict.decision < 0;
+  const Score score = model->Evaluate(x);
+  verdict.decision = score.decision;
+  verdict.p_value = model->PValue(score);
+  verdict.outlier = model->Flagged(score);
   verdict.model_version = model->version();
   verdict.support_vectors = model->num_support();
   if (verdict.outlier) ++counters_.anomalies;
@@ -381,7 +486,7 @@ void Detector::PostRefit(double time, RefitReason reason) {
   ApplyPendingOptions();
   auto input = std::make_shared<RefitInput>();
   input->options = options_;
-  window_.Snapshot(&input->rows, &input->ids, nullptr);
+  window_.Snapshot(&input->rows, &input->ids, &input->times);
   const bool cold = force_cold_ || reason == RefitReason::kWarmup ||
                     refits_since_cold_ + 1 >= options_.cold_refit_every || !model();
   input->base = cold ? nullptr : model();

@@ -2,6 +2,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <limits>
 #include <numeric>
 #include <sstream>
 
@@ -53,10 +54,10 @@ Model::Model(ModelParts parts) : parts_(std::move(parts)) {
   sv_squared_norms_f_ = support_vectors_f_.rowwise().squaredNorm();
 }
 
-double Model::Decision(std::span<const double> x) const {
+Score Model::Evaluate(std::span<const double> x) const {
   const int d = dims();
   if (static_cast<int>(x.size()) != d) {
-    throw PreconditionError("Model::Decision: vector has " + std::to_string(x.size()) +
+    throw PreconditionError("Model::Evaluate: vector has " + std::to_string(x.size()) +
                             " values, the model " + std::to_string(d));
   }
   float stack_buffer[kMaxStackDims];
@@ -72,44 +73,93 @@ double Model::Decision(std::span<const double> x) const {
   const float gamma = static_cast<float>(parts_.kernel.gamma);
   const float coef0 = static_cast<float>(parts_.kernel.coef0);
   const int n = num_support();
-  double total = 0;
   BlockVectorF k;
+  if (parts_.kernel.type == KernelType::kRbf) {
+    // Streaming log-sum-exp over the blocks: sum = total * exp(shift), with shift the largest
+    // exponent so far, so that the kernel sum keeps its magnitude far from every support vector.
+    float shift = -std::numeric_limits<float>::infinity();
+    double total = 0;
+    for (int start = 0; start < n; start += kBlock) {
+      const int m = std::min(kBlock, n - start);
+      k.resize(m);
+      k.noalias() = support_vectors_f_.middleRows(start, m) * zf;
+      k = (-gamma *
+           (sv_squared_norms_f_.segment(start, m).array() + zz - 2.0f * k.array()).max(0.0f))
+              .matrix();
+      const float block_max = k.maxCoeff();
+      if (block_max > shift) {
+        total *= std::exp(static_cast<double>(shift) - block_max);
+        shift = block_max;
+      }
+      k = (k.array() - shift).exp().matrix();
+      total += k.dot(coefficients_f_.segment(start, m));
+    }
+    const double log_sum = shift + std::log(total);
+    return {std::exp(log_sum) - parts_.rho, -log_sum};
+  }
+  double total = 0;
   for (int start = 0; start < n; start += kBlock) {
     const int m = std::min(kBlock, n - start);
     k.resize(m);
     k.noalias() = support_vectors_f_.middleRows(start, m) * zf;
-    switch (parts_.kernel.type) {
-      case KernelType::kLinear:
-        break;
-      case KernelType::kRbf:
-        k = (-gamma *
-             (sv_squared_norms_f_.segment(start, m).array() + zz - 2.0f * k.array()).max(0.0f))
-                .exp()
-                .matrix();
-        break;
-      case KernelType::kPolynomial:
-        k = (gamma * k.array() + coef0).pow(static_cast<float>(parts_.kernel.degree)).matrix();
-        break;
+    if (parts_.kernel.type == KernelType::kPolynomial) {
+      k = (gamma * k.array() + coef0).pow(static_cast<float>(parts_.kernel.degree)).matrix();
     }
     total += k.dot(coefficients_f_.segment(start, m));
   }
-  return total - parts_.rho;
+  const double decision = total - parts_.rho;
+  return {decision, -decision};
 }
 
-VectorD Model::DecisionBatch(const MatrixD& x) const {
+void Model::EvaluateBatch(const MatrixD& x, VectorD* decisions, VectorD* nonconformity) const {
   if (x.cols() != dims()) {
-    throw PreconditionError("Model::DecisionBatch: input has " + std::to_string(x.cols()) +
+    throw PreconditionError("Model::EvaluateBatch: input has " + std::to_string(x.cols()) +
                             " columns, the model " + std::to_string(dims()));
   }
-  VectorD out(x.rows());
+  if (decisions != nullptr) decisions->resize(x.rows());
+  if (nonconformity != nullptr) nonconformity->resize(x.rows());
   constexpr int64_t kRows = 1024;  // bounds the temporary kernel block
+  const float gamma = static_cast<float>(parts_.kernel.gamma);
   for (int64_t start = 0; start < x.rows(); start += kRows) {
     const int64_t m = std::min(kRows, x.rows() - start);
     MatrixF z = parts_.scaler.Transform(x.middleRows(start, m)).cast<float>();
-    MatrixF k = parts_.kernel.Matrix(z, support_vectors_f_);
-    out.segment(start, m) = (k * coefficients_f_).cast<double>().array() - parts_.rho;
+    if (parts_.kernel.type != KernelType::kRbf) {
+      MatrixF k = parts_.kernel.Matrix(z, support_vectors_f_);
+      const VectorD f = (k * coefficients_f_).cast<double>().array() - parts_.rho;
+      if (decisions != nullptr) decisions->segment(start, m) = f;
+      if (nonconformity != nullptr) nonconformity->segment(start, m) = -f;
+      continue;
+    }
+    // Exponents -gamma ||z - s||^2 in GEMM form, then a log-sum-exp per row (as Evaluate).
+    MatrixF e = z * support_vectors_f_.transpose();
+    const VectorF z_norms = z.rowwise().squaredNorm();
+    e = ((-2 * e).colwise() + z_norms).rowwise() + sv_squared_norms_f_.transpose();
+    e = (-gamma * e.array().max(0.0f)).matrix();
+    const VectorF shift = e.rowwise().maxCoeff();
+    e = (e.colwise() - shift).array().exp().matrix();
+    const VectorF totals = e * coefficients_f_;
+    for (int64_t i = 0; i < m; ++i) {
+      const double log_sum =
+          static_cast<double>(shift[i]) + std::log(static_cast<double>(totals[i]));
+      if (decisions != nullptr) (*decisions)[start + i] = std::exp(log_sum) - parts_.rho;
+      if (nonconformity != nullptr) (*nonconformity)[start + i] = -log_sum;
+    }
   }
+}
+
+VectorD Model::DecisionBatch(const MatrixD& x) const {
+  VectorD out;
+  EvaluateBatch(x, &out, nullptr);
   return out;
+}
+
+double Model::PValue(const Score& score) const {
+  return calibrated() ? parts_.calibration.PValue(score.nonconformity)
+                      : std::numeric_limits<double>::quiet_NaN();
+}
+
+bool Model::Flagged(const Score& score) const {
+  return calibrated() ? parts_.calibration.Flagged(score.nonconformity) : score.decision < 0;
 }
 
 double Model::DecisionExact(std::span<const double> x) const {
@@ -181,6 +231,12 @@ std::vector<FeatureShare> Model::Explain(std::span<const double> x, int top_k) c
       break;
     }
   }
+  // Shares are taken in standardised units of each raw feature, so they do not depend on the
+  // features' units; for whiten the gradient is carried back through the rotation first
+  // (z = x_std W, so d f / d x_std = W d f / d z).
+  if (parts_.scaler.type() == ScalerType::kWhiten) {
+    gradient_z = parts_.scaler.whitening() * gradient_z;
+  }
   const double magnitude = gradient_z.cwiseAbs().sum();
   std::vector<FeatureShare> shares(d);
   for (int j = 0; j < d; ++j) {
@@ -199,7 +255,8 @@ std::size_t Model::MemoryBytes() const {
   std::size_t names = 0;
   for (const auto& name : parts_.feature_names) names += name.capacity() + sizeof(std::string);
   return sizeof(Model) + n * d * (sizeof(double) + sizeof(float)) +
-         n * (sizeof(double) + 2 * sizeof(float)) + 4 * d * sizeof(double) + names;
+         n * (sizeof(double) + 2 * sizeof(float)) + 4 * d * sizeof(double) +
+         static_cast<std::size_t>(parts_.scaler.whitening().size()) * sizeof(double) + names;
 }
 
 namespace {

@@ -36,6 +36,67 @@ uint32_t Crc32(const uint8_t* data, std::size_t size, uint32_t crc) {
   return ~crc;
 }
 
+namespace {
+
+void EncodeCalibration(ByteWriter& w, const Calibration& calibration) {
+  w.Put<uint8_t>(calibration.valid() ? 1 : 0);
+  if (!calibration.valid()) return;
+  const Calibration::Parts& c = calibration.parts();
+  w.Put<uint64_t>(c.sorted_scores.size());
+  w.PutArray(c.sorted_scores.data(), c.sorted_scores.size());
+  w.Put<uint8_t>(c.has_tail ? 1 : 0);
+  w.Put<double>(c.tail_threshold);
+  w.Put<double>(c.junction_score);
+  w.Put<double>(c.junction_p);
+  w.Put<double>(c.tail.shape);
+  w.Put<double>(c.tail.scale);
+  const CalibrationSummary& s = c.summary;
+  w.Put<double>(s.false_alarm_rate);
+  w.Put<double>(s.false_incidents_per_day);
+  w.Put<double>(s.level);
+  w.Put<uint8_t>(s.level_from_tail ? 1 : 0);
+  w.Put<double>(s.span_days);
+  w.Put<double>(s.vectors_per_day);
+  w.Put<double>(s.reference_level);
+  w.Put<int64_t>(s.reference_flagged);
+  w.Put<int64_t>(s.reference_opened);
+  w.Put<double>(s.incidents_per_day);
+  w.Put<uint32_t>(static_cast<uint32_t>(s.warnings.size()));
+  for (const auto& warning : s.warnings) w.PutString(warning);
+}
+
+Calibration DecodeCalibration(ByteReader& r) {
+  if (r.Get<uint8_t>("calibration") == 0) return {};
+  Calibration::Parts c;
+  const uint64_t n = r.Get<uint64_t>("calibration");
+  r.Need(n, sizeof(float), "calibration scores");
+  c.sorted_scores.resize(n);
+  r.GetArray(c.sorted_scores.data(), n, "calibration scores");
+  c.has_tail = r.Get<uint8_t>("calibration") != 0;
+  c.tail_threshold = r.Get<double>("calibration");
+  c.junction_score = r.Get<double>("calibration");
+  c.junction_p = r.Get<double>("calibration");
+  c.tail.shape = r.Get<double>("calibration");
+  c.tail.scale = r.Get<double>("calibration");
+  CalibrationSummary& s = c.summary;
+  s.false_alarm_rate = r.Get<double>("calibration");
+  s.false_incidents_per_day = r.Get<double>("calibration");
+  s.level = r.Get<double>("calibration");
+  s.level_from_tail = r.Get<uint8_t>("calibration") != 0;
+  s.span_days = r.Get<double>("calibration");
+  s.vectors_per_day = r.Get<double>("calibration");
+  s.reference_level = r.Get<double>("calibration");
+  s.reference_flagged = r.Get<int64_t>("calibration");
+  s.reference_opened = r.Get<int64_t>("calibration");
+  s.incidents_per_day = r.Get<double>("calibration");
+  const uint32_t warnings = r.Get<uint32_t>("calibration warnings");
+  r.Need(warnings, sizeof(uint32_t), "calibration warnings");
+  for (uint32_t i = 0; i < warnings; ++i) s.warnings.push_back(r.GetString("calibration warnings"));
+  return Calibration::FromParts(std::move(c));
+}
+
+}  // namespace
+
 std::vector<uint8_t> EncodeModel(const Model& model) {
   const ModelParts& p = model.parts();
   ByteWriter w;
@@ -71,6 +132,11 @@ std::vector<uint8_t> EncodeModel(const Model& model) {
   w.Put<uint64_t>(p.version);
   w.Put<uint32_t>(static_cast<uint32_t>(p.feature_names.size()));
   for (const auto& name : p.feature_names) w.PutString(name);
+  // Version 2.
+  const MatrixD& whitening = p.scaler.whitening();
+  w.Put<uint32_t>(static_cast<uint32_t>(whitening.rows()));
+  w.PutArray(whitening.data(), static_cast<std::size_t>(whitening.size()));
+  EncodeCalibration(w, p.calibration);
 
   return WrapChecksummed(kMagic, kModelFormatVersion, w.bytes);
 }
@@ -78,7 +144,7 @@ std::vector<uint8_t> EncodeModel(const Model& model) {
 namespace {
 
 // Requires: a payload whose checksum matched.
-Model DecodeModelPayload(ByteReader& r) {
+Model DecodeModelPayload(ByteReader& r, uint32_t version) {
   ModelParts p;
   const uint8_t kernel_type = r.Get<uint8_t>("kernel");
   if (kernel_type > 2) throw ModelFileError("unknown kernel type " + std::to_string(kernel_type));
@@ -94,7 +160,7 @@ Model DecodeModelPayload(ByteReader& r) {
   const uint32_t d = r.Get<uint32_t>("dimensions");
   const uint32_t n = r.Get<uint32_t>("dimensions");
   const uint8_t scaler_type = r.Get<uint8_t>("scaler");
-  if (scaler_type > 2) throw ModelFileError("unknown scaler type " + std::to_string(scaler_type));
+  if (scaler_type > 3) throw ModelFileError("unknown scaler type " + std::to_string(scaler_type));
   // Sizes are checked against what is left before anything is allocated.
   if (d == 0 || n == 0 ||
       (static_cast<uint64_t>(d) * (n + 2) + n) > r.remaining() / sizeof(double)) {
@@ -128,9 +194,22 @@ Model DecodeModelPayload(ByteReader& r) {
                          " features");
   }
   for (uint32_t i = 0; i < names; ++i) p.feature_names.push_back(r.GetString("feature names"));
-  if (r.remaining() != 0) throw ModelFileError("trailing bytes after the feature names");
+  MatrixD whitening;
   try {
-    p.scaler = Scaler::FromParameters(static_cast<ScalerType>(scaler_type), center, scale);
+    if (version >= 2) {
+      const uint32_t rows = r.Get<uint32_t>("whitening");
+      if (rows != 0 && rows != d) {
+        throw ModelFileError("a whitening matrix of " + std::to_string(rows) + " rows for " +
+                             std::to_string(d) + " features");
+      }
+      r.Need(static_cast<uint64_t>(rows) * rows, sizeof(double), "whitening");
+      whitening.resize(rows, rows);
+      r.GetArray(whitening.data(), static_cast<uint64_t>(rows) * rows, "whitening");
+      p.calibration = DecodeCalibration(r);
+    }
+    if (r.remaining() != 0) throw ModelFileError("trailing bytes after the model");
+    p.scaler =
+        Scaler::FromParameters(static_cast<ScalerType>(scaler_type), center, scale, whitening);
     return Model(std::move(p));
   } catch (const PreconditionError& e) {
     throw ModelFileError(std::string("invalid model contents: ") + e.what());
@@ -140,8 +219,14 @@ Model DecodeModelPayload(ByteReader& r) {
 }  // namespace
 
 Model DecodeModel(const uint8_t* data, std::size_t size) {
-  return DecodeChecksummed<ModelFileError>(data, size, kMagic, kModelFormatVersion, "model",
-                                           kMaxPayloadBytes, DecodeModelPayload);
+  try {
+    const ChecksummedPayload payload =
+        UnwrapChecksummed(data, size, kMagic, kModelFormatVersion, "model", kMaxPayloadBytes);
+    ByteReader reader(payload.data, payload.size, "model");
+    return DecodeModelPayload(reader, payload.version);
+  } catch (const ChecksummedFileError& e) {
+    throw ModelFileError(e.what());
+  }
 }
 
 void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size) {

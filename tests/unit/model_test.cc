@@ -413,11 +413,11 @@ TEST(ModelPreconditions, WrongDimensionsThrowNamingTheFunction) {
       EXPECT_THAT(e.what(), HasSubstr(name));
     }
   };
-  expect([&] { model.Decision(short_row); }, "Model::Decision");
-  expect([&] { model.Decision(long_row); }, "Model::Decision");
+  expect([&] { model.Decision(short_row); }, "Model::Evaluate");
+  expect([&] { model.Evaluate(long_row); }, "Model::Evaluate");
   expect([&] { model.DecisionExact(short_row); }, "Model::DecisionExact");
   expect([&] { model.Explain(long_row, 2); }, "Model::Explain");
-  expect([&] { model.DecisionBatch(RawData(4, 2, 61)); }, "Model::DecisionBatch");
+  expect([&] { model.DecisionBatch(RawData(4, 2, 61)); }, "Model::EvaluateBatch");
   expect([&] { model.KernelSumsScaled(RawData(4, 4, 62)); }, "Model::KernelSumsScaled");
 }
 

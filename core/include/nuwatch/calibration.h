@@ -1,9 +1,10 @@
 // Calibrated alarms: turns decision values into out-of-sample p-values and chooses the level at
 // which a vector is flagged from the user's false-alarm budget (methods.md, "Calibrated alarms").
 //
-// Nonconformity a = -f(x): the further below the envelope, the stranger. The calibration scores
-// a_1..a_n are decision values of normal data that the model scoring them was NOT fitted on (the
-// detector gets them by cross-fitting over contiguous blocks of its window, see detector.h). Then
+// Nonconformity a (model.h's Score: -log of the rbf kernel sum, -f(x) otherwise): the larger, the
+// stranger. The calibration scores a_1..a_n are nonconformities of normal data that the model
+// scoring them was NOT fitted on (the detector gets them by cross-fitting over contiguous blocks
+// of its window, see detector.h). Then
 //   p(x) = (1 + #{i : a_i >= a(x)}) / (n + 1)                        (conformal p-value)
 // and, when x and the calibration data are exchangeable, P(p(x) <= eps) <= eps (Vovk, Gammerman &
 // Shafer 2005; Laxhammar & Falkman 2015; Bates et al., Annals of Statistics 51(1), 2023).
@@ -56,9 +57,10 @@ struct GeneralizedPareto {
 // one-dimensional search (Grimshaw, Technometrics 35(2):185-191, 1993): for theta = shape / scale
 // the likelihood is maximised by shape(theta) = mean(log(1 + theta y_i)); the profile likelihood
 // is searched over theta. The shape is restricted to >= -0.5, where maximum likelihood is regular
-// (Smith, Biometrika 72:67-90, 1985); for shape < -1 the likelihood is unbounded.
+// (Smith, Biometrika 72:67-90, 1985); for shape < -1 the likelihood is unbounded. min_shape in
+// [-0.5, 0] restricts it further (the maximum over shape >= min_shape).
 // Requires: at least 3 values, all finite and >= 0, not all equal. Throws PreconditionError.
-GeneralizedPareto FitGeneralizedPareto(std::span<const double> excesses);
+GeneralizedPareto FitGeneralizedPareto(std::span<const double> excesses, double min_shape = -0.5);
 
 struct CalibrationOptions {
   // Per-vector false-alarm budget eps: flag when p <= eps. 0: not set (false_incidents_per_day
@@ -74,6 +76,11 @@ struct CalibrationOptions {
   // it needs n >= 5 times that many scores, or there is no tail model.
   int min_tail_exceedances = 20;
   double tail_fraction = 0.02;
+  // The tail's shape is kept >= this. 0: a light tail is extrapolated as exponential, never with a
+  // finite endpoint that a few dozen excesses suggest, so the level errs on the side of fewer
+  // false alarms (the rbf nonconformity, about gamma times a squared distance, has an
+  // exponential-like tail for Gaussian-like data: shape 0 is its limit).
+  double min_tail_shape = 0;
   // The incident rate is measured at a level with at least this many flagged calibration vectors.
   int reference_flags = 50;
 };
@@ -132,13 +139,13 @@ class Calibration {
   const CalibrationSummary& summary() const { return parts_.summary; }
   double level() const { return parts_.summary.level; }
 
-  // The p-value of a decision value (nonconformity -decision). Requires valid(); NaN in, NaN out.
-  // Allocates nothing.
-  double PValue(double decision) const;
-  bool Flagged(double decision) const { return PValue(decision) <= parts_.summary.level; }
-  // The decision value below which vectors are flagged at `level` (informational: the boundary
-  // of the alarm region in decision units).
-  double DecisionThreshold() const;
+  // The p-value of a nonconformity score; 0 beyond the endpoint of a tail fitted with a negative
+  // shape. Requires valid(); NaN in, NaN out. Allocates nothing.
+  double PValue(double nonconformity) const;
+  bool Flagged(double nonconformity) const { return PValue(nonconformity) <= parts_.summary.level; }
+  // The nonconformity above which vectors are flagged at `level` (informational: the boundary of
+  // the alarm region; +inf when nothing can be flagged).
+  double Threshold() const;
 
   // "conformal" or "conformal with a generalised Pareto tail".
   std::string_view Method() const;

@@ -70,16 +70,22 @@ struct RefitReport {
   double weight_degradation = 0;
   double solve_seconds = 0;
   double compress_seconds = 0;
+  double calibration_seconds = 0;  // the cross-fitted models and the calibration
   double total_seconds = 0;
   uint64_t model_version = 0;
+  double alarm_level = 0;  // the calibrated p-value level (0: uncalibrated, decision < 0 flags)
+  // Why the alarms may not mean what was set (calibration.h), and "nu does not bind" notes.
+  std::vector<std::string> warnings;
 };
 
 struct Verdict {
   StreamState state = StreamState::kLearning;
   double decision = std::numeric_limits<double>::quiet_NaN();  // NaN while learning
-  bool outlier = false;
-  bool accepted = false;          // the vector entered the training window
-  uint64_t incident_id = 0;       // the open incident after this vector; 0: none
+  // The calibrated p-value (NaN while learning or for an uncalibrated model): small is strange.
+  double p_value = std::numeric_limits<double>::quiet_NaN();
+  bool outlier = false;      // p_value <= the calibrated level (decision < 0 when uncalibrated)
+  bool accepted = false;     // the vector entered the training window
+  uint64_t incident_id = 0;  // the open incident after this vector; 0: none
   IncidentTransition transition;  // an incident opened or closed at this vector
   uint64_t model_version = 0;     // 0 while learning
   int support_vectors = 0;
@@ -180,5 +186,34 @@ class Detector {
 
 // Validates detector options; throws PreconditionError "WHERE: key = value ..." naming the key.
 void CheckDetectorOptions(const DetectorOptions& options, std::string_view where);
+
+// The last solution of a window, for a warm start: the base model's scaler and kernel are kept,
+// and the alphas are mapped onto the new window by sample id (MapWarmStart).
+struct WarmStart {
+  std::shared_ptr<const Model> base;
+  std::vector<uint64_t> ids;
+  VectorD alpha;
+};
+
+struct WindowFitResult {
+  std::shared_ptr<const Model> model;  // compressed to the budget and calibrated
+  std::vector<uint64_t> solution_ids;  // the full solution's support vectors, by sample id
+  VectorD solution_alpha;
+  RefitReport report;  // all but reason, discarded and total_seconds
+};
+
+// The fit of one window, exactly as the detector's refits do it (so that `nuwatch fit`, replay,
+// tune and the daemon share one code path): the scaler and kernel width from the rows (cold, warm
+// == null) or the base model's (warm); the solver; compression to support_vector_budget with rho
+// recalibrated on the window; then, with calibration_folds = K >= 2, K models fitted the same way
+// on the window without each of its K contiguous blocks (contiguous, because neighbouring vectors
+// are correlated: a random split would score each vector by a model that saw its neighbours),
+// each scoring the block it did not see, and the calibration (calibration.h) built from those
+// out-of-sample scores in time order. Each fold model is warm-started from the full solution.
+// Requires: rows.rows() == ids.size() >= 2 (ids strictly increasing), times empty or of the same
+// size; finite values; valid options. Throws PreconditionError otherwise.
+WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
+                          std::span<const double> times, const DetectorOptions& options,
+                          const WarmStart* warm, uint64_t version);
 
 }  // namespace nuwatch

@@ -14,23 +14,23 @@ namespace nuwatch {
 
 struct DetectorOptions {
   // Model.
-  double nu = 0.05;                 // upper bound on the training outlier fraction; (0, 1]
+  double nu = 0.05;  // upper bound on the training outlier fraction; (0, 1]
   KernelType kernel = KernelType::kRbf;
-  GammaSpec gamma;                  // "scale" by default
-  int degree = 3;                   // polynomial kernel only
-  double coef0 = 0.0;               // polynomial kernel only
+  GammaSpec gamma;     // "scale" by default
+  int degree = 3;      // polynomial kernel only
+  double coef0 = 0.0;  // polynomial kernel only
   ScalerType scaler = ScalerType::kStandard;
-  double tolerance = 1e-3;          // solver stopping tolerance (relative, see solver.h)
-  int64_t max_iterations = 0;       // 0: the solver's default cap
+  double tolerance = 1e-3;     // solver stopping tolerance (relative, see solver.h)
+  int64_t max_iterations = 0;  // 0: the solver's default cap
   std::size_t cache_bytes = 64u << 20;
 
   // Window and refits.
-  int64_t window = 2000;            // vectors kept for training
-  double max_age_seconds = 0;       // 0: no age limit on window vectors
-  int64_t warmup = 500;             // vectors before the first fit; <= window
-  int64_t refit_every = 200;        // accepted vectors between refits; 0: fit once, never refit
-  double max_model_age_seconds = 0; // 0: no age-triggered refit
-  int64_t cold_refit_every = 10;    // every n-th refit re-estimates scaler and gamma (cold start)
+  int64_t window = 2000;             // vectors kept for training
+  double max_age_seconds = 0;        // 0: no age limit on window vectors
+  int64_t warmup = 500;              // vectors before the first fit; <= window
+  int64_t refit_every = 200;         // accepted vectors between refits; 0: fit once, never refit
+  double max_model_age_seconds = 0;  // 0: no age-triggered refit
+  int64_t cold_refit_every = 10;     // every n-th refit re-estimates scaler and gamma (cold start)
   int64_t support_vector_budget = 256;
   bool learn_from_anomalies = false;
 
@@ -39,6 +39,15 @@ struct DetectorOptions {
   double drift_delta = 0.005;       // tolerated change of the mean, in decision units
   double drift_lambda = 0.5;        // alarm threshold on the cumulative deviation
   int64_t drift_min_samples = 100;  // no alarm before this many scores since the last refit
+
+  // Calibrated alarms (calibration.h). The alarm level comes from the false-alarm budget, set
+  // out of sample by cross-fitting over calibration_folds contiguous blocks of the window: each
+  // block is scored by a model fitted without it. nu shapes the envelope (the model's
+  // complexity); these decide when to alarm. calibration_folds = 0 turns calibration off (flag
+  // decision < 0, the in-sample rule whose rate on fresh data nu does not bound).
+  double false_alarm_rate = 0.001;     // per-vector budget; 0: not set
+  double false_incidents_per_day = 0;  // false incidents per day of data time; 0: not set
+  int calibration_folds = 5;           // 0 or >= 2
 
   // Incidents: open after open_after of the last open_window vectors were flagged, close after
   // close_after consecutive clean ones.

@@ -31,7 +31,8 @@ struct Kernel {
   // naming `caller` and the offending value otherwise.
   void Validate(std::string_view caller) const;
 
-  // The textbook formula on two vectors of length d; the reference the fast paths are tested against.
+  // The textbook formula on two vectors of length d; the reference the fast paths are tested
+  // against.
   double Evaluate(const double* x, const double* y, int d) const;
 
   // K(i, j) = k(a_i, b_j) in GEMM form (||a||^2 + ||b||^2 - 2 a.b for rbf).

@@ -8,11 +8,13 @@
 #pragma once
 
 #include <cstdint>
+#include <limits>
 #include <memory>
 #include <span>
 #include <string>
 #include <vector>
 
+#include "nuwatch/calibration.h"
 #include "nuwatch/kernel.h"
 #include "nuwatch/scaler.h"
 #include "nuwatch/solver.h"
@@ -40,10 +42,21 @@ struct CompressionStats {
 };
 
 struct FeatureShare {
-  int feature = 0;       // column index
-  double share = 0;      // |d f / d z_j| / sum_k |d f / d z_k| with z the scaled features (so
-                         // shares do not depend on the features' units), in [0, 1]
-  double gradient = 0;   // d f / d x_feature in raw units (positive: increasing x moves inward)
+  int feature = 0;      // column index
+  double share = 0;     // |d f / d s_j| / sum_k |d f / d s_k| with s the standardised features
+                        // (so shares do not depend on the features' units), in [0, 1]
+  double gradient = 0;  // d f / d x_feature in raw units (positive: increasing x moves inward)
+};
+
+// What scoring one vector gives. The nonconformity orders vectors as the decision does (larger:
+// stranger) but does not saturate: for rbf it is -log(sum_i coef_i k(s_i, x)), computed stably
+// (log-sum-exp), which keeps growing with the distance from the support vectors where the decision
+// has flattened out at -rho; for the other kernels it is -decision. Calibration works on it
+// (conformal p-values do not change under a monotone transform of the score, except that the
+// saturated region stays resolved).
+struct Score {
+  double decision = 0;
+  double nonconformity = 0;
 };
 
 struct ModelParts {
@@ -58,6 +71,9 @@ struct ModelParts {
   CompressionStats compression;
   uint64_t version = 1;
   std::vector<std::string> feature_names;  // empty or dims() names
+  // Out-of-sample calibration of the decision values (calibration.h); invalid (the default) for
+  // an uncalibrated model, which flags decision < 0.
+  Calibration calibration;
 };
 
 class Model {
@@ -73,21 +89,30 @@ class Model {
   double rho() const { return parts_.rho; }
   double nu() const { return parts_.nu; }
   uint64_t version() const { return parts_.version; }
+  bool calibrated() const { return parts_.calibration.valid(); }
 
-  // f(x) for one raw vector of dims() values, on the float32 path. Allocates nothing.
-  // Requires: x.size() == dims() (PreconditionError otherwise), finite values.
-  double Decision(std::span<const double> x) const;
-  // f for every row of raw x; batched GEMM on the float32 path.
+  // The p-value of a score: NaN for an uncalibrated model.
+  double PValue(const struct Score& score) const;
+  // The alarm rule: p <= the calibrated level, or decision < 0 for an uncalibrated model.
+  bool Flagged(const struct Score& score) const;
+
+  // f(x) and the nonconformity for one raw vector of dims() values, on the float32 path.
+  // Allocates nothing. Requires: x.size() == dims() (PreconditionError otherwise), finite values.
+  Score Evaluate(std::span<const double> x) const;
+  double Decision(std::span<const double> x) const { return Evaluate(x).decision; }
+  // The same for every row of raw x; batched GEMM on the float32 path. Either output may be null.
+  void EvaluateBatch(const MatrixD& x, VectorD* decisions, VectorD* nonconformity) const;
   VectorD DecisionBatch(const MatrixD& x) const;
   // f(x) in double precision from the textbook formula: the reference for the fast paths.
   double DecisionExact(std::span<const double> x) const;
   // sum_i coef_i k(s_i, z) for already scaled rows z (double). Used for rho recalibration.
   VectorD KernelSumsScaled(const MatrixD& z) const;
 
-  // Per-feature attribution of f at x: the analytic gradient of f with respect to the scaled
-  // features, its components' magnitudes normalised to shares (`gradient` is in raw units). Ensures: at most top_k entries, sorted by
-  // decreasing share. For rbf far from every support vector the gradient is computed with the
-  // kernel values renormalised by the largest one, so it does not underflow to zero.
+  // Per-feature attribution of f at x: the analytic gradient of f with respect to the standardised
+  // features, its components' magnitudes normalised to shares (`gradient` is in raw units).
+  // Ensures: at most top_k entries, sorted by decreasing share. For rbf far from every support
+  // vector the gradient is computed with the kernel values renormalised by the largest one, so it
+  // does not underflow to zero.
   std::vector<FeatureShare> Explain(std::span<const double> x, int top_k) const;
 
   // Approximate heap bytes held by the model.

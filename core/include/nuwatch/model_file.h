@@ -14,7 +14,9 @@
 
 namespace nuwatch {
 
-inline constexpr uint32_t kModelFormatVersion = 1;
+// Version 2 adds the whitening matrix and the calibration; version 1 files are still read (as
+// uncalibrated models).
+inline constexpr uint32_t kModelFormatVersion = 2;
 
 // Serialises to bytes and back. Decode throws ModelFileError with a clear reason (truncated,
 // checksum mismatch, newer format version, inconsistent sizes); it never reads out of bounds.
