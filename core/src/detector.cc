@@ -11,7 +11,31 @@
 namespace nuwatch {
 
 std::string_view StreamStateName(StreamState state) {
-  return state == StreamState::kLearning ? "learning" : "scoring";
+  switch (state) {
+    case StreamState::kLearning:
+      return "learning";
+    case StreamState::kScoring:
+      return "scoring";
+    case StreamState::kHistory:
+      return "history";
+  }
+  return "unknown";
+}
+
+FeatureTransformOptions TransformOptions(const DetectorOptions& o) {
+  FeatureTransformOptions t;
+  t.lags = o.lags;
+  t.rolling_windows = o.rolling_windows;
+  t.rolling_statistics.clear();
+  for (const auto& name : o.rolling_statistics) {
+    const auto statistic = ParseRollingStatistic(name);
+    if (!statistic) {
+      throw PreconditionError("rolling_statistics: '" + name + "' is not one of mean, std, slope");
+    }
+    t.rolling_statistics.push_back(*statistic);
+  }
+  t.max_gap_seconds = o.max_gap_seconds;
+  return t;
 }
 
 std::string_view RefitReasonName(RefitReason reason) {
@@ -83,6 +107,11 @@ void CheckDetectorOptions(const DetectorOptions& o, std::string_view where) {
   if (!(std::isfinite(o.false_incidents_per_day) && o.false_incidents_per_day >= 0))
     fail("false_incidents_per_day = " + value(o.false_incidents_per_day) +
          " must be finite and >= 0");
+  for (const auto& name : o.rolling_statistics) {
+    if (!ParseRollingStatistic(name))
+      fail("rolling_statistics: '" + name + "' is not one of mean, std, slope");
+  }
+  CheckFeatureTransformOptions(TransformOptions(o), where);
   if (o.calibration_folds != 0 && o.false_alarm_rate == 0 && o.false_incidents_per_day == 0)
     fail(
         "false_alarm_rate and false_incidents_per_day are both 0: set a false-alarm budget, or "
@@ -279,7 +308,18 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
   WindowFitResult result;
   RefitReport& report = result.report;
   const Model* frozen = warm != nullptr ? warm->base.get() : nullptr;
-  SingleFit full = FitOnce(rows, ids, o, frozen, warm ? &warm->ids : nullptr,
+  DetectorOptions named = o;  // the model names the transformed columns
+  const FeatureTransformOptions transform = TransformOptions(o);
+  if (!o.feature_names.empty()) {
+    const FeatureTransform names(transform, static_cast<int>(o.feature_names.size()));
+    if (names.output_dims() != rows.cols()) {
+      throw PreconditionError("FitWindow: " + std::to_string(o.feature_names.size()) +
+                              " feature names give " + std::to_string(names.output_dims()) +
+                              " transformed columns, the rows have " + std::to_string(rows.cols()));
+    }
+    named.feature_names = names.OutputNames(o.feature_names);
+  }
+  SingleFit full = FitOnce(rows, ids, named, frozen, warm ? &warm->ids : nullptr,
                            warm ? &warm->alpha : nullptr, version);
   report.warm = frozen != nullptr;
   report.iterations = full.solution.iterations;
@@ -327,7 +367,7 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
       train.bottomRows(n - end) = rows.bottomRows(n - end);
       train_ids.insert(train_ids.end(), ids.begin(), ids.begin() + begin);
       train_ids.insert(train_ids.end(), ids.begin() + end, ids.end());
-      SingleFit fold = FitOnce(train, train_ids, o, frozen, &result.solution_ids,
+      SingleFit fold = FitOnce(train, train_ids, named, frozen, &result.solution_ids,
                                &result.solution_alpha, version);
       VectorD nonconformity;
       fold.model->EvaluateBatch(rows.middleRows(begin, end - begin), nullptr, &nonconformity);
@@ -345,6 +385,11 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
     full.model = std::make_shared<const Model>(std::move(parts));
     report.calibration_seconds = Seconds(calibration_started);
   }
+  if (!transform.identity()) {
+    ModelParts parts = full.model->parts();
+    parts.transform = transform;
+    full.model = std::make_shared<const Model>(std::move(parts));
+  }
   result.model = full.model;
   report.support_vectors = result.model->num_support();
   report.model_version = version;
@@ -356,11 +401,12 @@ Detector::Detector(const DetectorOptions& options, int dims, RefitExecutor* exec
     : options_(options),
       dims_(dims),
       executor_(executor),
-      window_((CheckDetectorOptions(options, "Detector"), options.window),
-              dims >= 1 ? dims
-                        : throw PreconditionError("Detector: dims = " + std::to_string(dims) +
-                                                  " must be >= 1"),
-              options.max_age_seconds),
+      transform_((CheckDetectorOptions(options, "Detector"), TransformOptions(options)),
+                 dims >= 1 ? dims
+                           : throw PreconditionError("Detector: dims = " + std::to_string(dims) +
+                                                     " must be >= 1")),
+      transformed_(static_cast<std::size_t>(transform_.output_dims())),
+      window_(options.window, transform_.output_dims(), options.max_age_seconds),
       incidents_(TrackerOptions(options)),
       drift_(DriftOptions(options)),
       shared_(std::make_shared<Shared>()) {}
@@ -411,6 +457,20 @@ Verdict Detector::Observe(double time, std::span<const double> x) {
 
   ++counters_.vectors;
   if (options_.max_age_seconds > 0) window_.ExpireOlderThan(time);
+  if (transform_.history_needed() == 0) return ObserveTransformed(time, x);
+  const bool ready = transform_.Push(time, x, transformed_);
+  if (transform_.last_push_reset() != HistoryReset::kNone) ++counters_.history_resets;
+  if (!ready) {
+    ++counters_.history_vectors;
+    Verdict verdict;
+    verdict.state = StreamState::kHistory;
+    if (const auto open = incidents_.open_incident()) verdict.incident_id = open->id;
+    return verdict;
+  }
+  return ObserveTransformed(time, transformed_);
+}
+
+Verdict Detector::ObserveTransformed(double time, std::span<const double> x) {
   Verdict verdict;
   std::shared_ptr<const Model> model = shared_->model.load();
   if (!model) {
@@ -524,7 +584,7 @@ void Detector::ApplyPendingOptions() {
     std::vector<uint64_t> ids;
     std::vector<double> times;
     window_.Snapshot(&rows, &ids, &times);
-    SampleWindow resized(next.window, dims_, next.max_age_seconds);
+    SampleWindow resized(next.window, transform_.output_dims(), next.max_age_seconds);
     resized.Restore(rows, ids, times, window_.next_id());
     window_ = std::move(resized);
   }
@@ -543,6 +603,20 @@ void Detector::ApplyPendingOptions() {
 
 void Detector::UpdateOptions(const DetectorOptions& options) {
   CheckDetectorOptions(options, "Detector::UpdateOptions");
+  const FeatureTransformOptions transform = TransformOptions(options);
+  if (!(transform == transform_.options())) {
+    // Another feature space: nothing learned so far applies to it.
+    FeatureTransform next(transform, dims_);
+    transformed_.assign(static_cast<std::size_t>(next.output_dims()), 0.0);
+    window_ = SampleWindow(options.window, next.output_dims(), options.max_age_seconds);
+    transform_ = std::move(next);
+    pending_options_.reset();
+    options_ = options;
+    incidents_ = IncidentTracker(TrackerOptions(options_));
+    drift_ = PageHinkley(DriftOptions(options_));
+    Relearn();
+    return;
+  }
   pending_options_ = options;
   if (!model()) ApplyPendingOptions();  // nothing to refit yet: take them now
 }
@@ -566,7 +640,8 @@ void Detector::Relearn() {
 }
 
 std::size_t Detector::MemoryBytes() const {
-  std::size_t bytes = sizeof(Detector) + sizeof(Shared) + window_.MemoryBytes();
+  std::size_t bytes = sizeof(Detector) + sizeof(Shared) + window_.MemoryBytes() +
+                      transform_.MemoryBytes() + transformed_.capacity() * sizeof(double);
   bytes += static_cast<std::size_t>(options_.open_window) * 24;
   if (auto m = model()) bytes += m->MemoryBytes();
   std::lock_guard<std::mutex> lock(shared_->mutex);
@@ -592,19 +667,26 @@ DetectorState Detector::ExportState() const {
   state.refits_since_cold = refits_since_cold_;
   state.model_time = shared_->model_time.load();
   state.counters = counters_;
+  state.transform = transform_.ExportState();
   return state;
 }
 
 void Detector::ImportState(const DetectorState& state) {
-  if (state.window_rows.rows() > 0 && state.window_rows.cols() != dims_) {
+  const int features = transform_.output_dims();
+  if (state.window_rows.rows() > 0 && state.window_rows.cols() != features) {
     throw PreconditionError("Detector::ImportState: window has " +
                             std::to_string(state.window_rows.cols()) + " columns, the stream " +
-                            std::to_string(dims_));
+                            std::to_string(features));
   }
-  if (state.model && state.model->dims() != dims_) {
+  if (state.model && state.model->dims() != features) {
     throw PreconditionError("Detector::ImportState: model has " +
                             std::to_string(state.model->dims()) + " dimensions, the stream " +
-                            std::to_string(dims_));
+                            std::to_string(features));
+  }
+  if (state.model && !(state.model->parts().transform == transform_.options())) {
+    throw PreconditionError(
+        "Detector::ImportState: the model was fitted with other transform settings (lags, "
+        "rolling_windows, rolling_statistics, max_gap_seconds) than the stream's");
   }
   if (static_cast<int64_t>(state.solution_ids.size()) != state.solution_alpha.size()) {
     throw PreconditionError("Detector::ImportState: " + std::to_string(state.solution_ids.size()) +
@@ -613,13 +695,16 @@ void Detector::ImportState(const DetectorState& state) {
   }
   WaitForRefit();
   // Build everything first, so a bad state leaves the detector unchanged.
-  SampleWindow window(options_.window, dims_, options_.max_age_seconds);
+  SampleWindow window(options_.window, features, options_.max_age_seconds);
   window.Restore(state.window_rows, state.window_ids, state.window_times, state.next_sample_id);
+  FeatureTransform transform(transform_.options(), dims_);
+  transform.ImportState(state.transform);
   IncidentTracker incidents(TrackerOptions(options_));
   incidents.ImportState(state.incidents);
   PageHinkley drift(DriftOptions(options_));
   drift.Restore(state.drift);
   window_ = std::move(window);
+  transform_ = std::move(transform);
   incidents_ = std::move(incidents);
   drift_ = std::move(drift);
   accepted_since_refit_ = state.accepted_since_refit;

@@ -43,6 +43,15 @@ void ValidateParts(const ModelParts& p) {
     throw PreconditionError("Model: non-finite support vectors, coefficients or rho");
   }
   p.kernel.Validate("Model");
+  CheckFeatureTransformOptions(p.transform, "Model");
+  const FeatureTransformOptions& t = p.transform;
+  const int64_t per_feature =
+      1 + t.lags + static_cast<int64_t>(t.rolling_windows.size() * t.rolling_statistics.size());
+  if (p.support_vectors.cols() % per_feature != 0) {
+    throw PreconditionError("Model: " + std::to_string(p.support_vectors.cols()) +
+                            " features are not a multiple of the transform's " +
+                            std::to_string(per_feature) + " columns per raw feature");
+  }
 }
 
 }  // namespace
@@ -151,6 +160,13 @@ VectorD Model::DecisionBatch(const MatrixD& x) const {
   VectorD out;
   EvaluateBatch(x, &out, nullptr);
   return out;
+}
+
+int Model::input_dims() const {
+  const FeatureTransformOptions& t = parts_.transform;
+  const int per_feature =
+      1 + t.lags + static_cast<int>(t.rolling_windows.size() * t.rolling_statistics.size());
+  return dims() / per_feature;
 }
 
 double Model::PValue(const Score& score) const {

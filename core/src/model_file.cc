@@ -136,6 +136,14 @@ std::vector<uint8_t> EncodeModel(const Model& model) {
   const MatrixD& whitening = p.scaler.whitening();
   w.Put<uint32_t>(static_cast<uint32_t>(whitening.rows()));
   w.PutArray(whitening.data(), static_cast<std::size_t>(whitening.size()));
+  const FeatureTransformOptions& t = p.transform;
+  w.Put<int32_t>(t.lags);
+  w.Put<uint32_t>(static_cast<uint32_t>(t.rolling_windows.size()));
+  for (const int window : t.rolling_windows) w.Put<int32_t>(window);
+  w.Put<uint32_t>(static_cast<uint32_t>(t.rolling_statistics.size()));
+  for (const RollingStatistic statistic : t.rolling_statistics)
+    w.Put<uint8_t>(static_cast<uint8_t>(statistic));
+  w.Put<double>(t.max_gap_seconds);
   EncodeCalibration(w, p.calibration);
 
   return WrapChecksummed(kMagic, kModelFormatVersion, w.bytes);
@@ -205,6 +213,22 @@ Model DecodeModelPayload(ByteReader& r, uint32_t version) {
       r.Need(static_cast<uint64_t>(rows) * rows, sizeof(double), "whitening");
       whitening.resize(rows, rows);
       r.GetArray(whitening.data(), static_cast<uint64_t>(rows) * rows, "whitening");
+      FeatureTransformOptions& t = p.transform;
+      t.lags = r.Get<int32_t>("transform");
+      const uint32_t windows = r.Get<uint32_t>("transform");
+      r.Need(windows, sizeof(int32_t), "transform");
+      t.rolling_windows.resize(windows);
+      for (int& window : t.rolling_windows) window = r.Get<int32_t>("transform");
+      const uint32_t statistics = r.Get<uint32_t>("transform");
+      r.Need(statistics, 1, "transform");
+      t.rolling_statistics.clear();
+      for (uint32_t i = 0; i < statistics; ++i) {
+        const uint8_t statistic = r.Get<uint8_t>("transform");
+        if (statistic > 2)
+          throw ModelFileError("unknown rolling statistic " + std::to_string(statistic));
+        t.rolling_statistics.push_back(static_cast<RollingStatistic>(statistic));
+      }
+      t.max_gap_seconds = r.Get<double>("transform");
       p.calibration = DecodeCalibration(r);
     }
     if (r.remaining() != 0) throw ModelFileError("trailing bytes after the model");

@@ -739,6 +739,85 @@ TEST(DetectorState, ImportedStateGivesIdenticalVerdicts) {
   EXPECT_GT(original.model()->version(), 20u);  // refits happened on both sides
 }
 
+// With temporal context the state file must carry the transform's history too: a detector
+// restored mid-stream gives the same verdicts as one that never stopped (a gap in the middle of
+// the continuation exercises the history reset on both sides).
+TEST(DetectorState, ImportedStateWithATransformGivesIdenticalVerdicts) {
+  const int d = 2;
+  DetectorOptions o = BaseOptions(0.1, 300, 50, 32);
+  o.lags = 2;
+  o.rolling_windows = {5};
+  o.max_gap_seconds = 10;
+  Detector original(o, d);
+  EXPECT_EQ(original.feature_dims(), d * (1 + 2 + 3));
+  std::mt19937_64 rng(19);
+  for (int64_t t = 0; t < 800; ++t)
+    original.Observe(static_cast<double>(t), Draw(rng, Shape::kGaussian, d));
+  Detector copy(o, d);
+  copy.ImportState(original.ExportState());
+  int64_t history = 0;
+  for (int64_t t = 800; t < 1600; ++t) {
+    const double time = static_cast<double>(t) + (t >= 1200 ? 100.0 : 0.0);  // a gap at 1200
+    const std::vector<double> x = Draw(rng, Shape::kGaussian, d);
+    const Verdict a = original.Observe(time, x);
+    const Verdict b = copy.Observe(time, x);
+    ExpectSameVerdict(a, b, t);
+    history += a.state == StreamState::kHistory;
+  }
+  // lags 2 and a window of 5 need 4 earlier vectors after the gap.
+  EXPECT_EQ(history, 4);
+  EXPECT_EQ(original.counters().history_resets, 1);
+  EXPECT_EQ(copy.counters().history_resets, 1);
+}
+
+// The explanation names the base feature and the transform (issue: "vibration_mm_s, mean of 6"):
+// a level shift of one feature that its rolling mean follows shows up under both names.
+TEST(DetectorTransform, ModelNamesTheTransformedFeaturesAndHistoryComesFirst) {
+  const int d = 2;
+  DetectorOptions o = BaseOptions(0.05, 300, 0, 256);
+  o.rolling_windows = {6};
+  o.rolling_statistics = {"mean"};
+  o.feature_names = {"flow_m3h", "vibration_mm_s"};
+  Detector detector(o, d);
+  std::mt19937_64 rng(20);
+  int64_t history = 0;
+  for (int64_t t = 0; t < 400; ++t) {
+    const Verdict v = detector.Observe(static_cast<double>(t), Draw(rng, Shape::kGaussian, d));
+    if (t < 5) {
+      EXPECT_EQ(v.state, StreamState::kHistory) << t;
+      EXPECT_FALSE(v.accepted);
+    }
+    history += v.state == StreamState::kHistory;
+  }
+  EXPECT_EQ(history, 5);
+  ASSERT_NE(detector.model(), nullptr);
+  EXPECT_EQ(detector.model()->parts().feature_names,
+            (std::vector<std::string>{"flow_m3h", "vibration_mm_s", "flow_m3h, mean of 6",
+                                      "vibration_mm_s, mean of 6"}));
+  EXPECT_EQ(detector.model()->input_dims(), d);
+}
+
+// New transform settings change the feature space: the stream relearns at once, with a window of
+// the new width.
+TEST(DetectorOptionsUpdate, NewTransformRelearnsInTheNewFeatureSpace) {
+  const int d = 2;
+  DetectorOptions o = BaseOptions(0.1, 200, 50, 64);
+  Detector detector(o, d);
+  std::mt19937_64 rng(21);
+  for (int64_t t = 0; t < 300; ++t)
+    detector.Observe(static_cast<double>(t), Draw(rng, Shape::kGaussian, d));
+  ASSERT_NE(detector.model(), nullptr);
+  o.lags = 1;
+  detector.UpdateOptions(o);
+  EXPECT_EQ(detector.model(), nullptr);
+  EXPECT_EQ(detector.window_size(), 0);
+  EXPECT_EQ(detector.feature_dims(), 2 * d);
+  for (int64_t t = 300; t < 600; ++t)
+    detector.Observe(static_cast<double>(t), Draw(rng, Shape::kGaussian, d));
+  ASSERT_NE(detector.model(), nullptr);
+  EXPECT_EQ(detector.model()->dims(), 2 * d);
+}
+
 TEST(DetectorOptionsUpdate, NewBudgetAppliesAtTheNextRefit) {
   const int d = 2;
   DetectorOptions o = BaseOptions(0.2, 300, 100, 40);  // nu l = 60 > 40: compressed

@@ -16,6 +16,7 @@
 #include <vector>
 
 #include "common/random_data.h"
+#include "nuwatch/detector.h"
 
 namespace nuwatch {
 namespace {
@@ -92,6 +93,25 @@ void ExpectIdenticalParts(const ModelParts& a, const ModelParts& b) {
   EXPECT_TRUE(SameBytes(a.compression.seconds, b.compression.seconds));
   EXPECT_EQ(a.version, b.version);
   EXPECT_EQ(a.feature_names, b.feature_names);
+  ASSERT_EQ(a.scaler.whitening().size(), b.scaler.whitening().size());
+  EXPECT_TRUE(SameDoubles(a.scaler.whitening().data(), b.scaler.whitening().data(),
+                          a.scaler.whitening().size()));
+  EXPECT_TRUE(a.transform == b.transform);
+  ASSERT_EQ(a.calibration.valid(), b.calibration.valid());
+  if (a.calibration.valid()) {
+    const Calibration::Parts &ca = a.calibration.parts(), &cb = b.calibration.parts();
+    EXPECT_EQ(ca.sorted_scores, cb.sorted_scores);
+    EXPECT_EQ(ca.has_tail, cb.has_tail);
+    EXPECT_TRUE(SameBytes(ca.tail_threshold, cb.tail_threshold));
+    EXPECT_TRUE(SameBytes(ca.junction_score, cb.junction_score));
+    EXPECT_TRUE(SameBytes(ca.junction_p, cb.junction_p));
+    EXPECT_TRUE(SameBytes(ca.tail.shape, cb.tail.shape));
+    EXPECT_TRUE(SameBytes(ca.tail.scale, cb.tail.scale));
+    EXPECT_TRUE(SameBytes(ca.summary.level, cb.summary.level));
+    EXPECT_TRUE(SameBytes(ca.summary.incidents_per_day, cb.summary.incidents_per_day));
+    EXPECT_EQ(ca.summary.reference_opened, cb.summary.reference_opened);
+    EXPECT_EQ(ca.summary.warnings, cb.summary.warnings);
+  }
 }
 
 void ExpectIdenticalDecisions(const Model& a, const Model& b) {
@@ -157,6 +177,47 @@ TEST(ModelFileRoundTrip, EncodeDecodeIsExactForEveryKernelAndScaler) {
     ExpectIdenticalDecisions(model, decoded);
     // Encoding is a function of the parts: re-encoding gives the same bytes.
     EXPECT_EQ(EncodeModel(decoded), bytes);
+  }
+}
+
+// Version 2's fields: a whitened, calibrated model of lagged and rolling features, as FitWindow
+// (the detector's refit) builds it, survives the file bit for bit, and its p-values with it.
+TEST(ModelFileRoundTrip, WhitenedCalibratedTransformedModelIsExact) {
+  DetectorOptions o;
+  o.scaler = ScalerType::kWhiten;
+  o.lags = 1;
+  o.rolling_windows = {4};
+  o.rolling_statistics = {"mean", "slope"};
+  o.max_gap_seconds = 30;
+  o.false_alarm_rate = 0.001;  // below 1/(n + 1): the tail model is used
+  o.false_incidents_per_day = 2;
+  o.feature_names = {"temp", "rpm"};
+  const MatrixD raw = RandomGaussian(600, 2, 7);
+  std::vector<double> times(raw.rows());
+  for (std::size_t i = 0; i < times.size(); ++i) times[i] = 10.0 * static_cast<double>(i);
+  std::vector<int64_t> rows_of;
+  const FeatureTransform transform(TransformOptions(o), 2);
+  const MatrixD z = transform.TransformAll(raw, times, &rows_of);
+  std::vector<uint64_t> ids(z.rows());
+  std::vector<double> z_times;
+  for (std::size_t i = 0; i < rows_of.size(); ++i)
+    if (rows_of[i] >= 0) z_times.push_back(times[i]);
+  for (std::size_t i = 0; i < ids.size(); ++i) ids[i] = i + 1;
+  const WindowFitResult fit = FitWindow(z, ids, z_times, o, nullptr, 4);
+  const Model& model = *fit.model;
+  ASSERT_TRUE(model.calibrated());
+  ASSERT_TRUE(model.parts().calibration.parts().has_tail);
+  EXPECT_EQ(model.input_dims(), 2);
+  EXPECT_EQ(model.dims(), 2 * (1 + 1 + 2));
+  EXPECT_EQ(model.parts().feature_names[4], "temp, mean of 4");
+  const std::vector<uint8_t> bytes = EncodeModel(model);
+  const Model decoded = DecodeModel(bytes.data(), bytes.size());
+  ExpectIdenticalParts(model.parts(), decoded.parts());
+  ExpectIdenticalDecisions(model, decoded);
+  EXPECT_EQ(EncodeModel(decoded), bytes);
+  for (int64_t i = 0; i < 20; ++i) {
+    const std::vector<double> x(z.row(i).data(), z.row(i).data() + z.cols());
+    EXPECT_EQ(model.PValue(model.Evaluate(x)), decoded.PValue(decoded.Evaluate(x)));
   }
 }
 
@@ -311,7 +372,7 @@ std::string DecodeError(const std::vector<uint8_t>& file) {
   return "accepted";
 }
 
-constexpr std::size_t kVersion2TailBytes = 4 + 1;
+constexpr std::size_t kVersion2TailBytes = 4 + (4 + 4 + 4 + 3 + 8) + 1;
 
 TEST(ModelFileCrafted, ResealedLiesAreRejected) {
   const Model model = SmallModel();
@@ -346,7 +407,8 @@ TEST(ModelFileCrafted, ResealedLiesAreRejected) {
               HasSubstr("invalid model contents"));
   // The feature-name count and the first name's length sit near the end of the payload, before the
   // names "temp" and "rpm": 4 + (4 + 4) + (4 + 3) bytes, followed by version 2's fields of an
-  // uncalibrated standard-scaled model: whitening rows (u32 0) and the calibration flag (u8 0).
+  // uncalibrated standard-scaled model: whitening rows (u32 0), the identity transform (lags i32,
+  // no windows u32, three statistics u32 + 3 x u8, max gap f64) and the calibration flag (u8 0).
   const std::size_t names_at = bytes.size() - 4 - 19 - kVersion2TailBytes;
   EXPECT_THAT(crafted([&](auto& f) { Put<uint32_t>(f, names_at, 3u); }),
               HasSubstr("3 feature names for 2 features"));

@@ -141,6 +141,41 @@ TEST(ModelDecision, HandWorkedSingleSupportVector) {
   EXPECT_NEAR(model.KernelSumsScaled(z)[0], std::exp(-1.0), 1e-15);
 }
 
+// The rbf nonconformity is -log(sum_i coef_i k(s_i, z)) (model.h): where the kernel sum is
+// representable it equals -log(DecisionExact + rho) (the definition); far from every support
+// vector, where exp underflows and the decision has flattened out at -rho, it stays finite and
+// keeps growing like gamma times the squared distance to the nearest support vector (log-sum-exp,
+// common practice). Single and batch paths agree.
+TEST(ModelScore, RbfNonconformityIsMinusLogKernelSumAndDoesNotSaturate) {
+  const Model model = FitModel(RawData(200, 3, 30), Fit(KernelType::kRbf, 0.1));
+  const MatrixD near = RawData(20, 3, 31);
+  VectorD batch_decision, batch_nonconformity;
+  model.EvaluateBatch(near, &batch_decision, &batch_nonconformity);
+  for (int64_t i = 0; i < near.rows(); ++i) {
+    const std::vector<double> x = Row(near, i);
+    const Score score = model.Evaluate(x);
+    const double exact = -std::log(model.DecisionExact(x) + model.rho());
+    EXPECT_NEAR(score.nonconformity, exact, 1e-4 * std::max(1.0, std::abs(exact))) << i;
+    EXPECT_NEAR(batch_nonconformity[i], score.nonconformity, 1e-4 * std::max(1.0, std::abs(exact)))
+        << i;
+    EXPECT_NEAR(batch_decision[i], score.decision, 1e-5) << i;
+  }
+  // Walk away along feature 0, in raw units of 100 standard deviations per step.
+  std::vector<double> x = Row(near, 0);
+  double last = model.Evaluate(x).nonconformity;
+  for (int step = 1; step <= 20; ++step) {
+    x[0] += 100.0;
+    const Score score = model.Evaluate(x);
+    EXPECT_TRUE(std::isfinite(score.nonconformity)) << step;
+    EXPECT_GT(score.nonconformity, last) << step;
+    EXPECT_NEAR(score.decision, -model.rho(), 1e-12) << step;  // the decision has flattened out
+    VectorD batch;
+    model.EvaluateBatch(Eigen::Map<const MatrixD>(x.data(), 1, 3), nullptr, &batch);
+    EXPECT_NEAR(batch[0], score.nonconformity, 1e-4 * score.nonconformity) << step;
+    last = score.nonconformity;
+  }
+}
+
 TEST(ModelDecision, HandWorkedScalerIsApplied) {
   // Standard scaler with centre (10, 0) and scale (2, 1): raw (12, 0) is z = (1, 0).
   ModelParts p = HandParts();
@@ -218,6 +253,44 @@ TEST_P(ExplainGradient, MatchesCentralFiniteDifferences) {
         EXPECT_GE(shares[k - 1].share, shares[k].share);
       }
     }
+  }
+}
+
+// The whiten scaler routes the gradient back through the rotation (z = x_std W): the same finite
+// difference check, for an rbf model on correlated features.
+TEST(ExplainGradient, MatchesCentralFiniteDifferencesThroughTheWhitening) {
+  MatrixD train = RawData(300, 3, 12);
+  train.col(2) = train.col(0) * 0.8 + train.col(2) * 0.1;  // strongly correlated features
+  FitOptions options = Fit(KernelType::kRbf, 0.2);
+  options.scaler = ScalerType::kWhiten;
+  const Model model = FitModel(train, options);
+  ASSERT_EQ(model.parts().scaler.type(), ScalerType::kWhiten);
+  // Probes near the data in the whitened space: training rows nudged by a fraction of a standard
+  // deviation (random raw vectors ignore the correlation and lie where every kernel underflows).
+  const MatrixD probes =
+      train.topRows(6) + RandomGaussian(6, 3, 13) * 0.3 * model.parts().scaler.scale().asDiagonal();
+  for (int64_t p = 0; p < probes.rows(); ++p) {
+    const std::vector<double> x = Row(probes, p);
+    const std::vector<FeatureShare> shares = model.Explain(x, model.dims());
+    std::vector<double> analytic(model.dims());
+    for (const auto& s : shares) analytic[s.feature] = s.gradient;
+    double largest = 0, rounding = 0;
+    std::vector<double> numeric(model.dims());
+    for (int j = 0; j < model.dims(); ++j) {
+      const double h = 1e-4 * model.parts().scaler.scale()[j];
+      rounding = std::max(rounding, 1e-14 * TermMagnitude(model, x) / h);
+      std::vector<double> plus = x, minus = x;
+      plus[j] += h;
+      minus[j] -= h;
+      numeric[j] = (model.DecisionExact(plus) - model.DecisionExact(minus)) / (2 * h);
+      largest = std::max(largest, std::abs(numeric[j]));
+    }
+    ASSERT_GT(largest, 0.0);
+    for (int j = 0; j < model.dims(); ++j) {
+      EXPECT_NEAR(analytic[j], numeric[j], 1e-5 * largest + rounding)
+          << "probe " << p << " feature " << j;
+    }
+    EXPECT_NEAR(ShareSum(shares), 1.0, 1e-12);
   }
 }
 

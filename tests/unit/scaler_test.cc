@@ -5,6 +5,7 @@
 #include <gmock/gmock.h>
 #include <gtest/gtest.h>
 
+#include <Eigen/Cholesky>
 #include <cmath>
 #include <limits>
 #include <random>
@@ -206,6 +207,53 @@ TEST(ScalerTransformRow, EqualsTransformInDoubleAndFloat) {
       }
     }
   }
+}
+
+// Whitening: the transformed training data has the identity covariance (the definition of a
+// whitening transform), and ||z||^2 is the Mahalanobis distance (x - mu)' S^-1 (x - mu) of the
+// training covariance S, computed here independently by an LDLT solve (textbook identity).
+TEST(ScalerWhiten, IdentityCovarianceAndMahalanobisDistance) {
+  std::mt19937_64 rng(40);
+  std::normal_distribution<double> normal(0.0, 1.0);
+  const int n = 2000, d = 4;
+  MatrixD x(n, d);
+  for (int i = 0; i < n; ++i) {
+    const double a = normal(rng), b = normal(rng), c = normal(rng), e = normal(rng);
+    x.row(i) << 10 + 3 * a, -5 + 2 * a + b, 100 * c, 0.5 * c - 0.2 * b + 0.01 * e;
+  }
+  const Scaler scaler = Scaler::Fit(ScalerType::kWhiten, x);
+  ASSERT_EQ(scaler.whitening().rows(), d);
+  const MatrixD z = scaler.Transform(x);
+  const MatrixD covariance =
+      (z.rowwise() - z.colwise().mean()).transpose() * (z.rowwise() - z.colwise().mean()) / n;
+  EXPECT_LT((covariance - MatrixD::Identity(d, d)).cwiseAbs().maxCoeff(), 1e-9);
+  const Eigen::RowVectorXd mu = x.colwise().mean();
+  const MatrixD centred = x.rowwise() - mu;
+  const MatrixD s = centred.transpose() * centred / n;
+  const Eigen::LDLT<MatrixD> ldlt(s);
+  for (int i = 0; i < 10; ++i) {
+    const VectorD v = centred.row(i).transpose();
+    const double mahalanobis = v.dot(ldlt.solve(v));
+    EXPECT_NEAR(z.row(i).squaredNorm(), mahalanobis, 1e-8 * mahalanobis) << i;
+    double row_double[d];
+    float row_float[d];
+    scaler.TransformRow(&x(i, 0), row_double);
+    scaler.TransformRow(&x(i, 0), row_float);
+    for (int j = 0; j < d; ++j) {
+      EXPECT_NEAR(row_double[j], z(i, j), 1e-12 * (1 + std::abs(z(i, j))));
+      EXPECT_NEAR(row_float[j], z(i, j), 1e-5 * (1 + std::abs(z(i, j))));
+    }
+  }
+  // A feature that never varied: its direction is floored, not infinite.
+  MatrixD constant = x;
+  constant.col(3).setConstant(7.0);
+  const Scaler floored = Scaler::Fit(ScalerType::kWhiten, constant);
+  EXPECT_TRUE(floored.whitening().allFinite());
+  EXPECT_THROW(Scaler::FromParameters(ScalerType::kWhiten, scaler.center(), scaler.scale()),
+               PreconditionError);
+  EXPECT_THROW(Scaler::FromParameters(ScalerType::kStandard, scaler.center(), scaler.scale(),
+                                      scaler.whitening()),
+               PreconditionError);
 }
 
 TEST(ScalerNames, RoundTripAndUnknown) {

@@ -18,6 +18,11 @@
 // while an incident is open. Isolated flags do enter: dropping every flagged vector would cut the
 // nu tail from each window, and the envelope would shrink refit after refit on a stationary stream.
 //
+// Temporal context: with lags or rolling statistics (detector_options.h) each raw vector goes
+// through the stream's FeatureTransform first; the window, the model and the explanations work on
+// the transformed vectors (dims() stays the raw dimension). While the transform's history fills
+// (history_needed() vectors after the start, a Relearn or a gap in time) verdicts say kHistory.
+//
 // Thread safety: Observe, Relearn, UpdateOptions and the state functions must be called from one
 // thread (the stream's owner). model(), counters() and MemoryBytes() may be called from any thread.
 // Refit jobs touch only state shared through an internal mutex and the atomic model slot.
@@ -42,8 +47,10 @@
 
 namespace nuwatch {
 
-enum class StreamState { kLearning, kScoring };
-std::string_view StreamStateName(StreamState state);  // "learning", "scoring"
+// kHistory: a feature transform is (re)filling its history (after the start or a gap in time), so
+// the vector can be neither learned from nor scored.
+enum class StreamState { kLearning, kScoring, kHistory };
+std::string_view StreamStateName(StreamState state);  // "learning", "scoring", "history"
 
 // Runs refit jobs somewhere else. Post must run the job exactly once, eventually, on any thread,
 // and must not block for long (the caller is the stream's scoring thread).
@@ -98,6 +105,8 @@ struct DetectorCounters {
   int64_t refits_started = 0;
   int64_t refits_coalesced = 0;  // due while one was in flight
   int64_t drift_alarms = 0;
+  int64_t history_vectors = 0;  // vectors spent (re)filling a transform's history
+  int64_t history_resets = 0;   // gaps in time (or time going back) that refilled it
 };
 
 // Everything a state file needs to resume a stream without a new warm-up.
@@ -111,6 +120,7 @@ struct DetectorState {
   VectorD solution_alpha;
   IncidentTrackerState incidents;
   PageHinkleyState drift;
+  FeatureTransformState transform;  // empty history for the identity transform
   int64_t accepted_since_refit = 0;
   int64_t refits_since_cold = 0;
   double model_time = 0;  // data time of the vector that triggered the model's refit
@@ -128,15 +138,16 @@ class Detector {
   Detector& operator=(const Detector&) = delete;
 
   // Scores one vector and updates the window, the incident state and the refit schedule.
-  // Requires: x.size() == dims(), finite values and time (PreconditionError otherwise, state
-  // unchanged). Allocates nothing unless a refit is posted.
+  // Requires: x.size() == dims() (the raw dimension), finite values and time (PreconditionError
+  // otherwise, state unchanged). Allocates nothing unless a refit is posted.
   Verdict Observe(double time, std::span<const double> x);
 
   // Drops the window, the model and the open incident, so that a new normal is learned from the
   // next `warmup` vectors. A refit in flight is discarded when it finishes.
   void Relearn();
 
-  // New settings (e.g. a reloaded config). They apply at the next refit; the dimension stays.
+  // New settings (e.g. a reloaded config). They apply at the next refit; the dimension stays. New
+  // transform settings change the feature space: they apply at once, with a Relearn.
   void UpdateOptions(const DetectorOptions& options);
 
   // Blocks until no refit is in flight (tests, shutdown, snapshots).
@@ -148,6 +159,8 @@ class Detector {
   std::shared_ptr<const Model> model() const;
   StreamState state() const;
   int dims() const { return dims_; }
+  // The dimension of the transformed vectors the window and the model hold.
+  int feature_dims() const { return transform_.output_dims(); }
   const DetectorOptions& options() const { return options_; }
   int64_t window_size() const { return window_.size(); }
   std::optional<TrackedIncident> open_incident() const { return incidents_.open_incident(); }
@@ -165,6 +178,8 @@ class Detector {
 
  private:
   struct Shared;
+  // Observe after the transform: z holds feature_dims() values.
+  Verdict ObserveTransformed(double time, std::span<const double> z);
   bool RefitDue(double time, bool drift_alarm) const;
   void PostRefit(double time, RefitReason reason);
   void ApplyPendingOptions();
@@ -173,6 +188,8 @@ class Detector {
   std::optional<DetectorOptions> pending_options_;
   const int dims_;
   RefitExecutor* executor_;
+  FeatureTransform transform_;
+  std::vector<double> transformed_;  // output buffer of transform_, sized once
   SampleWindow window_;
   IncidentTracker incidents_;
   PageHinkley drift_;

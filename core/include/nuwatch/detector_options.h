@@ -7,6 +7,7 @@
 #include <string>
 #include <vector>
 
+#include "nuwatch/feature_transform.h"
 #include "nuwatch/kernel.h"
 #include "nuwatch/scaler.h"
 
@@ -49,6 +50,16 @@ struct DetectorOptions {
   double false_incidents_per_day = 0;  // false incidents per day of data time; 0: not set
   int calibration_folds = 5;           // 0 or >= 2
 
+  // Temporal context (feature_transform.h), computed before scaling so that every path sees the
+  // same features: `lags` previous vectors stacked beside the current one, and rolling statistics
+  // (names in rolling_statistics: "mean", "std", "slope") over each length in rolling_windows. A
+  // gap in time larger than max_gap_seconds (> 0) refills the history. Changing any of these
+  // changes the feature space: the stream relearns.
+  int lags = 0;
+  std::vector<int> rolling_windows;
+  std::vector<std::string> rolling_statistics = {"mean", "std", "slope"};
+  double max_gap_seconds = 0;
+
   // Incidents: open after open_after of the last open_window vectors were flagged, close after
   // close_after consecutive clean ones.
   int open_after = 3;
@@ -58,5 +69,9 @@ struct DetectorOptions {
   // Feature names (optional); used to name features in explanations.
   std::vector<std::string> feature_names;
 };
+
+// The transform the options describe. Requires: valid rolling_statistics names (PreconditionError
+// naming the bad one otherwise; CheckDetectorOptions checks all of it).
+FeatureTransformOptions TransformOptions(const DetectorOptions& options);
 
 }  // namespace nuwatch

@@ -15,6 +15,7 @@
 #include <vector>
 
 #include "nuwatch/calibration.h"
+#include "nuwatch/feature_transform.h"
 #include "nuwatch/kernel.h"
 #include "nuwatch/scaler.h"
 #include "nuwatch/solver.h"
@@ -74,6 +75,10 @@ struct ModelParts {
   // Out-of-sample calibration of the decision values (calibration.h); invalid (the default) for
   // an uncalibrated model, which flags decision < 0.
   Calibration calibration;
+  // The temporal context the model's features come from (identity: the raw features). The model
+  // scores transformed vectors; whoever feeds it raw rows applies this transform first (the
+  // detector, `nuwatch score`). The raw feature names are the first input_dims() names.
+  FeatureTransformOptions transform;
 };
 
 class Model {
@@ -90,6 +95,8 @@ class Model {
   double nu() const { return parts_.nu; }
   uint64_t version() const { return parts_.version; }
   bool calibrated() const { return parts_.calibration.valid(); }
+  // The raw dimension before the transform: dims() / (1 + lags + windows x statistics).
+  int input_dims() const;
 
   // The p-value of a score: NaN for an uncalibrated model.
   double PValue(const struct Score& score) const;

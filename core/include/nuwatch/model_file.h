@@ -14,8 +14,8 @@
 
 namespace nuwatch {
 
-// Version 2 adds the whitening matrix and the calibration; version 1 files are still read (as
-// uncalibrated models).
+// Version 2 adds the whitening matrix, the feature transform and the calibration; version 1 files
+// are still read (as uncalibrated models without a transform).
 inline constexpr uint32_t kModelFormatVersion = 2;
 
 // Serialises to bytes and back. Decode throws ModelFileError with a clear reason (truncated,
