@@ -135,6 +135,11 @@ PageHinkleyOptions DriftOptions(const DetectorOptions& o) {
   return p;
 }
 
+// Chunks held out per calibration fold (FitWindow). Measured on the demo plant at 10 s with a
+// one-day window (3 pumps, 3 days, false_alarm_rate 0.001): 1 chunk (contiguous folds) flagged
+// 0.023% of the vectors outside the labelled incidents, 4 chunks 0.074%, 10 chunks 0.078%.
+constexpr int64_t kChunksPerFold = 4;
+
 double Seconds(std::chrono::steady_clock::time_point since) {
   return std::chrono::duration<double>(std::chrono::steady_clock::now() - since).count();
 }
@@ -219,7 +224,11 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
 }
 
 // One model on the rows: the scaler and kernel from the rows or frozen from `frozen`, the solver
-// (seeded from the solution given by id, if any), and compression to the budget.
+// (seeded from the solution given by id, if any), and compression to the budget (skipped for the
+// calibration folds: compression moves the kernel sum, which the nonconformity is, by no more than
+// the weight degradation it minimises; measured on the demo plant at a one-day window, 432
+// support vectors compressed to 256, the flags with and without compressing the folds were the
+// same, and a refit took 27% less time).
 struct SingleFit {
   std::shared_ptr<const Model> model;
   SolverResult solution;
@@ -230,7 +239,7 @@ struct SingleFit {
 
 SingleFit FitOnce(const MatrixD& rows, const std::vector<uint64_t>& ids, const DetectorOptions& o,
                   const Model* frozen, const std::vector<uint64_t>* seed_ids,
-                  const VectorD* seed_alpha, uint64_t version) {
+                  const VectorD* seed_alpha, uint64_t version, bool compress = true) {
   Scaler scaler;
   Kernel kernel;
   GammaSpec gamma_spec = o.gamma;
@@ -267,7 +276,7 @@ SingleFit FitOnce(const MatrixD& rows, const std::vector<uint64_t>& ids, const D
   out.support_vectors_fitted = fit.model->num_support();
   out.model = fit.model;
   out.solution = std::move(fit.solution);
-  if (fit.model->num_support() > o.support_vector_budget) {
+  if (compress && fit.model->num_support() > o.support_vector_budget) {
     const auto compress_started = std::chrono::steady_clock::now();
     const ModelParts& fitted = fit.model->parts();
     BudgetResult compressed = CompressToBudget(fitted.support_vectors, fitted.coefficients, kernel,
@@ -358,20 +367,32 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
   if (folds >= 2) {
     const auto calibration_started = std::chrono::steady_clock::now();
     std::vector<double> scores(static_cast<std::size_t>(n));
+    // Each fold holds out kChunksPerFold separate contiguous chunks, spread over the window, so
+    // that a window spanning a daily cycle does not hold out a whole phase of it (which would
+    // make every held-out score an extrapolation, and the level needlessly loose), while each
+    // chunk is long enough that its vectors' neighbours are held out with them.
+    const int64_t chunks = std::max<int64_t>(1, std::min<int64_t>(kChunksPerFold, n / (2 * folds)));
+    const int64_t blocks = folds * chunks;
+    auto fold_of = [&](int64_t i) { return static_cast<int>((i * blocks / n) % folds); };
     for (int k = 0; k < folds; ++k) {
-      const int64_t begin = n * k / folds, end = n * (k + 1) / folds;
-      MatrixD train(n - (end - begin), rows.cols());
+      std::vector<int64_t> held, kept;
+      for (int64_t i = 0; i < n; ++i) (fold_of(i) == k ? held : kept).push_back(i);
+      MatrixD train(static_cast<int64_t>(kept.size()), rows.cols());
+      MatrixD test(static_cast<int64_t>(held.size()), rows.cols());
       std::vector<uint64_t> train_ids;
-      train_ids.reserve(static_cast<std::size_t>(train.rows()));
-      train.topRows(begin) = rows.topRows(begin);
-      train.bottomRows(n - end) = rows.bottomRows(n - end);
-      train_ids.insert(train_ids.end(), ids.begin(), ids.begin() + begin);
-      train_ids.insert(train_ids.end(), ids.begin() + end, ids.end());
+      train_ids.reserve(kept.size());
+      for (std::size_t r = 0; r < kept.size(); ++r) {
+        train.row(static_cast<int64_t>(r)) = rows.row(kept[r]);
+        train_ids.push_back(ids[kept[r]]);
+      }
+      for (std::size_t r = 0; r < held.size(); ++r)
+        test.row(static_cast<int64_t>(r)) = rows.row(held[r]);
       SingleFit fold = FitOnce(train, train_ids, named, frozen, &result.solution_ids,
-                               &result.solution_alpha, version);
+                               &result.solution_alpha, version, /*compress=*/false);
       VectorD nonconformity;
-      fold.model->EvaluateBatch(rows.middleRows(begin, end - begin), nullptr, &nonconformity);
-      for (int64_t i = begin; i < end; ++i) scores[i] = nonconformity[i - begin];
+      fold.model->EvaluateBatch(test, nullptr, &nonconformity);
+      for (std::size_t r = 0; r < held.size(); ++r)
+        scores[held[r]] = nonconformity[static_cast<int64_t>(r)];
     }
     CalibrationOptions c;
     c.false_alarm_rate = o.false_alarm_rate;

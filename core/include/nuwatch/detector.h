@@ -223,10 +223,13 @@ struct WindowFitResult {
 // tune and the daemon share one code path): the scaler and kernel width from the rows (cold, warm
 // == null) or the base model's (warm); the solver; compression to support_vector_budget with rho
 // recalibrated on the window; then, with calibration_folds = K >= 2, K models fitted the same way
-// on the window without each of its K contiguous blocks (contiguous, because neighbouring vectors
-// are correlated: a random split would score each vector by a model that saw its neighbours),
-// each scoring the block it did not see, and the calibration (calibration.h) built from those
-// out-of-sample scores in time order. Each fold model is warm-started from the full solution.
+// on the window without each of K folds, each scoring the fold it did not see, and the
+// calibration (calibration.h) built from those out-of-sample scores in time order. A fold is four
+// contiguous chunks spread over the window: contiguous, because neighbouring vectors are
+// correlated (a random split would score each vector by a model that saw its neighbours; blocked
+// cross-validation for dependent data, common practice), and spread, so that a window spanning a
+// cycle does not hold out a whole phase of it. Each fold model is warm-started from the full
+// solution (MapWarmStart).
 // Requires: rows.rows() == ids.size() >= 2 (ids strictly increasing), times empty or of the same
 // size; finite values; valid options. Throws PreconditionError otherwise.
 WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
