@@ -462,6 +462,7 @@ TEST(DetectorStream, CalibratedFlaggedFractionFollowsTheBudgetNotNu) {
   for (const double nu : {0.05, 0.2}) {
     DetectorOptions o = BaseOptions(nu, 500, 100, 256);
     o.false_alarm_rate = eps;
+    o.false_incidents_per_day = 0;  // the per-vector budget alone
     Detector detector(o, d);
     std::mt19937_64 rng(24);
     std::vector<bool> flags;
@@ -490,7 +491,9 @@ TEST(DetectorStream, CalibratedFlaggedFractionFollowsTheBudgetNotNu) {
 TEST(DetectorStream, CalibratedFrozenModelFlagsAStreamThatWalksAway) {
   const double rate = 0.0005;
   const int d = 2;
-  Detector frozen(BaseOptions(0.05, 500, 0, 256), d);
+  DetectorOptions o = BaseOptions(0.05, 500, 0, 256);
+  o.false_incidents_per_day = 0;  // the per-vector budget alone
+  Detector frozen(o, d);
   std::mt19937_64 rng(15);
   std::vector<bool> flags;
   for (int t = 0; t < 20500; ++t) {

@@ -224,7 +224,7 @@ struct WindowFitResult {
 // == null) or the base model's (warm); the solver; compression to support_vector_budget with rho
 // recalibrated on the window; then, with calibration_folds = K >= 2, K models fitted the same way
 // on the window without each of K folds, each scoring the fold it did not see, and the
-// calibration (calibration.h) built from those out-of-sample scores in time order. A fold is four
+// calibration (calibration.h) built from those out-of-sample scores in time order. A fold is two
 // contiguous chunks spread over the window: contiguous, because neighbouring vectors are
 // correlated (a random split would score each vector by a model that saw its neighbours; blocked
 // cross-validation for dependent data, common practice), and spread, so that a window spanning a

@@ -20,15 +20,19 @@ struct DetectorOptions {
   GammaSpec gamma;     // "scale" by default
   int degree = 3;      // polynomial kernel only
   double coef0 = 0.0;  // polynomial kernel only
-  ScalerType scaler = ScalerType::kStandard;
+  // whiten: Mahalanobis distances, so that a broken relation between features stands out (the
+  // Q statistic's faults); measured on the demo plant and on the Tennessee Eastman data (README).
+  ScalerType scaler = ScalerType::kWhiten;
   double tolerance = 1e-3;     // solver stopping tolerance (relative, see solver.h)
   int64_t max_iterations = 0;  // 0: the solver's default cap
   std::size_t cache_bytes = 64u << 20;
 
   // Window and refits.
-  int64_t window = 2000;             // vectors kept for training
+  // Vectors kept for training: the window must span the process's normal cycle. 8640 is a day at
+  // 10 s (the demo plant's interval).
+  int64_t window = 8640;
   double max_age_seconds = 0;        // 0: no age limit on window vectors
-  int64_t warmup = 500;              // vectors before the first fit; <= window
+  int64_t warmup = 8640;             // vectors before the first fit; <= window
   int64_t refit_every = 200;         // accepted vectors between refits; 0: fit once, never refit
   double max_model_age_seconds = 0;  // 0: no age-triggered refit
   int64_t cold_refit_every = 10;     // every n-th refit re-estimates scaler and gamma (cold start)
@@ -42,13 +46,13 @@ struct DetectorOptions {
   int64_t drift_min_samples = 100;  // no alarm before this many scores since the last refit
 
   // Calibrated alarms (calibration.h). The alarm level comes from the false-alarm budget, set
-  // out of sample by cross-fitting over calibration_folds contiguous blocks of the window: each
-  // block is scored by a model fitted without it. nu shapes the envelope (the model's
-  // complexity); these decide when to alarm. calibration_folds = 0 turns calibration off (flag
-  // decision < 0, the in-sample rule whose rate on fresh data nu does not bound).
-  double false_alarm_rate = 0.001;     // per-vector budget; 0: not set
-  double false_incidents_per_day = 0;  // false incidents per day of data time; 0: not set
-  int calibration_folds = 5;           // 0 or >= 2
+  // out of sample by cross-fitting over calibration_folds folds of the window: each fold is
+  // scored by a model fitted without it (detector.h, FitWindow). nu shapes the envelope (the
+  // model's complexity); these decide when to alarm. calibration_folds = 0 turns calibration off
+  // (flag decision < 0, the in-sample rule whose rate on fresh data nu does not bound).
+  double false_alarm_rate = 0.001;       // per-vector budget; 0: not set
+  double false_incidents_per_day = 0.1;  // false incidents per day of data time; 0: not set
+  int calibration_folds = 5;             // 0 or >= 2
 
   // Temporal context (feature_transform.h), computed before scaling so that every path sees the
   // same features: `lags` previous vectors stacked beside the current one, and rolling statistics
