@@ -1,7 +1,7 @@
 #!/usr/bin/python3
 """nuwatch against scikit-learn's OneClassSVM on the same problem, in the same run.
 
-Usage: tests/bench/compare_sklearn.py [--nuwatch build/daemon/nuwatch] [--native BIN]
+Usage: tests/bench/compare_sklearn.py [--nuwatch build/bin/nuwatch] [--native BIN]
                                       [--n 5000] [--dims 16] [--nu 0.05] [--window 2000]
 
 Prints a table of timings and ratios, each timing the best of 3 runs (these machines are shared
@@ -47,7 +47,7 @@ def bench(binary, dims, window, nu, budget):
 
 def main():
     p = argparse.ArgumentParser()
-    p.add_argument("--nuwatch", default="build/daemon/nuwatch")
+    p.add_argument("--nuwatch", default="build/bin/nuwatch")
     p.add_argument("--native", default="")
     p.add_argument("--n", type=int, default=5000)
     p.add_argument("--dims", type=int, default=16)

@@ -19,7 +19,7 @@ namespace {
 
 using ::testing::HasSubstr;
 
-const std::string kNuwatch = NUWATCH_BINARY_DIR "/daemon/nuwatch";
+const std::string kNuwatch = NUWATCH_PROGRAM;
 
 struct ProgramRun {
   int exit_code = -1;

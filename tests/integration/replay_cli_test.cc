@@ -1,4 +1,4 @@
-// Tests of `nuwatch replay` (daemon/tools/cmd_replay.cc) run as a program on a plant recording
+// Tests of `nuwatch replay` (daemon/cli/cmd_replay.cc) run as a program on a plant recording
 // made by `nuwatch simulate`: determinism, the output format and its relation to the input, the
 // budget, a frozen model with --refit-every 0, and one-line errors for bad input.
 // The expected values come from the detector's contract (core/include/nuwatch/detector.h): the
@@ -25,7 +25,7 @@ namespace {
 using ::testing::AllOf;
 using ::testing::HasSubstr;
 
-const std::string kNuwatch = NUWATCH_BINARY_DIR "/daemon/nuwatch";
+const std::string kNuwatch = NUWATCH_PROGRAM;
 const std::string kHeader =
     "time,stream,state,decision,outlier,incident,support_vectors,model_version";
 constexpr int kWarmup = 720;

@@ -19,9 +19,9 @@
 #include <string>
 #include <vector>
 
-#include "charts.h"
-#include "config.h"
-#include "csv_table.h"
+#include "charts/charts.h"
+#include "formats/csv_table.h"
+#include "settings/config.h"
 
 namespace nuwatch {
 namespace {
@@ -29,7 +29,7 @@ namespace {
 using ::testing::HasSubstr;
 using ::testing::Not;
 
-const std::string kBinary = std::string(NUWATCH_BINARY_DIR) + "/daemon/nuwatch";
+const std::string kBinary = std::string(NUWATCH_PROGRAM);
 
 std::string ReadBytes(const std::string& path) {
   std::ifstream in(path, std::ios::binary);
