@@ -6,7 +6,8 @@
 #include <mutex>
 #include <sstream>
 
-#include "nuwatch/budget.h"
+#include "budget.h"
+#include "model_fit.h"
 
 namespace nuwatch {
 

@@ -5,6 +5,8 @@
 #include <numeric>
 #include <sstream>
 
+#include "model_fit.h"
+
 namespace nuwatch {
 namespace {
 

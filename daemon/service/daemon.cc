@@ -25,7 +25,7 @@
 #include <thread>
 #include <zmq.hpp>
 
-#include "nuwatch/model_file.h"
+#include "nuwatch/checked_file.h"
 #include "protocol/wire_protocol.h"
 #include "service/control.h"
 #include "service/metrics.h"

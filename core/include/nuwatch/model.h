@@ -8,14 +8,12 @@
 #pragma once
 
 #include <cstdint>
-#include <memory>
 #include <span>
 #include <string>
 #include <vector>
 
 #include "nuwatch/kernel.h"
 #include "nuwatch/scaler.h"
-#include "nuwatch/solver.h"
 #include "nuwatch/types.h"
 
 namespace nuwatch {
@@ -40,10 +38,10 @@ struct CompressionStats {
 };
 
 struct FeatureShare {
-  int feature = 0;       // column index
-  double share = 0;      // |d f / d z_j| / sum_k |d f / d z_k| with z the scaled features (so
-                         // shares do not depend on the features' units), in [0, 1]
-  double gradient = 0;   // d f / d x_feature in raw units (positive: increasing x moves inward)
+  int feature = 0;      // column index
+  double share = 0;     // |d f / d z_j| / sum_k |d f / d z_k| with z the scaled features (so
+                        // shares do not depend on the features' units), in [0, 1]
+  double gradient = 0;  // d f / d x_feature in raw units (positive: increasing x moves inward)
 };
 
 struct ModelParts {
@@ -85,9 +83,10 @@ class Model {
   VectorD KernelSumsScaled(const MatrixD& z) const;
 
   // Per-feature attribution of f at x: the analytic gradient of f with respect to the scaled
-  // features, its components' magnitudes normalised to shares (`gradient` is in raw units). Ensures: at most top_k entries, sorted by
-  // decreasing share. For rbf far from every support vector the gradient is computed with the
-  // kernel values renormalised by the largest one, so it does not underflow to zero.
+  // features, its components' magnitudes normalised to shares (`gradient` is in raw units).
+  // Ensures: at most top_k entries, sorted by decreasing share. For rbf far from every support
+  // vector the gradient is computed with the kernel values renormalised by the largest one, so it
+  // does not underflow to zero.
   std::vector<FeatureShare> Explain(std::span<const double> x, int top_k) const;
 
   // Approximate heap bytes held by the model.
@@ -116,16 +115,5 @@ struct FitOptions {
 // Requires: x.rows() >= 1, finite values; options valid (PreconditionError names the value).
 Model FitModel(const MatrixD& x, const FitOptions& options,
                std::vector<std::string> feature_names = {});
-
-// The fit of an already scaled window with a given scaler and kernel, optionally warm-started.
-// Returns the model and the full alpha over the rows (for the next warm start).
-struct WindowFit {
-  std::shared_ptr<const Model> model;
-  SolverResult solution;
-};
-WindowFit FitScaled(const MatrixD& z, const Scaler& scaler, const Kernel& kernel,
-                    const GammaSpec& gamma_spec, const SolverOptions& solver,
-                    const VectorD* initial_alpha, uint64_t version,
-                    std::vector<std::string> feature_names = {});
 
 }  // namespace nuwatch

@@ -1,7 +1,7 @@
 // Tests of the support-vector budget (core/src/budget.cc) against hand-worked values, published
 // properties (Wang, Crammer, Vucetic, JMLR 13:3103-3131, 2012; methods.md "Budget on support
 // vectors") and brute-force references computed here from the textbook kernel formula.
-#include "nuwatch/budget.h"
+#include "budget.h"
 
 #include <gtest/gtest.h>
 

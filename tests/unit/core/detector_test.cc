@@ -24,9 +24,10 @@
 #include <string>
 #include <vector>
 
+#include "model_fit.h"
 #include "nuwatch/model.h"
 #include "nuwatch/sample_window.h"
-#include "nuwatch/solver.h"
+#include "solver.h"
 
 namespace nuwatch {
 namespace {

@@ -16,6 +16,8 @@
 #include <vector>
 
 #include "common/random_data.h"
+#include "crc32.h"
+#include "nuwatch/checked_file.h"
 
 namespace nuwatch {
 namespace {

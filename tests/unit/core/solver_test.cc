@@ -23,7 +23,7 @@
 //    1).
 // The solver keeps its kernel columns in float32 (solver.cc), so each bound gets a slack for float
 // rounding: 2^-24 ~ 6e-8 relative per kernel entry, taken as 1e-6 of max |K| throughout.
-#include "nuwatch/solver.h"
+#include "solver.h"
 
 #include <gmock/gmock.h>
 #include <gtest/gtest.h>

@@ -15,6 +15,7 @@
 #include <string>
 #include <vector>
 
+#include "crc32.h"
 #include "nuwatch/model_file.h"
 
 namespace nuwatch {
@@ -364,7 +365,8 @@ TEST(StateStore, RemovesLeftoversOfInterruptedWrites) {
   TempDir dir;
   const StateStore store(dir.path());
   store.Save("pump-01", 2, BusyDetector()->ExportState());
-  // WriteFileAtomically's temporary name (model_file.cc): the path, ".tmp.", the writer's pid.
+  // WriteFileAtomically's temporary name (core/src/checked_file.cc): the path, ".tmp.", the
+  // writer's pid.
   const std::string leftover = store.PathFor("pump-01") + ".tmp.12345";
   std::ofstream(leftover) << "half a file";
   EXPECT_EQ(store.RemoveStaleTemporaries(), std::vector<std::string>{leftover});

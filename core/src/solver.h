@@ -20,19 +20,20 @@
 namespace nuwatch {
 
 struct SolverOptions {
-  double nu = 0.05;                     // (0, 1]
-  double tolerance = 1e-3;              // > 0; see the stopping rule above
-  std::size_t cache_bytes = 100u << 20; // kernel-column cache (float32 columns of length l)
-  int64_t max_iterations = 0;           // 0: max(10'000'000, 100 l)
+  double nu = 0.05;                      // (0, 1]
+  double tolerance = 1e-3;               // > 0; see the stopping rule above
+  std::size_t cache_bytes = 100u << 20;  // kernel-column cache (float32 columns of length l)
+  int64_t max_iterations = 0;            // 0: max(10'000'000, 100 l)
   bool shrinking = true;
 };
 
 struct SolverResult {
-  VectorD alpha;        // per training row, unscaled: 0 <= alpha_i <= 1/(nu l), sum = 1
-  double rho = 0.0;     // unscaled offset: f(x) = sum_i alpha_i k(x_i, x) - rho
-  double objective = 0; // 1/2 alpha' K alpha (unscaled)
+  VectorD alpha;         // per training row, unscaled: 0 <= alpha_i <= 1/(nu l), sum = 1
+  double rho = 0.0;      // unscaled offset: f(x) = sum_i alpha_i k(x_i, x) - rho
+  double objective = 0;  // 1/2 alpha' K alpha (unscaled)
   int64_t iterations = 0;
-  bool converged = false;  // false: stopped at max_iterations; the alpha is feasible but not optimal
+  bool converged =
+      false;  // false: stopped at max_iterations; the alpha is feasible but not optimal
   int64_t support_vectors = 0;          // alpha_i > 0
   int64_t bounded_support_vectors = 0;  // alpha_i at the upper bound
   double seconds = 0;
