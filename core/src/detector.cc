@@ -31,53 +31,6 @@ std::string_view RefitReasonName(RefitReason reason) {
   return "unknown";
 }
 
-void CheckDetectorOptions(const DetectorOptions& o, std::string_view where) {
-  std::ostringstream m;
-  m << where << ": ";
-  auto fail = [&](const std::string& text) {
-    m << text;
-    throw PreconditionError(m.str());
-  };
-  auto value = [](double v) {
-    std::ostringstream s;
-    s << v;
-    return s.str();
-  };
-  if (!(o.nu > 0 && o.nu <= 1)) fail("nu = " + value(o.nu) + " is outside (0, 1]");
-  if (o.gamma.mode == GammaSpec::Mode::kValue && !(o.gamma.value > 0))
-    fail("gamma = " + value(o.gamma.value) + " must be > 0");
-  if (o.kernel == KernelType::kPolynomial && o.degree < 1)
-    fail("degree = " + std::to_string(o.degree) + " must be >= 1");
-  if (!(o.tolerance > 0)) fail("tolerance = " + value(o.tolerance) + " must be > 0");
-  if (o.max_iterations < 0)
-    fail("max_iterations = " + std::to_string(o.max_iterations) + " must be >= 0");
-  if (o.window < 2) fail("window = " + std::to_string(o.window) + " must be >= 2");
-  if (o.warmup < 2 || o.warmup > o.window)
-    fail("warmup = " + std::to_string(o.warmup) +
-         " must be in [2, window = " + std::to_string(o.window) + "]");
-  // Non-finite values must be caught here: the window and the drift test are rebuilt from these
-  // options inside a refit, where a throw would leave the refit marked in flight for good.
-  if (!(std::isfinite(o.max_age_seconds) && o.max_age_seconds >= 0))
-    fail("max_age_seconds = " + value(o.max_age_seconds) + " must be finite and >= 0");
-  if (o.refit_every < 0) fail("refit_every = " + std::to_string(o.refit_every) + " must be >= 0");
-  if (!(o.max_model_age_seconds >= 0))
-    fail("max_model_age_seconds = " + value(o.max_model_age_seconds) + " must be >= 0");
-  if (o.cold_refit_every < 1)
-    fail("cold_refit_every = " + std::to_string(o.cold_refit_every) + " must be >= 1");
-  if (o.support_vector_budget < 1)
-    fail("support_vector_budget = " + std::to_string(o.support_vector_budget) + " must be >= 1");
-  if (!(std::isfinite(o.drift_delta) && o.drift_delta >= 0))
-    fail("drift_delta = " + value(o.drift_delta) + " must be finite and >= 0");
-  if (!(std::isfinite(o.drift_lambda) && o.drift_lambda > 0))
-    fail("drift_lambda = " + value(o.drift_lambda) + " must be finite and > 0");
-  if (o.drift_min_samples < 0)
-    fail("drift_min_samples = " + std::to_string(o.drift_min_samples) + " must be >= 0");
-  if (o.open_window < 1 || o.open_after < 1 || o.open_after > o.open_window)
-    fail("open_after = " + std::to_string(o.open_after) + ", open_window = " +
-         std::to_string(o.open_window) + ": need 1 <= open_after <= open_window");
-  if (o.close_after < 1) fail("close_after = " + std::to_string(o.close_after) + " must be >= 1");
-}
-
 namespace {
 
 IncidentTrackerOptions TrackerOptions(const DetectorOptions& o) {

@@ -58,12 +58,20 @@ int main(int argc, char** argv) {
                      "trace, debug, info, warn, error, critical or off (daemon.log_level)");
   app.add_option("--ready-file", ready_file,
                  "Write the actual endpoints as JSON to this file once everything listens");
+  bool print_defaults = false;
+  app.add_flag(
+      "--print-defaults", print_defaults,
+      "Print every config key at its default, documented (config/nuwatchd.toml), and exit");
   app.set_version_flag("--version", NUWATCH_VERSION);
   try {
     app.parse(argc, argv);
   } catch (const CLI::ParseError& e) {
     const int code = app.exit(e);
     return code == 0 ? 0 : 2;
+  }
+  if (print_defaults) {
+    std::cout << nuwatch::DefaultConfigToml();
+    return 0;
   }
 
   nuwatch::CommandLineOverrides overrides;

@@ -83,37 +83,6 @@ spdlog::level::level_enum LogLevel(const std::string& name) {
   return spdlog::level::from_str(name);
 }
 
-// The daemon settings that a reload does not change, by key.
-std::vector<std::string> RestartOnlyChanges(const DaemonSettings& a, const DaemonSettings& b) {
-  std::vector<std::string> changed;
-  if (a.ingest_endpoints != b.ingest_endpoints) changed.push_back("ingest.endpoints");
-  if (a.subscribe_endpoints != b.subscribe_endpoints) changed.push_back("ingest.subscribe");
-  if (a.receive_high_water_mark != b.receive_high_water_mark)
-    changed.push_back("ingest.receive_high_water_mark");
-  if (a.publish_endpoint != b.publish_endpoint) changed.push_back("publish.endpoint");
-  if (a.publish_high_water_mark != b.publish_high_water_mark)
-    changed.push_back("publish.high_water_mark");
-  if (a.control_endpoint != b.control_endpoint) changed.push_back("control.endpoint");
-  if (a.metrics_listen != b.metrics_listen) changed.push_back("metrics.listen");
-  if (a.state_dir != b.state_dir) changed.push_back("state.dir");
-  if (a.refit_threads != b.refit_threads) changed.push_back("daemon.refit_threads");
-  if (a.record_dir != b.record_dir) changed.push_back("recording.dir");
-  return changed;
-}
-
-void KeepRestartOnly(const DaemonSettings& running, DaemonSettings* next) {
-  next->ingest_endpoints = running.ingest_endpoints;
-  next->subscribe_endpoints = running.subscribe_endpoints;
-  next->receive_high_water_mark = running.receive_high_water_mark;
-  next->publish_endpoint = running.publish_endpoint;
-  next->publish_high_water_mark = running.publish_high_water_mark;
-  next->control_endpoint = running.control_endpoint;
-  next->metrics_listen = running.metrics_listen;
-  next->state_dir = running.state_dir;
-  next->refit_threads = running.refit_threads;
-  next->record_dir = running.record_dir;
-}
-
 WireLimits LimitsOf(const DaemonSettings& s) {
   WireLimits limits;
   limits.max_key_bytes = kProtocolMaxKeyBytes;
@@ -960,9 +929,8 @@ ReloadOutcome Daemon::Impl::Reload() {
   const std::vector<std::string> ignored = RestartOnlyChanges(config.daemon, next.daemon);
   if (!ignored.empty()) {
     spdlog::warn(
-        "reload: {} changed but take effect only at a restart (endpoints, metrics.listen, "
-        "state.dir, recording.dir, refit_threads and high-water marks never change on "
-        "reload)",
+        "reload: {} changed but take effect only at a restart (the keys marked restart in "
+        "config/nuwatchd.toml never change on reload)",
         Join(ignored));
   }
   KeepRestartOnly(config.daemon, &next.daemon);

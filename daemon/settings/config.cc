@@ -1,6 +1,7 @@
-// Strict TOML loading for nuwatchd. One table of keys per struct drives parsing, copying,
-// comparison and description, so a key added to a table is read, overridden, compared and written
-// back without further code; the range checks are the only per-key code.
+// Strict TOML loading for nuwatchd. The key tables (core's DetectorKeys(), DaemonKeys() below)
+// drive parsing, copying, comparison, range checks, description and the default file, so a key
+// added to a table is read, checked, overridden, compared, written back and documented in
+// config/nuwatchd.toml without further code.
 #include "settings/config.h"
 
 #include <fnmatch.h>
@@ -106,8 +107,33 @@ std::string ToToml(const std::vector<std::string>& v) {
   }
   return out + "]";
 }
+std::string ToToml(const std::vector<int64_t>& v) {
+  std::string out = "[";
+  for (std::size_t i = 0; i < v.size(); ++i) {
+    if (i > 0) out += ", ";
+    out += std::to_string(v[i]);
+  }
+  return out + "]";
+}
 template <class T>
 requires std::is_integral_v<T> std::string ToToml(T v) { return std::to_string(v); }
+
+// `text` as "# " comment lines of at most 100 columns, broken at spaces.
+std::string WrapComment(std::string_view text) {
+  constexpr std::size_t kWidth = 100 - 2;
+  std::string out;
+  while (!text.empty()) {
+    std::size_t cut = text.size();
+    if (cut > kWidth) {
+      cut = text.rfind(' ', kWidth);
+      if (cut == std::string_view::npos || cut == 0) cut = text.find(' ', kWidth);
+      if (cut == std::string_view::npos) cut = text.size();
+    }
+    out += "# " + std::string(text.substr(0, cut)) + "\n";
+    text.remove_prefix(std::min(text.size(), cut + 1));
+  }
+  return out;
+}
 
 bool SameValue(const GammaSpec& a, const GammaSpec& b) {
   return a.mode == b.mode && (a.mode != GammaSpec::Mode::kValue || a.value == b.value);
@@ -118,78 +144,169 @@ bool SameValue(const T& a, const T& b) {
 }
 
 // ---------------------------------------------------------------------------------------------
-// The key tables.
+// The daemon's key table (the detector's is core's DetectorKeys()).
 
 template <class S>
-using Member =
-    std::variant<double S::*, int S::*, int64_t S::*, std::size_t S::*, bool S::*, std::string S::*,
-                 std::vector<std::string> S::*, KernelType S::*, ScalerType S::*, GammaSpec S::*>;
-
-template <class S>
-struct KeySpec {
-  std::string_view section;
-  std::string_view name;
-  Member<S> member;
-};
-
+using Member = SettingMember<S>;
 using D = DetectorOptions;
-const std::vector<KeySpec<D>>& DetectorKeys() {
-  static const std::vector<KeySpec<D>> keys = {
-      {"detector", "nu", &D::nu},
-      {"detector", "kernel", &D::kernel},
-      {"detector", "gamma", &D::gamma},
-      {"detector", "degree", &D::degree},
-      {"detector", "coef0", &D::coef0},
-      {"detector", "scaler", &D::scaler},
-      {"detector", "tolerance", &D::tolerance},
-      {"detector", "max_iterations", &D::max_iterations},
-      {"detector", "cache_bytes", &D::cache_bytes},
-      {"detector", "window", &D::window},
-      {"detector", "max_age_seconds", &D::max_age_seconds},
-      {"detector", "warmup", &D::warmup},
-      {"detector", "refit_every", &D::refit_every},
-      {"detector", "max_model_age_seconds", &D::max_model_age_seconds},
-      {"detector", "cold_refit_every", &D::cold_refit_every},
-      {"detector", "support_vector_budget", &D::support_vector_budget},
-      {"detector", "learn_from_anomalies", &D::learn_from_anomalies},
-      {"detector", "drift_detection", &D::drift_detection},
-      {"detector", "drift_delta", &D::drift_delta},
-      {"detector", "drift_lambda", &D::drift_lambda},
-      {"detector", "drift_min_samples", &D::drift_min_samples},
-      {"detector", "open_after", &D::open_after},
-      {"detector", "open_window", &D::open_window},
-      {"detector", "close_after", &D::close_after},
-      {"detector", "feature_names", &D::feature_names},
-  };
-  return keys;
-}
 
 using S = DaemonSettings;
-const std::vector<KeySpec<S>>& DaemonKeys() {
-  static const std::vector<KeySpec<S>> keys = {
-      {"daemon", "log_level", &S::log_level},
-      {"daemon", "refit_threads", &S::refit_threads},
-      {"ingest", "endpoints", &S::ingest_endpoints},
-      {"ingest", "subscribe", &S::subscribe_endpoints},
-      {"ingest", "receive_high_water_mark", &S::receive_high_water_mark},
-      {"publish", "endpoint", &S::publish_endpoint},
-      {"publish", "high_water_mark", &S::publish_high_water_mark},
-      {"publish", "include_learning", &S::publish_learning},
-      {"control", "endpoint", &S::control_endpoint},
-      {"metrics", "listen", &S::metrics_listen},
-      {"metrics", "anomaly_ratio_window", &S::anomaly_ratio_window},
-      {"state", "dir", &S::state_dir},
-      {"state", "snapshot_interval_seconds", &S::snapshot_interval_seconds},
-      {"limits", "max_streams", &S::max_streams},
-      {"limits", "max_dims", &S::max_dims},
-      {"limits", "max_message_bytes", &S::max_message_bytes},
-      {"limits", "max_vectors_per_message", &S::max_vectors_per_message},
-      {"recording", "dir", &S::record_dir},
-      {"recording", "rotate_bytes", &S::record_rotate_bytes},
-      {"recording", "keep_files", &S::record_keep_files},
-  };
-  return keys;
-}
+
+constexpr std::string_view kLogLevels[] = {"trace", "debug",    "info", "warn",
+                                           "error", "critical", "off"};
+constexpr SettingBounds AtLeast(double min) { return {.min = min}; }
+constexpr SettingBounds Positive() { return {.min = 0, .min_open = true}; }
+constexpr ReloadEffect kNow = ReloadEffect::kImmediate;
+constexpr ReloadEffect kRestart = ReloadEffect::kRestart;
+
+// The daemon's keys, section by section in the order config/nuwatchd.toml lists them. The
+// defaults are DaemonSettings' member initialisers; config/REFERENCE.md explains each key.
+const Setting<S> kDaemonKeys[] = {
+    {.section = "daemon",
+     .name = "log_level",
+     .member = &S::log_level,
+     .doc = "How much the daemon logs.",
+     .choices = kLogLevels,
+     .reload = kNow},
+    {.section = "daemon",
+     .name = "refit_threads",
+     .member = &S::refit_threads,
+     .doc = "Threads that run refits in the background. Scoring never waits for a refit; more "
+            "threads let more streams refit at once, at the cost of that many cores.",
+     .unit = "threads",
+     .bounds = AtLeast(1),
+     .reload = kRestart},
+    {.section = "ingest",
+     .name = "endpoints",
+     .member = &S::ingest_endpoints,
+     .doc = "Endpoints the daemon binds a PULL socket on; senders connect PUSH sockets and send "
+            "ingest messages (daemon/protocol/PROTOCOL.md).",
+     .unit = "ZeroMQ endpoints",
+     .reload = kRestart},
+    {.section = "ingest",
+     .name = "subscribe",
+     .member = &S::subscribe_endpoints,
+     .doc = "Endpoints of upstream publishers the daemon connects a SUB socket to (all messages, "
+            "each an ingest message as on the PULL socket). Empty: none.",
+     .unit = "ZeroMQ endpoints",
+     .reload = kRestart},
+    {.section = "ingest",
+     .name = "receive_high_water_mark",
+     .member = &S::receive_high_water_mark,
+     .doc = "Messages ZeroMQ queues on each ingest socket before senders block or drop; 0: no "
+            "limit.",
+     .unit = "messages",
+     .bounds = AtLeast(0),
+     .bounds_note = " (0: no limit)",
+     .reload = kRestart},
+    {.section = "publish",
+     .name = "endpoint",
+     .member = &S::publish_endpoint,
+     .doc = "Endpoint the daemon binds its PUB socket on, for results and incident events.",
+     .unit = "ZeroMQ endpoint",
+     .reload = kRestart},
+    {.section = "publish",
+     .name = "high_water_mark",
+     .member = &S::publish_high_water_mark,
+     .doc = "Messages queued per subscriber before ZeroMQ drops for that subscriber; 0: no limit.",
+     .unit = "messages",
+     .bounds = AtLeast(0),
+     .bounds_note = " (0: no limit)",
+     .reload = kRestart},
+    {.section = "publish",
+     .name = "include_learning",
+     .member = &S::publish_learning,
+     .doc = "Also publish results for vectors that arrive while their stream has no model yet "
+            "(state \"learning\", decision null).",
+     .reload = kNow},
+    {.section = "control",
+     .name = "endpoint",
+     .member = &S::control_endpoint,
+     .doc = "Endpoint the daemon binds its REP socket on, for control requests.",
+     .unit = "ZeroMQ endpoint",
+     .reload = kRestart},
+    {.section = "metrics",
+     .name = "listen",
+     .member = &S::metrics_listen,
+     .doc = "HOST:PORT of the Prometheus /metrics endpoint; port 0 picks a free port.",
+     .reload = kRestart},
+    {.section = "metrics",
+     .name = "anomaly_ratio_window",
+     .member = &S::anomaly_ratio_window,
+     .doc = "The nuwatch_anomaly_ratio gauge is the flagged fraction of each stream's last this "
+            "many vectors.",
+     .unit = "vectors",
+     .bounds = AtLeast(1),
+     .reload = kNow},
+    {.section = "state",
+     .name = "dir",
+     .member = &S::state_dir,
+     .doc = "Directory for model snapshots, restored at start-up so that a restart does not "
+            "relearn every stream. \"\": no state is kept.",
+     .unit = "directory",
+     .reload = kRestart},
+    {.section = "state",
+     .name = "snapshot_interval_seconds",
+     .member = &S::snapshot_interval_seconds,
+     .doc = "Time between snapshots of the streams to dir.",
+     .unit = "seconds",
+     .bounds = Positive(),
+     .reload = kNow},
+    {.section = "limits",
+     .name = "max_streams",
+     .member = &S::max_streams,
+     .doc = "Streams the daemon keeps at most; vectors of further new streams are rejected "
+            "(stream_limit).",
+     .unit = "streams",
+     .bounds = AtLeast(1),
+     .reload = kNow},
+    // The wire bounds of daemon/protocol/PROTOCOL.md §7: the binary dims field is 16 bits, and
+    // 28 bytes is the smallest binary message.
+    {.section = "limits",
+     .name = "max_dims",
+     .member = &S::max_dims,
+     .doc = "Features per vector at most (dims_limit).",
+     .unit = "features",
+     .bounds = {.min = 1, .max = 65535},
+     .reload = kNow},
+    {.section = "limits",
+     .name = "max_message_bytes",
+     .member = &S::max_message_bytes,
+     .doc = "Bytes of one ingest payload at most (message_too_large).",
+     .unit = "bytes",
+     .bounds = AtLeast(28),
+     .bounds_note = " (the smallest binary message)",
+     .reload = kNow},
+    {.section = "limits",
+     .name = "max_vectors_per_message",
+     .member = &S::max_vectors_per_message,
+     .doc = "Vectors in one ingest message at most (count_limit).",
+     .unit = "vectors",
+     .bounds = AtLeast(1),
+     .reload = kNow},
+    {.section = "recording",
+     .name = "dir",
+     .member = &S::record_dir,
+     .doc = "Directory where the received vectors are also written, for replay and tuning. \"\": "
+            "no recording.",
+     .unit = "directory",
+     .reload = kRestart},
+    {.section = "recording",
+     .name = "rotate_bytes",
+     .member = &S::record_rotate_bytes,
+     .doc = "A recording file is closed and a new one started when it reaches this size.",
+     .unit = "bytes",
+     .bounds = AtLeast(1),
+     .reload = kNow},
+    {.section = "recording",
+     .name = "keep_files",
+     .member = &S::record_keep_files,
+     .doc = "Recording files kept; the oldest beyond this are deleted. 0: keep every file.",
+     .unit = "files",
+     .bounds = AtLeast(0),
+     .bounds_note = " (0: keep every file)",
+     .reload = kNow},
+};
 
 constexpr std::string_view kDaemonSections[] = {"daemon",  "ingest", "publish", "control",
                                                 "metrics", "state",  "limits",  "recording"};
@@ -197,11 +314,8 @@ constexpr std::string_view kDetectorSection = "detector";
 constexpr std::string_view kStreamSection = "stream";
 constexpr std::string_view kMatchKey = "match";
 
-const KeySpec<D>* FindDetectorKey(std::string_view name) {
-  for (const auto& key : DetectorKeys()) {
-    if (key.name == name) return &key;
-  }
-  return nullptr;
+const Setting<D>* FindDetectorKey(std::string_view name) {
+  return FindSetting(DetectorKeys(), name);
 }
 
 template <class T>
@@ -340,6 +454,19 @@ class Reader {
         out.push_back(s->get());
       }
       return out;
+    } else if constexpr (std::is_same_v<T, std::vector<int64_t>>) {
+      const auto* array = node.as_array();
+      if (array == nullptr) WrongType(node, key, "an array of integers");
+      std::vector<int64_t> out;
+      for (std::size_t i = 0; i < array->size(); ++i) {
+        const auto* v = (*array)[i].as_integer();
+        if (v == nullptr) {
+          Fail((*array)[i].source(), "key '" + key + "' must be an array of integers; element " +
+                                         std::to_string(i + 1) + " is " + Describe((*array)[i]));
+        }
+        out.push_back(v->get());
+      }
+      return out;
     } else if constexpr (std::is_same_v<T, KernelType>) {
       constexpr std::string_view kExpected = "one of \"rbf\", \"linear\", \"poly\"";
       const auto* s = node.as_string();
@@ -463,7 +590,7 @@ void ParseDaemonSection(const Reader& reader, std::string_view section, const to
     if (k.section == section) valid.push_back(k.name);
   }
   for (const Entry& entry : InFileOrder(table)) {
-    const KeySpec<S>* spec = nullptr;
+    const Setting<S>* spec = nullptr;
     for (const auto& k : DaemonKeys()) {
       if (k.section == section && k.name == entry.key->str()) spec = &k;
     }
@@ -536,126 +663,19 @@ void ApplyOverride(const Config::StreamOverride& override_table, DetectorOptions
 }
 
 // ---------------------------------------------------------------------------------------------
-// Range checks. A violation names the keys it involves (the most specific first) so that the
-// config loader can point at the one the file set.
+// Checks. The per-key rules are the tables' (CheckSettings); here are only the daemon's rules that
+// span keys (endpoint syntax, endpoints bound twice, nothing to receive from). A violation names
+// the keys it involves (the most specific first) so that the loader can point at the one the file
+// set.
 
-struct Violation {
-  std::vector<std::string> keys;
-  std::string message;
-};
-using Namer = std::function<std::string(std::string_view key)>;
+using Violation = SettingViolation;
 
-std::string Num(double v) {
-  std::string text = FormatDouble(v);
-  // Messages show 2.0 as 2: the user wrote a number, not a TOML float.
-  if (text.size() > 2 && text.ends_with(".0")) text.resize(text.size() - 2);
-  return text;
+std::string QualifiedName(std::string_view section, std::string_view key) {
+  return std::string(section) + "." + std::string(key);
 }
-std::string Num(int64_t v) { return std::to_string(v); }
 
-std::optional<Violation> CheckDetector(const DetectorOptions& o, const Namer& name) {
-  auto fail = [&](std::vector<std::string> keys, std::string message) {
-    return std::optional<Violation>(Violation{std::move(keys), std::move(message)});
-  };
-  auto show = [&](std::string_view key, auto value) { return name(key) + " = " + Num(value); };
-  const std::pair<std::string_view, double> finite[] = {
-      {"nu", o.nu},
-      {"coef0", o.coef0},
-      {"tolerance", o.tolerance},
-      {"max_age_seconds", o.max_age_seconds},
-      {"max_model_age_seconds", o.max_model_age_seconds},
-      {"drift_delta", o.drift_delta},
-      {"drift_lambda", o.drift_lambda},
-      {"gamma", o.gamma.mode == GammaSpec::Mode::kValue ? o.gamma.value : 1.0},
-  };
-  for (const auto& [key, value] : finite) {
-    if (!std::isfinite(value)) return fail({std::string(key)}, show(key, value) + " is not finite");
-  }
-  if (!(o.nu > 0 && o.nu <= 1)) return fail({"nu"}, show("nu", o.nu) + " is outside (0, 1]");
-  if (o.gamma.mode == GammaSpec::Mode::kValue && !(o.gamma.value > 0)) {
-    return fail({"gamma"},
-                show("gamma", o.gamma.value) + " must be positive (or \"scale\" or \"median\")");
-  }
-  if (o.degree < 1) {
-    return fail({"degree"}, show("degree", int64_t{o.degree}) + " must be at least 1");
-  }
-  if (!(o.tolerance > 0)) {
-    return fail({"tolerance"}, show("tolerance", o.tolerance) + " must be positive");
-  }
-  if (o.max_iterations < 0) {
-    return fail({"max_iterations"}, show("max_iterations", o.max_iterations) +
-                                        " must not be negative (0: the solver's default cap)");
-  }
-  constexpr std::size_t kMinCacheBytes = 1u << 20;
-  if (o.cache_bytes < kMinCacheBytes) {
-    return fail({"cache_bytes"}, show("cache_bytes", static_cast<int64_t>(o.cache_bytes)) +
-                                     " must be at least 1048576 (1 MiB); the unit is bytes");
-  }
-  if (o.window < 2) return fail({"window"}, show("window", o.window) + " must be at least 2");
-  if (o.max_age_seconds < 0) {
-    return fail({"max_age_seconds"},
-                show("max_age_seconds", o.max_age_seconds) + " must not be negative (0: no limit)");
-  }
-  // The first fit needs two vectors at least (a single row makes a degenerate problem).
-  if (o.warmup < 2) return fail({"warmup"}, show("warmup", o.warmup) + " must be at least 2");
-  if (o.warmup > o.window) {
-    return fail({"warmup", "window"},
-                show("warmup", o.warmup) + " must not exceed " + show("window", o.window));
-  }
-  if (o.refit_every < 0) {
-    return fail({"refit_every"}, show("refit_every", o.refit_every) +
-                                     " must not be negative (0: fit once, never refit)");
-  }
-  if (o.max_model_age_seconds < 0) {
-    return fail({"max_model_age_seconds"}, show("max_model_age_seconds", o.max_model_age_seconds) +
-                                               " must not be negative (0: no age limit)");
-  }
-  if (o.cold_refit_every < 1) {
-    return fail({"cold_refit_every"}, show("cold_refit_every", o.cold_refit_every) +
-                                          " must be at least 1 (1: every refit is cold)");
-  }
-  if (o.support_vector_budget < 1) {
-    return fail({"support_vector_budget"},
-                show("support_vector_budget", o.support_vector_budget) + " must be at least 1");
-  }
-  if (o.drift_delta < 0) {
-    return fail({"drift_delta"}, show("drift_delta", o.drift_delta) + " must not be negative");
-  }
-  if (!(o.drift_lambda > 0)) {
-    return fail({"drift_lambda"}, show("drift_lambda", o.drift_lambda) + " must be positive");
-  }
-  if (o.drift_min_samples < 1) {
-    return fail({"drift_min_samples"},
-                show("drift_min_samples", o.drift_min_samples) + " must be at least 1");
-  }
-  if (o.open_after < 1) {
-    return fail({"open_after"}, show("open_after", int64_t{o.open_after}) + " must be at least 1");
-  }
-  if (o.open_window < 1) {
-    return fail({"open_window"},
-                show("open_window", int64_t{o.open_window}) + " must be at least 1");
-  }
-  if (o.open_after > o.open_window) {
-    return fail({"open_after", "open_window"}, show("open_after", int64_t{o.open_after}) +
-                                                   " must not exceed " +
-                                                   show("open_window", int64_t{o.open_window}));
-  }
-  if (o.close_after < 1) {
-    return fail({"close_after"},
-                show("close_after", int64_t{o.close_after}) + " must be at least 1");
-  }
-  std::set<std::string_view> seen;
-  for (std::size_t i = 0; i < o.feature_names.size(); ++i) {
-    const std::string& feature = o.feature_names[i];
-    if (feature.empty()) {
-      return fail({"feature_names"}, name("feature_names") + " has an empty name at position " +
-                                         std::to_string(i + 1));
-    }
-    if (!seen.insert(feature).second) {
-      return fail({"feature_names"}, name("feature_names") + " names " + Quote(feature) + " twice");
-    }
-  }
-  return std::nullopt;
+std::optional<Violation> CheckDetector(const DetectorOptions& o, const SettingNamer& name) {
+  return FindDetectorViolation(o, name);
 }
 
 // "TRANSPORT://ADDRESS" with a lower-case transport; ZeroMQ itself checks the address.
@@ -692,12 +712,9 @@ bool LooksLikeListenAddress(std::string_view address) {
   return true;
 }
 
-constexpr std::string_view kLogLevels[] = {"trace", "debug",    "info", "warn",
-                                           "error", "critical", "off"};
-
 std::optional<Violation> CheckDaemon(const DaemonSettings& s) {
   auto fail = [](std::string key, std::string message) {
-    return std::optional<Violation>(Violation{{std::move(key)}, std::move(message)});
+    return std::optional<Violation>(Violation{"", {std::move(key)}, std::move(message)});
   };
   const std::string example = " (TRANSPORT://ADDRESS, e.g. tcp://127.0.0.1:7601)";
   // Every endpoint the daemon binds, with the key it came from, for the duplicate check.
@@ -719,7 +736,8 @@ std::optional<Violation> CheckDaemon(const DaemonSettings& s) {
   }
   if (s.ingest_endpoints.empty() && s.subscribe_endpoints.empty()) {
     return std::optional<Violation>(
-        Violation{{"ingest.endpoints", "ingest.subscribe"},
+        Violation{"ingest",
+                  {"ingest.endpoints", "ingest.subscribe"},
                   "ingest.endpoints and ingest.subscribe are both empty: the daemon would "
                   "receive nothing"});
   }
@@ -742,69 +760,15 @@ std::optional<Violation> CheckDaemon(const DaemonSettings& s) {
       }
     }
   }
-  if (s.receive_high_water_mark < 0) {
-    return fail("ingest.receive_high_water_mark",
-                "ingest.receive_high_water_mark = " + Num(int64_t{s.receive_high_water_mark}) +
-                    " must not be negative (0: no limit)");
-  }
-  if (s.publish_high_water_mark < 0) {
-    return fail("publish.high_water_mark",
-                "publish.high_water_mark = " + Num(int64_t{s.publish_high_water_mark}) +
-                    " must not be negative (0: no limit)");
-  }
   if (!LooksLikeListenAddress(s.metrics_listen)) {
     return fail("metrics.listen", "metrics.listen = " + Quote(s.metrics_listen) +
                                       " must be HOST:PORT, e.g. 127.0.0.1:9464 (port 0: any free "
                                       "port)");
   }
-  if (s.anomaly_ratio_window < 1) {
-    return fail(
-        "metrics.anomaly_ratio_window",
-        "metrics.anomaly_ratio_window = " + Num(s.anomaly_ratio_window) + " must be at least 1");
-  }
-  if (!std::isfinite(s.snapshot_interval_seconds) || !(s.snapshot_interval_seconds > 0)) {
-    return fail("state.snapshot_interval_seconds",
-                "state.snapshot_interval_seconds = " + Num(s.snapshot_interval_seconds) +
-                    " must be a positive number of seconds");
-  }
-  if (std::find(std::begin(kLogLevels), std::end(kLogLevels), s.log_level) ==
-      std::end(kLogLevels)) {
-    return fail("daemon.log_level",
-                "daemon.log_level = " + Quote(s.log_level) +
-                    " must be one of \"trace\", \"debug\", \"info\", \"warn\", \"error\", "
-                    "\"critical\", \"off\"");
-  }
-  if (s.refit_threads < 1) {
-    return fail("daemon.refit_threads",
-                "daemon.refit_threads = " + Num(int64_t{s.refit_threads}) + " must be at least 1");
-  }
-  if (s.max_streams < 1) {
-    return fail("limits.max_streams",
-                "limits.max_streams = " + Num(s.max_streams) + " must be at least 1");
-  }
-  // The wire bounds of daemon/protocol/PROTOCOL.md §7: the binary dims field is 16 bits, and 28
-  // bytes is the smallest binary message.
-  if (s.max_dims < 1 || s.max_dims > 65535) {
-    return fail("limits.max_dims",
-                "limits.max_dims = " + Num(int64_t{s.max_dims}) + " is outside [1, 65535]");
-  }
-  if (s.max_message_bytes < 28) {
-    return fail("limits.max_message_bytes",
-                "limits.max_message_bytes = " + Num(static_cast<int64_t>(s.max_message_bytes)) +
-                    " must be at least 28 (the smallest binary message)");
-  }
-  if (s.max_vectors_per_message < 1) {
-    return fail("limits.max_vectors_per_message",
-                "limits.max_vectors_per_message = " + Num(int64_t{s.max_vectors_per_message}) +
-                    " must be at least 1");
-  }
-  if (s.record_rotate_bytes < 1) {
-    return fail("recording.rotate_bytes", "recording.rotate_bytes = 0 must be at least 1");
-  }
-  if (s.record_keep_files < 0) {
-    return fail("recording.keep_files",
-                "recording.keep_files = " + Num(int64_t{s.record_keep_files}) +
-                    " must not be negative (0: keep every file)");
+  if (auto violation = CheckSettings(DaemonKeys(), s, QualifiedName)) {
+    // The loader finds daemon keys by their qualified name.
+    for (std::string& key : violation->keys) key = QualifiedName(violation->section, key);
+    return violation;
   }
   return std::nullopt;
 }
@@ -881,7 +845,9 @@ Config ParseConfig(std::string_view toml_text, const std::string& path_for_messa
     throw ConfigError(Locate(reader, *violation, daemon_positions, file_prefix) +
                       violation->message);
   }
-  const auto in_detector = [](std::string_view key) { return "detector." + std::string(key); };
+  const auto in_detector = [](std::string_view, std::string_view key) {
+    return "detector." + std::string(key);
+  };
   if (const auto violation = CheckDetector(config.detector, in_detector)) {
     throw ConfigError(Locate(reader, *violation, detector_positions, file_prefix) +
                       violation->message);
@@ -912,7 +878,7 @@ Config ParseConfig(std::string_view toml_text, const std::string& path_for_messa
     }
     DetectorOptions merged = config.detector;
     ApplyOverride(override_table, merged);
-    const auto namer = [&](std::string_view key) {
+    const auto namer = [&](std::string_view, std::string_view key) {
       const bool set_here = positions.find(key) != positions.end();
       return std::string(set_here ? "stream." : "detector.") + std::string(key);
     };
@@ -960,7 +926,7 @@ DetectorOptions DetectorOptionsFor(const Config& config, std::string_view stream
 }
 
 void ValidateDetectorOptions(const DetectorOptions& options, const std::string& where) {
-  const auto plain = [](std::string_view key) { return std::string(key); };
+  const auto plain = [](std::string_view, std::string_view key) { return std::string(key); };
   if (const auto violation = CheckDetector(options, plain)) {
     throw ConfigError(where.empty() ? violation->message : where + ": " + violation->message);
   }
@@ -992,11 +958,108 @@ bool SameDetectorOptions(const DetectorOptions& a, const DetectorOptions& b) {
 
 std::vector<std::string> KnownConfigKeys() {
   std::vector<std::string> keys;
-  for (const auto& k : DaemonKeys())
-    keys.push_back(std::string(k.section) + "." + std::string(k.name));
-  for (const auto& k : DetectorKeys()) keys.push_back("detector." + std::string(k.name));
+  for (const auto& k : DaemonKeys()) keys.push_back(QualifiedName(k.section, k.name));
+  for (const auto& k : DetectorKeys()) keys.push_back(QualifiedName(k.section, k.name));
   keys.push_back("stream.match");
   return keys;
+}
+
+std::span<const Setting<DaemonSettings>> DaemonKeys() { return kDaemonKeys; }
+
+std::vector<std::string> RestartOnlyChanges(const DaemonSettings& running,
+                                            const DaemonSettings& next) {
+  std::vector<std::string> changed;
+  for (const auto& key : DaemonKeys()) {
+    if (key.reload != ReloadEffect::kRestart) continue;
+    const bool same = std::visit(
+        [&](auto pointer) { return SameValue(running.*pointer, next.*pointer); }, key.member);
+    if (!same) changed.push_back(QualifiedName(key.section, key.name));
+  }
+  return changed;
+}
+
+void KeepRestartOnly(const DaemonSettings& running, DaemonSettings* next) {
+  for (const auto& key : DaemonKeys()) {
+    if (key.reload == ReloadEffect::kRestart) CopyMember(key.member, running, *next);
+  }
+}
+
+namespace {
+
+// One key of config/nuwatchd.toml: its doc line as comment lines, then its unit, range, choices and
+// "restart" in brackets on a comment line of their own; then "key = default".
+template <class S>
+std::string DefaultKeyLines(const Setting<S>& key, const S& defaults) {
+  std::vector<std::string> facts;
+  if (!key.unit.empty()) facts.emplace_back(key.unit);
+  if (std::string range = SettingBoundsText(key.bounds); !range.empty()) {
+    facts.push_back(std::move(range));
+  }
+  if (!key.choices.empty()) facts.push_back("one of " + setting_internal::ChoicesText(key.choices));
+  if (!key.at_most.empty()) facts.push_back("<= " + std::string(key.at_most));
+  if (key.reload == ReloadEffect::kRestart) facts.emplace_back("restart");
+  std::string lines = WrapComment(key.doc);
+  for (std::size_t i = 0; i < facts.size(); ++i) {
+    lines += i == 0 ? "# [" : "; ";
+    lines += facts[i];
+  }
+  if (!facts.empty()) lines += "]\n";
+  lines += key.name;
+  lines += " = ";
+  lines += std::visit([&](auto pointer) { return ToToml(defaults.*pointer); }, key.member);
+  lines += "\n";
+  return lines;
+}
+
+}  // namespace
+
+std::string DefaultConfigToml() {
+  std::string out = R"(# nuwatchd configuration: every key, set to its default.
+#
+# This file is what nuwatchd runs with when it is given no file at all; copy it and change what you
+# need. config/REFERENCE.md describes each key in full (type, unit, range and trade-off). Unknown
+# keys are errors, so a misspelt key never goes unnoticed. Sizes are in bytes, times in seconds,
+# windows and counts in vectors. Keys marked "restart" keep their running value on a reload.
+#
+# Generated from the key tables (`nuwatchd --print-defaults`); the config test checks that it is.
+)";
+  // Static: GCC 12 warns falsely that a temporary's unused string alternative "may be used
+  // uninitialized" when the variant visit is inlined.
+  static const DaemonSettings daemon_defaults;
+  static const DetectorOptions detector_defaults;
+  std::string_view section;
+  for (const auto& key : DaemonKeys()) {
+    if (key.section != section) {
+      section = key.section;
+      out += "\n[";
+      out += section;
+      out += "]\n";
+    }
+    out += DefaultKeyLines(key, daemon_defaults);
+  }
+  out += "\n[detector]\n";
+  std::string_view group;
+  for (const auto& key : DetectorKeys()) {
+    if (key.group != group) {
+      if (!group.empty()) out += "\n";
+      group = key.group;
+      out += "# --- ";
+      out += group;
+      out += " ---\n";
+    }
+    out += DefaultKeyLines(key, detector_defaults);
+  }
+  out += R"(
+# Per-stream overrides: a [[stream]] table with `match`, a glob on the stream key (`*`, `?`,
+# `[...]`), and any detector keys. The first table whose pattern matches a stream wins; its keys
+# replace those of [detector] for that stream and the other keys keep the [detector] values.
+#
+# [[stream]]
+# match = "pump-0*"
+# nu = 0.02
+# window = 4000
+)";
+  return out;
 }
 
 }  // namespace nuwatch

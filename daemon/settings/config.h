@@ -1,7 +1,8 @@
 // nuwatchd's configuration: a TOML file (TOML 1.0) with daemon sections, a [detector] section that
 // maps key for key onto DetectorOptions, and [[stream]] overrides chosen by a glob on the stream
-// key. config/nuwatchd.toml lists every key with its default; config/REFERENCE.md documents each
-// one.
+// key. Two key tables define every key (nuwatch/setting.h): core's DetectorKeys() and DaemonKeys()
+// here; reading, range checks, the restart-only keys and config/nuwatchd.toml (DefaultConfigToml)
+// follow from them. config/REFERENCE.md documents each key at length.
 //
 // Loading is strict: an unknown section or key, a value of the wrong type or outside its range is a
 // ConfigError whose message starts with "FILE:LINE:COL: " and names the key, e.g.
@@ -11,12 +12,15 @@
 
 #include <cstddef>
 #include <cstdint>
+#include <span>
 #include <stdexcept>
 #include <string>
 #include <string_view>
 #include <vector>
 
 #include "nuwatch/detector_options.h"
+#include "nuwatch/detector_settings.h"
+#include "nuwatch/setting.h"
 
 namespace nuwatch {
 
@@ -25,7 +29,9 @@ class ConfigError : public std::runtime_error {
   using std::runtime_error::runtime_error;
 };
 
-// Everything outside the detectors. The TOML key of each member is given beside it.
+// Everything outside the detectors. The TOML key of each member is given beside it; DaemonKeys()
+// is the table of these keys (range, unit, documentation, reload behaviour). The member
+// initialisers are the defaults.
 struct DaemonSettings {
   // [ingest] (PULL sockets bound on `endpoints`; a SUB socket connected to `subscribe`)
   std::vector<std::string> ingest_endpoints = {"tcp://127.0.0.1:7601"};  // endpoints
@@ -92,12 +98,9 @@ DetectorOptions DetectorOptionsFor(const Config& config, std::string_view stream
 // The first override whose pattern matches `stream_key`, or nullptr.
 const Config::StreamOverride* MatchingOverride(const Config& config, std::string_view stream_key);
 
-// Range checks shared with the command-line tools that build DetectorOptions from flags. Throws
-// ConfigError "WHERE: MESSAGE" for the first violation, e.g. "nuwatch replay: nu = 1.5 is outside
-// (0, 1]". Checks: finite numbers; nu in (0, 1]; window >= 2; 1 <= warmup <= window;
-// refit_every >= 0; support_vector_budget >= 1; gamma > 0 when given as a number; degree >= 1;
-// tolerance > 0; cache_bytes >= 1 MiB; 1 <= open_after <= open_window; close_after >= 1; and the
-// rest as config/REFERENCE.md states.
+// The table's checks (FindDetectorViolation), for the command-line tools that build DetectorOptions
+// from flags. Throws ConfigError "WHERE: MESSAGE" for the first violation, e.g.
+// "nuwatch replay: nu = 1.5 is outside (0, 1]" (keys named without a section).
 void ValidateDetectorOptions(const DetectorOptions& options, const std::string& where);
 // The same for the daemon settings (for nuwatchd after command-line flags replaced some of them).
 void ValidateDaemonSettings(const DaemonSettings& settings, const std::string& where);
@@ -108,6 +111,19 @@ std::string DescribeDetectorOptions(const DetectorOptions& options);
 
 // Member-by-member equality of every key (DetectorOptions itself has no operator==).
 bool SameDetectorOptions(const DetectorOptions& a, const DetectorOptions& b);
+
+// The daemon's keys: every member of DaemonSettings, section by section in file order.
+std::span<const Setting<DaemonSettings>> DaemonKeys();
+
+// The restart-only keys (ReloadEffect::kRestart) whose values differ, as "section.key".
+std::vector<std::string> RestartOnlyChanges(const DaemonSettings& running,
+                                            const DaemonSettings& next);
+// Copies the restart-only keys of `running` into `next`: what a reload keeps.
+void KeepRestartOnly(const DaemonSettings& running, DaemonSettings* next);
+
+// config/nuwatchd.toml: every key at its default, with its documentation line, unit, range and
+// reload behaviour as comments. ParseConfig reads it back to DefaultConfig().
+std::string DefaultConfigToml();
 
 // Every key ParseConfig accepts, as "section.key" ("stream.match" for the override pattern; the
 // detector keys are also valid in [[stream]] tables). For documentation checks and completion.

@@ -35,6 +35,7 @@
 #include <vector>
 
 #include "nuwatch/detector_options.h"
+#include "nuwatch/detector_settings.h"
 #include "nuwatch/incident_tracker.h"
 #include "nuwatch/model.h"
 #include "nuwatch/page_hinkley.h"
@@ -177,8 +178,5 @@ class Detector {
   bool force_cold_ = false;
   DetectorCounters counters_;
 };
-
-// Validates detector options; throws PreconditionError "WHERE: key = value ..." naming the key.
-void CheckDetectorOptions(const DetectorOptions& options, std::string_view where);
 
 }  // namespace nuwatch

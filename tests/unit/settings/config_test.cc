@@ -15,6 +15,9 @@
 #include <sstream>
 #include <string>
 
+#include "common/detector_options_samples.h"
+#include "settings/setting_text.h"
+
 namespace nuwatch {
 namespace {
 
@@ -421,7 +424,7 @@ TEST(ConfigErrors, OutOfRangeDaemonValuesNameFileLineAndKey) {
               HasSubstr("t.toml:2:13: daemon.log_level = \"verbose\" must be one of"));
   EXPECT_THAT(ErrorOf("[daemon]\nrefit_threads = 0\n"), HasSubstr("must be at least 1"));
   EXPECT_THAT(ErrorOf("[state]\nsnapshot_interval_seconds = 0\n"),
-              HasSubstr("must be a positive number of seconds"));
+              HasSubstr("state.snapshot_interval_seconds = 0 must be positive"));
   // PROTOCOL.md §7: dims 1..65535, a payload of at least 28 bytes.
   EXPECT_THAT(ErrorOf("[limits]\nmax_dims = 65536\n"),
               HasSubstr("limits.max_dims = 65536 is outside [1, 65535]"));
@@ -597,6 +600,69 @@ TEST(ShippedConfig, TheReferenceDocumentsEveryKey) {
   }
 }
 
+// config/nuwatchd.toml is generated from the key tables, so its comments, defaults, units, ranges
+// and restart marks cannot drift from the code. After adding a key:
+//   build/bin/nuwatchd --print-defaults > config/nuwatchd.toml
+TEST(ShippedConfig, TheDefaultFileIsTheOneTheTablesGenerate) {
+  EXPECT_EQ(ReadText(kSource + "/config/nuwatchd.toml"), DefaultConfigToml())
+      << "config/nuwatchd.toml is out of date: build/bin/nuwatchd --print-defaults > "
+         "config/nuwatchd.toml";
+  const Config config = ParseConfig(DefaultConfigToml(), "generated.toml");
+  EXPECT_EQ(config.daemon, DefaultConfig().daemon);
+  EXPECT_TRUE(SameDetectorOptions(config.detector, DefaultConfig().detector));
+}
+
+// The TOML text of a key's default as REFERENCE.md writes it in each key's header line
+// ("integer · default `2000` · vectors · >= 2"): numbers without a forced ".0", strings quoted.
+template <class S>
+std::string ReferenceDefault(const Setting<S>& setting, const S& defaults) {
+  return std::visit(
+      [&](auto pointer) -> std::string {
+        using T = std::remove_cvref_t<decltype(defaults.*pointer)>;
+        const T& value = defaults.*pointer;
+        if constexpr (std::is_same_v<T, double>) return SettingNumberText(value);
+        if constexpr (std::is_same_v<T, bool>) return value ? "true" : "false";
+        if constexpr (std::is_integral_v<T>) return std::to_string(value);
+        if constexpr (std::is_same_v<T, std::vector<std::string>> ||
+                      std::is_same_v<T, std::vector<int64_t>>) {
+          std::string out = "[";
+          for (std::size_t i = 0; i < value.size(); ++i) {
+            std::string item;
+            if constexpr (std::is_same_v<T, std::vector<std::string>>) {
+              item = "\"" + value[i] + "\"";
+            } else {
+              item = std::to_string(value[i]);
+            }
+            out += (i > 0 ? ", " : "") + item;
+          }
+          return out + "]";
+        }
+        std::string quoted = "\"";  // appended, not "\"" + ...: GCC 12 warns falsely on that
+        quoted += SettingText(setting, defaults);
+        return quoted + "\"";
+      },
+      setting.member);
+}
+
+// Every key has its own "### `section.key`" heading, and the line under it states the default
+// the table has, so the reference cannot drift from the code either.
+TEST(ShippedConfig, TheReferenceStatesEveryKeysDefault) {
+  const std::string reference = ReadText(kSource + "/config/REFERENCE.md");
+  const auto check = [&](const auto& setting, const auto& defaults) {
+    const std::string key = std::string(setting.section) + "." + std::string(setting.name);
+    const std::string heading = "\n### `" + key + "`\n";
+    const auto at = reference.find(heading);
+    ASSERT_NE(at, std::string::npos) << key << " has no heading in REFERENCE.md";
+    const auto line_start = at + heading.size();
+    const std::string line =
+        reference.substr(line_start, reference.find('\n', line_start) - line_start);
+    EXPECT_THAT(line, HasSubstr("default `" + ReferenceDefault(setting, defaults) + "`"))
+        << key << ": REFERENCE.md's header line disagrees with the key table";
+  };
+  for (const auto& setting : DaemonKeys()) check(setting, DaemonSettings{});
+  for (const auto& setting : DetectorKeys()) check(setting, DetectorOptions{});
+}
+
 TEST(ShippedConfig, TheDemoFileLoads) {
   const Config config = LoadConfig(kSource + "/config/demo.toml");
   const DetectorOptions pump01 = DetectorOptionsFor(config, "pump-01");
@@ -656,50 +722,18 @@ TEST(ConfigSyntax, ErrorsGiveFileLineAndColumn) {
 // ---------------------------------------------------------------------------------------------
 // Describe and parse back
 
-DetectorOptions Unusual() {
-  DetectorOptions o;
-  o.nu = 0.1 + 0.2;  // 0.30000000000000004: needs all 17 significant digits
-  o.kernel = KernelType::kLinear;
-  o.gamma.mode = GammaSpec::Mode::kValue;
-  o.gamma.value = 1.0 / 3.0;
-  o.degree = 5;
-  o.coef0 = -2.0;
-  o.scaler = ScalerType::kNone;
-  o.tolerance = 1e-7;
-  o.max_iterations = 999;
-  o.cache_bytes = (3u << 20) + 1;
-  o.window = 4321;
-  o.max_age_seconds = 86400;
-  o.warmup = 4321;
-  o.refit_every = 17;
-  o.max_model_age_seconds = 0.5;
-  o.cold_refit_every = 1;
-  o.support_vector_budget = 1;
-  o.learn_from_anomalies = true;
-  o.drift_detection = true;
-  o.drift_delta = 1e-300;
-  o.drift_lambda = 1e+20;
-  o.drift_min_samples = 1;
-  o.open_after = 7;
-  o.open_window = 7;
-  o.close_after = 1;
-  // TOML basic-string escapes (TOML 1.0 §String): quote, backslash, tab, a control character.
-  o.feature_names = {"temp \"C\"", "back\\slash", "tab\there", "ctl\x01", "caf\xC3\xA9"};
-  return o;
-}
-
 TEST(DescribeDetectorOptions, ParsesBackToTheSameOptions) {
-  for (const DetectorOptions& options : {DetectorOptions{}, Unusual()}) {
+  for (const DetectorOptions& options : {DetectorOptions{}, UnusualDetectorOptions()}) {
     const std::string text = DescribeDetectorOptions(options);
     const Config config = ParseConfig(text, "best.toml");
     EXPECT_TRUE(SameDetectorOptions(config.detector, options)) << text;
   }
-  const DetectorOptions back = Parse(DescribeDetectorOptions(Unusual())).detector;
+  const DetectorOptions back = Parse(DescribeDetectorOptions(UnusualDetectorOptions())).detector;
   EXPECT_EQ(back.nu, 0.1 + 0.2);
   EXPECT_EQ(back.gamma.value, 1.0 / 3.0);
   EXPECT_EQ(back.drift_delta, 1e-300);
   EXPECT_EQ(back.cache_bytes, (3u << 20) + 1);
-  EXPECT_EQ(back.feature_names, Unusual().feature_names);
+  EXPECT_EQ(back.feature_names, UnusualDetectorOptions().feature_names);
 }
 
 TEST(DescribeDetectorOptions, WritesEveryDetectorKeyOnce) {
@@ -739,6 +773,45 @@ TEST(SameDetectorOptions, TellsOptionsApart) {
   EXPECT_TRUE(SameDetectorOptions(base, other));
   other.gamma.mode = GammaSpec::Mode::kValue;
   EXPECT_FALSE(SameDetectorOptions(base, other));
+}
+
+// The restart-only keys are the table's (ReloadEffect::kRestart): sockets are bound, the exposer
+// listens, the pool has its threads and the state and recording directories are open once.
+TEST(DaemonKeys, ARestartOnlyChangeIsReportedAndKeptAtItsRunningValue) {
+  const DaemonSettings running;
+  DaemonSettings next = running;
+  next.publish_endpoint = "tcp://127.0.0.1:7702";
+  next.refit_threads = 4;
+  next.log_level = "debug";         // applies on reload
+  next.max_dims = 12;               // applies on reload
+  next.record_rotate_bytes = 1000;  // applies on reload
+  EXPECT_EQ(RestartOnlyChanges(running, next),
+            (std::vector<std::string>{"daemon.refit_threads", "publish.endpoint"}));
+  KeepRestartOnly(running, &next);
+  EXPECT_EQ(next.publish_endpoint, running.publish_endpoint);
+  EXPECT_EQ(next.refit_threads, running.refit_threads);
+  EXPECT_EQ(next.log_level, "debug");
+  EXPECT_EQ(next.max_dims, 12);
+  EXPECT_EQ(next.record_rotate_bytes, 1000u);
+  EXPECT_TRUE(RestartOnlyChanges(running, next).empty());
+  std::set<std::string> restart;
+  for (const auto& key : DaemonKeys()) {
+    if (key.reload == ReloadEffect::kRestart) {
+      restart.insert(std::string(key.section) + "." + std::string(key.name));
+    }
+  }
+  EXPECT_EQ(restart,
+            (std::set<std::string>{"daemon.refit_threads", "ingest.endpoints", "ingest.subscribe",
+                                   "ingest.receive_high_water_mark", "publish.endpoint",
+                                   "publish.high_water_mark", "control.endpoint", "metrics.listen",
+                                   "state.dir", "recording.dir"}));
+}
+
+TEST(DaemonKeys, EveryKeyIsDocumented) {
+  for (const auto& key : DaemonKeys()) {
+    EXPECT_FALSE(key.doc.empty()) << key.section << "." << key.name;
+    EXPECT_NE(key.reload, ReloadEffect::kNextRefit) << key.name << ": a daemon key has no refit";
+  }
 }
 
 TEST(KnownConfigKeys, AreUniqueAndCoverEverySection) {
