@@ -19,7 +19,8 @@ struct BenchArgs {
 void RunBench(const BenchArgs& args) {
   const CapacityOptions& a = args.capacity;
   if (a.dims < 1 || a.window < 10 || !(a.nu > 0 && a.nu <= 1) || a.support_vector_budget < 1)
-    throw CommandError("need --dims >= 1, --window >= 10, --nu in (0, 1], --budget >= 1");
+    throw CommandError(
+        "need --dims >= 1, --window >= 10, --nu in (0, 1], --support-vector-budget >= 1");
   const CapacityReport r = MeasureCapacity(a);
 
   nlohmann::ordered_json j;
@@ -75,7 +76,7 @@ void AddBenchCommand(CLI::App& app) {
   sub->add_option("--dims", c.dims, "Features per vector")->capture_default_str();
   sub->add_option("--window", c.window, "Training window (vectors)")->capture_default_str();
   sub->add_option("--nu", c.nu, "nu")->capture_default_str();
-  sub->add_option("--budget", c.support_vector_budget, "Support-vector budget")
+  sub->add_option("--support-vector-budget", c.support_vector_budget, "Support-vector budget")
       ->capture_default_str();
   sub->add_option("--seed", c.seed, "Seed of the synthetic data")->capture_default_str();
   sub->add_flag("--json", args->json, "Print one JSON object");

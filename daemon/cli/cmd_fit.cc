@@ -1,51 +1,67 @@
 // nuwatch fit: a cold fit of a one-class model on a CSV file, written to a model file.
+#include <algorithm>
 #include <cmath>
 #include <iostream>
 #include <memory>
 #include <sstream>
 
 #include "cli/cli_util.h"
+#include "cli/detector_flags.h"
 #include "nuwatch/model.h"
 #include "nuwatch/model_file.h"
 
 namespace nuwatch::cli {
 namespace {
 
+// The detector keys a cold fit takes (FitOptions' members), as flags named as the keys.
+constexpr std::string_view kFitKeys[] = {"nu",        "kernel",         "gamma",
+                                         "degree",    "coef0",          "scaler",
+                                         "tolerance", "max_iterations", "cache_bytes"};
+
+DetectorOptions AsDetectorOptions(const FitOptions& f) {
+  DetectorOptions o;
+  o.nu = f.nu;
+  o.kernel = f.kernel;
+  o.gamma = f.gamma;
+  o.degree = f.degree;
+  o.coef0 = f.coef0;
+  o.scaler = f.scaler;
+  o.tolerance = f.tolerance;
+  o.max_iterations = f.max_iterations;
+  o.cache_bytes = f.cache_bytes;
+  return o;
+}
+
+FitOptions AsFitOptions(const DetectorOptions& o) {
+  FitOptions f;
+  f.nu = o.nu;
+  f.kernel = o.kernel;
+  f.gamma = o.gamma;
+  f.degree = o.degree;
+  f.coef0 = o.coef0;
+  f.scaler = o.scaler;
+  f.tolerance = o.tolerance;
+  f.max_iterations = o.max_iterations;
+  f.cache_bytes = o.cache_bytes;
+  return f;
+}
+
 struct FitArgs {
   std::string input, output;
-  double nu = 0.05;
-  std::string kernel = "rbf", gamma = "scale", scale = "standard";
-  int degree = 3;
-  double coef0 = 0, tol = 1e-3, cache_mb = 100;
-  int64_t max_iter = 0;
+  DetectorKeyFlags keys;
 };
 
 void RunFit(const FitArgs& a) {
-  FitOptions options;
-  if (!(a.nu > 0 && a.nu <= 1)) {
-    std::ostringstream m;
-    m << "--nu " << a.nu << " is outside (0, 1]";
-    throw CommandError(m.str());
+  // FitOptions' defaults (a larger kernel cache than a stream's) under the flags the user gave,
+  // checked by the detector table's rules; the other keys keep valid defaults.
+  DetectorOptions detector = AsDetectorOptions(FitOptions{});
+  a.keys.ApplyTo(detector);
+  try {
+    ValidateDetectorOptions(detector, "");
+  } catch (const ConfigError& e) {
+    throw CommandError(e.what());
   }
-  options.nu = a.nu;
-  auto kernel = ParseKernelType(a.kernel);
-  if (!kernel) throw CommandError("--kernel '" + a.kernel + "' is not one of rbf, linear, poly");
-  options.kernel = *kernel;
-  auto gamma = GammaSpec::Parse(a.gamma);
-  if (!gamma) throw CommandError("--gamma '" + a.gamma + "' is not scale, median or a number > 0");
-  options.gamma = *gamma;
-  auto scaler = ParseScalerType(a.scale);
-  if (!scaler) throw CommandError("--scale '" + a.scale + "' is not one of standard, robust, none");
-  options.scaler = *scaler;
-  if (a.degree < 1) throw CommandError("--degree " + std::to_string(a.degree) + " must be >= 1");
-  options.degree = a.degree;
-  options.coef0 = a.coef0;
-  if (!(a.tol > 0)) throw CommandError("--tol must be > 0");
-  options.tolerance = a.tol;
-  if (!(a.cache_mb > 0)) throw CommandError("--cache-mb must be > 0");
-  options.cache_bytes = static_cast<std::size_t>(a.cache_mb * 1024 * 1024);
-  if (a.max_iter < 0) throw CommandError("--max-iter must be >= 0");
-  options.max_iterations = a.max_iter;
+  const FitOptions options = AsFitOptions(detector);
 
   FeatureFile file = ReadFeatureFile(a.input);
   Model model = FitModel(file.values, options, file.names);
@@ -65,22 +81,9 @@ void AddFitCommand(CLI::App& app) {
                   "CSV with a header row; every column is a feature except 'time' and 'stream'")
       ->required();
   sub->add_option("--output", args->output, "Model file to write")->required();
-  sub->add_option("--nu", args->nu, "Upper bound on the training outlier fraction, in (0, 1]")
-      ->capture_default_str();
-  sub->add_option("--kernel", args->kernel, "rbf, linear or poly")->capture_default_str();
-  sub->add_option("--gamma", args->gamma,
-                  "Kernel width: scale (1/(d Var X)), median (1/median squared distance) or a "
-                  "number")
-      ->capture_default_str();
-  sub->add_option("--degree", args->degree, "Polynomial degree")->capture_default_str();
-  sub->add_option("--coef0", args->coef0, "Polynomial offset")->capture_default_str();
-  sub->add_option("--scale", args->scale, "Feature scaling: standard, robust or none")
-      ->capture_default_str();
-  sub->add_option("--tol", args->tol, "Solver stopping tolerance (LIBSVM's rule)")
-      ->capture_default_str();
-  sub->add_option("--cache-mb", args->cache_mb, "Kernel-column cache, MiB")->capture_default_str();
-  sub->add_option("--max-iter", args->max_iter, "Iteration cap; 0: max(10^7, 100 l)")
-      ->capture_default_str();
+  args->keys.AddTo(sub, AsDetectorOptions(FitOptions{}), [](const Setting<DetectorOptions>& s) {
+    return std::find(std::begin(kFitKeys), std::end(kFitKeys), s.name) != std::end(kFitKeys);
+  });
   sub->callback([args] { RunFit(*args); });
 }
 

@@ -17,6 +17,7 @@
 
 #include "cli/cli_util.h"
 #include "cli/commands.h"
+#include "cli/detector_flags.h"
 #include "formats/alarm_files.h"
 #include "formats/csv_table.h"
 #include "formats/timestamps.h"
@@ -28,9 +29,11 @@ namespace nuwatch::cli {
 namespace {
 
 constexpr const char* kFooter = R"(How settings are scored:
-  The grid is the cartesian product of the --nu, --gamma, --window and --budget lists; a list not
-  given keeps the config's value (each stream's, [[stream]] overrides included). A tuned key is
-  applied to every stream, over any override; warmup becomes min(warmup, window). Each setting
+  The grid is the cartesian product of the --nu, --gamma, --window and --support-vector-budget
+  lists; a list not given keeps the config's value (each stream's, [[stream]] overrides included).
+  A tuned key is applied to every stream, over any override; warmup becomes min(warmup, window).
+  Every other detector key has its flag (named as the key, e.g. --refit-every); it beats the
+  config for every stream, as in `nuwatch replay`. Each setting
   replays the recording with refits inline (deterministic: the same results with any --jobs) and
   is scored as `nuwatch evaluate` scores replay output (incidents are closed intervals; warm-up
   samples carry no alarm).
@@ -51,11 +54,18 @@ Report directory:
   section: paste it into the daemon config and send nuwatchd SIGHUP), sweep.png/.svg (metrics
   against nu), timeline.png/.svg (the chosen setting's decision values per stream).)";
 
+// The detector keys `tune` takes lists of: the grid.
+constexpr std::string_view kGridKeys[] = {"nu", "gamma", "window", "support_vector_budget"};
+
+bool IsGridKey(std::string_view key) {
+  return std::find(std::begin(kGridKeys), std::end(kGridKeys), key) != std::end(kGridKeys);
+}
+
 struct TuneArguments {
   std::string input, incidents, report;
-  std::string nu, gamma, window, budget;
-  std::string max_false_alarms, objective = "f1", alarms = "incident", jobs, config, grace = "0";
-  std::string warmup, refit_every, open_after, open_window, close_after;
+  std::string nu, gamma, window, support_vector_budget;  // lists
+  std::string max_false_alarms, objective = "f1", alarms = "incident", jobs, grace = "0";
+  DetectorFlags detector;  // --config and every key that is not a grid key
   CLI::App* command = nullptr;
 };
 
@@ -88,39 +98,19 @@ auto ParseList(const std::string& flag, const std::string& text, Parse parse) {
   }
 }
 
-Config ResolveBase(const TuneArguments& a) {
-  Config config;
-  try {
-    config = a.config.empty() ? DefaultConfig() : LoadConfig(a.config);
-  } catch (const std::exception& e) {
-    throw CommandError(e.what());
-  }
-  // Single-valued keys that are not tuned but matter for the result; a flag beats the file, as in
-  // `nuwatch replay`.
-  std::optional<int64_t> warmup, refit_every, open_after, open_window, close_after;
-  if (Given(a, "--warmup")) warmup = ParseWhole("--warmup", a.warmup, 1);
-  if (Given(a, "--refit-every")) refit_every = ParseWhole("--refit-every", a.refit_every, 0);
-  if (Given(a, "--open-after")) open_after = ParseWhole("--open-after", a.open_after, 1);
-  if (Given(a, "--open-window")) open_window = ParseWhole("--open-window", a.open_window, 1);
-  if (Given(a, "--close-after")) close_after = ParseWhole("--close-after", a.close_after, 1);
-  const auto apply = [&](DetectorOptions& o) {
-    if (warmup) o.warmup = *warmup;
-    if (refit_every) o.refit_every = *refit_every;
-    if (open_after) o.open_after = static_cast<int>(std::min<int64_t>(*open_after, 1 << 30));
-    if (open_window) o.open_window = static_cast<int>(std::min<int64_t>(*open_window, 1 << 30));
-    if (close_after) o.close_after = static_cast<int>(std::min<int64_t>(*close_after, 1 << 30));
-  };
-  apply(config.detector);
-  for (auto& override : config.overrides) apply(override.values);
-  return config;
-}
+// The base config with the single-valued key flags applied (a flag beats the file). Each setting
+// of the grid is checked when RunTuning starts, where the message can name the setting.
+Config ResolveBase(const TuneArguments& a) { return a.detector.Resolve(/*validate=*/false); }
 
 TuningOptions ParseOptions(const TuneArguments& a) {
   TuningOptions options;
   options.grid.nu = Given(a, "--nu") ? ParseList("--nu", a.nu, ParseNuList) : DefaultNuList();
   if (Given(a, "--gamma")) options.grid.gamma = ParseList("--gamma", a.gamma, ParseGammaList);
   if (Given(a, "--window")) options.grid.window = ParseList("--window", a.window, ParseWindowList);
-  if (Given(a, "--budget")) options.grid.budget = ParseList("--budget", a.budget, ParseBudgetList);
+  if (Given(a, "--support-vector-budget")) {
+    options.grid.support_vector_budget =
+        ParseList("--support-vector-budget", a.support_vector_budget, ParseSupportVectorBudgetList);
+  }
   const std::optional<TuningObjective> objective = ParseTuningObjective(a.objective);
   if (!objective) {
     throw CommandError("--objective: '" + a.objective + "' is not one of: f1, range-f1, recall");
@@ -229,8 +219,12 @@ void RunTune(const TuneArguments& a) {
   ProgressBar bar(::isatty(STDERR_FILENO) != 0);
   const auto started = std::chrono::steady_clock::now();
   TuningReport report;
-  TuningProvenance provenance{
-      a.input, a.incidents, a.config, recording.rows(), recording.streams.size(), incidents.size()};
+  TuningProvenance provenance{a.input,
+                              a.incidents,
+                              a.detector.config_path,
+                              recording.rows(),
+                              recording.streams.size(),
+                              incidents.size()};
   std::vector<std::string> written;
   try {
     report =
@@ -269,7 +263,8 @@ void AddTuneCommand(CLI::App& app) {
   auto a = std::make_shared<TuneArguments>();
   CLI::App* sub = app.add_subcommand(
       "tune",
-      "Replay a recording once per setting of a grid (nu, gamma, window, budget), score each "
+      "Replay a recording once per setting of a grid (nu, gamma, window, support-vector budget), "
+      "score each "
       "against labelled incidents and pick the best under a false-alarm limit");
   a->command = sub;
   sub->add_option("--input", a->input, "Recorded stream file: time[,stream],features (CSV)")
@@ -281,15 +276,18 @@ void AddTuneCommand(CLI::App& app) {
   sub->add_option("--report", a->report, "Directory for the results, best.toml and pictures")
       ->type_name("DIR")
       ->required();
-  sub->add_option("--nu", a->nu,
-                  "nu values, comma-separated, each in (0, 1] (default "
-                  "0.001,0.002,0.005,0.01,0.02,0.05,0.1,0.2)")
+  AddLastWinsOption(sub, "--nu", a->nu,
+                    "nu values, comma-separated, each in (0, 1] (default "
+                    "0.001,0.002,0.005,0.01,0.02,0.05,0.1,0.2)")
       ->type_name("LIST");
-  sub->add_option("--gamma", a->gamma, "Kernel widths: scale, median or numbers (default: config)")
+  AddLastWinsOption(sub, "--gamma", a->gamma,
+                    "Kernel widths: scale, median or numbers (default: config)")
       ->type_name("LIST");
-  sub->add_option("--window", a->window, "Training window sizes in vectors (default: config)")
+  AddLastWinsOption(sub, "--window", a->window,
+                    "Training window sizes in vectors (default: config)")
       ->type_name("LIST");
-  sub->add_option("--budget", a->budget, "Support-vector budgets (default: config)")
+  AddLastWinsOption(sub, "--support-vector-budget", a->support_vector_budget,
+                    "Support-vector budgets (default: config)")
       ->type_name("LIST");
   sub->add_option(
          "--max-false-alarms-per-day", a->max_false_alarms,
@@ -304,26 +302,11 @@ void AddTuneCommand(CLI::App& app) {
       ->capture_default_str();
   sub->add_option("--jobs", a->jobs, "Settings replayed in parallel (default: hardware threads)")
       ->type_name("N");
-  sub->add_option("--config", a->config, "Base TOML config: its [detector] and [[stream]] sections")
-      ->type_name("BASE.toml");
   sub->add_option("--grace", a->grace,
                   "How long after an incident's end an alarm still detects it (90, 15m, 2h)")
       ->type_name("DURATION")
       ->capture_default_str();
-  sub->add_option("--warmup", a->warmup, "Vectors before the first fit (default: config)")
-      ->type_name("N");
-  sub->add_option("--refit-every", a->refit_every,
-                  "Accepted vectors between refits; 0: fit once (default: config)")
-      ->type_name("N");
-  sub->add_option("--open-after", a->open_after,
-                  "An incident opens after this many flagged... (default: config)")
-      ->type_name("N");
-  sub->add_option("--open-window", a->open_window,
-                  "...of the last this many vectors (default: config)")
-      ->type_name("N");
-  sub->add_option("--close-after", a->close_after,
-                  "An incident closes after this many clean vectors (default: config)")
-      ->type_name("N");
+  a->detector.AddTo(sub, [](const Setting<DetectorOptions>& s) { return !IsGridKey(s.name); });
   sub->footer(kFooter);
   sub->callback([a] { RunTune(*a); });
 }

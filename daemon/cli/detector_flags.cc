@@ -1,59 +1,82 @@
 #include "cli/detector_flags.h"
 
 #include "cli/commands.h"
+#include "settings/setting_text.h"
 
 namespace nuwatch::cli {
 
-void DetectorFlags::AddTo(CLI::App* sub) {
-  app = sub;
-  sub->add_option("--config", config_path, "TOML config; its [detector] and [[stream]] sections");
-  sub->add_option("--nu", nu, "Upper bound on the training outlier fraction (default 0.05)");
-  sub->add_option("--gamma", gamma, "Kernel width: scale, median or a number (default scale)");
-  sub->add_option("--window", window, "Vectors kept for training per stream (default 2000)");
-  sub->add_option("--budget", budget, "Support-vector budget per stream (default 256)");
-  sub->add_option("--refit-every", refit_every,
-                  "Accepted vectors between refits; 0: fit once (default 200)");
-  sub->add_option("--warmup", warmup, "Vectors before the first fit (default 500)");
-  sub->add_option("--open-after", open_after, "Incident opens after this many flagged... (3)");
-  sub->add_option("--open-window", open_window, "...of the last this many vectors (default 5)");
-  sub->add_option("--close-after", close_after, "Incident closes after this many clean (10)");
-  sub->add_flag("--learn-from-anomalies", learn_from_anomalies,
-                "Let flagged vectors enter the window even while an incident is open");
-  sub->add_flag("--drift", drift, "Refit on a Page-Hinkley drift alarm on the decision values");
+std::string FlagName(std::string_view key) {
+  std::string flag = "--" + std::string(key);
+  for (char& c : flag) c = c == '_' ? '-' : c;
+  return flag;
 }
 
-Config DetectorFlags::Resolve() const {
+CLI::Option* AddLastWinsOption(CLI::App* app, const std::string& name, std::string& text,
+                               const std::string& help) {
+  return app->add_option(name, text, help)->multi_option_policy(CLI::MultiOptionPolicy::TakeLast);
+}
+
+void DetectorKeyFlags::AddTo(CLI::App* app, const DetectorOptions& defaults, const Select& select) {
+  for (const Setting<DetectorOptions>& setting : DetectorKeys()) {
+    if (select && !select(setting)) continue;
+    Flag& flag = flags_[std::string(setting.name)];
+    flag.setting = &setting;
+    std::string help = std::string(setting.doc);
+    if (!setting.unit.empty()) help += " [" + std::string(setting.unit) + "]";
+    const std::string name = FlagName(setting.name);
+    if (std::holds_alternative<bool DetectorOptions::*>(setting.member)) {
+      // --learn-from-anomalies alone means true; --learn-from-anomalies=false turns it off.
+      help += " (default " + SettingText(setting, defaults) + ")";
+      flag.option = app->add_flag(name, flag.text, help)
+                        ->multi_option_policy(CLI::MultiOptionPolicy::TakeLast)
+                        ->type_name("[=true|false]");
+    } else {
+      flag.option = AddLastWinsOption(app, name, flag.text, help)
+                        ->type_name(SettingTypeName(setting))
+                        ->default_str(SettingText(setting, defaults));
+    }
+  }
+}
+
+bool DetectorKeyFlags::Given(std::string_view key) const {
+  const auto it = flags_.find(key);
+  return it != flags_.end() && it->second.option->count() > 0;
+}
+
+void DetectorKeyFlags::ApplyTo(DetectorOptions& options) const {
+  for (const auto& [key, flag] : flags_) {
+    if (flag.option->count() == 0) continue;
+    if (auto error = ParseSettingText(*flag.setting, flag.text, options)) {
+      throw CommandError(FlagName(key) + ": " + *error);
+    }
+  }
+}
+
+void DetectorFlags::AddTo(CLI::App* sub, const DetectorKeyFlags::Select& select) {
+  AddLastWinsOption(
+      sub, "--config", config_path,
+      "TOML config: its [detector] and [[stream]] sections; the flags below beat it (their "
+      "defaults are the built-in ones, which the file replaces)")
+      ->type_name("FILE");
+  keys.AddTo(sub, DetectorOptions{}, select);
+}
+
+Config DetectorFlags::Resolve(bool validate) const {
   Config config;
   try {
     config = config_path.empty() ? DefaultConfig() : LoadConfig(config_path);
   } catch (const std::exception& e) {
     throw CommandError(e.what());
   }
-  auto given = [&](const char* flag) { return app->count(flag) > 0; };
-  auto apply = [&](DetectorOptions& o) {
-    if (given("--nu")) o.nu = nu;
-    if (given("--gamma")) {
-      auto spec = GammaSpec::Parse(gamma);
-      if (!spec) throw CommandError("--gamma '" + gamma + "' is not scale, median or a number > 0");
-      o.gamma = *spec;
+  keys.ApplyTo(config.detector);
+  if (validate) {
+    try {
+      ValidateDetectorOptions(config.detector, "");
+    } catch (const std::exception& e) {
+      throw CommandError(e.what());
     }
-    if (given("--window")) o.window = window;
-    if (given("--budget")) o.support_vector_budget = budget;
-    if (given("--refit-every")) o.refit_every = refit_every;
-    if (given("--warmup")) o.warmup = warmup;
-    if (given("--open-after")) o.open_after = open_after;
-    if (given("--open-window")) o.open_window = open_window;
-    if (given("--close-after")) o.close_after = close_after;
-    if (learn_from_anomalies) o.learn_from_anomalies = true;
-    if (drift) o.drift_detection = true;
-  };
-  apply(config.detector);
-  try {
-    ValidateDetectorOptions(config.detector, "");
-  } catch (const std::exception& e) {
-    throw CommandError(e.what());
   }
-  for (auto& override : config.overrides) apply(override.values);
+  for (auto& override_table : config.overrides) keys.ApplyTo(override_table.values);
   return config;
 }
 

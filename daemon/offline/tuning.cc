@@ -293,7 +293,9 @@ std::vector<GammaSpec> ParseGammaList(std::string_view text) {
 }
 
 std::vector<int64_t> ParseWindowList(std::string_view text) { return ParseIntegerList(text, 2); }
-std::vector<int64_t> ParseBudgetList(std::string_view text) { return ParseIntegerList(text, 1); }
+std::vector<int64_t> ParseSupportVectorBudgetList(std::string_view text) {
+  return ParseIntegerList(text, 1);
+}
 
 std::vector<double> DefaultNuList() { return {0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2}; }
 
@@ -308,7 +310,7 @@ std::vector<TuningSetting> ExpandGrid(const TuningGrid& grid) {
   const auto nus = values(grid.nu);
   const auto gammas = values(grid.gamma);
   const auto windows = values(grid.window);
-  const auto budgets = values(grid.budget);
+  const auto budgets = values(grid.support_vector_budget);
   std::vector<TuningSetting> settings;
   settings.reserve(nus.size() * gammas.size() * windows.size() * budgets.size());
   for (const auto& window : windows) {
@@ -328,13 +330,13 @@ DetectorOptions ApplySetting(DetectorOptions base, const TuningSetting& setting)
     base.window = *setting.window;
     base.warmup = std::min(base.warmup, base.window);
   }
-  if (setting.budget) base.support_vector_budget = *setting.budget;
+  if (setting.support_vector_budget) base.support_vector_budget = *setting.support_vector_budget;
   return base;
 }
 
 std::string DescribeSetting(const DetectorOptions& options) {
   return "nu " + Shortest(options.nu) + ", gamma " + GammaText(options.gamma) + ", window " +
-         std::to_string(options.window) + ", budget " +
+         std::to_string(options.window) + ", support_vector_budget " +
          std::to_string(options.support_vector_budget);
 }
 
@@ -552,9 +554,10 @@ TuningReport RunTuning(const StreamRecording& recording, const std::vector<Incid
 
 std::string SummaryTable(const TuningReport& report) {
   const bool limited = report.max_false_alarms_per_day.has_value();
-  std::vector<std::string> header = {"rank",      "nu",        "gamma",    "window", "budget",
-                                     "objective", "precision", "recall",   "f1",     "range_f1",
-                                     "incidents", "delay_med", "false/day"};
+  std::vector<std::string> header = {
+      "rank",      "nu",        "gamma",    "window", "support_vector_budget",
+      "objective", "precision", "recall",   "f1",     "range_f1",
+      "incidents", "delay_med", "false/day"};
   if (limited) header.push_back("limit");
   header.push_back("seconds");
   std::vector<std::vector<std::string>> rows;
@@ -653,7 +656,8 @@ std::string BestToml(const TuningReport& report, const Config& base,
 std::string ResultsCsv(const TuningReport& report) {
   const std::vector<std::size_t> rank = RankOf(report.selection, report.results.size());
   std::string out =
-      "index,rank,chosen,within_limit,nu,gamma,window,budget,warmup,objective,point_precision,"
+      "index,rank,chosen,within_limit,nu,gamma,window,support_vector_budget,warmup,objective,point_"
+      "precision,"
       "point_recall,point_f1,range_precision,range_recall,range_f1,samples,flagged_samples,"
       "incidents,incidents_detected,incidents_missed,incident_recall,"
       "detection_delay_median_seconds,detection_delay_mean_seconds,detection_delay_max_seconds,"
@@ -710,7 +714,7 @@ nlohmann::json SettingJson(const SettingResult& s, std::size_t rank, bool chosen
   j["nu"] = s.detector.nu;
   j["gamma"] = GammaText(s.detector.gamma);
   j["window"] = s.detector.window;
-  j["budget"] = s.detector.support_vector_budget;
+  j["support_vector_budget"] = s.detector.support_vector_budget;
   j["warmup"] = s.detector.warmup;
   j["objective"] = JsonNumber(s.objective);
   j["range_f1"] = JsonNumber(s.range_f1);
@@ -802,7 +806,8 @@ charts::LineFigure SweepFigure(const TuningReport& report) {
     const auto add = [&](const std::string& part) { name += (name.empty() ? "" : ", ") + part; };
     if (name_all || gammas.size() > 1) add("gamma " + std::get<0>(combo));
     if (name_all || windows.size() > 1) add("window " + std::to_string(std::get<1>(combo)));
-    if (name_all || budgets.size() > 1) add("budget " + std::to_string(std::get<2>(combo)));
+    if (name_all || budgets.size() > 1)
+      add("support_vector_budget " + std::to_string(std::get<2>(combo)));
     return name;
   };
 

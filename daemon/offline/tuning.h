@@ -71,11 +71,11 @@ std::optional<AlarmSource> ParseAlarmSource(std::string_view name);
 // Comma-separated lists ("0.01, 0.02,0.05"; spaces around items are ignored). Throw TuningError
 // naming the offending item for an empty list or item, a value out of range or a repeated value.
 // nu: numbers in (0, 1]. gamma: "scale", "median" or a number > 0. window: integers >= 2.
-// budget: integers >= 1.
+// support_vector_budget: integers >= 1.
 std::vector<double> ParseNuList(std::string_view text);
 std::vector<GammaSpec> ParseGammaList(std::string_view text);
 std::vector<int64_t> ParseWindowList(std::string_view text);
-std::vector<int64_t> ParseBudgetList(std::string_view text);
+std::vector<int64_t> ParseSupportVectorBudgetList(std::string_view text);
 
 // The default nu list: 1-2-5 steps from 0.001 to 0.2, eight values that cover the useful range
 // evenly on a log scale (nu bounds the training outlier fraction; beyond 0.2 a detector flags
@@ -86,7 +86,7 @@ struct TuningGrid {
   std::vector<double> nu;  // empty: keep the configured value (likewise for the others)
   std::vector<GammaSpec> gamma;
   std::vector<int64_t> window;
-  std::vector<int64_t> budget;
+  std::vector<int64_t> support_vector_budget;
 };
 
 // One point of the grid; an unset member keeps the configured value.
@@ -94,18 +94,19 @@ struct TuningSetting {
   std::optional<double> nu;
   std::optional<GammaSpec> gamma;
   std::optional<int64_t> window;
-  std::optional<int64_t> budget;
+  std::optional<int64_t> support_vector_budget;
 };
 
-// The cartesian product, nu varying fastest, then gamma, then budget, then window. An empty list
-// contributes one unset value, so the product has at least one setting.
-// Ensures: size == product of max(1, list size).
+// The cartesian product, nu varying fastest, then gamma, then support_vector_budget, then window.
+// An empty list contributes one unset value, so the product has at least one setting. Ensures: size
+// == product of max(1, list size).
 std::vector<TuningSetting> ExpandGrid(const TuningGrid& grid);
 
 // `base` with the setting's keys replaced (warmup clamped to the window, see above).
 DetectorOptions ApplySetting(DetectorOptions base, const TuningSetting& setting);
 
-// "nu 0.01, gamma scale, window 1440, budget 128" for the keys of `options` a grid tunes.
+// "nu 0.01, gamma scale, window 1440, support_vector_budget 128": the keys a grid tunes, named
+// as in the config file.
 std::string DescribeSetting(const DetectorOptions& options);
 
 struct TuningOptions {

@@ -33,7 +33,7 @@ def bench(binary, dims, window, nu, budget):
     runs = []
     for _ in range(REPEAT):
         out = subprocess.run([binary, "bench", "--json", "--dims", str(dims), "--window",
-                              str(window), "--nu", str(nu), "--budget", str(budget)],
+                              str(window), "--nu", str(nu), "--support-vector-budget", str(budget)],
                              check=True, capture_output=True, text=True).stdout
         runs.append(json.loads(out))
     best = dict(runs[0])
@@ -87,8 +87,8 @@ def main():
         info = None
         for _ in range(REPEAT):
             subprocess.run([a.nuwatch, "fit", "--input", data, "--output", model, "--nu",
-                            str(a.nu), "--gamma", repr(gamma), "--scale", "none", "--tol",
-                            str(a.tol), "--cache-mb", "100"], check=True, capture_output=True)
+                            str(a.nu), "--gamma", repr(gamma), "--scaler", "none", "--tolerance",
+                            str(a.tol), "--cache-bytes", str(100 << 20)], check=True, capture_output=True)
             run = json.loads(subprocess.run([a.nuwatch, "inspect", model, "--json"], check=True,
                                             capture_output=True, text=True).stdout)
             if info is None or run["fit_seconds"] < info["fit_seconds"]:

@@ -120,7 +120,7 @@ const SettingResult& ResultWithNu(const TuningReport& report, double nu) {
 TEST(TuningListsTest, ParsesCommaSeparatedValues) {
   EXPECT_EQ(ParseNuList(" 0.01, 0.02 ,1"), (std::vector<double>{0.01, 0.02, 1.0}));
   EXPECT_EQ(ParseWindowList("2,1440"), (std::vector<int64_t>{2, 1440}));
-  EXPECT_EQ(ParseBudgetList("1, 64"), (std::vector<int64_t>{1, 64}));
+  EXPECT_EQ(ParseSupportVectorBudgetList("1, 64"), (std::vector<int64_t>{1, 64}));
   const std::vector<GammaSpec> gammas = ParseGammaList("scale,median,0.25");
   ASSERT_EQ(gammas.size(), 3u);
   EXPECT_EQ(gammas[0].mode, GammaSpec::Mode::kScale);
@@ -154,8 +154,8 @@ TEST(TuningListsTest, RejectsBadListsNamingTheItem) {
   EXPECT_THAT(ErrorOf(ParseNuList, "0.1,0.10"), HasSubstr("'0.10' is listed twice"));
   EXPECT_THAT(ErrorOf(ParseWindowList, "1"), HasSubstr("'1' is below the minimum 2"));
   EXPECT_THAT(ErrorOf(ParseWindowList, "100,2.5"), HasSubstr("'2.5' is not a whole number"));
-  EXPECT_THAT(ErrorOf(ParseBudgetList, "0"), HasSubstr("'0' is below the minimum 1"));
-  EXPECT_THAT(ErrorOf(ParseBudgetList, "64,64"), HasSubstr("listed twice"));
+  EXPECT_THAT(ErrorOf(ParseSupportVectorBudgetList, "0"), HasSubstr("'0' is below the minimum 1"));
+  EXPECT_THAT(ErrorOf(ParseSupportVectorBudgetList, "64,64"), HasSubstr("listed twice"));
   EXPECT_THAT(ErrorOf(ParseGammaList, "scale,wide"), HasSubstr("gamma 'wide'"));
   EXPECT_THAT(ErrorOf(ParseGammaList, "-1"), HasSubstr("gamma '-1'"));
   EXPECT_THAT(ErrorOf(ParseGammaList, "median,median"), HasSubstr("listed twice"));
@@ -165,23 +165,23 @@ TEST(TuningGridTest, ExpandsTheCartesianProductNuFastest) {
   TuningGrid grid;
   grid.nu = {0.01, 0.02};
   grid.window = {100, 200, 300};
-  grid.budget = {64};
+  grid.support_vector_budget = {64};
   const std::vector<TuningSetting> settings = ExpandGrid(grid);
   // 2 nu x 1 (gamma not tuned) x 3 windows x 1 budget.
   ASSERT_EQ(settings.size(), 6u);
   const std::vector<std::pair<double, int64_t>> expected = {{0.01, 100}, {0.02, 100}, {0.01, 200},
                                                             {0.02, 200}, {0.01, 300}, {0.02, 300}};
   for (std::size_t i = 0; i < settings.size(); ++i) {
-    ASSERT_TRUE(settings[i].nu && settings[i].window && settings[i].budget) << i;
+    ASSERT_TRUE(settings[i].nu && settings[i].window && settings[i].support_vector_budget) << i;
     EXPECT_EQ(*settings[i].nu, expected[i].first) << i;
     EXPECT_EQ(*settings[i].window, expected[i].second) << i;
-    EXPECT_EQ(*settings[i].budget, 64) << i;
+    EXPECT_EQ(*settings[i].support_vector_budget, 64) << i;
     EXPECT_FALSE(settings[i].gamma) << i;
   }
   // Every list empty: one setting that keeps the configuration.
   const std::vector<TuningSetting> none = ExpandGrid(TuningGrid{});
   ASSERT_EQ(none.size(), 1u);
-  EXPECT_FALSE(none[0].nu || none[0].gamma || none[0].window || none[0].budget);
+  EXPECT_FALSE(none[0].nu || none[0].gamma || none[0].window || none[0].support_vector_budget);
 }
 
 TEST(TuningGridTest, ApplySettingReplacesOnlyTheTunedKeysAndClampsWarmup) {
@@ -519,14 +519,14 @@ TEST(TuningReportTest, ResultsTablesHaveOneRowPerSettingAndEveryColumn) {
   TuningOptions options;
   options.base = SmallDetectorConfig();
   options.grid.nu = {0.02, 0.1};
-  options.grid.budget = {32, 64};
+  options.grid.support_vector_budget = {32, 64};
   const TuningReport report = RunTuning(recording, IncidentsOf(kShifted), options);
   const std::string csv = ResultsCsv(report);
   const CsvTable table = ParseCsv(csv, "results.csv");
   ASSERT_EQ(table.rows.size(), 4u);
   for (const char* column :
-       {"nu", "gamma", "window", "budget", "point_precision", "point_recall", "point_f1",
-        "range_precision", "range_recall", "incidents_detected", "incidents_missed",
+       {"nu", "gamma", "window", "support_vector_budget", "point_precision", "point_recall",
+        "point_f1", "range_precision", "range_recall", "incidents_detected", "incidents_missed",
         "detection_delay_median_seconds", "false_alarms_per_day", "replay_seconds"}) {
     EXPECT_GE(table.Column(column), 0) << column;
   }
