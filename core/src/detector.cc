@@ -2,12 +2,11 @@
 
 #include <atomic>
 #include <chrono>
-#include <condition_variable>
-#include <mutex>
 #include <sstream>
 
 #include "budget.h"
 #include "model_fit.h"
+#include "nuwatch/mutex.h"
 
 namespace nuwatch {
 
@@ -57,16 +56,16 @@ double Seconds(std::chrono::steady_clock::time_point since) {
 struct Detector::Shared {
   std::atomic<std::shared_ptr<const Model>> model;
   std::atomic<double> model_time{0};
-  mutable std::mutex mutex;
-  mutable std::condition_variable idle;
-  bool in_flight = false;              // guarded by mutex
-  bool refit_waiting = false;          // guarded by mutex; a due refit waits for the in-flight one
-  uint64_t generation = 0;             // guarded by mutex; bumped by Relearn
-  uint64_t next_version = 1;           // guarded by mutex
-  std::vector<uint64_t> solution_ids;  // guarded by mutex
-  VectorD solution_alpha;              // guarded by mutex
-  RefitReport last_report;             // guarded by mutex
-  std::function<void(const RefitReport&)> listener;
+  mutable Mutex mutex;
+  mutable CondVar idle{&mutex};  // signalled when in_flight becomes false
+  bool in_flight GUARDED_BY(mutex) = false;
+  bool refit_waiting GUARDED_BY(mutex) = false;  // a due refit waits for the in-flight one
+  uint64_t generation GUARDED_BY(mutex) = 0;     // bumped by Relearn
+  uint64_t next_version GUARDED_BY(mutex) = 1;
+  std::vector<uint64_t> solution_ids GUARDED_BY(mutex);
+  VectorD solution_alpha GUARDED_BY(mutex);
+  RefitReport last_report GUARDED_BY(mutex);
+  std::function<void(const RefitReport&)> listener GUARDED_BY(mutex);
 };
 
 namespace {
@@ -105,7 +104,7 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
       std::vector<uint64_t> old_ids;
       VectorD old_alpha;
       {
-        std::lock_guard<std::mutex> lock(shared.mutex);
+        MutexLock lock(&shared.mutex);
         old_ids = shared.solution_ids;
         old_alpha = shared.solution_alpha;
       }
@@ -130,7 +129,7 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
     solver.max_iterations = o.max_iterations;
     uint64_t version;
     {
-      std::lock_guard<std::mutex> lock(shared.mutex);
+      MutexLock lock(&shared.mutex);
       version = shared.next_version++;
     }
     WindowFit fit = FitScaled(z, scaler, kernel, o.gamma, solver, warm ? &seed : nullptr, version,
@@ -181,7 +180,7 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
   report.total_seconds = Seconds(started);
   std::function<void(const RefitReport&)> listener;
   {
-    std::lock_guard<std::mutex> lock(shared.mutex);
+    MutexLock lock(&shared.mutex);
     if (shared.generation != in.generation) {
       report.discarded = true;
     } else if (report.ok) {
@@ -195,10 +194,10 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
   }
   if (listener) listener(report);
   {
-    std::lock_guard<std::mutex> lock(shared.mutex);
+    MutexLock lock(&shared.mutex);
     shared.in_flight = false;
   }
-  shared.idle.notify_all();
+  shared.idle.SignalAll();
 }
 
 }  // namespace
@@ -214,17 +213,45 @@ Detector::Detector(const DetectorOptions& options, int dims, RefitExecutor* exec
               options.max_age_seconds),
       incidents_(TrackerOptions(options)),
       drift_(DriftOptions(options)),
-      shared_(std::make_shared<Shared>()) {}
+      shared_(std::make_shared<Shared>()) {
+  PublishOwnerBytes();
+}
 
 Detector::~Detector() { WaitForRefit(); }
 
 void Detector::WaitForRefit() const {
-  std::unique_lock<std::mutex> lock(shared_->mutex);
-  shared_->idle.wait(lock, [&] { return !shared_->in_flight; });
+  MutexLock lock(&shared_->mutex);
+  while (shared_->in_flight) shared_->idle.Wait();
+}
+
+DetectorCounters Detector::LiveCounters::Load() const {
+  DetectorCounters c;
+  c.vectors = vectors.load(std::memory_order_relaxed);
+  c.anomalies = anomalies.load(std::memory_order_relaxed);
+  c.accepted = accepted.load(std::memory_order_relaxed);
+  c.refits_started = refits_started.load(std::memory_order_relaxed);
+  c.refits_coalesced = refits_coalesced.load(std::memory_order_relaxed);
+  c.drift_alarms = drift_alarms.load(std::memory_order_relaxed);
+  return c;
+}
+
+void Detector::LiveCounters::Store(const DetectorCounters& c) {
+  vectors.store(c.vectors, std::memory_order_relaxed);
+  anomalies.store(c.anomalies, std::memory_order_relaxed);
+  accepted.store(c.accepted, std::memory_order_relaxed);
+  refits_started.store(c.refits_started, std::memory_order_relaxed);
+  refits_coalesced.store(c.refits_coalesced, std::memory_order_relaxed);
+  drift_alarms.store(c.drift_alarms, std::memory_order_relaxed);
+}
+
+void Detector::PublishOwnerBytes() {
+  const std::size_t bytes = sizeof(Detector) + sizeof(Shared) + window_.MemoryBytes() +
+                            static_cast<std::size_t>(options_.open_window) * 24;
+  owner_bytes_.store(bytes, std::memory_order_relaxed);
 }
 
 void Detector::set_refit_listener(std::function<void(const RefitReport&)> listener) {
-  std::lock_guard<std::mutex> lock(shared_->mutex);
+  MutexLock lock(&shared_->mutex);
   shared_->listener = std::move(listener);
 }
 
@@ -235,7 +262,7 @@ StreamState Detector::state() const {
 }
 
 RefitReport Detector::last_refit() const {
-  std::lock_guard<std::mutex> lock(shared_->mutex);
+  MutexLock lock(&shared_->mutex);
   return shared_->last_report;
 }
 
@@ -260,14 +287,15 @@ Verdict Detector::Observe(double time, std::span<const double> x) {
     }
   }
 
-  ++counters_.vectors;
+  LiveCounters::Bump(counters_.vectors);
   if (options_.max_age_seconds > 0) window_.ExpireOlderThan(time);
   Verdict verdict;
   std::shared_ptr<const Model> model = shared_->model.load();
   if (!model) {
     window_.Push(time, x);
+    PublishOwnerBytes();
     verdict.accepted = true;
-    ++counters_.accepted;
+    LiveCounters::Bump(counters_.accepted);
     if (window_.size() >= options_.warmup) PostRefit(time, RefitReason::kWarmup);
     return verdict;
   }
@@ -277,21 +305,22 @@ Verdict Detector::Observe(double time, std::span<const double> x) {
   verdict.outlier = verdict.decision < 0;
   verdict.model_version = model->version();
   verdict.support_vectors = model->num_support();
-  if (verdict.outlier) ++counters_.anomalies;
+  if (verdict.outlier) LiveCounters::Bump(counters_.anomalies);
   verdict.transition = incidents_.Update(time, verdict.outlier, verdict.decision);
   const auto open = incidents_.open_incident();
   verdict.incident_id = open ? open->id : 0;
 
   if (options_.learn_from_anomalies || !verdict.outlier || !open) {
     window_.Push(time, x);
+    PublishOwnerBytes();
     verdict.accepted = true;
-    ++counters_.accepted;
+    LiveCounters::Bump(counters_.accepted);
     ++accepted_since_refit_;
   }
   bool drift_alarm = false;
   if (options_.drift_detection && drift_.Update(verdict.decision)) {
     drift_alarm = true;
-    ++counters_.drift_alarms;
+    LiveCounters::Bump(counters_.drift_alarms);
     drift_.Reset();
   }
   if (RefitDue(time, drift_alarm)) {
@@ -316,7 +345,7 @@ bool Detector::RefitDue(double time, bool drift_alarm) const {
 
 void Detector::PostRefit(double time, RefitReason reason) {
   {
-    std::lock_guard<std::mutex> lock(shared_->mutex);
+    MutexLock lock(&shared_->mutex);
     // Observe found no model, but the warm-up fit may have installed one since (it stores the
     // model under this mutex before it clears in_flight): a second warm-up fit would be a refit
     // that refit_every = 0 rules out.
@@ -324,7 +353,8 @@ void Detector::PostRefit(double time, RefitReason reason) {
     if (shared_->in_flight) {
       // The due refit stays due and is posted once the in-flight one is done: count it once, not
       // once per vector observed while it waits.
-      if (reason != RefitReason::kWarmup && !shared_->refit_waiting) ++counters_.refits_coalesced;
+      if (reason != RefitReason::kWarmup && !shared_->refit_waiting)
+        LiveCounters::Bump(counters_.refits_coalesced);
       if (reason != RefitReason::kWarmup) shared_->refit_waiting = true;
       if (reason == RefitReason::kDrift) drift_pending_ = true;
       return;
@@ -342,14 +372,14 @@ void Detector::PostRefit(double time, RefitReason reason) {
   input->reason = reason;
   input->time = time;
   {
-    std::lock_guard<std::mutex> lock(shared_->mutex);
+    MutexLock lock(&shared_->mutex);
     input->generation = shared_->generation;
   }
   refits_since_cold_ = cold ? 0 : refits_since_cold_ + 1;
   force_cold_ = false;
   accepted_since_refit_ = 0;
   drift_pending_ = false;
-  ++counters_.refits_started;
+  LiveCounters::Bump(counters_.refits_started);
   auto job = [shared = shared_, input] { RunRefit(*shared, *input); };
   if (executor_ == nullptr) {
     job();
@@ -388,6 +418,7 @@ void Detector::ApplyPendingOptions() {
     drift_ = PageHinkley(DriftOptions(next));
   }
   options_ = std::move(next);
+  PublishOwnerBytes();
 }
 
 void Detector::UpdateOptions(const DetectorOptions& options) {
@@ -398,7 +429,7 @@ void Detector::UpdateOptions(const DetectorOptions& options) {
 
 void Detector::Relearn() {
   {
-    std::lock_guard<std::mutex> lock(shared_->mutex);
+    MutexLock lock(&shared_->mutex);
     ++shared_->generation;
     shared_->solution_ids.clear();
     shared_->solution_alpha.resize(0);
@@ -412,13 +443,13 @@ void Detector::Relearn() {
   accepted_since_refit_ = 0;
   refits_since_cold_ = 0;
   drift_pending_ = false;
+  PublishOwnerBytes();
 }
 
 std::size_t Detector::MemoryBytes() const {
-  std::size_t bytes = sizeof(Detector) + sizeof(Shared) + window_.MemoryBytes();
-  bytes += static_cast<std::size_t>(options_.open_window) * 24;
+  std::size_t bytes = owner_bytes_.load(std::memory_order_relaxed);
   if (auto m = model()) bytes += m->MemoryBytes();
-  std::lock_guard<std::mutex> lock(shared_->mutex);
+  MutexLock lock(&shared_->mutex);
   bytes += shared_->solution_ids.capacity() * sizeof(uint64_t) +
            static_cast<std::size_t>(shared_->solution_alpha.size()) * sizeof(double);
   return bytes;
@@ -431,7 +462,7 @@ DetectorState Detector::ExportState() const {
   state.next_sample_id = window_.next_id();
   state.model = model();
   {
-    std::lock_guard<std::mutex> lock(shared_->mutex);
+    MutexLock lock(&shared_->mutex);
     state.solution_ids = shared_->solution_ids;
     state.solution_alpha = shared_->solution_alpha;
   }
@@ -440,7 +471,7 @@ DetectorState Detector::ExportState() const {
   state.accepted_since_refit = accepted_since_refit_;
   state.refits_since_cold = refits_since_cold_;
   state.model_time = shared_->model_time.load();
-  state.counters = counters_;
+  state.counters = counters_.Load();
   return state;
 }
 
@@ -473,8 +504,9 @@ void Detector::ImportState(const DetectorState& state) {
   drift_ = std::move(drift);
   accepted_since_refit_ = state.accepted_since_refit;
   refits_since_cold_ = state.refits_since_cold;
-  counters_ = state.counters;
-  std::lock_guard<std::mutex> lock(shared_->mutex);
+  counters_.Store(state.counters);
+  PublishOwnerBytes();
+  MutexLock lock(&shared_->mutex);
   ++shared_->generation;
   shared_->solution_ids = state.solution_ids;
   shared_->solution_alpha = state.solution_alpha;

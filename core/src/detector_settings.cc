@@ -17,7 +17,6 @@ constexpr std::string_view kDrift =
 constexpr std::string_view kIncidents = "Incidents";
 constexpr std::string_view kFeatures = "Features";
 
-constexpr double kInf = std::numeric_limits<double>::infinity();
 constexpr SettingBounds AtLeast(double min) { return {.min = min}; }
 constexpr SettingBounds Positive() { return {.min = 0, .min_open = true}; }
 

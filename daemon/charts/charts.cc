@@ -20,7 +20,6 @@
 namespace nuwatch::charts {
 namespace {
 
-constexpr double kNaN = std::numeric_limits<double>::quiet_NaN();
 // Beyond this a value is treated as missing: it could not be mapped to pixels meaningfully anyway.
 constexpr double kLargestDrawable = 1e300;
 

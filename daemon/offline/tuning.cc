@@ -11,7 +11,6 @@
 #include <fstream>
 #include <limits>
 #include <map>
-#include <mutex>
 #include <nlohmann/json.hpp>
 #include <set>
 #include <thread>
@@ -19,6 +18,7 @@
 
 #include "formats/csv_table.h"
 #include "formats/evaluation_json.h"
+#include "nuwatch/mutex.h"
 
 namespace nuwatch {
 namespace {
@@ -218,6 +218,51 @@ std::vector<std::size_t> RankOf(const TuningSelection& selection, std::size_t co
   for (std::size_t r = 0; r < selection.ranking.size(); ++r) rank[selection.ranking[r]] = r + 1;
   return rank;
 }
+
+// Calls the progress callback from the worker threads one call at a time, as RunTuning promises.
+class SerializedProgress {
+ public:
+  explicit SerializedProgress(const TuningProgressCallback& progress)
+      : progress_(progress ? &progress : nullptr) {}
+  void Report(const TuningProgress& p) EXCLUDES(mutex_) {
+    if (progress_ == nullptr) return;
+    MutexLock lock(&mutex_);
+    (*progress_)(p);
+  }
+
+ private:
+  Mutex mutex_;
+  const TuningProgressCallback* const progress_ PT_GUARDED_BY(mutex_);
+};
+
+// The replay of the best setting so far, kept for the timeline so that the chosen setting need
+// not be replayed again at the end (a replay of a large recording takes many seconds).
+class BestReplay {
+ public:
+  // `results[k]` is scored; keeps `rows` if it ranks before the best so far.
+  void Offer(const std::vector<SettingResult>& results, std::size_t k, std::vector<ReplayRow> rows)
+      EXCLUDES(mutex_) {
+    MutexLock lock(&mutex_);
+    if (!index_ || RanksBefore(results[k], results[*index_])) {
+      index_ = k;
+      rows_ = std::move(rows);
+    }
+  }
+  // After the workers have finished: the index of the best setting and its replay.
+  std::optional<std::size_t> index() EXCLUDES(mutex_) {
+    MutexLock lock(&mutex_);
+    return index_;
+  }
+  std::vector<ReplayRow> TakeRows() EXCLUDES(mutex_) {
+    MutexLock lock(&mutex_);
+    return std::move(rows_);
+  }
+
+ private:
+  Mutex mutex_;
+  std::optional<std::size_t> index_ GUARDED_BY(mutex_);
+  std::vector<ReplayRow> rows_ GUARDED_BY(mutex_);
+};
 
 }  // namespace
 
@@ -473,17 +518,16 @@ TuningReport RunTuning(const StreamRecording& recording, const std::vector<Incid
     }
   }
 
-  std::mutex progress_mutex, best_mutex;
-  std::optional<std::size_t> best;  // guarded by best_mutex
+  SerializedProgress reporter(progress);
+  BestReplay best;
   std::atomic<std::size_t> next{0}, settings_done{0};
   std::atomic<int64_t> rows_done{0};
   std::atomic<bool> failed{false};
   std::vector<std::exception_ptr> errors(settings.size());
   const int64_t rows_total = recording.rows() * static_cast<int64_t>(settings.size());
   const auto report_progress = [&] {
-    if (!progress) return;
-    std::lock_guard<std::mutex> lock(progress_mutex);
-    progress(TuningProgress{settings_done.load(), settings.size(), rows_done.load(), rows_total});
+    reporter.Report(
+        TuningProgress{settings_done.load(), settings.size(), rows_done.load(), rows_total});
   };
 
   const auto worker = [&] {
@@ -509,11 +553,7 @@ TuningReport RunTuning(const StreamRecording& recording, const std::vector<Incid
             std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
         // Keep the replay of the best setting so far for the timeline, instead of replaying the
         // chosen one again at the end (a replay of a large recording takes many seconds).
-        std::lock_guard<std::mutex> lock(best_mutex);
-        if (!best || RanksBefore(result, report.results[*best])) {
-          best = k;
-          report.chosen_rows = std::move(rows);
-        }
+        best.Offer(report.results, k, std::move(rows));
       } catch (...) {
         errors[k] = std::current_exception();
         failed = true;
@@ -548,7 +588,7 @@ TuningReport RunTuning(const StreamRecording& recording, const std::vector<Incid
   report.selection = SelectSetting(&report.results, options.max_false_alarms_per_day);
   // RanksBefore is the ranking's order, so the kept replay is the chosen one's; should that ever
   // fail, WriteTuningReport replays the chosen setting again rather than draw the wrong one.
-  if (best != report.selection.chosen) report.chosen_rows.clear();
+  if (best.index() == report.selection.chosen) report.chosen_rows = best.TakeRows();
   return report;
 }
 
@@ -946,19 +986,24 @@ std::vector<std::string> WriteTuningReport(const TuningReport& report,
       kept ? std::vector<ReplayRow>() : ReplaySetting(recording, base, report.chosen().setting);
   const charts::TimelineFigure timeline =
       ChosenTimelineFigure(report, recording, kept ? report.chosen_rows : replayed, incidents);
-  for (const auto& [name, format] : {std::pair{"sweep.png", charts::Format::kPng},
-                                     std::pair{"sweep.svg", charts::Format::kSvg}}) {
-    DrawAtomically(path(name), [&](const std::string& target) {
+  // Plain pairs, not structured bindings: clang 14 refuses a lambda that captures a binding
+  // (C++20 allows it; GCC 12 accepts it), and the tree builds with both.
+  using Chart = std::pair<const char*, charts::Format>;
+  for (const Chart& chart :
+       {Chart{"sweep.png", charts::Format::kPng}, Chart{"sweep.svg", charts::Format::kSvg}}) {
+    const charts::Format format = chart.second;
+    DrawAtomically(path(chart.first), [&](const std::string& target) {
       charts::DrawLineFigure(sweep, target, format);
     });
-    written.push_back(path(name));
+    written.push_back(path(chart.first));
   }
-  for (const auto& [name, format] : {std::pair{"timeline.png", charts::Format::kPng},
-                                     std::pair{"timeline.svg", charts::Format::kSvg}}) {
-    DrawAtomically(path(name), [&](const std::string& target) {
+  for (const Chart& chart :
+       {Chart{"timeline.png", charts::Format::kPng}, Chart{"timeline.svg", charts::Format::kSvg}}) {
+    const charts::Format format = chart.second;
+    DrawAtomically(path(chart.first), [&](const std::string& target) {
       charts::DrawTimelineFigure(timeline, target, format);
     });
-    written.push_back(path(name));
+    written.push_back(path(chart.first));
   }
   return written;
 }

@@ -20,12 +20,12 @@
 #include <csignal>
 #include <cstring>
 #include <future>
-#include <mutex>
 #include <nlohmann/json.hpp>
 #include <thread>
 #include <zmq.hpp>
 
 #include "nuwatch/checked_file.h"
+#include "nuwatch/mutex.h"
 #include "protocol/wire_protocol.h"
 #include "service/control.h"
 #include "service/metrics.h"
@@ -163,7 +163,8 @@ struct Daemon::Impl final : ControlCommands {
   void Record(Stream& stream, double time);
 
   // Background work noticed by the socket thread.
-  void HandleFinishedRefits();
+  void NoteFinishedRefit(Stream* stream) EXCLUDES(finished_mutex);  // any thread
+  void HandleFinishedRefits() EXCLUDES(finished_mutex);
   void PeriodicSnapshot();
   void FlushRecordings();
   bool TrySnapshot(Stream& stream, bool force);
@@ -214,9 +215,10 @@ struct Daemon::Impl final : ControlCommands {
   std::atomic<bool> flush_due{false};
   std::atomic<int> stop_signals{0};
 
-  std::mutex finished_mutex;
-  std::vector<Stream*> finished_refits;  // guarded by finished_mutex
-  std::vector<Stream*> finished_work;    // socket thread: swapped with finished_refits
+  // Refit threads report finished refits here; the socket thread takes them (HandleFinishedRefits).
+  Mutex finished_mutex;
+  std::vector<Stream*> finished_refits GUARDED_BY(finished_mutex);
+  std::vector<Stream*> finished_work;  // socket thread: swapped with finished_refits
 
   // Hot-path buffers, reused so that steady-state processing does not allocate.
   zmq::message_t key_message;
@@ -329,13 +331,8 @@ void Daemon::Impl::StartExposer() {
 std::unique_ptr<Stream> Daemon::Impl::MakeStream(const std::string& key, int dims,
                                                  const DetectorOptions& stream_options) {
   auto stream = std::make_unique<Stream>(key, dims, stream_options, &pool, &metrics,
-                                         config.daemon.anomaly_ratio_window, [this](Stream* s) {
-                                           {
-                                             std::lock_guard<std::mutex> lock(finished_mutex);
-                                             finished_refits.push_back(s);
-                                           }
-                                           Wake();
-                                         });
+                                         config.daemon.anomaly_ratio_window,
+                                         [this](Stream* s) { NoteFinishedRefit(s); });
   if (!config.daemon.record_dir.empty()) {
     stream->recorder = std::make_unique<StreamRecorder>(
         config.daemon.record_dir, key, dims, stream_options.feature_names,
@@ -753,10 +750,18 @@ void Daemon::Impl::FlushRecordings() {
   }
 }
 
+void Daemon::Impl::NoteFinishedRefit(Stream* stream) {
+  {
+    MutexLock lock(&finished_mutex);
+    finished_refits.push_back(stream);
+  }
+  Wake();
+}
+
 void Daemon::Impl::HandleFinishedRefits() {
   finished_work.clear();
   {
-    std::lock_guard<std::mutex> lock(finished_mutex);
+    MutexLock lock(&finished_mutex);
     finished_work.swap(finished_refits);
   }
   for (Stream* s : finished_work) {

@@ -18,11 +18,16 @@
 // while an incident is open. Isolated flags do enter: dropping every flagged vector would cut the
 // nu tail from each window, and the envelope would shrink refit after refit on a stationary stream.
 //
-// Thread safety: Observe, Relearn, UpdateOptions and the state functions must be called from one
-// thread (the stream's owner). model(), counters() and MemoryBytes() may be called from any thread.
-// Refit jobs touch only state shared through an internal mutex and the atomic model slot.
+// Thread safety: Observe, Relearn, UpdateOptions, the state functions and the accessors of owner
+// state (options(), window_size(), open_incident()) must be called from one thread (the stream's
+// owner). model(), state(), model_time(), last_refit(), counters() and MemoryBytes() may be called
+// from any thread, at any time: the model slot and model time are atomics, the counters are
+// atomics the owner alone writes, and the bytes of owner state are a figure the owner publishes
+// after each change. Refit jobs touch only state shared through an internal mutex (annotated for
+// clang's -Wthread-safety) and the atomic model slot.
 #pragma once
 
+#include <atomic>
 #include <cmath>
 #include <cstdint>
 #include <functional>
@@ -86,6 +91,8 @@ struct Verdict {
   int support_vectors = 0;
 };
 
+// A snapshot of a detector's counters. Each count is exact at some moment; taken from another
+// thread while the owner observes, two counts may be one vector apart.
 struct DetectorCounters {
   int64_t vectors = 0;
   int64_t anomalies = 0;
@@ -146,11 +153,13 @@ class Detector {
   const DetectorOptions& options() const { return options_; }
   int64_t window_size() const { return window_.size(); }
   std::optional<TrackedIncident> open_incident() const { return incidents_.open_incident(); }
-  DetectorCounters counters() const { return counters_; }
+  // Any thread.
+  DetectorCounters counters() const { return counters_.Load(); }
   RefitReport last_refit() const;
   double model_time() const;
 
-  // Bytes held for this stream: window, model, last solution, incident ring.
+  // Bytes held for this stream: window, model, last solution, incident ring. Any thread; the
+  // owner-state part is as of the owner's last Observe (or other owner call).
   std::size_t MemoryBytes() const;
 
   // Requires for Import: dimensions matching dims(); throws PreconditionError otherwise (the
@@ -163,6 +172,20 @@ class Detector {
   bool RefitDue(double time, bool drift_alarm) const;
   void PostRefit(double time, RefitReason reason);
   void ApplyPendingOptions();
+  // Publishes the bytes of the owner's state for MemoryBytes (owner thread).
+  void PublishOwnerBytes();
+
+  // The counters: written by the owner thread only, read by any thread. One writer, so an
+  // increment is a relaxed load and store (no read-modify-write on the hot path).
+  struct LiveCounters {
+    std::atomic<int64_t> vectors{0}, anomalies{0}, accepted{0}, refits_started{0},
+        refits_coalesced{0}, drift_alarms{0};
+    static void Bump(std::atomic<int64_t>& counter) {
+      counter.store(counter.load(std::memory_order_relaxed) + 1, std::memory_order_relaxed);
+    }
+    DetectorCounters Load() const;
+    void Store(const DetectorCounters& counters);
+  };
 
   DetectorOptions options_;
   std::optional<DetectorOptions> pending_options_;
@@ -176,7 +199,8 @@ class Detector {
   int64_t refits_since_cold_ = 0;
   bool drift_pending_ = false;
   bool force_cold_ = false;
-  DetectorCounters counters_;
+  LiveCounters counters_;
+  std::atomic<std::size_t> owner_bytes_{0};  // see PublishOwnerBytes
 };
 
 }  // namespace nuwatch

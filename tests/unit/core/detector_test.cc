@@ -13,6 +13,7 @@
 #include <gtest/gtest.h>
 
 #include <algorithm>
+#include <atomic>
 #include <cmath>
 #include <cstdint>
 #include <deque>
@@ -22,6 +23,7 @@
 #include <memory>
 #include <random>
 #include <string>
+#include <thread>
 #include <vector>
 
 #include "model_fit.h"
@@ -877,6 +879,51 @@ TEST(DetectorMemory, WithinOneAndAHalfTimesTheTargetAndFlatOverRefits) {
   const std::size_t second_half_max =
       *std::max_element(after_refit.begin() + after_refit.size() / 2, after_refit.end());
   EXPECT_LE(second_half_max, first_half_max + 0.05 * window * 16) << "memory grows with refits";
+}
+
+// counters() and MemoryBytes() may be called from any thread while the owner observes
+// (detector.h). Regression: counters() returned a copy of plain fields that Observe wrote, a data
+// race. A reader thread now sees counts that never decrease and never run ahead of the owner, and
+// once the owner has stopped, exactly the owner's figures. (Whether the accesses race at all is
+// what -fsanitize=thread checks; this test checks the values a reader gets.)
+TEST(DetectorThreads, CountersAndMemoryAreReadFromAnotherThreadWhileTheOwnerObserves) {
+  const int d = 4;
+  Detector detector(BaseOptions(0.1, 300, 50, 32), d);
+  std::atomic<int64_t> observed{0};
+  std::atomic<bool> done{false};
+  int64_t reads = 0;
+  bool monotone = true, ahead = false, zero_bytes = false;
+  std::thread reader([&] {
+    DetectorCounters last;
+    while (!done.load()) {
+      const DetectorCounters c = detector.counters();
+      const std::size_t bytes = detector.MemoryBytes();
+      const int64_t owner = observed.load();  // after the read: the owner may have moved on
+      monotone = monotone && c.vectors >= last.vectors && c.accepted >= last.accepted &&
+                 c.anomalies >= last.anomalies && c.refits_started >= last.refits_started;
+      // Observe counts a vector before `observed` is bumped, so a reader may see one more.
+      ahead = ahead || c.vectors > owner + 1;
+      zero_bytes = zero_bytes || bytes == 0;
+      last = c;
+      ++reads;
+    }
+  });
+  std::mt19937_64 rng(5);
+  for (int64_t t = 0; t < 3000; ++t) {
+    detector.Observe(static_cast<double>(t), Draw(rng, Shape::kGaussian, d));
+    observed.store(t + 1);
+  }
+  done = true;
+  reader.join();
+  EXPECT_TRUE(monotone);
+  EXPECT_FALSE(ahead);
+  EXPECT_FALSE(zero_bytes);
+  EXPECT_GT(reads, 0);
+  const DetectorCounters c = detector.counters();
+  EXPECT_EQ(c.vectors, 3000);
+  EXPECT_GT(c.refits_started, 10);
+  EXPECT_EQ(detector.ExportState().counters.vectors, 3000);
+  EXPECT_GT(detector.MemoryBytes(), static_cast<std::size_t>(300 * d * 8));
 }
 
 }  // namespace
