@@ -38,31 +38,52 @@ std::string SettingBoundsText(const SettingBounds& b) {
   return "";
 }
 
-namespace setting_internal {
-
-std::string Quoted(std::string_view text) {
+std::string SettingQuoted(std::string_view text) {
   std::string out = "\"";
   for (const char c : text) {
     const auto u = static_cast<unsigned char>(c);
-    if (c == '"' || c == '\\') {
-      out += '\\';
-      out += c;
-    } else if (u < 0x20 || u == 0x7f) {
-      char escaped[8];
-      std::snprintf(escaped, sizeof escaped, "\\u%04X", u);
-      out += escaped;
-    } else {
-      out += c;
+    switch (c) {
+      case '"':
+        out += "\\\"";
+        break;
+      case '\\':
+        out += "\\\\";
+        break;
+      case '\b':
+        out += "\\b";
+        break;
+      case '\t':
+        out += "\\t";
+        break;
+      case '\n':
+        out += "\\n";
+        break;
+      case '\f':
+        out += "\\f";
+        break;
+      case '\r':
+        out += "\\r";
+        break;
+      default:
+        if (u < 0x20 || u == 0x7f) {
+          char escaped[8];
+          std::snprintf(escaped, sizeof escaped, "\\u%04X", u);
+          out += escaped;
+        } else {
+          out += c;
+        }
     }
   }
   return out + "\"";
 }
 
+namespace setting_internal {
+
 std::string ChoicesText(std::span<const std::string_view> choices) {
   std::string out;
   for (std::size_t i = 0; i < choices.size(); ++i) {
     if (i > 0) out += ", ";
-    out += Quoted(choices[i]);
+    out += SettingQuoted(choices[i]);
   }
   return out;
 }

@@ -18,33 +18,23 @@ constexpr std::string_view kFitKeys[] = {"nu",        "kernel",         "gamma",
                                          "degree",    "coef0",          "scaler",
                                          "tolerance", "max_iterations", "cache_bytes"};
 
-DetectorOptions AsDetectorOptions(const FitOptions& f) {
-  DetectorOptions o;
-  o.nu = f.nu;
-  o.kernel = f.kernel;
-  o.gamma = f.gamma;
-  o.degree = f.degree;
-  o.coef0 = f.coef0;
-  o.scaler = f.scaler;
-  o.tolerance = f.tolerance;
-  o.max_iterations = f.max_iterations;
-  o.cache_bytes = f.cache_bytes;
-  return o;
+// FitOptions' members are the detector keys of kFitKeys, named alike: copies them either way.
+template <class From, class To>
+To WithFitKeys(const From& from, To to) {
+  to.nu = from.nu;
+  to.kernel = from.kernel;
+  to.gamma = from.gamma;
+  to.degree = from.degree;
+  to.coef0 = from.coef0;
+  to.scaler = from.scaler;
+  to.tolerance = from.tolerance;
+  to.max_iterations = from.max_iterations;
+  to.cache_bytes = from.cache_bytes;
+  return to;
 }
 
-FitOptions AsFitOptions(const DetectorOptions& o) {
-  FitOptions f;
-  f.nu = o.nu;
-  f.kernel = o.kernel;
-  f.gamma = o.gamma;
-  f.degree = o.degree;
-  f.coef0 = o.coef0;
-  f.scaler = o.scaler;
-  f.tolerance = o.tolerance;
-  f.max_iterations = o.max_iterations;
-  f.cache_bytes = o.cache_bytes;
-  return f;
-}
+DetectorOptions AsDetectorOptions(const FitOptions& f) { return WithFitKeys(f, DetectorOptions{}); }
+FitOptions AsFitOptions(const DetectorOptions& o) { return WithFitKeys(o, FitOptions{}); }
 
 struct FitArgs {
   std::string input, output;

@@ -19,6 +19,7 @@
 #include "formats/csv_table.h"
 #include "formats/evaluation_json.h"
 #include "nuwatch/mutex.h"
+#include "settings/setting_text.h"
 
 namespace nuwatch {
 namespace {
@@ -40,28 +41,15 @@ bool SameGamma(const GammaSpec& a, const GammaSpec& b) {
   return a.mode == b.mode && (a.mode != GammaSpec::Mode::kValue || a.value == b.value);
 }
 
-std::string_view Trim(std::string_view s) {
-  while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
-  while (!s.empty() && (s.back() == ' ' || s.back() == '\t')) s.remove_suffix(1);
-  return s;
-}
-
 // The items of a comma-separated list, trimmed; none of them empty.
 std::vector<std::string_view> SplitList(std::string_view text) {
-  if (Trim(text).empty()) throw TuningError("the list is empty");
-  std::vector<std::string_view> items;
-  std::size_t begin = 0;
-  while (true) {
-    const std::size_t comma = text.find(',', begin);
-    const std::string_view item =
-        Trim(text.substr(begin, comma == std::string_view::npos ? comma : comma - begin));
-    if (item.empty()) {
+  const std::vector<std::string_view> items = SplitCommaList(text);
+  if (items.empty()) throw TuningError("the list is empty");
+  for (std::size_t i = 0; i < items.size(); ++i) {
+    if (items[i].empty()) {
       throw TuningError("'" + std::string(text) + "' has an empty item (item " +
-                        std::to_string(items.size() + 1) + ")");
+                        std::to_string(i + 1) + ")");
     }
-    items.push_back(item);
-    if (comma == std::string_view::npos) break;
-    begin = comma + 1;
   }
   return items;
 }

@@ -32,56 +32,13 @@ namespace {
 // Values as TOML text (for DescribeDetectorOptions and for quoting values in messages).
 
 std::string FormatDouble(double v) {
-  if (std::isnan(v)) return "nan";
-  if (std::isinf(v)) return v > 0 ? "inf" : "-inf";
-  char buffer[64];
-  // Shortest text that reads back to the same double.
-  const auto result = std::to_chars(buffer, buffer + sizeof buffer, v);
-  std::string text(buffer, result.ptr);
+  std::string text = SettingNumberText(v);
   // TOML reads "3" as an integer; keep floats floats so the round trip keeps the type.
-  if (text.find_first_of(".eE") == std::string::npos) text += ".0";
+  if (std::isfinite(v) && text.find_first_of(".eE") == std::string::npos) text += ".0";
   return text;
 }
 
-std::string Quote(std::string_view s) {
-  std::string out = "\"";
-  for (const char c : s) {
-    const auto u = static_cast<unsigned char>(c);
-    switch (c) {
-      case '"':
-        out += "\\\"";
-        break;
-      case '\\':
-        out += "\\\\";
-        break;
-      case '\b':
-        out += "\\b";
-        break;
-      case '\t':
-        out += "\\t";
-        break;
-      case '\n':
-        out += "\\n";
-        break;
-      case '\f':
-        out += "\\f";
-        break;
-      case '\r':
-        out += "\\r";
-        break;
-      default:
-        if (u < 0x20 || u == 0x7f) {
-          char escaped[8];
-          std::snprintf(escaped, sizeof escaped, "\\u%04X", u);
-          out += escaped;
-        } else {
-          out += c;
-        }
-    }
-  }
-  out += '"';
-  return out;
-}
+std::string Quote(std::string_view s) { return SettingQuoted(s); }
 
 std::string ToToml(double v) { return FormatDouble(v); }
 std::string ToToml(bool v) { return v ? "true" : "false"; }

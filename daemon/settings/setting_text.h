@@ -16,6 +16,12 @@
 
 namespace nuwatch {
 
+// `text` without leading and trailing spaces and tabs.
+std::string_view TrimBlanks(std::string_view text);
+// The items of a comma-separated list, each trimmed; "" (or blanks) has none, "a,,b" has an empty
+// second item.
+std::vector<std::string_view> SplitCommaList(std::string_view text);
+
 // One value as text; lists comma-separated.
 std::string ValueText(double value);
 std::string ValueText(int64_t value);

@@ -90,12 +90,15 @@ using SettingNamer = std::function<std::string(std::string_view section, std::st
 // Shortest text that reads back to the same double, "2" for 2.0, "nan", "inf".
 std::string SettingNumberText(double value);
 
+// `text` as a TOML basic string: quoted, with \" \\ \b \t \n \f \r and \uXXXX escapes (TOML 1.0
+// "String"), for messages and the config file.
+std::string SettingQuoted(std::string_view text);
+
 // "(0, 1]", ">= 2", "> 0", "[1, 65535]", "" (unbounded) for documentation and help.
 std::string SettingBoundsText(const SettingBounds& bounds);
 
 namespace setting_internal {
 
-std::string Quoted(std::string_view text);
 std::string ChoicesText(std::span<const std::string_view> choices);
 // "must be at least 2", "is outside (0, 1]", ...; "" when `value` is within the bounds.
 std::string BoundsMessage(const SettingBounds& bounds, double value);
@@ -146,7 +149,7 @@ std::optional<SettingViolation> CheckSettings(std::span<const Setting<S>> table,
             if (!setting.choices.empty() &&
                 std::find(setting.choices.begin(), setting.choices.end(), value) ==
                     setting.choices.end()) {
-              fail(key + " = " + internal::Quoted(value) + " must be one of " +
+              fail(key + " = " + SettingQuoted(value) + " must be one of " +
                    internal::ChoicesText(setting.choices));
             }
           } else if constexpr (std::is_same_v<T, std::vector<std::string>> ||
@@ -159,7 +162,7 @@ std::optional<SettingViolation> CheckSettings(std::span<const Setting<S>> table,
                 if (setting.distinct && value[i].empty()) {
                   fail(key + " has an empty name at position " + position);
                 } else if (setting.distinct && !seen.insert(value[i]).second) {
-                  fail(key + " names " + internal::Quoted(value[i]) + " twice");
+                  fail(key + " names " + SettingQuoted(value[i]) + " twice");
                 }
               } else {
                 const std::string message =
