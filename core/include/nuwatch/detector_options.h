@@ -16,23 +16,23 @@ namespace nuwatch {
 
 struct DetectorOptions {
   // Model.
-  double nu = 0.05;                 // upper bound on the training outlier fraction; (0, 1]
+  double nu = 0.05;  // upper bound on the training outlier fraction; (0, 1]
   KernelType kernel = KernelType::kRbf;
-  GammaSpec gamma;                  // "scale" by default
-  int degree = 3;                   // polynomial kernel only
-  double coef0 = 0.0;               // polynomial kernel only
+  GammaSpec gamma;     // "scale" by default
+  int degree = 3;      // polynomial kernel only
+  double coef0 = 0.0;  // polynomial kernel only
   ScalerType scaler = ScalerType::kStandard;
-  double tolerance = 1e-3;          // solver stopping tolerance (relative, see solver.h)
-  int64_t max_iterations = 0;       // 0: the solver's default cap
+  double tolerance = 1e-3;     // solver stopping tolerance (relative, see solver.h)
+  int64_t max_iterations = 0;  // 0: the solver's default cap
   std::size_t cache_bytes = 64u << 20;
 
   // Window and refits.
-  int64_t window = 2000;            // vectors kept for training
-  double max_age_seconds = 0;       // 0: no age limit on window vectors
-  int64_t warmup = 500;             // vectors before the first fit; <= window
-  int64_t refit_every = 200;        // accepted vectors between refits; 0: fit once, never refit
-  double max_model_age_seconds = 0; // 0: no age-triggered refit
-  int64_t cold_refit_every = 10;    // every n-th refit re-estimates scaler and gamma (cold start)
+  int64_t window = 2000;             // vectors kept for training
+  double max_age_seconds = 0;        // 0: no age limit on window vectors
+  int64_t warmup = 500;              // vectors before the first fit; <= window
+  int64_t refit_every = 200;         // accepted vectors between refits; 0: fit once, never refit
+  double max_model_age_seconds = 0;  // 0: no age-triggered refit
+  int64_t cold_refit_every = 10;     // every n-th refit re-estimates scaler and gamma (cold start)
   int64_t support_vector_budget = 256;
   bool learn_from_anomalies = false;
 
