@@ -7,7 +7,7 @@ cd "$(dirname "$0")/.."
 echo "building (log in build/demo-build.log) ..."
 mkdir -p build
 bash deploy/build.sh >build/demo-build.log 2>&1 || { tail -30 build/demo-build.log; exit 1; }
-nuwatch=build/daemon/nuwatch
+nuwatch=build/bin/nuwatch
 out=${NUWATCH_DEMO_DIR:-demo-out}
 mkdir -p "$out"
 
@@ -47,7 +47,7 @@ awk -F, -v p="$pump" 'NR == 1 || $1 == p { printf "  %s\n", $0 }' "$out/plant/in
 echo
 echo "== 5. Live: nuwatchd on loopback with config/demo.toml; 12 pumps streamed 3600x faster than real"
 echo "   time (two simulated days in about a minute: the first, fault-free day is learning)"
-nuwatchd=build/daemon/nuwatchd
+nuwatchd=build/bin/nuwatchd
 py=/usr/bin/python3
 ready="$out/ready.json"
 rm -rf "$ready" "$out/state" "$out/live"

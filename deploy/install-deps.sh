@@ -14,6 +14,8 @@ packages=(
   # tests and benchmarks
   libgtest-dev libgmock-dev libbenchmark-dev python3 python3-sklearn python3-numpy python3-zmq
   prometheus
+  # the clang build with -Wthread-safety (DEVELOPERS.md) and the fuzz target
+  clang libclang-rt-14-dev
 )
 
 missing=()

@@ -1,4 +1,4 @@
-#include "nuwatch/budget.h"
+#include "budget.h"
 
 #include <Eigen/Cholesky>
 #include <Eigen/Core>

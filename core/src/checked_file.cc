@@ -1,8 +1,36 @@
 #include "nuwatch/checked_file.h"
 
-#include "nuwatch/model_file.h"
+#include <fcntl.h>
+#include <unistd.h>
+
+#include <array>
+#include <cerrno>
+#include <cstring>
+
+#include "crc32.h"
+#include "nuwatch/types.h"
 
 namespace nuwatch {
+namespace {
+
+std::array<uint32_t, 256> MakeCrcTable() {
+  std::array<uint32_t, 256> table{};
+  for (uint32_t i = 0; i < 256; ++i) {
+    uint32_t c = i;
+    for (int k = 0; k < 8; ++k) c = (c & 1) ? 0xEDB88320u ^ (c >> 1) : c >> 1;
+    table[i] = c;
+  }
+  return table;
+}
+
+}  // namespace
+
+uint32_t Crc32(const uint8_t* data, std::size_t size, uint32_t crc) {
+  static const std::array<uint32_t, 256> table = MakeCrcTable();
+  crc = ~crc;
+  for (std::size_t i = 0; i < size; ++i) crc = table[(crc ^ data[i]) & 0xFF] ^ (crc >> 8);
+  return ~crc;
+}
 
 std::vector<uint8_t> WrapChecksummed(const char (&magic)[4], uint32_t version,
                                      const std::vector<uint8_t>& payload) {
@@ -47,6 +75,40 @@ ChecksummedPayload UnwrapChecksummed(const uint8_t* data, std::size_t size, cons
     throw ChecksummedFileError("checksum mismatch: the file is corrupted");
   }
   return {version, payload, static_cast<std::size_t>(payload_bytes)};
+}
+
+void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size) {
+  const std::string temp = path + ".tmp." + std::to_string(::getpid());
+  auto fail = [&](const std::string& what) {
+    const std::string reason = std::strerror(errno);
+    ::unlink(temp.c_str());
+    throw ModelFileError(path + ": " + what + ": " + reason);
+  };
+  int fd = ::open(temp.c_str(), O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0644);
+  if (fd < 0) fail("cannot create temporary file");
+  std::size_t written = 0;
+  while (written < size) {
+    ssize_t n = ::write(fd, bytes + written, size - written);
+    if (n < 0) {
+      if (errno == EINTR) continue;
+      ::close(fd);
+      fail("write failed");
+    }
+    written += static_cast<std::size_t>(n);
+  }
+  if (::fsync(fd) != 0) {
+    ::close(fd);
+    fail("fsync failed");
+  }
+  if (::close(fd) != 0) fail("close failed");
+  if (::rename(temp.c_str(), path.c_str()) != 0) fail("rename failed");
+  const auto slash = path.find_last_of('/');
+  const std::string directory = slash == std::string::npos ? "." : path.substr(0, slash + 1);
+  int dir_fd = ::open(directory.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
+  if (dir_fd >= 0) {
+    ::fsync(dir_fd);  // makes the rename durable
+    ::close(dir_fd);
+  }
 }
 
 }  // namespace nuwatch

@@ -2,11 +2,11 @@
 
 #include <atomic>
 #include <chrono>
-#include <condition_variable>
-#include <mutex>
 #include <sstream>
 
-#include "nuwatch/budget.h"
+#include "budget.h"
+#include "model_fit.h"
+#include "nuwatch/mutex.h"
 
 namespace nuwatch {
 
@@ -25,7 +25,7 @@ std::string_view StreamStateName(StreamState state) {
 FeatureTransformOptions TransformOptions(const DetectorOptions& o) {
   FeatureTransformOptions t;
   t.lags = o.lags;
-  t.rolling_windows = o.rolling_windows;
+  t.rolling_windows.assign(o.rolling_windows.begin(), o.rolling_windows.end());
   t.rolling_statistics.clear();
   for (const auto& name : o.rolling_statistics) {
     const auto statistic = ParseRollingStatistic(name);
@@ -54,69 +54,6 @@ std::string_view RefitReasonName(RefitReason reason) {
   return "unknown";
 }
 
-void CheckDetectorOptions(const DetectorOptions& o, std::string_view where) {
-  std::ostringstream m;
-  m << where << ": ";
-  auto fail = [&](const std::string& text) {
-    m << text;
-    throw PreconditionError(m.str());
-  };
-  auto value = [](double v) {
-    std::ostringstream s;
-    s << v;
-    return s.str();
-  };
-  if (!(o.nu > 0 && o.nu <= 1)) fail("nu = " + value(o.nu) + " is outside (0, 1]");
-  if (o.gamma.mode == GammaSpec::Mode::kValue && !(o.gamma.value > 0))
-    fail("gamma = " + value(o.gamma.value) + " must be > 0");
-  if (o.kernel == KernelType::kPolynomial && o.degree < 1)
-    fail("degree = " + std::to_string(o.degree) + " must be >= 1");
-  if (!(o.tolerance > 0)) fail("tolerance = " + value(o.tolerance) + " must be > 0");
-  if (o.max_iterations < 0)
-    fail("max_iterations = " + std::to_string(o.max_iterations) + " must be >= 0");
-  if (o.window < 2) fail("window = " + std::to_string(o.window) + " must be >= 2");
-  if (o.warmup < 2 || o.warmup > o.window)
-    fail("warmup = " + std::to_string(o.warmup) +
-         " must be in [2, window = " + std::to_string(o.window) + "]");
-  // Non-finite values must be caught here: the window and the drift test are rebuilt from these
-  // options inside a refit, where a throw would leave the refit marked in flight for good.
-  if (!(std::isfinite(o.max_age_seconds) && o.max_age_seconds >= 0))
-    fail("max_age_seconds = " + value(o.max_age_seconds) + " must be finite and >= 0");
-  if (o.refit_every < 0) fail("refit_every = " + std::to_string(o.refit_every) + " must be >= 0");
-  if (!(o.max_model_age_seconds >= 0))
-    fail("max_model_age_seconds = " + value(o.max_model_age_seconds) + " must be >= 0");
-  if (o.cold_refit_every < 1)
-    fail("cold_refit_every = " + std::to_string(o.cold_refit_every) + " must be >= 1");
-  if (o.support_vector_budget < 1)
-    fail("support_vector_budget = " + std::to_string(o.support_vector_budget) + " must be >= 1");
-  if (!(std::isfinite(o.drift_delta) && o.drift_delta >= 0))
-    fail("drift_delta = " + value(o.drift_delta) + " must be finite and >= 0");
-  if (!(std::isfinite(o.drift_lambda) && o.drift_lambda > 0))
-    fail("drift_lambda = " + value(o.drift_lambda) + " must be finite and > 0");
-  if (o.drift_min_samples < 0)
-    fail("drift_min_samples = " + std::to_string(o.drift_min_samples) + " must be >= 0");
-  if (o.open_window < 1 || o.open_after < 1 || o.open_after > o.open_window)
-    fail("open_after = " + std::to_string(o.open_after) + ", open_window = " +
-         std::to_string(o.open_window) + ": need 1 <= open_after <= open_window");
-  if (o.close_after < 1) fail("close_after = " + std::to_string(o.close_after) + " must be >= 1");
-  if (o.calibration_folds != 0 && (o.calibration_folds < 2 || o.calibration_folds > 50))
-    fail("calibration_folds = " + std::to_string(o.calibration_folds) +
-         " must be 0 (off) or in [2, 50]");
-  if (!(std::isfinite(o.false_alarm_rate) && o.false_alarm_rate >= 0 && o.false_alarm_rate <= 0.5))
-    fail("false_alarm_rate = " + value(o.false_alarm_rate) + " must be in [0, 0.5]");
-  if (!(std::isfinite(o.false_incidents_per_day) && o.false_incidents_per_day >= 0))
-    fail("false_incidents_per_day = " + value(o.false_incidents_per_day) +
-         " must be finite and >= 0");
-  for (const auto& name : o.rolling_statistics) {
-    if (!ParseRollingStatistic(name))
-      fail("rolling_statistics: '" + name + "' is not one of mean, std, slope");
-  }
-  CheckFeatureTransformOptions(TransformOptions(o), where);
-  if (o.calibration_folds != 0 && o.false_alarm_rate == 0 && o.false_incidents_per_day == 0)
-    fail(
-        "false_alarm_rate and false_incidents_per_day are both 0: set a false-alarm budget, or "
-        "calibration_folds = 0 to flag decision < 0 uncalibrated");
-}
 
 namespace {
 
@@ -157,16 +94,16 @@ double Seconds(std::chrono::steady_clock::time_point since) {
 struct Detector::Shared {
   std::atomic<std::shared_ptr<const Model>> model;
   std::atomic<double> model_time{0};
-  mutable std::mutex mutex;
-  mutable std::condition_variable idle;
-  bool in_flight = false;              // guarded by mutex
-  bool refit_waiting = false;          // guarded by mutex; a due refit waits for the in-flight one
-  uint64_t generation = 0;             // guarded by mutex; bumped by Relearn
-  uint64_t next_version = 1;           // guarded by mutex
-  std::vector<uint64_t> solution_ids;  // guarded by mutex
-  VectorD solution_alpha;              // guarded by mutex
-  RefitReport last_report;             // guarded by mutex
-  std::function<void(const RefitReport&)> listener;
+  mutable Mutex mutex;
+  mutable CondVar idle{&mutex};  // signalled when in_flight becomes false
+  bool in_flight GUARDED_BY(mutex) = false;
+  bool refit_waiting GUARDED_BY(mutex) = false;  // a due refit waits for the in-flight one
+  uint64_t generation GUARDED_BY(mutex) = 0;     // bumped by Relearn
+  uint64_t next_version GUARDED_BY(mutex) = 1;
+  std::vector<uint64_t> solution_ids GUARDED_BY(mutex);
+  VectorD solution_alpha GUARDED_BY(mutex);
+  RefitReport last_report GUARDED_BY(mutex);
+  std::function<void(const RefitReport&)> listener GUARDED_BY(mutex);
 };
 
 namespace {
@@ -192,7 +129,7 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
     uint64_t version;
     WarmStart warm;
     {
-      std::lock_guard<std::mutex> lock(shared.mutex);
+      MutexLock lock(&shared.mutex);
       version = shared.next_version++;
       if (in.base) {
         warm.ids = shared.solution_ids;
@@ -211,7 +148,7 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
   report.total_seconds = Seconds(started);
   std::function<void(const RefitReport&)> listener;
   {
-    std::lock_guard<std::mutex> lock(shared.mutex);
+    MutexLock lock(&shared.mutex);
     if (shared.generation != in.generation) {
       report.discarded = true;
     } else if (report.ok) {
@@ -225,10 +162,10 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
   }
   if (listener) listener(report);
   {
-    std::lock_guard<std::mutex> lock(shared.mutex);
+    MutexLock lock(&shared.mutex);
     shared.in_flight = false;
   }
-  shared.idle.notify_all();
+  shared.idle.SignalAll();
 }
 
 // One model on the rows: the scaler and kernel from the rows or frozen from `frozen`, the solver
@@ -438,17 +375,50 @@ Detector::Detector(const DetectorOptions& options, int dims, RefitExecutor* exec
       window_(options.window, transform_.output_dims(), options.max_age_seconds),
       incidents_(TrackerOptions(options)),
       drift_(DriftOptions(options)),
-      shared_(std::make_shared<Shared>()) {}
+      shared_(std::make_shared<Shared>()) {
+  PublishOwnerBytes();
+}
 
 Detector::~Detector() { WaitForRefit(); }
 
 void Detector::WaitForRefit() const {
-  std::unique_lock<std::mutex> lock(shared_->mutex);
-  shared_->idle.wait(lock, [&] { return !shared_->in_flight; });
+  MutexLock lock(&shared_->mutex);
+  while (shared_->in_flight) shared_->idle.Wait();
+}
+
+DetectorCounters Detector::LiveCounters::Load() const {
+  DetectorCounters c;
+  c.vectors = vectors.load(std::memory_order_relaxed);
+  c.anomalies = anomalies.load(std::memory_order_relaxed);
+  c.accepted = accepted.load(std::memory_order_relaxed);
+  c.refits_started = refits_started.load(std::memory_order_relaxed);
+  c.refits_coalesced = refits_coalesced.load(std::memory_order_relaxed);
+  c.drift_alarms = drift_alarms.load(std::memory_order_relaxed);
+  c.history_vectors = history_vectors.load(std::memory_order_relaxed);
+  c.history_resets = history_resets.load(std::memory_order_relaxed);
+  return c;
+}
+
+void Detector::LiveCounters::Store(const DetectorCounters& c) {
+  vectors.store(c.vectors, std::memory_order_relaxed);
+  anomalies.store(c.anomalies, std::memory_order_relaxed);
+  accepted.store(c.accepted, std::memory_order_relaxed);
+  refits_started.store(c.refits_started, std::memory_order_relaxed);
+  refits_coalesced.store(c.refits_coalesced, std::memory_order_relaxed);
+  drift_alarms.store(c.drift_alarms, std::memory_order_relaxed);
+  history_vectors.store(c.history_vectors, std::memory_order_relaxed);
+  history_resets.store(c.history_resets, std::memory_order_relaxed);
+}
+
+void Detector::PublishOwnerBytes() {
+  const std::size_t bytes = sizeof(Detector) + sizeof(Shared) + window_.MemoryBytes() +
+                            transform_.MemoryBytes() + transformed_.capacity() * sizeof(double) +
+                            static_cast<std::size_t>(options_.open_window) * 24;
+  owner_bytes_.store(bytes, std::memory_order_relaxed);
 }
 
 void Detector::set_refit_listener(std::function<void(const RefitReport&)> listener) {
-  std::lock_guard<std::mutex> lock(shared_->mutex);
+  MutexLock lock(&shared_->mutex);
   shared_->listener = std::move(listener);
 }
 
@@ -459,7 +429,7 @@ StreamState Detector::state() const {
 }
 
 RefitReport Detector::last_refit() const {
-  std::lock_guard<std::mutex> lock(shared_->mutex);
+  MutexLock lock(&shared_->mutex);
   return shared_->last_report;
 }
 
@@ -484,13 +454,14 @@ Verdict Detector::Observe(double time, std::span<const double> x) {
     }
   }
 
-  ++counters_.vectors;
+  LiveCounters::Bump(counters_.vectors);
   if (options_.max_age_seconds > 0) window_.ExpireOlderThan(time);
   if (transform_.history_needed() == 0) return ObserveTransformed(time, x);
   const bool ready = transform_.Push(time, x, transformed_);
-  if (transform_.last_push_reset() != HistoryReset::kNone) ++counters_.history_resets;
+  if (transform_.last_push_reset() != HistoryReset::kNone)
+    LiveCounters::Bump(counters_.history_resets);
   if (!ready) {
-    ++counters_.history_vectors;
+    LiveCounters::Bump(counters_.history_vectors);
     Verdict verdict;
     verdict.state = StreamState::kHistory;
     if (const auto open = incidents_.open_incident()) verdict.incident_id = open->id;
@@ -504,8 +475,9 @@ Verdict Detector::ObserveTransformed(double time, std::span<const double> x) {
   std::shared_ptr<const Model> model = shared_->model.load();
   if (!model) {
     window_.Push(time, x);
+    PublishOwnerBytes();
     verdict.accepted = true;
-    ++counters_.accepted;
+    LiveCounters::Bump(counters_.accepted);
     if (window_.size() >= options_.warmup) PostRefit(time, RefitReason::kWarmup);
     return verdict;
   }
@@ -517,21 +489,22 @@ Verdict Detector::ObserveTransformed(double time, std::span<const double> x) {
   verdict.outlier = model->Flagged(score);
   verdict.model_version = model->version();
   verdict.support_vectors = model->num_support();
-  if (verdict.outlier) ++counters_.anomalies;
+  if (verdict.outlier) LiveCounters::Bump(counters_.anomalies);
   verdict.transition = incidents_.Update(time, verdict.outlier, verdict.decision);
   const auto open = incidents_.open_incident();
   verdict.incident_id = open ? open->id : 0;
 
   if (options_.learn_from_anomalies || !verdict.outlier || !open) {
     window_.Push(time, x);
+    PublishOwnerBytes();
     verdict.accepted = true;
-    ++counters_.accepted;
+    LiveCounters::Bump(counters_.accepted);
     ++accepted_since_refit_;
   }
   bool drift_alarm = false;
   if (options_.drift_detection && drift_.Update(verdict.decision)) {
     drift_alarm = true;
-    ++counters_.drift_alarms;
+    LiveCounters::Bump(counters_.drift_alarms);
     drift_.Reset();
   }
   if (RefitDue(time, drift_alarm)) {
@@ -556,7 +529,7 @@ bool Detector::RefitDue(double time, bool drift_alarm) const {
 
 void Detector::PostRefit(double time, RefitReason reason) {
   {
-    std::lock_guard<std::mutex> lock(shared_->mutex);
+    MutexLock lock(&shared_->mutex);
     // Observe found no model, but the warm-up fit may have installed one since (it stores the
     // model under this mutex before it clears in_flight): a second warm-up fit would be a refit
     // that refit_every = 0 rules out.
@@ -564,7 +537,8 @@ void Detector::PostRefit(double time, RefitReason reason) {
     if (shared_->in_flight) {
       // The due refit stays due and is posted once the in-flight one is done: count it once, not
       // once per vector observed while it waits.
-      if (reason != RefitReason::kWarmup && !shared_->refit_waiting) ++counters_.refits_coalesced;
+      if (reason != RefitReason::kWarmup && !shared_->refit_waiting)
+        LiveCounters::Bump(counters_.refits_coalesced);
       if (reason != RefitReason::kWarmup) shared_->refit_waiting = true;
       if (reason == RefitReason::kDrift) drift_pending_ = true;
       return;
@@ -582,14 +556,14 @@ void Detector::PostRefit(double time, RefitReason reason) {
   input->reason = reason;
   input->time = time;
   {
-    std::lock_guard<std::mutex> lock(shared_->mutex);
+    MutexLock lock(&shared_->mutex);
     input->generation = shared_->generation;
   }
   refits_since_cold_ = cold ? 0 : refits_since_cold_ + 1;
   force_cold_ = false;
   accepted_since_refit_ = 0;
   drift_pending_ = false;
-  ++counters_.refits_started;
+  LiveCounters::Bump(counters_.refits_started);
   auto job = [shared = shared_, input] { RunRefit(*shared, *input); };
   if (executor_ == nullptr) {
     job();
@@ -628,6 +602,7 @@ void Detector::ApplyPendingOptions() {
     drift_ = PageHinkley(DriftOptions(next));
   }
   options_ = std::move(next);
+  PublishOwnerBytes();
 }
 
 void Detector::UpdateOptions(const DetectorOptions& options) {
@@ -652,7 +627,7 @@ void Detector::UpdateOptions(const DetectorOptions& options) {
 
 void Detector::Relearn() {
   {
-    std::lock_guard<std::mutex> lock(shared_->mutex);
+    MutexLock lock(&shared_->mutex);
     ++shared_->generation;
     shared_->solution_ids.clear();
     shared_->solution_alpha.resize(0);
@@ -666,14 +641,13 @@ void Detector::Relearn() {
   accepted_since_refit_ = 0;
   refits_since_cold_ = 0;
   drift_pending_ = false;
+  PublishOwnerBytes();
 }
 
 std::size_t Detector::MemoryBytes() const {
-  std::size_t bytes = sizeof(Detector) + sizeof(Shared) + window_.MemoryBytes() +
-                      transform_.MemoryBytes() + transformed_.capacity() * sizeof(double);
-  bytes += static_cast<std::size_t>(options_.open_window) * 24;
+  std::size_t bytes = owner_bytes_.load(std::memory_order_relaxed);
   if (auto m = model()) bytes += m->MemoryBytes();
-  std::lock_guard<std::mutex> lock(shared_->mutex);
+  MutexLock lock(&shared_->mutex);
   bytes += shared_->solution_ids.capacity() * sizeof(uint64_t) +
            static_cast<std::size_t>(shared_->solution_alpha.size()) * sizeof(double);
   return bytes;
@@ -686,7 +660,7 @@ DetectorState Detector::ExportState() const {
   state.next_sample_id = window_.next_id();
   state.model = model();
   {
-    std::lock_guard<std::mutex> lock(shared_->mutex);
+    MutexLock lock(&shared_->mutex);
     state.solution_ids = shared_->solution_ids;
     state.solution_alpha = shared_->solution_alpha;
   }
@@ -695,7 +669,7 @@ DetectorState Detector::ExportState() const {
   state.accepted_since_refit = accepted_since_refit_;
   state.refits_since_cold = refits_since_cold_;
   state.model_time = shared_->model_time.load();
-  state.counters = counters_;
+  state.counters = counters_.Load();
   state.transform = transform_.ExportState();
   return state;
 }
@@ -738,8 +712,9 @@ void Detector::ImportState(const DetectorState& state) {
   drift_ = std::move(drift);
   accepted_since_refit_ = state.accepted_since_refit;
   refits_since_cold_ = state.refits_since_cold;
-  counters_ = state.counters;
-  std::lock_guard<std::mutex> lock(shared_->mutex);
+  counters_.Store(state.counters);
+  PublishOwnerBytes();
+  MutexLock lock(&shared_->mutex);
   ++shared_->generation;
   shared_->solution_ids = state.solution_ids;
   shared_->solution_alpha = state.solution_alpha;

@@ -6,6 +6,8 @@
 #include <numeric>
 #include <sstream>
 
+#include "model_fit.h"
+
 namespace nuwatch {
 namespace {
 

@@ -2,7 +2,7 @@
 // Chen, Lin (JMLR 2005) and the LIBSVM implementation notes (Chang & Lin 2011) for the case where
 // every label is +1: second-order working-set selection, a two-variable analytic step, shrinking
 // with a final unshrink and re-check, and LIBSVM's rule for rho.
-#include "nuwatch/solver.h"
+#include "solver.h"
 
 #include <algorithm>
 #include <chrono>

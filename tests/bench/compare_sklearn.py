@@ -1,7 +1,7 @@
 #!/usr/bin/python3
 """nuwatch against scikit-learn's OneClassSVM on the same problem, in the same run.
 
-Usage: tests/bench/compare_sklearn.py [--nuwatch build/daemon/nuwatch] [--native BIN]
+Usage: tests/bench/compare_sklearn.py [--nuwatch build/bin/nuwatch] [--native BIN]
                                       [--n 5000] [--dims 16] [--nu 0.05] [--window 2000]
 
 Prints a table of timings and ratios, each timing the best of 3 runs (these machines are shared
@@ -33,7 +33,7 @@ def bench(binary, dims, window, nu, budget):
     runs = []
     for _ in range(REPEAT):
         out = subprocess.run([binary, "bench", "--json", "--dims", str(dims), "--window",
-                              str(window), "--nu", str(nu), "--budget", str(budget)],
+                              str(window), "--nu", str(nu), "--support-vector-budget", str(budget)],
                              check=True, capture_output=True, text=True).stdout
         runs.append(json.loads(out))
     best = dict(runs[0])
@@ -47,7 +47,7 @@ def bench(binary, dims, window, nu, budget):
 
 def main():
     p = argparse.ArgumentParser()
-    p.add_argument("--nuwatch", default="build/daemon/nuwatch")
+    p.add_argument("--nuwatch", default="build/bin/nuwatch")
     p.add_argument("--native", default="")
     p.add_argument("--n", type=int, default=5000)
     p.add_argument("--dims", type=int, default=16)
@@ -87,8 +87,8 @@ def main():
         info = None
         for _ in range(REPEAT):
             subprocess.run([a.nuwatch, "fit", "--input", data, "--output", model, "--nu",
-                            str(a.nu), "--gamma", repr(gamma), "--scale", "none", "--tol",
-                            str(a.tol), "--cache-mb", "100"], check=True, capture_output=True)
+                            str(a.nu), "--gamma", repr(gamma), "--scaler", "none", "--tolerance",
+                            str(a.tol), "--cache-bytes", str(100 << 20)], check=True, capture_output=True)
             run = json.loads(subprocess.run([a.nuwatch, "inspect", model, "--json"], check=True,
                                             capture_output=True, text=True).stdout)
             if info is None or run["fit_seconds"] < info["fit_seconds"]:

@@ -1,9 +1,9 @@
-// libFuzzer target for the wire protocol (daemon/PROTOCOL.md). Not built by CMake; from the
-// repository root:
+// libFuzzer target for the wire protocol (daemon/protocol/PROTOCOL.md). Not built by CMake; from
+// the repository root:
 //
 //   clang++ -std=c++20 -O1 -g -fsanitize=fuzzer,address,undefined \
-//     -Icore/include -I/usr/include/eigen3 -Idaemon/src \
-//     tests/fuzz/wire_protocol_fuzz.cc daemon/src/wire_protocol.cc -o /tmp/wire_protocol_fuzz
+//     -Icore/include -I/usr/include/eigen3 -Idaemon \
+//     tests/fuzz/wire_protocol_fuzz.cc daemon/protocol/wire_protocol.cc -o /tmp/wire_protocol_fuzz
 //   /tmp/wire_protocol_fuzz -max_total_time=60 -max_len=8192
 //
 // (Debian: apt-get install -y clang libclang-rt-14-dev.)
@@ -22,7 +22,7 @@
 #include <string_view>
 #include <vector>
 
-#include "wire_protocol.h"
+#include "protocol/wire_protocol.h"
 
 namespace {
 

@@ -1,7 +1,7 @@
 // Runs tests/integration/daemon_e2e_test.py, the end-to-end tests of nuwatchd with third-party
-// tools (pyzmq, an independent Python implementation of daemon/PROTOCOL.md, urllib, promtool),
-// one unittest class per test here, and asserts that it passes. The script's output is shown on
-// failure.
+// tools (pyzmq, an independent Python implementation of daemon/protocol/PROTOCOL.md, urllib,
+// promtool), one unittest class per test here, and asserts that it passes. The script's output is
+// shown on failure.
 #include <gtest/gtest.h>
 #include <sys/wait.h>
 #include <unistd.h>
@@ -14,8 +14,8 @@
 
 namespace {
 
-const std::string kNuwatchd = NUWATCH_BINARY_DIR "/daemon/nuwatchd";
-const std::string kNuwatch = NUWATCH_BINARY_DIR "/daemon/nuwatch";
+const std::string kNuwatchd = NUWATCHD_PROGRAM;
+const std::string kNuwatch = NUWATCH_PROGRAM;
 const std::string kScript = NUWATCH_SOURCE_DIR "/tests/integration/daemon_e2e_test.py";
 
 std::string Quote(const std::string& text) {

@@ -2,10 +2,10 @@
 """End-to-end tests of nuwatchd driven by third-party tools.
 
 nuwatchd runs as a real process on loopback sockets. The peer here is pyzmq (python3-zmq) with the
-wire protocol of daemon/PROTOCOL.md as implemented independently in python_codec_check.py (its
+wire protocol of daemon/protocol/PROTOCOL.md as implemented independently in python_codec_check.py (its
 encoders for ingest messages, its §9 validator for every published object); metrics are read with
 urllib over HTTP and linted by `promtool check metrics` (Debian's prometheus package). Section
-numbers ("§") refer to daemon/PROTOCOL.md.
+numbers ("§") refer to daemon/protocol/PROTOCOL.md.
 
 Every wait is bounded: sockets are polled with timeouts and files are polled until a deadline.
 Nothing sleeps to let time pass. The daemon is killed in a finally block whatever happens.

@@ -1,9 +1,10 @@
 // nuwatchd end to end: the Daemon class in-process, and the nuwatchd program as a child process,
 // on real sockets (ZeroMQ on tcp://127.0.0.1:*, the Prometheus endpoint on port 0, read back).
-// What is expected comes from daemon/PROTOCOL.md (the § numbers), config/REFERENCE.md and the
-// metric names of daemon/src/metrics.h. Nothing waits for time to pass: a test waits for the
-// messages it expects (bounded by a deadline), and where it must wait for a condition it polls it.
-#include "daemon.h"
+// What is expected comes from daemon/protocol/PROTOCOL.md (the § numbers), config/REFERENCE.md and
+// the metric names of daemon/service/metrics.h. Nothing waits for time to pass: a test waits for
+// the messages it expects (bounded by a deadline), and where it must wait for a condition it polls
+// it.
+#include "service/daemon.h"
 
 #include <fcntl.h>
 #include <gmock/gmock.h>
@@ -34,10 +35,10 @@
 #include <vector>
 #include <zmq.hpp>
 
-#include "config.h"
-#include "replay.h"
-#include "state_store.h"
-#include "wire_protocol.h"
+#include "offline/replay.h"
+#include "protocol/wire_protocol.h"
+#include "service/state_store.h"
+#include "settings/config.h"
 
 extern char** environ;
 
@@ -949,7 +950,7 @@ class Process {
   bool exited_ = false;
 };
 
-const std::string kNuwatchd = std::string(NUWATCH_BINARY_DIR) + "/daemon/nuwatchd";
+const std::string kNuwatchd = std::string(NUWATCHD_PROGRAM);
 
 std::string ReadText(const std::string& path) {
   std::ifstream in(path);

@@ -1,9 +1,9 @@
 #!/usr/bin/python3
 """A second implementation of the nuwatch wire protocol, version 1, in Python.
 
-It is an independent implementation that follows daemon/PROTOCOL.md only (section numbers below,
+It is an independent implementation that follows daemon/protocol/PROTOCOL.md only (section numbers below,
 "§", refer to it): it shares no code with the C++ codec and relies on nothing the document does not
-say, so that the C++ tests (tests/unit/daemon/wire_protocol_test.cc) check the C++ codec against a
+say, so that the C++ tests (tests/unit/protocol/wire_protocol_test.cc) check the C++ codec against a
 separate reading of the document. Only the standard library is used (struct, json, math).
 
 Usage:

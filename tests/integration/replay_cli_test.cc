@@ -1,4 +1,4 @@
-// Tests of `nuwatch replay` (daemon/tools/cmd_replay.cc) run as a program on a plant recording
+// Tests of `nuwatch replay` (daemon/cli/cmd_replay.cc) run as a program on a plant recording
 // made by `nuwatch simulate`: determinism, the output format and its relation to the input, the
 // budget, a frozen model with --refit-every 0, and one-line errors for bad input.
 // The expected values come from the detector's contract (core/include/nuwatch/detector.h): the
@@ -20,12 +20,14 @@
 #include <string>
 #include <vector>
 
+#include "nuwatch/detector_settings.h"
+
 namespace {
 
 using ::testing::AllOf;
 using ::testing::HasSubstr;
 
-const std::string kNuwatch = NUWATCH_BINARY_DIR "/daemon/nuwatch";
+const std::string kNuwatch = NUWATCH_PROGRAM;
 const std::string kHeader =
     "time,stream,state,decision,outlier,incident,support_vectors,model_version";
 constexpr int kWarmup = 720;
@@ -97,8 +99,9 @@ class ReplayCliTest : public ::testing::Test {
   // The replay of the brief's settings, with `extra` flags appended, into dir_/name.
   static std::string Replay(const std::string& name, const std::string& extra = "") {
     const std::string out = dir_ + "/" + name;
-    const RunResult r = Run("replay --input " + stream_ + " --output " + out +
-                            " --window 720 --warmup 720 --budget 64 --nu 0.02 " + extra);
+    const RunResult r =
+        Run("replay --input " + stream_ + " --output " + out +
+            " --window 720 --warmup 720 --support-vector-budget 64 --nu 0.02 " + extra);
     EXPECT_EQ(r.exit_code, 0) << r.err;
     return out;
   }
@@ -228,6 +231,55 @@ TEST_F(ReplayCliTest, BadInputExitsOneWithOneLineNamingFileAndLine) {
       HasSubstr("nu = 0"));
   // A failed replay leaves no output behind.
   EXPECT_FALSE(std::filesystem::exists(dir_ + "/x.csv"));
+}
+
+// The flags follow the detector's key table (nuwatch/detector_settings.h): one per key, named as
+// the key with '_' -> '-', as detector_options.h promises ("key for key").
+TEST_F(ReplayCliTest, EveryDetectorKeyIsAFlagNamedAsTheKey) {
+  ASSERT_EQ(Run("replay --help").exit_code, 0);
+  const std::string help = ReadFile(dir_ + "/stdout.txt");
+  for (const auto& key : nuwatch::DetectorKeys()) {
+    std::string flag = "--" + std::string(key.name);
+    std::replace(flag.begin(), flag.end(), '_', '-');
+    EXPECT_THAT(help, HasSubstr(flag + " ")) << key.name << " has no flag";
+  }
+  // The defaults shown are the table's (DetectorOptions' initialisers).
+  EXPECT_THAT(help, HasSubstr("2000"));
+  // Regression: the flags had names of their own (--budget, --drift); they are the keys' now.
+  for (const std::string old : {"--budget 64", "--drift", "--scale none", "--tol 0.01"}) {
+    const RunResult r = Run("replay --input " + stream_ + " --output " + dir_ + "/x.csv " + old);
+    EXPECT_EQ(r.exit_code, 1) << old;
+    EXPECT_THAT(r.err, HasSubstr("not expected")) << old;  // CLI11: "The following argument was
+                                                           // not expected"
+  }
+}
+
+// Most command lines let the last of a repeated flag win (common practice, e.g. GNU tools), so a
+// wrapper script can append an override. Replay is deterministic, so the run with --nu twice must
+// be byte-identical to the run with the last value alone.
+TEST_F(ReplayCliTest, TheLastRepeatedFlagWins) {
+  const std::string twice = Replay("nu_twice.csv", "--refit-every 60 --nu 0.1");
+  const std::string once = dir_ + "/nu_once.csv";
+  const RunResult r = Run("replay --input " + stream_ + " --output " + once +
+                          " --window 720 --warmup 720 --support-vector-budget 64 --nu 0.1 "
+                          "--refit-every 60");
+  ASSERT_EQ(r.exit_code, 0) << r.err;
+  EXPECT_EQ(ReadFile(twice), ReadFile(once));
+  EXPECT_NE(ReadFile(twice), ReadFile(Replay("nu_first.csv", "--refit-every 60")));
+}
+
+TEST_F(ReplayCliTest, BooleanKeysAreFlagsThatTakeAValueToo) {
+  // drift_detection = true refits on Page-Hinkley alarms, so the model versions differ from a
+  // run without it on this drifting plant; =false is the default run.
+  const std::string off = ReadFile(Replay("drift_off.csv", "--refit-every 0"));
+  EXPECT_EQ(ReadFile(Replay("drift_false.csv", "--refit-every 0 --drift-detection=false")), off);
+  EXPECT_NE(ReadFile(Replay("drift_on.csv", "--refit-every 0 --drift-detection")), off);
+  EXPECT_THAT(ExpectOneLineFailure("replay --input " + stream_ + " --output " + dir_ +
+                                   "/x.csv --drift-detection=maybe"),
+              HasSubstr("--drift-detection: 'maybe' is not true or false"));
+  EXPECT_THAT(ExpectOneLineFailure("replay --input " + stream_ + " --output " + dir_ +
+                                   "/x.csv --refit-every abc"),
+              HasSubstr("--refit-every: 'abc' is not a whole number"));
 }
 
 }  // namespace

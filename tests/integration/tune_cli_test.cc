@@ -19,9 +19,9 @@
 #include <string>
 #include <vector>
 
-#include "charts.h"
-#include "config.h"
-#include "csv_table.h"
+#include "charts/charts.h"
+#include "formats/csv_table.h"
+#include "settings/config.h"
 
 namespace nuwatch {
 namespace {
@@ -29,7 +29,7 @@ namespace {
 using ::testing::HasSubstr;
 using ::testing::Not;
 
-const std::string kBinary = std::string(NUWATCH_BINARY_DIR) + "/daemon/nuwatch";
+const std::string kBinary = std::string(NUWATCH_PROGRAM);
 
 std::string ReadBytes(const std::string& path) {
   std::ifstream in(path, std::ios::binary);
@@ -76,7 +76,9 @@ class TuneCliTest : public ::testing::Test {
   static std::string Incidents() { return *dir_ + "/plant/incidents.csv"; }
   // Five hours of one-minute vectors per window: the first model comes after 300 of the 2880
   // vectors of each pump, and each replay takes a fraction of a second.
-  static std::string SmallDetector() { return " --warmup 300 --refit-every 30 --budget 64"; }
+  static std::string SmallDetector() {
+    return " --warmup 300 --refit-every 30 --support-vector-budget 64";
+  }
   // `extra` may give its own --window list; else the window is 300.
   static std::string Tune(const std::string& report, const std::string& extra) {
     const bool window_given = extra.find("--window") != std::string::npos;
@@ -132,7 +134,7 @@ void ExpectPicture(const std::string& path) {
 const std::vector<std::string> kMetricColumns = {"nu",
                                                  "gamma",
                                                  "window",
-                                                 "budget",
+                                                 "support_vector_budget",
                                                  "point_precision",
                                                  "point_recall",
                                                  "point_f1",

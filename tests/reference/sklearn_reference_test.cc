@@ -1,7 +1,7 @@
 // nuwatch's solver and model against scikit-learn's OneClassSVM (LIBSVM inside; Debian
 // python3-sklearn 1.2, run with /usr/bin/python3). The conventions are in methods.md: LIBSVM solves
-// the same problem scaled by nu l, so our decision f times nu l is scikit-learn's decision_function,
-// our rho times nu l is its offset_, and our alpha times nu l is its dual_coef_.
+// the same problem scaled by nu l, so our decision f times nu l is scikit-learn's
+// decision_function, our rho times nu l is its offset_, and our alpha times nu l is its dual_coef_.
 #include <gtest/gtest.h>
 
 #include <cstdlib>
@@ -12,8 +12,9 @@
 #include <string>
 #include <vector>
 
+#include "model_fit.h"
 #include "nuwatch/model.h"
-#include "nuwatch/solver.h"
+#include "solver.h"
 
 namespace nuwatch {
 namespace {
@@ -63,9 +64,8 @@ Reference RunScikitLearn(const std::string& dataset, double nu, const std::strin
   tolerance << tol;
   const std::string command = std::string(NUWATCH_PYTHON) + " " + NUWATCH_SOURCE_DIR +
                               "/tests/reference/sklearn_oneclass.py --dataset " + dataset +
-                              " --nu " + std::to_string(nu) + " --kernel " + kernel +
-                              " --gamma " + gamma + " --tol " + tolerance.str() + " --out " +
-                              dir;
+                              " --nu " + std::to_string(nu) + " --kernel " + kernel + " --gamma " +
+                              gamma + " --tol " + tolerance.str() + " --out " + dir;
   EXPECT_EQ(std::system(command.c_str()), 0) << command;
   Reference r;
   r.train = ToMatrix(ReadRows(dir + "/train.txt"));
@@ -111,8 +111,8 @@ TEST_P(ScikitLearnAgreement, DecisionValuesRhoAndSupportVectorsMatch) {
   options.tolerance = 1e-7;
   const Scaler identity = Scaler::FromParameters(ScalerType::kNone, VectorD::Zero(ref.train.cols()),
                                                  VectorD::Ones(ref.train.cols()));
-  WindowFit fit = FitScaled(ref.train, identity, kernel, *GammaSpec::Parse(c.gamma), options,
-                            nullptr, 1);
+  WindowFit fit =
+      FitScaled(ref.train, identity, kernel, *GammaSpec::Parse(c.gamma), options, nullptr, 1);
   ASSERT_TRUE(fit.solution.converged);
   const double nu_l = c.nu * static_cast<double>(ref.train.rows());
 
@@ -160,15 +160,16 @@ TEST_P(ScikitLearnAgreement, DecisionValuesRhoAndSupportVectorsMatch) {
 
 INSTANTIATE_TEST_SUITE_P(
     DataSets, ScikitLearnAgreement,
-    ::testing::Values(Case{"blobs", 0.05, "rbf", "scale"}, Case{"blobs", 0.3, "rbf", "0.5"},
-                      Case{"cube16", 0.1, "rbf", "scale"}, Case{"cube16", 0.02, "rbf", "scale"},
-                      // Real data bundled with scikit-learn (Fisher's iris; Wisconsin breast cancer).
-                      Case{"iris", 0.1, "rbf", "scale"}, Case{"breast_cancer", 0.05, "rbf", "scale"},
-                      // For linear and polynomial kernels nu l is kept non-integer: with an integer nu l the
-                      // solution can have no free coefficient, and then rho is any point of an
-                      // interval (methods.md); LIBSVM's choice there depends on rounding.
-                      Case{"blobs", 0.1925, "linear", "scale"}, Case{"blobs", 0.1325, "poly", "scale"},
-                      Case{"cube16", 0.5, "rbf", "scale"}),
+    ::testing::Values(
+        Case{"blobs", 0.05, "rbf", "scale"}, Case{"blobs", 0.3, "rbf", "0.5"},
+        Case{"cube16", 0.1, "rbf", "scale"}, Case{"cube16", 0.02, "rbf", "scale"},
+        // Real data bundled with scikit-learn (Fisher's iris; Wisconsin breast cancer).
+        Case{"iris", 0.1, "rbf", "scale"}, Case{"breast_cancer", 0.05, "rbf", "scale"},
+        // For linear and polynomial kernels nu l is kept non-integer: with an integer nu l the
+        // solution can have no free coefficient, and then rho is any point of an
+        // interval (methods.md); LIBSVM's choice there depends on rounding.
+        Case{"blobs", 0.1925, "linear", "scale"}, Case{"blobs", 0.1325, "poly", "scale"},
+        Case{"cube16", 0.5, "rbf", "scale"}),
     [](const ::testing::TestParamInfo<Case>& info) {
       std::string name = info.param.dataset + "_" + info.param.kernel + "_nu" +
                          std::to_string(static_cast<int>(info.param.nu * 1000)) + "_" +
@@ -178,8 +179,8 @@ INSTANTIATE_TEST_SUITE_P(
       return name;
     });
 
-// Duplicated rows make alpha non-unique (methods.md): compare the objective and the decision values,
-// not the alphas.
+// Duplicated rows make alpha non-unique (methods.md): compare the objective and the decision
+// values, not the alphas.
 TEST(ScikitLearnAgreementDuplicates, ObjectiveAndDecisionMatchWhenAlphaIsNotUnique) {
   Reference ref = RunScikitLearn("duplicates", 0.1, "rbf", "scale");
   Kernel kernel;

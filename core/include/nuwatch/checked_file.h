@@ -1,8 +1,11 @@
 // The pieces shared by nuwatch's binary files (the model file, the daemon's state files): a byte
-// writer and a bounds-checked byte reader for little-endian payloads, and the checksummed
-// envelope around a payload:
+// writer and a bounds-checked byte reader for little-endian payloads, the checksummed envelope
+// around a payload and durable file replacement:
 //   magic (4 bytes) | u32 format_version | u64 payload_bytes | payload | u32 CRC-32 (IEEE, as
-//   zlib: Crc32 in nuwatch/model_file.h) of the payload.
+//   zlib computes it) of the payload.
+// Part of core's API on purpose: a program that keeps its own files beside model files (nuwatchd's
+// state store) writes them with the same envelope and the same durability, and a model embedded
+// in such a file (EncodeModel) keeps its own.
 // Values are stored in the machine's byte order; x86-64 and aarch64, the supported targets, are
 // little-endian.
 //
@@ -157,5 +160,11 @@ auto DecodeChecksummed(const uint8_t* data, std::size_t size, const char (&magic
     throw Error(e.what());
   }
 }
+
+// Durable file replacement of `path` by `bytes`: a temporary file in the same directory, fsync,
+// rename over `path`, fsync of the directory. A reader sees the old file or the new one, never
+// a mixture, even after a crash. Throws ModelFileError naming the path on failure (the temporary
+// file is removed).
+void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size);
 
 }  // namespace nuwatch

@@ -28,6 +28,7 @@
 // Refit jobs touch only state shared through an internal mutex and the atomic model slot.
 #pragma once
 
+#include <atomic>
 #include <cmath>
 #include <cstdint>
 #include <functional>
@@ -40,6 +41,7 @@
 #include <vector>
 
 #include "nuwatch/detector_options.h"
+#include "nuwatch/detector_settings.h"
 #include "nuwatch/incident_tracker.h"
 #include "nuwatch/model.h"
 #include "nuwatch/page_hinkley.h"
@@ -98,6 +100,8 @@ struct Verdict {
   int support_vectors = 0;
 };
 
+// A snapshot of a detector's counters. Each count is exact at some moment; taken from another
+// thread while the owner observes, two counts may be one vector apart.
 struct DetectorCounters {
   int64_t vectors = 0;
   int64_t anomalies = 0;
@@ -164,11 +168,13 @@ class Detector {
   const DetectorOptions& options() const { return options_; }
   int64_t window_size() const { return window_.size(); }
   std::optional<TrackedIncident> open_incident() const { return incidents_.open_incident(); }
-  DetectorCounters counters() const { return counters_; }
+  // Any thread.
+  DetectorCounters counters() const { return counters_.Load(); }
   RefitReport last_refit() const;
   double model_time() const;
 
-  // Bytes held for this stream: window, model, last solution, incident ring.
+  // Bytes held for this stream: window, model, last solution, incident ring. Any thread; the
+  // owner-state part is as of the owner's last Observe (or other owner call).
   std::size_t MemoryBytes() const;
 
   // Requires for Import: dimensions matching dims(); throws PreconditionError otherwise (the
@@ -183,6 +189,20 @@ class Detector {
   bool RefitDue(double time, bool drift_alarm) const;
   void PostRefit(double time, RefitReason reason);
   void ApplyPendingOptions();
+  // Publishes the bytes of the owner's state for MemoryBytes (owner thread).
+  void PublishOwnerBytes();
+
+  // The counters: written by the owner thread only, read by any thread. One writer, so an
+  // increment is a relaxed load and store (no read-modify-write on the hot path).
+  struct LiveCounters {
+    std::atomic<int64_t> vectors{0}, anomalies{0}, accepted{0}, refits_started{0},
+        refits_coalesced{0}, drift_alarms{0}, history_vectors{0}, history_resets{0};
+    static void Bump(std::atomic<int64_t>& counter) {
+      counter.store(counter.load(std::memory_order_relaxed) + 1, std::memory_order_relaxed);
+    }
+    DetectorCounters Load() const;
+    void Store(const DetectorCounters& counters);
+  };
 
   DetectorOptions options_;
   std::optional<DetectorOptions> pending_options_;
@@ -198,11 +218,9 @@ class Detector {
   int64_t refits_since_cold_ = 0;
   bool drift_pending_ = false;
   bool force_cold_ = false;
-  DetectorCounters counters_;
+  LiveCounters counters_;
+  std::atomic<std::size_t> owner_bytes_{0};  // see PublishOwnerBytes
 };
-
-// Validates detector options; throws PreconditionError "WHERE: key = value ..." naming the key.
-void CheckDetectorOptions(const DetectorOptions& options, std::string_view where);
 
 // The last solution of a window, for a warm start: the base model's scaler and kernel are kept,
 // and the alphas are mapped onto the new window by sample id (MapWarmStart).

@@ -1,5 +1,7 @@
-// The settings of one stream's detector. The daemon's TOML [detector] section and the replay and
-// tune command lines map onto this struct key for key (the key names are the member names).
+// The settings of one stream's detector. The daemon's TOML [detector] section and the fit, replay
+// and tune command lines map onto this struct key for key (the key names are the member names).
+// The member initialisers are the defaults; DetectorKeys() in nuwatch/detector_settings.h is the
+// table of the keys (range, unit, documentation): a new member needs its entry there.
 // Thread safety: a plain value type.
 #pragma once
 
@@ -60,7 +62,7 @@ struct DetectorOptions {
   // gap in time larger than max_gap_seconds (> 0) refills the history. Changing any of these
   // changes the feature space: the stream relearns.
   int lags = 0;
-  std::vector<int> rolling_windows;
+  std::vector<int64_t> rolling_windows;
   std::vector<std::string> rolling_statistics = {"mean", "std", "slope"};
   double max_gap_seconds = 0;
 

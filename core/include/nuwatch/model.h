@@ -18,7 +18,6 @@
 #include "nuwatch/feature_transform.h"
 #include "nuwatch/kernel.h"
 #include "nuwatch/scaler.h"
-#include "nuwatch/solver.h"
 #include "nuwatch/types.h"
 
 namespace nuwatch {
@@ -148,16 +147,5 @@ struct FitOptions {
 // Requires: x.rows() >= 1, finite values; options valid (PreconditionError names the value).
 Model FitModel(const MatrixD& x, const FitOptions& options,
                std::vector<std::string> feature_names = {});
-
-// The fit of an already scaled window with a given scaler and kernel, optionally warm-started.
-// Returns the model and the full alpha over the rows (for the next warm start).
-struct WindowFit {
-  std::shared_ptr<const Model> model;
-  SolverResult solution;
-};
-WindowFit FitScaled(const MatrixD& z, const Scaler& scaler, const Kernel& kernel,
-                    const GammaSpec& gamma_spec, const SolverOptions& solver,
-                    const VectorD* initial_alpha, uint64_t version,
-                    std::vector<std::string> feature_names = {});
 
 }  // namespace nuwatch

@@ -2,7 +2,7 @@
 //
 // Layout (little-endian): magic "NUWM" | u32 format_version | u64 payload_bytes | payload |
 // u32 CRC-32 (IEEE) of the payload. The payload holds the ModelParts field by field.
-// Writes are atomic: temp file in the same directory, fsync, rename, fsync of the directory.
+// Writes are atomic (WriteFileAtomically in nuwatch/checked_file.h).
 // Thread safety: reentrant.
 #pragma once
 
@@ -26,11 +26,5 @@ Model DecodeModel(const uint8_t* data, std::size_t size);
 // Throws ModelFileError naming the path on any I/O failure.
 void SaveModel(const Model& model, const std::string& path);
 Model LoadModel(const std::string& path);
-
-// Durable file replacement of `path` by `bytes` (temp, fsync, rename, fsync dir). Throws
-// ModelFileError naming the path on failure.
-void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size);
-// CRC-32 (IEEE 802.3 polynomial, reflected), as zlib computes it.
-uint32_t Crc32(const uint8_t* data, std::size_t size, uint32_t crc = 0);
 
 }  // namespace nuwatch

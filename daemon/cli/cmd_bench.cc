@@ -1,0 +1,88 @@
+// nuwatch bench: capacity planning on synthetic data (nuwatch/capacity.h): cold fit, warm refit
+// after a 10% slide, compression to the budget, batch and single-vector scoring, bytes per model
+// and per stream.
+#include <iostream>
+#include <memory>
+#include <nlohmann/json.hpp>
+
+#include "cli/cli_util.h"
+#include "nuwatch/capacity.h"
+
+namespace nuwatch::cli {
+namespace {
+
+struct BenchArgs {
+  CapacityOptions capacity;
+  bool json = false;
+};
+
+void RunBench(const BenchArgs& args) {
+  const CapacityOptions& a = args.capacity;
+  if (a.dims < 1 || a.window < 10 || !(a.nu > 0 && a.nu <= 1) || a.support_vector_budget < 1)
+    throw CommandError(
+        "need --dims >= 1, --window >= 10, --nu in (0, 1], --support-vector-budget >= 1");
+  const CapacityReport r = MeasureCapacity(a);
+
+  nlohmann::ordered_json j;
+  j["dims"] = a.dims;
+  j["window"] = a.window;
+  j["nu"] = a.nu;
+  j["budget"] = a.support_vector_budget;
+  j["gamma"] = r.gamma;
+  j["fit_seconds"] = r.fit_seconds;
+  j["fit_iterations"] = r.fit_iterations;
+  j["support_vectors_fitted"] = r.support_vectors_fitted;
+  j["refit_seconds"] = r.refit_seconds;
+  j["refit_iterations"] = r.refit_iterations;
+  j["cold_refit_seconds"] = r.cold_refit_seconds;
+  j["warm_objective"] = r.warm_objective;
+  j["cold_objective"] = r.cold_objective;
+  j["compress_seconds"] = r.compress_seconds;
+  j["compressed_from"] = r.compressed_from;
+  j["support_vectors"] = r.support_vectors;
+  j["score_vectors_per_second"] = r.score_vectors_per_second;
+  j["score_p50_seconds"] = r.score_p50_seconds;
+  j["score_p99_seconds"] = r.score_p99_seconds;
+  j["model_bytes"] = r.model_bytes;
+  j["stream_bytes"] = r.stream_bytes;
+  j["stream_bytes_limit"] = r.stream_bytes_limit;
+  j["checksum"] = r.checksum;
+  if (args.json) {
+    std::cout << j.dump(2) << "\n";
+    return;
+  }
+  std::printf("nuwatch bench: d = %d, window = %lld, nu = %g, budget = %lld (gamma %.4g)\n", a.dims,
+              static_cast<long long>(a.window), a.nu,
+              static_cast<long long>(a.support_vector_budget), r.gamma);
+  std::printf("  cold fit            %10.4f s  (%lld iterations, %d support vectors)\n",
+              r.fit_seconds, static_cast<long long>(r.fit_iterations), r.support_vectors_fitted);
+  std::printf(
+      "  warm refit (10%%)    %10.4f s  (%lld iterations; cold on the same window %.4f s)\n",
+      r.refit_seconds, static_cast<long long>(r.refit_iterations), r.cold_refit_seconds);
+  std::printf("  compress %lld -> %d %8.4f s\n", static_cast<long long>(r.compressed_from),
+              r.support_vectors, r.compress_seconds);
+  std::printf("  batch scoring       %10.0f vectors/s\n", r.score_vectors_per_second);
+  std::printf("  single vector       p50 %.2f us, p99 %.2f us\n", r.score_p50_seconds * 1e6,
+              r.score_p99_seconds * 1e6);
+  std::printf("  model bytes         %10zu\n", r.model_bytes);
+  std::printf("  stream bytes        %10zu  (1.5 x (window x d x 8 + budget x d x 4) = %.0f)\n",
+              r.stream_bytes, r.stream_bytes_limit);
+}
+
+void AddBenchCommand(CLI::App& app) {
+  auto args = std::make_shared<BenchArgs>();
+  CapacityOptions& c = args->capacity;
+  CLI::App* sub = app.add_subcommand("bench", "Capacity planning on synthetic Gaussian data");
+  sub->add_option("--dims", c.dims, "Features per vector")->capture_default_str();
+  sub->add_option("--window", c.window, "Training window (vectors)")->capture_default_str();
+  sub->add_option("--nu", c.nu, "nu")->capture_default_str();
+  sub->add_option("--support-vector-budget", c.support_vector_budget, "Support-vector budget")
+      ->capture_default_str();
+  sub->add_option("--seed", c.seed, "Seed of the synthetic data")->capture_default_str();
+  sub->add_flag("--json", args->json, "Print one JSON object");
+  sub->callback([args] { RunBench(*args); });
+}
+
+}  // namespace
+NUWATCH_REGISTER_COMMAND(40, AddBenchCommand);
+}  // namespace nuwatch::cli

@@ -1,0 +1,67 @@
+// nuwatch inspect: what a model file holds.
+#include <iostream>
+#include <memory>
+#include <nlohmann/json.hpp>
+
+#include "cli/cli_util.h"
+#include "nuwatch/model.h"
+#include "nuwatch/model_file.h"
+
+namespace nuwatch::cli {
+namespace {
+
+struct InspectArgs {
+  std::string model;
+  bool json = false;
+};
+
+void RunInspect(const InspectArgs& a) {
+  Model model = LoadModel(a.model);
+  const ModelParts& p = model.parts();
+  nlohmann::ordered_json j;
+  j["format_version"] = kModelFormatVersion;
+  j["model_version"] = p.version;
+  j["kernel"] = std::string(KernelName(p.kernel.type));
+  j["gamma"] = p.kernel.gamma;
+  j["gamma_rule"] = p.gamma_spec.ToString();
+  if (p.kernel.type == KernelType::kPolynomial) {
+    j["degree"] = p.kernel.degree;
+    j["coef0"] = p.kernel.coef0;
+  }
+  j["nu"] = p.nu;
+  j["dims"] = model.dims();
+  j["scaler"] = std::string(ScalerName(p.scaler.type()));
+  j["feature_names"] = p.feature_names;
+  j["n_train"] = p.training.n_train;
+  j["n_support"] = model.num_support();
+  j["n_support_fitted"] = p.training.n_support;
+  j["n_bounded"] = p.training.n_bounded;
+  j["rho"] = p.rho;
+  j["iterations"] = p.training.iterations;
+  j["converged"] = p.training.converged;
+  j["objective"] = p.training.objective;
+  j["fit_seconds"] = p.training.seconds;
+  j["compressed_from"] = p.compression.support_vectors_before;
+  j["weight_degradation"] = p.compression.weight_degradation;
+  j["model_bytes"] = model.MemoryBytes();
+  if (a.json) {
+    std::cout << j.dump(2) << "\n";
+    return;
+  }
+  for (const auto& [key, value] : j.items()) {
+    std::cout << key << std::string(key.size() < 22 ? 22 - key.size() : 1, ' ')
+              << (value.is_string() ? value.get<std::string>() : value.dump()) << "\n";
+  }
+}
+
+void AddInspectCommand(CLI::App& app) {
+  auto args = std::make_shared<InspectArgs>();
+  CLI::App* sub = app.add_subcommand("inspect", "Show what a model file holds");
+  sub->add_option("model", args->model, "Model file")->required();
+  sub->add_flag("--json", args->json, "Print one JSON object");
+  sub->callback([args] { RunInspect(*args); });
+}
+
+}  // namespace
+NUWATCH_REGISTER_COMMAND(30, AddInspectCommand);
+}  // namespace nuwatch::cli

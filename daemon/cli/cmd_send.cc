@@ -1,0 +1,737 @@
+// nuwatch send: the rows of a recorded stream file, or rows piped in on standard input, to a
+// daemon's ingest socket as daemon/protocol/PROTOCOL.md ingest messages (two frames: stream key,
+// payload), paced at a fixed rate.
+//
+// A file is read and checked whole before the first message goes out, so a bad row never leaves a
+// half-sent file behind. Standard input is read line by line and each row is sent as soon as it
+// arrives (`nuwatch simulate --live | nuwatch send --input -`): a batch that is not yet full is
+// sent whenever the pipe has nothing more to read at the moment, so batching never holds a live
+// row back waiting for rows that have not been produced yet.
+#include <poll.h>
+#include <unistd.h>
+
+#include <algorithm>
+#include <cerrno>
+#include <charconv>
+#include <chrono>
+#include <cmath>
+#include <csignal>
+#include <cstdio>
+#include <cstring>
+#include <limits>
+#include <memory>
+#include <optional>
+#include <span>
+#include <string>
+#include <string_view>
+#include <thread>
+#include <unordered_map>
+#include <vector>
+#include <zmq.hpp>
+
+#include "cli/cli_util.h"
+#include "cli/commands.h"
+#include "formats/csv_table.h"
+#include "formats/timestamps.h"
+#include "offline/replay.h"
+#include "protocol/wire_protocol.h"
+
+namespace nuwatch::cli {
+namespace {
+
+using Clock = std::chrono::steady_clock;
+
+struct SendArguments {
+  std::string connect;
+  std::string input;
+  std::string stream;
+  std::string rate = "0";
+  std::string format = "json";
+  std::string dtype = "f64";
+  std::string batch = "1";
+  std::string linger = "5s";
+};
+
+// The arguments after parsing and range checks.
+struct SendSettings {
+  std::string endpoint;
+  std::string input;  // a path, or "-" for standard input
+  std::string default_stream;
+  double rate = 0;  // vectors per second; 0: as fast as the socket takes them
+  PayloadFormat format = PayloadFormat::kJson;
+  Dtype dtype = Dtype::kFloat64;
+  int batch = 1;
+  std::chrono::milliseconds linger{5000};
+  std::string linger_text = "5s";
+};
+
+volatile std::sig_atomic_t stop_requested = 0;
+extern "C" void RequestSendStop(int) { stop_requested = 1; }
+
+// SIGINT and SIGTERM end the run after the message being sent, for the lifetime of this object.
+// Installed without SA_RESTART so that a blocking wait returns at once with EINTR.
+class StopSignals {
+ public:
+  StopSignals() {
+    stop_requested = 0;
+    struct sigaction action {};
+    action.sa_handler = RequestSendStop;
+    sigemptyset(&action.sa_mask);
+    action.sa_flags = 0;
+    sigaction(SIGINT, &action, &previous_int_);
+    sigaction(SIGTERM, &action, &previous_term_);
+  }
+  ~StopSignals() {
+    sigaction(SIGINT, &previous_int_, nullptr);
+    sigaction(SIGTERM, &previous_term_, nullptr);
+  }
+  StopSignals(const StopSignals&) = delete;
+  StopSignals& operator=(const StopSignals&) = delete;
+
+ private:
+  struct sigaction previous_int_ {};
+  struct sigaction previous_term_ {};
+};
+
+double ParseNumberFlag(const std::string& flag, const std::string& text) {
+  double value = 0;
+  const char* end = text.data() + text.size();
+  const auto [ptr, error] = std::from_chars(text.data(), end, value);
+  if (text.empty() || error != std::errc() || ptr != end || !std::isfinite(value))
+    throw CommandError(flag + ": '" + text + "' is not a number");
+  return value;
+}
+
+SendSettings ToSettings(const SendArguments& args) {
+  SendSettings settings;
+  settings.endpoint = args.connect;
+  settings.input = args.input;
+  settings.default_stream = args.stream;
+  settings.rate = ParseNumberFlag("--rate", args.rate);
+  // Below a vector every 1000 s the schedule's arithmetic would stop meaning anything useful.
+  if (settings.rate < 0 || (settings.rate > 0 && settings.rate < 1e-3))
+    throw CommandError("--rate: " + args.rate +
+                       " must be 0 (as fast as possible) or at least 0.001 vectors per second");
+  if (args.format == "json") {
+    settings.format = PayloadFormat::kJson;
+  } else if (args.format == "binary") {
+    settings.format = PayloadFormat::kBinary;
+  } else {
+    throw CommandError("--format: '" + args.format + "' is neither json nor binary");
+  }
+  if (args.dtype == "f64") {
+    settings.dtype = Dtype::kFloat64;
+  } else if (args.dtype == "f32") {
+    settings.dtype = Dtype::kFloat32;
+  } else {
+    throw CommandError("--dtype: '" + args.dtype + "' is neither f64 nor f32");
+  }
+  if (args.dtype != "f64" && settings.format != PayloadFormat::kBinary)
+    throw CommandError("--dtype only applies with --format binary");
+  const double batch = ParseNumberFlag("--batch", args.batch);
+  // The protocol's default max_vectors_per_message (PROTOCOL.md §7): a larger batch would be
+  // rejected by a daemon with default limits.
+  const WireLimits defaults;
+  if (batch != std::floor(batch) || batch < 1 || batch > defaults.max_vectors_per_message)
+    throw CommandError("--batch: " + args.batch + " is not a whole number in 1.." +
+                       std::to_string(defaults.max_vectors_per_message));
+  settings.batch = static_cast<int>(batch);
+  const std::optional<double> linger = ParseDuration(args.linger);
+  if (!linger || *linger > 3600)
+    throw CommandError("--linger: '" + args.linger +
+                       "' is not a duration from 0 to 1h (e.g. 0, 0.5s, 5s, 1m)");
+  settings.linger = std::chrono::milliseconds(static_cast<int64_t>(std::llround(*linger * 1000)));
+  settings.linger_text = args.linger;
+  if (settings.endpoint.empty()) throw CommandError("--connect: the endpoint is empty");
+  return settings;
+}
+
+std::string KeyError(std::string_view key) {
+  return "stream key '" + std::string(key) +
+         "' is not valid (1 to 128 bytes of A-Z a-z 0-9 . _ : / -, daemon/protocol/PROTOCOL.md §3)";
+}
+
+// Ensures: "" when every value fits a binary32, else a message naming the first that does not.
+std::string Float32Overflow(std::span<const double> values,
+                            const std::vector<std::string>& feature_names) {
+  constexpr double kMaxFloat = std::numeric_limits<float>::max();
+  for (std::size_t j = 0; j < values.size(); ++j) {
+    // Values within half an ulp above FLT_MAX still round to FLT_MAX; a little beyond it they round
+    // to infinity, which the protocol rejects. Casting and testing is exact either way.
+    if (std::fabs(values[j]) > kMaxFloat && !std::isfinite(static_cast<float>(values[j])))
+      return "column " + feature_names[j] + ": " + FormatNumber(values[j]) +
+             " does not fit a 32-bit float (use --dtype f64)";
+  }
+  return "";
+}
+
+// Owns the PUSH socket: buffers vectors per stream up to the batch size, paces them, encodes and
+// sends. Not thread-safe (one thread drives it, as ZeroMQ requires for its socket).
+class Sender {
+ public:
+  Sender(const SendSettings& settings, int dims)
+      : settings_(settings), dims_(dims), context_(1), socket_(context_, zmq::socket_type::push) {
+    socket_.set(zmq::sockopt::linger, static_cast<int>(settings.linger.count()));
+    try {
+      socket_.connect(settings.endpoint);
+    } catch (const zmq::error_t& e) {
+      throw CommandError("--connect: cannot connect to '" + settings.endpoint + "': " + e.what());
+    }
+  }
+
+  // Queues one vector of `stream` (whose key the caller has validated), first waiting until it is
+  // due at the configured rate; sends the stream's batch once it is full. Returns false when a stop
+  // was requested (the vector is then not queued).
+  bool Add(const std::string& stream, double time, std::span<const double> values) {
+    if (!WaitUntilDue(vectors_queued_)) return false;
+    auto [it, inserted] = pending_.try_emplace(stream);
+    if (inserted) order_.push_back(stream);
+    Pending& pending = it->second;
+    pending.times.push_back(time);
+    pending.values.insert(pending.values.end(), values.begin(), values.end());
+    ++vectors_queued_;
+    if (static_cast<int>(pending.times.size()) >= settings_.batch) return SendPending(it->first);
+    return true;
+  }
+
+  // Sends every partly filled batch. Returns false when a stop was requested.
+  bool SendAllPending() {
+    for (const std::string& stream : order_)
+      if (!SendPending(stream)) return false;
+    return true;
+  }
+
+  int64_t vectors_queued() const { return vectors_queued_; }
+  int64_t vectors_sent() const { return vectors_sent_; }
+  int64_t messages_sent() const { return messages_sent_; }
+  std::size_t streams() const { return order_.size(); }
+
+  // Closes the socket and waits up to the linger time for the queued messages to leave. Returns
+  // false when they did not all leave in time.
+  // After an interruption the wait is cut to at most a second: the user asked to stop. With
+  // --linger 0 the queue is dropped at once, by request, and reported as delivered.
+  bool Close(bool interrupted) {
+    const std::chrono::milliseconds linger =
+        interrupted ? std::min(settings_.linger, std::chrono::milliseconds(1000))
+                    : settings_.linger;
+    socket_.set(zmq::sockopt::linger, static_cast<int>(linger.count()));
+    const auto started = Clock::now();
+    socket_.close();
+    context_.close();
+    // zmq_ctx_term returns as soon as everything queued has left, and only at the linger deadline
+    // when something is still queued, so reaching the deadline means messages were left behind.
+    return linger.count() == 0 || Clock::now() - started < linger - std::chrono::milliseconds(20);
+  }
+
+ private:
+  struct Pending {
+    std::vector<double> times;
+    std::vector<double> values;
+  };
+
+  // Vector `index` (0-based) is due `index / rate` seconds after the first: computed from the
+  // index, not by adding up intervals, so the pace does not drift however long the run.
+  bool WaitUntilDue(int64_t index) {
+    if (stop_requested) return false;
+    if (index == 0) start_ = Clock::now();
+    if (settings_.rate == 0) return true;
+    const auto due = start_ + std::chrono::duration_cast<Clock::duration>(
+                                  std::chrono::duration<double>(index / settings_.rate));
+    while (true) {
+      if (stop_requested) return false;
+      const auto now = Clock::now();
+      if (now >= due) return true;
+      // Short naps so that Ctrl-C is honoured promptly even at a slow rate.
+      std::this_thread::sleep_for(
+          std::min<Clock::duration>(due - now, std::chrono::milliseconds(100)));
+    }
+  }
+
+  bool SendPending(const std::string& stream) {
+    Pending& pending = pending_[stream];
+    if (pending.times.empty()) return true;
+    try {
+      if (settings_.format == PayloadFormat::kJson) {
+        EncodeJsonPayload(pending.times, pending.values.data(), dims_, &payload_);
+      } else {
+        EncodeBinaryPayload(pending.times, pending.values.data(), dims_, settings_.dtype,
+                            &payload_);
+      }
+    } catch (const PreconditionError& e) {
+      throw CommandError(std::string("cannot encode a message for stream ") + stream + ": " +
+                         e.what());
+    }
+    if (!SendFrames(stream, payload_)) return false;
+    vectors_sent_ += static_cast<int64_t>(pending.times.size());
+    ++messages_sent_;
+    pending.times.clear();
+    pending.values.clear();
+    return true;
+  }
+
+  // Both frames, or neither when a stop is requested before the first one could go out.
+  bool SendFrames(std::string_view key, std::string_view payload) {
+    const auto blocked_since = Clock::now();
+    bool told_waiting = false;
+    while (true) {
+      if (stop_requested) return false;
+      try {
+        if (socket_.send(zmq::buffer(key), zmq::send_flags::sndmore | zmq::send_flags::dontwait))
+          break;
+        // The queue is full (or no peer ever connected): wait until the socket takes more.
+        zmq::pollitem_t item{socket_.handle(), 0, ZMQ_POLLOUT, 0};
+        zmq::poll(&item, 1, std::chrono::milliseconds(200));
+      } catch (const zmq::error_t& e) {
+        if (e.num() != EINTR) throw CommandError(std::string("send failed: ") + e.what());
+      }
+      if (!told_waiting && Clock::now() - blocked_since > std::chrono::seconds(3)) {
+        std::fprintf(stderr,
+                     "%snuwatch send: waiting for %s to take messages (is nuwatchd "
+                     "running?)\n",
+                     ::isatty(STDERR_FILENO) == 1 ? "\n" : "", settings_.endpoint.c_str());
+        told_waiting = true;
+      }
+    }
+    // ZeroMQ takes the later frames of a multipart message once it took the first; the loop only
+    // guards against a signal interrupting the call.
+    while (true) {
+      try {
+        socket_.send(zmq::buffer(payload), zmq::send_flags::none);
+        return true;
+      } catch (const zmq::error_t& e) {
+        if (e.num() != EINTR) throw CommandError(std::string("send failed: ") + e.what());
+      }
+    }
+  }
+
+  const SendSettings& settings_;
+  const int dims_;
+  zmq::context_t context_;
+  zmq::socket_t socket_;
+  std::unordered_map<std::string, Pending> pending_;
+  std::vector<std::string> order_;  // streams in order of first appearance
+  std::string payload_;             // reused: stops allocating once grown to the largest message
+  Clock::time_point start_ = Clock::now();
+  int64_t vectors_queued_ = 0;
+  int64_t vectors_sent_ = 0;
+  int64_t messages_sent_ = 0;
+};
+
+// A progress line on stderr, redrawn at most twice a second, when stderr is a terminal.
+class Progress {
+ public:
+  explicit Progress(int64_t total) : total_(total), enabled_(::isatty(STDERR_FILENO) == 1) {}
+
+  void Update(Sender& sender) {
+    if (!enabled_) return;
+    const auto now = Clock::now();
+    if (now - last_ < std::chrono::milliseconds(500)) return;
+    last_ = now;
+    const double elapsed = std::chrono::duration<double>(now - started_).count();
+    const int64_t done = sender.vectors_sent();
+    if (total_ > 0) {
+      std::fprintf(stderr, "\rnuwatch send: %lld / %lld vectors (%.0f%%), %.0f/s   ",
+                   static_cast<long long>(done), static_cast<long long>(total_),
+                   100.0 * static_cast<double>(done) / static_cast<double>(total_),
+                   elapsed > 0 ? static_cast<double>(done) / elapsed : 0.0);
+    } else {
+      std::fprintf(stderr, "\rnuwatch send: %lld vectors of %zu streams, %.0f/s   ",
+                   static_cast<long long>(done), sender.streams(),
+                   elapsed > 0 ? static_cast<double>(done) / elapsed : 0.0);
+    }
+    shown_ = true;
+  }
+
+  // Ends the progress line, if one was drawn, so that the summary starts on a line of its own.
+  void Finish() {
+    if (shown_) std::fputc('\n', stderr);
+    shown_ = false;
+  }
+
+ private:
+  int64_t total_;
+  bool enabled_;
+  bool shown_ = false;
+  Clock::time_point started_ = Clock::now();
+  Clock::time_point last_ = Clock::now();
+};
+
+// Returns false when interrupted.
+bool SendRecording(Sender& sender, const StreamRecording& recording,
+                   const std::vector<std::string>& keys, Progress& progress) {
+  const int dims = static_cast<int>(recording.values.cols());
+  for (int64_t i = 0; i < recording.rows(); ++i) {
+    const std::span<const double> row(recording.values.row(i).data(), dims);
+    if (!sender.Add(keys[recording.stream_of_row[i]], recording.times[i], row)) return false;
+    progress.Update(sender);
+  }
+  return sender.SendAllPending();
+}
+
+// Complete lines from a file descriptor as they arrive, without waiting for the end of input.
+class StreamingLineReader {
+ public:
+  enum class Status { kLine, kNothingYet, kEnd, kStopped };
+
+  explicit StreamingLineReader(int fd) : fd_(fd) {}
+
+  // Waits at most `wait` for a complete line. kLine: *line holds it, without its '\n' (the last
+  // line of the input needs no '\n'). kNothingYet: no complete line within `wait`. Throws
+  // CommandError when reading fails.
+  Status Next(std::string* line, std::chrono::milliseconds wait) {
+    const auto deadline = Clock::now() + wait;
+    while (true) {
+      const std::size_t newline = buffer_.find('\n', start_);
+      if (newline != std::string::npos) {
+        line->assign(buffer_, start_, newline - start_);
+        start_ = newline + 1;
+        return Status::kLine;
+      }
+      if (end_of_input_) {
+        if (start_ == buffer_.size()) return Status::kEnd;
+        line->assign(buffer_, start_, std::string::npos);
+        start_ = buffer_.size();
+        return Status::kLine;
+      }
+      if (stop_requested) return Status::kStopped;
+      const auto left =
+          std::chrono::duration_cast<std::chrono::milliseconds>(deadline - Clock::now());
+      pollfd item{fd_, POLLIN, 0};
+      const int ready = ::poll(&item, 1, static_cast<int>(std::max<int64_t>(0, left.count())));
+      if (ready < 0) {
+        if (errno == EINTR) continue;
+        throw CommandError(std::string("standard input: poll failed: ") + std::strerror(errno));
+      }
+      if (ready == 0) return Status::kNothingYet;
+      ReadAvailable();
+    }
+  }
+
+ private:
+  void ReadAvailable() {
+    if (start_ > 0) {  // keep only the unfinished line
+      buffer_.erase(0, start_);
+      start_ = 0;
+    }
+    char chunk[65536];
+    const ssize_t n = ::read(fd_, chunk, sizeof chunk);
+    if (n < 0) {
+      if (errno == EINTR || errno == EAGAIN) return;
+      throw CommandError(std::string("standard input: read failed: ") + std::strerror(errno));
+    }
+    if (n == 0) {
+      end_of_input_ = true;
+      return;
+    }
+    buffer_.append(chunk, static_cast<std::size_t>(n));
+  }
+
+  int fd_;
+  std::string buffer_;
+  std::size_t start_ = 0;
+  bool end_of_input_ = false;
+};
+
+std::string_view TrimField(std::string_view s) {
+  while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
+  while (!s.empty() && (s.back() == ' ' || s.back() == '\t' || s.back() == '\r'))
+    s.remove_suffix(1);
+  return s;
+}
+
+void SplitFields(std::string_view text, std::vector<std::string_view>* fields) {
+  fields->clear();
+  std::size_t start = 0;
+  while (true) {
+    const std::size_t comma = text.find(',', start);
+    fields->push_back(TrimField(text.substr(start, comma - start)));
+    if (comma == std::string_view::npos) break;
+    start = comma + 1;
+  }
+}
+
+// The stream-file format of ReadStreamRecording (replay.h), read one row at a time.
+class StreamingRowParser {
+ public:
+  explicit StreamingRowParser(std::string default_stream)
+      : default_stream_(std::move(default_stream)) {}
+
+  bool has_header() const { return columns_ > 0; }
+  int dims() const { return static_cast<int>(feature_columns_.size()); }
+
+  // Requires: !has_header(). Throws CommandError for a header ReadStreamRecording would refuse.
+  void ReadHeader(std::string_view line, int line_number) {
+    SplitFields(line, &fields_);
+    for (std::size_t i = 0; i < fields_.size(); ++i) {
+      if (fields_[i] == "time") {
+        time_column_ = static_cast<int>(i);
+      } else if (fields_[i] == "stream") {
+        stream_column_ = static_cast<int>(i);
+      } else if (fields_[i].empty()) {
+        throw CommandError(Where(line_number) + "a header column has no name");
+      } else {
+        feature_columns_.push_back(static_cast<int>(i));
+        feature_names_.emplace_back(fields_[i]);
+      }
+    }
+    if (time_column_ < 0) throw CommandError("standard input: no column named time");
+    if (feature_columns_.empty()) throw CommandError("standard input: no feature columns");
+    if (feature_columns_.size() > 65535)
+      throw CommandError("standard input: " + std::to_string(feature_columns_.size()) +
+                         " feature columns; a message holds at most 65535");
+    if (stream_column_ < 0 && default_stream_.empty())
+      throw CommandError("standard input has no stream column: name the stream with --stream KEY");
+    if (stream_column_ >= 0 && !default_stream_.empty())
+      throw CommandError("--stream: standard input has a stream column already");
+    columns_ = fields_.size();
+    values_.resize(feature_columns_.size());
+  }
+
+  // Requires: has_header(). Parses one data row into time(), stream(), values(). Throws
+  // CommandError naming the line for a row ReadStreamRecording would refuse.
+  void ReadRow(std::string_view line, int line_number, Dtype dtype, PayloadFormat format) {
+    SplitFields(line, &fields_);
+    if (fields_.size() != columns_)
+      throw CommandError(Where(line_number) + std::to_string(fields_.size()) +
+                         " fields, the header has " + std::to_string(columns_));
+    const std::optional<double> time = ParseTimestamp(fields_[time_column_]);
+    if (!time)
+      throw CommandError(Where(line_number) + "time '" + std::string(fields_[time_column_]) +
+                         "' is neither ISO-8601 nor seconds since the epoch");
+    time_ = *time;
+    for (std::size_t c = 0; c < feature_columns_.size(); ++c) {
+      const std::optional<double> value = ParseFiniteNumber(fields_[feature_columns_[c]]);
+      if (!value)
+        throw CommandError(Where(line_number) + "column " + feature_names_[c] + ": '" +
+                           std::string(fields_[feature_columns_[c]]) + "' is not a finite number");
+      values_[c] = *value;
+    }
+    if (format == PayloadFormat::kBinary && dtype == Dtype::kFloat32) {
+      const std::string overflow = Float32Overflow(values_, feature_names_);
+      if (!overflow.empty()) throw CommandError(Where(line_number) + overflow);
+    }
+    const std::string_view key =
+        stream_column_ >= 0 ? fields_[stream_column_] : std::string_view(default_stream_);
+    if (key != stream_) {
+      stream_.assign(key);
+      if (ValidateStreamKey(stream_, WireLimits{}) != RejectReason::kNone)
+        throw CommandError(Where(line_number) + KeyError(stream_));
+    }
+  }
+
+  double time() const { return time_; }
+  const std::string& stream() const { return stream_; }
+  std::span<const double> values() const { return values_; }
+
+ private:
+  static std::string Where(int line_number) {
+    return "standard input:" + std::to_string(line_number) + ": ";
+  }
+
+  std::string default_stream_;
+  std::size_t columns_ = 0;
+  int time_column_ = -1;
+  int stream_column_ = -1;
+  std::vector<int> feature_columns_;
+  std::vector<std::string> feature_names_;
+  std::vector<std::string_view> fields_;
+  double time_ = 0;
+  std::string stream_;
+  std::vector<double> values_;
+};
+
+struct SendSummary {
+  bool interrupted = false;
+  int64_t vectors = 0;
+  std::size_t streams = 0;
+  int64_t messages = 0;
+  bool delivered = true;
+};
+
+// The socket is created after the header, which fixes the number of features.
+SendSummary SendStdin(const SendSettings& settings, double* elapsed_seconds) {
+  StreamingLineReader reader(STDIN_FILENO);
+  StreamingRowParser parser(settings.default_stream);
+  std::unique_ptr<Sender> sender;
+  std::optional<Progress> progress;
+  std::string line;
+  int line_number = 0;
+  bool interrupted = false;
+  const auto started = Clock::now();
+  while (true) {
+    auto status = reader.Next(&line, std::chrono::milliseconds(0));
+    if (status == StreamingLineReader::Status::kNothingYet) {
+      // The producer has nothing more for now: what is buffered goes out before we wait.
+      if (sender && !sender->SendAllPending()) {
+        interrupted = true;
+        break;
+      }
+      do {
+        status = reader.Next(&line, std::chrono::milliseconds(200));
+      } while (status == StreamingLineReader::Status::kNothingYet);
+    }
+    if (status == StreamingLineReader::Status::kStopped) {
+      interrupted = true;
+      break;
+    }
+    if (status == StreamingLineReader::Status::kEnd) break;
+    ++line_number;
+    if (TrimField(line).empty()) continue;
+    if (!parser.has_header()) {
+      parser.ReadHeader(line, line_number);
+      sender = std::make_unique<Sender>(settings, parser.dims());
+      progress.emplace(0);
+      continue;
+    }
+    parser.ReadRow(line, line_number, settings.dtype, settings.format);
+    if (!sender->Add(parser.stream(), parser.time(), parser.values())) {
+      interrupted = true;
+      break;
+    }
+    progress->Update(*sender);
+  }
+  if (!parser.has_header() && !interrupted)
+    throw CommandError("standard input: empty input (no header row)");
+  SendSummary summary;
+  if (sender) {
+    if (!interrupted && !sender->SendAllPending()) interrupted = true;
+    summary.vectors = sender->vectors_sent();
+    summary.streams = sender->streams();
+    summary.messages = sender->messages_sent();
+    progress->Finish();
+    *elapsed_seconds = std::chrono::duration<double>(Clock::now() - started).count();
+    summary.delivered = sender->Close(interrupted);
+  }
+  summary.interrupted = interrupted;
+  return summary;
+}
+
+void PrintSummary(const SendSettings& settings, const SendSummary& s, double elapsed) {
+  const char* format = settings.format == PayloadFormat::kJson ? "json"
+                       : settings.dtype == Dtype::kFloat32     ? "binary f32"
+                                                               : "binary f64";
+  // Counted as handed to ZeroMQ; whether they all left is known only after Close.
+  std::fprintf(stderr,
+               "nuwatch send: %lld vectors of %zu stream(s) in %lld %s message(s) to %s in %.1f s "
+               "(%.0f vectors/s)%s\n",
+               static_cast<long long>(s.vectors), s.streams, static_cast<long long>(s.messages),
+               format, settings.endpoint.c_str(), elapsed,
+               elapsed > 0 ? static_cast<double>(s.vectors) / elapsed : 0.0,
+               !s.interrupted ? ""
+               : s.delivered  ? "; interrupted"
+                              : "; interrupted, and the messages still queued were dropped");
+  if (!s.delivered && !s.interrupted) {
+    throw CommandError("messages were still queued when --linger " + settings.linger_text +
+                       " ran out: " + settings.endpoint +
+                       " did not take them all (is nuwatchd running?)");
+  }
+}
+
+void RunSend(const SendArguments& args) {
+  const SendSettings settings = ToSettings(args);
+  StopSignals signals;
+  if (settings.input == "-") {
+    double elapsed = 0;
+    const SendSummary summary = SendStdin(settings, &elapsed);
+    PrintSummary(settings, summary, elapsed);
+    return;
+  }
+
+  StreamRecording recording;
+  try {
+    recording = ReadStreamRecording(settings.input);
+  } catch (const CsvError& e) {
+    throw CommandError(e.what());
+  }
+  const bool has_stream_column = !(recording.streams.size() == 1 && recording.streams[0].empty());
+  if (!has_stream_column && settings.default_stream.empty())
+    throw CommandError(settings.input + " has no stream column: name the stream with --stream KEY");
+  if (has_stream_column && !settings.default_stream.empty())
+    throw CommandError("--stream: " + settings.input + " has a stream column already");
+  std::vector<std::string> keys = recording.streams;
+  if (!has_stream_column) keys[0] = settings.default_stream;
+  for (std::size_t s = 0; s < keys.size(); ++s) {
+    if (ValidateStreamKey(keys[s], WireLimits{}) == RejectReason::kNone) continue;
+    const auto row = std::find(recording.stream_of_row.begin(), recording.stream_of_row.end(),
+                               static_cast<int32_t>(s)) -
+                     recording.stream_of_row.begin();
+    throw CommandError(settings.input + ": data row " + std::to_string(row + 1) + ": " +
+                       KeyError(keys[s]));
+  }
+  const int dims = static_cast<int>(recording.values.cols());
+  if (recording.values.cols() > 65535)
+    throw CommandError(settings.input + ": " + std::to_string(recording.values.cols()) +
+                       " feature columns; a message holds at most 65535");
+  if (settings.format == PayloadFormat::kBinary && settings.dtype == Dtype::kFloat32) {
+    for (int64_t i = 0; i < recording.rows(); ++i) {
+      const std::string overflow = Float32Overflow(
+          std::span<const double>(recording.values.row(i).data(), dims), recording.feature_names);
+      if (!overflow.empty())
+        throw CommandError(settings.input + ": data row " + std::to_string(i + 1) + " (time " +
+                           recording.time_text[i] + "): " + overflow);
+    }
+  }
+
+  Sender sender(settings, dims);
+  const auto started = Clock::now();
+  Progress progress(recording.rows());
+  const bool completed = SendRecording(sender, recording, keys, progress);
+  progress.Finish();
+  SendSummary summary;
+  summary.interrupted = !completed;
+  summary.vectors = sender.vectors_sent();
+  summary.streams = sender.streams();
+  summary.messages = sender.messages_sent();
+  const double elapsed = std::chrono::duration<double>(Clock::now() - started).count();
+  summary.delivered = sender.Close(summary.interrupted);
+  PrintSummary(settings, summary, elapsed);
+}
+
+void AddSendCommand(CLI::App& app) {
+  auto args = std::make_shared<SendArguments>();
+  CLI::App* command = app.add_subcommand(
+      "send",
+      "Send the vectors of a stream file (or of rows piped in) to nuwatchd's ingest socket");
+  command
+      ->add_option("--connect", args->connect,
+                   "ZeroMQ endpoint of nuwatchd's ingest socket (PUSH connects to it)")
+      ->type_name("ENDPOINT")
+      ->required();
+  command
+      ->add_option("--input", args->input,
+                   "Stream CSV: a time column (ISO-8601 or epoch seconds), a stream column, "
+                   "feature columns; '-' reads rows from standard input as they arrive")
+      ->type_name("FILE")
+      ->required();
+  command
+      ->add_option("--stream", args->stream,
+                   "Stream key for every row, when the input has no stream column")
+      ->type_name("KEY");
+  command->add_option("--rate", args->rate, "Vectors per second; 0: as fast as possible")
+      ->type_name("N")
+      ->capture_default_str();
+  command->add_option("--format", args->format, "Payload form: json or binary (PROTOCOL.md §5, §6)")
+      ->type_name("FORM")
+      ->capture_default_str();
+  command->add_option("--dtype", args->dtype, "Value type of the binary form: f64 or f32")
+      ->type_name("TYPE")
+      ->capture_default_str();
+  command
+      ->add_option("--batch", args->batch,
+                   "Vectors of one stream per message at most (1..4096); a partly filled batch "
+                   "is sent at the end, and with --input - whenever the input pauses")
+      ->type_name("K")
+      ->capture_default_str();
+  command
+      ->add_option("--linger", args->linger,
+                   "How long to wait at the end for queued messages to reach the daemon")
+      ->type_name("DURATION")
+      ->capture_default_str();
+  command->callback([args] { RunSend(*args); });
+}
+
+}  // namespace
+
+NUWATCH_REGISTER_COMMAND(90, AddSendCommand);
+
+}  // namespace nuwatch::cli

@@ -1,0 +1,388 @@
+// nuwatch tail: subscribes to nuwatchd's result socket and prints what it publishes
+// (daemon/protocol/PROTOCOL.md §9), one line per result or incident event, until a count, a timeout
+// or Ctrl-C.
+#include <unistd.h>
+
+#include <algorithm>
+#include <cerrno>
+#include <charconv>
+#include <chrono>
+#include <cmath>
+#include <csignal>
+#include <cstdio>
+#include <cstring>
+#include <memory>
+#include <nlohmann/json.hpp>
+#include <optional>
+#include <string>
+#include <string_view>
+#include <vector>
+#include <zmq.hpp>
+#include <zmq_addon.hpp>
+
+#include "cli/commands.h"
+#include "formats/timestamps.h"
+
+namespace nuwatch::cli {
+namespace {
+
+using Clock = std::chrono::steady_clock;
+using nlohmann::json;
+
+struct TailArguments {
+  std::string connect;
+  std::vector<std::string> streams;
+  bool anomalies_only = false;
+  std::string count = "0";
+  std::string timeout = "0";
+  bool json_output = false;
+};
+
+volatile std::sig_atomic_t stop_requested = 0;
+extern "C" void RequestTailStop(int) { stop_requested = 1; }
+
+// For the lifetime of this object: SIGINT and SIGTERM end the run (installed without SA_RESTART so
+// that a wait returns at once), and SIGPIPE is ignored so that a reader that went away (`| head`)
+// shows up as a failed write.
+class TailSignals {
+ public:
+  TailSignals() {
+    stop_requested = 0;
+    struct sigaction action {};
+    action.sa_handler = RequestTailStop;
+    sigemptyset(&action.sa_mask);
+    sigaction(SIGINT, &action, &previous_int_);
+    sigaction(SIGTERM, &action, &previous_term_);
+    struct sigaction ignore {};
+    ignore.sa_handler = SIG_IGN;
+    sigemptyset(&ignore.sa_mask);
+    sigaction(SIGPIPE, &ignore, &previous_pipe_);
+  }
+  ~TailSignals() {
+    sigaction(SIGINT, &previous_int_, nullptr);
+    sigaction(SIGTERM, &previous_term_, nullptr);
+    sigaction(SIGPIPE, &previous_pipe_, nullptr);
+  }
+  TailSignals(const TailSignals&) = delete;
+  TailSignals& operator=(const TailSignals&) = delete;
+
+ private:
+  struct sigaction previous_int_ {};
+  struct sigaction previous_term_ {};
+  struct sigaction previous_pipe_ {};
+};
+
+int64_t ParseCount(const std::string& text) {
+  int64_t value = 0;
+  const char* end = text.data() + text.size();
+  const auto [ptr, error] = std::from_chars(text.data(), end, value);
+  if (text.empty() || error != std::errc() || ptr != end || value < 0)
+    throw CommandError("--count: '" + text + "' is not a whole number >= 0 (0: no limit)");
+  return value;
+}
+
+// The member `name` of `object` (an object), or null when it is absent.
+const json& Member(const json& object, const char* name) {
+  static const json null_value;
+  const auto it = object.find(name);
+  return it == object.end() ? null_value : *it;
+}
+
+std::string FormatTime(const json& value) {
+  if (!value.is_number()) return "?";
+  return FormatTimestamp(value.get<double>());
+}
+
+std::string FormatDecision(const json& value) {
+  if (!value.is_number()) return "-";
+  char buffer[32];
+  std::snprintf(buffer, sizeof buffer, "%.4f", value.get<double>());
+  return buffer;
+}
+
+std::string FormatTopFeatures(const json& object) {
+  const auto it = object.find("top_features");
+  if (it == object.end() || !it->is_array()) return "";
+  std::string text;
+  for (const json& entry : *it) {
+    if (!entry.is_object()) continue;
+    const auto feature = entry.find("feature");
+    const auto share = entry.find("share");
+    if (feature == entry.end() || !feature->is_string()) continue;
+    if (!text.empty()) text += ", ";
+    text += feature->get<std::string>();
+    if (share != entry.end() && share->is_number()) {
+      char buffer[16];
+      std::snprintf(buffer, sizeof buffer, " %.0f%%", 100.0 * share->get<double>());
+      text += buffer;
+    }
+  }
+  return text;
+}
+
+// One message's place in the output.
+enum class Kind { kResult, kAnomaly, kIncidentEvent, kSkipped };
+
+// Prints results and events in aligned columns, or as JSON lines. Not thread-safe.
+class Printer {
+ public:
+  Printer(bool json_output, bool anomalies_only)
+      : json_output_(json_output), anomalies_only_(anomalies_only) {}
+
+  // Returns what the message was; kSkipped when it is filtered out or not for a version 1
+  // subscriber. Appends the line to print, if any, to *line.
+  Kind Format(std::string_view key, std::string_view text, const json& object, std::string* line) {
+    // §10: an object of a later version is dropped; an unknown event SHOULD be ignored.
+    if (const auto v = object.find("v"); v != object.end() && *v != 1) return Kind::kSkipped;
+    if (const auto event = object.find("event"); event != object.end()) {
+      if (*event != "incident_open" && *event != "incident_close") return Kind::kSkipped;
+      if (json_output_)
+        AppendJsonLine(key, text, line);
+      else
+        AppendEventLine(key, object, *event == "incident_open", line);
+      return Kind::kIncidentEvent;
+    }
+    const bool anomaly = Member(object, "anomaly") == true;
+    if (anomalies_only_ && !anomaly) return Kind::kSkipped;
+    if (json_output_)
+      AppendJsonLine(key, text, line);
+    else
+      AppendResultLine(key, object, anomaly, line);
+    return anomaly ? Kind::kAnomaly : Kind::kResult;
+  }
+
+  // The column names, for a terminal.
+  std::string Header() {
+    key_width_ = std::max<std::size_t>(key_width_, 6);
+    char buffer[256];
+    std::snprintf(buffer, sizeof buffer, "%-24s  %-*s  %-8s  %9s  %-7s  %-8s  %-6s  %s\n", "TIME",
+                  static_cast<int>(key_width_), "STREAM", "STATE", "DECISION", "FLAG", "INCIDENT",
+                  "MODEL", "TOP FEATURES");
+    return buffer;
+  }
+
+ private:
+  // The published object with the stream key added as its first member, "stream"; the rest of
+  // the text is passed on byte for byte.
+  static void AppendJsonLine(std::string_view key, std::string_view text, std::string* line) {
+    const std::size_t brace = text.find('{');
+    std::string_view rest = text.substr(brace + 1);
+    while (!rest.empty() && (rest.front() == ' ' || rest.front() == '\n' || rest.front() == '\r' ||
+                             rest.front() == '\t'))
+      rest.remove_prefix(1);
+    *line += "{\"stream\":";
+    *line += json(std::string(key)).dump(-1, ' ', false, json::error_handler_t::replace);
+    if (!rest.empty() && rest.front() != '}') *line += ',';
+    *line += rest;
+    while (!line->empty() && (line->back() == '\n' || line->back() == '\r')) line->pop_back();
+    *line += '\n';
+  }
+
+  void AppendResultLine(std::string_view key, const json& object, bool anomaly, std::string* line) {
+    key_width_ = std::max(key_width_, key.size());
+    const json& incident = Member(object, "incident");
+    const std::string incident_text =
+        incident.is_number_integer() ? std::to_string(incident.get<int64_t>()) : "-";
+    const json& version = Member(object, "model_version");
+    const std::string model_text = version.is_number_integer() && version.get<int64_t>() > 0
+                                       ? "v" + std::to_string(version.get<int64_t>())
+                                       : "-";
+    const json& state_member = Member(object, "state");
+    const std::string state = state_member.is_string() ? state_member.get<std::string>() : "?";
+    char buffer[512];
+    std::snprintf(buffer, sizeof buffer, "%-24s  %-*.*s  %-8s  %9s  %-7s  %-8s  %-6s  ",
+                  FormatTime(Member(object, "t")).c_str(), static_cast<int>(key_width_),
+                  static_cast<int>(key.size()), key.data(), state.c_str(),
+                  FormatDecision(Member(object, "decision")).c_str(), anomaly ? "ANOMALY" : "-",
+                  incident_text.c_str(), model_text.c_str());
+    *line += buffer;
+    *line += FormatTopFeatures(object);
+    while (!line->empty() && line->back() == ' ') line->pop_back();
+    *line += '\n';
+  }
+
+  static void AppendEventLine(std::string_view key, const json& object, bool open,
+                              std::string* line) {
+    const json& id = Member(object, "incident");
+    *line += "INCIDENT ";
+    *line += id.is_number_integer() ? std::to_string(id.get<int64_t>()) : "?";
+    *line += open ? " OPENED on " : " CLOSED on ";
+    *line += key;
+    *line += " at ";
+    *line += FormatTime(Member(object, "t"));
+    if (open) {
+      *line += ", first flagged vector at ";
+      *line += FormatTime(Member(object, "start"));
+    } else {
+      const json& start = Member(object, "start");
+      const json& end = Member(object, "end");
+      *line += ", flagged from ";
+      *line += FormatTime(start);
+      *line += " to ";
+      *line += FormatTime(end);
+      if (start.is_number() && end.is_number()) {
+        char buffer[48];
+        std::snprintf(buffer, sizeof buffer, " (%.0f s)", end.get<double>() - start.get<double>());
+        *line += buffer;
+      }
+    }
+    const json& peak = Member(object, "peak_decision");
+    if (peak.is_number()) {
+      *line += ", lowest decision ";
+      *line += FormatDecision(peak);
+    }
+    *line += '\n';
+  }
+
+  bool json_output_;
+  bool anomalies_only_;
+  std::size_t key_width_ = 10;
+};
+
+// Writes and flushes; false when the reader has gone away (EPIPE). Throws for other failures.
+bool WriteLine(std::string_view text) {
+  if (std::fwrite(text.data(), 1, text.size(), stdout) == text.size() && std::fflush(stdout) == 0)
+    return true;
+  if (errno == EPIPE) return false;
+  throw CommandError(std::string("standard output: write failed: ") + std::strerror(errno));
+}
+
+struct Tally {
+  int64_t printed = 0;
+  int64_t results = 0;
+  int64_t anomalies = 0;
+  int64_t events = 0;
+  int64_t malformed = 0;
+};
+
+void RunTail(const TailArguments& args) {
+  const int64_t count = ParseCount(args.count);
+  const std::optional<double> timeout = ParseDuration(args.timeout);
+  if (!timeout)
+    throw CommandError("--timeout: '" + args.timeout +
+                       "' is not a duration (e.g. 30s, 5m, 1.5h; 0: no timeout)");
+  for (const std::string& stream : args.streams)
+    if (stream.empty()) throw CommandError("--stream: the key is empty");
+
+  zmq::context_t context(1);
+  zmq::socket_t socket(context, zmq::socket_type::sub);
+  socket.set(zmq::sockopt::linger, 0);
+  // ZeroMQ subscriptions match prefixes (§9): subscribe to each key, then compare whole keys.
+  if (args.streams.empty()) {
+    socket.set(zmq::sockopt::subscribe, "");
+  } else {
+    for (const std::string& stream : args.streams) socket.set(zmq::sockopt::subscribe, stream);
+  }
+  try {
+    socket.connect(args.connect);
+  } catch (const zmq::error_t& e) {
+    throw CommandError("--connect: cannot connect to '" + args.connect + "': " + e.what());
+  }
+
+  TailSignals signals;
+  Printer printer(args.json_output, args.anomalies_only);
+  Tally tally;
+  const bool terminal = ::isatty(STDOUT_FILENO) == 1;
+  bool open = true;
+  if (terminal && !args.json_output) open = WriteLine(printer.Header());
+  const auto started = Clock::now();
+  const auto deadline = started + std::chrono::duration_cast<Clock::duration>(
+                                      std::chrono::duration<double>(*timeout));
+  bool timed_out = false;
+  std::vector<zmq::message_t> frames;
+  std::string line;
+  while (open && !stop_requested && (count == 0 || tally.printed < count)) {
+    auto wait = std::chrono::milliseconds(200);
+    if (*timeout > 0) {
+      const auto now = Clock::now();
+      if (now >= deadline) {
+        timed_out = true;
+        break;
+      }
+      wait = std::min(wait, std::chrono::duration_cast<std::chrono::milliseconds>(deadline - now) +
+                                std::chrono::milliseconds(1));
+    }
+    try {
+      zmq::pollitem_t item{socket.handle(), 0, ZMQ_POLLIN, 0};
+      if (zmq::poll(&item, 1, wait) == 0) continue;
+      frames.clear();
+      if (!zmq::recv_multipart(socket, std::back_inserter(frames), zmq::recv_flags::dontwait))
+        continue;
+    } catch (const zmq::error_t& e) {
+      if (e.num() == EINTR) continue;
+      throw CommandError(std::string("receive failed: ") + e.what());
+    }
+    if (frames.size() != 2) {
+      ++tally.malformed;
+      std::fprintf(stderr, "nuwatch tail: skipped a message of %zu frames (2 expected)\n",
+                   frames.size());
+      continue;
+    }
+    const std::string_view key = frames[0].to_string_view();
+    const std::string_view text = frames[1].to_string_view();
+    if (!args.streams.empty() &&
+        std::find(args.streams.begin(), args.streams.end(), key) == args.streams.end())
+      continue;
+    const json object = json::parse(text, nullptr, /*allow_exceptions=*/false);
+    if (!object.is_object()) {
+      ++tally.malformed;
+      std::fprintf(stderr, "nuwatch tail: skipped a message for %.*s that is not a JSON object\n",
+                   static_cast<int>(key.size()), key.data());
+      continue;
+    }
+    line.clear();
+    const Kind kind = printer.Format(key, text, object, &line);
+    if (kind == Kind::kSkipped) continue;
+    tally.events += kind == Kind::kIncidentEvent;
+    tally.anomalies += kind == Kind::kAnomaly;
+    tally.results += kind != Kind::kIncidentEvent;
+    ++tally.printed;
+    open = WriteLine(line);
+  }
+  if (!open) return;  // the reader went away: nobody to tell
+  std::fprintf(
+      stderr, "nuwatch tail: %lld result(s), %lld flagged, %lld incident event(s) from %s%s\n",
+      static_cast<long long>(tally.results), static_cast<long long>(tally.anomalies),
+      static_cast<long long>(tally.events), args.connect.c_str(),
+      tally.malformed > 0
+          ? ("; " + std::to_string(tally.malformed) + " malformed message(s) skipped").c_str()
+          : "");
+  if (timed_out && count > 0 && tally.printed < count)
+    throw CommandError("--timeout " + args.timeout + " passed after " +
+                       std::to_string(tally.printed) + " of --count " + std::to_string(count) +
+                       " messages");
+}
+
+void AddTailCommand(CLI::App& app) {
+  auto args = std::make_shared<TailArguments>();
+  CLI::App* command = app.add_subcommand(
+      "tail", "Print the results and incident events nuwatchd publishes, as they arrive");
+  command
+      ->add_option("--connect", args->connect,
+                   "ZeroMQ endpoint of nuwatchd's result socket (SUB connects to it)")
+      ->type_name("ENDPOINT")
+      ->required();
+  command->add_option("--stream", args->streams, "Only this stream (repeat for several)")
+      ->type_name("KEY");
+  command->add_flag("--anomalies-only", args->anomalies_only,
+                    "Only flagged results and incident events");
+  command
+      ->add_option("--count", args->count,
+                   "Exit after printing this many messages; 0: no limit (with --timeout, "
+                   "exit 1 if fewer arrive in time)")
+      ->type_name("N")
+      ->capture_default_str();
+  command->add_option("--timeout", args->timeout, "Exit after this long (e.g. 30s); 0: never")
+      ->type_name("DURATION")
+      ->capture_default_str();
+  command->add_flag("--json", args->json_output,
+                    "Print each published JSON object as received, one per line, with the "
+                    "stream key added as its first member \"stream\"");
+  command->callback([args] { RunTail(*args); });
+}
+
+}  // namespace
+
+NUWATCH_REGISTER_COMMAND(100, AddTailCommand);
+
+}  // namespace nuwatch::cli

@@ -1,0 +1,37 @@
+// Subcommands of the `nuwatch` program register themselves here: each daemon/cli/cmd_*.cc file
+// defines a function that adds its subcommand to the CLI11 app and registers it with
+// NUWATCH_REGISTER_COMMAND, so adding a subcommand touches no shared file.
+#pragma once
+
+#include <CLI/CLI.hpp>
+#include <stdexcept>
+#include <string>
+#include <vector>
+
+namespace nuwatch::cli {
+
+// Thrown by a subcommand for bad input or a failed operation. main prints
+// "nuwatch <subcommand>: <message>" as one line on stderr and exits with code 1.
+class CommandError : public std::runtime_error {
+ public:
+  using std::runtime_error::runtime_error;
+};
+
+using CommandAdder = void (*)(CLI::App& app);
+
+struct CommandRegistration {
+  // `order` sorts the subcommands in --help (fit 10, score 20, inspect 30, bench 40, replay 50,
+  // simulate 60, tune 70, evaluate 80, send 90, tail 100).
+  CommandRegistration(int order, CommandAdder adder);
+};
+
+struct RegisteredCommand {
+  int order;
+  CommandAdder adder;
+};
+std::vector<RegisteredCommand>& RegisteredCommands();
+
+}  // namespace nuwatch::cli
+
+#define NUWATCH_REGISTER_COMMAND(order, adder) \
+  static const ::nuwatch::cli::CommandRegistration nuwatch_registration_##adder(order, adder)

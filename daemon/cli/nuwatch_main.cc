@@ -1,0 +1,54 @@
+// nuwatch: the command-line tool (fit, score, inspect, bench, replay, simulate, tune, evaluate,
+// send, tail). Each subcommand lives in its own cmd_*.cc file and registers itself.
+#include <algorithm>
+#include <exception>
+#include <iostream>
+
+#include "cli/commands.h"
+#include "nuwatch/types.h"
+
+namespace nuwatch::cli {
+
+std::vector<RegisteredCommand>& RegisteredCommands() {
+  static std::vector<RegisteredCommand> commands;
+  return commands;
+}
+
+CommandRegistration::CommandRegistration(int order, CommandAdder adder) {
+  RegisteredCommands().push_back({order, adder});
+}
+
+}  // namespace nuwatch::cli
+
+int main(int argc, char** argv) {
+  CLI::App app{
+      "nuwatch: learn each stream's normal envelope with a nu one-class SVM and flag what "
+      "falls outside it"};
+  app.require_subcommand(1);
+  app.set_version_flag("--version", NUWATCH_VERSION);
+  auto commands = nuwatch::cli::RegisteredCommands();
+  std::sort(commands.begin(), commands.end(),
+            [](const auto& a, const auto& b) { return a.order < b.order; });
+  for (const auto& command : commands) command.adder(app);
+  try {
+    app.parse(argc, argv);
+  } catch (const CLI::CallForHelp& e) {
+    return app.exit(e);
+  } catch (const CLI::CallForAllHelp& e) {
+    return app.exit(e);
+  } catch (const CLI::CallForVersion& e) {
+    return app.exit(e);
+  } catch (const CLI::ParseError& e) {
+    // One line and status 1, like every other bad input ("--nu: Value abc not a number").
+    std::string name = "nuwatch";
+    for (const CLI::App* sub : app.get_subcommands()) name += " " + sub->get_name();
+    std::cerr << name << ": " << e.what() << " (see --help)\n";
+    return 1;
+  } catch (const std::exception& e) {
+    std::string name = "nuwatch";
+    for (const CLI::App* sub : app.get_subcommands()) name += " " + sub->get_name();
+    std::cerr << name << ": " << e.what() << "\n";
+    return 1;
+  }
+  return 0;
+}

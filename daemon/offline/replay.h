@@ -1,0 +1,50 @@
+// Replaying a recorded stream file through the detectors, as `nuwatch replay` and `nuwatch tune`
+// do: one Detector per stream key, refits inline, so a replay is deterministic.
+// Thread safety: ReadStreamRecording and ReplayRecording are reentrant; a StreamRecording may be
+// shared read-only by several replays at once (tune runs settings in parallel).
+#pragma once
+
+#include <cstdint>
+#include <functional>
+#include <string>
+#include <vector>
+
+#include "formats/csv_table.h"
+#include "nuwatch/detector.h"
+
+namespace nuwatch {
+
+// A stream file: header with a `time` column (ISO-8601 or seconds since the epoch), an optional
+// `stream` column, and numeric feature columns.
+struct StreamRecording {
+  std::string path;
+  std::vector<std::string> feature_names;
+  std::vector<std::string> streams;    // distinct keys, in order of first appearance
+  std::vector<int32_t> stream_of_row;  // index into streams
+  std::vector<double> times;           // seconds since the epoch
+  std::vector<std::string> time_text;  // as written in the file
+  MatrixD values;                      // rows x features
+  int64_t rows() const { return values.rows(); }
+};
+
+// Throws CsvError naming the file and line: no `time` column, an unreadable time, a non-numeric or
+// non-finite value, a ragged row, no feature columns, no data rows.
+StreamRecording ReadStreamRecording(const std::string& path);
+
+struct ReplayRow {
+  double decision = 0;  // NaN while learning
+  uint64_t incident = 0;
+  uint64_t model_version = 0;
+  int32_t support_vectors = 0;
+  bool learning = true;
+  bool outlier = false;
+};
+
+// The options for each stream key (e.g. a config's [detector] with overrides and flags applied).
+using StreamOptions = std::function<DetectorOptions(const std::string& stream)>;
+// progress(rows_done) is called every few thousand rows (may be empty).
+std::vector<ReplayRow> ReplayRecording(const StreamRecording& recording,
+                                       const StreamOptions& options_for_stream,
+                                       const std::function<void(int64_t)>& progress = {});
+
+}  // namespace nuwatch

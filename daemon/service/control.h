@@ -1,0 +1,66 @@
+// The control socket's requests and replies (daemon/protocol/PROTOCOL.md §11): one JSON object per
+// request, one per reply, every reply with "ok". The daemon implements ControlCommands; this file
+// parses requests, dispatches them and writes the replies.
+// Thread safety: HandleControlRequest is reentrant; it calls `commands` on the caller's thread.
+#pragma once
+
+#include <cstdint>
+#include <optional>
+#include <string>
+#include <string_view>
+#include <vector>
+
+#include "nuwatch/incident_tracker.h"
+
+namespace nuwatch {
+
+struct StreamStatus {
+  std::string stream;
+  std::string state;  // "learning" or "scoring"
+  int dims = 0;
+  int64_t vectors = 0;
+  int64_t anomalies = 0;
+  int64_t support_vectors = 0;
+  int64_t window = 0;
+  uint64_t model_version = 0;
+  int64_t refits = 0;  // refits started
+  std::optional<TrackedIncident> incident;
+  std::size_t memory_bytes = 0;
+  int64_t snapshot_vectors = -1;  // vectors count at the last snapshot taken; -1: none
+};
+
+struct ControlOutcome {
+  bool ok = true;
+  std::string error;  // when !ok
+};
+
+struct SnapshotOutcome : ControlOutcome {
+  int64_t written = 0;  // streams written
+  int64_t pending = 0;  // streams with a refit running, written when it finishes
+};
+
+struct ReloadOutcome : ControlOutcome {
+  std::string config;           // the file reread
+  int64_t streams_updated = 0;  // streams given new detector settings
+};
+
+class ControlCommands {
+ public:
+  virtual ~ControlCommands() = default;
+  virtual std::vector<StreamStatus> Status() = 0;
+  virtual SnapshotOutcome Snapshot() = 0;
+  // nullopt when done; else the error (e.g. unknown stream).
+  virtual std::optional<std::string> Relearn(const std::string& stream) = 0;
+  virtual ReloadOutcome Reload() = 0;
+};
+
+// Ensures: a one-line JSON object. {"ok":false,"error":"..."} for anything that is not a JSON
+// object with a known string "command" (and, for relearn, a string "stream"); never throws except
+// std::bad_alloc. Exceptions from `commands` become {"ok":false,...} too.
+std::string HandleControlRequest(std::string_view request, ControlCommands& commands,
+                                 std::string_view version);
+
+// The reply to a request of more than one frame.
+std::string ControlErrorReply(std::string_view error);
+
+}  // namespace nuwatch

@@ -1,0 +1,1020 @@
+#include "service/daemon.h"
+
+#include <netdb.h>
+#include <prometheus/exposer.h>
+#include <pthread.h>
+#include <spdlog/spdlog.h>
+#include <sys/eventfd.h>
+#include <sys/socket.h>
+#include <unistd.h>
+
+#include <array>
+#include <atomic>
+#include <boost/asio/executor_work_guard.hpp>
+#include <boost/asio/io_context.hpp>
+#include <boost/asio/post.hpp>
+#include <boost/asio/signal_set.hpp>
+#include <boost/asio/steady_timer.hpp>
+#include <cerrno>
+#include <chrono>
+#include <csignal>
+#include <cstring>
+#include <future>
+#include <nlohmann/json.hpp>
+#include <thread>
+#include <zmq.hpp>
+
+#include "nuwatch/checked_file.h"
+#include "nuwatch/mutex.h"
+#include "protocol/wire_protocol.h"
+#include "service/control.h"
+#include "service/metrics.h"
+#include "service/recorder.h"
+#include "service/refit_pool.h"
+#include "service/state_store.h"
+#include "service/stream_registry.h"
+
+namespace nuwatch {
+
+void ApplyOverrides(const CommandLineOverrides& o, DaemonSettings* s) {
+  if (o.ingest_endpoints) s->ingest_endpoints = *o.ingest_endpoints;
+  if (o.subscribe_endpoints) s->subscribe_endpoints = *o.subscribe_endpoints;
+  if (o.publish_endpoint) s->publish_endpoint = *o.publish_endpoint;
+  if (o.metrics_listen) s->metrics_listen = *o.metrics_listen;
+  if (o.control_endpoint) s->control_endpoint = *o.control_endpoint;
+  if (o.state_dir) s->state_dir = *o.state_dir;
+  if (o.log_level) s->log_level = *o.log_level;
+}
+
+void CheckConfigForDaemon(const Config& config) {
+  const std::string file =
+      config.source_path.empty() ? std::string("the default configuration") : config.source_path;
+  auto check = [](const DetectorOptions& options, const std::string& where) {
+    try {
+      CheckDetectorOptions(options, where);
+    } catch (const PreconditionError& e) {
+      throw ConfigError(e.what());
+    }
+  };
+  check(config.detector, file + ": [detector]");
+  for (const auto& override_table : config.overrides) {
+    // [detector] with this table applied: the table alone, matching every key.
+    Config one = config;
+    one.overrides = {override_table};
+    one.overrides.front().match = "*";
+    check(DetectorOptionsFor(one, "x"),
+          override_table.origin + ": [[stream]] match = \"" + override_table.match + "\"");
+  }
+}
+
+namespace {
+
+using Clock = std::chrono::steady_clock;
+
+constexpr int kMessagesPerTurn = 256;  // then poll again, so control requests are not starved
+constexpr std::size_t kControlMaxBytes = 1 << 20;
+constexpr int kPublishLingerMs = 200;
+constexpr double kFlushIntervalSeconds = 1.0;
+constexpr int kTopFeatures = 3;
+
+void NameThisThread(const char* name) { pthread_setname_np(pthread_self(), name); }
+
+spdlog::level::level_enum LogLevel(const std::string& name) {
+  return spdlog::level::from_str(name);
+}
+
+WireLimits LimitsOf(const DaemonSettings& s) {
+  WireLimits limits;
+  limits.max_key_bytes = kProtocolMaxKeyBytes;
+  limits.max_dims = s.max_dims;
+  limits.max_vectors_per_message = s.max_vectors_per_message;
+  limits.max_message_bytes = s.max_message_bytes;
+  return limits;
+}
+
+std::string Join(const std::vector<std::string>& items) {
+  std::string out;
+  for (const auto& item : items) out += (out.empty() ? "" : ", ") + item;
+  return out;
+}
+
+// Destroys the exposer promptly. Its HTTP server (civetweb) notices the stop request only when its
+// accept loop wakes, which it does every 2 s or on a new connection: so connect to it, repeatedly,
+// until the destructor has returned. `host` may be a wildcard address; then loopback is used.
+void StopExposer(std::unique_ptr<prometheus::Exposer>& exposer, std::string host, int port) {
+  if (!exposer) return;
+  if (host.size() >= 2 && host.front() == '[' && host.back() == ']')
+    host = host.substr(1, host.size() - 2);
+  if (host == "0.0.0.0" || host.empty()) host = "127.0.0.1";
+  if (host == "::") host = "::1";
+  addrinfo hints{};
+  hints.ai_socktype = SOCK_STREAM;
+  addrinfo* found = nullptr;
+  const std::string service = std::to_string(port);
+  if (port <= 0 || ::getaddrinfo(host.c_str(), service.c_str(), &hints, &found) != 0) {
+    exposer.reset();
+    return;
+  }
+  std::atomic<bool> stopped{false};
+  std::thread waker([&] {
+    while (!stopped.load()) {
+      const int fd = ::socket(found->ai_family, SOCK_STREAM | SOCK_CLOEXEC, 0);
+      if (fd >= 0) {
+        ::connect(fd, found->ai_addr, found->ai_addrlen);
+        ::close(fd);
+      }
+      std::this_thread::sleep_for(std::chrono::milliseconds(10));
+    }
+  });
+  exposer.reset();
+  stopped = true;
+  waker.join();
+  ::freeaddrinfo(found);
+}
+
+}  // namespace
+
+struct Daemon::Impl final : ControlCommands {
+  explicit Impl(DaemonOptions daemon_options);
+  ~Impl() override;
+
+  // Set-up.
+  void BindSockets();
+  void StartExposer();
+  void RestoreStreams();
+  std::unique_ptr<Stream> MakeStream(const std::string& key, int dims,
+                                     const DetectorOptions& options);
+
+  // Threads.
+  void Start();
+  void RunSocketThread();
+  void Loop();
+  void Shutdown();
+  void Wake();
+  void StartTimer(boost::asio::steady_timer& timer, double seconds, std::atomic<bool>& flag);
+  void WaitForSignal();
+
+  // The hot path.
+  void ReceiveFrom(zmq::socket_t& socket);
+  void HandleIngest(std::string_view key, std::string_view payload);
+  void ProcessVector(Stream& stream, const PayloadView& payload, int index);
+  void Reject(RejectReason reason, std::string_view detail, std::string_view key);
+  void Publish(std::string_view key, const std::string& body);
+  void Record(Stream& stream, double time);
+
+  // Background work noticed by the socket thread.
+  void NoteFinishedRefit(Stream* stream) EXCLUDES(finished_mutex);  // any thread
+  void HandleFinishedRefits() EXCLUDES(finished_mutex);
+  void PeriodicSnapshot();
+  void FlushRecordings();
+  bool TrySnapshot(Stream& stream, bool force);
+  void WaitForStateWrites();
+  void HandleControl();
+
+  // ControlCommands (socket thread).
+  std::vector<StreamStatus> Status() override;
+  SnapshotOutcome Snapshot() override;
+  std::optional<std::string> Relearn(const std::string& stream) override;
+  ReloadOutcome Reload() override;
+
+  DaemonOptions options;
+  Config config;  // in force
+  WireLimits limits;
+  DaemonMetrics metrics{NUWATCH_VERSION};
+  std::unique_ptr<prometheus::Exposer> exposer;
+  std::string metrics_host;
+  int metrics_port = 0;
+  DaemonEndpoints endpoints;
+
+  zmq::context_t context{1};
+  std::vector<zmq::socket_t> ingest;  // PULL sockets, then the SUB socket if any
+  zmq::socket_t publish;
+  zmq::socket_t control;
+  int wake_fd = -1;
+
+  RefitPool pool;
+  std::optional<StateStore> store;
+  StreamRegistry streams;
+  int64_t restored_streams = 0;
+
+  boost::asio::io_context io;
+  boost::asio::executor_work_guard<boost::asio::io_context::executor_type> io_work{
+      io.get_executor()};
+  std::optional<boost::asio::signal_set> signals;
+  boost::asio::steady_timer snapshot_timer{io};
+  boost::asio::steady_timer flush_timer{io};
+  std::atomic<double> snapshot_interval_seconds{300};
+  std::thread io_thread;
+  std::thread socket_thread;
+  bool started = false;
+  bool joined = false;
+
+  std::atomic<bool> stop_requested{false};
+  std::atomic<bool> reload_requested{false};
+  std::atomic<bool> snapshot_due{false};
+  std::atomic<bool> flush_due{false};
+  std::atomic<int> stop_signals{0};
+
+  // Refit threads report finished refits here; the socket thread takes them (HandleFinishedRefits).
+  Mutex finished_mutex;
+  std::vector<Stream*> finished_refits GUARDED_BY(finished_mutex);
+  std::vector<Stream*> finished_work;  // socket thread: swapped with finished_refits
+
+  // Hot-path buffers, reused so that steady-state processing does not allocate.
+  zmq::message_t key_message;
+  zmq::message_t payload_message;
+  zmq::message_t extra_message;
+  JsonScratch scratch;
+  std::string result_json;
+  std::string event_json;
+  std::array<FeatureShareView, kTopFeatures> top_features;
+  std::array<bool, 256> rejection_logged{};
+};
+
+Daemon::Impl::Impl(DaemonOptions daemon_options)
+    : options(std::move(daemon_options)),
+      config(options.config),
+      limits(LimitsOf(config.daemon)),
+      // The checks come first, before the pool's threads or any socket exist.
+      pool((ValidateDaemonSettings(config.daemon, config.source_path), CheckConfigForDaemon(config),
+            config.daemon.refit_threads)) {
+  spdlog::set_level(LogLevel(config.daemon.log_level));
+  snapshot_interval_seconds = config.daemon.snapshot_interval_seconds;
+  if (const std::string error = WireLimitsError(limits); !error.empty()) {
+    throw ConfigError("limits: " + error);
+  }
+  wake_fd = ::eventfd(0, EFD_NONBLOCK | EFD_CLOEXEC);
+  if (wake_fd < 0) throw DaemonError(std::string("eventfd failed: ") + std::strerror(errno));
+  BindSockets();
+  StartExposer();
+  if (!config.daemon.state_dir.empty()) {
+    try {
+      store.emplace(config.daemon.state_dir);
+      RestoreStreams();
+    } catch (const StateFileError& e) {
+      throw DaemonError(e.what());
+    }
+  }
+  metrics.streams().Set(static_cast<double>(streams.size()));
+}
+
+Daemon::Impl::~Impl() {
+  // Streams first (each waits for its refit), while the pool and the metrics still exist.
+  pool.Join();
+  streams.Clear();
+  StopExposer(exposer, metrics_host, metrics_port);
+  if (wake_fd >= 0) ::close(wake_fd);
+}
+
+void Daemon::Impl::BindSockets() {
+  const DaemonSettings& s = config.daemon;
+  // Frames much larger than max_message_bytes are refused by ZeroMQ itself (it drops the
+  // connection), so that one huge message cannot take the memory; up to twice the limit they
+  // reach the decoder and are counted as message_too_large.
+  const int64_t max_frame = static_cast<int64_t>(2 * s.max_message_bytes + 4096);
+  auto bind = [&](zmq::socket_t& socket, const std::string& endpoint, const char* key) {
+    try {
+      socket.bind(endpoint);
+    } catch (const zmq::error_t& e) {
+      throw DaemonError(std::string(key) + ": cannot bind " + endpoint + ": " + e.what());
+    }
+    return socket.get(zmq::sockopt::last_endpoint);
+  };
+  for (const std::string& endpoint : s.ingest_endpoints) {
+    zmq::socket_t socket(context, zmq::socket_type::pull);
+    socket.set(zmq::sockopt::rcvhwm, s.receive_high_water_mark);
+    socket.set(zmq::sockopt::maxmsgsize, max_frame);
+    socket.set(zmq::sockopt::linger, 0);
+    endpoints.ingest.push_back(bind(socket, endpoint, "ingest.endpoints"));
+    ingest.push_back(std::move(socket));
+  }
+  if (!s.subscribe_endpoints.empty()) {
+    zmq::socket_t socket(context, zmq::socket_type::sub);
+    socket.set(zmq::sockopt::rcvhwm, s.receive_high_water_mark);
+    socket.set(zmq::sockopt::maxmsgsize, max_frame);
+    socket.set(zmq::sockopt::linger, 0);
+    socket.set(zmq::sockopt::subscribe, "");
+    for (const std::string& endpoint : s.subscribe_endpoints) {
+      try {
+        socket.connect(endpoint);
+      } catch (const zmq::error_t& e) {
+        throw DaemonError("ingest.subscribe: cannot connect to " + endpoint + ": " + e.what());
+      }
+      endpoints.subscribe.push_back(endpoint);
+    }
+    ingest.push_back(std::move(socket));
+  }
+  publish = zmq::socket_t(context, zmq::socket_type::pub);
+  publish.set(zmq::sockopt::sndhwm, s.publish_high_water_mark);
+  publish.set(zmq::sockopt::linger, kPublishLingerMs);
+  endpoints.publish = bind(publish, s.publish_endpoint, "publish.endpoint");
+  control = zmq::socket_t(context, zmq::socket_type::rep);
+  control.set(zmq::sockopt::maxmsgsize, static_cast<int64_t>(kControlMaxBytes));
+  control.set(zmq::sockopt::linger, 0);
+  endpoints.control = bind(control, s.control_endpoint, "control.endpoint");
+}
+
+void Daemon::Impl::StartExposer() {
+  const std::string& listen = config.daemon.metrics_listen;
+  try {
+    exposer = std::make_unique<prometheus::Exposer>(listen, 2);
+  } catch (const std::exception& e) {
+    throw DaemonError("metrics.listen: cannot listen on " + listen + ": " + e.what());
+  }
+  exposer->RegisterCollectable(metrics.registry());
+  const std::vector<int> ports = exposer->GetListeningPorts();
+  metrics_host = listen.substr(0, listen.rfind(':'));
+  metrics_port = ports.empty() ? 0 : ports[0];
+  endpoints.metrics = metrics_host + ":" + std::to_string(metrics_port);
+}
+
+std::unique_ptr<Stream> Daemon::Impl::MakeStream(const std::string& key, int dims,
+                                                 const DetectorOptions& stream_options) {
+  auto stream = std::make_unique<Stream>(key, dims, stream_options, &pool, &metrics,
+                                         config.daemon.anomaly_ratio_window,
+                                         [this](Stream* s) { NoteFinishedRefit(s); });
+  if (!config.daemon.record_dir.empty()) {
+    stream->recorder = std::make_unique<StreamRecorder>(
+        config.daemon.record_dir, key, dims, stream_options.feature_names,
+        config.daemon.record_rotate_bytes, config.daemon.record_keep_files);
+  }
+  return stream;
+}
+
+void Daemon::Impl::RestoreStreams() {
+  for (const std::string& path : store->RemoveStaleTemporaries()) {
+    spdlog::info("state: removed {} (left by an interrupted write)", path);
+  }
+  for (const StateStore::Entry& entry : store->List()) {
+    if (static_cast<int64_t>(streams.size()) >= config.daemon.max_streams) {
+      spdlog::warn("state: {} not restored: limits.max_streams = {} streams are restored already",
+                   entry.path, config.daemon.max_streams);
+      continue;
+    }
+    std::string reason;
+    try {
+      StreamStateFile file = store->Load(entry);
+      const DetectorOptions stream_options = DetectorOptionsFor(config, file.stream_key);
+      if (!stream_options.feature_names.empty() &&
+          stream_options.feature_names.size() != static_cast<std::size_t>(file.dims)) {
+        throw StateFileError(entry.path + ": holds " + std::to_string(file.dims) +
+                             " features but the configuration names " +
+                             std::to_string(stream_options.feature_names.size()));
+      }
+      std::unique_ptr<Stream> stream = MakeStream(file.stream_key, file.dims, stream_options);
+      stream->detector->ImportState(file.state);
+      const auto model = stream->detector->model();
+      stream->seen_model_version = model ? model->version() : 0;
+      stream->seen_coalesced = stream->detector->counters().refits_coalesced;
+      stream->snapshot_vectors = stream->detector->counters().vectors;
+      stream->snapshot_model_version = stream->seen_model_version;
+      stream->RefreshSlowGauges();
+      spdlog::info("state: restored stream={} state={} model_version={} window={} from {}",
+                   file.stream_key, StreamStateName(stream->detector->state()),
+                   stream->seen_model_version, stream->detector->window_size(), entry.path);
+      streams.Add(std::move(stream));
+      ++restored_streams;
+      continue;
+    } catch (const StateFileError& e) {
+      reason = e.what();
+    } catch (const PreconditionError& e) {
+      reason = entry.path + ": " + e.what();
+    }
+    try {
+      const std::string moved = store->Quarantine(entry.path);
+      spdlog::error("state: {}; moved it to {}; stream {} starts afresh", reason, moved,
+                    entry.stream_key);
+    } catch (const StateFileError& e) {
+      spdlog::error("state: {}; {}; stream {} starts afresh", reason, e.what(), entry.stream_key);
+    }
+  }
+}
+
+void Daemon::Impl::Wake() {
+  const uint64_t one = 1;
+  // EAGAIN means the counter is saturated: a wake-up is pending anyway.
+  [[maybe_unused]] const ssize_t n = ::write(wake_fd, &one, sizeof one);
+}
+
+void Daemon::Impl::StartTimer(boost::asio::steady_timer& timer, double seconds,
+                              std::atomic<bool>& flag) {
+  timer.expires_after(
+      std::chrono::duration_cast<Clock::duration>(std::chrono::duration<double>(seconds)));
+  timer.async_wait([this, &timer, &flag, seconds](const boost::system::error_code& error) {
+    if (error) return;  // cancelled at shutdown
+    flag = true;
+    Wake();
+    const double next = &timer == &snapshot_timer ? snapshot_interval_seconds.load() : seconds;
+    StartTimer(timer, next, flag);
+  });
+}
+
+void Daemon::Impl::WaitForSignal() {
+  signals->async_wait([this](const boost::system::error_code& error, int signal) {
+    if (error) return;
+    if (signal == SIGHUP) {
+      spdlog::info("SIGHUP: reloading {} (endpoints do not change on reload)",
+                   config.source_path.empty() ? "(no file)" : config.source_path);
+      reload_requested = true;
+    } else {
+      const char* name = signal == SIGTERM ? "SIGTERM" : "SIGINT";
+      if (stop_signals.fetch_add(1) > 0) {
+        spdlog::critical("{} again: exiting at once, without waiting for refits or writing state",
+                         name);
+        spdlog::default_logger()->flush();
+        std::_Exit(1);
+      }
+      spdlog::info("{}: stopping", name);
+      stop_requested = true;
+    }
+    Wake();
+    WaitForSignal();
+  });
+}
+
+void Daemon::Impl::Start() {
+  for (const auto& e : endpoints.ingest) spdlog::info("listening ingest={}", e);
+  for (const auto& e : endpoints.subscribe) spdlog::info("connected subscribe={}", e);
+  spdlog::info("listening publish={}", endpoints.publish);
+  spdlog::info("listening control={}", endpoints.control);
+  spdlog::info("listening metrics={}", endpoints.metrics);
+  if (!options.ready_file.empty()) {
+    const nlohmann::json ready = {{"ingest", endpoints.ingest},
+                                  {"publish", endpoints.publish},
+                                  {"control", endpoints.control},
+                                  {"metrics", endpoints.metrics}};
+    const std::string text = ready.dump() + "\n";
+    try {
+      WriteFileAtomically(options.ready_file, reinterpret_cast<const uint8_t*>(text.data()),
+                          text.size());
+    } catch (const ModelFileError& e) {
+      throw DaemonError(std::string("ready file: ") + e.what());
+    }
+  }
+  if (options.handle_signals) {
+    signals.emplace(io, SIGINT, SIGTERM, SIGHUP);
+    WaitForSignal();
+  }
+  if (store) StartTimer(snapshot_timer, snapshot_interval_seconds.load(), snapshot_due);
+  if (!config.daemon.record_dir.empty()) StartTimer(flush_timer, kFlushIntervalSeconds, flush_due);
+  started = true;
+  io_thread = std::thread([this] {
+    NameThisThread("nuwatchd-io");
+    if (options.handle_signals) {
+      // The program blocks these signals in every other thread, so that they arrive here.
+      sigset_t set;
+      sigemptyset(&set);
+      sigaddset(&set, SIGINT);
+      sigaddset(&set, SIGTERM);
+      sigaddset(&set, SIGHUP);
+      pthread_sigmask(SIG_UNBLOCK, &set, nullptr);
+    }
+    io.run();
+  });
+  socket_thread = std::thread([this] { RunSocketThread(); });
+  spdlog::info("ready streams={}", restored_streams);
+}
+
+void Daemon::Impl::RunSocketThread() {
+  NameThisThread("nuwatchd-socket");
+  try {
+    Loop();
+  } catch (const std::exception& e) {
+    spdlog::critical("socket thread failed: {}; stopping", e.what());
+  }
+  Shutdown();
+}
+
+void Daemon::Impl::Loop() {
+  std::vector<zmq_pollitem_t> items;
+  items.push_back({nullptr, wake_fd, ZMQ_POLLIN, 0});
+  items.push_back({control.handle(), 0, ZMQ_POLLIN, 0});
+  for (auto& socket : ingest) items.push_back({socket.handle(), 0, ZMQ_POLLIN, 0});
+  while (true) {
+    try {
+      zmq::poll(items, std::chrono::milliseconds(1000));
+    } catch (const zmq::error_t& e) {
+      if (e.num() == EINTR) continue;
+      throw;
+    }
+    if (items[0].revents & ZMQ_POLLIN) {
+      uint64_t count;
+      [[maybe_unused]] const ssize_t n = ::read(wake_fd, &count, sizeof count);
+    }
+    if (stop_requested.load()) return;
+    try {
+      if (reload_requested.exchange(false)) Reload();
+      HandleFinishedRefits();
+      if (snapshot_due.exchange(false)) PeriodicSnapshot();
+      if (flush_due.exchange(false)) FlushRecordings();
+      if (items[1].revents & ZMQ_POLLIN) HandleControl();
+      for (std::size_t i = 0; i < ingest.size(); ++i) {
+        if (items[2 + i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
+      }
+    } catch (const zmq::error_t& e) {
+      if (e.num() == EINTR) continue;
+      if (e.num() == ETERM) return;
+      spdlog::error("ZeroMQ error: {}", e.what());
+    } catch (const std::exception& e) {
+      // A bug, not bad input (bad input is rejected and counted): log it and keep serving.
+      spdlog::error("internal error: {}", e.what());
+    }
+  }
+}
+
+void Daemon::Impl::Shutdown() {
+  // Stop taking input: messages still queued in the ingest sockets are dropped.
+  ingest.clear();
+  int busy = 0;
+  for (Stream* s : streams.Sorted()) busy += s->executor.idle() ? 0 : 1;
+  if (busy > 0) spdlog::info("stopping: waiting for {} refits in flight", busy);
+  pool.Join();
+  try {
+    HandleFinishedRefits();
+    WaitForStateWrites();  // so that no stream's final snapshot is skipped as still queued
+    int written = 0;
+    if (store) {
+      for (Stream* s : streams.Sorted()) written += TrySnapshot(*s, false) ? 1 : 0;
+    }
+    FlushRecordings();
+    for (Stream* s : streams.Sorted()) s->recorder.reset();
+    if (store) spdlog::info("stopping: {} state files to write", written);
+  } catch (const std::exception& e) {
+    spdlog::error("stopping: {}", e.what());
+  }
+  // The final writes are queued on the io thread; stop it once they are done.
+  boost::asio::post(io, [this] {
+    if (signals) signals->cancel();
+    snapshot_timer.cancel();
+    flush_timer.cancel();
+    io_work.reset();
+  });
+  if (io_thread.joinable()) io_thread.join();
+  publish.close();
+  control.close();
+  spdlog::info("stopped");
+}
+
+void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
+  for (int n = 0; n < kMessagesPerTurn; ++n) {
+    if (!socket.recv(key_message, zmq::recv_flags::dontwait)) return;
+    std::size_t frames = 1;
+    bool more = key_message.more();
+    if (more) {
+      // The frames of a multipart message arrive together: these never wait.
+      (void)socket.recv(payload_message, zmq::recv_flags::none);
+      ++frames;
+      more = payload_message.more();
+    }
+    while (more) {
+      (void)socket.recv(extra_message, zmq::recv_flags::none);
+      ++frames;
+      more = extra_message.more();
+    }
+    if (CheckFrameCount(frames) != RejectReason::kNone) {
+      Reject(RejectReason::kWrongFrameCount, "the message does not have exactly two frames", {});
+      continue;
+    }
+    HandleIngest(key_message.to_string_view(), payload_message.to_string_view());
+  }
+}
+
+void Daemon::Impl::HandleIngest(std::string_view key, std::string_view payload) {
+  const DecodeResult decoded = DecodeIngest(key, payload, limits, &scratch);
+  if (!decoded.ok()) {
+    Reject(decoded.reason, decoded.detail,
+           decoded.reason == RejectReason::kBadStreamKey ? std::string_view() : key);
+    return;
+  }
+  const PayloadView& p = decoded.payload;
+  Stream* stream = streams.Find(key);
+  if (stream == nullptr) {
+    if (static_cast<int64_t>(streams.size()) >= config.daemon.max_streams) {
+      Reject(RejectReason::kStreamLimit, "a new stream, and limits.max_streams are tracked", key);
+      return;
+    }
+    const std::string stream_key(key);
+    const DetectorOptions stream_options = DetectorOptionsFor(config, stream_key);
+    if (!stream_options.feature_names.empty() &&
+        stream_options.feature_names.size() != static_cast<std::size_t>(p.dims)) {
+      Reject(RejectReason::kDimsMismatch, "the configured feature_names fix another length", key);
+      return;
+    }
+    try {
+      stream = streams.Add(MakeStream(stream_key, p.dims, stream_options));
+    } catch (const PreconditionError& e) {
+      spdlog::error("stream {}: cannot create its detector: {}", stream_key, e.what());
+      return;
+    }
+    metrics.streams().Set(static_cast<double>(streams.size()));
+    spdlog::info("new stream={} dims={}", stream_key, p.dims);
+  } else if (p.dims != stream->dims) {
+    Reject(RejectReason::kDimsMismatch, "the stream has vectors of another length", key);
+    return;
+  }
+  for (int i = 0; i < p.count; ++i) ProcessVector(*stream, p, i);
+}
+
+void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int index) {
+  const double t = payload.time(index);
+  payload.CopyRow(index, stream.row);
+  if (stream.recorder) Record(stream, t);
+  Detector& detector = *stream.detector;
+  const Clock::time_point started_at = Clock::now();
+  const Verdict v = detector.Observe(t, stream.row);
+  metrics.score_duration().Observe(
+      std::chrono::duration<double>(Clock::now() - started_at).count());
+
+  const StreamMetrics& m = stream.metrics;
+  m.vectors->Increment();
+  const bool scoring = v.state == StreamState::kScoring;
+  if (scoring) {
+    stream.ratio.Push(v.outlier);
+    m.anomaly_ratio->Set(stream.ratio.Ratio());
+    if (v.outlier) m.anomalies->Increment();
+    m.model_age_seconds->Set(t - detector.model_time());
+    if (v.model_version != stream.seen_model_version) {
+      stream.seen_model_version = v.model_version;
+      stream.RefreshSlowGauges();
+    }
+  }
+  m.window_vectors->Set(static_cast<double>(detector.window_size()));
+  const int64_t coalesced = detector.counters().refits_coalesced;
+  if (coalesced != stream.seen_coalesced) {
+    m.refit(RefitResult::kCoalesced)
+        .Increment(static_cast<double>(coalesced - stream.seen_coalesced));
+    stream.seen_coalesced = coalesced;
+  }
+  if (v.transition.type != IncidentTransitionType::kNone) {
+    m.incidents_open->Set(v.transition.type == IncidentTransitionType::kOpened ? 1 : 0);
+  }
+
+  if (!scoring && !config.daemon.publish_learning) return;
+  ScoredVector result;
+  result.t = t;
+  result.learning = !scoring;
+  result.decision = v.decision;
+  result.anomaly = v.outlier;
+  result.incident_id = v.incident_id == 0 ? -1 : static_cast<int64_t>(v.incident_id);
+  result.model_version = v.model_version;
+  result.support_vectors = v.support_vectors;
+  std::size_t top = 0;
+  if (scoring && v.outlier) {
+    if (const auto model = detector.model()) {
+      // Explain allocates its result; only flagged vectors pay for it.
+      const std::vector<FeatureShare> shares = model->Explain(stream.row, kTopFeatures);
+      const auto& names = stream.options.feature_names;
+      for (const FeatureShare& share : shares) {
+        FeatureShareView& view = top_features[top++];
+        view.index = share.feature;
+        view.share = share.share;
+        view.name = static_cast<std::size_t>(share.feature) < names.size() &&
+                            names.size() == static_cast<std::size_t>(stream.dims)
+                        ? std::string_view(names[share.feature])
+                        : std::string_view();
+        if (top == top_features.size()) break;
+      }
+    }
+  }
+  result.top_features = std::span<const FeatureShareView>(top_features.data(), top);
+  EncodeResultJson(result, &result_json);
+  Publish(stream.key, result_json);
+
+  if (v.transition.type != IncidentTransitionType::kNone) {
+    const TrackedIncident& incident = v.transition.incident;
+    IncidentEvent event;
+    event.kind = v.transition.type == IncidentTransitionType::kOpened ? IncidentEventKind::kOpen
+                                                                      : IncidentEventKind::kClose;
+    event.incident_id = static_cast<int64_t>(incident.id);
+    event.t = t;
+    event.start = incident.start_time;
+    event.end = incident.end_time;
+    event.peak_decision = incident.peak_decision;
+    EncodeIncidentEventJson(event, &event_json);
+    Publish(stream.key, event_json);
+    spdlog::info("stream={} incident {} id={} start={} peak_decision={}", stream.key,
+                 event.kind == IncidentEventKind::kOpen ? "opened" : "closed", incident.id,
+                 incident.start_time, incident.peak_decision);
+  }
+}
+
+void Daemon::Impl::Reject(RejectReason reason, std::string_view detail, std::string_view key) {
+  metrics.CountRejected(reason);
+  bool& logged = rejection_logged[static_cast<std::size_t>(reason)];
+  const std::string_view label = RejectReasonLabel(reason);
+  if (!logged) {
+    logged = true;
+    spdlog::warn(
+        "rejected an ingest message{}{}: {} ({}); further {} rejections are logged at "
+        "debug level",
+        key.empty() ? "" : " for stream=", key, label, detail, label);
+  } else {
+    spdlog::debug("rejected an ingest message{}{}: {} ({})", key.empty() ? "" : " for stream=", key,
+                  label, detail);
+  }
+}
+
+void Daemon::Impl::Publish(std::string_view key, const std::string& body) {
+  try {
+    // PUB never blocks: at a subscriber's high-water mark ZeroMQ drops for that subscriber.
+    if (!publish.send(zmq::const_buffer(key.data(), key.size()),
+                      zmq::send_flags::sndmore | zmq::send_flags::dontwait) ||
+        !publish.send(zmq::const_buffer(body.data(), body.size()), zmq::send_flags::dontwait)) {
+      metrics.publish_failures().Increment();
+    }
+  } catch (const zmq::error_t& e) {
+    metrics.publish_failures().Increment();
+    spdlog::debug("publish failed: {}", e.what());
+  }
+}
+
+void Daemon::Impl::Record(Stream& stream, double time) {
+  if (stream.recording_failed) return;  // paused until the next flush tick
+  const std::string error = stream.recorder->Append(time, stream.row);
+  if (!error.empty()) {
+    spdlog::error("recording: stream {}: {}; retrying in {} s", stream.key, error,
+                  kFlushIntervalSeconds);
+    stream.recording_failed = true;
+  }
+}
+
+void Daemon::Impl::FlushRecordings() {
+  for (Stream* s : streams.Sorted()) {
+    if (!s->recorder) continue;
+    s->recording_failed = false;
+    const std::string error = s->recorder->Flush();
+    if (!error.empty()) {
+      spdlog::error("recording: stream {}: {}", s->key, error);
+      s->recording_failed = true;
+    }
+  }
+}
+
+void Daemon::Impl::NoteFinishedRefit(Stream* stream) {
+  {
+    MutexLock lock(&finished_mutex);
+    finished_refits.push_back(stream);
+  }
+  Wake();
+}
+
+void Daemon::Impl::HandleFinishedRefits() {
+  finished_work.clear();
+  {
+    MutexLock lock(&finished_mutex);
+    finished_work.swap(finished_refits);
+  }
+  for (Stream* s : finished_work) {
+    const auto model = s->detector->model();
+    s->seen_model_version = model ? model->version() : 0;
+    s->RefreshSlowGauges();
+    const RefitReport report = s->detector->last_refit();
+    if (report.ok && !report.discarded) {
+      spdlog::debug("stream={} refit {} ({}): model_version={} support_vectors={} {:.3f} s", s->key,
+                    RefitReasonName(report.reason), report.warm ? "warm" : "cold",
+                    report.model_version, report.support_vectors, report.total_seconds);
+    } else if (!report.ok && !report.discarded) {
+      spdlog::warn("stream={} refit failed, the old model stays: {}", s->key, report.error);
+    }
+    if (store) s->snapshot_wanted = true;
+  }
+  for (Stream* s : finished_work) {
+    if (s->snapshot_wanted) TrySnapshot(*s, false);
+  }
+}
+
+bool Daemon::Impl::TrySnapshot(Stream& stream, bool force) {
+  if (!store) return false;
+  if (!stream.executor.idle() || stream.write_queued.load(std::memory_order_acquire)) {
+    stream.snapshot_wanted = true;  // taken when the refit has finished, or at the next tick
+    return false;
+  }
+  stream.snapshot_wanted = false;
+  const DetectorCounters counters = stream.detector->counters();
+  const auto model = stream.detector->model();
+  const uint64_t version = model ? model->version() : 0;
+  if (!force && counters.vectors == stream.snapshot_vectors &&
+      version == stream.snapshot_model_version) {
+    return false;  // nothing new since the last one
+  }
+  auto state = std::make_shared<const DetectorState>(stream.detector->ExportState());
+  stream.snapshot_vectors = counters.vectors;
+  stream.snapshot_model_version = version;
+  stream.write_queued.store(true, std::memory_order_release);
+  boost::asio::post(io, [this, &stream, state] {
+    try {
+      store->Save(stream.key, stream.dims, *state);
+    } catch (const StateFileError& e) {
+      metrics.state_write_failures().Increment();
+      spdlog::error("state: stream {}: {}", stream.key, e.what());
+    }
+    stream.write_queued.store(false, std::memory_order_release);
+  });
+  return true;
+}
+
+void Daemon::Impl::PeriodicSnapshot() {
+  int written = 0;
+  for (Stream* s : streams.Sorted()) {
+    written += TrySnapshot(*s, false) ? 1 : 0;
+    s->metrics.memory_bytes->Set(static_cast<double>(s->detector->MemoryBytes()));
+  }
+  if (written > 0) spdlog::debug("state: snapshot of {} streams queued", written);
+}
+
+void Daemon::Impl::WaitForStateWrites() {
+  std::promise<void> done;
+  std::future<void> future = done.get_future();
+  boost::asio::post(io, [&done] { done.set_value(); });  // after every write queued before it
+  future.wait();
+}
+
+void Daemon::Impl::HandleControl() {
+  zmq::message_t request;
+  if (!control.recv(request, zmq::recv_flags::dontwait)) return;
+  bool multipart = false;
+  for (bool more = request.more(); more;) {
+    zmq::message_t extra;
+    (void)control.recv(extra, zmq::recv_flags::none);
+    more = extra.more();
+    multipart = true;
+  }
+  const std::string reply =
+      multipart ? ControlErrorReply("a control request is a single frame")
+                : HandleControlRequest(request.to_string_view(), *this, NUWATCH_VERSION);
+  (void)control.send(zmq::buffer(reply), zmq::send_flags::dontwait);
+}
+
+std::vector<StreamStatus> Daemon::Impl::Status() {
+  std::vector<StreamStatus> out;
+  for (Stream* s : streams.Sorted()) {
+    const Detector& d = *s->detector;
+    const auto model = d.model();
+    const DetectorCounters c = d.counters();
+    StreamStatus st;
+    st.stream = s->key;
+    st.state = std::string(StreamStateName(d.state()));
+    st.dims = s->dims;
+    st.vectors = c.vectors;
+    st.anomalies = c.anomalies;
+    st.support_vectors = model ? model->num_support() : 0;
+    st.window = d.window_size();
+    st.model_version = model ? model->version() : 0;
+    st.refits = c.refits_started;
+    st.incident = d.open_incident();
+    st.memory_bytes = d.MemoryBytes();
+    st.snapshot_vectors = s->snapshot_vectors;
+    out.push_back(std::move(st));
+  }
+  return out;
+}
+
+SnapshotOutcome Daemon::Impl::Snapshot() {
+  SnapshotOutcome outcome;
+  if (!store) {
+    outcome.ok = false;
+    outcome.error = "no state directory is configured (state.dir or --state-dir)";
+    return outcome;
+  }
+  WaitForStateWrites();
+  for (Stream* s : streams.Sorted()) {
+    if (s->executor.idle()) {
+      outcome.written += TrySnapshot(*s, true) ? 1 : 0;
+    } else {
+      s->snapshot_wanted = true;
+      ++outcome.pending;
+    }
+  }
+  WaitForStateWrites();
+  spdlog::info("state: snapshot on request: {} written, {} pending a refit", outcome.written,
+               outcome.pending);
+  return outcome;
+}
+
+std::optional<std::string> Daemon::Impl::Relearn(const std::string& key) {
+  Stream* s = streams.Find(key);
+  if (s == nullptr) return "unknown stream '" + key + "'";
+  s->detector->Relearn();
+  s->ratio = AnomalyRatioRing(config.daemon.anomaly_ratio_window);
+  s->metrics.anomaly_ratio->Set(0);
+  s->seen_model_version = 0;
+  s->RefreshSlowGauges();
+  s->snapshot_wanted = true;
+  spdlog::info(
+      "relearn: stream={} dropped its model and window; it learns from the next {} "
+      "vectors",
+      key, s->options.warmup);
+  return std::nullopt;
+}
+
+ReloadOutcome Daemon::Impl::Reload() {
+  ReloadOutcome outcome;
+  outcome.config = config.source_path;
+  if (config.source_path.empty()) {
+    outcome.ok = false;
+    outcome.error = "started without --config: there is no file to reload";
+    spdlog::error("reload rejected: {}", outcome.error);
+    return outcome;
+  }
+  Config next;
+  try {
+    next = LoadConfig(config.source_path);
+    ApplyOverrides(options.overrides, &next.daemon);
+    ValidateDaemonSettings(next.daemon, config.source_path + " (with the command-line flags)");
+    CheckConfigForDaemon(next);
+    if (const std::string error = WireLimitsError(LimitsOf(next.daemon)); !error.empty()) {
+      throw ConfigError(config.source_path + ": limits: " + error);
+    }
+  } catch (const ConfigError& e) {
+    outcome.ok = false;
+    outcome.error = e.what();
+    spdlog::error("reload rejected, the current configuration stays in force: {}", e.what());
+    return outcome;
+  }
+  const std::vector<std::string> ignored = RestartOnlyChanges(config.daemon, next.daemon);
+  if (!ignored.empty()) {
+    spdlog::warn(
+        "reload: {} changed but take effect only at a restart (the keys marked restart in "
+        "config/nuwatchd.toml never change on reload)",
+        Join(ignored));
+  }
+  KeepRestartOnly(config.daemon, &next.daemon);
+  next.source_path = config.source_path;
+
+  spdlog::set_level(LogLevel(next.daemon.log_level));
+  limits = LimitsOf(next.daemon);
+  snapshot_interval_seconds = next.daemon.snapshot_interval_seconds;
+  const bool new_ratio_window =
+      next.daemon.anomaly_ratio_window != config.daemon.anomaly_ratio_window;
+  for (Stream* s : streams.Sorted()) {
+    if (new_ratio_window) {
+      s->ratio = AnomalyRatioRing(next.daemon.anomaly_ratio_window);
+      s->metrics.anomaly_ratio->Set(0);
+    }
+    if (s->recorder) {
+      s->recorder->set_rotation(next.daemon.record_rotate_bytes, next.daemon.record_keep_files);
+    }
+    const DetectorOptions stream_options = DetectorOptionsFor(next, s->key);
+    if (SameDetectorOptions(stream_options, s->options)) continue;
+    if (!stream_options.feature_names.empty() &&
+        stream_options.feature_names.size() != static_cast<std::size_t>(s->dims)) {
+      spdlog::warn(
+          "reload: stream={} keeps its settings: the new feature_names have {} names, "
+          "the stream {} features",
+          s->key, stream_options.feature_names.size(), s->dims);
+      continue;
+    }
+    try {
+      s->detector->UpdateOptions(stream_options);
+    } catch (const PreconditionError& e) {
+      spdlog::warn("reload: stream={} keeps its settings: {}", s->key, e.what());
+      continue;
+    }
+    s->options = stream_options;
+    s->metrics.support_vector_budget->Set(
+        static_cast<double>(stream_options.support_vector_budget));
+    ++outcome.streams_updated;
+  }
+  config = std::move(next);
+  spdlog::info(
+      "reload: applied {}: {} of {} streams take new detector settings at their next "
+      "refit",
+      config.source_path, outcome.streams_updated, streams.size());
+  return outcome;
+}
+
+Daemon::Daemon(DaemonOptions options) : impl_(std::make_unique<Impl>(std::move(options))) {}
+
+Daemon::~Daemon() {
+  if (impl_->started) {
+    RequestStop();
+    Wait();
+  }
+}
+
+void Daemon::Start() {
+  if (impl_->started) throw std::logic_error("Daemon::Start called twice");
+  impl_->Start();
+}
+
+void Daemon::RequestStop() {
+  impl_->stop_requested = true;
+  impl_->Wake();
+}
+
+void Daemon::RequestReload() {
+  impl_->reload_requested = true;
+  impl_->Wake();
+}
+
+void Daemon::Wait() {
+  if (!impl_->started || impl_->joined) return;
+  impl_->socket_thread.join();
+  impl_->joined = true;
+}
+
+const DaemonEndpoints& Daemon::endpoints() const { return impl_->endpoints; }
+
+std::string Daemon::MetricsText() const { return impl_->metrics.Serialize(); }
+
+}  // namespace nuwatch

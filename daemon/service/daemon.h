@@ -1,0 +1,110 @@
+// nuwatchd as a library class, so that tests run the whole service in-process with real sockets.
+//
+// Threads: one socket thread owns every ZeroMQ socket (ingest PULL and SUB, the result PUB, the
+// control REP) and an eventfd that other threads use to wake it; it polls them with zmq::poll,
+// decodes, scores (Detector::Observe), publishes and answers control requests. Refits run on a
+// Boost.Asio thread_pool of daemon.refit_threads threads (RefitPool). One Boost.Asio io_context
+// thread runs the signal handlers (SIGTERM and SIGINT stop, SIGHUP reloads; only with
+// handle_signals), the snapshot timer, the recording flush timer and the state-file writes, so
+// that disk latency never stalls scoring. The prometheus-cpp Exposer serves /metrics from its own
+// threads.
+//
+// Log lines (spdlog, default logger) the tests and scripts rely on; each is a whole message:
+//   listening ingest=ENDPOINT      one per bound PULL socket, the actual endpoint (a wildcard
+//                                  port resolved)
+//   connected subscribe=ENDPOINT   one per SUB connection, as configured
+//   listening publish=ENDPOINT
+//   listening control=ENDPOINT
+//   listening metrics=HOST:PORT    the actual port
+//   ready streams=N                after the lines above; N streams were restored
+//   stopped                        the last line of a clean shutdown
+// The ready file (DaemonOptions::ready_file) is written atomically after the listening lines:
+//   {"ingest":["tcp://..."],"publish":"tcp://...","control":"tcp://...","metrics":"HOST:PORT"}
+//
+// Thread safety: construct, Start, Wait and destroy from one thread; RequestStop, RequestReload,
+// endpoints and MetricsText from any thread.
+#pragma once
+
+#include <memory>
+#include <optional>
+#include <stdexcept>
+#include <string>
+#include <vector>
+
+#include "settings/config.h"
+
+namespace nuwatch {
+
+// The daemon could not start: a socket or the metrics endpoint could not be bound, the state
+// directory could not be created. The message names the endpoint or directory.
+class DaemonError : public std::runtime_error {
+ public:
+  using std::runtime_error::runtime_error;
+};
+
+// nuwatchd's command-line flags that replace configuration values. They are applied to the file
+// at start-up and again at every reload.
+struct CommandLineOverrides {
+  std::optional<std::vector<std::string>> ingest_endpoints;     // --ingest (repeatable)
+  std::optional<std::vector<std::string>> subscribe_endpoints;  // --subscribe (repeatable)
+  std::optional<std::string> publish_endpoint;                  // --publish
+  std::optional<std::string> metrics_listen;                    // --metrics
+  std::optional<std::string> control_endpoint;                  // --control
+  std::optional<std::string> state_dir;                         // --state-dir
+  std::optional<std::string> log_level;                         // --log-level
+};
+void ApplyOverrides(const CommandLineOverrides& overrides, DaemonSettings* settings);
+
+// What the daemon needs beyond ParseConfig's checks: every stream's detector options (the
+// [detector] section and each [[stream]] table applied to it) must pass CheckDetectorOptions.
+// Throws ConfigError naming the file and the section.
+void CheckConfigForDaemon(const Config& config);
+
+struct DaemonOptions {
+  // The configuration, overrides applied; config.source_path is the file a reload reads again
+  // ("" = started without a file: reload is refused).
+  Config config;
+  CommandLineOverrides overrides;  // re-applied to the file on reload
+  std::string ready_file;          // "" = none
+  bool handle_signals = false;     // SIGTERM/SIGINT stop, SIGHUP reloads (the program; not tests)
+};
+
+struct DaemonEndpoints {
+  std::vector<std::string> ingest;     // bound, as ZMQ_LAST_ENDPOINT reports them
+  std::vector<std::string> subscribe;  // connected, as configured
+  std::string publish;
+  std::string control;
+  std::string metrics;  // HOST:PORT with the actual port
+};
+
+class Daemon {
+ public:
+  // Checks the configuration (ConfigError), sets the log level, binds every socket and the
+  // metrics endpoint and restores the state directory (DaemonError). A state file that cannot be
+  // used is moved aside (state_store.h) and its stream starts afresh; that is not an error.
+  explicit Daemon(DaemonOptions options);
+  // RequestStop() and Wait() if started.
+  ~Daemon();
+  Daemon(const Daemon&) = delete;
+  Daemon& operator=(const Daemon&) = delete;
+
+  // Logs the listening lines, writes the ready file and starts the threads. Call once.
+  void Start();
+  // Stop taking input, wait for the refits in flight, snapshot every stream, close the sockets.
+  // Asynchronous; Wait() returns once it is done.
+  void RequestStop();
+  // Reread config.source_path as SIGHUP does (asynchronous; the outcome is logged).
+  void RequestReload();
+  // Blocks until the daemon has stopped (after RequestStop, a signal or a fatal error).
+  void Wait();
+
+  const DaemonEndpoints& endpoints() const;
+  // The text exposition of every metric, as /metrics serves it.
+  std::string MetricsText() const;
+
+ private:
+  struct Impl;
+  std::unique_ptr<Impl> impl_;
+};
+
+}  // namespace nuwatch

@@ -1,0 +1,154 @@
+#include "service/metrics.h"
+
+#include <prometheus/text_serializer.h>
+
+#include <sstream>
+
+namespace nuwatch {
+
+std::string_view RefitResultLabel(RefitResult result) {
+  switch (result) {
+    case RefitResult::kOk:
+      return "ok";
+    case RefitResult::kNotConverged:
+      return "not_converged";
+    case RefitResult::kFailed:
+      return "failed";
+    case RefitResult::kDiscarded:
+      return "discarded";
+    case RefitResult::kCoalesced:
+      return "coalesced";
+  }
+  return "unknown";
+}
+
+RefitResult ClassifyRefit(const RefitReport& report) {
+  if (report.discarded) return RefitResult::kDiscarded;
+  if (!report.ok) return RefitResult::kFailed;
+  return report.converged ? RefitResult::kOk : RefitResult::kNotConverged;
+}
+
+namespace {
+
+template <typename Builder>
+auto& Build(Builder builder, const std::string& name, const std::string& help,
+            prometheus::Registry& registry) {
+  return builder.Name(name).Help(help).Register(registry);
+}
+
+}  // namespace
+
+DaemonMetrics::DaemonMetrics(const std::string& version)
+    : registry_(std::make_shared<prometheus::Registry>()) {
+  using prometheus::BuildCounter;
+  using prometheus::BuildGauge;
+  using prometheus::BuildHistogram;
+  auto& r = *registry_;
+  vectors_ = &Build(BuildCounter(), "nuwatch_vectors_total",
+                    "Vectors processed per stream, learning and scored.", r);
+  anomalies_ = &Build(BuildCounter(), "nuwatch_anomalies_total",
+                      "Vectors flagged as outside the learnt envelope (decision < 0).", r);
+  anomaly_ratio_ = &Build(BuildGauge(), "nuwatch_anomaly_ratio",
+                          "Fraction of the stream's last metrics.anomaly_ratio_window scored "
+                          "vectors that were flagged.",
+                          r);
+  support_vectors_ = &Build(BuildGauge(), "nuwatch_support_vectors",
+                            "Support vectors in the stream's current model (0 while learning).", r);
+  support_vector_budget_ = &Build(
+      BuildGauge(), "nuwatch_support_vector_budget",
+      "Configured maximum of support vectors per model (detector.support_vector_budget).", r);
+  window_vectors_ =
+      &Build(BuildGauge(), "nuwatch_window_vectors", "Vectors in the stream's training window.", r);
+  refits_ = &Build(BuildCounter(), "nuwatch_refits_total",
+                   "Refits by result: ok, not_converged (stopped at the iteration cap, model "
+                   "used), failed (old model kept), discarded (stream relearnt meanwhile), "
+                   "coalesced (due while one was running, folded into the next).",
+                   r);
+  incidents_open_ = &Build(BuildGauge(), "nuwatch_incidents_open",
+                           "1 while the stream has an open incident, else 0.", r);
+  model_age_ = &Build(BuildGauge(), "nuwatch_model_age_seconds",
+                      "Data time since the model was fitted: the latest vector's timestamp minus "
+                      "the timestamp of the vector that triggered the model's refit (0 while "
+                      "learning).",
+                      r);
+  memory_ = &Build(BuildGauge(), "nuwatch_stream_memory_bytes",
+                   "Bytes held for the stream: window, model, last solution, incident ring.", r);
+
+  auto& rejected =
+      Build(BuildCounter(), "nuwatch_rejected_messages_total",
+            "Ingest messages rejected, by reason (daemon/protocol/PROTOCOL.md section 8).", r);
+  for (RejectReason reason : AllRejectReasons()) {
+    rejected_[static_cast<std::size_t>(reason)] =
+        &rejected.Add({{"reason", std::string(RejectReasonLabel(reason))}});
+  }
+
+  refit_duration_ =
+      &Build(BuildHistogram(), "nuwatch_refit_duration_seconds",
+             "Wall time of each refit, from the window copy to the model swap.", r)
+           .Add({}, prometheus::Histogram::BucketBoundaries{0.001, 0.0025, 0.005, 0.01, 0.025, 0.05,
+                                                            0.1, 0.25, 0.5, 1, 2.5, 5, 10});
+  score_duration_ = &Build(BuildHistogram(), "nuwatch_score_duration_seconds",
+                           "Wall time of scoring one vector (Detector::Observe).", r)
+                         .Add({}, prometheus::Histogram::BucketBoundaries{
+                                      1e-6, 2.5e-6, 5e-6, 1e-5, 2.5e-5, 5e-5, 1e-4, 2.5e-4, 5e-4,
+                                      1e-3, 2.5e-3, 5e-3, 1e-2});
+  streams_ = &Build(BuildGauge(), "nuwatch_streams", "Streams tracked.", r).Add({});
+  publish_failures_ =
+      &Build(BuildCounter(), "nuwatch_publish_failures_total",
+             "Result and event messages the PUB socket refused to take. Messages ZeroMQ drops "
+             "for a subscriber at publish.high_water_mark are not seen and not counted.",
+             r)
+           .Add({});
+  state_write_failures_ = &Build(BuildCounter(), "nuwatch_state_write_failures_total",
+                                 "State files that could not be written.", r)
+                               .Add({});
+  Build(BuildGauge(), "nuwatch_build_info", "Always 1; the version label names the build.", r)
+      .Add({{"version", version}})
+      .Set(1);
+}
+
+StreamMetrics DaemonMetrics::AddStream(const std::string& stream) {
+  const prometheus::Labels labels{{"stream", stream}};
+  StreamMetrics m;
+  m.vectors = &vectors_->Add(labels);
+  m.anomalies = &anomalies_->Add(labels);
+  m.anomaly_ratio = &anomaly_ratio_->Add(labels);
+  m.support_vectors = &support_vectors_->Add(labels);
+  m.support_vector_budget = &support_vector_budget_->Add(labels);
+  m.window_vectors = &window_vectors_->Add(labels);
+  m.incidents_open = &incidents_open_->Add(labels);
+  m.model_age_seconds = &model_age_->Add(labels);
+  m.memory_bytes = &memory_->Add(labels);
+  for (std::size_t i = 0; i < kRefitResultCount; ++i) {
+    m.refits[i] =
+        &refits_->Add({{"stream", stream},
+                       {"result", std::string(RefitResultLabel(static_cast<RefitResult>(i)))}});
+  }
+  return m;
+}
+
+void DaemonMetrics::RemoveStream(const StreamMetrics& m) {
+  if (m.vectors) vectors_->Remove(m.vectors);
+  if (m.anomalies) anomalies_->Remove(m.anomalies);
+  if (m.anomaly_ratio) anomaly_ratio_->Remove(m.anomaly_ratio);
+  if (m.support_vectors) support_vectors_->Remove(m.support_vectors);
+  if (m.support_vector_budget) support_vector_budget_->Remove(m.support_vector_budget);
+  if (m.window_vectors) window_vectors_->Remove(m.window_vectors);
+  if (m.incidents_open) incidents_open_->Remove(m.incidents_open);
+  if (m.model_age_seconds) model_age_->Remove(m.model_age_seconds);
+  if (m.memory_bytes) memory_->Remove(m.memory_bytes);
+  for (prometheus::Counter* c : m.refits)
+    if (c) refits_->Remove(c);
+}
+
+void DaemonMetrics::CountRejected(RejectReason reason) const {
+  if (prometheus::Counter* c = rejected_[static_cast<std::size_t>(reason)]) c->Increment();
+}
+
+std::string DaemonMetrics::Serialize() const {
+  std::ostringstream out;
+  prometheus::TextSerializer().Serialize(out, registry_->Collect());
+  return out.str();
+}
+
+}  // namespace nuwatch

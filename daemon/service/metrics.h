@@ -1,0 +1,119 @@
+// nuwatchd's Prometheus metrics: one registry, its families, and the handles of each stream's
+// series, so that the hot path never looks a series up by its labels.
+//
+// Names (Prometheus conventions: prefix nuwatch_, base units, counters end in _total):
+//   nuwatch_vectors_total{stream}             counter  vectors processed (learning and scored)
+//   nuwatch_anomalies_total{stream}           counter  vectors flagged as outside the envelope
+//   nuwatch_anomaly_ratio{stream}             gauge    flagged fraction of the last
+//                                                      metrics.anomaly_ratio_window scored vectors
+//   nuwatch_support_vectors{stream}           gauge    support vectors of the current model
+//   nuwatch_support_vector_budget{stream}     gauge    the configured budget
+//   nuwatch_window_vectors{stream}            gauge    vectors in the training window
+//   nuwatch_refits_total{stream,result}       counter  result: ok, not_converged, failed,
+//                                                      discarded, coalesced
+//   nuwatch_refit_duration_seconds            histogram  wall time of each refit
+//   nuwatch_score_duration_seconds            histogram  wall time of scoring one vector
+//   nuwatch_rejected_messages_total{reason}   counter  rejected ingest messages (PROTOCOL.md §8)
+//   nuwatch_incidents_open{stream}            gauge    1 while the stream has an open incident
+//   nuwatch_model_age_seconds{stream}         gauge    data time: latest vector's t minus the t of
+//                                                      the vector that triggered the model's refit
+//   nuwatch_stream_memory_bytes{stream}       gauge    window, model and solution bytes
+//   nuwatch_streams                           gauge    streams tracked
+//   nuwatch_publish_failures_total            counter  result/event messages the PUB socket
+//                                                      refused (PUB drops at its high-water mark
+//                                                      silently; those drops are not seen)
+//   nuwatch_state_write_failures_total        counter  state files that could not be written
+//   nuwatch_build_info{version}               gauge    always 1
+//
+// Thread safety: counters, gauges and histograms are prometheus-cpp objects (atomic, or locked
+// inside), safe from any thread. AddStream and RemoveStream lock their families: call them once
+// per stream, not per vector.
+#pragma once
+
+#include <prometheus/counter.h>
+#include <prometheus/family.h>
+#include <prometheus/gauge.h>
+#include <prometheus/histogram.h>
+#include <prometheus/registry.h>
+
+#include <array>
+#include <cstdint>
+#include <memory>
+#include <string>
+#include <string_view>
+
+#include "nuwatch/detector.h"
+#include "protocol/wire_protocol.h"
+
+namespace nuwatch {
+
+enum class RefitResult : uint8_t { kOk, kNotConverged, kFailed, kDiscarded, kCoalesced };
+inline constexpr std::size_t kRefitResultCount = 5;
+// "ok", "not_converged", "failed", "discarded", "coalesced".
+std::string_view RefitResultLabel(RefitResult result);
+// The result label of a finished refit (never kCoalesced: coalesced refits never run).
+RefitResult ClassifyRefit(const RefitReport& report);
+
+// The series of one stream. Valid until DaemonMetrics::RemoveStream.
+struct StreamMetrics {
+  prometheus::Counter* vectors = nullptr;
+  prometheus::Counter* anomalies = nullptr;
+  prometheus::Gauge* anomaly_ratio = nullptr;
+  prometheus::Gauge* support_vectors = nullptr;
+  prometheus::Gauge* support_vector_budget = nullptr;
+  prometheus::Gauge* window_vectors = nullptr;
+  prometheus::Gauge* incidents_open = nullptr;
+  prometheus::Gauge* model_age_seconds = nullptr;
+  prometheus::Gauge* memory_bytes = nullptr;
+  std::array<prometheus::Counter*, kRefitResultCount> refits{};
+
+  prometheus::Counter& refit(RefitResult result) const {
+    return *refits[static_cast<std::size_t>(result)];
+  }
+};
+
+class DaemonMetrics {
+ public:
+  // Creates every family, the rejection counter of every reason and nuwatch_build_info{version}.
+  explicit DaemonMetrics(const std::string& version);
+  DaemonMetrics(const DaemonMetrics&) = delete;
+  DaemonMetrics& operator=(const DaemonMetrics&) = delete;
+
+  const std::shared_ptr<prometheus::Registry>& registry() const { return registry_; }
+
+  // Requires: no live series for `stream` (one AddStream per stream until its RemoveStream).
+  StreamMetrics AddStream(const std::string& stream);
+  void RemoveStream(const StreamMetrics& series);
+
+  // Array lookup by reason; kNone is ignored.
+  void CountRejected(RejectReason reason) const;
+  prometheus::Histogram& refit_duration() const { return *refit_duration_; }
+  prometheus::Histogram& score_duration() const { return *score_duration_; }
+  prometheus::Gauge& streams() const { return *streams_; }
+  prometheus::Counter& publish_failures() const { return *publish_failures_; }
+  prometheus::Counter& state_write_failures() const { return *state_write_failures_; }
+
+  // The text exposition format, as /metrics serves it.
+  std::string Serialize() const;
+
+ private:
+  std::shared_ptr<prometheus::Registry> registry_;
+  prometheus::Family<prometheus::Counter>* vectors_;
+  prometheus::Family<prometheus::Counter>* anomalies_;
+  prometheus::Family<prometheus::Gauge>* anomaly_ratio_;
+  prometheus::Family<prometheus::Gauge>* support_vectors_;
+  prometheus::Family<prometheus::Gauge>* support_vector_budget_;
+  prometheus::Family<prometheus::Gauge>* window_vectors_;
+  prometheus::Family<prometheus::Counter>* refits_;
+  prometheus::Family<prometheus::Gauge>* incidents_open_;
+  prometheus::Family<prometheus::Gauge>* model_age_;
+  prometheus::Family<prometheus::Gauge>* memory_;
+  std::array<prometheus::Counter*, 256> rejected_{};
+  prometheus::Histogram* refit_duration_;
+  prometheus::Histogram* score_duration_;
+  prometheus::Gauge* streams_;
+  prometheus::Counter* publish_failures_;
+  prometheus::Counter* state_write_failures_;
+};
+
+}  // namespace nuwatch

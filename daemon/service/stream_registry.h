@@ -1,0 +1,107 @@
+// The streams nuwatchd tracks: for each key its Detector, its fixed dims, its metric handles, the
+// anomaly-ratio ring, its recorder and the bookkeeping of snapshots.
+//
+// Thread safety: the registry and every Stream belong to the daemon's socket thread, except what
+// is marked otherwise: the refit listener and the executor's completion callback run on pool
+// threads and touch only prometheus handles (thread-safe) and what the callbacks themselves
+// guard. A Stream never moves (the registry holds it by unique_ptr), so pool threads may keep a
+// pointer to it until the pool is joined.
+#pragma once
+
+#include <atomic>
+#include <cstdint>
+#include <functional>
+#include <memory>
+#include <string>
+#include <string_view>
+#include <unordered_map>
+#include <vector>
+
+#include "nuwatch/detector.h"
+#include "service/metrics.h"
+#include "service/recorder.h"
+#include "service/refit_pool.h"
+
+namespace nuwatch {
+
+// The flagged fraction of the last `capacity` scored vectors, as a ring of bits.
+// Push and Ratio allocate nothing.
+class AnomalyRatioRing {
+ public:
+  // Requires: capacity >= 1 (PreconditionError otherwise).
+  explicit AnomalyRatioRing(int64_t capacity);
+  void Push(bool flagged);
+  // flagged / size(); 0 while empty.
+  double Ratio() const { return size_ == 0 ? 0.0 : static_cast<double>(flagged_) / size_; }
+  int64_t size() const { return size_; }
+  int64_t capacity() const { return capacity_; }
+  int64_t flagged() const { return flagged_; }
+
+ private:
+  std::vector<uint64_t> bits_;
+  int64_t capacity_;
+  int64_t next_ = 0;  // slot of the next push
+  int64_t size_ = 0;
+  int64_t flagged_ = 0;
+};
+
+struct Stream {
+  // Creates the detector (throws PreconditionError for invalid options or dims) on `pool`, adds
+  // the stream's metric series and sets the refit listener. `on_refit_finished` runs on the pool
+  // thread after each refit job. Requires: `pool` and `metrics` outlive the stream.
+  Stream(std::string key, int dims, const DetectorOptions& options, RefitExecutor* pool,
+         DaemonMetrics* metrics, int64_t anomaly_ratio_window,
+         std::function<void(Stream*)> on_refit_finished);
+  // Waits for the stream's refit in flight, then removes its metric series.
+  ~Stream();
+  Stream(const Stream&) = delete;
+  Stream& operator=(const Stream&) = delete;
+
+  // Sets the gauges that change only at refits, restores and reloads: support vectors, budget,
+  // window, memory, incident open.
+  void RefreshSlowGauges();
+
+  const std::string key;
+  const int dims;
+  DetectorOptions options;  // the settings the stream was last given (config and reloads)
+  DaemonMetrics* const metrics_owner;
+  StreamMetrics metrics;
+  AnomalyRatioRing ratio;
+  std::vector<double> row;          // dims values: the vector being processed
+  uint64_t seen_model_version = 0;  // the model version the gauges describe
+  int64_t seen_coalesced = 0;       // counters().refits_coalesced already counted
+  // Snapshots: the vector count and model version of the last one taken, and whether one is due
+  // once the refit in flight has finished.
+  int64_t snapshot_vectors = -1;
+  uint64_t snapshot_model_version = 0;
+  bool snapshot_wanted = false;
+  // A state-file write of this stream is queued or running on the io thread (set by the socket
+  // thread, cleared by the writer): one at a time per stream, so a slow disk cannot pile them up.
+  std::atomic<bool> write_queued{false};
+  std::unique_ptr<StreamRecorder> recorder;  // null: not recording
+  bool recording_failed = false;             // an error was logged; logged again on recovery
+  TrackedRefitExecutor executor;
+  std::unique_ptr<Detector> detector;  // last: destroyed first
+};
+
+// Keys to streams. Find does not allocate (heterogeneous lookup).
+class StreamRegistry {
+ public:
+  Stream* Find(std::string_view key) const;
+  // Requires: no stream with the same key. Returns the stored stream.
+  Stream* Add(std::unique_ptr<Stream> stream);
+  std::size_t size() const { return streams_.size(); }
+  // Every stream, sorted by key.
+  std::vector<Stream*> Sorted() const;
+  // Destroys every stream (each waits for its refit in flight).
+  void Clear() { streams_.clear(); }
+
+ private:
+  struct Hash {
+    using is_transparent = void;
+    std::size_t operator()(std::string_view s) const { return std::hash<std::string_view>{}(s); }
+  };
+  std::unordered_map<std::string, std::unique_ptr<Stream>, Hash, std::equal_to<>> streams_;
+};
+
+}  // namespace nuwatch
