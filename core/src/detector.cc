@@ -54,7 +54,6 @@ std::string_view RefitReasonName(RefitReason reason) {
   return "unknown";
 }
 
-
 namespace {
 
 IncidentTrackerOptions TrackerOptions(const DetectorOptions& o) {
@@ -478,7 +477,7 @@ Verdict Detector::ObserveTransformed(double time, std::span<const double> x) {
     PublishOwnerBytes();
     verdict.accepted = true;
     LiveCounters::Bump(counters_.accepted);
-    if (window_.size() >= options_.warmup) PostRefit(time, RefitReason::kWarmup);
+    if (window_.size() >= EffectiveWarmup(options_)) PostRefit(time, RefitReason::kWarmup);
     return verdict;
   }
 

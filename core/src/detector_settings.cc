@@ -114,9 +114,11 @@ const Setting<D> kDetectorKeys[] = {
     {.section = "detector",
      .name = "warmup",
      .member = &D::warmup,
-     .doc = "Vectors collected before the first fit, at most window.",
+     .doc = "Vectors collected before the first fit, at most window; 0: the whole window, so that "
+            "the first model has seen a full cycle.",
      .unit = "vectors",
-     .bounds = AtLeast(2),
+     .bounds = AtLeast(0),
+     .bounds_note = " (0: the whole window)",
      .at_most = "window",
      .group = kRefits},
     {.section = "detector",
@@ -289,6 +291,10 @@ std::optional<SettingViolation> FindDetectorViolation(const DetectorOptions& opt
   const auto fail = [&](std::vector<std::string> keys, std::string message) {
     return SettingViolation{"detector", std::move(keys), std::move(message)};
   };
+  if (options.warmup == 1) {
+    return fail({"warmup"},
+                name("detector", "warmup") + " = 1 must be at least 2 (0: the whole window)");
+  }
   if (options.calibration_folds == 1) {
     return fail({"calibration_folds"},
                 name("detector", "calibration_folds") +

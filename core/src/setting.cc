@@ -21,6 +21,11 @@ std::string SettingNumberText(double value) {
   if (std::isnan(value)) return "nan";
   if (std::isinf(value)) return value > 0 ? "inf" : "-inf";
   char buffer[64];
+  // Integers as integers ("100000", not "1e+05"), below 2^53 where a double holds them exactly.
+  if (value == std::floor(value) && std::abs(value) < 9007199254740992.0) {
+    const auto result = std::to_chars(buffer, buffer + sizeof buffer, static_cast<int64_t>(value));
+    return std::string(buffer, result.ptr);
+  }
   // Shortest text that reads back to the same double; "2" for 2.0 (the user wrote a number).
   const auto result = std::to_chars(buffer, buffer + sizeof buffer, value);
   return std::string(buffer, result.ptr);

@@ -11,14 +11,25 @@
 
 namespace nuwatch::cli {
 
-// The numeric features of a CSV file: every column except `time` and `stream`. CSV errors become
-// CommandError with the file and line.
+// The numeric features of a CSV file: every column except `time` and `stream`, and those two when
+// present (times parsed as ISO-8601 or epoch seconds). CSV errors become CommandError with the
+// file and line.
 struct FeatureFile {
   CsvTable table;
   std::vector<std::string> names;
   MatrixD values;
+  int time_column = -1;       // -1: none
+  int stream_column = -1;     // -1: none
+  std::vector<double> times;  // one per row when there is a time column, else empty
 };
 FeatureFile ReadFeatureFile(const std::string& path);
+
+// The rows of `file` whose stream is `stream` (all when empty) and whose time lies in
+// [from, until] (seconds; infinite: no bound). Throws CommandError when the file holds several
+// streams and none was chosen ("--stream: the file holds 3 streams (pump-01, ...); choose one"),
+// when a time bound is given without a time column, or when nothing is left.
+FeatureFile SelectRows(const FeatureFile& file, const std::string& stream, double from,
+                       double until);
 
 // Shortest text that reads back as the same double ("0.125", "-3.5e-07").
 std::string FormatNumber(double value);

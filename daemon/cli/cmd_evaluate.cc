@@ -21,9 +21,11 @@ namespace nuwatch::cli {
 namespace {
 
 constexpr const char* kConventions = R"(Files:
-  --alarms is either replay output (a header with `time` and `outlier`, optionally `stream`,
-  `state`, `incident`): every row is a sample, flagged when outlier is 1; rows whose state is
-  `learning` are samples with no alarm; the `incident` column is not used. Or an alarm event list
+  --alarms is either replay output (a header with `time` and `anomaly`, optionally `stream`,
+  `state`, `incident`): every row is a sample; with --alarm-kind incident (the default, as in
+  `nuwatch tune`) it is flagged while an incident is open (the `incident` column holds the open
+  incident's id), with --alarm-kind anomaly when `anomaly` is 1 (rows whose state is `learning` or
+  `history` are samples with no alarm). Or an alarm event list
   (columns `stream,start,end`): each row is one alarm event, the closed interval [start, end].
   An event list has no sample times: then only incidents detected/missed, detection delays and
   the false alarm count are computed, and point-wise, range-based and per-day figures are n/a
@@ -55,6 +57,7 @@ struct EvaluateArguments {
   std::string alpha = "0";
   std::string cardinality = "one";
   std::string bias = "flat";
+  std::string alarm_kind = "incident";
   bool json = false;
 };
 
@@ -155,8 +158,13 @@ void PrintTable(const EvaluationReport& report, std::ostream& out) {
 
 void RunEvaluate(const EvaluateArguments& arguments) {
   const EvaluationOptions options = ParseOptions(arguments);
+  const std::optional<AlarmSource> kind = ParseAlarmSource(arguments.alarm_kind);
+  if (!kind) {
+    throw CommandError("--alarm-kind: '" + arguments.alarm_kind +
+                       "' is not one of: incident, anomaly");
+  }
   try {
-    AlarmFile alarms = ReadAlarmFile(arguments.alarms_path);
+    AlarmFile alarms = ReadAlarmFile(arguments.alarms_path, *kind);
     if (!arguments.samples_path.empty()) {
       if (alarms.form != AlarmFileForm::kEventList) {
         throw CommandError("--samples applies to an alarm event list only; " +
@@ -216,6 +224,12 @@ void AddEvaluateCommand(CLI::App& app) {
       ->add_option("--bias", arguments->bias,
                    "Range-based positional bias: flat | front | back | middle")
       ->type_name("flat|front|back|middle")
+      ->capture_default_str();
+  command
+      ->add_option("--alarm-kind", arguments->alarm_kind,
+                   "In replay output, what counts as an alarm: incident (while one is open) | "
+                   "anomaly (every flagged vector)")
+      ->type_name("incident|anomaly")
       ->capture_default_str();
   command->add_flag("--json", arguments->json, "Print JSON instead of a table");
   command->footer(kConventions);

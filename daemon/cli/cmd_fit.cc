@@ -1,77 +1,137 @@
-// nuwatch fit: a cold fit of a one-class model on a CSV file, written to a model file.
+// nuwatch fit: a model fitted on a CSV file, written to a model file. The fit is the one every
+// refit of the daemon, replay and tune makes (FitWindow: transforms, scaler, kernel width, solver,
+// budget, calibration by cross-fitting), on the whole file as one window.
 #include <algorithm>
 #include <cmath>
 #include <iostream>
+#include <limits>
 #include <memory>
-#include <sstream>
+#include <numeric>
 
 #include "cli/cli_util.h"
 #include "cli/detector_flags.h"
-#include "nuwatch/model.h"
+#include "formats/timestamps.h"
+#include "nuwatch/detector.h"
 #include "nuwatch/model_file.h"
 
 namespace nuwatch::cli {
 namespace {
 
-// The detector keys a cold fit takes (FitOptions' members), as flags named as the keys.
-constexpr std::string_view kFitKeys[] = {"nu",        "kernel",         "gamma",
-                                         "degree",    "coef0",          "scaler",
-                                         "tolerance", "max_iterations", "cache_bytes"};
+// The keys that describe one window's fit; the refit schedule, drift and window-age keys do not
+// apply to a file fitted once.
+constexpr std::string_view kFitKeys[] = {"nu",
+                                         "kernel",
+                                         "gamma",
+                                         "degree",
+                                         "coef0",
+                                         "scaler",
+                                         "tolerance",
+                                         "max_iterations",
+                                         "cache_bytes",
+                                         "support_vector_budget",
+                                         "false_alarm_rate",
+                                         "false_incidents_per_day",
+                                         "calibration_folds",
+                                         "lags",
+                                         "rolling_windows",
+                                         "rolling_statistics",
+                                         "max_gap_seconds",
+                                         "open_after",
+                                         "open_window",
+                                         "close_after"};
 
-// FitOptions' members are the detector keys of kFitKeys, named alike: copies them either way.
-template <class From, class To>
-To WithFitKeys(const From& from, To to) {
-  to.nu = from.nu;
-  to.kernel = from.kernel;
-  to.gamma = from.gamma;
-  to.degree = from.degree;
-  to.coef0 = from.coef0;
-  to.scaler = from.scaler;
-  to.tolerance = from.tolerance;
-  to.max_iterations = from.max_iterations;
-  to.cache_bytes = from.cache_bytes;
-  return to;
+// A file is fitted as it is: no budget unless one is asked for (the model keeps every support
+// vector, as scikit-learn's does), and the larger kernel cache of a one-off fit.
+DetectorOptions FitDefaults() {
+  DetectorOptions o;
+  o.support_vector_budget = std::numeric_limits<int32_t>::max();
+  o.cache_bytes = std::size_t{100} << 20;
+  return o;
 }
 
-DetectorOptions AsDetectorOptions(const FitOptions& f) { return WithFitKeys(f, DetectorOptions{}); }
-FitOptions AsFitOptions(const DetectorOptions& o) { return WithFitKeys(o, FitOptions{}); }
-
 struct FitArgs {
-  std::string input, output;
+  std::string input, output, stream, from, until;
   DetectorKeyFlags keys;
 };
 
+double TimeBound(const std::string& text, const char* flag, double none) {
+  if (text.empty()) return none;
+  const auto t = ParseTimestamp(text);
+  if (!t)
+    throw CommandError(std::string(flag) + ": '" + text +
+                       "' is not an ISO-8601 time or epoch seconds");
+  return *t;
+}
+
 void RunFit(const FitArgs& a) {
-  // FitOptions' defaults (a larger kernel cache than a stream's) under the flags the user gave,
-  // checked by the detector table's rules; the other keys keep valid defaults.
-  DetectorOptions detector = AsDetectorOptions(FitOptions{});
-  a.keys.ApplyTo(detector);
+  DetectorOptions options = FitDefaults();
+  a.keys.ApplyTo(options);
+  const FeatureFile all = ReadFeatureFile(a.input);
+  const FeatureFile file = SelectRows(all, a.stream, TimeBound(a.from, "--from", -INFINITY),
+                                      TimeBound(a.until, "--until", INFINITY));
+  options.feature_names = file.names;
+  options.window = std::max<int64_t>(2, file.values.rows());
+  options.warmup = 0;
   try {
-    ValidateDetectorOptions(detector, "");
+    ValidateDetectorOptions(options, "");
   } catch (const ConfigError& e) {
     throw CommandError(e.what());
   }
-  const FitOptions options = AsFitOptions(detector);
-
-  FeatureFile file = ReadFeatureFile(a.input);
-  Model model = FitModel(file.values, options, file.names);
-  SaveModel(model, a.output);
+  // Temporal context first, as the detector does: rows in file order, gaps by the time column.
+  const FeatureTransform transform(TransformOptions(options), static_cast<int>(file.values.cols()));
+  std::vector<int64_t> output_row;
+  const MatrixD rows = transform.TransformAll(file.values, file.times, &output_row);
+  if (rows.rows() < 2) {
+    throw CommandError(a.input + ": " + std::to_string(rows.rows()) +
+                       " vector(s) to fit after the transforms' history; need at least 2");
+  }
+  std::vector<double> times;
+  if (!file.times.empty()) {
+    for (std::size_t i = 0; i < output_row.size(); ++i)
+      if (output_row[i] >= 0) times.push_back(file.times[i]);
+  }
+  std::vector<uint64_t> ids(static_cast<std::size_t>(rows.rows()));
+  std::iota(ids.begin(), ids.end(), uint64_t{1});
+  WindowFitResult fit;
+  try {
+    fit = FitWindow(rows, ids, times, options, nullptr, 1);
+  } catch (const PreconditionError& e) {
+    throw CommandError(a.input + ": " + e.what());
+  }
+  SaveModel(*fit.model, a.output);
+  const Model& model = *fit.model;
   const auto& t = model.parts().training;
-  std::cerr << "fitted " << a.input << ": " << t.n_train << " vectors, " << model.dims()
+  std::cerr << "fitted " << a.input << ": " << rows.rows() << " vectors of " << model.dims()
             << " features, " << t.n_support << " support vectors (" << t.n_bounded
-            << " at the bound), gamma " << model.kernel().gamma << ", rho " << model.rho() << ", "
-            << t.iterations << " iterations" << (t.converged ? "" : " (NOT converged)") << ", "
-            << t.seconds << " s -> " << a.output << "\n";
+            << " at the bound)";
+  if (model.parts().compression.support_vectors_before > 0)
+    std::cerr << ", compressed to " << model.num_support();
+  std::cerr << ", gamma " << model.kernel().gamma << ", " << t.iterations << " iterations"
+            << (t.converged ? "" : " (NOT converged)") << " -> " << a.output << "\n";
+  if (model.calibrated()) {
+    const CalibrationSummary& c = model.parts().calibration.summary();
+    std::cerr << "calibrated (" << model.parts().calibration.Method() << ", "
+              << options.calibration_folds << " folds): flags p <= " << c.level;
+    if (c.vectors_per_day > 0)
+      std::cerr << ", about " << c.incidents_per_day << " false incidents per day";
+    std::cerr << "\n";
+  }
+  for (const auto& w : fit.report.warnings) std::cerr << "warning: " << w << "\n";
 }
 
 void AddFitCommand(CLI::App& app) {
   auto args = std::make_shared<FitArgs>();
-  CLI::App* sub = app.add_subcommand("fit", "Fit a one-class model on a CSV file of vectors");
+  CLI::App* sub = app.add_subcommand(
+      "fit", "Fit a model on a CSV file of vectors, calibrated to the false-alarm budget");
   sub->add_option("--input", args->input,
                   "CSV with a header row; every column is a feature except 'time' and 'stream'")
       ->required();
   sub->add_option("--output", args->output, "Model file to write")->required();
-  args->keys.AddTo(sub, AsDetectorOptions(FitOptions{}), [](const Setting<DetectorOptions>& s) {
+  AddLastWinsOption(sub, "--stream", args->stream,
+                    "Fit the rows of this stream only (needed when the file holds several)");
+  AddLastWinsOption(sub, "--from", args->from, "Fit the rows at or after this time");
+  AddLastWinsOption(sub, "--until", args->until, "Fit the rows at or before this time");
+  args->keys.AddTo(sub, FitDefaults(), [](const Setting<DetectorOptions>& s) {
     return std::find(std::begin(kFitKeys), std::end(kFitKeys), s.name) != std::end(kFitKeys);
   });
   sub->callback([args] { RunFit(*args); });

@@ -41,9 +41,47 @@ void RunInspect(const InspectArgs& a) {
   j["converged"] = p.training.converged;
   j["objective"] = p.training.objective;
   j["fit_seconds"] = p.training.seconds;
+  // 0: not compressed.
   j["compressed_from"] = p.compression.support_vectors_before;
   j["weight_degradation"] = p.compression.weight_degradation;
   j["model_bytes"] = model.MemoryBytes();
+  const FeatureTransformOptions& t = p.transform;
+  j["input_dims"] = model.input_dims();
+  j["lags"] = t.lags;
+  std::vector<int> windows(t.rolling_windows.begin(), t.rolling_windows.end());
+  j["rolling_windows"] = windows;
+  if (!windows.empty()) {
+    std::vector<std::string> statistics;
+    for (const RollingStatistic s : t.rolling_statistics)
+      statistics.emplace_back(RollingStatisticName(s));
+    j["rolling_statistics"] = statistics;
+  }
+  j["max_gap_seconds"] = t.max_gap_seconds;
+  j["calibrated"] = model.calibrated();
+  if (model.calibrated()) {
+    const Calibration& c = p.calibration;
+    const CalibrationSummary& s = c.summary();
+    j["calibration_method"] = std::string(c.Method());
+    j["calibration_scores"] = s.scores;
+    j["false_alarm_rate"] = s.false_alarm_rate;
+    j["false_incidents_per_day"] = s.false_incidents_per_day;
+    j["alarm_level"] = s.level;
+    j["level_from_tail"] = s.level_from_tail;
+    j["nonconformity_threshold"] = c.Threshold();
+    if (c.parts().has_tail) {
+      j["tail_threshold"] = c.parts().tail_threshold;
+      j["tail_shape"] = c.parts().tail.shape;
+      j["tail_scale"] = c.parts().tail.scale;
+    }
+    if (s.vectors_per_day > 0) {
+      j["calibration_span_days"] = s.span_days;
+      j["estimated_false_incidents_per_day"] = s.incidents_per_day;
+      j["incidents_opened_at_reference"] = s.reference_opened;
+      j["flagged_at_reference"] = s.reference_flagged;
+      j["reference_level"] = s.reference_level;
+    }
+    j["calibration_warnings"] = s.warnings;
+  }
   if (a.json) {
     std::cout << j.dump(2) << "\n";
     return;

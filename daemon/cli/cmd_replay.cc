@@ -40,29 +40,33 @@ void RunReplay(const ReplayArgs& a) {
     if (done == recording.rows()) std::fprintf(stderr, "\n");
   };
   std::vector<ReplayRow> rows;
+  std::vector<std::string> warnings;
   try {
     rows = ReplayRecording(
         recording, [&](const std::string& stream) { return DetectorOptionsFor(config, stream); },
-        progress);
+        progress, &warnings);
   } catch (const PreconditionError& e) {
     throw CommandError(std::string(e.what()));
   }
   OutputFile out(a.output);
   std::FILE* f = out.get();
-  std::fputs("time,stream,state,decision,outlier,incident,support_vectors,model_version\n", f);
+  std::fputs("time,stream,state,decision,p_value,anomaly,incident,support_vectors,model_version\n",
+             f);
   int64_t flagged = 0, scored = 0;
   for (int64_t i = 0; i < recording.rows(); ++i) {
     const ReplayRow& r = rows[i];
     const std::string& stream = recording.streams[recording.stream_of_row[i]];
+    const std::string incident = r.incident ? std::to_string(r.incident) : "";
     if (r.learning) {
-      std::fprintf(f, "%s,%s,learning,,0,,0,0\n", recording.time_text[i].c_str(), stream.c_str());
+      std::fprintf(f, "%s,%s,%s,,,0,%s,0,0\n", recording.time_text[i].c_str(), stream.c_str(),
+                   r.history ? "history" : "learning", incident.c_str());
       continue;
     }
     ++scored;
-    flagged += r.outlier;
-    std::string incident = r.incident ? std::to_string(r.incident) : "";
-    std::fprintf(f, "%s,%s,scoring,%s,%d,%s,%d,%llu\n", recording.time_text[i].c_str(),
-                 stream.c_str(), FormatNumber(r.decision).c_str(), r.outlier ? 1 : 0,
+    flagged += r.anomaly;
+    const std::string p = std::isnan(r.p_value) ? "" : FormatNumber(r.p_value);
+    std::fprintf(f, "%s,%s,scoring,%s,%s,%d,%s,%d,%llu\n", recording.time_text[i].c_str(),
+                 stream.c_str(), FormatNumber(r.decision).c_str(), p.c_str(), r.anomaly ? 1 : 0,
                  incident.c_str(), r.support_vectors,
                  static_cast<unsigned long long>(r.model_version));
   }
@@ -71,6 +75,9 @@ void RunReplay(const ReplayArgs& a) {
             << " stream(s): " << scored << " scored, " << flagged << " flagged ("
             << (scored ? 100.0 * flagged / scored : 0.0) << "%)"
             << (a.output.empty() ? "" : " -> " + a.output) << "\n";
+  for (const auto& w : warnings) std::cerr << "warning: " << w << "\n";
+  const std::string unusable = UnusableSettingNote(flagged, scored);
+  if (!unusable.empty()) std::cerr << "warning: " << unusable << "\n";
 }
 
 void AddReplayCommand(CLI::App& app) {
@@ -82,8 +89,8 @@ void AddReplayCommand(CLI::App& app) {
                   "CSV: a time column (ISO-8601 or epoch seconds), optional stream, features")
       ->required();
   sub->add_option("--output", args->output,
-                  "CSV to write: time,stream,state,decision,outlier,incident,support_vectors,"
-                  "model_version (default: standard output)");
+                  "CSV to write: time,stream,state,decision,p_value,anomaly,incident,"
+                  "support_vectors,model_version (default: standard output)");
   args->detector.AddTo(sub);
   sub->callback([args] { RunReplay(*args); });
 }

@@ -1,4 +1,7 @@
-// nuwatch score: decision values (and optionally explanations) of a model on a CSV file.
+// nuwatch score: a model's decision values, p-values and flags (and optionally explanations) on a
+// CSV file. The model's feature transform (lags, rolling statistics) is applied to the rows in
+// file order, as the detector applies it to a stream; rows whose history is not complete yet are
+// written with empty scores.
 #include <memory>
 
 #include "cli/cli_util.h"
@@ -17,35 +20,57 @@ void RunScore(const ScoreArgs& a) {
   if (a.explain < 0) throw CommandError("--explain must be >= 0");
   Model model = LoadModel(a.model);
   FeatureFile file = ReadFeatureFile(a.input);
-  if (file.values.cols() != model.dims()) {
+  const int inputs = model.input_dims();
+  if (file.values.cols() != inputs) {
     throw CommandError(a.input + ": " + std::to_string(file.values.cols()) +
-                       " feature columns, the model " + a.model + " has " +
-                       std::to_string(model.dims()));
+                       " feature columns, the model " + a.model + " has " + std::to_string(inputs));
   }
   const auto& model_names = model.parts().feature_names;
   if (!model_names.empty()) {
-    for (std::size_t j = 0; j < model_names.size(); ++j) {
+    for (int j = 0; j < inputs; ++j) {
       if (model_names[j] != file.names[j]) {
         throw CommandError(a.input + ": feature column " + std::to_string(j + 1) + " is '" +
                            file.names[j] + "', the model was fitted with '" + model_names[j] + "'");
       }
     }
   }
+  const FeatureTransform transform(model.parts().transform, inputs);
+  std::vector<int64_t> output_row;
+  const MatrixD rows = transform.TransformAll(file.values, file.times, &output_row);
+  const std::vector<std::string> names = transform.OutputNames(file.names);
   const int top_k = std::min(a.explain, model.dims());
-  VectorD decisions = model.DecisionBatch(file.values);
+  VectorD decisions, nonconformity;
+  model.EvaluateBatch(rows, &decisions, &nonconformity);
+
   OutputFile out(a.output);
-  std::string line = "decision,outlier";
+  std::string line;
+  if (file.time_column >= 0) line += "time,";
+  if (file.stream_column >= 0) line += "stream,";
+  line += "decision,p_value,anomaly";
   for (int k = 1; k <= top_k; ++k)
     line += ",feature_" + std::to_string(k) + ",share_" + std::to_string(k);
   std::fprintf(out.get(), "%s\n", line.c_str());
-  for (int64_t i = 0; i < file.values.rows(); ++i) {
-    line = FormatNumber(decisions[i]) + (decisions[i] < 0 ? ",1" : ",0");
+  for (std::size_t i = 0; i < output_row.size(); ++i) {
+    line.clear();
+    if (file.time_column >= 0) line += file.table.rows[i][file.time_column] + ",";
+    if (file.stream_column >= 0) line += file.table.rows[i][file.stream_column] + ",";
+    const int64_t r = output_row[i];
+    if (r < 0) {
+      line += ",,0";  // the transform's history is still filling
+      for (int k = 0; k < top_k; ++k) line += ",,";
+      std::fprintf(out.get(), "%s\n", line.c_str());
+      continue;
+    }
+    const Score score{decisions[r], nonconformity[r]};
+    const double p = model.PValue(score);
+    line += FormatNumber(score.decision) + "," + (std::isnan(p) ? "" : FormatNumber(p)) +
+            (model.Flagged(score) ? ",1" : ",0");
     if (top_k > 0) {
-      std::span<const double> x(file.values.row(i).data(), file.values.cols());
+      std::span<const double> x(rows.row(r).data(), rows.cols());
       for (const FeatureShare& s : model.Explain(x, top_k)) {
         char share[32];
         std::snprintf(share, sizeof share, "%.4f", s.share);
-        line += "," + file.names[s.feature] + "," + share;
+        line += "," + names[s.feature] + "," + share;
       }
     }
     std::fprintf(out.get(), "%s\n", line.c_str());
@@ -56,9 +81,14 @@ void RunScore(const ScoreArgs& a) {
 void AddScoreCommand(CLI::App& app) {
   auto args = std::make_shared<ScoreArgs>();
   CLI::App* sub = app.add_subcommand(
-      "score", "Score the vectors of a CSV file: decision (< 0: outside the envelope), outlier");
+      "score",
+      "Score the vectors of a CSV file: decision, p-value and anomaly (1: flagged at the model's "
+      "calibrated level; decision < 0 for an uncalibrated model)");
   sub->add_option("--model", args->model, "Model file written by 'nuwatch fit'")->required();
-  sub->add_option("--input", args->input, "CSV with the model's feature columns")->required();
+  sub->add_option("--input", args->input,
+                  "CSV with the model's feature columns (and optionally time and stream, which "
+                  "are copied to the output)")
+      ->required();
   sub->add_option("--output", args->output, "CSV to write (default: standard output)");
   sub->add_option("--explain", args->explain,
                   "Add the K features that move the decision most (gradient shares)")

@@ -37,8 +37,8 @@ constexpr const char* kFooter = R"(How settings are scored:
   replays the recording with refits inline (deterministic: the same results with any --jobs) and
   is scored as `nuwatch evaluate` scores replay output (incidents are closed intervals; warm-up
   samples carry no alarm).
-  --alarms incident (default): a sample is alarmed while the debounced incident is open, from the
-  vector at which it opens (when someone is paged) until it closes; --alarms outlier: every
+  --alarm-kind incident (default): a sample is alarmed while the debounced incident is open, from the
+  vector at which it opens (when someone is paged) until it closes; --alarm-kind anomaly: every
   flagged sample is an alarm.
   --objective f1: point-wise F1; range-f1: F1 of range-based precision and recall (Tatbul et al.,
   NeurIPS 2018); recall: the fraction of labelled incidents detected.
@@ -117,7 +117,9 @@ TuningOptions ParseOptions(const TuneArguments& a) {
   }
   options.objective = *objective;
   const std::optional<AlarmSource> alarms = ParseAlarmSource(a.alarms);
-  if (!alarms) throw CommandError("--alarms: '" + a.alarms + "' is not one of: incident, outlier");
+  if (!alarms) {
+    throw CommandError("--alarm-kind: '" + a.alarms + "' is not one of: incident, anomaly");
+  }
   options.alarms = *alarms;
   if (Given(a, "--max-false-alarms-per-day")) {
     const std::optional<double> limit = ParseFiniteNumber(a.max_false_alarms);
@@ -296,9 +298,10 @@ void AddTuneCommand(CLI::App& app) {
   sub->add_option("--objective", a->objective, "What to maximise: f1 | range-f1 | recall")
       ->type_name("f1|range-f1|recall")
       ->capture_default_str();
-  sub->add_option("--alarms", a->alarms,
-                  "What counts as an alarm: incident (while open) | outlier (flagged sample)")
-      ->type_name("incident|outlier")
+  sub->add_option("--alarm-kind", a->alarms,
+                  "What counts as an alarm: incident (while one is open) | anomaly (every flagged "
+                  "vector)")
+      ->type_name("incident|anomaly")
       ->capture_default_str();
   sub->add_option("--jobs", a->jobs, "Settings replayed in parallel (default: hardware threads)")
       ->type_name("N");

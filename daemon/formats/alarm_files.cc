@@ -58,27 +58,49 @@ class StreamIndex {
   std::map<std::string, int> last_line_;
 };
 
-bool OutlierFlag(const CsvTable& table, std::size_t row, int column) {
+// The column of the per-sample flag: `anomaly`, or `outlier` in older replay output.
+int AnomalyColumn(const CsvTable& table) {
+  const int column = table.Column("anomaly");
+  return column >= 0 ? column : table.Column("outlier");
+}
+
+bool AnomalyFlag(const CsvTable& table, std::size_t row, int column) {
   const std::string& text = table.rows[row][column];
   if (text == "1" || text == "true") return true;
   if (text == "0" || text == "false") return false;
-  throw CsvError(table.Where(row) + "column outlier: '" + text + "' is not 0 or 1");
+  throw CsvError(table.Where(row) + "column " + table.header[column] + ": '" + text +
+                 "' is not 0 or 1");
 }
 
-AlarmFile ReplayFromTable(const CsvTable& table) {
+bool IncidentOpen(const CsvTable& table, std::size_t row, int column) {
+  const std::string_view text = TrimField(table.rows[row][column]);
+  if (text.empty() || text == "0") return false;
+  for (const char c : text) {
+    if (c < '0' || c > '9') {
+      throw CsvError(table.Where(row) + "column incident: '" + std::string(text) +
+                     "' is not an incident id");
+    }
+  }
+  return true;
+}
+
+AlarmFile ReplayFromTable(const CsvTable& table, AlarmSource source) {
   AlarmFile file;
   file.path = table.path;
   file.form = AlarmFileForm::kReplay;
   const int time_column = table.RequireColumn("time");
-  const int outlier_column = table.RequireColumn("outlier");
+  const int flag_column =
+      source == AlarmSource::kIncident ? table.RequireColumn("incident") : AnomalyColumn(table);
   const int stream_column = table.Column("stream");
   const int state_column = table.Column("state");
   StreamIndex index(&file.streams);
   for (std::size_t row = 0; row < table.rows.size(); ++row) {
     const std::string stream = StreamField(table, row, stream_column);
     const double time = TimeField(table, row, time_column);
-    const bool learning = state_column >= 0 && table.rows[row][state_column] == "learning";
-    const bool flagged = !learning && OutlierFlag(table, row, outlier_column);
+    const bool unscored = state_column >= 0 && table.rows[row][state_column] != "scoring";
+    const bool flagged = source == AlarmSource::kIncident
+                             ? IncidentOpen(table, row, flag_column)
+                             : !unscored && AnomalyFlag(table, row, flag_column);
     index.AddTime(table, row, stream, time);
     index.Get(stream).flagged.push_back(flagged);
   }
@@ -109,15 +131,27 @@ AlarmFile EventListFromTable(const CsvTable& table) {
 
 }  // namespace
 
-AlarmFile AlarmsFromTable(const CsvTable& table) {
-  if (table.Column("outlier") >= 0) return ReplayFromTable(table);
+std::string_view AlarmSourceName(AlarmSource source) {
+  return source == AlarmSource::kIncident ? "incident" : "anomaly";
+}
+
+std::optional<AlarmSource> ParseAlarmSource(std::string_view name) {
+  if (name == "incident") return AlarmSource::kIncident;
+  if (name == "anomaly" || name == "outlier") return AlarmSource::kAnomaly;
+  return std::nullopt;
+}
+
+AlarmFile AlarmsFromTable(const CsvTable& table, AlarmSource source) {
+  if (AnomalyColumn(table) >= 0) return ReplayFromTable(table, source);
   if (table.Column("start") >= 0 && table.Column("end") >= 0) return EventListFromTable(table);
   throw CsvError(table.path +
-                 ": neither replay output (columns time, outlier) nor an alarm event list "
+                 ": neither replay output (columns time, anomaly) nor an alarm event list "
                  "(columns start, end)");
 }
 
-AlarmFile ReadAlarmFile(const std::string& path) { return AlarmsFromTable(ReadCsv(path)); }
+AlarmFile ReadAlarmFile(const std::string& path, AlarmSource source) {
+  return AlarmsFromTable(ReadCsv(path), source);
+}
 
 std::vector<Incident> IncidentsFromTable(const CsvTable& table) {
   const int start_column = table.RequireColumn("start");

@@ -1,13 +1,14 @@
 // Reading the files `nuwatch evaluate` scores into the structs of nuwatch/evaluation.h.
 //
 // Alarms, in one of two forms, told apart by the header:
-// - replay output: columns `time` and `outlier` (plus optionally `stream`, `state`, `incident`
-//   and any others, which are ignored). Every row is a sample of its stream; it is flagged when
-//   `outlier` is 1 (or "true"); 0 (or "false") is not flagged. A row whose `state` is `learning`
-//   is a sample with no alarm whatever its `outlier` field says (it may be empty). The `incident`
-//   column (the detector's debounced incident state) is not used: flags come from `outlier` alone.
-//   Within a stream, times must not decrease.
-// - alarm event list: columns `start` and `end` (plus optionally `stream`), no `outlier` column.
+// - replay output: columns `time` and `anomaly` (`outlier` in files written before 0.2), plus
+//   optionally `stream`, `state`, `incident` and any others, which are ignored. Every row is a
+//   sample of its stream. What counts as an alarm is the AlarmSource: kAnomaly, the row is flagged
+//   when `anomaly` is 1 (or "true"; 0 or "false" is not flagged), unless its `state` is `learning`
+//   or `history` (no score: no alarm, whatever the field says); kIncident, the row is flagged while
+//   the detector's debounced incident is open: `incident` holds the open incident's id (empty or
+//   0: none). Within a stream, times must not decrease.
+// - alarm event list: columns `start` and `end` (plus optionally `stream`), no `anomaly` column.
 //   Each row is one alarm event, the closed interval [start, end]; sample times are unknown
 //   unless given separately (AttachSampleTimes).
 // Incidents: columns `start`, `end` (closed interval), optionally `stream` and `kind`.
@@ -30,6 +31,14 @@ namespace nuwatch {
 
 enum class AlarmFileForm { kReplay, kEventList };
 
+// What counts as an alarm in replay output: the debounced incident (while it is open: when someone
+// is paged) or every flagged sample. `nuwatch tune` and `nuwatch evaluate` both default to
+// kIncident, so that they score the same thing.
+enum class AlarmSource { kIncident, kAnomaly };
+std::string_view AlarmSourceName(AlarmSource source);  // "incident", "anomaly"
+// "incident" or "anomaly" ("outlier", the older word, too); nullopt otherwise.
+std::optional<AlarmSource> ParseAlarmSource(std::string_view name);
+
 struct AlarmFile {
   std::string path;
   AlarmFileForm form = AlarmFileForm::kReplay;
@@ -39,8 +48,9 @@ struct AlarmFile {
 };
 
 // Ensures: on return every stream satisfies the requirements of Evaluate.
-AlarmFile AlarmsFromTable(const CsvTable& table);
-AlarmFile ReadAlarmFile(const std::string& path);  // ReadCsv + AlarmsFromTable
+AlarmFile AlarmsFromTable(const CsvTable& table, AlarmSource source = AlarmSource::kAnomaly);
+AlarmFile ReadAlarmFile(const std::string& path,
+                        AlarmSource source = AlarmSource::kAnomaly);  // ReadCsv + AlarmsFromTable
 
 // Ensures: start <= end for every incident; a header-only file gives no incidents.
 std::vector<Incident> IncidentsFromTable(const CsvTable& table);

@@ -1,8 +1,10 @@
 #include "offline/replay.h"
 
+#include <cstdio>
 #include <fstream>
 #include <map>
 #include <memory>
+#include <set>
 #include <sstream>
 #include <unordered_map>
 
@@ -90,10 +92,26 @@ StreamRecording ReadStreamRecording(const std::string& path) {
   return r;
 }
 
+std::string UnusableSettingNote(int64_t flagged, int64_t scored) {
+  if (scored == 0 || 2 * flagged <= scored) return "";
+  char percent[32];
+  std::snprintf(percent, sizeof percent, "%.1f%%",
+                100.0 * static_cast<double>(flagged) / static_cast<double>(scored));
+  return std::string("this setting is not usable: it flags ") + percent +
+         " of the scored vectors (more than half); an engineer would switch such an alarm off. "
+         "Check that the window spans the process's normal cycle and the calibration warnings";
+}
+
 std::vector<ReplayRow> ReplayRecording(const StreamRecording& recording,
                                        const StreamOptions& options_for_stream,
-                                       const std::function<void(int64_t)>& progress) {
+                                       const std::function<void(int64_t)>& progress,
+                                       std::vector<std::string>* warnings) {
   std::vector<std::unique_ptr<Detector>> detectors(recording.streams.size());
+  std::set<std::string> seen_warnings;
+  auto note = [&](const std::string& stream, const std::string& text) {
+    if (warnings != nullptr && seen_warnings.insert(stream + ": " + text).second)
+      warnings->push_back(stream + ": " + text);
+  };
   std::vector<ReplayRow> rows(recording.rows());
   const int dims = static_cast<int>(recording.values.cols());
   for (int64_t i = 0; i < recording.rows(); ++i) {
@@ -102,13 +120,21 @@ std::vector<ReplayRow> ReplayRecording(const StreamRecording& recording,
       DetectorOptions options = options_for_stream(recording.streams[s]);
       if (options.feature_names.empty()) options.feature_names = recording.feature_names;
       detectors[s] = std::make_unique<Detector>(options, dims);
+      // Refits run inline, on this thread, inside Observe.
+      const std::string& stream = recording.streams[s];
+      detectors[s]->set_refit_listener([&note, &stream](const RefitReport& report) {
+        if (!report.ok) note(stream, "a refit failed: " + report.error);
+        for (const auto& w : report.warnings) note(stream, w);
+      });
     }
     Verdict v = detectors[s]->Observe(
         recording.times[i], std::span<const double>(recording.values.row(i).data(), dims));
     ReplayRow& row = rows[i];
-    row.learning = v.state == StreamState::kLearning;
+    row.learning = v.state != StreamState::kScoring;
+    row.history = v.state == StreamState::kHistory;
     row.decision = v.decision;
-    row.outlier = v.outlier;
+    row.p_value = v.p_value;
+    row.anomaly = v.outlier;
     row.incident = v.incident_id;
     row.model_version = v.model_version;
     row.support_vectors = v.support_vectors;

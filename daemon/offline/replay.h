@@ -32,19 +32,28 @@ struct StreamRecording {
 StreamRecording ReadStreamRecording(const std::string& path);
 
 struct ReplayRow {
-  double decision = 0;  // NaN while learning
+  double decision = 0;  // NaN unless scored
+  double p_value = 0;   // NaN unless scored by a calibrated model
   uint64_t incident = 0;
   uint64_t model_version = 0;
   int32_t support_vectors = 0;
-  bool learning = true;
-  bool outlier = false;
+  bool learning = true;  // not scored: learning, or a transform refilling its history
+  bool history = false;  // not scored because a transform's history is refilling
+  bool anomaly = false;
 };
 
 // The options for each stream key (e.g. a config's [detector] with overrides and flags applied).
 using StreamOptions = std::function<DetectorOptions(const std::string& stream)>;
-// progress(rows_done) is called every few thousand rows (may be empty).
+// progress(rows_done) is called every few thousand rows (may be empty). warnings, if given,
+// receives each distinct refit warning once, as "STREAM: WARNING" (calibration and nu notes,
+// detector.h's RefitReport::warnings, and failed refits), in the order they first occurred.
 std::vector<ReplayRow> ReplayRecording(const StreamRecording& recording,
                                        const StreamOptions& options_for_stream,
-                                       const std::function<void(int64_t)>& progress = {});
+                                       const std::function<void(int64_t)>& progress = {},
+                                       std::vector<std::string>* warnings = nullptr);
+
+// The line the tools print when a run flags more than half of the scored vectors, or "" when it
+// does not: such a setting is not usable, whatever else it scores.
+std::string UnusableSettingNote(int64_t flagged, int64_t scored);
 
 }  // namespace nuwatch

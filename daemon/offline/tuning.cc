@@ -151,7 +151,7 @@ std::vector<std::vector<int64_t>> RowsByStream(const StreamRecording& recording)
 
 bool Alarmed(const ReplayRow& row, AlarmSource source) {
   if (row.learning) return false;
-  return source == AlarmSource::kIncident ? row.incident != 0 : row.outlier;
+  return source == AlarmSource::kIncident ? row.incident != 0 : row.anomaly;
 }
 
 void CheckTimesOrdered(const StreamRecording& recording) {
@@ -286,16 +286,6 @@ std::string_view TuningObjectiveDescription(TuningObjective objective) {
   return "point-wise F1";
 }
 
-std::string_view AlarmSourceName(AlarmSource source) {
-  return source == AlarmSource::kIncident ? "incident" : "outlier";
-}
-
-std::optional<AlarmSource> ParseAlarmSource(std::string_view name) {
-  if (name == "incident") return AlarmSource::kIncident;
-  if (name == "outlier") return AlarmSource::kOutlier;
-  return std::nullopt;
-}
-
 std::vector<double> ParseNuList(std::string_view text) {
   const std::vector<std::string_view> items = SplitList(text);
   std::vector<double> values;
@@ -361,7 +351,7 @@ DetectorOptions ApplySetting(DetectorOptions base, const TuningSetting& setting)
   if (setting.gamma) base.gamma = *setting.gamma;
   if (setting.window) {
     base.window = *setting.window;
-    base.warmup = std::min(base.warmup, base.window);
+    if (base.warmup > base.window) base.warmup = 0;  // the whole window
   }
   if (setting.support_vector_budget) base.support_vector_budget = *setting.support_vector_budget;
   return base;

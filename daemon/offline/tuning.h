@@ -43,6 +43,7 @@
 #include <vector>
 
 #include "charts/charts.h"
+#include "formats/alarm_files.h"
 #include "nuwatch/detector_options.h"
 #include "nuwatch/evaluation.h"
 #include "nuwatch/kernel.h"
@@ -63,10 +64,6 @@ std::string_view TuningObjectiveName(TuningObjective objective);  // "f1", "rang
 std::optional<TuningObjective> ParseTuningObjective(std::string_view name);
 // A sentence for reports, e.g. "point-wise F1".
 std::string_view TuningObjectiveDescription(TuningObjective objective);
-
-enum class AlarmSource { kIncident, kOutlier };
-std::string_view AlarmSourceName(AlarmSource source);  // "incident", "outlier"
-std::optional<AlarmSource> ParseAlarmSource(std::string_view name);
 
 // Comma-separated lists ("0.01, 0.02,0.05"; spaces around items are ignored). Throw TuningError
 // naming the offending item for an empty list or item, a value out of range or a repeated value.

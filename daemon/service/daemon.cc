@@ -903,7 +903,7 @@ std::optional<std::string> Daemon::Impl::Relearn(const std::string& key) {
   spdlog::info(
       "relearn: stream={} dropped its model and window; it learns from the next {} "
       "vectors",
-      key, s->options.warmup);
+      key, EffectiveWarmup(s->options));
   return std::nullopt;
 }
 

@@ -76,7 +76,8 @@ TEST_F(FitScoreCli, FitScoreInspectRoundTrip) {
   const std::string train = TrainingFile(400);
   ProgramRun fit = Nuwatch("fit --input " + train + " --output " + Path("m.nuw") + " --nu 0.1");
   ASSERT_EQ(fit.exit_code, 0) << fit.err;
-  EXPECT_EQ(CountLines(fit.err), 1) << "one-line summary on stderr: " << fit.err;
+  EXPECT_EQ(fit.err.rfind("fitted ", 0), 0u) << "a summary on stderr: " << fit.err;
+  EXPECT_THAT(fit.err, HasSubstr("\ncalibrated (conformal"));
 
   // Two rows: a typical one and one far outside on `current`.
   const std::string queries =
@@ -89,16 +90,25 @@ TEST_F(FitScoreCli, FitScoreInspectRoundTrip) {
   std::getline(lines, header);
   std::getline(lines, inside);
   std::getline(lines, outside);
-  EXPECT_EQ(header, "decision,outlier,feature_1,share_1,feature_2,share_2");
-  // outlier is 1 exactly when decision < 0 (the convention of model.h and methods.md). The mean
-  // itself need not be inside: the RBF one-class SVM's support vectors lie on the periphery, and
-  // far from all of them the kernel sum can dip below rho (a known trait of the method), so only
-  // the order of the two decisions is asserted.
-  const double inside_decision = std::stod(inside), outside_decision = std::stod(outside);
-  EXPECT_THAT(inside, HasSubstr(inside_decision < 0 ? ",1," : ",0,"));
-  EXPECT_GT(inside_decision, outside_decision);
-  EXPECT_LT(outside_decision, 0);
-  EXPECT_THAT(outside, HasSubstr(",1,current,"));  // the displaced feature explains most
+  // The time column is kept; the scores follow.
+  EXPECT_EQ(header, "time,decision,p_value,anomaly,feature_1,share_1,feature_2,share_2");
+  const auto fields = [](const std::string& line) {
+    std::vector<std::string> out;
+    std::istringstream in(line);
+    for (std::string f; std::getline(in, f, ',');) out.push_back(f);
+    return out;
+  };
+  const std::vector<std::string> a = fields(inside), b = fields(outside);
+  ASSERT_EQ(a.size(), 8u);
+  ASSERT_EQ(b.size(), 8u);
+  // The stranger vector has the lower decision and the lower p-value; 45 standard deviations out
+  // on `current` it is flagged, and that feature explains most of the decision.
+  EXPECT_GT(std::stod(a[1]), std::stod(b[1]));
+  EXPECT_GT(std::stod(a[2]), std::stod(b[2]));
+  EXPECT_GT(std::stod(a[2]), 0.0);
+  EXPECT_LE(std::stod(a[2]), 1.0);
+  EXPECT_EQ(b[3], "1");
+  EXPECT_EQ(b[4], "current");
 
   ProgramRun inspect = Nuwatch("inspect " + Path("m.nuw") + " --json");
   ASSERT_EQ(inspect.exit_code, 0) << inspect.err;
@@ -111,6 +121,50 @@ TEST_F(FitScoreCli, FitScoreInspectRoundTrip) {
   // The nu-property (Schölkopf et al. 2001, Prop. 4): n_bounded <= nu l <= n_support.
   EXPECT_LE(j["n_bounded"].get<int>(), 40);
   EXPECT_GE(j["n_support"].get<int>(), 40);
+  // The calibration travels with the model: the level in force is within the budget asked for.
+  EXPECT_TRUE(j["calibrated"].get<bool>());
+  EXPECT_EQ(j["calibration_scores"], 400);
+  EXPECT_DOUBLE_EQ(j["false_alarm_rate"].get<double>(), 0.001);
+  EXPECT_LE(j["alarm_level"].get<double>(), 0.001);
+  EXPECT_GT(j["alarm_level"].get<double>(), 0.0);
+}
+
+// Through the programs: fit on 400 vectors, score 4000 fresh ones of the same distribution. At a
+// 5% budget (incident budget off) the realised flagged fraction is near 5%: conformal validity
+// (Vovk, Gammerman & Shafer 2005) bounds it by the level for exchangeable data, and the models
+// fitted for calibration on 80% of the data make it somewhat conservative. The band [0.4, 1.6]
+// times the level covers the scatter of one calibration set of 400 (about +-22% relative at one
+// standard deviation for 20 exceedances) and that conservatism.
+TEST_F(FitScoreCli, FreshVectorsAreFlaggedAtTheBudgetedRate) {
+  const std::string train = TrainingFile(400);
+  ProgramRun fit = Nuwatch("fit --input " + train + " --output " + Path("m.nuw") +
+                           " --false-alarm-rate 0.05 --false-incidents-per-day 0");
+  ASSERT_EQ(fit.exit_code, 0) << fit.err;
+  std::mt19937_64 generator(4);  // fresh draws: another seed than the training file's
+  std::normal_distribution<double> normal;
+  std::ostringstream csv;
+  csv << "pressure,flow,current\n";
+  for (int i = 0; i < 4000; ++i)
+    csv << 4 + 0.1 * normal(generator) << "," << 300 + 5 * normal(generator) << ","
+        << 50 + normal(generator) << "\n";
+  ProgramRun score =
+      Nuwatch("score --model " + Path("m.nuw") + " --input " + Write("fresh.csv", csv.str()));
+  ASSERT_EQ(score.exit_code, 0) << score.err;
+  std::istringstream lines(score.out);
+  std::string line;
+  std::getline(lines, line);
+  ASSERT_EQ(line, "decision,p_value,anomaly");
+  int flagged = 0, rows = 0;
+  while (std::getline(lines, line)) {
+    ++rows;
+    const double p = std::stod(line.substr(line.find(',') + 1));
+    const bool anomaly = line.back() == '1';
+    EXPECT_EQ(anomaly, p <= 0.05) << line;
+    flagged += anomaly;
+  }
+  ASSERT_EQ(rows, 4000);
+  EXPECT_GE(flagged, 0.4 * 0.05 * rows);
+  EXPECT_LE(flagged, 1.6 * 0.05 * rows);
 }
 
 TEST_F(FitScoreCli, BenchJsonHasTheCapacityPlanningKeys) {
@@ -136,6 +190,8 @@ TEST_F(FitScoreCli, BadInputsGiveOneLineNamingFileAndLine) {
       {"ragged.csv", "a,b\n1,2\n3\n", "ragged.csv:3: 1 fields, the header has 2"},
       {"empty.csv", "", "empty.csv: empty file"},
       {"header.csv", "a,b\n", "header.csv: no data rows"},
+      // Regression: a one-row file used to give a model of one support vector.
+      {"one.csv", "a,b\n1,2\n", "one.csv: 1 vector(s) to fit"},
   };
   for (const Case& c : cases) {
     ProgramRun run = Nuwatch("fit --input " + Write(c.name, c.csv) + " --output " + Path("x.nuw"));

@@ -3,7 +3,8 @@
 // budget, a frozen model with --refit-every 0, and one-line errors for bad input.
 // The expected values come from the detector's contract (core/include/nuwatch/detector.h): the
 // warm-up fit runs inside the Observe call of the warmup-th vector, after that vector was
-// reported as learning; outlier means decision < 0; model versions only grow.
+// reported as learning; anomaly means p_value <= the model's calibrated level (calibration.h), so
+// it falls as p_value falls; model versions only grow.
 #include <gmock/gmock.h>
 #include <gtest/gtest.h>
 #include <sys/wait.h>
@@ -29,7 +30,7 @@ using ::testing::HasSubstr;
 
 const std::string kNuwatch = NUWATCH_PROGRAM;
 const std::string kHeader =
-    "time,stream,state,decision,outlier,incident,support_vectors,model_version";
+    "time,stream,state,decision,p_value,anomaly,incident,support_vectors,model_version";
 constexpr int kWarmup = 720;
 constexpr int kBudget = 64;
 
@@ -151,11 +152,14 @@ TEST_F(ReplayCliTest, OneRowPerInputRowInOrderWithTheDocumentedColumns) {
 
   std::map<std::string, int> rows_seen, learning_rows;
   std::map<std::string, uint64_t> last_version;
+  // Per model version: the largest p-value flagged and the smallest not flagged. One level per
+  // model, so the first must lie below the second.
+  std::map<std::pair<std::string, uint64_t>, std::pair<double, double>> p_range;
   int incident_rows = 0;
   for (std::size_t i = 1; i < output.size(); ++i) {
     const auto& in = input[i];
     const auto& out = output[i];
-    ASSERT_EQ(out.size(), 8u) << "output line " << i + 1;
+    ASSERT_EQ(out.size(), 9u) << "output line " << i + 1;
     ASSERT_EQ(out[0], in[0]) << "line " << i + 1;  // same time text, same order
     ASSERT_EQ(out[1], in[1]) << "line " << i + 1;
     const std::string& stream = out[1];
@@ -163,10 +167,11 @@ TEST_F(ReplayCliTest, OneRowPerInputRowInOrderWithTheDocumentedColumns) {
     if (out[2] == "learning") {
       // Learning rows carry no score.
       EXPECT_EQ(out[3], "") << "line " << i + 1;
-      EXPECT_EQ(out[4], "0");
-      EXPECT_EQ(out[5], "");
-      EXPECT_EQ(out[6], "0");
+      EXPECT_EQ(out[4], "") << "line " << i + 1;
+      EXPECT_EQ(out[5], "0");
+      EXPECT_EQ(out[6], "");
       EXPECT_EQ(out[7], "0");
+      EXPECT_EQ(out[8], "0");
       ++learning_rows[stream];
       // The first kWarmup vectors of a stream learn, and only those (detector.h).
       EXPECT_LE(seen, kWarmup) << "line " << i + 1;
@@ -176,12 +181,20 @@ TEST_F(ReplayCliTest, OneRowPerInputRowInOrderWithTheDocumentedColumns) {
     EXPECT_GT(seen, kWarmup) << "line " << i + 1;
     const double decision = ParseDouble(out[3]);
     ASSERT_TRUE(std::isfinite(decision)) << "line " << i + 1 << ": '" << out[3] << "'";
-    EXPECT_EQ(out[4], decision < 0 ? "1" : "0") << "line " << i + 1;  // f(x) < 0: outside
-    incident_rows += !out[5].empty();
-    const int support = std::stoi(out[6]);
+    const double p = ParseDouble(out[4]);
+    ASSERT_TRUE(p >= 0 && p <= 1) << "line " << i + 1 << ": '" << out[4] << "'";
+    ASSERT_TRUE(out[5] == "0" || out[5] == "1") << "line " << i + 1;
+    incident_rows += !out[6].empty();
+    const int support = std::stoi(out[7]);
     EXPECT_GE(support, 1);
     EXPECT_LE(support, kBudget) << "line " << i + 1;
-    const uint64_t version = std::stoull(out[7]);
+    const uint64_t version = std::stoull(out[8]);
+    auto& range = p_range.try_emplace({stream, version}, -1.0, 2.0).first->second;
+    if (out[5] == "1") {
+      range.first = std::max(range.first, p);
+    } else {
+      range.second = std::min(range.second, p);
+    }
     EXPECT_GE(version, 1u);
     EXPECT_GE(version, last_version[stream]) << "line " << i + 1;
     last_version[stream] = version;
@@ -193,6 +206,9 @@ TEST_F(ReplayCliTest, OneRowPerInputRowInOrderWithTheDocumentedColumns) {
     EXPECT_GT(last_version[stream], 1u) << stream << " never refitted";
   }
   EXPECT_GT(incident_rows, 0);  // the recording holds an injected fault
+  for (const auto& [model, range] : p_range) {
+    EXPECT_LT(range.first, range.second) << model.first << " model " << model.second;
+  }
 }
 
 TEST_F(ReplayCliTest, RefitEveryZeroKeepsOneModelPerStream) {
@@ -244,7 +260,7 @@ TEST_F(ReplayCliTest, EveryDetectorKeyIsAFlagNamedAsTheKey) {
     EXPECT_THAT(help, HasSubstr(flag + " ")) << key.name << " has no flag";
   }
   // The defaults shown are the table's (DetectorOptions' initialisers).
-  EXPECT_THAT(help, HasSubstr("2000"));
+  EXPECT_THAT(help, HasSubstr("--window INTEGER=8640"));
   // Regression: the flags had names of their own (--budget, --drift); they are the keys' now.
   for (const std::string old : {"--budget 64", "--drift", "--scale none", "--tol 0.01"}) {
     const RunResult r = Run("replay --input " + stream_ + " --output " + dir_ + "/x.csv " + old);

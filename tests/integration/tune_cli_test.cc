@@ -201,15 +201,17 @@ TEST_F(TuneCliTest, WritesTheReportDirectory) {
 // `nuwatch evaluate`: a path through the written files, the CSV readers and a second process.
 TEST_F(TuneCliTest, ScoresAsReplayAndEvaluateDo) {
   const std::string report = Dir() + "/single";
-  const ProcessResult tune = Nuwatch(Tune(report, "--nu 0.05 --alarms outlier --jobs 1"), Dir());
+  const ProcessResult tune =
+      Nuwatch(Tune(report, "--nu 0.05 --alarm-kind anomaly --jobs 1"), Dir());
   ASSERT_EQ(tune.status, 0) << tune.err;
   const std::string replayed = Dir() + "/replayed.csv";
   const ProcessResult replay = Nuwatch("replay --input " + Stream() + " --output " + replayed +
                                            " --nu 0.05 --window 300" + SmallDetector(),
                                        Dir());
   ASSERT_EQ(replay.status, 0) << replay.err;
-  const ProcessResult evaluate =
-      Nuwatch("evaluate --json --alarms " + replayed + " --incidents " + Incidents(), Dir());
+  const ProcessResult evaluate = Nuwatch(
+      "evaluate --json --alarm-kind anomaly --alarms " + replayed + " --incidents " + Incidents(),
+      Dir());
   ASSERT_EQ(evaluate.status, 0) << evaluate.err;
 
   const nlohmann::json tuned =
@@ -255,7 +257,7 @@ TEST_F(TuneCliTest, RejectsBadInputWithOneLine) {
   expect_error(Tune(report, "--window 100,x"), "--window: 'x' is not a whole number");
   expect_error(Tune(report, "--objective precision"),
                "--objective: 'precision' is not one of: f1, range-f1, recall");
-  expect_error(Tune(report, "--alarms all"), "--alarms: 'all' is not one of");
+  expect_error(Tune(report, "--alarm-kind all"), "--alarm-kind: 'all' is not one of");
   expect_error(Tune(report, "--jobs 0"), "--jobs: '0'");
   expect_error(Tune(report, "--max-false-alarms-per-day lots"), "--max-false-alarms-per-day");
   expect_error(

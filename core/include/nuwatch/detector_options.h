@@ -33,8 +33,9 @@ struct DetectorOptions {
   // Vectors kept for training: the window must span the process's normal cycle. 8640 is a day at
   // 10 s (the demo plant's interval).
   int64_t window = 8640;
-  double max_age_seconds = 0;        // 0: no age limit on window vectors
-  int64_t warmup = 8640;             // vectors before the first fit; <= window
+  double max_age_seconds = 0;  // 0: no age limit on window vectors
+  int64_t warmup =
+      0;  // vectors before the first fit, <= window; 0: the whole window (a full cycle)
   int64_t refit_every = 200;         // accepted vectors between refits; 0: fit once, never refit
   double max_model_age_seconds = 0;  // 0: no age-triggered refit
   int64_t cold_refit_every = 10;     // every n-th refit re-estimates scaler and gamma (cold start)
@@ -75,6 +76,11 @@ struct DetectorOptions {
   // Feature names (optional); used to name features in explanations.
   std::vector<std::string> feature_names;
 };
+
+// The vectors the first fit waits for: warmup, or window when warmup is 0.
+inline int64_t EffectiveWarmup(const DetectorOptions& options) {
+  return options.warmup > 0 ? options.warmup : options.window;
+}
 
 // The transform the options describe. Requires: valid rolling_statistics names (PreconditionError
 // naming the bad one otherwise; CheckDetectorOptions checks all of it).

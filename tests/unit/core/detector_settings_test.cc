@@ -40,8 +40,8 @@ TEST(DetectorKeys, NamesAreUniqueAndEveryKeyIsDocumented) {
       EXPECT_NE(FindSetting(DetectorKeys(), key.at_most), nullptr);
     }
   }
-  // 25 members of DetectorOptions (detector_options.h).
-  EXPECT_EQ(names.size(), 25u);
+  // 32 members of DetectorOptions (detector_options.h).
+  EXPECT_EQ(names.size(), 32u);
 }
 
 TEST(DetectorKeys, TheChoicesOfEnumKeysAreWhatTheParsersAccept) {
@@ -92,11 +92,43 @@ TEST(DetectorKeys, MessagesNameTheKeyTheValueAndTheRange) {
   o.refit_every = -1;
   EXPECT_EQ(Violation(o), "refit_every = -1 must not be negative (0: fit once, never refit)");
   o = DetectorOptions{};
-  o.window = 100;  // below the default warmup, 500
+  o.window = 100;
+  o.warmup = 500;
   const auto violation = FindDetectorViolation(o, Plain);
   ASSERT_TRUE(violation);
   EXPECT_EQ(violation->message, "warmup = 500 must not exceed window = 100");
   EXPECT_EQ(violation->keys, (std::vector<std::string>{"warmup", "window"}));
+  // The rules the table cannot state (detector_settings.cc): warmup 0 or >= 2, folds 0 or >= 2,
+  // a budget when calibrating, a statistic when rolling windows are set.
+  o = DetectorOptions{};
+  o.warmup = 1;
+  EXPECT_EQ(Violation(o), "warmup = 1 must be at least 2 (0: the whole window)");
+  o = DetectorOptions{};
+  o.calibration_folds = 1;
+  EXPECT_EQ(
+      Violation(o),
+      "calibration_folds = 1: cross-fitting needs at least 2 folds (0 turns calibration off)");
+  o = DetectorOptions{};
+  o.false_alarm_rate = 0;
+  o.false_incidents_per_day = 0;
+  EXPECT_EQ(Violation(o),
+            "false_alarm_rate and false_incidents_per_day are both 0: set a false-alarm budget, "
+            "or calibration_folds = 0 to flag decision < 0");
+  o.calibration_folds = 0;
+  EXPECT_FALSE(FindDetectorViolation(o, Plain));
+  o = DetectorOptions{};
+  o.rolling_windows = {6};
+  o.rolling_statistics = {};
+  EXPECT_EQ(
+      Violation(o),
+      "rolling_statistics is empty while rolling_windows is set: name at least one statistic");
+  o.rolling_statistics = {"mean", "median"};
+  EXPECT_EQ(
+      Violation(o),
+      "rolling_statistics element 2 = \"median\" must be one of \"mean\", \"std\", \"slope\"");
+  o = DetectorOptions{};
+  o.rolling_windows = {6, 1};
+  EXPECT_EQ(Violation(o), "rolling_windows element 2 = 1 is outside [2, 100000]");
   // A key's own range comes before a rule between keys.
   o = DetectorOptions{};
   o.open_window = 0;

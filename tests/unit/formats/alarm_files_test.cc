@@ -44,7 +44,7 @@ TEST(AlarmFilesTest, ReadsReplayOutput) {
       "time,stream,score,outlier,incident,state\n"
       "1772323200,p1,0.1,,0,learning\n"
       "2026-03-01T00:00:00Z,p2,0.2,1,0,learning\n"
-      "2026-03-01T00:00:10Z,p1,-0.3,1,1,incident\n"
+      "2026-03-01T00:00:10Z,p1,-0.3,1,1,scoring\n"
       "1772323210,p2,0.2,0,0,scoring\n"
       "\n"
       "2026-03-01T00:00:20.5Z,p1,0.4,0,0,scoring\n",
@@ -63,6 +63,32 @@ TEST(AlarmFilesTest, ReadsReplayOutput) {
   const StreamAlarms& p2 = file.streams[1];
   EXPECT_EQ(p2.stream, "p2");
   EXPECT_EQ(p2.flagged, (std::vector<bool>{false, false}));  // the learning row's 1 is not an alarm
+}
+
+// Replay output as nuwatch replay writes it now: `anomaly` (not `outlier`), `history` rows (a
+// transform refilling) carry no alarm, and with AlarmSource::kIncident the flag is whether an
+// incident is open (its id in `incident`), the rule nuwatch tune scores by default.
+TEST(AlarmFilesTest, ReadsAnomalyAndIncidentColumns) {
+  const std::string text =
+      "time,stream,state,decision,p_value,anomaly,incident\n"
+      "0,p1,scoring,0.1,0.5,0,\n"
+      "10,p1,scoring,-0.2,0.0005,1,\n"
+      "20,p1,history,,,0,3\n"
+      "30,p1,scoring,-0.3,0.0001,1,3\n"
+      "40,p1,scoring,0.2,0.6,0,3\n"
+      "50,p1,scoring,0.2,0.7,0,0\n";
+  const AlarmFile anomalies = AlarmsFromTable(ParseCsv(text, "replay.csv"), AlarmSource::kAnomaly);
+  EXPECT_EQ(anomalies.streams.at(0).flagged,
+            (std::vector<bool>{false, true, false, true, false, false}));
+  const AlarmFile incidents = AlarmsFromTable(ParseCsv(text, "replay.csv"), AlarmSource::kIncident);
+  EXPECT_EQ(incidents.streams.at(0).flagged,
+            (std::vector<bool>{false, false, true, true, true, false}));
+  EXPECT_THROW(AlarmsFromTable(ParseCsv("time,anomaly,incident\n0,0,x\n", "bad.csv"),
+                               AlarmSource::kIncident),
+               CsvError);
+  EXPECT_EQ(ParseAlarmSource("outlier"), AlarmSource::kAnomaly);  // the older word
+  EXPECT_EQ(ParseAlarmSource("incident"), AlarmSource::kIncident);
+  EXPECT_FALSE(ParseAlarmSource("all"));
 }
 
 TEST(AlarmFilesTest, ReplayWithoutStreamColumnIsTheUnnamedStream) {
@@ -209,8 +235,8 @@ TEST_F(EvaluateCommandTest, JsonFiguresOfAReplayFile) {
   const std::string alarms = Write("replay.csv", replay);
   const std::string incidents =
       Write("incidents.csv", "stream,start,end,kind\np1,3,6,x\np2,0,1,y\n");
-  const CommandResult result =
-      RunEvaluate("--alarms " + alarms + " --incidents " + incidents + " --json");
+  const CommandResult result = RunEvaluate("--alarm-kind anomaly --alarms " + alarms +
+                                           " --incidents " + incidents + " --json");
   ASSERT_EQ(result.exit_code, 0) << result.output;
   const nlohmann::json json = nlohmann::json::parse(result.output);
   const nlohmann::json& p1 = json["streams"]["p1"];
@@ -244,7 +270,8 @@ TEST_F(EvaluateCommandTest, EventListWithoutSamplesReportsNullForSampleFigures) 
 TEST_F(EvaluateCommandTest, BadInputIsOneLineAndExitCodeOne) {
   const std::string alarms = Write("replay.csv", "time,outlier\n0,0\n1,maybe\n");
   const std::string incidents = Write("incidents.csv", "stream,start,end\n,0,1\n");
-  const CommandResult bad_file = RunEvaluate("--alarms " + alarms + " --incidents " + incidents);
+  const CommandResult bad_file =
+      RunEvaluate("--alarm-kind anomaly --alarms " + alarms + " --incidents " + incidents);
   EXPECT_EQ(bad_file.exit_code, 1);
   EXPECT_EQ(bad_file.output,
             "nuwatch evaluate: " + alarms + ":3: column outlier: 'maybe' is not 0 or 1\n");

@@ -98,12 +98,16 @@ std::vector<Incident> IncidentsOf(const std::vector<InjectedWindow>& windows) {
 }
 
 // A window of 400 vectors (6 h 40 min) with a refit every 100: small enough for a quick replay.
+// The in-sample rule (calibration_folds = 0: flag decision < 0), so that nu alone decides how much
+// a setting flags: these tests are about the grid, the scoring and the choice, and nu is the one
+// knob whose effect on the flags is known in advance (the nu-property).
 Config SmallDetectorConfig() {
   Config config = DefaultConfig();
   config.detector.window = 400;
   config.detector.warmup = 400;
   config.detector.refit_every = 100;
   config.detector.support_vector_budget = 64;
+  config.detector.calibration_folds = 0;
   return config;
 }
 
@@ -195,7 +199,8 @@ TEST(TuningGridTest, ApplySettingReplacesOnlyTheTunedKeysAndClampsWarmup) {
   setting.window = 300;
   const DetectorOptions applied = ApplySetting(base, setting);
   EXPECT_EQ(applied.window, 300);
-  EXPECT_EQ(applied.warmup, 300);  // min(500, 300): the detector needs warmup <= window
+  EXPECT_EQ(applied.warmup,
+            0);  // 500 > 300: the whole window (the detector needs warmup <= window)
   EXPECT_EQ(applied.nu, 0.05);
   EXPECT_EQ(applied.support_vector_budget, 256);
   EXPECT_EQ(applied.refit_every, 77);
@@ -296,7 +301,7 @@ TEST(RunTuningTest, PicksTheSettingThatNeitherFloodsNorHugsTheWindow) {
   TuningOptions options;
   options.base = SmallDetectorConfig();
   options.grid.nu = {0.001, 0.05, 0.5};
-  options.alarms = AlarmSource::kOutlier;
+  options.alarms = AlarmSource::kAnomaly;
   options.objective = TuningObjective::kPointF1;
   options.jobs = 2;
   const TuningReport report = RunTuning(recording, IncidentsOf(kShifted), options);
@@ -428,7 +433,7 @@ TEST(RunTuningTest, GivesTheSameResultsWithOneAndTwoJobs) {
         ReplaySetting(recording, options.base, report->chosen().setting);
     ASSERT_EQ(report->chosen_rows.size(), again.size());
     for (std::size_t i = 0; i < again.size(); ++i) {
-      ASSERT_EQ(report->chosen_rows[i].outlier, again[i].outlier) << i;
+      ASSERT_EQ(report->chosen_rows[i].anomaly, again[i].anomaly) << i;
       ASSERT_EQ(report->chosen_rows[i].incident, again[i].incident) << i;
       ASSERT_TRUE(report->chosen_rows[i].decision == again[i].decision ||
                   (std::isnan(report->chosen_rows[i].decision) && std::isnan(again[i].decision)))

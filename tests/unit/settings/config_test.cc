@@ -350,11 +350,10 @@ TEST(ConfigErrors, OutOfRangeDetectorValuesNameFileLineAndKey) {
 
   EXPECT_EQ(ErrorOf("[detector]\nwindow = 1\nwarmup = 1\n"),
             "t.toml:2:10: detector.window = 1 must be at least 2");
-  EXPECT_EQ(ErrorOf("[detector]\nwarmup = 0\n"),
-            "t.toml:2:10: detector.warmup = 0 must be at least 2");
+  EXPECT_EQ(Parse("[detector]\nwarmup = 0\n").detector.warmup, 0);  // the whole window
   // Regression: warmup = 1 loaded but the detector refuses a one-row first fit.
   EXPECT_EQ(ErrorOf("[detector]\nwarmup = 1\n"),
-            "t.toml:2:10: detector.warmup = 1 must be at least 2");
+            "t.toml:2:10: detector.warmup = 1 must be at least 2 (0: the whole window)");
   EXPECT_EQ(ErrorOf("[detector]\nrefit_every = -1\n"),
             "t.toml:2:15: detector.refit_every = -1 must not be negative (0: fit once, never "
             "refit)");
@@ -383,12 +382,14 @@ TEST(ConfigErrors, OutOfRangeDetectorValuesNameFileLineAndKey) {
 }
 
 TEST(ConfigErrors, ConstraintsBetweenKeysPointAtTheKeyTheFileSet) {
-  // warmup must not exceed window. With the default window (2000) the file set warmup...
-  EXPECT_EQ(ErrorOf("[detector]\nwarmup = 3000\n"),
-            "t.toml:2:10: detector.warmup = 3000 must not exceed detector.window = 2000");
-  // ...and with the default warmup (500) it set window: the message points at window's line.
-  EXPECT_EQ(ErrorOf("[detector]\nnu = 0.1\nwindow = 100\n"),
-            "t.toml:3:10: detector.warmup = 500 must not exceed detector.window = 100");
+  // warmup must not exceed window. With the default window (8640) the file set warmup...
+  EXPECT_EQ(ErrorOf("[detector]\nwarmup = 9000\n"),
+            "t.toml:2:10: detector.warmup = 9000 must not exceed detector.window = 8640");
+  // ...and with both set, at the first key of the rule.
+  EXPECT_EQ(ErrorOf("[detector]\nwarmup = 500\nwindow = 100\n"),
+            "t.toml:2:10: detector.warmup = 500 must not exceed detector.window = 100");
+  // The default warmup (0) is the whole window, whatever the window.
+  EXPECT_EQ(Parse("[detector]\nwindow = 100\n").detector.warmup, 0);
   const Config equal = Parse("[detector]\nwindow = 100\nwarmup = 100\n");  // the closed end
   EXPECT_EQ(equal.detector.warmup, equal.detector.window);
   // open_after of the last open_window: k of m needs k <= m.
@@ -451,7 +452,8 @@ TEST(ValidateOptions, NamesTheCallerAndTheValue) {
     EXPECT_STREQ(error.what(), "nuwatch replay: nu = 1.5 is outside (0, 1]");
   }
   options = DetectorOptions{};
-  options.window = 10;  // below the default warmup of 500
+  options.window = 10;
+  options.warmup = 500;
   try {
     ValidateDetectorOptions(options, "nuwatch tune");
     FAIL() << "warmup > window accepted";
@@ -535,9 +537,9 @@ TEST(StreamOverrides, AnEmptyTableExemptsStreamsFromLaterTables) {
 }
 
 TEST(StreamOverrides, AreValidatedOnTopOfTheDetectorSection) {
-  // The override's window is checked against [detector]'s warmup (the default 500).
-  EXPECT_EQ(ErrorOf("[[stream]]\nmatch = \"x*\"\nwindow = 100\n"),
-            "t.toml:3:10: detector.warmup = 500 must not exceed stream.window = 100");
+  // The override's window is checked against [detector]'s warmup.
+  EXPECT_EQ(ErrorOf("[detector]\nwarmup = 500\n[[stream]]\nmatch = \"x*\"\nwindow = 100\n"),
+            "t.toml:5:10: detector.warmup = 500 must not exceed stream.window = 100");
   EXPECT_EQ(ErrorOf("[[stream]]\nmatch = \"x*\"\nnu = 2\n"),
             "t.toml:3:6: stream.nu = 2 is outside (0, 1]");
   EXPECT_EQ(ErrorOf("[[stream]]\nmatch = \"x*\"\nnuu = 0.1\n"),
@@ -824,8 +826,8 @@ TEST(KnownConfigKeys, AreUniqueAndCoverEverySection) {
         "detector.feature_names", "stream.match"}) {
     EXPECT_TRUE(unique.count(key)) << key;
   }
-  // 20 daemon settings, 25 DetectorOptions members, and stream.match.
-  EXPECT_EQ(keys.size(), 46u);
+  // 20 daemon settings, 32 DetectorOptions members, and stream.match.
+  EXPECT_EQ(keys.size(), 53u);
 }
 
 }  // namespace
