@@ -1,5 +1,6 @@
 #include "nuwatch/detector.h"
 
+#include <algorithm>
 #include <atomic>
 #include <chrono>
 #include <sstream>
@@ -371,6 +372,7 @@ Detector::Detector(const DetectorOptions& options, int dims, RefitExecutor* exec
                            : throw PreconditionError("Detector: dims = " + std::to_string(dims) +
                                                      " must be >= 1")),
       transformed_(static_cast<std::size_t>(transform_.output_dims())),
+      last_scored_(static_cast<std::size_t>(transform_.output_dims())),
       window_(options.window, transform_.output_dims(), options.max_age_seconds),
       incidents_(TrackerOptions(options)),
       drift_(DriftOptions(options)),
@@ -411,7 +413,8 @@ void Detector::LiveCounters::Store(const DetectorCounters& c) {
 
 void Detector::PublishOwnerBytes() {
   const std::size_t bytes = sizeof(Detector) + sizeof(Shared) + window_.MemoryBytes() +
-                            transform_.MemoryBytes() + transformed_.capacity() * sizeof(double) +
+                            transform_.MemoryBytes() +
+                            (transformed_.capacity() + last_scored_.capacity()) * sizeof(double) +
                             static_cast<std::size_t>(options_.open_window) * 24;
   owner_bytes_.store(bytes, std::memory_order_relaxed);
 }
@@ -483,6 +486,8 @@ Verdict Detector::ObserveTransformed(double time, std::span<const double> x) {
 
   verdict.state = StreamState::kScoring;
   const Score score = model->Evaluate(x);
+  std::copy(x.begin(), x.end(), last_scored_.begin());
+  has_last_scored_ = true;
   verdict.decision = score.decision;
   verdict.p_value = model->PValue(score);
   verdict.outlier = model->Flagged(score);
@@ -604,6 +609,12 @@ void Detector::ApplyPendingOptions() {
   PublishOwnerBytes();
 }
 
+std::vector<FeatureShare> Detector::ExplainLast(int top_k) const {
+  const std::shared_ptr<const Model> m = model();
+  if (!has_last_scored_ || !m || m->dims() != static_cast<int>(last_scored_.size())) return {};
+  return m->Explain(last_scored_, top_k);
+}
+
 void Detector::UpdateOptions(const DetectorOptions& options) {
   CheckDetectorOptions(options, "Detector::UpdateOptions");
   const FeatureTransformOptions transform = TransformOptions(options);
@@ -611,6 +622,8 @@ void Detector::UpdateOptions(const DetectorOptions& options) {
     // Another feature space: nothing learned so far applies to it.
     FeatureTransform next(transform, dims_);
     transformed_.assign(static_cast<std::size_t>(next.output_dims()), 0.0);
+    last_scored_.assign(static_cast<std::size_t>(next.output_dims()), 0.0);
+    has_last_scored_ = false;
     window_ = SampleWindow(options.window, next.output_dims(), options.max_age_seconds);
     transform_ = std::move(next);
     pending_options_.reset();

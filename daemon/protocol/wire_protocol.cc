@@ -693,10 +693,17 @@ void EncodeResultJson(const ScoredVector& result, std::string* out) {
   out->append("{\"t\":");
   AppendDouble(result.t, out);
   if (result.learning) {
-    out->append(",\"state\":\"learning\",\"decision\":null,\"anomaly\":false");
+    out->append(result.history ? ",\"state\":\"history\"" : ",\"state\":\"learning\"");
+    out->append(",\"decision\":null,\"p_value\":null,\"anomaly\":false");
   } else {
     out->append(",\"state\":\"scoring\",\"decision\":");
     AppendDouble(result.decision, out);
+    out->append(",\"p_value\":");
+    if (std::isnan(result.p_value)) {
+      out->append("null");
+    } else {
+      AppendDouble(result.p_value, out);
+    }
     out->append(result.anomaly ? ",\"anomaly\":true" : ",\"anomaly\":false");
   }
   out->append(",\"incident\":");

@@ -169,8 +169,10 @@ struct FeatureShareView {
 // The input of one result (§9.1).
 struct ScoredVector {
   double t = 0;
-  bool learning = true;           // true: written as state "learning" with decision null
-  double decision = 0;            // ignored while learning
+  bool learning = true;  // true: not scored, decision and p_value null (state "learning")
+  bool history = false;  // with learning: state "history" (a transform refills its history)
+  double decision = 0;   // ignored while learning
+  double p_value = 0;    // ignored while learning; NaN: null (an uncalibrated model)
   bool anomaly = false;           // written as false while learning
   std::int64_t incident_id = -1;  // < 0: no open incident (null)
   std::uint64_t model_version = 0;

@@ -630,7 +630,18 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
   const bool scoring = v.state == StreamState::kScoring;
   if (scoring) {
     stream.ratio.Push(v.outlier);
-    m.anomaly_ratio->Set(stream.ratio.Ratio());
+    const double ratio = stream.ratio.Ratio();
+    m.anomaly_ratio->Set(ratio);
+    if (!stream.flooding && ratio > 0.5 && stream.ratio.size() == stream.ratio.capacity()) {
+      stream.flooding = true;
+      spdlog::warn(
+          "stream={} flags {:.0f}% of its last {} scored vectors: a lasting fault, or a setting "
+          "that is not usable (does detector.window span the process's normal cycle? see the "
+          "calibration warnings)",
+          stream.key, 100 * ratio, config.daemon.anomaly_ratio_window);
+    } else if (stream.flooding && ratio < 0.25) {
+      stream.flooding = false;
+    }
     if (v.outlier) m.anomalies->Increment();
     m.model_age_seconds->Set(t - detector.model_time());
     if (v.model_version != stream.seen_model_version) {
@@ -653,23 +664,26 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
   ScoredVector result;
   result.t = t;
   result.learning = !scoring;
+  result.history = v.state == StreamState::kHistory;
   result.decision = v.decision;
+  result.p_value = v.p_value;
   result.anomaly = v.outlier;
   result.incident_id = v.incident_id == 0 ? -1 : static_cast<int64_t>(v.incident_id);
   result.model_version = v.model_version;
   result.support_vectors = v.support_vectors;
   std::size_t top = 0;
+  std::shared_ptr<const Model> explained_by;  // keeps the names below alive until published
   if (scoring && v.outlier) {
-    if (const auto model = detector.model()) {
-      // Explain allocates its result; only flagged vectors pay for it.
-      const std::vector<FeatureShare> shares = model->Explain(stream.row, kTopFeatures);
-      const auto& names = stream.options.feature_names;
+    if ((explained_by = detector.model())) {
+      // Explain allocates its result; only flagged vectors pay for it. It works in the model's
+      // (transformed) features, which the model names ("flow_m3h, mean of 6").
+      const std::vector<FeatureShare> shares = detector.ExplainLast(kTopFeatures);
+      const auto& names = explained_by->parts().feature_names;
       for (const FeatureShare& share : shares) {
         FeatureShareView& view = top_features[top++];
         view.index = share.feature;
         view.share = share.share;
-        view.name = static_cast<std::size_t>(share.feature) < names.size() &&
-                            names.size() == static_cast<std::size_t>(stream.dims)
+        view.name = static_cast<std::size_t>(share.feature) < names.size()
                         ? std::string_view(names[share.feature])
                         : std::string_view();
         if (top == top_features.size()) break;
@@ -775,6 +789,11 @@ void Daemon::Impl::HandleFinishedRefits() {
                     report.model_version, report.support_vectors, report.total_seconds);
     } else if (!report.ok && !report.discarded) {
       spdlog::warn("stream={} refit failed, the old model stays: {}", s->key, report.error);
+    }
+    // Why the alarms may not mean what was set (calibration.h, FitWindow): once per stream and
+    // warning, so that a condition that lasts does not flood the log.
+    for (const std::string& warning : report.warnings) {
+      if (s->warned.insert(warning).second) spdlog::warn("stream={} {}", s->key, warning);
     }
     if (store) s->snapshot_wanted = true;
   }

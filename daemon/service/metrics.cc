@@ -47,11 +47,23 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
   vectors_ = &Build(BuildCounter(), "nuwatch_vectors_total",
                     "Vectors processed per stream, learning and scored.", r);
   anomalies_ = &Build(BuildCounter(), "nuwatch_anomalies_total",
-                      "Vectors flagged as outside the learnt envelope (decision < 0).", r);
+                      "Vectors flagged: p-value at most the calibrated level (decision < 0 for "
+                      "an uncalibrated model).",
+                      r);
   anomaly_ratio_ = &Build(BuildGauge(), "nuwatch_anomaly_ratio",
                           "Fraction of the stream's last metrics.anomaly_ratio_window scored "
-                          "vectors that were flagged.",
+                          "vectors that were flagged: the realised alarm rate.",
                           r);
+  false_alarm_rate_target_ =
+      &Build(BuildGauge(), "nuwatch_false_alarm_rate_target",
+             "The per-vector false-alarm budget configured (detector.false_alarm_rate; 0: not "
+             "set).",
+             r);
+  alarm_level_ = &Build(BuildGauge(), "nuwatch_alarm_level",
+                        "The p-value level the stream's current model flags at: the false-alarm "
+                        "budget, lowered where the incident budget requires (0: uncalibrated or "
+                        "learning). On normal data the realised rate should stay near it.",
+                        r);
   support_vectors_ = &Build(BuildGauge(), "nuwatch_support_vectors",
                             "Support vectors in the stream's current model (0 while learning).", r);
   support_vector_budget_ = &Build(
@@ -113,6 +125,8 @@ StreamMetrics DaemonMetrics::AddStream(const std::string& stream) {
   m.vectors = &vectors_->Add(labels);
   m.anomalies = &anomalies_->Add(labels);
   m.anomaly_ratio = &anomaly_ratio_->Add(labels);
+  m.false_alarm_rate_target = &false_alarm_rate_target_->Add(labels);
+  m.alarm_level = &alarm_level_->Add(labels);
   m.support_vectors = &support_vectors_->Add(labels);
   m.support_vector_budget = &support_vector_budget_->Add(labels);
   m.window_vectors = &window_vectors_->Add(labels);
@@ -131,6 +145,8 @@ void DaemonMetrics::RemoveStream(const StreamMetrics& m) {
   if (m.vectors) vectors_->Remove(m.vectors);
   if (m.anomalies) anomalies_->Remove(m.anomalies);
   if (m.anomaly_ratio) anomaly_ratio_->Remove(m.anomaly_ratio);
+  if (m.false_alarm_rate_target) false_alarm_rate_target_->Remove(m.false_alarm_rate_target);
+  if (m.alarm_level) alarm_level_->Remove(m.alarm_level);
   if (m.support_vectors) support_vectors_->Remove(m.support_vectors);
   if (m.support_vector_budget) support_vector_budget_->Remove(m.support_vector_budget);
   if (m.window_vectors) window_vectors_->Remove(m.window_vectors);

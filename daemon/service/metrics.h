@@ -3,9 +3,15 @@
 //
 // Names (Prometheus conventions: prefix nuwatch_, base units, counters end in _total):
 //   nuwatch_vectors_total{stream}             counter  vectors processed (learning and scored)
-//   nuwatch_anomalies_total{stream}           counter  vectors flagged as outside the envelope
+//   nuwatch_anomalies_total{stream}           counter  vectors flagged (p-value at most the level)
 //   nuwatch_anomaly_ratio{stream}             gauge    flagged fraction of the last
-//                                                      metrics.anomaly_ratio_window scored vectors
+//                                                      metrics.anomaly_ratio_window scored vectors:
+//                                                      the realised rate
+//   nuwatch_false_alarm_rate_target{stream}   gauge    detector.false_alarm_rate as configured
+//                                                      (0: not set)
+//   nuwatch_alarm_level{stream}               gauge    the p-value level the current model flags
+//                                                      at: the target, lowered by the incident
+//                                                      budget (0: uncalibrated or learning)
 //   nuwatch_support_vectors{stream}           gauge    support vectors of the current model
 //   nuwatch_support_vector_budget{stream}     gauge    the configured budget
 //   nuwatch_window_vectors{stream}            gauge    vectors in the training window
@@ -59,6 +65,8 @@ struct StreamMetrics {
   prometheus::Counter* vectors = nullptr;
   prometheus::Counter* anomalies = nullptr;
   prometheus::Gauge* anomaly_ratio = nullptr;
+  prometheus::Gauge* false_alarm_rate_target = nullptr;
+  prometheus::Gauge* alarm_level = nullptr;
   prometheus::Gauge* support_vectors = nullptr;
   prometheus::Gauge* support_vector_budget = nullptr;
   prometheus::Gauge* window_vectors = nullptr;
@@ -101,6 +109,8 @@ class DaemonMetrics {
   prometheus::Family<prometheus::Counter>* vectors_;
   prometheus::Family<prometheus::Counter>* anomalies_;
   prometheus::Family<prometheus::Gauge>* anomaly_ratio_;
+  prometheus::Family<prometheus::Gauge>* false_alarm_rate_target_;
+  prometheus::Family<prometheus::Gauge>* alarm_level_;
   prometheus::Family<prometheus::Gauge>* support_vectors_;
   prometheus::Family<prometheus::Gauge>* support_vector_budget_;
   prometheus::Family<prometheus::Gauge>* window_vectors_;

@@ -53,9 +53,20 @@ std::vector<uint8_t> EncodeStreamState(std::string_view stream_key, int dims,
   auto fail = [](const std::string& what) { throw StateFileError("EncodeStreamState: " + what); };
   if (dims < 1) fail("dims = " + std::to_string(dims) + " must be >= 1");
   const uint64_t rows = static_cast<uint64_t>(s.window_rows.rows());
-  if (rows > 0 && s.window_rows.cols() != dims) {
-    fail("window has " + std::to_string(s.window_rows.cols()) +
-         " columns, dims = " + std::to_string(dims));
+  // The window holds the transformed features: dims columns times the transform's factor.
+  const uint64_t columns = rows > 0 ? static_cast<uint64_t>(s.window_rows.cols()) : 0;
+  if (rows > 0 && (columns < static_cast<uint64_t>(dims) || columns % dims != 0)) {
+    fail("window has " + std::to_string(columns) + " columns, not a multiple of dims = " +
+         std::to_string(dims));
+  }
+  const auto& t = s.transform;
+  if (t.history.rows() > 0 && t.history.cols() != dims) {
+    fail("transform history has " + std::to_string(t.history.cols()) + " columns, dims = " +
+         std::to_string(dims));
+  }
+  if (t.times.size() != static_cast<std::size_t>(t.history.rows())) {
+    fail("transform history of " + std::to_string(t.history.rows()) + " rows has " +
+         std::to_string(t.times.size()) + " times");
   }
   if (s.window_ids.size() != rows || s.window_times.size() != rows) {
     fail("window of " + std::to_string(rows) + " rows has " + std::to_string(s.window_ids.size()) +
@@ -76,7 +87,8 @@ std::vector<uint8_t> EncodeStreamState(std::string_view stream_key, int dims,
   w.Put<uint32_t>(static_cast<uint32_t>(dims));
   w.Put<uint64_t>(s.next_sample_id);
   w.Put<uint64_t>(rows);
-  if (rows > 0) w.PutArray(s.window_rows.data(), rows * static_cast<uint64_t>(dims));
+  w.Put<uint32_t>(static_cast<uint32_t>(columns));
+  if (rows > 0) w.PutArray(s.window_rows.data(), rows * columns);
   w.PutArray(s.window_ids.data(), rows);
   w.PutArray(s.window_times.data(), rows);
   w.Put<uint8_t>(s.model ? 1 : 0);
@@ -121,6 +133,17 @@ std::vector<uint8_t> EncodeStreamState(std::string_view stream_key, int dims,
   w.Put<int64_t>(s.counters.refits_started);
   w.Put<int64_t>(s.counters.refits_coalesced);
   w.Put<int64_t>(s.counters.drift_alarms);
+  w.Put<int64_t>(s.counters.history_vectors);
+  w.Put<int64_t>(s.counters.history_resets);
+
+  w.Put<uint64_t>(static_cast<uint64_t>(t.history.rows()));
+  w.PutArray(t.history.data(), static_cast<std::size_t>(t.history.size()));
+  w.PutArray(t.times.data(), t.times.size());
+  w.Put<uint32_t>(static_cast<uint32_t>(t.running_windows.size()));
+  for (const int window : t.running_windows) w.Put<int32_t>(window);
+  w.Put<uint64_t>(t.running.size());
+  w.PutArray(t.running.data(), t.running.size());
+  w.Put<int64_t>(t.running_outputs);
 
   return WrapChecksummed(kMagic, kStateFormatVersion, w.bytes);
 }
@@ -128,7 +151,7 @@ std::vector<uint8_t> EncodeStreamState(std::string_view stream_key, int dims,
 namespace {
 
 // Requires: a payload whose checksum matched.
-StreamStateFile DecodeStatePayload(ByteReader& r) {
+StreamStateFile DecodeStatePayload(ByteReader& r, uint32_t version) {
   StreamStateFile out;
   out.stream_key = r.GetString("the stream key");
   if (ValidateStreamKey(out.stream_key, WireLimits{}) != RejectReason::kNone) {
@@ -142,10 +165,19 @@ StreamStateFile DecodeStatePayload(ByteReader& r) {
   DetectorState& s = out.state;
   s.next_sample_id = r.Get<uint64_t>("the window");
   const uint64_t rows = r.Get<uint64_t>("the window");
-  // Each row takes dims values, an id and a time: check the whole window fits before allocating.
-  r.Need(rows, (static_cast<std::size_t>(dims) + 2) * 8, "the window");
-  s.window_rows.resize(static_cast<Eigen::Index>(rows), dims);
-  r.GetArray(s.window_rows.data(), rows * dims, "the window");
+  uint64_t columns = dims;
+  if (version >= 2) {
+    columns = r.Get<uint32_t>("the window");
+    if (rows > 0 && (columns < dims || columns % dims != 0)) {
+      throw StateFileError("the window has " + std::to_string(columns) +
+                           " columns, not a multiple of dims = " + std::to_string(dims));
+    }
+    if (rows == 0) columns = dims;
+  }
+  // Each row takes its values, an id and a time: check the whole window fits before allocating.
+  r.Need(rows, (static_cast<std::size_t>(columns) + 2) * 8, "the window");
+  s.window_rows.resize(static_cast<Eigen::Index>(rows), static_cast<Eigen::Index>(columns));
+  r.GetArray(s.window_rows.data(), rows * columns, "the window");
   s.window_ids.resize(rows);
   r.GetArray(s.window_ids.data(), rows, "the window ids");
   s.window_times.resize(rows);
@@ -161,9 +193,9 @@ StreamStateFile DecodeStatePayload(ByteReader& r) {
     } catch (const ModelFileError& e) {
       throw StateFileError(std::string("embedded model: ") + e.what());
     }
-    if (s.model->dims() != out.dims) {
-      throw StateFileError("the model has " + std::to_string(s.model->dims()) +
-                           " dimensions, the stream " + std::to_string(out.dims));
+    if (s.model->input_dims() != out.dims) {
+      throw StateFileError("the model has " + std::to_string(s.model->input_dims()) +
+                           " input dimensions, the stream " + std::to_string(out.dims));
     }
   }
   const uint64_t solution = r.Get<uint64_t>("the solution");
@@ -217,15 +249,41 @@ StreamStateFile DecodeStatePayload(ByteReader& r) {
   s.counters.refits_started = r.Get<int64_t>("the counters");
   s.counters.refits_coalesced = r.Get<int64_t>("the counters");
   s.counters.drift_alarms = r.Get<int64_t>("the counters");
-  if (r.remaining() != 0) throw StateFileError("trailing bytes after the counters");
+  if (version >= 2) {
+    s.counters.history_vectors = r.Get<int64_t>("the counters");
+    s.counters.history_resets = r.Get<int64_t>("the counters");
+    auto& t = s.transform;
+    const uint64_t history = r.Get<uint64_t>("the transform history");
+    r.Need(history, (static_cast<std::size_t>(dims) + 1) * 8, "the transform history");
+    if (history > 0) t.history.resize(static_cast<Eigen::Index>(history), dims);
+    r.GetArray(t.history.data(), history * dims, "the transform history");
+    t.times.resize(history);
+    r.GetArray(t.times.data(), history, "the transform history");
+    const uint32_t windows = r.Get<uint32_t>("the transform statistics");
+    r.Need(windows, sizeof(int32_t), "the transform statistics");
+    t.running_windows.resize(windows);
+    for (int& window : t.running_windows) window = r.Get<int32_t>("the transform statistics");
+    const uint64_t running = r.Get<uint64_t>("the transform statistics");
+    r.Need(running, sizeof(double), "the transform statistics");
+    t.running.resize(running);
+    r.GetArray(t.running.data(), running, "the transform statistics");
+    t.running_outputs = r.Get<int64_t>("the transform statistics");
+  }
+  if (r.remaining() != 0) throw StateFileError("trailing bytes after the state");
   return out;
 }
 
 }  // namespace
 
 StreamStateFile DecodeStreamState(const uint8_t* data, std::size_t size) {
-  return DecodeChecksummed<StateFileError>(data, size, kMagic, kStateFormatVersion, "state",
-                                           kMaxPayloadBytes, DecodeStatePayload);
+  try {
+    const ChecksummedPayload payload =
+        UnwrapChecksummed(data, size, kMagic, kStateFormatVersion, "state", kMaxPayloadBytes);
+    ByteReader reader(payload.data, payload.size, "state");
+    return DecodeStatePayload(reader, payload.version);
+  } catch (const ChecksummedFileError& e) {
+    throw StateFileError(e.what());
+  }
 }
 
 StateStore::StateStore(std::string dir) : dir_(std::move(dir)) {

@@ -37,7 +37,9 @@
 
 namespace nuwatch {
 
-inline constexpr uint32_t kStateFormatVersion = 1;
+// Version 2: the window's column count (a transform widens the features), the transform's history
+// and the history counters. Version 1 files are still read.
+inline constexpr uint32_t kStateFormatVersion = 2;
 
 // A state file that cannot be read, written or trusted. The message says why (and names the file
 // where one is involved).

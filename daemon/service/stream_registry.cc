@@ -60,6 +60,8 @@ void Stream::RefreshSlowGauges() {
   const auto model = detector->model();
   metrics.support_vectors->Set(model ? model->num_support() : 0);
   metrics.support_vector_budget->Set(static_cast<double>(options.support_vector_budget));
+  metrics.false_alarm_rate_target->Set(options.false_alarm_rate);
+  metrics.alarm_level->Set(model && model->calibrated() ? model->parts().calibration.level() : 0);
   metrics.window_vectors->Set(static_cast<double>(detector->window_size()));
   metrics.memory_bytes->Set(static_cast<double>(detector->MemoryBytes()));
   metrics.incidents_open->Set(detector->open_incident() ? 1 : 0);

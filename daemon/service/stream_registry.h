@@ -12,6 +12,7 @@
 #include <cstdint>
 #include <functional>
 #include <memory>
+#include <set>
 #include <string>
 #include <string_view>
 #include <unordered_map>
@@ -70,6 +71,8 @@ struct Stream {
   std::vector<double> row;          // dims values: the vector being processed
   uint64_t seen_model_version = 0;  // the model version the gauges describe
   int64_t seen_coalesced = 0;       // counters().refits_coalesced already counted
+  std::set<std::string> warned;     // refit warnings already logged for this stream
+  bool flooding = false;            // more than half flagged: logged once until it recovers
   // Snapshots: the vector count and model version of the last one taken, and whether one is due
   // once the refit in flight has finished.
   int64_t snapshot_vectors = -1;

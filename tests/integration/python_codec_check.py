@@ -299,13 +299,19 @@ def parse_published(text: str):
             out["peak_decision"] = obj["peak_decision"]
         return out
     _need(_is_json_number(obj.get("t")), "t must be a number")
-    _need(obj.get("state") in ("learning", "scoring"), "state must be learning or scoring")
-    learning = obj["state"] == "learning"
+    _need(obj.get("state") in ("learning", "history", "scoring"),
+          "state must be learning, history or scoring")
+    learning = obj["state"] != "scoring"
     _need("decision" in obj, "decision is absent")
+    _need("p_value" in obj, "p_value is absent")
     if learning:
-        _need(obj["decision"] is None, "decision must be null while learning")
+        _need(obj["decision"] is None, "decision must be null unless scoring")
+        _need(obj["p_value"] is None, "p_value must be null unless scoring")
     else:
         _need(_is_json_number(obj["decision"]), "decision must be a number while scoring")
+        _need(obj["p_value"] is None or (_is_json_number(obj["p_value"]) and
+                                         0 <= obj["p_value"] <= 1),
+              "p_value must be null or a number in [0, 1]")
     _need(isinstance(obj.get("anomaly"), bool), "anomaly must be a boolean")
     _need(not (learning and obj["anomaly"]), "anomaly must be false while learning")
     _need("incident" in obj, "incident is absent")
@@ -317,7 +323,7 @@ def parse_published(text: str):
         _need(obj["model_version"] == 0 and obj["support_vectors"] == 0,
               "model_version and support_vectors are 0 while learning")
     out = {"kind": "result", "t": obj["t"], "state": obj["state"], "decision": obj["decision"],
-           "anomaly": obj["anomaly"], "incident": obj["incident"],
+           "p_value": obj["p_value"], "anomaly": obj["anomaly"], "incident": obj["incident"],
            "model_version": obj["model_version"], "support_vectors": obj["support_vectors"]}
     _need(("top_features" in obj) == obj["anomaly"],
           "top_features is present exactly for anomalies")

@@ -146,6 +146,11 @@ class Detector {
   // otherwise, state unchanged). Allocates nothing unless a refit is posted.
   Verdict Observe(double time, std::span<const double> x);
 
+  // The attribution (Model::Explain) of the last vector Observe scored, in the transformed
+  // features the model sees (named by the model's feature_names: "flow_m3h, mean of 6"), by the
+  // current model. Empty before anything was scored. Owner thread; allocates its result.
+  std::vector<FeatureShare> ExplainLast(int top_k) const;
+
   // Drops the window, the model and the open incident, so that a new normal is learned from the
   // next `warmup` vectors. A refit in flight is discarded when it finishes.
   void Relearn();
@@ -210,6 +215,8 @@ class Detector {
   RefitExecutor* executor_;
   FeatureTransform transform_;
   std::vector<double> transformed_;  // output buffer of transform_, sized once
+  std::vector<double> last_scored_;  // the last scored vector (transformed), for ExplainLast
+  bool has_last_scored_ = false;
   SampleWindow window_;
   IncidentTracker incidents_;
   PageHinkley drift_;

@@ -666,12 +666,18 @@ TEST(ResultJson, LearningResultHasTheSection91Members) {
   EXPECT_EQ(parsed["t"].get<double>(), 1767225600.5);
   EXPECT_EQ(parsed["state"], "learning");
   EXPECT_TRUE(parsed["decision"].is_null());
+  EXPECT_TRUE(parsed["p_value"].is_null());
   EXPECT_EQ(parsed["anomaly"], false);
   EXPECT_TRUE(parsed["incident"].is_null());
   EXPECT_EQ(parsed["model_version"], 0);
   EXPECT_EQ(parsed["support_vectors"], 0);
   EXPECT_FALSE(parsed.contains("top_features"));
-  EXPECT_EQ(parsed.size(), 7u);
+  EXPECT_EQ(parsed.size(), 8u);
+  // A stream whose transform refills its history says so, with no score either.
+  result.history = true;
+  EncodeResultJson(result, &out);
+  EXPECT_EQ(json::parse(out)["state"], "history");
+  EXPECT_TRUE(json::parse(out)["p_value"].is_null());
   EXPECT_EQ(out.find('\n'), std::string::npos);  // §9: one line
 }
 
@@ -686,6 +692,7 @@ TEST(ResultJson, AnomalyCarriesTopFeaturesWithEscapedNamesOrIndices) {
   result.t = 1767229220;
   result.learning = false;
   result.decision = -0.27410000000000001;
+  result.p_value = 1.32e-05;
   result.anomaly = true;
   result.incident_id = 7;
   result.model_version = 4;
@@ -697,6 +704,7 @@ TEST(ResultJson, AnomalyCarriesTopFeaturesWithEscapedNamesOrIndices) {
   EXPECT_EQ(parsed["t"].get<double>(), 1767229220.0);
   EXPECT_EQ(parsed["state"], "scoring");
   EXPECT_EQ(parsed["decision"].get<double>(), -0.2741);  // shortest round trip, read back exactly
+  EXPECT_EQ(parsed["p_value"].get<double>(), 1.32e-05);
   EXPECT_EQ(parsed["anomaly"], true);
   EXPECT_EQ(parsed["incident"], 7);
   EXPECT_EQ(parsed["model_version"], 4);
@@ -716,6 +724,7 @@ TEST(ResultJson, ScoringWithoutAnomalyHasNoTopFeaturesAndNonFiniteIsNull) {
   ScoredVector result;
   result.learning = false;
   result.decision = std::numeric_limits<double>::quiet_NaN();
+  result.p_value = std::numeric_limits<double>::quiet_NaN();  // an uncalibrated model
   result.anomaly = false;
   result.top_features = top;  // not written: no anomaly
   result.model_version = std::numeric_limits<std::uint64_t>::max();
@@ -723,6 +732,7 @@ TEST(ResultJson, ScoringWithoutAnomalyHasNoTopFeaturesAndNonFiniteIsNull) {
   EncodeResultJson(result, &out);
   const json parsed = json::parse(out);
   EXPECT_TRUE(parsed["decision"].is_null());  // §9: non-finite numbers are null
+
   EXPECT_FALSE(parsed.contains("top_features"));
   EXPECT_EQ(parsed["model_version"].get<std::uint64_t>(), 18446744073709551615ull);
 }

@@ -123,6 +123,9 @@ void ExpectIdenticalStates(const DetectorState& a, const DetectorState& b) {
   EXPECT_EQ(a.counters.refits_started, b.counters.refits_started);
   EXPECT_EQ(a.counters.refits_coalesced, b.counters.refits_coalesced);
   EXPECT_EQ(a.counters.drift_alarms, b.counters.drift_alarms);
+  EXPECT_EQ(a.counters.history_vectors, b.counters.history_vectors);
+  EXPECT_EQ(a.counters.history_resets, b.counters.history_resets);
+  EXPECT_TRUE(a.transform == b.transform);
 }
 
 std::string DecodeError(const std::vector<uint8_t>& bytes) {
@@ -219,6 +222,38 @@ TEST(StreamStateFile, ARestoredDetectorGoesOnExactlyAsTheOriginal) {
   }
   EXPECT_GT(restored.model()->version(), DecodeStreamState(bytes.data(), bytes.size())
                                              .state.model->version());  // it did refit meanwhile
+}
+
+// With temporal context the window holds wider vectors (2 features x (1 + 1 lag + 1 window x 2
+// statistics) = 8 columns) and the transform's history must travel too: a stream restored from
+// its file goes on as the original, with no vector spent refilling the history.
+TEST(StreamStateFile, AStreamWithATransformGoesOnExactlyAsTheOriginal) {
+  DetectorOptions o = SmallOptions();
+  o.lags = 1;
+  o.rolling_windows = {4};
+  o.rolling_statistics = {"mean", "slope"};
+  Detector original(o, 2);
+  const auto vectors = Vectors(80, 2, 17);
+  for (std::size_t i = 0; i < vectors.size(); ++i)
+    original.Observe(1000.0 + 10.0 * static_cast<double>(i), vectors[i]);
+  ASSERT_NE(original.model(), nullptr);
+  const DetectorState state = original.ExportState();
+  ASSERT_EQ(state.window_rows.cols(), 8);
+  ASSERT_EQ(state.transform.history.rows(), 3);
+  const std::vector<uint8_t> bytes = EncodeStreamState("k", 2, state);
+  const StreamStateFile file = DecodeStreamState(bytes.data(), bytes.size());
+  ExpectIdenticalStates(state, file.state);
+  Detector restored(o, 2);
+  restored.ImportState(file.state);
+  const auto more = Vectors(30, 0, 18);
+  for (std::size_t i = 0; i < more.size(); ++i) {
+    const double t = 2000.0 + 10.0 * static_cast<double>(i);
+    const Verdict a = original.Observe(t, more[i]);
+    const Verdict b = restored.Observe(t, more[i]);
+    ASSERT_EQ(b.state, StreamState::kScoring) << "vector " << i;
+    ASSERT_TRUE(SameBytes(a.decision, b.decision)) << "vector " << i;
+    ASSERT_TRUE(SameBytes(a.p_value, b.p_value)) << "vector " << i;
+  }
 }
 
 TEST(StreamStateFile, RoundTripsALearningStream) {
