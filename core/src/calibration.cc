@@ -368,7 +368,9 @@ Calibration Calibration::Fit(std::span<const double> scores, std::span<const dou
     s.reference_opened = count.opened;
     if (o.false_incidents_per_day > 0) {
       level = std::min(level, o.false_incidents_per_day / (OpenedPerFlag(s) * s.vectors_per_day));
-      if (s.span_days < 1.0) {
+      // The n scores cover n intervals of data time (the span runs from the first to the last).
+      const double covered_days = s.span_days * static_cast<double>(n) / static_cast<double>(n - 1);
+      if (covered_days < 1.0) {
         warnings.push_back("the false-incident estimate rests on " + Num(s.span_days * 24) +
                            " hours of data and " + std::to_string(count.opened) +
                            " incidents opened at the reference level " + Num(s.reference_level));
