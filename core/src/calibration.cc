@@ -371,9 +371,10 @@ Calibration Calibration::Fit(std::span<const double> scores, std::span<const dou
       // The n scores cover n intervals of data time (the span runs from the first to the last).
       const double covered_days = s.span_days * static_cast<double>(n) / static_cast<double>(n - 1);
       if (covered_days < 1.0) {
-        warnings.push_back("the false-incident estimate rests on " + Num(s.span_days * 24) +
-                           " hours of data and " + std::to_string(count.opened) +
-                           " incidents opened at the reference level " + Num(s.reference_level));
+        // Stable wording (no figures): callers log each distinct warning once per stream.
+        warnings.push_back(
+            "the false-incident estimate rests on less than a day of data (the window's span): "
+            "it is rough; a window spanning more days makes it firmer");
       }
     }
   } else if (o.false_incidents_per_day > 0) {
@@ -384,27 +385,26 @@ Calibration Calibration::Fit(std::span<const double> scores, std::span<const dou
     if (c.parts_.has_tail) {
       c.parts_.summary.level_from_tail = true;
     } else {
-      warnings.push_back("the window is too short for the rate asked: " + std::to_string(n) +
-                         " calibration scores resolve p-values down to " + Num(resolution) +
-                         ", the level " + Num(level) +
-                         " needs a tail model (at least 5 x 20 = 100 scores); flagging at " +
-                         Num(resolution) + " instead, so the realised rate will exceed it");
+      warnings.push_back(
+          "the window is too short for the rate asked: fewer than 100 calibration scores resolve "
+          "p-values down to 1 / (scores + 1) only, and a smaller level needs a tail model; "
+          "flagging at 1 / (scores + 1) instead, so the realised rate will exceed the budget");
       level = resolution;
     }
   } else if (c.parts_.has_tail && level < c.parts_.junction_p) {
     c.parts_.summary.level_from_tail = true;
   } else if (!c.parts_.has_tail && level * static_cast<double>(n + 1) < o.resolved_exceedances) {
-    warnings.push_back("the level " + Num(level) + " is backed by fewer than " +
-                       std::to_string(o.resolved_exceedances) + " of " + std::to_string(n) +
-                       " calibration scores: the realised rate will scatter widely around it");
+    warnings.push_back("the alarm level is backed by fewer than " +
+                       std::to_string(o.resolved_exceedances) +
+                       " calibration scores and there is no tail model (fewer than 100 scores): "
+                       "the realised rate will scatter widely around it");
   }
   if (c.parts_.summary.level_from_tail) {
     const double tail_probability = static_cast<double>(exceedances) / static_cast<double>(n);
     if (level < tail_probability / 1000) {
-      warnings.push_back("the level " + Num(level) + " extrapolates the tail model more than " +
-                         "1000 times beyond the data it was fitted on (" +
-                         std::to_string(exceedances) + " of " + std::to_string(n) +
-                         " scores): a longer window makes it trustworthy");
+      warnings.push_back(
+          "the alarm level extrapolates the tail model more than 1000 times beyond the data it "
+          "was fitted on: a longer window makes it trustworthy");
     }
   }
   c.parts_.summary.level = level;

@@ -291,23 +291,25 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
       result.solution_alpha[k++] = alpha[i];
     }
   }
+  // Stable wording (no figures): callers log each distinct warning once per stream.
   if (full.solution.bounded_support_vectors == 0 && o.nu < 1) {
     report.warnings.push_back(
-        "nu = " + std::to_string(o.nu) + " does not bind: no support vector is at the bound, so " +
-        "the window's outlier fraction is below nu (the kernel width hugs the data)");
+        "nu does not bind: no support vector is at the bound, so the window's outlier fraction is "
+        "below nu (the kernel width hugs the data); the calibrated level, not nu, sets the alarm "
+        "rate");
   }
   if (o.nu * static_cast<double>(n) < 10) {
     report.warnings.push_back(
-        "nu x window = " + std::to_string(o.nu * static_cast<double>(n)) +
-        " is below 10: the envelope rests on a handful of support vectors, and the models fitted "
-        "for calibration differ from it enough that the realised false-alarm rate scatters");
+        "nu x window is below 10: the envelope rests on a handful of support vectors, and the "
+        "models fitted for calibration differ from it enough that the realised false-alarm rate "
+        "scatters");
   }
 
   const int folds = static_cast<int>(std::min<int64_t>(o.calibration_folds, n / 2));
   if (o.calibration_folds >= 2 && folds < 2) {
-    report.warnings.push_back("calibration skipped: " + std::to_string(n) +
-                              " vectors are too few for " + std::to_string(o.calibration_folds) +
-                              " folds; flagging decision < 0");
+    report.warnings.push_back(
+        "calibration skipped: the window holds too few vectors for two per fold; flagging "
+        "decision < 0 until it does");
   }
   if (folds >= 2) {
     const auto calibration_started = std::chrono::steady_clock::now();

@@ -29,9 +29,12 @@ namespace nuwatch::cli {
 namespace {
 
 constexpr const char* kFooter = R"(How settings are scored:
-  The grid is the cartesian product of the --nu, --gamma, --window and --support-vector-budget
-  lists; a list not given keeps the config's value (each stream's, [[stream]] overrides included).
-  A tuned key is applied to every stream, over any override; warmup becomes min(warmup, window).
+  The grid is the cartesian product of the --nu, --false-alarm-rate, --gamma, --lags,
+  --rolling-windows, --window and --support-vector-budget lists; a list not given keeps the
+  config's value (each stream's, [[stream]] overrides included), except --nu and
+  --false-alarm-rate, which have default lists.
+  A tuned key is applied to every stream, over any override; a warmup above a tuned window
+  becomes 0 (the whole window).
   Every other detector key has its flag (named as the key, e.g. --refit-every); it beats the
   config for every stream, as in `nuwatch replay`. Each setting
   replays the recording with refits inline (deterministic: the same results with any --jobs) and
@@ -45,6 +48,9 @@ constexpr const char* kFooter = R"(How settings are scored:
   False alarms per day count per stream: false alarm events over all streams divided by the
   incident-free days summed over the streams.
 Selection:
+  Settings that flag more than half of the scored vectors are not usable and rank last; when
+  every setting is such, tune writes the report and exits 1. Each setting's realised false-alarm
+  rate (flagged fraction outside the labelled incidents) is reported beside the rate it set.
   The best objective among the settings with false alarms per day <= --max-false-alarms-per-day;
   ties go to fewer false alarms per day, then the smaller nu, then grid order. When no setting
   meets the limit, the one with the fewest false alarms is chosen, a warning is printed and the
@@ -55,7 +61,9 @@ Report directory:
   against nu), timeline.png/.svg (the chosen setting's decision values per stream).)";
 
 // The detector keys `tune` takes lists of: the grid.
-constexpr std::string_view kGridKeys[] = {"nu", "gamma", "window", "support_vector_budget"};
+constexpr std::string_view kGridKeys[] = {
+    "nu",   "gamma",          "window", "support_vector_budget", "false_alarm_rate",
+    "lags", "rolling_windows"};
 
 bool IsGridKey(std::string_view key) {
   return std::find(std::begin(kGridKeys), std::end(kGridKeys), key) != std::end(kGridKeys);
@@ -63,7 +71,8 @@ bool IsGridKey(std::string_view key) {
 
 struct TuneArguments {
   std::string input, incidents, report;
-  std::string nu, gamma, window, support_vector_budget;  // lists
+  std::string nu, gamma, window, support_vector_budget, false_alarm_rate, lags,
+      rolling_windows;  // lists
   std::string max_false_alarms, objective = "f1", alarms = "incident", jobs, grace = "0";
   DetectorFlags detector;  // --config and every key that is not a grid key
   CLI::App* command = nullptr;
@@ -105,6 +114,15 @@ Config ResolveBase(const TuneArguments& a) { return a.detector.Resolve(/*validat
 TuningOptions ParseOptions(const TuneArguments& a) {
   TuningOptions options;
   options.grid.nu = Given(a, "--nu") ? ParseList("--nu", a.nu, ParseNuList) : DefaultNuList();
+  options.grid.false_alarm_rate =
+      Given(a, "--false-alarm-rate")
+          ? ParseList("--false-alarm-rate", a.false_alarm_rate, ParseFalseAlarmRateList)
+          : DefaultFalseAlarmRateList();
+  if (Given(a, "--lags")) options.grid.lags = ParseList("--lags", a.lags, ParseLagsList);
+  if (Given(a, "--rolling-windows")) {
+    options.grid.rolling_window =
+        ParseList("--rolling-windows", a.rolling_windows, ParseRollingWindowList);
+  }
   if (Given(a, "--gamma")) options.grid.gamma = ParseList("--gamma", a.gamma, ParseGammaList);
   if (Given(a, "--window")) options.grid.window = ParseList("--window", a.window, ParseWindowList);
   if (Given(a, "--support-vector-budget")) {
@@ -254,6 +272,18 @@ void RunTune(const TuneArguments& a) {
             << "\n";
   std::cout << "report: " << a.report
             << " (results.csv, results.json, best.toml, sweep.png/.svg, timeline.png/.svg)\n";
+  // Calibration honesty: target against realised for the chosen setting, and every distinct
+  // warning the refits raised for it.
+  std::cout << "false-alarm rate of the chosen setting: set "
+            << FormatNumber(best.detector.false_alarm_rate) << ", realised "
+            << Rounded(best.realised_false_alarm_rate) << " outside the labelled incidents\n";
+  for (const std::string& w : best.warnings) std::cerr << "nuwatch tune: warning: " << w << "\n";
+  if (!report.selection.usable_found) {
+    throw CommandError(
+        "no usable setting: every setting flags more than half of the scored vectors (report "
+        "written to " +
+        a.report + "); check that the window spans the process's normal cycle");
+  }
   if (!report.selection.limit_met) {
     std::cerr << "nuwatch tune: warning: no setting meets --max-false-alarms-per-day "
               << FormatNumber(*options.max_false_alarms_per_day)
@@ -284,6 +314,16 @@ void AddTuneCommand(CLI::App& app) {
       ->type_name("LIST");
   AddLastWinsOption(sub, "--gamma", a->gamma,
                     "Kernel widths: scale, median or numbers (default: config)")
+      ->type_name("LIST");
+  AddLastWinsOption(sub, "--false-alarm-rate", a->false_alarm_rate,
+                    "Per-vector false-alarm budgets, each in (0, 0.5] (default "
+                    "0.0005,0.001,0.002,0.005)")
+      ->type_name("LIST");
+  AddLastWinsOption(sub, "--lags", a->lags,
+                    "Numbers of previous vectors stacked (temporal context; default: config)")
+      ->type_name("LIST");
+  AddLastWinsOption(sub, "--rolling-windows", a->rolling_windows,
+                    "Rolling-statistics window lengths, one per setting; 0: none (default: config)")
       ->type_name("LIST");
   AddLastWinsOption(sub, "--window", a->window,
                     "Training window sizes in vectors (default: config)")

@@ -130,6 +130,8 @@ bool WithinLimit(const SettingResult& r, std::optional<double> limit) {
 // total thanks to the grid index: so the best of any subset is the same whatever the order in
 // which the results arrive.
 bool RanksBefore(const SettingResult& a, const SettingResult& b) {
+  // A setting that flags most of the vectors is not an alarm anyone keeps: never first.
+  if (a.usable != b.usable) return a.usable;
   if (a.within_limit != b.within_limit) return a.within_limit;
   if (a.within_limit) {
     if (!Tie(BetterObjective, a, b)) return BetterObjective(a, b);
@@ -322,6 +324,41 @@ std::vector<int64_t> ParseSupportVectorBudgetList(std::string_view text) {
 
 std::vector<double> DefaultNuList() { return {0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2}; }
 
+std::vector<double> DefaultFalseAlarmRateList() { return {0.0005, 0.001, 0.002, 0.005}; }
+
+std::vector<double> ParseFalseAlarmRateList(std::string_view text) {
+  const std::vector<std::string_view> items = SplitList(text);
+  std::vector<double> values;
+  for (const std::string_view item : items) {
+    const std::optional<double> value = ParseFiniteNumber(item);
+    if (!value || !(*value > 0 && *value <= 0.5)) {
+      throw TuningError("'" + std::string(item) + "' is not a false-alarm rate in (0, 0.5]");
+    }
+    values.push_back(*value);
+  }
+  RejectRepeats(values, items, [](double a, double b) { return a == b; });
+  return values;
+}
+
+std::vector<int64_t> ParseLagsList(std::string_view text) {
+  std::vector<int64_t> values = ParseIntegerList(text, 0);
+  for (const int64_t v : values) {
+    if (v > 1000) throw TuningError("lags " + std::to_string(v) + " is above 1000");
+  }
+  return values;
+}
+
+std::vector<int64_t> ParseRollingWindowList(std::string_view text) {
+  std::vector<int64_t> values = ParseIntegerList(text, 0);
+  for (const int64_t v : values) {
+    if (v == 1 || v > 100000) {
+      throw TuningError("rolling window " + std::to_string(v) +
+                        " is neither 0 (none) nor in [2, 100000]");
+    }
+  }
+  return values;
+}
+
 std::vector<TuningSetting> ExpandGrid(const TuningGrid& grid) {
   // An empty list stands for one unset value.
   auto values = [](const auto& list) {
@@ -334,12 +371,22 @@ std::vector<TuningSetting> ExpandGrid(const TuningGrid& grid) {
   const auto gammas = values(grid.gamma);
   const auto windows = values(grid.window);
   const auto budgets = values(grid.support_vector_budget);
+  const auto rates = values(grid.false_alarm_rate);
+  const auto lags = values(grid.lags);
+  const auto rolling = values(grid.rolling_window);
   std::vector<TuningSetting> settings;
-  settings.reserve(nus.size() * gammas.size() * windows.size() * budgets.size());
   for (const auto& window : windows) {
     for (const auto& budget : budgets) {
-      for (const auto& gamma : gammas) {
-        for (const auto& nu : nus) settings.push_back({nu, gamma, window, budget});
+      for (const auto& roll : rolling) {
+        for (const auto& lag : lags) {
+          for (const auto& gamma : gammas) {
+            for (const auto& rate : rates) {
+              for (const auto& nu : nus) {
+                settings.push_back({nu, gamma, window, budget, rate, lag, roll});
+              }
+            }
+          }
+        }
       }
     }
   }
@@ -354,13 +401,27 @@ DetectorOptions ApplySetting(DetectorOptions base, const TuningSetting& setting)
     if (base.warmup > base.window) base.warmup = 0;  // the whole window
   }
   if (setting.support_vector_budget) base.support_vector_budget = *setting.support_vector_budget;
+  if (setting.false_alarm_rate) base.false_alarm_rate = *setting.false_alarm_rate;
+  if (setting.lags) base.lags = static_cast<int>(*setting.lags);
+  if (setting.rolling_window) {
+    base.rolling_windows.clear();
+    if (*setting.rolling_window > 0) base.rolling_windows.push_back(*setting.rolling_window);
+  }
   return base;
 }
 
 std::string DescribeSetting(const DetectorOptions& options) {
-  return "nu " + Shortest(options.nu) + ", gamma " + GammaText(options.gamma) + ", window " +
-         std::to_string(options.window) + ", support_vector_budget " +
-         std::to_string(options.support_vector_budget);
+  std::string text = "nu " + Shortest(options.nu) + ", false_alarm_rate " +
+                     Shortest(options.false_alarm_rate) + ", gamma " + GammaText(options.gamma) +
+                     ", window " + std::to_string(options.window) + ", support_vector_budget " +
+                     std::to_string(options.support_vector_budget);
+  if (options.lags > 0) text += ", lags " + std::to_string(options.lags);
+  if (!options.rolling_windows.empty()) {
+    text += ", rolling_windows ";
+    for (std::size_t i = 0; i < options.rolling_windows.size(); ++i)
+      text += (i ? "," : "") + std::to_string(options.rolling_windows[i]);
+  }
+  return text;
 }
 
 std::vector<StreamAlarms> AlarmsFromReplay(const StreamRecording& recording,
@@ -381,6 +442,32 @@ std::vector<StreamAlarms> AlarmsFromReplay(const StreamRecording& recording,
     }
   }
   return alarms;
+}
+
+void MeasureFalseAlarms(const StreamRecording& recording, const std::vector<ReplayRow>& rows,
+                        const std::vector<Incident>& incidents, SettingResult* result) {
+  std::map<std::string, std::vector<std::pair<double, double>>> windows;
+  for (const Incident& incident : incidents)
+    windows[incident.stream].emplace_back(incident.start_seconds, incident.end_seconds);
+  int64_t scored = 0, flagged = 0, outside = 0, outside_flagged = 0;
+  for (int64_t i = 0; i < recording.rows(); ++i) {
+    const ReplayRow& row = rows[i];
+    if (row.learning) continue;
+    ++scored;
+    flagged += row.anomaly;
+    const auto it = windows.find(recording.streams[recording.stream_of_row[i]]);
+    bool inside = false;
+    if (it != windows.end()) {
+      for (const auto& [start, end] : it->second)
+        inside = inside || (recording.times[i] >= start && recording.times[i] <= end);
+    }
+    if (!inside) {
+      ++outside;
+      outside_flagged += row.anomaly;
+    }
+  }
+  result->realised_false_alarm_rate = Ratio(outside_flagged, outside);
+  result->usable = UnusableSettingNote(flagged, scored).empty();
 }
 
 void ScoreSetting(TuningObjective objective, SettingResult* result) {
@@ -416,9 +503,11 @@ TuningSelection SelectSetting(std::vector<SettingResult>* results,
   }
   TuningSelection selection;
   selection.limit_met = false;
+  selection.usable_found = false;
   for (SettingResult& r : *results) {
     r.within_limit = WithinLimit(r, max_false_alarms_per_day);
     selection.limit_met = selection.limit_met || r.within_limit;
+    selection.usable_found = selection.usable_found || r.usable;
   }
   selection.ranking.resize(results->size());
   for (std::size_t i = 0; i < results->size(); ++i) selection.ranking[i] = i;
@@ -516,15 +605,18 @@ TuningReport RunTuning(const StreamRecording& recording, const std::vector<Incid
       try {
         const auto started = std::chrono::steady_clock::now();
         int64_t counted = 0;
-        std::vector<ReplayRow> rows =
-            ReplayRecording(recording, OptionsFor(options.base, settings[k]), [&](int64_t done) {
+        std::vector<ReplayRow> rows = ReplayRecording(
+            recording, OptionsFor(options.base, settings[k]),
+            [&](int64_t done) {
               rows_done += done - counted;
               counted = done;
               report_progress();
-            });
+            },
+            &result.warnings);
         const EvaluationReport evaluation = Evaluate(
             AlarmsFromReplay(recording, rows, options.alarms), incidents, options.evaluation);
         result.overall = evaluation.overall;
+        MeasureFalseAlarms(recording, rows, incidents, &result);
         ScoreSetting(options.objective, &result);
         result.within_limit = WithinLimit(result, options.max_false_alarms_per_day);
         result.replay_seconds =
@@ -573,9 +665,9 @@ TuningReport RunTuning(const StreamRecording& recording, const std::vector<Incid
 std::string SummaryTable(const TuningReport& report) {
   const bool limited = report.max_false_alarms_per_day.has_value();
   std::vector<std::string> header = {
-      "rank",      "nu",        "gamma",    "window", "support_vector_budget",
-      "objective", "precision", "recall",   "f1",     "range_f1",
-      "incidents", "delay_med", "false/day"};
+      "rank",    "nu",       "gamma",     "window",    "support_vector_budget",
+      "far set", "far real", "objective", "precision", "recall",
+      "f1",      "range_f1", "incidents", "delay_med", "false/day"};
   if (limited) header.push_back("limit");
   header.push_back("seconds");
   std::vector<std::vector<std::string>> rows;
@@ -588,6 +680,8 @@ std::string SummaryTable(const TuningReport& report) {
         GammaText(s.detector.gamma),
         std::to_string(s.detector.window),
         std::to_string(s.detector.support_vector_budget),
+        Shortest(s.detector.false_alarm_rate),
+        Fixed(s.realised_false_alarm_rate, 4) + (s.usable ? "" : " (unusable)"),
         Fixed(s.objective, 3),
         Fixed(e.point_precision, 3),
         Fixed(e.point_recall, 3),
@@ -632,7 +726,7 @@ std::string BestToml(const TuningReport& report, const Config& base,
   out += "# Alarms scored: " +
          std::string(report.alarms == AlarmSource::kIncident
                          ? "debounced incidents (a sample is alarmed while an incident is open)"
-                         : "flagged samples (outlier)") +
+                         : "flagged samples (anomaly)") +
          "; grace " + Shortest(report.evaluation.grace_seconds) + " s.\n";
   if (report.max_false_alarms_per_day) {
     out +=
@@ -650,6 +744,10 @@ std::string BestToml(const TuningReport& report, const Config& base,
       (provenance.config_path.empty() ? std::string("built-in defaults") : provenance.config_path) +
       ".\n";
   out += "# Chosen: " + DescribeSetting(best.detector) + ".\n";
+  out += "# False-alarm rate: set " + Shortest(best.detector.false_alarm_rate) + ", realised " +
+         Fixed(best.realised_false_alarm_rate, 5) +
+         " (flagged fraction of the scored vectors outside the labelled incidents)" +
+         (best.usable ? ".\n" : " -- NOT USABLE: it flags more than half of the vectors.\n");
   out += "# Measured: point precision " + Fixed(e.point_precision, 3) + ", recall " +
          Fixed(e.point_recall, 3) + ", F1 " + Fixed(e.point_f1, 3) + "; range precision " +
          Fixed(e.range_precision, 3) + ", recall " + Fixed(e.range_recall, 3) + ", F1 " +
@@ -674,7 +772,8 @@ std::string BestToml(const TuningReport& report, const Config& base,
 std::string ResultsCsv(const TuningReport& report) {
   const std::vector<std::size_t> rank = RankOf(report.selection, report.results.size());
   std::string out =
-      "index,rank,chosen,within_limit,nu,gamma,window,support_vector_budget,warmup,objective,point_"
+      "index,rank,chosen,within_limit,usable,nu,false_alarm_rate,realised_false_alarm_rate,lags,"
+      "rolling_windows,gamma,window,support_vector_budget,warmup,objective,point_"
       "precision,"
       "point_recall,point_f1,range_precision,range_recall,range_f1,samples,flagged_samples,"
       "incidents,incidents_detected,incidents_missed,incident_recall,"
@@ -687,7 +786,14 @@ std::string ResultsCsv(const TuningReport& report) {
                                              std::to_string(rank[s.index]),
                                              s.index == report.selection.chosen ? "1" : "0",
                                              s.within_limit ? "1" : "0",
+                                             s.usable ? "1" : "0",
                                              Shortest(s.detector.nu),
+                                             Shortest(s.detector.false_alarm_rate),
+                                             CsvNumber(s.realised_false_alarm_rate),
+                                             std::to_string(s.detector.lags),
+                                             s.detector.rolling_windows.empty()
+                                                 ? std::string("0")
+                                                 : std::to_string(s.detector.rolling_windows[0]),
                                              GammaText(s.detector.gamma),
                                              std::to_string(s.detector.window),
                                              std::to_string(s.detector.support_vector_budget),
@@ -729,7 +835,13 @@ nlohmann::json SettingJson(const SettingResult& s, std::size_t rank, bool chosen
   j["rank"] = rank;
   j["chosen"] = chosen;
   j["within_limit"] = s.within_limit;
+  j["usable"] = s.usable;
   j["nu"] = s.detector.nu;
+  j["false_alarm_rate"] = s.detector.false_alarm_rate;
+  j["realised_false_alarm_rate"] = JsonNumber(s.realised_false_alarm_rate);
+  j["lags"] = s.detector.lags;
+  j["rolling_windows"] = s.detector.rolling_windows;
+  j["warnings"] = s.warnings;
   j["gamma"] = GammaText(s.detector.gamma);
   j["window"] = s.detector.window;
   j["support_vector_budget"] = s.detector.support_vector_budget;

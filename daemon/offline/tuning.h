@@ -73,17 +73,28 @@ std::vector<double> ParseNuList(std::string_view text);
 std::vector<GammaSpec> ParseGammaList(std::string_view text);
 std::vector<int64_t> ParseWindowList(std::string_view text);
 std::vector<int64_t> ParseSupportVectorBudgetList(std::string_view text);
+// false_alarm_rate: numbers in (0, 0.5]. lags: integers in [0, 1000]. rolling window: integers,
+// 0 (no rolling statistics) or in [2, 100000].
+std::vector<double> ParseFalseAlarmRateList(std::string_view text);
+std::vector<int64_t> ParseLagsList(std::string_view text);
+std::vector<int64_t> ParseRollingWindowList(std::string_view text);
 
 // The default nu list: 1-2-5 steps from 0.001 to 0.2, eight values that cover the useful range
 // evenly on a log scale (nu bounds the training outlier fraction; beyond 0.2 a detector flags
 // one vector in five of normal data).
 std::vector<double> DefaultNuList();
 
+// The default false-alarm budgets: 0.0005 to 0.005, a factor of 10 around the detector's default.
+std::vector<double> DefaultFalseAlarmRateList();
+
 struct TuningGrid {
   std::vector<double> nu;  // empty: keep the configured value (likewise for the others)
   std::vector<GammaSpec> gamma;
   std::vector<int64_t> window;
   std::vector<int64_t> support_vector_budget;
+  std::vector<double> false_alarm_rate;
+  std::vector<int64_t> lags;
+  std::vector<int64_t> rolling_window;  // one window per setting (rolling_windows = {w}); 0: none
 };
 
 // One point of the grid; an unset member keeps the configured value.
@@ -92,9 +103,13 @@ struct TuningSetting {
   std::optional<GammaSpec> gamma;
   std::optional<int64_t> window;
   std::optional<int64_t> support_vector_budget;
+  std::optional<double> false_alarm_rate;
+  std::optional<int64_t> lags;
+  std::optional<int64_t> rolling_window;
 };
 
-// The cartesian product, nu varying fastest, then gamma, then support_vector_budget, then window.
+// The cartesian product, nu varying fastest, then false_alarm_rate, gamma, lags, rolling_window,
+// support_vector_budget, window.
 // An empty list contributes one unset value, so the product has at least one setting. Ensures: size
 // == product of max(1, list size).
 std::vector<TuningSetting> ExpandGrid(const TuningGrid& grid);
@@ -127,13 +142,20 @@ struct SettingResult {
   std::optional<double> incident_recall;
   std::optional<double> objective;
   bool within_limit = true;
-  double replay_seconds = 0;  // wall time of the replay and its scoring (not deterministic)
+  // Calibration honesty: the flagged fraction of the scored vectors outside every labelled
+  // incident (the realised false-alarm rate, to set against detector.false_alarm_rate), and
+  // whether the setting is usable at all: it flags at most half of the scored vectors.
+  std::optional<double> realised_false_alarm_rate;
+  bool usable = true;
+  std::vector<std::string> warnings;  // distinct refit warnings, "STREAM: ..." (replay.h)
+  double replay_seconds = 0;          // wall time of the replay and its scoring (not deterministic)
 };
 
 struct TuningSelection {
   std::vector<std::size_t> ranking;  // indices into the results, best first (see above)
   std::size_t chosen = 0;            // == ranking.front()
   bool limit_met = true;             // false: no setting is within the limit
+  bool usable_found = true;          // false: every setting flags more than half the vectors
 };
 
 struct TuningReport {

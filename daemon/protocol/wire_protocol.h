@@ -173,7 +173,7 @@ struct ScoredVector {
   bool history = false;  // with learning: state "history" (a transform refills its history)
   double decision = 0;   // ignored while learning
   double p_value = 0;    // ignored while learning; NaN: null (an uncalibrated model)
-  bool anomaly = false;           // written as false while learning
+  bool anomaly = false;  // written as false while learning
   std::int64_t incident_id = -1;  // < 0: no open incident (null)
   std::uint64_t model_version = 0;
   std::int64_t support_vectors = 0;

@@ -56,13 +56,13 @@ std::vector<uint8_t> EncodeStreamState(std::string_view stream_key, int dims,
   // The window holds the transformed features: dims columns times the transform's factor.
   const uint64_t columns = rows > 0 ? static_cast<uint64_t>(s.window_rows.cols()) : 0;
   if (rows > 0 && (columns < static_cast<uint64_t>(dims) || columns % dims != 0)) {
-    fail("window has " + std::to_string(columns) + " columns, not a multiple of dims = " +
-         std::to_string(dims));
+    fail("window has " + std::to_string(columns) +
+         " columns, not a multiple of dims = " + std::to_string(dims));
   }
   const auto& t = s.transform;
   if (t.history.rows() > 0 && t.history.cols() != dims) {
-    fail("transform history has " + std::to_string(t.history.cols()) + " columns, dims = " +
-         std::to_string(dims));
+    fail("transform history has " + std::to_string(t.history.cols()) +
+         " columns, dims = " + std::to_string(dims));
   }
   if (t.times.size() != static_cast<std::size_t>(t.history.rows())) {
     fail("transform history of " + std::to_string(t.history.rows()) + " rows has " +

@@ -79,11 +79,14 @@ class TuneCliTest : public ::testing::Test {
   static std::string SmallDetector() {
     return " --warmup 300 --refit-every 30 --support-vector-budget 64";
   }
-  // `extra` may give its own --window list; else the window is 300.
+  // `extra` may give its own --window and --false-alarm-rate lists; else the window is 300 and
+  // the budget the detector's default, 0.001 (as replay's).
   static std::string Tune(const std::string& report, const std::string& extra) {
     const bool window_given = extra.find("--window") != std::string::npos;
+    const bool rate_given = extra.find("--false-alarm-rate") != std::string::npos;
     return "tune --input " + Stream() + " --incidents " + Incidents() + " --report " + report +
-           SmallDetector() + (window_given ? " " : " --window 300 ") + extra;
+           SmallDetector() + (window_given ? " " : " --window 300 ") +
+           (rate_given ? "" : "--false-alarm-rate 0.001 ") + extra;
   }
 
  private:

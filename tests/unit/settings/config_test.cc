@@ -668,15 +668,18 @@ TEST(ShippedConfig, TheReferenceStatesEveryKeysDefault) {
 TEST(ShippedConfig, TheDemoFileLoads) {
   const Config config = LoadConfig(kSource + "/config/demo.toml");
   const DetectorOptions pump01 = DetectorOptionsFor(config, "pump-01");
-  EXPECT_EQ(pump01.nu, 0.02);
+  EXPECT_EQ(pump01.nu, 0.05);
+  EXPECT_EQ(pump01.false_alarm_rate, 0.001);
+  EXPECT_EQ(pump01.false_incidents_per_day, 0.1);
+  EXPECT_EQ(pump01.scaler, ScalerType::kWhiten);
   EXPECT_EQ(pump01.window, 1440);
-  EXPECT_EQ(pump01.warmup, 1440);
+  EXPECT_EQ(pump01.warmup, 0);
   EXPECT_EQ(pump01.refit_every, 60);
   EXPECT_EQ(pump01.support_vector_budget, 128);
   EXPECT_EQ(pump01.feature_names,
             (std::vector<std::string>{"discharge_pressure_bar", "flow_m3h", "motor_current_a",
                                       "vibration_mm_s", "bearing_temp_c", "speed_rpm"}));
-  EXPECT_EQ(DetectorOptionsFor(config, "pump-11").nu, 0.01);
+  EXPECT_EQ(DetectorOptionsFor(config, "pump-11").open_after, 4);
   EXPECT_EQ(DetectorOptionsFor(config, "pump-11").window, 1440);
 }
 
