@@ -310,7 +310,7 @@ void AddTuneCommand(CLI::App& app) {
       ->required();
   AddLastWinsOption(sub, "--nu", a->nu,
                     "nu values, comma-separated, each in (0, 1] (default "
-                    "0.001,0.002,0.005,0.01,0.02,0.05,0.1,0.2)")
+                    "0.02,0.05,0.1)")
       ->type_name("LIST");
   AddLastWinsOption(sub, "--gamma", a->gamma,
                     "Kernel widths: scale, median or numbers (default: config)")

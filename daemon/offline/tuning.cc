@@ -322,7 +322,7 @@ std::vector<int64_t> ParseSupportVectorBudgetList(std::string_view text) {
   return ParseIntegerList(text, 1);
 }
 
-std::vector<double> DefaultNuList() { return {0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2}; }
+std::vector<double> DefaultNuList() { return {0.02, 0.05, 0.1}; }
 
 std::vector<double> DefaultFalseAlarmRateList() { return {0.0005, 0.001, 0.002, 0.005}; }
 

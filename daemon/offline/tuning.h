@@ -79,9 +79,10 @@ std::vector<double> ParseFalseAlarmRateList(std::string_view text);
 std::vector<int64_t> ParseLagsList(std::string_view text);
 std::vector<int64_t> ParseRollingWindowList(std::string_view text);
 
-// The default nu list: 1-2-5 steps from 0.001 to 0.2, eight values that cover the useful range
-// evenly on a log scale (nu bounds the training outlier fraction; beyond 0.2 a detector flags
-// one vector in five of normal data).
+// The default nu list: 0.02, 0.05, 0.1. With calibrated alarms nu is the envelope's complexity
+// (how much of the window it may leave out, how many support vectors it keeps), not the alarm
+// rate; below nu x window = 10 the calibration scatters, above 0.1 the models grow without
+// helping. The false-alarm budget is the knob that trades alarms against detection.
 std::vector<double> DefaultNuList();
 
 // The default false-alarm budgets: 0.0005 to 0.005, a factor of 10 around the detector's default.
