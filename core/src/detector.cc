@@ -85,6 +85,13 @@ PageHinkleyOptions DriftOptions(const DetectorOptions& o) {
 // Tennessee Eastman (whiten, 1% budget, realised on d00_te.dat): 1.9%, 1.35%, 0.73% for 1, 2, 4.
 constexpr int64_t kChunksPerFold = 2;
 
+// The calibration folds are solved to a looser tolerance than the model they calibrate: their
+// scores set a quantile, which the last digits of the optimum do not move. Measured in
+// instructions (valgrind --tool=callgrind; a cold fit and a warm refit of a 2000 x 16 window,
+// budget 64, 4 folds): 2.71 times an uncalibrated fit at the same tolerance, 2.60 at ten times it.
+// For 3, 4 and 5 folds at ten times: 2.09, 2.60 and 3.06.
+constexpr double kFoldToleranceFactor = 10;
+
 double Seconds(std::chrono::steady_clock::time_point since) {
   return std::chrono::duration<double>(std::chrono::steady_clock::now() - since).count();
 }
@@ -320,6 +327,8 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
     // chunk is long enough that its vectors' neighbours are held out with them.
     const int64_t chunks = std::max<int64_t>(1, std::min<int64_t>(kChunksPerFold, n / (2 * folds)));
     const int64_t blocks = folds * chunks;
+    DetectorOptions fold_options = named;
+    fold_options.tolerance = named.tolerance * kFoldToleranceFactor;
     auto fold_of = [&](int64_t i) { return static_cast<int>((i * blocks / n) % folds); };
     for (int k = 0; k < folds; ++k) {
       std::vector<int64_t> held, kept;
@@ -334,7 +343,7 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
       }
       for (std::size_t r = 0; r < held.size(); ++r)
         test.row(static_cast<int64_t>(r)) = rows.row(held[r]);
-      SingleFit fold = FitOnce(train, train_ids, named, frozen, &result.solution_ids,
+      SingleFit fold = FitOnce(train, train_ids, fold_options, frozen, &result.solution_ids,
                                &result.solution_alpha, version, /*compress=*/false);
       VectorD nonconformity;
       fold.model->EvaluateBatch(test, nullptr, &nonconformity);

@@ -55,7 +55,7 @@ struct DetectorOptions {
   // (flag decision < 0, the in-sample rule whose rate on fresh data nu does not bound).
   double false_alarm_rate = 0.001;       // per-vector budget; 0: not set
   double false_incidents_per_day = 0.1;  // false incidents per day of data time; 0: not set
-  int calibration_folds = 5;             // 0 or >= 2
+  int calibration_folds = 4;             // 0 or >= 2
 
   // Temporal context (feature_transform.h), computed before scaling so that every path sees the
   // same features: `lags` previous vectors stacked beside the current one, and rolling statistics
