@@ -38,6 +38,10 @@ void RunBench(const BenchArgs& args) {
   j["warm_objective"] = r.warm_objective;
   j["cold_objective"] = r.cold_objective;
   j["compress_seconds"] = r.compress_seconds;
+  j["window_cold_fit_seconds"] = r.window_cold_fit_seconds;
+  j["window_cold_fit_calibrated_seconds"] = r.window_cold_fit_calibrated_seconds;
+  j["window_refit_seconds"] = r.window_refit_seconds;
+  j["window_refit_calibrated_seconds"] = r.window_refit_calibrated_seconds;
   j["compressed_from"] = r.compressed_from;
   j["support_vectors"] = r.support_vectors;
   j["score_vectors_per_second"] = r.score_vectors_per_second;
@@ -61,6 +65,12 @@ void RunBench(const BenchArgs& args) {
       r.refit_seconds, static_cast<long long>(r.refit_iterations), r.cold_refit_seconds);
   std::printf("  compress %lld -> %d %8.4f s\n", static_cast<long long>(r.compressed_from),
               r.support_vectors, r.compress_seconds);
+  std::printf("  whole cold fit      %10.4f s uncalibrated, %.4f s calibrated (%.1fx)\n",
+              r.window_cold_fit_seconds, r.window_cold_fit_calibrated_seconds,
+              r.window_cold_fit_calibrated_seconds / r.window_cold_fit_seconds);
+  std::printf("  whole warm refit    %10.4f s uncalibrated, %.4f s calibrated (%.1fx)\n",
+              r.window_refit_seconds, r.window_refit_calibrated_seconds,
+              r.window_refit_calibrated_seconds / r.window_refit_seconds);
   std::printf("  batch scoring       %10.0f vectors/s\n", r.score_vectors_per_second);
   std::printf("  single vector       p50 %.2f us, p99 %.2f us\n", r.score_p50_seconds * 1e6,
               r.score_p99_seconds * 1e6);

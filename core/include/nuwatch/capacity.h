@@ -1,7 +1,8 @@
 // Capacity planning: what one stream costs on this machine, measured on synthetic Gaussian data
 // (`nuwatch bench`). Cold fit of a window, warm refit after a 10% slide (and a cold one on the same
-// window for comparison), compression to the support-vector budget, batch and single-vector
-// scoring at the budget, bytes per model and per stream.
+// window for comparison), compression to the support-vector budget, a whole refit with and
+// without calibration, batch and single-vector scoring at the budget, bytes per model and per
+// stream.
 //
 // A measurement, not a test: the times depend on the machine and on what else runs on it; take
 // the best of several runs. Batch scoring runs for about half a second.
@@ -32,6 +33,13 @@ struct CapacityReport {
   double warm_objective = 0;
   double cold_objective = 0;
   double compress_seconds = 0;  // compression and rho recalibration
+  // A whole refit as the detector runs it (FitWindow: standard scaler, compression, warm after the
+  // slide), without calibration and with the default calibration (calibration_folds cross-fitted models): what
+  // calibrated alarms cost. Best of three each.
+  double window_refit_seconds = 0;
+  double window_refit_calibrated_seconds = 0;
+  double window_cold_fit_seconds = 0;
+  double window_cold_fit_calibrated_seconds = 0;
   int64_t compressed_from = 0;  // support vectors of the warm refit before compression
   int support_vectors = 0;      // after compression
   double score_vectors_per_second = 0;
