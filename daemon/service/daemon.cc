@@ -602,7 +602,9 @@ void Daemon::Impl::HandleIngest(std::string_view key, std::string_view payload) 
     }
     try {
       stream = streams.Add(MakeStream(stream_key, p.dims, stream_options));
-    } catch (const PreconditionError& e) {
+    } catch (const std::exception& e) {
+      // PreconditionError, or a window that cannot be allocated for this many features
+      // (bad_alloc, length_error): this stream is refused, the others carry on.
       spdlog::error("stream {}: cannot create its detector: {}", stream_key, e.what());
       return;
     }
@@ -966,7 +968,9 @@ ReloadOutcome Daemon::Impl::Reload() {
     }
     try {
       s->detector->UpdateOptions(stream_options);
-    } catch (const PreconditionError& e) {
+    } catch (const std::exception& e) {
+      // PreconditionError, or a learning stream's new window that cannot be allocated
+      // (UpdateOptions applies at once then): this stream keeps its settings.
       spdlog::warn("reload: stream={} keeps its settings: {}", s->key, e.what());
       continue;
     }

@@ -752,6 +752,35 @@ TEST(Daemon, ReloadIsRefusedWithoutAConfigurationFile) {
   EXPECT_THAT(reply["error"].get<std::string>(), HasSubstr("--config"));
 }
 
+// Regression, issue 10: a [[stream]] window of 2^63 - 1 passed the checks; the reload then gave
+// some streams their new settings, failed on the first learning one (a window it could not
+// allocate) with an exception that escaped, and the control request got no reply. Now the file is
+// refused whole and nothing of it applies.
+TEST(DaemonRegression, AReloadWithAWindowOf2To63Minus1IsRefusedWhole) {
+  TempDir dir;
+  const std::string config_path = dir / "nuwatchd.toml";
+  std::ofstream(config_path) << ConfigText();
+  DaemonOptions options;
+  options.config = LoadConfig(config_path);
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  client.WarmUp("pump-01", NormalVectors(20, 7), 1000);
+  client.Send("pump-02", 1000, {5, 100});  // learning: a reload resizes its window at once
+  EXPECT_EQ(client.ReceiveFor("pump-02").body["state"], "learning");
+
+  std::ofstream(config_path) << ConfigText(
+      "support_vector_budget = 64\n",
+      "[[stream]]\nmatch = \"pump-*\"\nwindow = 9223372036854775807\n");
+  const json refused = client.Control(R"({"command":"reload"})");
+  EXPECT_EQ(refused["ok"], false);
+  EXPECT_THAT(refused.value("error", ""), HasSubstr("window = 9223372036854775807"));
+  EXPECT_THAT(daemon->MetricsText(),
+              HasSubstr("nuwatch_support_vector_budget{stream=\"pump-01\"} 256"));
+  client.Send("pump-02", 1010, {5, 100});
+  EXPECT_EQ(client.ReceiveFor("pump-02").body["state"], "learning");
+  EXPECT_EQ(client.StreamStatus("pump-02")["window"], 2);
+}
+
 TEST(Daemon, ARequestOfSeveralFramesGetsAnError) {
   auto daemon = Start(Options());
   zmq::context_t context;
