@@ -413,8 +413,12 @@ void Daemon::Impl::WaitForSignal() {
   signals->async_wait([this](const boost::system::error_code& error, int signal) {
     if (error) return;
     if (signal == SIGHUP) {
+      // This is the io thread: `config` belongs to the socket thread, whose Reload replaces it
+      // (a data race ThreadSanitizer found; issue 10). The file never changes on reload, and
+      // options.config is the start-up copy nobody writes.
+      const std::string& path = options.config.source_path;
       spdlog::info("SIGHUP: reloading {} (endpoints do not change on reload)",
-                   config.source_path.empty() ? "(no file)" : config.source_path);
+                   path.empty() ? "(no file)" : path);
       reload_requested = true;
     } else {
       const char* name = signal == SIGTERM ? "SIGTERM" : "SIGINT";
