@@ -14,8 +14,9 @@ packages=(
   # tests and benchmarks
   libgtest-dev libgmock-dev libbenchmark-dev python3 python3-sklearn python3-numpy python3-zmq
   prometheus
-  # the clang build with -Wthread-safety (DEVELOPERS.md) and the fuzz target
-  clang libclang-rt-14-dev
+  # the clang build with -Wthread-safety, the sanitizer builds and the libFuzzer targets
+  # (DEVELOPERS.md); llvm has llvm-symbolizer, which names the lines in sanitizer reports
+  clang libclang-rt-14-dev llvm
 )
 
 missing=()

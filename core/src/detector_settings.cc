@@ -101,7 +101,9 @@ const Setting<D> kDetectorKeys[] = {
      .member = &D::window,
      .doc = "Vectors kept for training; the window should span the process's normal cycle.",
      .unit = "vectors",
-     .bounds = AtLeast(2),
+     // Allocated up front (8 bytes x features x window); a larger value cannot be allocated
+     // for any useful number of features, and once overflowed the size (issue 10).
+     .bounds = {.min = 2, .max = 1e7},
      .group = kRefits},
     {.section = "detector",
      .name = "max_age_seconds",
@@ -261,7 +263,7 @@ const Setting<D> kDetectorKeys[] = {
      .member = &D::open_window,
      .doc = "...the number of recent vectors open_after counts over...",
      .unit = "vectors",
-     .bounds = AtLeast(1),
+     .bounds = {.min = 1, .max = 1e6},  // a ring of this many entries is allocated up front
      .group = kIncidents},
     {.section = "detector",
      .name = "close_after",

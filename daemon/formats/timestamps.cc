@@ -4,6 +4,7 @@
 #include <cmath>
 #include <cstdio>
 #include <ctime>
+#include <string>
 
 namespace nuwatch {
 namespace {
@@ -102,6 +103,15 @@ std::optional<double> ParseTimestamp(std::string_view text) {
 }
 
 std::string FormatTimestamp(double seconds_since_epoch) {
+  // ISO-8601 writes four-digit years; outside them (and for a time_t that could not hold the
+  // value: the cast would be undefined) the number itself, which ParseTimestamp reads back.
+  constexpr double kYear0 = -62167219200.0;      // 0000-01-01T00:00:00Z
+  constexpr double kYear10000 = 253402300800.0;  // 10000-01-01T00:00:00Z
+  if (!(seconds_since_epoch >= kYear0 && seconds_since_epoch < kYear10000 - 0.5)) {
+    char number[64];
+    const auto result = std::to_chars(number, number + sizeof number, seconds_since_epoch);
+    return std::string(number, result.ptr);
+  }
   double whole = std::floor(seconds_since_epoch);
   int millis = static_cast<int>(std::lround((seconds_since_epoch - whole) * 1000.0));
   if (millis == 1000) {

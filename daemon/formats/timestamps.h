@@ -14,7 +14,9 @@ namespace nuwatch {
 std::optional<double> ParseTimestamp(std::string_view text);
 
 // ISO-8601 UTC with a 'Z', e.g. "2026-03-01T12:00:00Z"; fractional seconds only when present
-// (millisecond resolution).
+// (millisecond resolution). Outside the years 0000 to 9999 the number of seconds instead
+// ("1e+300"; "nan", "inf" for those), so that any double is written without undefined behaviour
+// and a finite one reads back with ParseTimestamp.
 std::string FormatTimestamp(double seconds_since_epoch);
 
 // "90", "90s", "15m", "2h", "7d", "1.5h" (a bare number is seconds). Returns nullopt for anything

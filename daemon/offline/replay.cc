@@ -13,10 +13,14 @@
 namespace nuwatch {
 
 StreamRecording ReadStreamRecording(const std::string& path) {
-  // A dedicated reader rather than ReadCsv: recordings run to millions of rows, and a table of
-  // strings would cost ten times the memory of the values.
   std::ifstream in(path, std::ios::binary);
   if (!in) throw CsvError(path + ": cannot open for reading");
+  return ReadStreamRecording(in, path);
+}
+
+StreamRecording ReadStreamRecording(std::istream& in, const std::string& path) {
+  // A dedicated reader rather than ReadCsv: recordings run to millions of rows, and a table of
+  // strings would cost ten times the memory of the values.
   StreamRecording r;
   r.path = path;
   std::string line;

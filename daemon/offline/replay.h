@@ -6,6 +6,7 @@
 
 #include <cstdint>
 #include <functional>
+#include <istream>
 #include <string>
 #include <vector>
 
@@ -30,6 +31,8 @@ struct StreamRecording {
 // Throws CsvError naming the file and line: no `time` column, an unreadable time, a non-numeric or
 // non-finite value, a ragged row, no feature columns, no data rows.
 StreamRecording ReadStreamRecording(const std::string& path);
+// The same from an open stream; `path` names it in messages (the fuzz target reads from memory).
+StreamRecording ReadStreamRecording(std::istream& in, const std::string& path);
 
 struct ReplayRow {
   double decision = 0;  // NaN unless scored

@@ -413,8 +413,12 @@ void Daemon::Impl::WaitForSignal() {
   signals->async_wait([this](const boost::system::error_code& error, int signal) {
     if (error) return;
     if (signal == SIGHUP) {
+      // This is the io thread: `config` belongs to the socket thread, whose Reload replaces it
+      // (a data race ThreadSanitizer found; issue 10). The file never changes on reload, and
+      // options.config is the start-up copy nobody writes.
+      const std::string& path = options.config.source_path;
       spdlog::info("SIGHUP: reloading {} (endpoints do not change on reload)",
-                   config.source_path.empty() ? "(no file)" : config.source_path);
+                   path.empty() ? "(no file)" : path);
       reload_requested = true;
     } else {
       const char* name = signal == SIGTERM ? "SIGTERM" : "SIGINT";
@@ -602,7 +606,9 @@ void Daemon::Impl::HandleIngest(std::string_view key, std::string_view payload) 
     }
     try {
       stream = streams.Add(MakeStream(stream_key, p.dims, stream_options));
-    } catch (const PreconditionError& e) {
+    } catch (const std::exception& e) {
+      // PreconditionError, or a window that cannot be allocated for this many features
+      // (bad_alloc, length_error): this stream is refused, the others carry on.
       spdlog::error("stream {}: cannot create its detector: {}", stream_key, e.what());
       return;
     }
@@ -985,7 +991,9 @@ ReloadOutcome Daemon::Impl::Reload() {
     }
     try {
       s->detector->UpdateOptions(stream_options);
-    } catch (const PreconditionError& e) {
+    } catch (const std::exception& e) {
+      // PreconditionError, or a learning stream's new window that cannot be allocated
+      // (UpdateOptions applies at once then): this stream keeps its settings.
       spdlog::warn("reload: stream={} keeps its settings: {}", s->key, e.what());
       continue;
     }

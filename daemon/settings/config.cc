@@ -193,7 +193,7 @@ const Setting<S> kDaemonKeys[] = {
      .doc = "The nuwatch_anomaly_ratio gauge is the flagged fraction of each stream's last this "
             "many vectors.",
      .unit = "vectors",
-     .bounds = AtLeast(1),
+     .bounds = {.min = 1, .max = 1e7},  // a ring per stream, allocated up front
      .reload = kNow},
     {.section = "state",
      .name = "dir",
@@ -231,8 +231,10 @@ const Setting<S> kDaemonKeys[] = {
      .member = &S::max_message_bytes,
      .doc = "Bytes of one ingest payload at most (message_too_large).",
      .unit = "bytes",
-     .bounds = AtLeast(28),
-     .bounds_note = " (the smallest binary message)",
+     // Up to twice this reaches the decoder (daemon.cc, ZMQ_MAXMSGSIZE): 2 x 2^62 overflowed
+     // that limit and let frames of any size in (issue 10).
+     .bounds = {.min = 28, .max = 1 << 30},
+     .bounds_note = " (the smallest binary message; 1 GiB)",
      .reload = kNow},
     {.section = "limits",
      .name = "max_vectors_per_message",

@@ -1,12 +1,6 @@
-// libFuzzer target for the wire protocol (daemon/protocol/PROTOCOL.md). Not built by CMake; from
-// the repository root:
-//
-//   clang++ -std=c++20 -O1 -g -fsanitize=fuzzer,address,undefined \
-//     -Icore/include -I/usr/include/eigen3 -Idaemon \
-//     tests/fuzz/wire_protocol_fuzz.cc daemon/protocol/wire_protocol.cc -o /tmp/wire_protocol_fuzz
-//   /tmp/wire_protocol_fuzz -max_total_time=60 -max_len=8192
-//
-// (Debian: apt-get install -y clang libclang-rt-14-dev.)
+// libFuzzer target for the wire protocol (daemon/protocol/PROTOCOL.md): DecodeIngest and the
+// encoders. Build and run: DEVELOPERS.md, "Sanitizers and fuzzing"; seeds in
+// corpus/wire_protocol_fuzz/.
 //
 // Input layout: byte 0 gives the key length k (mod 131), the next k bytes are the stream key, the
 // rest is the payload. Besides the sanitizers' checks it traps when a decoded message breaks the

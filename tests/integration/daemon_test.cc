@@ -13,11 +13,13 @@
 #include <pthread.h>
 #include <signal.h>
 #include <spawn.h>
+#include <sys/mount.h>
 #include <sys/socket.h>
 #include <sys/wait.h>
 #include <unistd.h>
 
 #include <atomic>
+#include <cerrno>
 #include <chrono>
 #include <cmath>
 #include <cstdlib>
@@ -25,6 +27,7 @@
 #include <filesystem>
 #include <fstream>
 #include <functional>
+#include <iostream>
 #include <new>
 #include <nlohmann/json.hpp>
 #include <optional>
@@ -752,6 +755,35 @@ TEST(Daemon, ReloadIsRefusedWithoutAConfigurationFile) {
   EXPECT_THAT(reply["error"].get<std::string>(), HasSubstr("--config"));
 }
 
+// Regression, issue 10: a [[stream]] window of 2^63 - 1 passed the checks; the reload then gave
+// some streams their new settings, failed on the first learning one (a window it could not
+// allocate) with an exception that escaped, and the control request got no reply. Now the file is
+// refused whole and nothing of it applies.
+TEST(DaemonRegression, AReloadWithAWindowOf2To63Minus1IsRefusedWhole) {
+  TempDir dir;
+  const std::string config_path = dir / "nuwatchd.toml";
+  std::ofstream(config_path) << ConfigText();
+  DaemonOptions options;
+  options.config = LoadConfig(config_path);
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  client.WarmUp("pump-01", NormalVectors(20, 7), 1000);
+  client.Send("pump-02", 1000, {5, 100});  // learning: a reload resizes its window at once
+  EXPECT_EQ(client.ReceiveFor("pump-02").body["state"], "learning");
+
+  std::ofstream(config_path) << ConfigText(
+      "support_vector_budget = 64\n",
+      "[[stream]]\nmatch = \"pump-*\"\nwindow = 9223372036854775807\n");
+  const json refused = client.Control(R"({"command":"reload"})");
+  EXPECT_EQ(refused["ok"], false);
+  EXPECT_THAT(refused.value("error", ""), HasSubstr("window = 9223372036854775807"));
+  EXPECT_THAT(daemon->MetricsText(),
+              HasSubstr("nuwatch_support_vector_budget{stream=\"pump-01\"} 256"));
+  client.Send("pump-02", 1010, {5, 100});
+  EXPECT_EQ(client.ReceiveFor("pump-02").body["state"], "learning");
+  EXPECT_EQ(client.StreamStatus("pump-02")["window"], 2);
+}
+
 TEST(Daemon, ARequestOfSeveralFramesGetsAnError) {
   auto daemon = Start(Options());
   zmq::context_t context;
@@ -1042,6 +1074,188 @@ TEST(Nuwatchd, ResumesScoringAfterKill9FromItsPeriodicSnapshot) {
   EXPECT_EQ(daemon.Wait(), 0);
   const std::string log = ReadText(dir / "log2.txt");
   EXPECT_EQ(log.substr(log.rfind(' ', log.size() - 2) + 1), "stopped\n");
+}
+
+// The streams of the crash-safety and disk-full tests, and their vectors.
+const std::vector<std::string> kCrashStreams = {"pump-01", "pump-02", "pump-03", "pump-04"};
+
+// An environment variable as a positive integer, or `fallback`.
+int64_t EnvInt(const char* name, int64_t fallback) {
+  const char* text = std::getenv(name);
+  if (text == nullptr || *text == '\0') return fallback;
+  const int64_t value = std::strtoll(text, nullptr, 10);
+  return value > 0 ? value : fallback;
+}
+
+// kill -9 at random moments (seeded) while every stream refits every 5 vectors, each refit
+// queues a state write, and periodic snapshots run every 10 ms: many kills land during a refit or
+// a write. After each kill every state file must load, none may be moved aside at the restart,
+// and every stream whose file held a model must resume scoring (no new warm-up). Sized for CI;
+// NUWATCH_CRASH_ROUNDS=100 gives the README's figure (NUWATCH_CRASH_SEED picks other moments).
+// The design's durable replacement (design.md: temp file, fsync, rename, fsync of the directory)
+// is what this checks from outside.
+TEST(NuwatchdCrashSafety, Kill9DuringRefitsAndStateWritesLosesNoStateFile) {
+  const int64_t rounds = EnvInt("NUWATCH_CRASH_ROUNDS", 20);
+  const uint64_t seed = static_cast<uint64_t>(EnvInt("NUWATCH_CRASH_SEED", 2026));
+  std::mt19937_64 random(seed);
+  TempDir dir;
+  const std::string config = dir / "nuwatchd.toml";
+  std::ofstream(config) << std::string(kDaemonSections) +
+                               "[detector]\nnu = 0.1\nwindow = 40\nwarmup = 20\nrefit_every = 5\n" +
+                               kProbeStream + "[state]\nsnapshot_interval_seconds = 0.01\n";
+  const StateStore store(dir / "state");
+  int64_t interrupted_writes = 0, corrupt_files = 0, quarantined = 0, new_warmups = 0;
+  double t = 1000;
+  for (int64_t round = 0; round < rounds; ++round) {
+    // What the files on disk hold now decides what the restart must restore.
+    std::vector<std::string> with_model;
+    for (const StateStore::Entry& entry : store.List()) {
+      if (entry.stream_key == "probe") continue;
+      try {
+        if (store.Load(entry).state.model) with_model.push_back(entry.stream_key);
+      } catch (const StateFileError& e) {
+        ++corrupt_files;
+        ADD_FAILURE() << "round " << round << ": " << e.what();
+      }
+    }
+    const std::string log_path = dir / ("log" + std::to_string(round) + ".txt");
+    fs::remove(dir / "ready.json");
+    Process daemon(DaemonArgs(dir, config), log_path);
+    ASSERT_GT(daemon.pid(), 0);
+    ASSERT_TRUE(PollUntil([&] { return fs::exists(dir / "ready.json"); })) << ReadText(log_path);
+    Client client(ReadyEndpoints(dir / "ready.json"));
+    const std::string log = ReadText(log_path);
+    if (log.find("left by an interrupted write") != std::string::npos) ++interrupted_writes;
+    if (log.find("moved it to") != std::string::npos) {
+      ++quarantined;
+      ADD_FAILURE() << "round " << round << ": a state file was moved aside:\n" << log;
+    }
+    for (const std::string& key : with_model) {
+      const json status = client.StreamStatus(key);
+      if (status.is_null() || status["state"] != "scoring") {
+        ++new_warmups;
+        ADD_FAILURE() << "round " << round << ": " << key << " had a model on disk but is "
+                      << (status.is_null() ? json("gone") : status["state"]);
+      }
+    }
+    if (round == 0) {
+      for (const std::string& key : kCrashStreams) client.WarmUp(key, NormalVectors(20, 40), t);
+      t = client.last_time();
+    }
+    // A random number of vectors, then kill -9 at once: refits and writes are in flight.
+    const int vectors = std::uniform_int_distribution<int>(1, 60)(random);
+    std::normal_distribution<double> noise(0.0, 1.0);
+    for (int i = 0; i < vectors; ++i) {
+      for (const std::string& key : kCrashStreams) {
+        client.Send(key, t, {5 + noise(random), 100 + 3 * noise(random)});
+      }
+      t += 10;
+    }
+    // Wait for a random share of the results, so the kill falls anywhere from "all queued" to
+    // "all scored" (results are published before the refit and the write they cause).
+    const int wait_for = std::uniform_int_distribution<int>(0, vectors)(random);
+    for (int i = 0; i < wait_for; ++i) (void)client.ReceiveFor(kCrashStreams.back());
+    daemon.Signal(SIGKILL);
+    EXPECT_EQ(daemon.Wait(), -SIGKILL);
+  }
+  // The last round's files, as the next start would find them.
+  for (const StateStore::Entry& entry : store.List()) {
+    try {
+      (void)store.Load(entry);
+    } catch (const StateFileError& e) {
+      ++corrupt_files;
+      ADD_FAILURE() << "after the last round: " << e.what();
+    }
+  }
+  std::cout << "kill -9: " << rounds << " rounds (seed " << seed << "), " << interrupted_writes
+            << " restarts found an interrupted write; lost: " << corrupt_files << " corrupt files, "
+            << quarantined << " moved aside, " << new_warmups << " new warm-ups\n";
+  RecordProperty("rounds", static_cast<int>(rounds));
+  RecordProperty("interrupted_writes", static_cast<int>(interrupted_writes));
+  EXPECT_EQ(corrupt_files + quarantined + new_warmups, 0);
+}
+
+// A tmpfs of `bytes` mounted at `path` for the test's lifetime; mounted() is false when that is
+// not possible here (not root, or no permission to mount in this container).
+class SmallTmpfs {
+ public:
+  SmallTmpfs(const std::string& path, int64_t bytes) : path_(path) {
+    fs::create_directories(path);
+    if (::geteuid() != 0) {
+      why_not_ = "not root";
+      return;
+    }
+    const std::string options = "size=" + std::to_string(bytes);
+    if (::mount("tmpfs", path.c_str(), "tmpfs", 0, options.c_str()) != 0) {
+      why_not_ = std::string("mount -t tmpfs failed: ") + std::strerror(errno);
+      return;
+    }
+    mounted_ = true;
+  }
+  ~SmallTmpfs() {
+    if (mounted_) ::umount2(path_.c_str(), MNT_DETACH);
+  }
+  bool mounted() const { return mounted_; }
+  const std::string& why_not() const { return why_not_; }
+
+  // Fills the file system with `filler` until a write fails for lack of space.
+  static void Fill(const std::string& filler) {
+    std::ofstream out(filler, std::ios::binary);
+    const std::vector<char> block(4096, 'x');
+    while (out.write(block.data(), static_cast<std::streamsize>(block.size()))) out.flush();
+  }
+
+ private:
+  std::string path_;
+  bool mounted_ = false;
+  std::string why_not_;
+};
+
+// Issue 10 section 2: with the state disk full the daemon answered the snapshot request
+// {"ok":true,"written":1} and status counted vectors as saved that the file did not hold. The
+// correct behaviour, asserted here: the failed write is reported by the request and by status
+// (snapshot_vectors stays what the file on disk holds), counted, and a snapshot after space came
+// back succeeds. DISABLED_ until the durability work of issue 10 section 2 lands (another
+// engineer's); run it with --gtest_also_run_disabled_tests. Needs root to mount a tmpfs (CI runs
+// as root); skipped with the reason otherwise.
+TEST(NuwatchdDiskFull, DISABLED_AFailedSnapshotIsReportedAsFailedAndRetriedWhenSpaceReturns) {
+  TempDir dir;
+  const SmallTmpfs disk(dir / "state", 512 * 1024);
+  if (!disk.mounted()) GTEST_SKIP() << "needs a small tmpfs for the state dir: " << disk.why_not();
+  const std::string config = dir / "nuwatchd.toml";
+  std::ofstream(config) << ConfigText("", "[state]\nsnapshot_interval_seconds = 3600\n");
+  Process daemon(DaemonArgs(dir, config), dir / "log.txt");
+  ASSERT_TRUE(PollUntil([&] { return fs::exists(dir / "ready.json"); }));
+  Client client(ReadyEndpoints(dir / "ready.json"));
+  client.WarmUp("pump-01", NormalVectors(20, 50), 1000);
+  ASSERT_EQ(client.Control(R"({"command":"snapshot"})")["ok"], true);
+  const StateStore store(dir / "state");
+  auto vectors_on_disk = [&] {
+    return store.Load({store.PathFor("pump-01"), "pump-01"}).state.counters.vectors;
+  };
+  ASSERT_EQ(vectors_on_disk(), client.StreamStatus("pump-01")["snapshot_vectors"]);
+
+  SmallTmpfs::Fill(dir / "state/filler");
+  double t = client.last_time();
+  for (int i = 0; i < 10; ++i, t += 10) client.Send("pump-01", t, {5, 100});
+  for (int i = 0; i < 10; ++i) (void)client.ReceiveFor("pump-01");
+  const json full = client.Control(R"({"command":"snapshot"})");
+  EXPECT_EQ(full["ok"], false) << full;
+  EXPECT_THAT(full.value("error", ""), HasSubstr("pump-01"));
+  EXPECT_EQ(client.StreamStatus("pump-01")["snapshot_vectors"], vectors_on_disk())
+      << "status must count only what the file holds";
+  EXPECT_GE(MetricValue(HttpGet(ReadyEndpoints(dir / "ready.json").metrics, "/metrics"),
+                        "nuwatch_state_write_failures_total")
+                .value_or(0),
+            1);
+
+  fs::remove(dir / "state/filler");
+  const json after = client.Control(R"({"command":"snapshot"})");
+  EXPECT_EQ(after["ok"], true) << after;
+  EXPECT_EQ(vectors_on_disk(), client.StreamStatus("pump-01")["vectors"]);
+  EXPECT_EQ(client.StreamStatus("pump-01")["snapshot_vectors"], vectors_on_disk());
+  daemon.Signal(SIGTERM);
+  EXPECT_EQ(daemon.Wait(), 0);
 }
 
 TEST(Nuwatchd, AConfigurationErrorExitsWithStatus2AndOneLine) {

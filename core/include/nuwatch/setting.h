@@ -131,8 +131,10 @@ std::optional<SettingViolation> CheckSettings(std::span<const Setting<S>> table,
           std::string(setting.section), {std::string(setting.name)}, std::move(message)};
     };
     const std::string key = name(setting.section, setting.name);
-    const auto check_number = [&](double value, std::string_view note) {
-      const std::string shown = key + " = " + SettingNumberText(value);
+    // `text`: the value as written, for integers beyond 2^53 that the double rounds (a window of
+    // 2^63 - 1 was reported as 9223372036854775808).
+    const auto check_number = [&](double value, std::string_view note, std::string text = "") {
+      const std::string shown = key + " = " + (text.empty() ? SettingNumberText(value) : text);
       if (!std::isfinite(value)) return fail(shown + " is not finite");
       const std::string message = internal::BoundsMessage(setting.bounds, value);
       if (!message.empty()) fail(shown + " " + message + std::string(note));
@@ -142,7 +144,11 @@ std::optional<SettingViolation> CheckSettings(std::span<const Setting<S>> table,
           using T = std::remove_cvref_t<decltype(values.*pointer)>;
           const T& value = values.*pointer;
           if constexpr (internal::kIsNumber<T>) {
-            check_number(static_cast<double>(value), setting.bounds_note);
+            if constexpr (std::is_integral_v<T>) {
+              check_number(static_cast<double>(value), setting.bounds_note, std::to_string(value));
+            } else {
+              check_number(static_cast<double>(value), setting.bounds_note);
+            }
           } else if constexpr (std::is_same_v<T, GammaSpec>) {
             if (value.mode == GammaSpec::Mode::kValue)
               check_number(value.value, setting.bounds_note);

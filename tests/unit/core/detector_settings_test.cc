@@ -132,7 +132,7 @@ TEST(DetectorKeys, MessagesNameTheKeyTheValueAndTheRange) {
   // A key's own range comes before a rule between keys.
   o = DetectorOptions{};
   o.open_window = 0;
-  EXPECT_EQ(Violation(o), "open_window = 0 must be at least 1");
+  EXPECT_EQ(Violation(o), "open_window = 0 is outside [1, 1000000]");
   o = DetectorOptions{};
   o.feature_names = {"a", "b", "a"};
   EXPECT_EQ(Violation(o), "feature_names names \"a\" twice");

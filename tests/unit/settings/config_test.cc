@@ -349,7 +349,7 @@ TEST(ConfigErrors, OutOfRangeDetectorValuesNameFileLineAndKey) {
   EXPECT_EQ(ErrorOf("[detector]\nnu = nan\n"), "t.toml:2:6: detector.nu = nan is not finite");
 
   EXPECT_EQ(ErrorOf("[detector]\nwindow = 1\nwarmup = 1\n"),
-            "t.toml:2:10: detector.window = 1 must be at least 2");
+            "t.toml:2:10: detector.window = 1 is outside [2, 10000000]");
   EXPECT_EQ(Parse("[detector]\nwarmup = 0\n").detector.warmup, 0);  // the whole window
   // Regression: warmup = 1 loaded but the detector refuses a one-row first fit.
   EXPECT_EQ(ErrorOf("[detector]\nwarmup = 1\n"),
@@ -429,12 +429,40 @@ TEST(ConfigErrors, OutOfRangeDaemonValuesNameFileLineAndKey) {
   // PROTOCOL.md §7: dims 1..65535, a payload of at least 28 bytes.
   EXPECT_THAT(ErrorOf("[limits]\nmax_dims = 65536\n"),
               HasSubstr("limits.max_dims = 65536 is outside [1, 65535]"));
-  EXPECT_THAT(ErrorOf("[limits]\nmax_message_bytes = 27\n"), HasSubstr("at least 28"));
+  EXPECT_THAT(ErrorOf("[limits]\nmax_message_bytes = 27\n"),
+              HasSubstr("limits.max_message_bytes = 27 is outside [28, 1073741824]"));
   EXPECT_THAT(ErrorOf("[limits]\nmax_streams = 0\n"), HasSubstr("must be at least 1"));
   EXPECT_THAT(ErrorOf("[ingest]\nreceive_high_water_mark = -1\n"), HasSubstr("not be negative"));
   EXPECT_THAT(ErrorOf("[recording]\nkeep_files = -1\n"), HasSubstr("not be negative"));
   EXPECT_THAT(ErrorOf("[recording]\nrotate_bytes = 0\n"), HasSubstr("must be at least 1"));
-  EXPECT_THAT(ErrorOf("[metrics]\nanomaly_ratio_window = 0\n"), HasSubstr("must be at least 1"));
+  EXPECT_THAT(ErrorOf("[metrics]\nanomaly_ratio_window = 0\n"),
+              HasSubstr("is outside [1, 10000000]"));
+}
+
+// Regression, issue 10: a window of 2^63 - 1 passed the checks (window >= 2) and a reload then
+// half-applied it: the first learning stream's window (8 x features x window bytes) could not be
+// allocated, and the exception escaped the reload. Values that size an allocation made up front
+// now have a ceiling, so such a file is refused whole before anything changes.
+TEST(ConfigRegression, AWindowOf2To63Minus1IsRefused) {
+  EXPECT_THAT(ErrorOf("[detector]\nwindow = 9223372036854775807\n"),
+              HasSubstr("detector.window = 9223372036854775807 is outside [2, 10000000]"));
+  EXPECT_THAT(ErrorOf("[[stream]]\nmatch = \"pump-*\"\nwindow = 9223372036854775807\n"),
+              HasSubstr("window = 9223372036854775807 is outside [2, 10000000]"));
+  EXPECT_THAT(ErrorOf("[detector]\nopen_window = 2147483647\n"),
+              HasSubstr("is outside [1, 1000000]"));
+  EXPECT_THAT(ErrorOf("[metrics]\nanomaly_ratio_window = 9223372036854775807\n"),
+              HasSubstr("is outside [1, 10000000]"));
+  EXPECT_EQ(Parse("[detector]\nwindow = 10000000\n").detector.window, 10000000);
+}
+
+// Regression, issue 10: max_message_bytes = 2^62 made the ZeroMQ frame limit (2 x the value +
+// 4096, as int64) overflow to a negative number, which ZeroMQ reads as "no limit".
+TEST(ConfigRegression, MaxMessageBytesNear2To62IsRefused) {
+  EXPECT_THAT(ErrorOf("[limits]\nmax_message_bytes = 4611686018427387904\n"),
+              HasSubstr("limits.max_message_bytes = 4611686018427387904 is outside [28, "
+                        "1073741824]"));
+  EXPECT_EQ(Parse("[limits]\nmax_message_bytes = 1073741824\n").daemon.max_message_bytes,
+            std::size_t{1} << 30);
 }
 
 TEST(ConfigErrors, FeatureNamesMustFitTheDimsLimit) {
@@ -705,7 +733,8 @@ TEST(LoadConfig, ErrorsNameThePath) {
     LoadConfig(path);
     ADD_FAILURE() << "window = 1 accepted";
   } catch (const ConfigError& error) {
-    EXPECT_EQ(std::string(error.what()), path + ":2:10: detector.window = 1 must be at least 2");
+    EXPECT_EQ(std::string(error.what()),
+              path + ":2:10: detector.window = 1 is outside [2, 10000000]");
   }
   std::remove(path.c_str());
 }

@@ -371,7 +371,10 @@ TEST(PlantSimulator, IncidentsAreOnTheGridAfterWarmUpAndApartPerPump) {
 
   PlantOptions only;
   only.faults = {"seal_leak"};
-  for (const PlantIncident& incident : PlantSimulator(only).incidents())
+  // A named simulator: a range-for over incidents() of a temporary reads a destroyed vector
+  // (heap use-after-free, found by AddressSanitizer; issue 10).
+  const PlantSimulator seal_leaks_only(only);
+  for (const PlantIncident& incident : seal_leaks_only.incidents())
     EXPECT_EQ(incident.kind, "seal_leak");
   EXPECT_TRUE(PlantSimulator(FaultFree(only)).incidents().empty());
   only.faults_per_pump_week = 0;
