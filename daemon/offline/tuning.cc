@@ -160,8 +160,8 @@ void CheckTimesOrdered(const StreamRecording& recording) {
     const int32_t s = recording.stream_of_row[i];
     if (recording.times[i] < last[s]) {
       throw TuningError(recording.path + ": data row " + std::to_string(i + 1) + ": time " +
-                        recording.time_text[i] + " of stream '" + recording.streams[s] +
-                        "' is earlier than the stream's previous sample");
+                        std::string(recording.time_text[i]) + " of stream '" +
+                        recording.streams[s] + "' is earlier than the stream's previous sample");
     }
     last[s] = recording.times[i];
   }
