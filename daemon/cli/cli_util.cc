@@ -13,7 +13,7 @@ namespace nuwatch::cli {
 FeatureFile ReadFeatureFile(const std::string& path) {
   FeatureFile file;
   file.path = path;
-  std::vector<double> values;
+  int64_t rows = 0;
   try {
     CsvReader reader = CsvReader::Open(path);
     const int time_column = reader.Column("time");
@@ -27,15 +27,21 @@ FeatureFile ReadFeatureFile(const std::string& path) {
     if (columns.empty()) throw CsvError(path + ": no feature columns");
     file.has_time = time_column >= 0;
     file.has_stream = stream_column >= 0;
+    // The matrix grows in place: a row-major matrix gaining rows is one realloc, which for a large
+    // block moves pages instead of copying them (and never touches memory twice).
+    file.values.resize(1024, static_cast<int64_t>(columns.size()));
     while (reader.Next() == CsvReader::Status::kRow) {
+      if (rows == file.values.rows()) file.values.conservativeResize(2 * rows, Eigen::NoChange);
+      double* row = file.values.row(rows).data();
       for (std::size_t c = 0; c < columns.size(); ++c) {
         const std::optional<double> value = ParseFiniteNumber(reader[columns[c]]);
         if (!value) {
           throw CsvError(reader.Where() + "column " + file.names[c] + ": '" +
                          std::string(reader[columns[c]]) + "' is not a finite number");
         }
-        values.push_back(*value);
+        row[c] = *value;
       }
+      ++rows;
       if (file.has_time) {
         const std::optional<double> t = ParseTimestamp(reader[time_column]);
         if (!t) {
@@ -47,10 +53,8 @@ FeatureFile ReadFeatureFile(const std::string& path) {
       }
       if (file.has_stream) file.streams.push_back(reader[stream_column]);
     }
-    const int64_t rows = static_cast<int64_t>(values.size() / columns.size());
     if (rows == 0) throw CsvError(path + ": no data rows");
-    file.values =
-        Eigen::Map<const MatrixD>(values.data(), rows, static_cast<int64_t>(columns.size()));
+    file.values.conservativeResize(rows, Eigen::NoChange);
   } catch (const CsvError& e) {
     throw CommandError(e.what());
   }

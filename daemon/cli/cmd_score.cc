@@ -5,6 +5,7 @@
 #include <charconv>
 #include <cmath>
 #include <memory>
+#include <numeric>
 
 #include "cli/cli_util.h"
 #include "nuwatch/model.h"
@@ -38,7 +39,15 @@ void RunScore(const ScoreArgs& a) {
   }
   const FeatureTransform transform(model.parts().transform, inputs);
   std::vector<int64_t> output_row;
-  const MatrixD rows = transform.TransformAll(file.values, file.times, &output_row);
+  MatrixD transformed;
+  if (model.parts().transform.identity()) {
+    output_row.resize(static_cast<std::size_t>(file.rows()));
+    std::iota(output_row.begin(), output_row.end(), int64_t{0});
+  } else {
+    transformed = transform.TransformAll(file.values, file.times, &output_row);
+  }
+  // Without lags or rolling statistics the rows are scored as read, without a copy.
+  const MatrixD& rows = model.parts().transform.identity() ? file.values : transformed;
   const std::vector<std::string> names = transform.OutputNames(file.names);
   const int top_k = std::min(a.explain, model.dims());
   VectorD decisions, nonconformity;

@@ -12,7 +12,7 @@ namespace nuwatch {
 namespace {
 
 // Bytes asked of the file at a time. A record longer than this grows the buffer to hold it.
-constexpr std::size_t kReadChunk = 1 << 20;
+constexpr std::size_t kReadChunk = 256 << 10;
 
 bool IsBlank(char c) { return c == ' ' || c == '\t'; }
 
