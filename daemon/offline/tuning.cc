@@ -8,7 +8,6 @@
 #include <cstdio>
 #include <exception>
 #include <filesystem>
-#include <fstream>
 #include <limits>
 #include <map>
 #include <nlohmann/json.hpp>
@@ -18,6 +17,7 @@
 
 #include "formats/csv_table.h"
 #include "formats/evaluation_json.h"
+#include "nuwatch/checked_file.h"
 #include "nuwatch/mutex.h"
 #include "settings/setting_text.h"
 
@@ -173,32 +173,27 @@ StreamOptions OptionsFor(const Config& base, const TuningSetting& setting) {
   };
 }
 
-void WriteFileAtomically(const std::string& path, const std::string& text) {
-  const std::string temporary = path + ".tmp";
-  {
-    std::ofstream out(temporary, std::ios::binary | std::ios::trunc);
-    if (!out) throw TuningError(path + ": cannot open for writing");
-    out << text;
-    out.flush();
-    if (!out) throw TuningError(path + ": write failed");
+// Report files are replaced durably, as model and state files are (nuwatch/checked_file.h).
+void WriteReportFile(const std::string& path, const std::string& text) {
+  try {
+    WriteFileAtomically(path, reinterpret_cast<const uint8_t*>(text.data()), text.size());
+  } catch (const ModelFileError& e) {
+    throw TuningError(e.what());
   }
-  std::error_code error;
-  std::filesystem::rename(temporary, path, error);
-  if (error) throw TuningError(path + ": cannot replace: " + error.message());
 }
 
+// cairo writes the picture to a temporary file, which then replaces `path` durably.
 void DrawAtomically(const std::string& path, const std::function<void(const std::string&)>& draw) {
   const std::string temporary = path + ".tmp";
   try {
     draw(temporary);
+    CommitFileDurably(temporary, path);
   } catch (const std::exception& e) {
     std::error_code ignored;
     std::filesystem::remove(temporary, ignored);
-    throw TuningError(path + ": " + e.what());
+    throw TuningError(std::string(e.what()).rfind(path, 0) == 0 ? e.what()
+                                                                : path + ": " + e.what());
   }
-  std::error_code error;
-  std::filesystem::rename(temporary, path, error);
-  if (error) throw TuningError(path + ": cannot replace: " + error.message());
 }
 
 std::vector<std::size_t> RankOf(const TuningSelection& selection, std::size_t count) {
@@ -951,7 +946,7 @@ std::vector<std::string> WriteTuningReport(const TuningReport& report,
   const auto path = [&](const char* name) { return (std::filesystem::path(dir) / name).string(); };
   std::vector<std::string> written;
   const auto text = [&](const char* name, const std::string& content) {
-    WriteFileAtomically(path(name), content);
+    WriteReportFile(path(name), content);
     written.push_back(path(name));
   };
   text("results.csv", ResultsCsv(report));
