@@ -12,9 +12,9 @@
 #include <map>
 #include <nlohmann/json.hpp>
 #include <set>
-#include <thread>
 #include <utility>
 
+#include "concurrency/thread_pool.h"
 #include "formats/csv_table.h"
 #include "formats/evaluation_json.h"
 #include "nuwatch/checked_file.h"
@@ -541,10 +541,9 @@ TuningReport RunTuning(const StreamRecording& recording, const std::vector<Incid
   if (threads <= 1) {
     worker();
   } else {
-    std::vector<std::thread> pool;
-    pool.reserve(threads);
-    for (std::size_t t = 0; t < threads; ++t) pool.emplace_back(worker);
-    for (std::thread& thread : pool) thread.join();
+    ThreadPool pool(static_cast<int>(threads));
+    for (std::size_t t = 0; t < threads; ++t) pool.Post(worker);
+    pool.Join();
   }
   for (std::size_t k = 0; k < settings.size(); ++k) {
     if (!errors[k]) continue;
