@@ -77,13 +77,38 @@ ChecksummedPayload UnwrapChecksummed(const uint8_t* data, std::size_t size, cons
   return {version, payload, static_cast<std::size_t>(payload_bytes)};
 }
 
+namespace {
+
+[[noreturn]] void FailReplacing(const std::string& temp, const std::string& path,
+                                const std::string& what) {
+  const std::string reason = std::strerror(errno);
+  ::unlink(temp.c_str());
+  throw ModelFileError(path + ": " + what + ": " + reason);
+}
+
+}  // namespace
+
+void CommitFileDurably(const std::string& temp, const std::string& path) {
+  const int fd = ::open(temp.c_str(), O_RDONLY | O_CLOEXEC);
+  if (fd < 0) FailReplacing(temp, path, "cannot open the temporary file");
+  if (::fsync(fd) != 0) {
+    ::close(fd);
+    FailReplacing(temp, path, "fsync failed");
+  }
+  ::close(fd);
+  if (::rename(temp.c_str(), path.c_str()) != 0) FailReplacing(temp, path, "rename failed");
+  const auto slash = path.find_last_of('/');
+  const std::string directory = slash == std::string::npos ? "." : path.substr(0, slash + 1);
+  const int dir_fd = ::open(directory.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
+  if (dir_fd >= 0) {
+    ::fsync(dir_fd);  // makes the rename durable
+    ::close(dir_fd);
+  }
+}
+
 void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size) {
   const std::string temp = path + ".tmp." + std::to_string(::getpid());
-  auto fail = [&](const std::string& what) {
-    const std::string reason = std::strerror(errno);
-    ::unlink(temp.c_str());
-    throw ModelFileError(path + ": " + what + ": " + reason);
-  };
+  auto fail = [&](const std::string& what) { FailReplacing(temp, path, what); };
   int fd = ::open(temp.c_str(), O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0644);
   if (fd < 0) fail("cannot create temporary file");
   std::size_t written = 0;
@@ -96,19 +121,8 @@ void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::siz
     }
     written += static_cast<std::size_t>(n);
   }
-  if (::fsync(fd) != 0) {
-    ::close(fd);
-    fail("fsync failed");
-  }
   if (::close(fd) != 0) fail("close failed");
-  if (::rename(temp.c_str(), path.c_str()) != 0) fail("rename failed");
-  const auto slash = path.find_last_of('/');
-  const std::string directory = slash == std::string::npos ? "." : path.substr(0, slash + 1);
-  int dir_fd = ::open(directory.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
-  if (dir_fd >= 0) {
-    ::fsync(dir_fd);  // makes the rename durable
-    ::close(dir_fd);
-  }
+  CommitFileDurably(temp, path);
 }
 
 }  // namespace nuwatch

@@ -12,78 +12,103 @@ namespace nuwatch::cli {
 
 FeatureFile ReadFeatureFile(const std::string& path) {
   FeatureFile file;
+  file.path = path;
+  int64_t rows = 0;
   try {
-    file.table = ReadCsv(path);
-    file.values = FeatureMatrix(file.table, {"time", "stream"}, &file.names);
+    CsvReader reader = CsvReader::Open(path);
+    const int time_column = reader.Column("time");
+    const int stream_column = reader.Column("stream");
+    std::vector<int> columns;
+    for (std::size_t i = 0; i < reader.header().size(); ++i) {
+      if (static_cast<int>(i) == time_column || static_cast<int>(i) == stream_column) continue;
+      columns.push_back(static_cast<int>(i));
+      file.names.push_back(reader.header()[i]);
+    }
+    if (columns.empty()) throw CsvError(path + ": no feature columns");
+    file.has_time = time_column >= 0;
+    file.has_stream = stream_column >= 0;
+    // The matrix grows in place: a row-major matrix gaining rows is one realloc, which for a large
+    // block moves pages instead of copying them (and never touches memory twice).
+    file.values.resize(1024, static_cast<int64_t>(columns.size()));
+    while (reader.Next() == CsvReader::Status::kRow) {
+      if (rows == file.values.rows()) file.values.conservativeResize(2 * rows, Eigen::NoChange);
+      double* row = file.values.row(rows).data();
+      for (std::size_t c = 0; c < columns.size(); ++c) {
+        const std::optional<double> value = ParseFiniteNumber(reader[columns[c]]);
+        if (!value) {
+          throw CsvError(reader.Where() + "column " + file.names[c] + ": '" +
+                         std::string(reader[columns[c]]) + "' is not a finite number");
+        }
+        row[c] = *value;
+      }
+      ++rows;
+      if (file.has_time) {
+        const std::optional<double> t = ParseTimestamp(reader[time_column]);
+        if (!t) {
+          throw CsvError(reader.Where() + "column time: '" + std::string(reader[time_column]) +
+                         "' is not an ISO-8601 time or epoch seconds");
+        }
+        file.times.push_back(*t);
+        file.time_text.push_back(reader[time_column]);
+      }
+      if (file.has_stream) file.streams.push_back(reader[stream_column]);
+    }
+    if (rows == 0) throw CsvError(path + ": no data rows");
+    file.values.conservativeResize(rows, Eigen::NoChange);
   } catch (const CsvError& e) {
     throw CommandError(e.what());
-  }
-  file.time_column = file.table.Column("time");
-  file.stream_column = file.table.Column("stream");
-  if (file.time_column >= 0) {
-    file.times.reserve(file.table.rows.size());
-    for (std::size_t r = 0; r < file.table.rows.size(); ++r) {
-      const std::string& text = file.table.rows[r][file.time_column];
-      const auto t = ParseTimestamp(TrimField(text));
-      if (!t) {
-        throw CommandError(file.table.Where(r) + "column time: '" + text +
-                           "' is not an ISO-8601 time or epoch seconds");
-      }
-      file.times.push_back(*t);
-    }
   }
   return file;
 }
 
-FeatureFile SelectRows(const FeatureFile& file, const std::string& stream, double from,
-                       double until) {
+FeatureFile SelectRows(FeatureFile file, const std::string& stream, double from, double until) {
   const bool bounded = std::isfinite(from) || std::isfinite(until);
-  if (bounded && file.time_column < 0) {
-    throw CommandError(file.table.path + ": --from/--until need a time column");
+  if (bounded && !file.has_time) {
+    throw CommandError(file.path + ": --from/--until need a time column");
   }
-  if (stream.empty() && file.stream_column >= 0) {
-    std::vector<std::string> streams;
-    for (const auto& row : file.table.rows) {
-      const std::string name(TrimField(row[file.stream_column]));
-      if (std::find(streams.begin(), streams.end(), name) == streams.end()) streams.push_back(name);
+  if (stream.empty() && file.has_stream) {
+    std::vector<std::string_view> streams;
+    for (std::size_t r = 0; r < file.streams.size(); ++r) {
+      if (std::find(streams.begin(), streams.end(), file.streams[r]) == streams.end())
+        streams.push_back(file.streams[r]);
     }
     if (streams.size() > 1) {
       std::string list;
       for (std::size_t i = 0; i < streams.size() && i < 3; ++i)
-        list += (i ? ", " : "") + streams[i];
+        list += (i ? ", " : "") + std::string(streams[i]);
       if (streams.size() > 3) list += ", ...";
-      throw CommandError("--stream: " + file.table.path + " holds " +
-                         std::to_string(streams.size()) + " streams (" + list +
-                         "); choose one with --stream NAME");
+      throw CommandError("--stream: " + file.path + " holds " + std::to_string(streams.size()) +
+                         " streams (" + list + "); choose one with --stream NAME");
     }
   }
-  if (!stream.empty() && file.stream_column < 0) {
-    throw CommandError("--stream " + stream + ": " + file.table.path + " has no stream column");
+  if (!stream.empty() && !file.has_stream) {
+    throw CommandError("--stream " + stream + ": " + file.path + " has no stream column");
   }
   std::vector<int64_t> keep;
-  for (std::size_t r = 0; r < file.table.rows.size(); ++r) {
-    if (!stream.empty() && TrimField(file.table.rows[r][file.stream_column]) != stream) continue;
+  for (int64_t r = 0; r < file.rows(); ++r) {
+    if (!stream.empty() && file.streams[r] != stream) continue;
     if (bounded && (file.times[r] < from || file.times[r] > until)) continue;
-    keep.push_back(static_cast<int64_t>(r));
+    keep.push_back(r);
   }
   if (keep.empty()) {
-    throw CommandError(file.table.path + ": no rows" +
+    throw CommandError(file.path + ": no rows" +
                        (stream.empty() ? std::string() : " of stream " + stream) +
                        (bounded ? " in the time range given" : ""));
   }
-  if (keep.size() == file.table.rows.size()) return file;
+  if (static_cast<int64_t>(keep.size()) == file.rows()) return file;
   FeatureFile out;
+  out.path = file.path;
   out.names = file.names;
-  out.time_column = file.time_column;
-  out.stream_column = file.stream_column;
-  out.table.path = file.table.path;
-  out.table.header = file.table.header;
+  out.has_time = file.has_time;
+  out.has_stream = file.has_stream;
   out.values.resize(static_cast<int64_t>(keep.size()), file.values.cols());
   for (std::size_t i = 0; i < keep.size(); ++i) {
-    out.table.rows.push_back(file.table.rows[keep[i]]);
-    out.table.line_numbers.push_back(file.table.line_numbers[keep[i]]);
     out.values.row(static_cast<int64_t>(i)) = file.values.row(keep[i]);
-    if (!file.times.empty()) out.times.push_back(file.times[keep[i]]);
+    if (file.has_time) {
+      out.times.push_back(file.times[keep[i]]);
+      out.time_text.push_back(file.time_text[keep[i]]);
+    }
+    if (file.has_stream) out.streams.push_back(file.streams[keep[i]]);
   }
   return out;
 }

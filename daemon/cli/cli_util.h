@@ -6,21 +6,25 @@
 #include <vector>
 
 #include "cli/commands.h"
-#include "formats/csv_table.h"
+#include "formats/stream_file.h"
 #include "nuwatch/types.h"
 
 namespace nuwatch::cli {
 
 // The numeric features of a CSV file: every column except `time` and `stream`, and those two when
-// present (times parsed as ISO-8601 or epoch seconds). CSV errors become CommandError with the
-// file and line.
+// present (times parsed as ISO-8601 or epoch seconds, and kept as written). Read row by row
+// (CsvReader): memory is that of the values, not of the text. CSV errors become CommandError with
+// the file and line.
 struct FeatureFile {
-  CsvTable table;
+  std::string path;
   std::vector<std::string> names;
   MatrixD values;
-  int time_column = -1;       // -1: none
-  int stream_column = -1;     // -1: none
-  std::vector<double> times;  // one per row when there is a time column, else empty
+  bool has_time = false;
+  bool has_stream = false;
+  std::vector<double> times;  // one per row with a time column, else empty
+  PackedStrings time_text;    // the time fields as written (with a time column)
+  PackedStrings streams;      // the stream fields (with a stream column)
+  int64_t rows() const { return values.rows(); }
 };
 FeatureFile ReadFeatureFile(const std::string& path);
 
@@ -28,8 +32,7 @@ FeatureFile ReadFeatureFile(const std::string& path);
 // [from, until] (seconds; infinite: no bound). Throws CommandError when the file holds several
 // streams and none was chosen ("--stream: the file holds 3 streams (pump-01, ...); choose one"),
 // when a time bound is given without a time column, or when nothing is left.
-FeatureFile SelectRows(const FeatureFile& file, const std::string& stream, double from,
-                       double until);
+FeatureFile SelectRows(FeatureFile file, const std::string& stream, double from, double until);
 
 // Shortest text that reads back as the same double ("0.125", "-3.5e-07").
 std::string FormatNumber(double value);

@@ -66,9 +66,9 @@ double TimeBound(const std::string& text, const char* flag, double none) {
 void RunFit(const FitArgs& a) {
   DetectorOptions options = FitDefaults();
   a.keys.ApplyTo(options);
-  const FeatureFile all = ReadFeatureFile(a.input);
-  const FeatureFile file = SelectRows(all, a.stream, TimeBound(a.from, "--from", -INFINITY),
-                                      TimeBound(a.until, "--until", INFINITY));
+  const FeatureFile file =
+      SelectRows(ReadFeatureFile(a.input), a.stream, TimeBound(a.from, "--from", -INFINITY),
+                 TimeBound(a.until, "--until", INFINITY));
   options.feature_names = file.names;
   options.window = std::max<int64_t>(2, file.values.rows());
   options.warmup = 0;

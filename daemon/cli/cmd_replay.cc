@@ -53,22 +53,26 @@ void RunReplay(const ReplayArgs& a) {
   std::fputs("time,stream,state,decision,p_value,anomaly,incident,support_vectors,model_version\n",
              f);
   int64_t flagged = 0, scored = 0;
+  std::string line;
   for (int64_t i = 0; i < recording.rows(); ++i) {
     const ReplayRow& r = rows[i];
-    const std::string& stream = recording.streams[recording.stream_of_row[i]];
+    line.clear();
+    AppendCsvField(&line, recording.time_text[i]);
+    line += ',';
+    AppendCsvField(&line, recording.streams[recording.stream_of_row[i]]);
     const std::string incident = r.incident ? std::to_string(r.incident) : "";
     if (r.learning) {
-      std::fprintf(f, "%s,%s,%s,,,0,%s,0,0\n", recording.time_text[i].c_str(), stream.c_str(),
-                   r.history ? "history" : "learning", incident.c_str());
-      continue;
+      line += r.history ? ",history,,,0," : ",learning,,,0,";
+      line += incident + ",0,0\n";
+    } else {
+      ++scored;
+      flagged += r.anomaly;
+      line += ",scoring," + FormatNumber(r.decision) + "," +
+              (std::isnan(r.p_value) ? std::string() : FormatNumber(r.p_value)) +
+              (r.anomaly ? ",1," : ",0,") + incident + "," + std::to_string(r.support_vectors) +
+              "," + std::to_string(r.model_version) + "\n";
     }
-    ++scored;
-    flagged += r.anomaly;
-    const std::string p = std::isnan(r.p_value) ? "" : FormatNumber(r.p_value);
-    std::fprintf(f, "%s,%s,scoring,%s,%s,%d,%s,%d,%llu\n", recording.time_text[i].c_str(),
-                 stream.c_str(), FormatNumber(r.decision).c_str(), p.c_str(), r.anomaly ? 1 : 0,
-                 incident.c_str(), r.support_vectors,
-                 static_cast<unsigned long long>(r.model_version));
+    std::fwrite(line.data(), 1, line.size(), f);
   }
   out.Finish();
   std::cerr << "replayed " << recording.rows() << " vectors of " << recording.streams.size()

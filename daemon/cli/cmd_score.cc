@@ -2,7 +2,10 @@
 // CSV file. The model's feature transform (lags, rolling statistics) is applied to the rows in
 // file order, as the detector applies it to a stream; rows whose history is not complete yet are
 // written with empty scores.
+#include <charconv>
+#include <cmath>
 #include <memory>
+#include <numeric>
 
 #include "cli/cli_util.h"
 #include "nuwatch/model.h"
@@ -36,45 +39,73 @@ void RunScore(const ScoreArgs& a) {
   }
   const FeatureTransform transform(model.parts().transform, inputs);
   std::vector<int64_t> output_row;
-  const MatrixD rows = transform.TransformAll(file.values, file.times, &output_row);
+  MatrixD transformed;
+  if (model.parts().transform.identity()) {
+    output_row.resize(static_cast<std::size_t>(file.rows()));
+    std::iota(output_row.begin(), output_row.end(), int64_t{0});
+  } else {
+    transformed = transform.TransformAll(file.values, file.times, &output_row);
+  }
+  // Without lags or rolling statistics the rows are scored as read, without a copy.
+  const MatrixD& rows = model.parts().transform.identity() ? file.values : transformed;
   const std::vector<std::string> names = transform.OutputNames(file.names);
   const int top_k = std::min(a.explain, model.dims());
   VectorD decisions, nonconformity;
   model.EvaluateBatch(rows, &decisions, &nonconformity);
 
   OutputFile out(a.output);
-  std::string line;
-  if (file.time_column >= 0) line += "time,";
-  if (file.stream_column >= 0) line += "stream,";
-  line += "decision,p_value,anomaly";
+  std::string text;
+  if (file.has_time) text += "time,";
+  if (file.has_stream) text += "stream,";
+  text += "decision,p_value,anomaly";
   for (int k = 1; k <= top_k; ++k)
-    line += ",feature_" + std::to_string(k) + ",share_" + std::to_string(k);
-  std::fprintf(out.get(), "%s\n", line.c_str());
+    text += ",feature_" + std::to_string(k) + ",share_" + std::to_string(k);
+  text += '\n';
+  // Written in blocks of about a megabyte: one write per block, not per row.
+  constexpr std::size_t kBlockBytes = 1 << 20;
+  char number[32];
+  const auto append_number = [&](double value) {
+    text.append(number, std::to_chars(number, number + sizeof number, value).ptr);
+  };
   for (std::size_t i = 0; i < output_row.size(); ++i) {
-    line.clear();
-    if (file.time_column >= 0) line += file.table.rows[i][file.time_column] + ",";
-    if (file.stream_column >= 0) line += file.table.rows[i][file.stream_column] + ",";
+    if (file.has_time) {
+      AppendCsvField(&text, file.time_text[i]);
+      text += ',';
+    }
+    if (file.has_stream) {
+      AppendCsvField(&text, file.streams[i]);
+      text += ',';
+    }
     const int64_t r = output_row[i];
     if (r < 0) {
-      line += ",,0";  // the transform's history is still filling
-      for (int k = 0; k < top_k; ++k) line += ",,";
-      std::fprintf(out.get(), "%s\n", line.c_str());
-      continue;
-    }
-    const Score score{decisions[r], nonconformity[r]};
-    const double p = model.PValue(score);
-    line += FormatNumber(score.decision) + "," + (std::isnan(p) ? "" : FormatNumber(p)) +
-            (model.Flagged(score) ? ",1" : ",0");
-    if (top_k > 0) {
-      std::span<const double> x(rows.row(r).data(), rows.cols());
-      for (const FeatureShare& s : model.Explain(x, top_k)) {
-        char share[32];
-        std::snprintf(share, sizeof share, "%.4f", s.share);
-        line += "," + names[s.feature] + "," + share;
+      text += ",,0";  // the transform's history is still filling
+      for (int k = 0; k < top_k; ++k) text += ",,";
+    } else {
+      const Score score{decisions[r], nonconformity[r]};
+      const double p = model.PValue(score);
+      append_number(score.decision);
+      text += ',';
+      if (!std::isnan(p)) append_number(p);
+      text += model.Flagged(score) ? ",1" : ",0";
+      if (top_k > 0) {
+        std::span<const double> x(rows.row(r).data(), rows.cols());
+        for (const FeatureShare& s : model.Explain(x, top_k)) {
+          char share[32];
+          std::snprintf(share, sizeof share, "%.4f", s.share);
+          text += ',';
+          AppendCsvField(&text, names[s.feature]);
+          text += ',';
+          text += share;
+        }
       }
     }
-    std::fprintf(out.get(), "%s\n", line.c_str());
+    text += '\n';
+    if (text.size() >= kBlockBytes) {
+      std::fwrite(text.data(), 1, text.size(), out.get());
+      text.clear();
+    }
   }
+  std::fwrite(text.data(), 1, text.size(), out.get());
   out.Finish();
 }
 

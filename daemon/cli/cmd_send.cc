@@ -31,7 +31,8 @@
 
 #include "cli/cli_util.h"
 #include "cli/commands.h"
-#include "formats/csv_table.h"
+#include "formats/csv_reader.h"
+#include "formats/stream_file.h"
 #include "formats/timestamps.h"
 #include "offline/replay.h"
 #include "protocol/wire_protocol.h"
@@ -368,177 +369,54 @@ bool SendRecording(Sender& sender, const StreamRecording& recording,
   return sender.SendAllPending();
 }
 
-// Complete lines from a file descriptor as they arrive, without waiting for the end of input.
-class StreamingLineReader {
+// Standard input's bytes as they arrive, handed to a CsvReader in push mode, so that a row is
+// sent as soon as its line is complete, without waiting for the end of the input.
+class StdinFeeder {
  public:
-  enum class Status { kLine, kNothingYet, kEnd, kStopped };
+  enum class Result { kRead, kNothingYet, kEnd, kStopped };
 
-  explicit StreamingLineReader(int fd) : fd_(fd) {}
-
-  // Waits at most `wait` for a complete line. kLine: *line holds it, without its '\n' (the last
-  // line of the input needs no '\n'). kNothingYet: no complete line within `wait`. Throws
-  // CommandError when reading fails.
-  Status Next(std::string* line, std::chrono::milliseconds wait) {
-    const auto deadline = Clock::now() + wait;
+  // Waits at most `wait` for bytes and appends what there is to `reader` (EndInput at the end of
+  // the input). Throws CommandError when reading fails.
+  Result Feed(CsvReader& reader, std::chrono::milliseconds wait) {
     while (true) {
-      const std::size_t newline = buffer_.find('\n', start_);
-      if (newline != std::string::npos) {
-        line->assign(buffer_, start_, newline - start_);
-        start_ = newline + 1;
-        return Status::kLine;
-      }
-      if (end_of_input_) {
-        if (start_ == buffer_.size()) return Status::kEnd;
-        line->assign(buffer_, start_, std::string::npos);
-        start_ = buffer_.size();
-        return Status::kLine;
-      }
-      if (stop_requested) return Status::kStopped;
-      const auto left =
-          std::chrono::duration_cast<std::chrono::milliseconds>(deadline - Clock::now());
-      pollfd item{fd_, POLLIN, 0};
-      const int ready = ::poll(&item, 1, static_cast<int>(std::max<int64_t>(0, left.count())));
+      if (stop_requested) return Result::kStopped;
+      pollfd item{STDIN_FILENO, POLLIN, 0};
+      const int ready = ::poll(&item, 1, static_cast<int>(wait.count()));
       if (ready < 0) {
         if (errno == EINTR) continue;
         throw CommandError(std::string("standard input: poll failed: ") + std::strerror(errno));
       }
-      if (ready == 0) return Status::kNothingYet;
-      ReadAvailable();
-    }
-  }
-
- private:
-  void ReadAvailable() {
-    if (start_ > 0) {  // keep only the unfinished line
-      buffer_.erase(0, start_);
-      start_ = 0;
-    }
-    char chunk[65536];
-    const ssize_t n = ::read(fd_, chunk, sizeof chunk);
-    if (n < 0) {
-      if (errno == EINTR || errno == EAGAIN) return;
-      throw CommandError(std::string("standard input: read failed: ") + std::strerror(errno));
-    }
-    if (n == 0) {
-      end_of_input_ = true;
-      return;
-    }
-    buffer_.append(chunk, static_cast<std::size_t>(n));
-  }
-
-  int fd_;
-  std::string buffer_;
-  std::size_t start_ = 0;
-  bool end_of_input_ = false;
-};
-
-std::string_view TrimField(std::string_view s) {
-  while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
-  while (!s.empty() && (s.back() == ' ' || s.back() == '\t' || s.back() == '\r'))
-    s.remove_suffix(1);
-  return s;
-}
-
-void SplitFields(std::string_view text, std::vector<std::string_view>* fields) {
-  fields->clear();
-  std::size_t start = 0;
-  while (true) {
-    const std::size_t comma = text.find(',', start);
-    fields->push_back(TrimField(text.substr(start, comma - start)));
-    if (comma == std::string_view::npos) break;
-    start = comma + 1;
-  }
-}
-
-// The stream-file format of ReadStreamRecording (replay.h), read one row at a time.
-class StreamingRowParser {
- public:
-  explicit StreamingRowParser(std::string default_stream)
-      : default_stream_(std::move(default_stream)) {}
-
-  bool has_header() const { return columns_ > 0; }
-  int dims() const { return static_cast<int>(feature_columns_.size()); }
-
-  // Requires: !has_header(). Throws CommandError for a header ReadStreamRecording would refuse.
-  void ReadHeader(std::string_view line, int line_number) {
-    SplitFields(line, &fields_);
-    for (std::size_t i = 0; i < fields_.size(); ++i) {
-      if (fields_[i] == "time") {
-        time_column_ = static_cast<int>(i);
-      } else if (fields_[i] == "stream") {
-        stream_column_ = static_cast<int>(i);
-      } else if (fields_[i].empty()) {
-        throw CommandError(Where(line_number) + "a header column has no name");
-      } else {
-        feature_columns_.push_back(static_cast<int>(i));
-        feature_names_.emplace_back(fields_[i]);
+      if (ready == 0) return Result::kNothingYet;
+      const ssize_t n = ::read(STDIN_FILENO, chunk_, sizeof chunk_);
+      if (n < 0) {
+        if (errno == EINTR || errno == EAGAIN) continue;
+        throw CommandError(std::string("standard input: read failed: ") + std::strerror(errno));
       }
-    }
-    if (time_column_ < 0) throw CommandError("standard input: no column named time");
-    if (feature_columns_.empty()) throw CommandError("standard input: no feature columns");
-    if (feature_columns_.size() > 65535)
-      throw CommandError("standard input: " + std::to_string(feature_columns_.size()) +
-                         " feature columns; a message holds at most 65535");
-    if (stream_column_ < 0 && default_stream_.empty())
-      throw CommandError("standard input has no stream column: name the stream with --stream KEY");
-    if (stream_column_ >= 0 && !default_stream_.empty())
-      throw CommandError("--stream: standard input has a stream column already");
-    columns_ = fields_.size();
-    values_.resize(feature_columns_.size());
-  }
-
-  // Requires: has_header(). Parses one data row into time(), stream(), values(). Throws
-  // CommandError naming the line for a row ReadStreamRecording would refuse.
-  void ReadRow(std::string_view line, int line_number, Dtype dtype, PayloadFormat format) {
-    SplitFields(line, &fields_);
-    if (fields_.size() != columns_)
-      throw CommandError(Where(line_number) + std::to_string(fields_.size()) +
-                         " fields, the header has " + std::to_string(columns_));
-    const std::optional<double> time = ParseTimestamp(fields_[time_column_]);
-    if (!time)
-      throw CommandError(Where(line_number) + "time '" + std::string(fields_[time_column_]) +
-                         "' is neither ISO-8601 nor seconds since the epoch");
-    time_ = *time;
-    for (std::size_t c = 0; c < feature_columns_.size(); ++c) {
-      const std::optional<double> value = ParseFiniteNumber(fields_[feature_columns_[c]]);
-      if (!value)
-        throw CommandError(Where(line_number) + "column " + feature_names_[c] + ": '" +
-                           std::string(fields_[feature_columns_[c]]) + "' is not a finite number");
-      values_[c] = *value;
-    }
-    if (format == PayloadFormat::kBinary && dtype == Dtype::kFloat32) {
-      const std::string overflow = Float32Overflow(values_, feature_names_);
-      if (!overflow.empty()) throw CommandError(Where(line_number) + overflow);
-    }
-    const std::string_view key =
-        stream_column_ >= 0 ? fields_[stream_column_] : std::string_view(default_stream_);
-    if (key != stream_) {
-      stream_.assign(key);
-      if (ValidateStreamKey(stream_, WireLimits{}) != RejectReason::kNone)
-        throw CommandError(Where(line_number) + KeyError(stream_));
+      if (n == 0) {
+        reader.EndInput();
+        return Result::kEnd;
+      }
+      reader.Append(std::string_view(chunk_, static_cast<std::size_t>(n)));
+      return Result::kRead;
     }
   }
-
-  double time() const { return time_; }
-  const std::string& stream() const { return stream_; }
-  std::span<const double> values() const { return values_; }
 
  private:
-  static std::string Where(int line_number) {
-    return "standard input:" + std::to_string(line_number) + ": ";
-  }
-
-  std::string default_stream_;
-  std::size_t columns_ = 0;
-  int time_column_ = -1;
-  int stream_column_ = -1;
-  std::vector<int> feature_columns_;
-  std::vector<std::string> feature_names_;
-  std::vector<std::string_view> fields_;
-  double time_ = 0;
-  std::string stream_;
-  std::vector<double> values_;
+  char chunk_[65536];
 };
+
+// Checks of the stream-file columns that only `send` makes: a stream key for every row, and no
+// more features than a message holds.
+void CheckSendColumns(const StreamFileColumns& columns, const std::string& input,
+                      const std::string& default_stream) {
+  if (columns.dims() > 65535)
+    throw CommandError(input + ": " + std::to_string(columns.dims()) +
+                       " feature columns; a message holds at most 65535");
+  if (!columns.has_stream() && default_stream.empty())
+    throw CommandError(input + " has no stream column: name the stream with --stream KEY");
+  if (columns.has_stream() && !default_stream.empty())
+    throw CommandError("--stream: " + input + " has a stream column already");
+}
 
 struct SendSummary {
   bool interrupted = false;
@@ -550,48 +428,62 @@ struct SendSummary {
 
 // The socket is created after the header, which fixes the number of features.
 SendSummary SendStdin(const SendSettings& settings, double* elapsed_seconds) {
-  StreamingLineReader reader(STDIN_FILENO);
-  StreamingRowParser parser(settings.default_stream);
+  CsvReader reader("standard input");
+  StdinFeeder feeder;
+  std::optional<StreamFileColumns> columns;
   std::unique_ptr<Sender> sender;
   std::optional<Progress> progress;
-  std::string line;
-  int line_number = 0;
+  std::vector<double> values;
+  std::string stream;
   bool interrupted = false;
   const auto started = Clock::now();
-  while (true) {
-    auto status = reader.Next(&line, std::chrono::milliseconds(0));
-    if (status == StreamingLineReader::Status::kNothingYet) {
-      // The producer has nothing more for now: what is buffered goes out before we wait.
-      if (sender && !sender->SendAllPending()) {
-        interrupted = true;
-        break;
+  try {
+    while (!interrupted) {
+      const CsvReader::Status status = reader.Next();
+      if (!columns && reader.has_header()) {
+        columns.emplace(reader);
+        CheckSendColumns(*columns, "standard input", settings.default_stream);
+        values.resize(columns->dims());
+        sender = std::make_unique<Sender>(settings, columns->dims());
+        progress.emplace(0);
       }
-      do {
-        status = reader.Next(&line, std::chrono::milliseconds(200));
-      } while (status == StreamingLineReader::Status::kNothingYet);
+      if (status == CsvReader::Status::kEnd) break;
+      if (status == CsvReader::Status::kRow) {
+        const double time = columns->Parse(reader, values);
+        if (settings.format == PayloadFormat::kBinary && settings.dtype == Dtype::kFloat32) {
+          const std::string overflow = Float32Overflow(values, columns->feature_names());
+          if (!overflow.empty()) throw CommandError(reader.Where() + overflow);
+        }
+        const std::string_view key = columns->has_stream()
+                                         ? columns->Stream(reader)
+                                         : std::string_view(settings.default_stream);
+        if (key != stream) {
+          stream.assign(key);
+          if (ValidateStreamKey(stream, WireLimits{}) != RejectReason::kNone)
+            throw CommandError(reader.Where() + KeyError(stream));
+        }
+        if (!sender->Add(stream, time, values)) interrupted = true;
+        progress->Update(*sender);
+        continue;
+      }
+      // No complete row buffered: take what the pipe has; when it has nothing at the moment, the
+      // producer has paused, so what is batched goes out before we wait.
+      StdinFeeder::Result fed = feeder.Feed(reader, std::chrono::milliseconds(0));
+      if (fed == StdinFeeder::Result::kNothingYet) {
+        if (sender && !sender->SendAllPending()) {
+          interrupted = true;
+          break;
+        }
+        do {
+          fed = feeder.Feed(reader, std::chrono::milliseconds(200));
+        } while (fed == StdinFeeder::Result::kNothingYet);
+      }
+      if (fed == StdinFeeder::Result::kStopped) interrupted = true;
     }
-    if (status == StreamingLineReader::Status::kStopped) {
-      interrupted = true;
-      break;
-    }
-    if (status == StreamingLineReader::Status::kEnd) break;
-    ++line_number;
-    if (TrimField(line).empty()) continue;
-    if (!parser.has_header()) {
-      parser.ReadHeader(line, line_number);
-      sender = std::make_unique<Sender>(settings, parser.dims());
-      progress.emplace(0);
-      continue;
-    }
-    parser.ReadRow(line, line_number, settings.dtype, settings.format);
-    if (!sender->Add(parser.stream(), parser.time(), parser.values())) {
-      interrupted = true;
-      break;
-    }
-    progress->Update(*sender);
+  } catch (const CsvError& e) {
+    throw CommandError(e.what());
   }
-  if (!parser.has_header() && !interrupted)
-    throw CommandError("standard input: empty input (no header row)");
+  if (!columns && !interrupted) throw CommandError("standard input: empty input (no header row)");
   SendSummary summary;
   if (sender) {
     if (!interrupted && !sender->SendAllPending()) interrupted = true;
@@ -668,7 +560,7 @@ void RunSend(const SendArguments& args) {
           std::span<const double>(recording.values.row(i).data(), dims), recording.feature_names);
       if (!overflow.empty())
         throw CommandError(settings.input + ": data row " + std::to_string(i + 1) + " (time " +
-                           recording.time_text[i] + "): " + overflow);
+                           std::string(recording.time_text[i]) + "): " + overflow);
     }
   }
 

@@ -1,5 +1,7 @@
 // nuwatch: the command-line tool (fit, score, inspect, bench, replay, simulate, tune, evaluate,
 // send, tail). Each subcommand lives in its own cmd_*.cc file and registers itself.
+#include <malloc.h>
+
 #include <algorithm>
 #include <exception>
 #include <iostream>
@@ -21,6 +23,11 @@ CommandRegistration::CommandRegistration(int order, CommandAdder adder) {
 }  // namespace nuwatch::cli
 
 int main(int argc, char** argv) {
+  // nuwatch runs once and exits. Batch scoring allocates and frees megabyte temporaries per block
+  // of rows; glibc would hand each back to the kernel and fault it in again (a fifth of `score`'s
+  // time on 200,000 rows). Keep freed memory for reuse instead.
+  mallopt(M_TRIM_THRESHOLD, 512 << 20);
+  mallopt(M_MMAP_THRESHOLD, 32 << 20);  // the largest glibc takes
   CLI::App app{
       "nuwatch: learn each stream's normal envelope with a nu one-class SVM and flag what "
       "falls outside it"};

@@ -1,13 +1,15 @@
 #include "formats/timestamps.h"
 
 #include <charconv>
+#include <chrono>
 #include <cmath>
 #include <cstdio>
-#include <ctime>
 #include <string>
 
 namespace nuwatch {
 namespace {
+
+namespace chrono = std::chrono;
 
 std::optional<double> ParseNumber(std::string_view text) {
   double value = 0;
@@ -22,7 +24,7 @@ bool ReadDigits(std::string_view text, std::size_t* pos, int digits, int* out) {
   if (*pos + digits > text.size()) return false;
   int value = 0;
   for (int i = 0; i < digits; ++i) {
-    char c = text[*pos + i];
+    const char c = text[*pos + i];
     if (c < '0' || c > '9') return false;
     value = value * 10 + (c - '0');
   }
@@ -37,16 +39,10 @@ bool Expect(std::string_view text, std::size_t* pos, char c) {
   return true;
 }
 
-// Days from 1970-01-01 to the given civil date (proleptic Gregorian); H. Hinnant's algorithm.
-int64_t DaysFromCivil(int64_t y, unsigned m, unsigned d) {
-  y -= m <= 2;
-  const int64_t era = (y >= 0 ? y : y - 399) / 400;
-  const unsigned yoe = static_cast<unsigned>(y - era * 400);
-  const unsigned doy = (153 * (m + (m > 2 ? -3 : 9)) + 2) / 5 + d - 1;
-  const unsigned doe = yoe * 365 + yoe / 4 - yoe / 100 + doy;
-  return era * 146097 + static_cast<int64_t>(doe) - 719468;
-}
-
+// The calendar (which days exist, leap years included, and the day count since 1970-01-01) is
+// C++20's <chrono> (year_month_day::ok, sys_days), not ours: a table of month lengths once let
+// 2026-02-29 through as 1 March. GCC 12 has the calendar but not std::chrono::parse (GCC 14), so
+// the fixed-width fields are split here.
 std::optional<double> ParseIso8601(std::string_view text) {
   std::size_t pos = 0;
   int year = 0, month = 0, day = 0, hour = 0, minute = 0, second = 0;
@@ -60,21 +56,22 @@ std::optional<double> ParseIso8601(std::string_view text) {
       !ReadDigits(text, &pos, 2, &minute) || !Expect(text, &pos, ':') ||
       !ReadDigits(text, &pos, 2, &second))
     return std::nullopt;
-  static constexpr int kDaysInMonth[] = {31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31};
-  if (month < 1 || month > 12 || day < 1 || day > kDaysInMonth[month - 1] || hour > 23 ||
-      minute > 59 || second > 60)
-    return std::nullopt;
+  const chrono::year_month_day date{chrono::year{year}, chrono::month{static_cast<unsigned>(month)},
+                                    chrono::day{static_cast<unsigned>(day)}};
+  // A leap second (:60) is accepted as ISO-8601 allows it, and counted as POSIX time does: as the
+  // first second of the next minute.
+  if (!date.ok() || hour > 23 || minute > 59 || second > 60) return std::nullopt;
   double fraction = 0;
   if (pos < text.size() && text[pos] == '.') {
-    std::size_t start = pos;
+    const std::size_t start = pos;
     ++pos;
     while (pos < text.size() && text[pos] >= '0' && text[pos] <= '9') ++pos;
     if (pos == start + 1) return std::nullopt;
-    fraction = *ParseNumber("0" + std::string(text.substr(start, pos - start)));
+    fraction = *ParseNumber(text.substr(start, pos - start));
   }
   int offset_seconds = 0;
   if (pos < text.size()) {
-    char c = text[pos];
+    const char c = text[pos];
     if (c == 'Z') {
       ++pos;
     } else if (c == '+' || c == '-') {
@@ -87,9 +84,9 @@ std::optional<double> ParseIso8601(std::string_view text) {
     }
   }
   if (pos != text.size()) return std::nullopt;
-  const int64_t days = DaysFromCivil(year, month, day);
-  return static_cast<double>(days * 86400 + hour * 3600 + minute * 60 + second - offset_seconds) +
-         fraction;
+  const chrono::sys_seconds at = chrono::sys_days(date) + chrono::hours(hour) +
+                                 chrono::minutes(minute) + chrono::seconds(second - offset_seconds);
+  return static_cast<double>(at.time_since_epoch().count()) + fraction;
 }
 
 }  // namespace
@@ -118,16 +115,20 @@ std::string FormatTimestamp(double seconds_since_epoch) {
     whole += 1;
     millis = 0;
   }
-  const std::time_t t = static_cast<std::time_t>(whole);
-  std::tm tm{};
-  gmtime_r(&t, &tm);
+  const chrono::sys_seconds at{chrono::seconds(static_cast<int64_t>(whole))};
+  const chrono::sys_days day = chrono::floor<chrono::days>(at);
+  const chrono::year_month_day date(day);
+  const chrono::hh_mm_ss<chrono::seconds> time(at - day);
   char buffer[96];
+  const int length = std::snprintf(
+      buffer, sizeof buffer, "%04d-%02u-%02uT%02d:%02d:%02d", static_cast<int>(date.year()),
+      static_cast<unsigned>(date.month()), static_cast<unsigned>(date.day()),
+      static_cast<int>(time.hours().count()), static_cast<int>(time.minutes().count()),
+      static_cast<int>(time.seconds().count()));
   if (millis == 0) {
-    std::snprintf(buffer, sizeof buffer, "%04d-%02d-%02dT%02d:%02d:%02dZ", tm.tm_year + 1900,
-                  tm.tm_mon + 1, tm.tm_mday, tm.tm_hour, tm.tm_min, tm.tm_sec);
+    std::snprintf(buffer + length, sizeof buffer - length, "Z");
   } else {
-    std::snprintf(buffer, sizeof buffer, "%04d-%02d-%02dT%02d:%02d:%02d.%03dZ", tm.tm_year + 1900,
-                  tm.tm_mon + 1, tm.tm_mday, tm.tm_hour, tm.tm_min, tm.tm_sec, millis);
+    std::snprintf(buffer + length, sizeof buffer - length, ".%03dZ", millis);
   }
   return buffer;
 }

@@ -1,99 +1,51 @@
 #include "offline/replay.h"
 
 #include <cstdio>
-#include <fstream>
 #include <map>
 #include <memory>
 #include <set>
 #include <sstream>
 #include <unordered_map>
 
-#include "formats/timestamps.h"
-
 namespace nuwatch {
 
+namespace {
+
+StreamRecording ReadRecording(CsvReader reader, const std::string& path) {
+  const StreamFileColumns columns(reader);
+  StreamRecording r;
+  r.path = path;
+  r.feature_names = columns.feature_names();
+  const std::size_t dims = r.feature_names.size();
+  std::vector<double> values;
+  std::unordered_map<std::string, int32_t> stream_index;
+  std::string key;
+  while (reader.Next() == CsvReader::Status::kRow) {
+    values.resize(values.size() + dims);
+    r.times.push_back(
+        columns.Parse(reader, std::span<double>(values.data() + values.size() - dims, dims)));
+    r.time_text.push_back(columns.TimeText(reader));
+    key.assign(columns.Stream(reader));
+    const auto [it, inserted] = stream_index.emplace(key, static_cast<int32_t>(r.streams.size()));
+    if (inserted) r.streams.push_back(key);
+    r.stream_of_row.push_back(it->second);
+  }
+  if (r.times.empty()) throw CsvError(path + ": no data rows");
+  r.values = Eigen::Map<const MatrixD>(values.data(), static_cast<int64_t>(r.times.size()),
+                                       static_cast<int64_t>(dims));
+  return r;
+}
+
+}  // namespace
+
 StreamRecording ReadStreamRecording(const std::string& path) {
-  std::ifstream in(path, std::ios::binary);
-  if (!in) throw CsvError(path + ": cannot open for reading");
-  return ReadStreamRecording(in, path);
+  return ReadRecording(CsvReader::Open(path), path);
 }
 
 StreamRecording ReadStreamRecording(std::istream& in, const std::string& path) {
-  // A dedicated reader rather than ReadCsv: recordings run to millions of rows, and a table of
-  // strings would cost ten times the memory of the values.
-  StreamRecording r;
-  r.path = path;
-  std::string line;
-  int line_number = 0;
-  std::vector<std::string_view> fields;
-  auto split = [&](std::string_view text) {
-    fields.clear();
-    std::size_t start = 0;
-    while (true) {
-      std::size_t comma = text.find(',', start);
-      fields.push_back(TrimField(text.substr(start, comma - start)));
-      if (comma == std::string_view::npos) break;
-      start = comma + 1;
-    }
-  };
-  int time_column = -1, stream_column = -1;
-  std::vector<int> feature_columns;
-  std::size_t columns = 0;
-  std::vector<double> values;
-  std::unordered_map<std::string, int32_t> stream_index;
-  auto where = [&] { return path + ":" + std::to_string(line_number) + ": "; };
-  while (std::getline(in, line)) {
-    ++line_number;
-    if (TrimField(line).empty()) continue;
-    split(line);
-    if (columns == 0) {
-      columns = fields.size();
-      for (std::size_t i = 0; i < fields.size(); ++i) {
-        if (fields[i] == "time")
-          time_column = static_cast<int>(i);
-        else if (fields[i] == "stream")
-          stream_column = static_cast<int>(i);
-        else if (fields[i].empty())
-          throw CsvError(where() + "a header column has no name");
-        else {
-          feature_columns.push_back(static_cast<int>(i));
-          r.feature_names.emplace_back(fields[i]);
-        }
-      }
-      if (time_column < 0) throw CsvError(where() + "no column named time in the header");
-      if (feature_columns.empty()) throw CsvError(where() + "no feature columns in the header");
-      continue;
-    }
-    if (fields.size() != columns) {
-      throw CsvError(where() + std::to_string(fields.size()) + " fields, the header has " +
-                     std::to_string(columns));
-    }
-    auto time = ParseTimestamp(fields[time_column]);
-    if (!time) {
-      throw CsvError(where() + "time '" + std::string(fields[time_column]) +
-                     "' is neither ISO-8601 nor seconds since the epoch");
-    }
-    r.times.push_back(*time);
-    r.time_text.emplace_back(fields[time_column]);
-    std::string key = stream_column >= 0 ? std::string(fields[stream_column]) : std::string();
-    auto [it, inserted] = stream_index.emplace(key, static_cast<int32_t>(r.streams.size()));
-    if (inserted) r.streams.push_back(key);
-    r.stream_of_row.push_back(it->second);
-    for (std::size_t c = 0; c < feature_columns.size(); ++c) {
-      auto value = ParseFiniteNumber(fields[feature_columns[c]]);
-      if (!value) {
-        throw CsvError(where() + "column " + r.feature_names[c] + ": '" +
-                       std::string(fields[feature_columns[c]]) + "' is not a finite number");
-      }
-      values.push_back(*value);
-    }
-  }
-  if (in.bad()) throw CsvError(path + ": read error");
-  if (columns == 0) throw CsvError(path + ": empty file (no header row)");
-  if (r.times.empty()) throw CsvError(path + ": no data rows");
-  r.values = Eigen::Map<const MatrixD>(values.data(), static_cast<int64_t>(r.times.size()),
-                                       static_cast<int64_t>(feature_columns.size()));
-  return r;
+  std::ostringstream text;
+  text << in.rdbuf();
+  return ReadRecording(CsvReader::FromText(text.str(), path), path);
 }
 
 std::string UnusableSettingNote(int64_t flagged, int64_t scored) {

@@ -10,7 +10,7 @@
 #include <string>
 #include <vector>
 
-#include "formats/csv_table.h"
+#include "formats/stream_file.h"
 #include "nuwatch/detector.h"
 
 namespace nuwatch {
@@ -23,13 +23,14 @@ struct StreamRecording {
   std::vector<std::string> streams;    // distinct keys, in order of first appearance
   std::vector<int32_t> stream_of_row;  // index into streams
   std::vector<double> times;           // seconds since the epoch
-  std::vector<std::string> time_text;  // as written in the file
+  PackedStrings time_text;             // as written in the file
   MatrixD values;                      // rows x features
   int64_t rows() const { return values.rows(); }
 };
 
-// Throws CsvError naming the file and line: no `time` column, an unreadable time, a non-numeric or
-// non-finite value, a ragged row, no feature columns, no data rows.
+// Reads the file row by row (CsvReader, StreamFileColumns): memory is that of the values kept, not
+// of the text. Throws CsvError naming the file and line: no `time` column, an unreadable time, a
+// non-numeric or non-finite value, a ragged row, no feature columns, no data rows.
 StreamRecording ReadStreamRecording(const std::string& path);
 // The same from an open stream; `path` names it in messages (the fuzz target reads from memory).
 StreamRecording ReadStreamRecording(std::istream& in, const std::string& path);

@@ -8,16 +8,16 @@
 #include <cstdio>
 #include <exception>
 #include <filesystem>
-#include <fstream>
 #include <limits>
 #include <map>
 #include <nlohmann/json.hpp>
 #include <set>
-#include <thread>
 #include <utility>
 
+#include "concurrency/thread_pool.h"
 #include "formats/csv_table.h"
 #include "formats/evaluation_json.h"
+#include "nuwatch/checked_file.h"
 #include "nuwatch/mutex.h"
 #include "settings/setting_text.h"
 
@@ -162,8 +162,8 @@ void CheckTimesOrdered(const StreamRecording& recording) {
     const int32_t s = recording.stream_of_row[i];
     if (recording.times[i] < last[s]) {
       throw TuningError(recording.path + ": data row " + std::to_string(i + 1) + ": time " +
-                        recording.time_text[i] + " of stream '" + recording.streams[s] +
-                        "' is earlier than the stream's previous sample");
+                        std::string(recording.time_text[i]) + " of stream '" +
+                        recording.streams[s] + "' is earlier than the stream's previous sample");
     }
     last[s] = recording.times[i];
   }
@@ -175,32 +175,27 @@ StreamOptions OptionsFor(const Config& base, const TuningSetting& setting) {
   };
 }
 
-void WriteFileAtomically(const std::string& path, const std::string& text) {
-  const std::string temporary = path + ".tmp";
-  {
-    std::ofstream out(temporary, std::ios::binary | std::ios::trunc);
-    if (!out) throw TuningError(path + ": cannot open for writing");
-    out << text;
-    out.flush();
-    if (!out) throw TuningError(path + ": write failed");
+// Report files are replaced durably, as model and state files are (nuwatch/checked_file.h).
+void WriteReportFile(const std::string& path, const std::string& text) {
+  try {
+    WriteFileAtomically(path, reinterpret_cast<const uint8_t*>(text.data()), text.size());
+  } catch (const ModelFileError& e) {
+    throw TuningError(e.what());
   }
-  std::error_code error;
-  std::filesystem::rename(temporary, path, error);
-  if (error) throw TuningError(path + ": cannot replace: " + error.message());
 }
 
+// cairo writes the picture to a temporary file, which then replaces `path` durably.
 void DrawAtomically(const std::string& path, const std::function<void(const std::string&)>& draw) {
   const std::string temporary = path + ".tmp";
   try {
     draw(temporary);
+    CommitFileDurably(temporary, path);
   } catch (const std::exception& e) {
     std::error_code ignored;
     std::filesystem::remove(temporary, ignored);
-    throw TuningError(path + ": " + e.what());
+    throw TuningError(std::string(e.what()).rfind(path, 0) == 0 ? e.what()
+                                                                : path + ": " + e.what());
   }
-  std::error_code error;
-  std::filesystem::rename(temporary, path, error);
-  if (error) throw TuningError(path + ": cannot replace: " + error.message());
 }
 
 std::vector<std::size_t> RankOf(const TuningSelection& selection, std::size_t count) {
@@ -638,10 +633,9 @@ TuningReport RunTuning(const StreamRecording& recording, const std::vector<Incid
   if (threads <= 1) {
     worker();
   } else {
-    std::vector<std::thread> pool;
-    pool.reserve(threads);
-    for (std::size_t t = 0; t < threads; ++t) pool.emplace_back(worker);
-    for (std::thread& thread : pool) thread.join();
+    ThreadPool pool(static_cast<int>(threads));
+    for (std::size_t t = 0; t < threads; ++t) pool.Post(worker);
+    pool.Join();
   }
   for (std::size_t k = 0; k < settings.size(); ++k) {
     if (!errors[k]) continue;
@@ -1063,7 +1057,7 @@ std::vector<std::string> WriteTuningReport(const TuningReport& report,
   const auto path = [&](const char* name) { return (std::filesystem::path(dir) / name).string(); };
   std::vector<std::string> written;
   const auto text = [&](const char* name, const std::string& content) {
-    WriteFileAtomically(path(name), content);
+    WriteReportFile(path(name), content);
     written.push_back(path(name));
   };
   text("results.csv", ResultsCsv(report));

@@ -1,5 +1,6 @@
-// Where the daemon's refits run: a fixed Boost.Asio thread_pool behind nuwatch::RefitExecutor,
-// and a per-stream adapter that knows whether the stream has a refit queued or running.
+// Where the daemon's refits run: the daemon side's ThreadPool (concurrency/thread_pool.h) behind
+// nuwatch::RefitExecutor, and a per-stream adapter that knows whether the stream has a refit queued
+// or running.
 //
 // The pool's queue needs no bound of its own: each Detector has at most one refit in flight
 // (later ones are coalesced), so at most one job per stream is ever queued.
@@ -12,11 +13,8 @@
 #include <functional>
 #include <memory>
 
+#include "concurrency/thread_pool.h"
 #include "nuwatch/detector.h"
-
-namespace boost::asio {
-class thread_pool;
-}
 
 namespace nuwatch {
 
@@ -26,7 +24,7 @@ class RefitPool : public RefitExecutor {
   explicit RefitPool(int threads);
   ~RefitPool() override;  // Join()
 
-  int threads() const { return threads_; }
+  int threads() const { return pool_.threads(); }
   // Runs `job` on a pool thread. Ensures: it runs exactly once, unless Post is called after Join
   // (a precondition violation: the job is then run on the caller's thread, so it still runs).
   void Post(std::function<void()> job) override;
@@ -34,9 +32,7 @@ class RefitPool : public RefitExecutor {
   void Join();
 
  private:
-  int threads_;
-  std::unique_ptr<boost::asio::thread_pool> pool_;
-  std::atomic<bool> joined_{false};
+  ThreadPool pool_;
 };
 
 // A stream's view of the pool: counts the jobs it posted and those that finished, and calls

@@ -12,6 +12,8 @@
 #include <system_error>
 
 #include "formats/timestamps.h"
+#include "nuwatch/checked_file.h"
+#include "nuwatch/types.h"
 
 namespace nuwatch {
 namespace {
@@ -606,7 +608,8 @@ std::string PlantIncidentsCsv(const std::vector<PlantIncident>& incidents) {
 
 namespace {
 
-// Writes through a temporary file in the same directory and renames it into place.
+// Writes through a temporary file in the same directory, which then replaces the file durably
+// (nuwatch/checked_file.h's CommitFileDurably: fsync, rename, fsync of the directory).
 class ReplacingFile {
  public:
   explicit ReplacingFile(std::string path) : path_(std::move(path)), temp_(path_ + ".tmp") {
@@ -629,12 +632,10 @@ class ReplacingFile {
       std::remove(temp_.c_str());
       Fail("cannot write");
     }
-    std::error_code error;
-    std::filesystem::rename(temp_, path_, error);
-    if (error) {
-      std::remove(temp_.c_str());
-      throw std::runtime_error(path_ + ": cannot rename " + temp_ +
-                               " into place: " + error.message());
+    try {
+      CommitFileDurably(temp_, path_);
+    } catch (const ModelFileError& e) {
+      throw std::runtime_error(e.what());
     }
   }
 

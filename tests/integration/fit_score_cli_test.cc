@@ -238,4 +238,30 @@ TEST_F(FitScoreCli, BadInputsGiveOneLineNamingFileAndLine) {
   EXPECT_THAT(corrupt.err, HasSubstr("bad.nuw: checksum mismatch"));
 }
 
+// Regression: the CSV readers split at every comma, so a quoted header "pressure" gave a feature
+// named with its quotes and a stream key with a comma broke the row. Quoting as RFC 4180 defines
+// it; score copies the time and stream fields, quoted again where they need it.
+TEST_F(FitScoreCli, ReadsQuotedFieldsAndWritesThemBack) {
+  std::ostringstream csv;
+  csv << "\"time\",\"stream\",\"pressure\",\"flow\"\n";
+  std::mt19937_64 generator(5);
+  std::normal_distribution<double> normal;
+  for (int i = 0; i < 200; ++i)
+    csv << 1767225600 + 60 * i << ",\"line 1, pump \"\"a\"\"\"," << 4 + 0.1 * normal(generator)
+        << "," << 300 + 5 * normal(generator) << "\n";
+  const std::string input = Write("quoted.csv", csv.str());
+  ASSERT_EQ(Nuwatch("fit --input " + input + " --output " + Path("q.nuw")).exit_code, 0);
+  ProgramRun inspect = Nuwatch("inspect --json " + Path("q.nuw"));
+  const nlohmann::json model = nlohmann::json::parse(inspect.out);
+  EXPECT_EQ(model["feature_names"], (std::vector<std::string>{"pressure", "flow"}));
+  ProgramRun score = Nuwatch("score --model " + Path("q.nuw") + " --input " + input);
+  ASSERT_EQ(score.exit_code, 0) << score.err;
+  std::istringstream lines(score.out);
+  std::string header, first;
+  std::getline(lines, header);
+  std::getline(lines, first);
+  EXPECT_EQ(header, "time,stream,decision,p_value,anomaly");
+  EXPECT_EQ(first.rfind("1767225600,\"line 1, pump \"\"a\"\"\",", 0), 0u) << first;
+}
+
 }  // namespace

@@ -167,4 +167,11 @@ auto DecodeChecksummed(const uint8_t* data, std::size_t size, const char (&magic
 // file is removed).
 void WriteFileAtomically(const std::string& path, const uint8_t* bytes, std::size_t size);
 
+// The durable end of a replacement whose new content was written, by whatever means, to
+// `temporary` (a closed file in the same directory as `path`; e.g. a picture drawn by a library,
+// or a file streamed row by row): fsync of `temporary`, rename over `path`, fsync of the
+// directory. WriteFileAtomically ends with it; it is the one place that does these steps.
+// Throws ModelFileError naming `path` on failure (`temporary` is then removed).
+void CommitFileDurably(const std::string& temporary, const std::string& path);
+
 }  // namespace nuwatch

@@ -7,12 +7,16 @@
 
 #include <gmock/gmock.h>
 #include <gtest/gtest.h>
+#include <unistd.h>
 
 #include <cstdint>
+#include <cstdio>
 #include <cstring>
 #include <limits>
 #include <string>
 #include <vector>
+
+#include "nuwatch/types.h"
 
 namespace nuwatch {
 namespace {
@@ -221,6 +225,37 @@ TEST(Checksummed, PayloadSizesAboveTheLimitOrWrappingAreRejected) {
   const uint64_t wrapping = kNoLimit - kChecksummedEnvelopeBytes + 1;
   std::memcpy(lying.data() + 8, &wrapping, 8);
   EXPECT_THAT(UnwrapError(lying, 1, kNoLimit), HasSubstr("truncated or padded"));
+}
+
+// ---------------------------------------------------------------------------------------------
+// Durable replacement.
+
+TEST(CommitFileDurably, ReplacesThePathWithTheTemporaryFile) {
+  const std::string dir = ::testing::TempDir();
+  const std::string path = dir + "/nuwatch_commit_" + std::to_string(::getpid());
+  const std::string temporary = path + ".tmp";
+  std::FILE* old_file = std::fopen(path.c_str(), "wb");
+  std::fputs("old", old_file);
+  std::fclose(old_file);
+  std::FILE* new_file = std::fopen(temporary.c_str(), "wb");
+  std::fputs("new", new_file);
+  std::fclose(new_file);
+  CommitFileDurably(temporary, path);
+  char text[8] = {};
+  std::FILE* read = std::fopen(path.c_str(), "rb");
+  ASSERT_NE(read, nullptr);
+  EXPECT_EQ(std::fread(text, 1, sizeof text, read), 3u);
+  std::fclose(read);
+  EXPECT_STREQ(text, "new");
+  EXPECT_EQ(std::fopen(temporary.c_str(), "rb"), nullptr);  // renamed away
+  std::remove(path.c_str());
+  // A temporary file that is not there: the error names the path being replaced.
+  try {
+    CommitFileDurably(temporary, path);
+    FAIL() << "no error";
+  } catch (const ModelFileError& e) {
+    EXPECT_THAT(e.what(), HasSubstr(path + ": cannot open the temporary file"));
+  }
 }
 
 }  // namespace

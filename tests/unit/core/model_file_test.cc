@@ -452,6 +452,34 @@ TEST(Crc32, StandardCheckValue) {
   EXPECT_EQ(Crc32(nullptr, 0), 0u);
 }
 
+// The decision (DEVELOPERS.md, "Why core keeps its CRC-32"): core depends on Eigen only, so it
+// keeps its table-driven CRC instead of linking zlib; this check holds it to zlib's crc32 itself
+// (through Python's zlib module, which wraps it) on random buffers of every length up to 300.
+TEST(Crc32, AgreesWithZlibOnRandomBuffers) {
+  std::mt19937 random(11);
+  std::vector<uint8_t> bytes(300);
+  for (uint8_t& b : bytes) b = static_cast<uint8_t>(random());
+  const fs::path path = fs::temp_directory_path() / ("nuwatch_crc_" + std::to_string(::getpid()));
+  std::ofstream(path, std::ios::binary)
+      .write(reinterpret_cast<const char*>(bytes.data()),
+             static_cast<std::streamsize>(bytes.size()));
+  const std::string command =
+      std::string(NUWATCH_PYTHON) +
+      " -c 'import sys, zlib; d = open(sys.argv[1], \"rb\").read(); "
+      "print(\" \".join(str(zlib.crc32(d[:n])) for n in range(len(d) + 1)))' " +
+      path.string();
+  std::FILE* pipe = ::popen(command.c_str(), "r");
+  ASSERT_NE(pipe, nullptr);
+  std::vector<uint32_t> zlib;
+  unsigned long value = 0;
+  while (std::fscanf(pipe, "%lu", &value) == 1) zlib.push_back(static_cast<uint32_t>(value));
+  ASSERT_EQ(::pclose(pipe), 0);
+  fs::remove(path);
+  ASSERT_EQ(zlib.size(), bytes.size() + 1);
+  for (std::size_t n = 0; n <= bytes.size(); ++n)
+    EXPECT_EQ(Crc32(bytes.data(), n), zlib[n]) << "length " << n;
+}
+
 TEST(Crc32, ChainsLikeZlib) {
   // model_file.h: "as zlib computes it", i.e. crc32(crc32(0, a), b) == crc32(0, a + b).
   const char* text = "the quick brown fox jumps over the lazy dog";
