@@ -12,7 +12,7 @@ out=${NUWATCH_DEMO_DIR:-demo-out}
 mkdir -p "$out"
 
 echo "== 1. The demo plant: 3 pumps, one vector a minute for 4 days, faults injected after day 1"
-"$nuwatch" simulate --output "$out/plant" --pumps 3 --duration 4d --interval 60s --seed 11
+"$nuwatch" simulate --output "$out/plant" --pumps 3 --duration 4d --interval 60s --seed 11 --force
 
 # Day 1 holds no fault (the simulator keeps the first quarter clean); pick the first pump with one.
 pump=$(awk -F, 'NR > 1 { print $1; exit }' "$out/plant/incidents.csv")
@@ -74,7 +74,7 @@ tail_pid=$!
 "$nuwatch" tail --connect "$publish" --anomalies-only --json > "$out/anomalies.jsonl" 2>/dev/null &
 json_pid=$!
 ( while kill -0 "$tail_pid" 2>/dev/null; do sleep 1; done ) &
-"$nuwatch" simulate --live --speed 3600 --pumps 12 --interval 60s --duration 2d --seed 7 --fault-free 1d \
+"$nuwatch" simulate --live --speed 3600 --pumps 12 --interval 60s --duration 2d --seed 7 --fault-free 1d --force \
   --fault-rate 3 --output "$out/live" 2>/dev/null |
   "$nuwatch" send --connect "$ingest" --input - 2>"$out/send.log" &
 feeder=$!

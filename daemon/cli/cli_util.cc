@@ -5,8 +5,12 @@
 #include <charconv>
 #include <cmath>
 #include <cstring>
+#include <limits>
+#include <type_traits>
 
 #include "formats/timestamps.h"
+#include "settings/config.h"
+#include "settings/setting_text.h"
 
 namespace nuwatch::cli {
 
@@ -111,6 +115,117 @@ FeatureFile SelectRows(FeatureFile file, const std::string& stream, double from,
     if (file.has_stream) out.streams.push_back(file.streams[keep[i]]);
   }
   return out;
+}
+
+namespace {
+
+// "1..99", ">= 0", "> 0", "<= 10", "> 0 and <= 1": the range a flag's value must lie in, as every
+// range error shows it. A bound at the type's limit, or infinite, is no bound.
+template <typename Number>
+std::string RangeText(Number low, Number high, bool low_open, const char* unit = "") {
+  const auto text = [unit](Number v) {
+    if constexpr (std::is_floating_point_v<Number>) {
+      return FormatNumber(v) + unit;
+    } else {
+      return std::to_string(v) + unit;
+    }
+  };
+  const auto unbounded = [](Number v) {
+    if constexpr (std::is_floating_point_v<Number>) {
+      return std::isinf(v);
+    } else {
+      return v == std::numeric_limits<Number>::min() || v == std::numeric_limits<Number>::max();
+    }
+  };
+  const bool has_low = !unbounded(low), has_high = !unbounded(high);
+  if (has_low && has_high && !low_open) return text(low) + ".." + text(high);
+  const std::string low_text = std::string(low_open ? "> " : ">= ") + text(low);
+  if (has_low && has_high) return low_text + " and <= " + text(high);
+  if (has_low) return low_text;
+  return "<= " + text(high);
+}
+
+}  // namespace
+
+CommandError OutOfRange(const std::string& flag, const std::string& text,
+                        const std::string& range) {
+  return CommandError(flag + ": " + text + " is out of range (" + range + ")");
+}
+
+double NumberFlag(const std::string& flag, const std::string& text) {
+  const std::optional<double> value = ParseFiniteNumber(text);
+  if (!value || text.empty() || text != TrimField(text))
+    throw CommandError(flag + ": '" + text + "' is not a number");
+  return *value;
+}
+
+int64_t WholeNumberFlag(const std::string& flag, const std::string& text) {
+  int64_t value = 0;
+  const char* begin = text.data() + (!text.empty() && text[0] == '+' ? 1 : 0);
+  const char* end = text.data() + text.size();
+  const auto [ptr, error] = std::from_chars(begin, end, value);
+  if (error == std::errc::result_out_of_range && ptr == end)
+    throw OutOfRange(flag, text,
+                     std::to_string(std::numeric_limits<int64_t>::min()) + ".." +
+                         std::to_string(std::numeric_limits<int64_t>::max()));
+  if (begin == end || error != std::errc() || ptr != end)
+    throw CommandError(flag + ": '" + text + "' is not a whole number");
+  return value;
+}
+
+double NumberFlagIn(const std::string& flag, const std::string& text, double low, double high,
+                    LowBound low_bound) {
+  const double value = NumberFlag(flag, text);
+  const bool open = low_bound == LowBound::kExclusive;
+  if (value < low || (open && value == low) || value > high)
+    throw OutOfRange(flag, text, RangeText(low, high, open));
+  return value;
+}
+
+int64_t WholeNumberFlagIn(const std::string& flag, const std::string& text, int64_t low,
+                          int64_t high) {
+  const int64_t value = WholeNumberFlag(flag, text);
+  if (value < low || value > high) throw OutOfRange(flag, text, RangeText(low, high, false));
+  return value;
+}
+
+double DurationFlag(const std::string& flag, const std::string& text, double high,
+                    LowBound low_bound) {
+  const std::optional<double> seconds = ParseDuration(text);
+  if (!seconds || !std::isfinite(*seconds))
+    throw CommandError(flag + ": '" + text + "' is not a duration (e.g. 90, 90s, 15m, 2h, 7d)");
+  const bool open = low_bound == LowBound::kExclusive;
+  if ((open && *seconds == 0) || *seconds > high)
+    throw OutOfRange(flag, text, RangeText(0.0, high, open, "s"));
+  return *seconds;
+}
+
+void CheckEndpoint(const std::string& flag, const std::string& endpoint) {
+  const std::string problem = EndpointSyntaxProblem(endpoint);
+  if (!problem.empty()) throw CommandError(flag + ": " + problem);
+}
+
+void CheckUnknownFlags(const CLI::App& app, int argc, const char* const* argv) {
+  if (argc < 2) return;
+  const CLI::App* sub = nullptr;
+  for (const CLI::App* candidate : app.get_subcommands([](const CLI::App*) { return true; }))
+    if (candidate->check_name(argv[1])) sub = candidate;
+  if (sub == nullptr) return;
+  std::vector<std::string> names = {"help"};
+  for (const CLI::Option* option : sub->get_options())
+    for (const std::string& name : option->get_lnames()) names.push_back(name);
+  const std::vector<std::string_view> candidates(names.begin(), names.end());
+  for (int i = 2; i < argc; ++i) {
+    const std::string_view arg = argv[i];
+    if (arg == "--") break;  // what follows is not a flag
+    if (arg.size() < 3 || arg.substr(0, 2) != "--") continue;
+    const std::string_view name = arg.substr(2, arg.find('=') - 2);
+    if (std::find(candidates.begin(), candidates.end(), name) != candidates.end()) continue;
+    const std::optional<std::string_view> close = ClosestName(name, candidates);
+    throw CommandError(
+        "--" + std::string(name) + ": unknown flag" +
+        (close ? " (did you mean --" + std::string(*close) + "?)" : " (see --help)"));
+  }
 }
 
 std::string FormatNumber(double value) {

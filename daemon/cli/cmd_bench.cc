@@ -2,6 +2,7 @@
 // after a 10% slide, compression to the budget, batch and single-vector scoring, bytes per model
 // and per stream.
 #include <iostream>
+#include <limits>
 #include <memory>
 #include <nlohmann/json.hpp>
 
@@ -12,15 +13,24 @@ namespace nuwatch::cli {
 namespace {
 
 struct BenchArgs {
-  CapacityOptions capacity;
+  std::string dims, window, nu, support_vector_budget, seed;
   bool json = false;
 };
 
+CapacityOptions ToOptions(const BenchArgs& args) {
+  constexpr int64_t kMax = std::numeric_limits<int64_t>::max();
+  CapacityOptions c;
+  c.dims = static_cast<int>(WholeNumberFlagIn("--dims", args.dims, 1, 65535));
+  c.window = WholeNumberFlagIn("--window", args.window, 10, kMax);
+  c.nu = NumberFlagIn("--nu", args.nu, 0, 1, LowBound::kExclusive);
+  c.support_vector_budget =
+      WholeNumberFlagIn("--support-vector-budget", args.support_vector_budget, 1, kMax);
+  c.seed = static_cast<uint64_t>(WholeNumberFlagIn("--seed", args.seed, 0, kMax));
+  return c;
+}
+
 void RunBench(const BenchArgs& args) {
-  const CapacityOptions& a = args.capacity;
-  if (a.dims < 1 || a.window < 10 || !(a.nu > 0 && a.nu <= 1) || a.support_vector_budget < 1)
-    throw CommandError(
-        "need --dims >= 1, --window >= 10, --nu in (0, 1], --support-vector-budget >= 1");
+  const CapacityOptions a = ToOptions(args);
   const CapacityReport r = MeasureCapacity(a);
 
   nlohmann::ordered_json j;
@@ -81,14 +91,26 @@ void RunBench(const BenchArgs& args) {
 
 void AddBenchCommand(CLI::App& app) {
   auto args = std::make_shared<BenchArgs>();
-  CapacityOptions& c = args->capacity;
+  const CapacityOptions c;
+  args->dims = std::to_string(c.dims);
+  args->window = std::to_string(c.window);
+  args->nu = FormatNumber(c.nu);
+  args->support_vector_budget = std::to_string(c.support_vector_budget);
+  args->seed = std::to_string(c.seed);
   CLI::App* sub = app.add_subcommand("bench", "Capacity planning on synthetic Gaussian data");
-  sub->add_option("--dims", c.dims, "Features per vector")->capture_default_str();
-  sub->add_option("--window", c.window, "Training window (vectors)")->capture_default_str();
-  sub->add_option("--nu", c.nu, "nu")->capture_default_str();
-  sub->add_option("--support-vector-budget", c.support_vector_budget, "Support-vector budget")
+  sub->add_option("--dims", args->dims, "Features per vector")
+      ->type_name("N")
       ->capture_default_str();
-  sub->add_option("--seed", c.seed, "Seed of the synthetic data")->capture_default_str();
+  sub->add_option("--window", args->window, "Training window (vectors, at least 10)")
+      ->type_name("N")
+      ->capture_default_str();
+  sub->add_option("--nu", args->nu, "nu, in (0, 1]")->type_name("X")->capture_default_str();
+  sub->add_option("--support-vector-budget", args->support_vector_budget, "Support-vector budget")
+      ->type_name("N")
+      ->capture_default_str();
+  sub->add_option("--seed", args->seed, "Seed of the synthetic data")
+      ->type_name("N")
+      ->capture_default_str();
   sub->add_flag("--json", args->json, "Print one JSON object");
   sub->callback([args] { RunBench(*args); });
 }

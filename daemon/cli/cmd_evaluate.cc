@@ -9,6 +9,7 @@
 #include <string>
 #include <vector>
 
+#include "cli/cli_util.h"
 #include "cli/commands.h"
 #include "formats/alarm_files.h"
 #include "formats/csv_table.h"
@@ -63,17 +64,8 @@ struct EvaluateArguments {
 
 EvaluationOptions ParseOptions(const EvaluateArguments& arguments) {
   EvaluationOptions options;
-  const std::optional<double> grace = ParseDuration(arguments.grace);
-  if (!grace) {
-    throw CommandError("--grace: '" + arguments.grace +
-                       "' is not a duration (e.g. 90, 90s, 15m, 2h, 1d)");
-  }
-  options.grace_seconds = *grace;
-  const std::optional<double> alpha = ParseFiniteNumber(arguments.alpha);
-  if (!alpha || *alpha < 0 || *alpha > 1) {
-    throw CommandError("--alpha: '" + arguments.alpha + "' is not a number in [0, 1]");
-  }
-  options.alpha = *alpha;
+  options.grace_seconds = DurationFlag("--grace", arguments.grace);
+  options.alpha = NumberFlagIn("--alpha", arguments.alpha, 0, 1);
   const std::optional<CardinalityFactor> cardinality =
       ParseCardinalityFactor(arguments.cardinality);
   if (!cardinality) {

@@ -72,11 +72,11 @@ void RunFit(const FitArgs& a) {
   options.feature_names = file.names;
   options.window = std::max<int64_t>(2, file.values.rows());
   options.warmup = 0;
-  try {
-    ValidateDetectorOptions(options, "");
-  } catch (const ConfigError& e) {
-    throw CommandError(e.what());
-  }
+  a.keys.Validate(options, [&](std::string_view key) -> std::string {
+    if (key == "window") return "the number of rows fitted";
+    if (key == "warmup") return "fixed by fit";
+    return "fit's default";
+  });
   // Temporal context first, as the detector does: rows in file order, gaps by the time column.
   const FeatureTransform transform(TransformOptions(options), static_cast<int>(file.values.cols()));
   std::vector<int64_t> output_row;

@@ -16,11 +16,11 @@ namespace {
 
 struct ScoreArgs {
   std::string model, input, output;
-  int explain = 0;
+  std::string explain = "0";
 };
 
 void RunScore(const ScoreArgs& a) {
-  if (a.explain < 0) throw CommandError("--explain must be >= 0");
+  const int64_t explain = WholeNumberFlagIn("--explain", a.explain, 0, 1 << 20);
   Model model = LoadModel(a.model);
   FeatureFile file = ReadFeatureFile(a.input);
   const int inputs = model.input_dims();
@@ -49,7 +49,7 @@ void RunScore(const ScoreArgs& a) {
   // Without lags or rolling statistics the rows are scored as read, without a copy.
   const MatrixD& rows = model.parts().transform.identity() ? file.values : transformed;
   const std::vector<std::string> names = transform.OutputNames(file.names);
-  const int top_k = std::min(a.explain, model.dims());
+  const int top_k = static_cast<int>(std::min<int64_t>(explain, model.dims()));
   VectorD decisions, nonconformity;
   model.EvaluateBatch(rows, &decisions, &nonconformity);
 
@@ -123,6 +123,7 @@ void AddScoreCommand(CLI::App& app) {
   sub->add_option("--output", args->output, "CSV to write (default: standard output)");
   sub->add_option("--explain", args->explain,
                   "Add the K features that move the decision most (gradient shares)")
+      ->type_name("K")
       ->capture_default_str();
   sub->callback([args] { RunScore(*args); });
 }

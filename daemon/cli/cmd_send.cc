@@ -12,7 +12,6 @@
 
 #include <algorithm>
 #include <cerrno>
-#include <charconv>
 #include <chrono>
 #include <cmath>
 #include <csignal>
@@ -94,25 +93,16 @@ class StopSignals {
   struct sigaction previous_term_ {};
 };
 
-double ParseNumberFlag(const std::string& flag, const std::string& text) {
-  double value = 0;
-  const char* end = text.data() + text.size();
-  const auto [ptr, error] = std::from_chars(text.data(), end, value);
-  if (text.empty() || error != std::errc() || ptr != end || !std::isfinite(value))
-    throw CommandError(flag + ": '" + text + "' is not a number");
-  return value;
-}
-
 SendSettings ToSettings(const SendArguments& args) {
   SendSettings settings;
   settings.endpoint = args.connect;
   settings.input = args.input;
   settings.default_stream = args.stream;
-  settings.rate = ParseNumberFlag("--rate", args.rate);
+  CheckEndpoint("--connect", args.connect);
+  settings.rate = NumberFlag("--rate", args.rate);
   // Below a vector every 1000 s the schedule's arithmetic would stop meaning anything useful.
   if (settings.rate < 0 || (settings.rate > 0 && settings.rate < 1e-3))
-    throw CommandError("--rate: " + args.rate +
-                       " must be 0 (as fast as possible) or at least 0.001 vectors per second");
+    throw OutOfRange("--rate", args.rate, "0: as fast as possible, or >= 0.001 vectors per second");
   if (args.format == "json") {
     settings.format = PayloadFormat::kJson;
   } else if (args.format == "binary") {
@@ -129,21 +119,13 @@ SendSettings ToSettings(const SendArguments& args) {
   }
   if (args.dtype != "f64" && settings.format != PayloadFormat::kBinary)
     throw CommandError("--dtype only applies with --format binary");
-  const double batch = ParseNumberFlag("--batch", args.batch);
   // The protocol's default max_vectors_per_message (PROTOCOL.md §7): a larger batch would be
   // rejected by a daemon with default limits.
-  const WireLimits defaults;
-  if (batch != std::floor(batch) || batch < 1 || batch > defaults.max_vectors_per_message)
-    throw CommandError("--batch: " + args.batch + " is not a whole number in 1.." +
-                       std::to_string(defaults.max_vectors_per_message));
-  settings.batch = static_cast<int>(batch);
-  const std::optional<double> linger = ParseDuration(args.linger);
-  if (!linger || *linger > 3600)
-    throw CommandError("--linger: '" + args.linger +
-                       "' is not a duration from 0 to 1h (e.g. 0, 0.5s, 5s, 1m)");
-  settings.linger = std::chrono::milliseconds(static_cast<int64_t>(std::llround(*linger * 1000)));
+  settings.batch = static_cast<int>(
+      WholeNumberFlagIn("--batch", args.batch, 1, WireLimits{}.max_vectors_per_message));
+  const double linger = DurationFlag("--linger", args.linger, 3600);
+  settings.linger = std::chrono::milliseconds(static_cast<int64_t>(std::llround(linger * 1000)));
   settings.linger_text = args.linger;
-  if (settings.endpoint.empty()) throw CommandError("--connect: the endpoint is empty");
   return settings;
 }
 

@@ -3,12 +3,13 @@
 #include <algorithm>
 #include <array>
 #include <cerrno>
-#include <charconv>
 #include <chrono>
 #include <cmath>
 #include <csignal>
 #include <cstdio>
 #include <cstring>
+#include <filesystem>
+#include <limits>
 #include <memory>
 #include <optional>
 #include <string>
@@ -16,6 +17,7 @@
 #include <thread>
 #include <vector>
 
+#include "cli/cli_util.h"
 #include "cli/commands.h"
 #include "formats/timestamps.h"
 #include "simulator/plant_simulator.h"
@@ -34,27 +36,10 @@ struct SimulateArguments {
   std::string fault_rate = "0.5";
   std::string fault_free;
   bool live = false;
+  bool force = false;
   std::string speed = "1";
   bool speed_given = false;
 };
-
-template <typename Number>
-Number ParseWhole(const std::string& flag, const std::string& text, const char* what) {
-  Number value{};
-  const char* end = text.data() + text.size();
-  const auto [ptr, error] = std::from_chars(text.data(), end, value);
-  if (text.empty() || error != std::errc() || ptr != end)
-    throw CommandError(flag + ": '" + text + "' is not " + what);
-  return value;
-}
-
-double ParseDurationFlag(const std::string& flag, const std::string& text) {
-  const std::optional<double> seconds = ParseDuration(text);
-  if (!seconds || *seconds <= 0)
-    throw CommandError(flag + ": '" + text +
-                       "' is not a positive duration (e.g. 90s, 15m, 2h, 7d)");
-  return *seconds;
-}
 
 std::vector<std::string> ParseFaultList(const std::string& text) {
   if (text == "none") return {};
@@ -84,15 +69,16 @@ std::vector<std::string> ParseFaultList(const std::string& text) {
 
 PlantOptions ToOptions(const SimulateArguments& args) {
   PlantOptions options;
-  const int pumps = ParseWhole<int>("--pumps", args.pumps, "a whole number");
-  if (pumps < 1 || pumps > 99) throw CommandError("--pumps: " + args.pumps + " is outside 1..99");
-  options.pumps = pumps;
-  options.interval_seconds = ParseDurationFlag("--interval", args.interval);
-  options.duration_seconds = ParseDurationFlag("--duration", args.duration);
+  options.pumps = static_cast<int>(WholeNumberFlagIn("--pumps", args.pumps, 1, 99));
+  options.interval_seconds =
+      DurationFlag("--interval", args.interval, INFINITY, LowBound::kExclusive);
+  options.duration_seconds =
+      DurationFlag("--duration", args.duration, INFINITY, LowBound::kExclusive);
   if (options.duration_seconds < options.interval_seconds)
     throw CommandError("--duration " + args.duration + " is shorter than --interval " +
                        args.interval);
-  options.seed = ParseWhole<std::uint64_t>("--seed", args.seed, "a non-negative whole number");
+  options.seed = static_cast<std::uint64_t>(
+      WholeNumberFlagIn("--seed", args.seed, 0, std::numeric_limits<int64_t>::max()));
   if (args.start == "now") {
     const double now =
         std::chrono::duration<double>(std::chrono::system_clock::now().time_since_epoch()).count();
@@ -106,12 +92,10 @@ PlantOptions ToOptions(const SimulateArguments& args) {
     options.start_time = *start;
   }
   options.faults = ParseFaultList(args.faults);
-  const double rate = ParseWhole<double>("--fault-rate", args.fault_rate, "a number");
-  if (!std::isfinite(rate) || rate < 0)
-    throw CommandError("--fault-rate: " + args.fault_rate + " must be a number >= 0");
-  options.faults_per_pump_week = rate;
+  options.faults_per_pump_week = NumberFlagIn("--fault-rate", args.fault_rate, 0, INFINITY);
   if (!args.fault_free.empty())
-    options.fault_free_seconds = ParseDurationFlag("--fault-free", args.fault_free);
+    options.fault_free_seconds =
+        DurationFlag("--fault-free", args.fault_free, INFINITY, LowBound::kExclusive);
   try {
     PlantSimulator check(options);  // the library's own checks, e.g. too many ticks
   } catch (const std::invalid_argument& e) {
@@ -157,9 +141,7 @@ bool WriteToStdout(std::string_view text) {
 }
 
 void RunLive(const SimulateArguments& args, const PlantOptions& options) {
-  const double speed = ParseWhole<double>("--speed", args.speed, "a number");
-  if (!std::isfinite(speed) || speed <= 0)
-    throw CommandError("--speed: " + args.speed + " must be a positive number");
+  const double speed = NumberFlagIn("--speed", args.speed, 0, INFINITY, LowBound::kExclusive);
   PlantSimulator simulator(options);
   std::string incidents_note = "not written (no --output)";
   if (!args.output.empty()) {
@@ -211,6 +193,15 @@ void RunSimulate(const SimulateArguments& args) {
   if (!args.live && args.output.empty())
     throw CommandError("--output DIR is required (or stream to stdout with --live)");
   const PlantOptions options = ToOptions(args);
+  // A recording may be the only copy of a labelled run: replace it only when asked to.
+  if (!args.output.empty() && !args.force) {
+    for (const char* name : {"stream.csv", "incidents.csv"}) {
+      if (args.live && std::string_view(name) == "stream.csv") continue;  // not written live
+      const std::filesystem::path path = std::filesystem::path(args.output) / name;
+      if (std::filesystem::exists(path))
+        throw CommandError(path.string() + " exists; add --force to replace it");
+    }
+  }
   if (args.live) {
     RunLive(args, options);
     return;
@@ -270,6 +261,7 @@ void AddSimulateCommand(CLI::App& app) {
                    "No fault starts within this span from the start, e.g. a detector's warm-up "
                    "(default: the first 25% of the run)")
       ->type_name("DURATION");
+  command->add_flag("--force", args->force, "Replace stream.csv and incidents.csv if they exist");
   command->add_flag("--live", args->live,
                     "Stream stream.csv rows to stdout in time (one tick per interval / speed)");
   command

@@ -5,12 +5,12 @@
 
 #include <algorithm>
 #include <cerrno>
-#include <charconv>
 #include <chrono>
 #include <cmath>
 #include <csignal>
 #include <cstdio>
 #include <cstring>
+#include <limits>
 #include <memory>
 #include <nlohmann/json.hpp>
 #include <optional>
@@ -20,6 +20,7 @@
 #include <zmq.hpp>
 #include <zmq_addon.hpp>
 
+#include "cli/cli_util.h"
 #include "cli/commands.h"
 #include "formats/timestamps.h"
 
@@ -28,6 +29,9 @@ namespace {
 
 using Clock = std::chrono::steady_clock;
 using nlohmann::json;
+
+// How long tail waits for a publisher to answer before it says that none has.
+constexpr std::chrono::seconds kQuietNote{3};
 
 struct TailArguments {
   std::string connect;
@@ -71,15 +75,6 @@ class TailSignals {
   struct sigaction previous_term_ {};
   struct sigaction previous_pipe_ {};
 };
-
-int64_t ParseCount(const std::string& text) {
-  int64_t value = 0;
-  const char* end = text.data() + text.size();
-  const auto [ptr, error] = std::from_chars(text.data(), end, value);
-  if (text.empty() || error != std::errc() || ptr != end || value < 0)
-    throw CommandError("--count: '" + text + "' is not a whole number >= 0 (0: no limit)");
-  return value;
-}
 
 // The member `name` of `object` (an object), or null when it is absent.
 const json& Member(const json& object, const char* name) {
@@ -256,11 +251,10 @@ struct Tally {
 };
 
 void RunTail(const TailArguments& args) {
-  const int64_t count = ParseCount(args.count);
-  const std::optional<double> timeout = ParseDuration(args.timeout);
-  if (!timeout)
-    throw CommandError("--timeout: '" + args.timeout +
-                       "' is not a duration (e.g. 30s, 5m, 1.5h; 0: no timeout)");
+  CheckEndpoint("--connect", args.connect);
+  const int64_t count =
+      WholeNumberFlagIn("--count", args.count, 0, std::numeric_limits<int64_t>::max());
+  const double timeout = DurationFlag("--timeout", args.timeout);
   for (const std::string& stream : args.streams)
     if (stream.empty()) throw CommandError("--stream: the key is empty");
 
@@ -273,11 +267,26 @@ void RunTail(const TailArguments& args) {
   } else {
     for (const std::string& stream : args.streams) socket.set(zmq::sockopt::subscribe, stream);
   }
+  // The connection is watched: a peer that is not a PUB socket (nuwatchd's ingest PULL or control
+  // REP) fails ZeroMQ's handshake, which checks that the socket types match (ZMTP 3.1), and would
+  // otherwise leave tail waiting in silence. libzmq 4.3 reports that as a connection closed before
+  // its handshake succeeded (CONNECTED, then DISCONNECTED), or as a failed handshake.
+  zmq::socket_t monitor(context, zmq::socket_type::pair);
+  const std::string monitor_endpoint = "inproc://tail-monitor";
+  if (zmq_socket_monitor(socket.handle(), monitor_endpoint.c_str(),
+                         ZMQ_EVENT_CONNECTED | ZMQ_EVENT_DISCONNECTED |
+                             ZMQ_EVENT_HANDSHAKE_SUCCEEDED | ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL |
+                             ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL) != 0)
+    throw CommandError(std::string("cannot watch the connection: ") + zmq_strerror(zmq_errno()));
+  monitor.connect(monitor_endpoint);
   try {
     socket.connect(args.connect);
   } catch (const zmq::error_t& e) {
     throw CommandError("--connect: cannot connect to '" + args.connect + "': " + e.what());
   }
+  bool handshake_done = false;     // a publisher answered at least once
+  bool handshake_pending = false;  // connected, handshake not finished yet
+  bool told_quiet = false;
 
   TailSignals signals;
   Printer printer(args.json_output, args.anomalies_only);
@@ -286,14 +295,14 @@ void RunTail(const TailArguments& args) {
   bool open = true;
   if (terminal && !args.json_output) open = WriteLine(printer.Header());
   const auto started = Clock::now();
-  const auto deadline = started + std::chrono::duration_cast<Clock::duration>(
-                                      std::chrono::duration<double>(*timeout));
+  const auto deadline =
+      started + std::chrono::duration_cast<Clock::duration>(std::chrono::duration<double>(timeout));
   bool timed_out = false;
   std::vector<zmq::message_t> frames;
   std::string line;
   while (open && !stop_requested && (count == 0 || tally.printed < count)) {
     auto wait = std::chrono::milliseconds(200);
-    if (*timeout > 0) {
+    if (timeout > 0) {
       const auto now = Clock::now();
       if (now >= deadline) {
         timed_out = true;
@@ -302,9 +311,36 @@ void RunTail(const TailArguments& args) {
       wait = std::min(wait, std::chrono::duration_cast<std::chrono::milliseconds>(deadline - now) +
                                 std::chrono::milliseconds(1));
     }
+    if (!handshake_done && !told_quiet && Clock::now() - started > kQuietNote) {
+      std::fprintf(stderr,
+                   "nuwatch tail: no publisher has answered at %s yet; still waiting (is nuwatchd "
+                   "running, and is this its publish socket, publish.endpoint?)\n",
+                   args.connect.c_str());
+      told_quiet = true;
+    }
     try {
-      zmq::pollitem_t item{socket.handle(), 0, ZMQ_POLLIN, 0};
-      if (zmq::poll(&item, 1, wait) == 0) continue;
+      zmq::pollitem_t items[] = {{socket.handle(), 0, ZMQ_POLLIN, 0},
+                                 {monitor.handle(), 0, ZMQ_POLLIN, 0}};
+      if (zmq::poll(items, 2, wait) == 0) continue;
+      if (items[1].revents & ZMQ_POLLIN) {
+        std::vector<zmq::message_t> event;
+        (void)zmq::recv_multipart(monitor, std::back_inserter(event));
+        uint16_t id = 0;
+        if (!event.empty() && event[0].size() >= sizeof id)
+          std::memcpy(&id, event[0].data(), sizeof id);
+        if (id == ZMQ_EVENT_CONNECTED) handshake_pending = true;
+        if (id == ZMQ_EVENT_HANDSHAKE_SUCCEEDED) {
+          handshake_done = true;
+          handshake_pending = false;
+        }
+        if ((id == ZMQ_EVENT_DISCONNECTED && handshake_pending) ||
+            id == ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL || id == ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL)
+          throw CommandError(args.connect +
+                             " is not a PUB socket: it refused the subscription (tail reads "
+                             "nuwatchd's publish socket, publish.endpoint; the ingest and control "
+                             "sockets never publish)");
+      }
+      if (!(items[0].revents & ZMQ_POLLIN)) continue;
       frames.clear();
       if (!zmq::recv_multipart(socket, std::back_inserter(frames), zmq::recv_flags::dontwait))
         continue;
@@ -363,7 +399,8 @@ void AddTailCommand(CLI::App& app) {
       ->type_name("ENDPOINT")
       ->required();
   command->add_option("--stream", args->streams, "Only this stream (repeat for several)")
-      ->type_name("KEY");
+      ->type_name("KEY")
+      ->multi_option_policy(CLI::MultiOptionPolicy::TakeAll);
   command->add_flag("--anomalies-only", args->anomalies_only,
                     "Only flagged results and incident events");
   command

@@ -87,17 +87,6 @@ std::string Rounded(const std::optional<double>& value) {
 
 bool Given(const TuneArguments& a, const char* flag) { return a.command->count(flag) > 0; }
 
-int64_t ParseWhole(const std::string& flag, const std::string& text, int64_t minimum) {
-  int64_t value = 0;
-  const char* end = text.data() + text.size();
-  const auto [ptr, error] = std::from_chars(text.data(), end, value);
-  if (text.empty() || error != std::errc() || ptr != end || value < minimum) {
-    throw CommandError(flag + ": '" + text +
-                       "' is not a whole number >= " + std::to_string(minimum));
-  }
-  return value;
-}
-
 template <typename Parse>
 auto ParseList(const std::string& flag, const std::string& text, Parse parse) {
   try {
@@ -140,20 +129,12 @@ TuningOptions ParseOptions(const TuneArguments& a) {
   }
   options.alarms = *alarms;
   if (Given(a, "--max-false-alarms-per-day")) {
-    const std::optional<double> limit = ParseFiniteNumber(a.max_false_alarms);
-    if (!limit || *limit < 0) {
-      throw CommandError("--max-false-alarms-per-day: '" + a.max_false_alarms +
-                         "' is not a number >= 0");
-    }
-    options.max_false_alarms_per_day = *limit;
+    options.max_false_alarms_per_day =
+        NumberFlagIn("--max-false-alarms-per-day", a.max_false_alarms, 0, INFINITY);
   }
-  const std::optional<double> grace = ParseDuration(a.grace);
-  if (!grace) {
-    throw CommandError("--grace: '" + a.grace + "' is not a duration (e.g. 90, 90s, 15m, 2h, 1d)");
-  }
-  options.evaluation.grace_seconds = *grace;
+  options.evaluation.grace_seconds = DurationFlag("--grace", a.grace);
   if (Given(a, "--jobs")) {
-    options.jobs = static_cast<int>(std::min<int64_t>(ParseWhole("--jobs", a.jobs, 1), 1024));
+    options.jobs = static_cast<int>(WholeNumberFlagIn("--jobs", a.jobs, 1, 1024));
   } else {
     options.jobs = static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
   }

@@ -1,5 +1,7 @@
 #include "cli/detector_flags.h"
 
+#include <algorithm>
+
 #include "cli/commands.h"
 #include "settings/setting_text.h"
 
@@ -52,6 +54,26 @@ void DetectorKeyFlags::ApplyTo(DetectorOptions& options) const {
   }
 }
 
+void DetectorKeyFlags::Validate(const DetectorOptions& options, const Origin& origin) const {
+  const auto name = [this](std::string_view, std::string_view key) {
+    return Given(key) ? FlagName(key) : std::string(key);
+  };
+  const std::optional<SettingViolation> violation = FindDetectorViolation(options, name);
+  if (!violation) return;
+  std::string notes;
+  for (const std::string& key : violation->keys) {
+    if (Given(key)) continue;
+    const auto setting =
+        std::find_if(DetectorKeys().begin(), DetectorKeys().end(),
+                     [&](const Setting<DetectorOptions>& s) { return s.name == key; });
+    if (setting == DetectorKeys().end()) continue;
+    const bool is_flag = flags_.count(key) > 0;
+    notes += std::string(notes.empty() ? "" : "; ") + key + " = " + SettingText(*setting, options) +
+             " is " + origin(key) + (is_flag ? ": set it with " + FlagName(key) : "");
+  }
+  throw CommandError(violation->message + (notes.empty() ? "" : " (" + notes + ")"));
+}
+
 void DetectorFlags::AddTo(CLI::App* sub, const DetectorKeyFlags::Select& select) {
   AddLastWinsOption(
       sub, "--config", config_path,
@@ -70,11 +92,9 @@ Config DetectorFlags::Resolve(bool validate) const {
   }
   keys.ApplyTo(config.detector);
   if (validate) {
-    try {
-      ValidateDetectorOptions(config.detector, "");
-    } catch (const std::exception& e) {
-      throw CommandError(e.what());
-    }
+    const std::string origin =
+        config_path.empty() ? "the built-in default" : "from " + config_path + " (or its default)";
+    keys.Validate(config.detector, [&](std::string_view) { return origin; });
   }
   for (auto& override_table : config.overrides) keys.ApplyTo(override_table.values);
   return config;

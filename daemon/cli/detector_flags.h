@@ -38,6 +38,14 @@ class DetectorKeyFlags {
   // value that is not of the key's type (ranges are the table's checks, done on the result).
   void ApplyTo(DetectorOptions& options) const;
 
+  // Throws CommandError for the first rule of the key table `options` breaks, naming a key given
+  // on the command line as its flag ("--window = 10") and telling, for a key that was not given,
+  // where its value came from (`origin(key)`, e.g. "the built-in default") and which flag sets
+  // it: "warmup = 500 must not exceed --window = 10 (warmup = 500 is the built-in default: set
+  // it with --warmup)".
+  using Origin = std::function<std::string(std::string_view key)>;
+  void Validate(const DetectorOptions& options, const Origin& origin) const;
+
  private:
   struct Flag {
     const Setting<DetectorOptions>* setting;

@@ -6,6 +6,7 @@
 #include <exception>
 #include <iostream>
 
+#include "cli/cli_util.h"
 #include "cli/commands.h"
 #include "nuwatch/types.h"
 
@@ -33,10 +34,19 @@ int main(int argc, char** argv) {
       "falls outside it"};
   app.require_subcommand(1);
   app.set_version_flag("--version", NUWATCH_VERSION);
+  // Every flag given twice takes its last value, as most command lines do (subcommands inherit
+  // this default; a repeatable flag such as tail's --stream says so itself).
+  app.option_defaults()->multi_option_policy(CLI::MultiOptionPolicy::TakeLast);
   auto commands = nuwatch::cli::RegisteredCommands();
   std::sort(commands.begin(), commands.end(),
             [](const auto& a, const auto& b) { return a.order < b.order; });
   for (const auto& command : commands) command.adder(app);
+  try {
+    nuwatch::cli::CheckUnknownFlags(app, argc, argv);
+  } catch (const std::exception& e) {
+    std::cerr << "nuwatch " << argv[1] << ": " << e.what() << "\n";
+    return 1;
+  }
   try {
     app.parse(argc, argv);
   } catch (const CLI::CallForHelp& e) {

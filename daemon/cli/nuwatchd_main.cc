@@ -83,6 +83,34 @@ int main(int argc, char** argv) {
   if (state_flag->count() > 0) overrides.state_dir = state_dir;
   if (level_flag->count() > 0) overrides.log_level = log_level;
 
+  // A flag's value is reported under the flag the user typed ("--log-level verbose: ..."), not
+  // only under the config key it replaces. The endpoints' syntax is checked here; the rules
+  // between keys (an endpoint bound twice) need the whole configuration and come after.
+  const auto check_endpoint = [](const std::string& flag, const std::string& value) {
+    const std::string problem = nuwatch::EndpointSyntaxProblem(value);
+    if (!problem.empty()) throw nuwatch::ConfigError(flag + ": " + problem);
+  };
+  try {
+    for (const std::string& e : ingest) check_endpoint("--ingest", e);
+    for (const std::string& e : subscribe) check_endpoint("--subscribe", e);
+    if (publish_flag->count() > 0) check_endpoint("--publish", publish);
+    if (control_flag->count() > 0) check_endpoint("--control", control);
+    if (level_flag->count() > 0) {
+      nuwatch::CommandLineOverrides level;
+      level.log_level = log_level;
+      nuwatch::DaemonSettings probe = nuwatch::DefaultConfig().daemon;
+      nuwatch::ApplyOverrides(level, &probe);
+      try {
+        nuwatch::ValidateDaemonSettings(probe, "");
+      } catch (const nuwatch::ConfigError& e) {
+        throw nuwatch::ConfigError("--log-level " + log_level + ": " + e.what());
+      }
+    }
+  } catch (const nuwatch::ConfigError& e) {
+    std::cerr << "nuwatchd: " << OneLine(e.what()) << "\n";
+    return 2;
+  }
+
   nuwatch::DaemonOptions options;
   try {
     options.config =

@@ -68,13 +68,14 @@ std::string HandleControlRequest(std::string_view request, ControlCommands& comm
       if (!outcome.ok) return ControlErrorReply(outcome.error);
       return Dump({{"ok", true}, {"written", outcome.written}, {"pending", outcome.pending}});
     }
-    if (command == "relearn") {
+    if (command == "relearn" || command == "forget") {
       const auto stream_it = parsed.find("stream");
       if (stream_it == parsed.end() || !stream_it->is_string()) {
-        return ControlErrorReply("relearn needs a string member \"stream\"");
+        return ControlErrorReply(command + " needs a string member \"stream\"");
       }
       const std::string stream = stream_it->get<std::string>();
-      if (const auto error = commands.Relearn(stream)) return ControlErrorReply(*error);
+      const auto error = command == "relearn" ? commands.Relearn(stream) : commands.Forget(stream);
+      if (error) return ControlErrorReply(*error);
       return Dump({{"ok", true}, {"stream", stream}});
     }
     if (command == "reload") {
@@ -89,7 +90,7 @@ std::string HandleControlRequest(std::string_view request, ControlCommands& comm
     return ControlErrorReply("command '" + command + "' failed: " + e.what());
   }
   return ControlErrorReply("unknown command '" + command +
-                           "' (known: status, snapshot, relearn, reload)");
+                           "' (known: status, snapshot, relearn, reload, forget)");
 }
 
 }  // namespace nuwatch

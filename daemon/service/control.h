@@ -52,11 +52,14 @@ class ControlCommands {
   // nullopt when done; else the error (e.g. unknown stream).
   virtual std::optional<std::string> Relearn(const std::string& stream) = 0;
   virtual ReloadOutcome Reload() = 0;
+  // Stops tracking the stream: its model, window, metric series and state file go; its next
+  // vector starts it afresh. nullopt when done; else the error (e.g. unknown stream).
+  virtual std::optional<std::string> Forget(const std::string& stream) = 0;
 };
 
 // Ensures: a one-line JSON object. {"ok":false,"error":"..."} for anything that is not a JSON
-// object with a known string "command" (and, for relearn, a string "stream"); never throws except
-// std::bad_alloc. Exceptions from `commands` become {"ok":false,...} too.
+// object with a known string "command" (and, for relearn and forget, a string "stream"); never
+// throws except std::bad_alloc. Exceptions from `commands` become {"ok":false,...} too.
 std::string HandleControlRequest(std::string_view request, ControlCommands& commands,
                                  std::string_view version);
 

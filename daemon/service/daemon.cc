@@ -19,6 +19,7 @@
 #include <chrono>
 #include <csignal>
 #include <cstring>
+#include <filesystem>
 #include <future>
 #include <nlohmann/json.hpp>
 #include <thread>
@@ -176,6 +177,7 @@ struct Daemon::Impl final : ControlCommands {
   SnapshotOutcome Snapshot() override;
   std::optional<std::string> Relearn(const std::string& stream) override;
   ReloadOutcome Reload() override;
+  std::optional<std::string> Forget(const std::string& stream) override;
 
   DaemonOptions options;
   Config config;  // in force
@@ -929,6 +931,32 @@ std::optional<std::string> Daemon::Impl::Relearn(const std::string& key) {
       "relearn: stream={} dropped its model and window; it learns from the next {} "
       "vectors",
       key, EffectiveWarmup(s->options));
+  return std::nullopt;
+}
+
+std::optional<std::string> Daemon::Impl::Forget(const std::string& key) {
+  Stream* s = streams.Find(key);
+  if (s == nullptr) return "unknown stream '" + key + "'";
+  // No state write of the stream may be queued or running (it holds a reference to it), and its
+  // refit in flight must have finished and reported back (its listener and callback use the
+  // stream) before the stream goes; its report is then dropped from the list the socket thread
+  // reads. Like a snapshot, this holds up scoring for as long as that refit takes.
+  WaitForStateWrites();
+  std::unique_ptr<Stream> removed = streams.Remove(key);
+  while (!removed->executor.settled()) std::this_thread::sleep_for(std::chrono::milliseconds(1));
+  {
+    MutexLock lock(&finished_mutex);
+    std::erase(finished_refits, removed.get());
+  }
+  removed.reset();  // removes its metric series and closes its recording
+  metrics.streams().Set(static_cast<double>(streams.size()));
+  if (store) {
+    std::error_code error;
+    std::filesystem::remove(store->PathFor(key), error);
+    if (error)
+      return "stream '" + key + "' forgotten, but its state file stays: " + error.message();
+  }
+  spdlog::info("forget: stream={} dropped with its state; its next vector starts it afresh", key);
   return std::nullopt;
 }
 

@@ -19,6 +19,7 @@ void TrackedRefitExecutor::Post(std::function<void()> job) {
     job();
     finished_.fetch_add(1, std::memory_order_release);
     if (on_finished_) on_finished_();
+    settled_.fetch_add(1, std::memory_order_release);  // the last use of `this`
   });
 }
 

@@ -47,6 +47,9 @@ class TrackedRefitExecutor : public RefitExecutor {
   void Post(std::function<void()> job) override;
   // No job of this stream is queued or running.
   bool idle() const { return posted_ == finished_.load(std::memory_order_acquire); }
+  // Every job posted has returned and so has its `on_finished`: nothing of this object is in use
+  // on a pool thread any more, so it may be destroyed.
+  bool settled() const { return posted_ == settled_.load(std::memory_order_acquire); }
   int64_t posted() const { return posted_; }
 
  private:
@@ -54,6 +57,7 @@ class TrackedRefitExecutor : public RefitExecutor {
   std::function<void()> on_finished_;
   int64_t posted_ = 0;  // owner thread only
   std::atomic<int64_t> finished_{0};
+  std::atomic<int64_t> settled_{0};  // jobs whose on_finished has returned too
 };
 
 }  // namespace nuwatch

@@ -79,6 +79,14 @@ Stream* StreamRegistry::Add(std::unique_ptr<Stream> stream) {
   return raw;
 }
 
+std::unique_ptr<Stream> StreamRegistry::Remove(std::string_view key) {
+  const auto it = streams_.find(key);
+  if (it == streams_.end()) return nullptr;
+  std::unique_ptr<Stream> stream = std::move(it->second);
+  streams_.erase(it);
+  return stream;
+}
+
 std::vector<Stream*> StreamRegistry::Sorted() const {
   std::vector<Stream*> out;
   out.reserve(streams_.size());

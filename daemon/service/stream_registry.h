@@ -93,6 +93,9 @@ class StreamRegistry {
   Stream* Find(std::string_view key) const;
   // Requires: no stream with the same key. Returns the stored stream.
   Stream* Add(std::unique_ptr<Stream> stream);
+  // Takes the stream out of the registry (nullptr for an unknown key); destroying the result waits
+  // for its refit in flight.
+  std::unique_ptr<Stream> Remove(std::string_view key);
   std::size_t size() const { return streams_.size(); }
   // Every stream, sorted by key.
   std::vector<Stream*> Sorted() const;

@@ -25,6 +25,8 @@
 #include <type_traits>
 #include <variant>
 
+#include "settings/setting_text.h"
+
 namespace nuwatch {
 namespace {
 
@@ -285,46 +287,6 @@ void CopyMember(const Member<T>& member, const T& from, T& to) {
 // ---------------------------------------------------------------------------------------------
 // Suggestions for misspelt keys.
 
-// Optimal string alignment distance: Levenshtein plus transposition of adjacent characters, so
-// that "refit_evrey" is one edit from "refit_every".
-std::size_t EditDistance(std::string_view a, std::string_view b) {
-  const std::size_t n = a.size(), m = b.size();
-  std::vector<std::vector<std::size_t>> d(n + 1, std::vector<std::size_t>(m + 1));
-  for (std::size_t i = 0; i <= n; ++i) d[i][0] = i;
-  for (std::size_t j = 0; j <= m; ++j) d[0][j] = j;
-  for (std::size_t i = 1; i <= n; ++i) {
-    for (std::size_t j = 1; j <= m; ++j) {
-      const std::size_t cost = a[i - 1] == b[j - 1] ? 0 : 1;
-      d[i][j] = std::min({d[i - 1][j] + 1, d[i][j - 1] + 1, d[i - 1][j - 1] + cost});
-      if (i > 1 && j > 1 && a[i - 1] == b[j - 2] && a[i - 2] == b[j - 1]) {
-        d[i][j] = std::min(d[i][j], d[i - 2][j - 2] + 1);
-      }
-    }
-  }
-  return d[n][m];
-}
-
-// The closest candidate within max(2, len/3) edits of `typed` (compared in lower case), and only
-// if it shares something with it (distance below the candidate's length): no suggestion beats a
-// wild one.
-std::optional<std::string_view> ClosestKey(std::string_view typed,
-                                           const std::vector<std::string_view>& candidates) {
-  std::string lowered(typed);
-  for (char& c : lowered) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
-  std::optional<std::string_view> best;
-  std::size_t best_distance = std::numeric_limits<std::size_t>::max();
-  for (const std::string_view candidate : candidates) {
-    const std::size_t distance = EditDistance(lowered, candidate);
-    if (distance < best_distance) {
-      best = candidate;
-      best_distance = distance;
-    }
-  }
-  const std::size_t limit = std::max<std::size_t>(2, typed.size() / 3);
-  if (best && best_distance <= limit && best_distance < best->size()) return best;
-  return std::nullopt;
-}
-
 // ---------------------------------------------------------------------------------------------
 // Reading nodes.
 
@@ -508,7 +470,7 @@ using KeyPositions = std::map<std::string, toml::source_region, std::less<>>;
     message = "key '" + std::string(table) + "." + typed + "' is not a known key";
   }
   std::string hint;
-  if (const auto close = ClosestKey(typed, valid)) {
+  if (const auto close = ClosestName(typed, valid)) {
     hint = "did you mean '" + std::string(*close) + "'?";
   } else {
     // The right key in the wrong section: name the section it belongs to.
@@ -882,6 +844,17 @@ DetectorOptions DetectorOptionsFor(const Config& config, std::string_view stream
     ApplyOverride(*override_table, options);
   }
   return options;
+}
+
+std::string EndpointSyntaxProblem(std::string_view endpoint) {
+  if (endpoint.empty()) return "the endpoint is empty";
+  if (LooksLikeEndpoint(endpoint)) return "";
+  const bool host_and_port = endpoint.find("://") == std::string_view::npos &&
+                             endpoint.find(':') != std::string_view::npos;
+  return Quote(std::string(endpoint)) + " is not a ZeroMQ endpoint" +
+         (host_and_port ? "; write tcp://" + std::string(endpoint)
+                        : " (TRANSPORT://ADDRESS, e.g. tcp://127.0.0.1:7601 or "
+                          "ipc:///run/nuwatch/ingest)");
 }
 
 void ValidateDetectorOptions(const DetectorOptions& options, const std::string& where) {

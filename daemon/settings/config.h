@@ -105,6 +105,11 @@ void ValidateDetectorOptions(const DetectorOptions& options, const std::string& 
 // The same for the daemon settings (for nuwatchd after command-line flags replaced some of them).
 void ValidateDaemonSettings(const DaemonSettings& settings, const std::string& where);
 
+// "" when `endpoint` is of the form TRANSPORT://ADDRESS (lower-case transport; ZeroMQ checks the
+// address itself); else what is wrong, with a hint: "'127.0.0.1:7601' is not a ZeroMQ endpoint;
+// write tcp://127.0.0.1:7601". For the flags that take an endpoint.
+std::string EndpointSyntaxProblem(std::string_view endpoint);
+
 // A [detector] section with every key, which ParseConfig reads back to the same options (numbers
 // are written with round-trip precision). Used for `nuwatch tune`'s best.toml.
 std::string DescribeDetectorOptions(const DetectorOptions& options);

@@ -1,5 +1,7 @@
 #include "settings/setting_text.h"
 
+#include <algorithm>
+#include <cctype>
 #include <charconv>
 #include <limits>
 
@@ -149,6 +151,47 @@ std::optional<std::string> ParseValueText(std::string_view text, GammaSpec& out)
   const auto parsed = GammaSpec::Parse(TrimBlanks(text));
   if (!parsed) return Shown(text) + " is not scale, median or a number > 0";
   out = *parsed;
+  return std::nullopt;
+}
+
+// Optimal string alignment distance: Levenshtein plus transposition of adjacent characters, so
+// that "refit_evrey" is one edit from "refit_every".
+namespace {
+
+std::size_t EditDistance(std::string_view a, std::string_view b) {
+  const std::size_t n = a.size(), m = b.size();
+  std::vector<std::vector<std::size_t>> d(n + 1, std::vector<std::size_t>(m + 1));
+  for (std::size_t i = 0; i <= n; ++i) d[i][0] = i;
+  for (std::size_t j = 0; j <= m; ++j) d[0][j] = j;
+  for (std::size_t i = 1; i <= n; ++i) {
+    for (std::size_t j = 1; j <= m; ++j) {
+      const std::size_t cost = a[i - 1] == b[j - 1] ? 0 : 1;
+      d[i][j] = std::min({d[i - 1][j] + 1, d[i][j - 1] + 1, d[i - 1][j - 1] + cost});
+      if (i > 1 && j > 1 && a[i - 1] == b[j - 2] && a[i - 2] == b[j - 1]) {
+        d[i][j] = std::min(d[i][j], d[i - 2][j - 2] + 1);
+      }
+    }
+  }
+  return d[n][m];
+}
+
+}  // namespace
+
+std::optional<std::string_view> ClosestName(std::string_view typed,
+                                            const std::vector<std::string_view>& candidates) {
+  std::string lowered(typed);
+  for (char& c : lowered) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
+  std::optional<std::string_view> best;
+  std::size_t best_distance = std::numeric_limits<std::size_t>::max();
+  for (const std::string_view candidate : candidates) {
+    const std::size_t distance = EditDistance(lowered, candidate);
+    if (distance < best_distance) {
+      best = candidate;
+      best_distance = distance;
+    }
+  }
+  const std::size_t limit = std::max<std::size_t>(2, typed.size() / 3);
+  if (best && best_distance <= limit && best_distance < best->size()) return best;
   return std::nullopt;
 }
 

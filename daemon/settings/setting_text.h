@@ -104,4 +104,11 @@ std::string SettingTypeName(const Setting<S>& setting) {
       setting.member);
 }
 
+// The candidate closest to `typed` (optimal string alignment distance, compared in lower case)
+// within max(2, len/3) edits, and only if it shares something with it (distance below the
+// candidate's length): no suggestion beats a wild one. For "did you mean" hints: config keys,
+// command-line flags.
+std::optional<std::string_view> ClosestName(std::string_view typed,
+                                            const std::vector<std::string_view>& candidates);
+
 }  // namespace nuwatch
