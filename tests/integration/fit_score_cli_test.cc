@@ -211,7 +211,7 @@ TEST_F(FitScoreCli, BadInputsGiveOneLineNamingFileAndLine) {
            {"--gamma 0", "--gamma: '0' is not scale, median or a number > 0"},
            {"--gamma -2", "--gamma: '-2'"},
            {"--kernel sigmoid", "--kernel: 'sigmoid' is not one of rbf, linear, poly"},
-           {"--cache-bytes 100", "cache_bytes = 100 must be at least 1048576"},
+           {"--cache-bytes 100", "--cache-bytes = 100 must be at least 1048576"},
            {"--tolerance 0", "tolerance = 0 must be positive"},
            {"--nu abc", "--nu: 'abc' is not a number"},
            // Regression: the flags had names of their own; they are the keys' now.

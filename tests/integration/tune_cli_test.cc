@@ -261,7 +261,7 @@ TEST_F(TuneCliTest, RejectsBadInputWithOneLine) {
   expect_error(Tune(report, "--objective precision"),
                "--objective: 'precision' is not one of: f1, range-f1, recall");
   expect_error(Tune(report, "--alarm-kind all"), "--alarm-kind: 'all' is not one of");
-  expect_error(Tune(report, "--jobs 0"), "--jobs: '0'");
+  expect_error(Tune(report, "--jobs 0"), "--jobs: 0 is out of range (1..1024)");
   expect_error(Tune(report, "--max-false-alarms-per-day lots"), "--max-false-alarms-per-day");
   expect_error(
       "tune --input " + Dir() + "/missing.csv --incidents " + Incidents() + " --report " + report,
