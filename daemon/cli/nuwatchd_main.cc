@@ -3,9 +3,10 @@
 // state across restarts (daemon/service/daemon.h, daemon/protocol/PROTOCOL.md,
 // config/REFERENCE.md).
 //
-// Exit status: 0 after SIGTERM or SIGINT (state written); 2 for a configuration or command-line
-// error (one line on stderr); 1 when the daemon cannot start (a socket or the metrics endpoint
-// cannot be bound, the state directory cannot be created) or fails.
+// Exit status: 0 after SIGTERM or SIGINT (queued input taken, every state file written); 2 for a
+// configuration or command-line error, or a state directory another nuwatchd holds (one line on
+// stderr); 1 when the daemon cannot start (a socket or the metrics endpoint cannot be bound, the
+// state directory cannot be created), stops on a fatal error, or a final state write failed.
 #include <pthread.h>
 #include <spdlog/sinks/stdout_sinks.h>
 #include <spdlog/spdlog.h>
@@ -144,7 +145,11 @@ int main(int argc, char** argv) {
     nuwatch::Daemon daemon(std::move(options));
     daemon.Start();
     daemon.Wait();
+    if (daemon.failed()) return 1;  // logged: a fatal error, or a final state write failed
   } catch (const nuwatch::ConfigError& e) {
+    std::cerr << "nuwatchd: " << OneLine(e.what()) << "\n";
+    return 2;
+  } catch (const nuwatch::StateDirInUseError& e) {
     std::cerr << "nuwatchd: " << OneLine(e.what()) << "\n";
     return 2;
   } catch (const std::exception& e) {

@@ -35,7 +35,8 @@ json StatusJson(const std::vector<StreamStatus>& streams, std::string_view versi
          {"refits", s.refits},
          {"incident", incident},
          {"memory_bytes", s.memory_bytes},
-         {"snapshot_vectors", s.snapshot_vectors < 0 ? json(nullptr) : json(s.snapshot_vectors)}});
+         {"snapshot_vectors", s.snapshot_vectors < 0 ? json(nullptr) : json(s.snapshot_vectors)},
+         {"snapshot_error", s.snapshot_error.empty() ? json(nullptr) : json(s.snapshot_error)}});
   }
   return {{"ok", true}, {"version", std::string(version)}, {"streams", list}};
 }
@@ -65,6 +66,13 @@ std::string HandleControlRequest(std::string_view request, ControlCommands& comm
     if (command == "status") return Dump(StatusJson(commands.Status(), version));
     if (command == "snapshot") {
       const SnapshotOutcome outcome = commands.Snapshot();
+      if (!outcome.ok && !outcome.failed.empty()) {
+        return Dump({{"ok", false},
+                     {"error", outcome.error},
+                     {"written", outcome.written},
+                     {"pending", outcome.pending},
+                     {"failed", outcome.failed}});
+      }
       if (!outcome.ok) return ControlErrorReply(outcome.error);
       return Dump({{"ok", true}, {"written", outcome.written}, {"pending", outcome.pending}});
     }

@@ -26,7 +26,8 @@ struct StreamStatus {
   int64_t refits = 0;  // refits started
   std::optional<TrackedIncident> incident;
   std::size_t memory_bytes = 0;
-  int64_t snapshot_vectors = -1;  // vectors count at the last snapshot taken; -1: none
+  int64_t snapshot_vectors = -1;  // the vectors count the state file holds; -1: none
+  std::string snapshot_error;     // why the last state write failed; "" when it succeeded
 };
 
 struct ControlOutcome {
@@ -35,8 +36,9 @@ struct ControlOutcome {
 };
 
 struct SnapshotOutcome : ControlOutcome {
-  int64_t written = 0;  // streams written
-  int64_t pending = 0;  // streams with a refit running, written when it finishes
+  int64_t written = 0;              // streams written (fsynced and renamed)
+  int64_t pending = 0;              // streams with a refit running, written when it finishes
+  std::vector<std::string> failed;  // streams whose write failed (then !ok, error names them)
 };
 
 struct ReloadOutcome : ControlOutcome {

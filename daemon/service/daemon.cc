@@ -77,6 +77,11 @@ constexpr std::size_t kControlMaxBytes = 1 << 20;
 constexpr int kPublishLingerMs = 200;
 constexpr double kFlushIntervalSeconds = 1.0;
 constexpr int kTopFeatures = 3;
+// At a stop, the ingest sockets are read until they have been quiet this long (what ZeroMQ has
+// queued comes in at once; a sender's last messages may still be crossing the kernel), for at
+// most kDrainSeconds.
+constexpr std::chrono::milliseconds kDrainQuiet{300};
+constexpr std::chrono::seconds kDrainSeconds{30};
 
 void NameThisThread(const char* name) { pthread_setname_np(pthread_self(), name); }
 
@@ -150,6 +155,8 @@ struct Daemon::Impl final : ControlCommands {
   void Start();
   void RunSocketThread();
   void Loop();
+  // Takes the input ZeroMQ has already queued on the ingest sockets (scored and published).
+  void DrainIngest();
   void Shutdown();
   void Wake();
   void StartTimer(boost::asio::steady_timer& timer, double seconds, std::atomic<bool>& flag);
@@ -168,8 +175,14 @@ struct Daemon::Impl final : ControlCommands {
   void HandleFinishedRefits() EXCLUDES(finished_mutex);
   void PeriodicSnapshot();
   void FlushRecordings();
-  bool TrySnapshot(Stream& stream, bool force);
+  // Why a snapshot is taken: a periodic or refit-driven one skips an unchanged stream and waits
+  // for a failing stream's backoff; a request writes every stream now; the final one at shutdown
+  // writes every changed or failing stream without waiting.
+  enum class SnapshotKind { kPeriodic, kRequest, kFinal };
+  bool TrySnapshot(Stream& stream, SnapshotKind kind);
   void WaitForStateWrites();
+  void HandleFinishedWrites() EXCLUDES(writes_mutex);
+  void RetryFailedWrites();
   void HandleControl();
 
   // ControlCommands (socket thread).
@@ -196,6 +209,7 @@ struct Daemon::Impl final : ControlCommands {
 
   RefitPool pool;
   std::optional<StateStore> store;
+  StateDirLock state_lock;  // held while the daemon lives
   StreamRegistry streams;
   int64_t restored_streams = 0;
 
@@ -216,11 +230,29 @@ struct Daemon::Impl final : ControlCommands {
   std::atomic<bool> snapshot_due{false};
   std::atomic<bool> flush_due{false};
   std::atomic<int> stop_signals{0};
+  // A fatal error stopped the daemon (the socket thread's loop, or the io thread's work).
+  std::atomic<bool> fatal_error{false};
+  bool final_write_failed = false;  // socket thread; read after it has been joined
+  int64_t received_messages = 0;    // socket thread: ingest messages taken, for the stop's log
 
   // Refit threads report finished refits here; the socket thread takes them (HandleFinishedRefits).
   Mutex finished_mutex;
   std::vector<Stream*> finished_refits GUARDED_BY(finished_mutex);
   std::vector<Stream*> finished_work;  // socket thread: swapped with finished_refits
+
+  // The io thread reports each state write's outcome here; the socket thread takes them
+  // (HandleFinishedWrites), so that a stream's snapshot bookkeeping has one owner.
+  struct FinishedWrite {
+    Stream* stream = nullptr;
+    int64_t vectors = 0;         // what the file holds if the write succeeded
+    uint64_t model_version = 0;  // likewise
+    std::string error;           // "" when the file was written, fsynced and renamed
+  };
+  Mutex writes_mutex;
+  std::vector<FinishedWrite> finished_writes GUARDED_BY(writes_mutex);
+  std::vector<FinishedWrite> finished_write_work;  // socket thread
+  // The earliest moment a failed write is due again; none while no write has failed.
+  std::optional<Clock::time_point> next_write_retry;
 
   // Hot-path buffers, reused so that steady-state processing does not allocate.
   zmq::message_t key_message;
@@ -247,11 +279,24 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
   }
   wake_fd = ::eventfd(0, EFD_NONBLOCK | EFD_CLOEXEC);
   if (wake_fd < 0) throw DaemonError(std::string("eventfd failed: ") + std::strerror(errno));
-  BindSockets();
-  StartExposer();
+  // The state directory first: a second daemon on it is refused before it binds anything.
   if (!config.daemon.state_dir.empty()) {
+    long holder = 0;
     try {
       store.emplace(config.daemon.state_dir);
+      if (!state_lock.TryLock(store->dir(), &holder)) {
+        throw StateDirInUseError("state.dir " + store->dir() + " is in use by another nuwatchd" +
+                                 (holder > 0 ? " (pid " + std::to_string(holder) + ")" : "") +
+                                 "; stop it first, or give this one another --state-dir");
+      }
+    } catch (const StateFileError& e) {
+      throw DaemonError(e.what());
+    }
+  }
+  BindSockets();
+  StartExposer();
+  if (store) {
+    try {
       RestoreStreams();
     } catch (const StateFileError& e) {
       throw DaemonError(e.what());
@@ -475,7 +520,19 @@ void Daemon::Impl::Start() {
       sigaddset(&set, SIGHUP);
       pthread_sigmask(SIG_UNBLOCK, &set, nullptr);
     }
-    io.run();
+    // A handler that throws (a bug: every expected failure is caught where it happens) stops
+    // the daemon with a failure status; the loop goes on so that the final writes still run.
+    while (true) {
+      try {
+        io.run();
+        break;
+      } catch (const std::exception& e) {
+        fatal_error = true;
+        spdlog::critical("io thread: {}; stopping", e.what());
+        stop_requested = true;
+        Wake();
+      }
+    }
   });
   socket_thread = std::thread([this] { RunSocketThread(); });
   spdlog::info("ready streams={}", restored_streams);
@@ -486,6 +543,7 @@ void Daemon::Impl::RunSocketThread() {
   try {
     Loop();
   } catch (const std::exception& e) {
+    fatal_error = true;
     spdlog::critical("socket thread failed: {}; stopping", e.what());
   }
   Shutdown();
@@ -511,6 +569,8 @@ void Daemon::Impl::Loop() {
     try {
       if (reload_requested.exchange(false)) Reload();
       HandleFinishedRefits();
+      HandleFinishedWrites();
+      if (next_write_retry && Clock::now() >= *next_write_retry) RetryFailedWrites();
       if (snapshot_due.exchange(false)) PeriodicSnapshot();
       if (flush_due.exchange(false)) FlushRecordings();
       if (items[1].revents & ZMQ_POLLIN) HandleControl();
@@ -528,9 +588,54 @@ void Daemon::Impl::Loop() {
   }
 }
 
+void Daemon::Impl::DrainIngest() {
+  // A SUB socket's publisher does not know what we received (PUB/SUB drops by design): stop it
+  // at once, keeping what is already queued. A PULL socket's senders count a message as
+  // delivered once ZeroMQ took it: take everything until the sockets have been quiet for a
+  // moment. Unbinding a PULL socket would drop what its connections have buffered, so new
+  // senders can still connect meanwhile; kDrainSeconds bounds the stop for one that never
+  // pauses.
+  if (!config.daemon.subscribe_endpoints.empty() && !ingest.empty()) {
+    for (const std::string& endpoint : endpoints.subscribe) {
+      try {
+        ingest.back().disconnect(endpoint);
+      } catch (const zmq::error_t&) {
+        // already disconnected: nothing more will come from it either way
+      }
+    }
+  }
+  std::vector<zmq_pollitem_t> items;
+  for (auto& socket : ingest) items.push_back({socket.handle(), 0, ZMQ_POLLIN, 0});
+  const int64_t before = received_messages;
+  const Clock::time_point until =
+      Clock::now() + std::chrono::duration_cast<Clock::duration>(kDrainSeconds);
+  while (!items.empty() && Clock::now() < until) {
+    try {
+      if (zmq::poll(items, kDrainQuiet) == 0) break;  // quiet: nothing more was queued
+      HandleFinishedRefits();
+      HandleFinishedWrites();
+      for (std::size_t i = 0; i < ingest.size(); ++i) {
+        if (items[i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
+      }
+    } catch (const zmq::error_t& e) {
+      if (e.num() == EINTR) continue;
+      spdlog::error("stopping: ZeroMQ error while taking queued input: {}", e.what());
+      break;
+    } catch (const std::exception& e) {
+      spdlog::error("stopping: internal error while taking queued input: {}", e.what());
+      break;
+    }
+  }
+  if (Clock::now() >= until) {
+    spdlog::warn("stopping: input still arriving after {} s; the rest is not taken",
+                 kDrainSeconds.count());
+  }
+  spdlog::info("stopping: took {} queued ingest messages", received_messages - before);
+}
+
 void Daemon::Impl::Shutdown() {
-  // Stop taking input: messages still queued in the ingest sockets are dropped.
-  ingest.clear();
+  DrainIngest();
+  ingest.clear();  // input stops here
   int busy = 0;
   for (Stream* s : streams.Sorted()) busy += s->executor.idle() ? 0 : 1;
   if (busy > 0) spdlog::info("stopping: waiting for {} refits in flight", busy);
@@ -538,17 +643,33 @@ void Daemon::Impl::Shutdown() {
   try {
     HandleFinishedRefits();
     WaitForStateWrites();  // so that no stream's final snapshot is skipped as still queued
-    int written = 0;
+    HandleFinishedWrites();
     if (store) {
-      for (Stream* s : streams.Sorted()) written += TrySnapshot(*s, false) ? 1 : 0;
+      int queued = 0;
+      for (Stream* s : streams.Sorted()) queued += TrySnapshot(*s, SnapshotKind::kFinal) ? 1 : 0;
+      WaitForStateWrites();
+      HandleFinishedWrites();
+      int failed = 0;
+      for (Stream* s : streams.Sorted()) {
+        if (s->write_failures == 0) continue;
+        ++failed;
+        spdlog::error("stopping: stream {}: the state file could not be written: {}", s->key,
+                      s->write_error);
+      }
+      if (failed > 0) {
+        final_write_failed = true;
+        spdlog::error("stopping: {} of {} streams' state files are not up to date", failed,
+                      streams.size());
+      } else {
+        spdlog::info("stopping: {} state files written", queued);
+      }
     }
     FlushRecordings();
     for (Stream* s : streams.Sorted()) s->recorder.reset();
-    if (store) spdlog::info("stopping: {} state files to write", written);
   } catch (const std::exception& e) {
+    final_write_failed = true;
     spdlog::error("stopping: {}", e.what());
   }
-  // The final writes are queued on the io thread; stop it once they are done.
   boost::asio::post(io, [this] {
     if (signals) signals->cancel();
     snapshot_timer.cancel();
@@ -564,6 +685,7 @@ void Daemon::Impl::Shutdown() {
 void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
   for (int n = 0; n < kMessagesPerTurn; ++n) {
     if (!socket.recv(key_message, zmq::recv_flags::dontwait)) return;
+    ++received_messages;
     std::size_t frames = 1;
     bool more = key_message.more();
     if (more) {
@@ -751,7 +873,10 @@ void Daemon::Impl::Publish(std::string_view key, const std::string& body) {
 }
 
 void Daemon::Impl::Record(Stream& stream, double time) {
-  if (stream.recording_failed) return;  // paused until the next flush tick
+  if (stream.recording_failed) {  // paused until the next flush tick
+    ++stream.recording_skipped;
+    return;
+  }
   const std::string error = stream.recorder->Append(time, stream.row);
   if (!error.empty()) {
     spdlog::error("recording: stream {}: {}; retrying in {} s", stream.key, error,
@@ -763,6 +888,11 @@ void Daemon::Impl::Record(Stream& stream, double time) {
 void Daemon::Impl::FlushRecordings() {
   for (Stream* s : streams.Sorted()) {
     if (!s->recorder) continue;
+    if (s->recording_skipped > 0) {
+      spdlog::warn("recording: stream {}: {} rows not recorded while writes failed", s->key,
+                   s->recording_skipped);
+      s->recording_skipped = 0;
+    }
     s->recording_failed = false;
     const std::string error = s->recorder->Flush();
     if (!error.empty()) {
@@ -806,44 +936,105 @@ void Daemon::Impl::HandleFinishedRefits() {
     if (store) s->snapshot_wanted = true;
   }
   for (Stream* s : finished_work) {
-    if (s->snapshot_wanted) TrySnapshot(*s, false);
+    if (s->snapshot_wanted) TrySnapshot(*s, SnapshotKind::kPeriodic);
   }
 }
 
-bool Daemon::Impl::TrySnapshot(Stream& stream, bool force) {
+bool Daemon::Impl::TrySnapshot(Stream& stream, SnapshotKind kind) {
   if (!store) return false;
-  if (!stream.executor.idle() || stream.write_queued.load(std::memory_order_acquire)) {
+  if (!stream.executor.idle() || stream.write_queued) {
     stream.snapshot_wanted = true;  // taken when the refit has finished, or at the next tick
+    return false;
+  }
+  if (kind == SnapshotKind::kPeriodic && stream.write_failures > 0 &&
+      Clock::now() < stream.retry_at) {
+    stream.snapshot_wanted = true;  // backing off (RetryFailedWrites takes it when due)
     return false;
   }
   stream.snapshot_wanted = false;
   const DetectorCounters counters = stream.detector->counters();
   const auto model = stream.detector->model();
   const uint64_t version = model ? model->version() : 0;
-  if (!force && counters.vectors == stream.snapshot_vectors &&
-      version == stream.snapshot_model_version) {
-    return false;  // nothing new since the last one
+  if (kind != SnapshotKind::kRequest && stream.write_failures == 0 &&
+      counters.vectors == stream.snapshot_vectors && version == stream.snapshot_model_version) {
+    return false;  // the file holds this already
   }
   auto state = std::make_shared<const DetectorState>(stream.detector->ExportState());
-  stream.snapshot_vectors = counters.vectors;
-  stream.snapshot_model_version = version;
-  stream.write_queued.store(true, std::memory_order_release);
-  boost::asio::post(io, [this, &stream, state] {
+  stream.write_queued = true;
+  const int64_t vectors = counters.vectors;
+  boost::asio::post(io, [this, &stream, state, vectors, version] {
+    FinishedWrite outcome{&stream, vectors, version, {}};
     try {
       store->Save(stream.key, stream.dims, *state);
-    } catch (const StateFileError& e) {
-      metrics.state_write_failures().Increment();
-      spdlog::error("state: stream {}: {}", stream.key, e.what());
+    } catch (const std::exception& e) {
+      // StateFileError (the file system refused: full, read-only, gone), or bad_alloc encoding.
+      outcome.error = e.what();
     }
-    stream.write_queued.store(false, std::memory_order_release);
+    {
+      MutexLock lock(&writes_mutex);
+      finished_writes.push_back(std::move(outcome));
+    }
+    Wake();
   });
   return true;
+}
+
+void Daemon::Impl::HandleFinishedWrites() {
+  finished_write_work.clear();
+  {
+    MutexLock lock(&writes_mutex);
+    finished_write_work.swap(finished_writes);
+  }
+  for (FinishedWrite& w : finished_write_work) {
+    Stream& s = *w.stream;
+    s.write_queued = false;
+    if (w.error.empty()) {
+      if (s.write_failures > 0) {
+        spdlog::info("state: stream {} written again after {} failed writes ({} vectors)", s.key,
+                     s.write_failures, w.vectors);
+      }
+      s.snapshot_vectors = w.vectors;
+      s.snapshot_model_version = w.model_version;
+      s.write_failures = 0;
+      s.write_error.clear();
+      continue;
+    }
+    metrics.state_write_failures().Increment();
+    ++s.write_failures;
+    const double delay = StateWriteRetrySeconds(s.write_failures);
+    s.retry_at = Clock::now() +
+                 std::chrono::duration_cast<Clock::duration>(std::chrono::duration<double>(delay));
+    s.write_error = std::move(w.error);
+    s.snapshot_wanted = true;
+    if (!next_write_retry || s.retry_at < *next_write_retry) next_write_retry = s.retry_at;
+    spdlog::error(
+        "state: stream {}: write failed ({} in a row): {}; its file keeps {}; retrying in {} s",
+        s.key, s.write_failures, s.write_error,
+        s.snapshot_vectors < 0
+            ? std::string("no snapshot")
+            : "the snapshot of " + std::to_string(s.snapshot_vectors) + " vectors",
+        delay);
+  }
+}
+
+void Daemon::Impl::RetryFailedWrites() {
+  next_write_retry.reset();
+  const Clock::time_point now = Clock::now();
+  for (Stream* s : streams.Sorted()) {
+    if (s->write_failures == 0) continue;
+    TrySnapshot(*s, SnapshotKind::kPeriodic);
+    if (s->write_queued) continue;  // its outcome sets the next retry if it fails again
+    // Not due yet, or a refit is running (HandleFinishedRefits takes it then): look again
+    // later, at most once a second.
+    const Clock::time_point again = std::max(s->retry_at, now + std::chrono::seconds(1));
+    if (!next_write_retry || again < *next_write_retry) next_write_retry = again;
+  }
 }
 
 void Daemon::Impl::PeriodicSnapshot() {
   int written = 0;
   for (Stream* s : streams.Sorted()) {
-    written += TrySnapshot(*s, false) ? 1 : 0;
+    written += TrySnapshot(*s, SnapshotKind::kPeriodic) ? 1 : 0;
     s->metrics.memory_bytes->Set(static_cast<double>(s->detector->MemoryBytes()));
   }
   if (written > 0) spdlog::debug("state: snapshot of {} streams queued", written);
@@ -891,6 +1082,7 @@ std::vector<StreamStatus> Daemon::Impl::Status() {
     st.incident = d.open_incident();
     st.memory_bytes = d.MemoryBytes();
     st.snapshot_vectors = s->snapshot_vectors;
+    st.snapshot_error = s->write_error;
     out.push_back(std::move(st));
   }
   return out;
@@ -904,15 +1096,40 @@ SnapshotOutcome Daemon::Impl::Snapshot() {
     return outcome;
   }
   WaitForStateWrites();
+  HandleFinishedWrites();  // every stream's write_queued is false now
+  std::vector<Stream*> queued;
   for (Stream* s : streams.Sorted()) {
-    if (s->executor.idle()) {
-      outcome.written += TrySnapshot(*s, true) ? 1 : 0;
-    } else {
+    if (!s->executor.idle()) {
       s->snapshot_wanted = true;
       ++outcome.pending;
+    } else if (TrySnapshot(*s, SnapshotKind::kRequest)) {
+      queued.push_back(s);
     }
   }
   WaitForStateWrites();
+  HandleFinishedWrites();
+  std::string failures;
+  for (Stream* s : queued) {
+    if (s->write_failures == 0) {
+      ++outcome.written;
+      continue;
+    }
+    outcome.failed.push_back(s->key);
+    if (outcome.failed.size() <= 3) {
+      failures += (failures.empty() ? "" : "; ") + s->key + ": " + s->write_error;
+    }
+  }
+  if (!outcome.failed.empty()) {
+    outcome.ok = false;
+    const std::size_t more = outcome.failed.size() > 3 ? outcome.failed.size() - 3 : 0;
+    outcome.error = "the state file of " + std::to_string(outcome.failed.size()) + " of " +
+                    std::to_string(queued.size()) + " streams could not be written (" + failures +
+                    (more > 0 ? "; and " + std::to_string(more) + " more" : "") +
+                    "); each keeps its last snapshot and is retried";
+    spdlog::error("state: snapshot on request: {} written, {} failed, {} pending a refit",
+                  outcome.written, outcome.failed.size(), outcome.pending);
+    return outcome;
+  }
   spdlog::info("state: snapshot on request: {} written, {} pending a refit", outcome.written,
                outcome.pending);
   return outcome;
@@ -1066,6 +1283,10 @@ void Daemon::Wait() {
   if (!impl_->started || impl_->joined) return;
   impl_->socket_thread.join();
   impl_->joined = true;
+}
+
+bool Daemon::failed() const {
+  return impl_->joined && (impl_->fatal_error.load() || impl_->final_write_failed);
 }
 
 const DaemonEndpoints& Daemon::endpoints() const { return impl_->endpoints; }

@@ -42,6 +42,13 @@ class DaemonError : public std::runtime_error {
   using std::runtime_error::runtime_error;
 };
 
+// Another process holds the state directory's lock (StateDirLock): the message names the directory
+// and the holder's pid. The program exits with status 2, as for a configuration error.
+class StateDirInUseError : public DaemonError {
+ public:
+  using DaemonError::DaemonError;
+};
+
 // nuwatchd's command-line flags that replace configuration values. They are applied to the file
 // at start-up and again at every reload.
 struct CommandLineOverrides {
@@ -79,8 +86,9 @@ struct DaemonEndpoints {
 
 class Daemon {
  public:
-  // Checks the configuration (ConfigError), sets the log level, binds every socket and the
-  // metrics endpoint and restores the state directory (DaemonError). A state file that cannot be
+  // Checks the configuration (ConfigError), sets the log level, locks the state directory
+  // (StateDirInUseError when another nuwatchd holds it), binds every socket and the metrics
+  // endpoint and restores the state directory (DaemonError). A state file that cannot be
   // used is moved aside (state_store.h) and its stream starts afresh; that is not an error.
   explicit Daemon(DaemonOptions options);
   // RequestStop() and Wait() if started.
@@ -90,13 +98,18 @@ class Daemon {
 
   // Logs the listening lines, writes the ready file and starts the threads. Call once.
   void Start();
-  // Stop taking input, wait for the refits in flight, snapshot every stream, close the sockets.
-  // Asynchronous; Wait() returns once it is done.
+  // Stop: take what ZeroMQ has already queued on the ingest sockets (scored and published; until
+  // they are quiet for 300 ms, at most 30 s), stop taking input, wait for the refits in flight,
+  // write the state file of every stream that changed or whose last write failed, close the
+  // sockets. Asynchronous; Wait() returns once it is done.
   void RequestStop();
   // Reread config.source_path as SIGHUP does (asynchronous; the outcome is logged).
   void RequestReload();
   // Blocks until the daemon has stopped (after RequestStop, a signal or a fatal error).
   void Wait();
+  // After Wait(): true when a fatal error stopped the daemon (its socket or io thread failed) or
+  // a final state write failed, so that the program exits non-zero and a supervisor notices.
+  bool failed() const;
 
   const DaemonEndpoints& endpoints() const;
   // The text exposition of every metric, as /metrics serves it.

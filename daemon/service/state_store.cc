@@ -1,7 +1,12 @@
 #include "service/state_store.h"
 
+#include <fcntl.h>
+#include <sys/file.h>
+#include <unistd.h>
+
 #include <algorithm>
 #include <cerrno>
+#include <cstdlib>
 #include <cstring>
 #include <ctime>
 #include <filesystem>
@@ -296,6 +301,13 @@ StateStore::StateStore(std::string dir) : dir_(std::move(dir)) {
   if (!fs::is_directory(dir_, error)) throw StateFileError(dir_ + ": not a directory");
 }
 
+double StateWriteRetrySeconds(int failures) {
+  constexpr double kFirst = 1.0, kLongest = 60.0;
+  double seconds = kFirst;
+  for (int i = 1; i < failures && seconds < kLongest; ++i) seconds *= 2;
+  return std::min(seconds, kLongest);
+}
+
 std::string StateStore::PathFor(std::string_view stream_key) const {
   return (fs::path(dir_) / (EscapeStreamKey(stream_key) + std::string(kSuffix))).string();
 }
@@ -373,6 +385,37 @@ std::vector<std::string> StateStore::RemoveStaleTemporaries() const {
     if (fs::remove(path, remove_error)) removed.push_back(path.string());
   }
   return removed;
+}
+
+StateDirLock::~StateDirLock() {
+  if (fd_ >= 0) ::close(fd_);  // releases the lock
+}
+
+bool StateDirLock::TryLock(const std::string& dir, long* holder) {
+  path_ = (fs::path(dir) / kFileName).string();
+  fd_ = ::open(path_.c_str(), O_RDWR | O_CREAT | O_CLOEXEC, 0644);
+  if (fd_ < 0) throw StateFileError(path_ + ": cannot open the lock file: " + std::strerror(errno));
+  if (::flock(fd_, LOCK_EX | LOCK_NB) != 0) {
+    const int error = errno;
+    if (error != EWOULDBLOCK) {
+      ::close(fd_);
+      fd_ = -1;
+      throw StateFileError(path_ + ": cannot lock: " + std::strerror(error));
+    }
+    char text[32] = {};
+    const ssize_t n = ::pread(fd_, text, sizeof text - 1, 0);
+    *holder = n > 0 ? std::strtol(text, nullptr, 10) : 0;
+    ::close(fd_);
+    fd_ = -1;
+    return false;
+  }
+  // Our pid, for the message of a daemon refused later. The lock is what counts, so a failure
+  // to write it (a full disk) is not an error.
+  const std::string pid = std::to_string(::getpid()) + "\n";
+  if (::ftruncate(fd_, 0) == 0) {
+    [[maybe_unused]] const ssize_t n = ::pwrite(fd_, pid.data(), pid.size(), 0);
+  }
+  return true;
 }
 
 }  // namespace nuwatch

@@ -71,6 +71,12 @@ std::vector<uint8_t> EncodeStreamState(std::string_view stream_key, int dims,
 // Detector::ImportState.
 StreamStateFile DecodeStreamState(const uint8_t* data, std::size_t size);
 
+// The wait before retrying a state write that has failed `failures` times in a row: 1 s, doubled at
+// each further failure, at most 60 s (exponential backoff with a ceiling, common practice), so
+// that a disk that has just filled up is probed soon and one that stays full is not hammered.
+// Requires: failures >= 1 (smaller values give 1 s).
+double StateWriteRetrySeconds(int failures);
+
 class StateStore {
  public:
   // Creates `dir` (and its parents) if needed. Throws StateFileError naming the directory.
@@ -102,6 +108,32 @@ class StateStore {
 
  private:
   std::string dir_;
+};
+
+// An exclusive lock on a state directory, so that two daemons never write the same state files
+// (each would overwrite the other's snapshots). flock(2) on `<dir>/nuwatchd.lock`, held while the
+// object lives; the kernel releases it when the process ends, even by kill -9, so a stale lock
+// never blocks a restart. The file holds the holder's pid, for the message of the one refused.
+// Thread safety: not thread-safe; one owner.
+class StateDirLock {
+ public:
+  static constexpr const char* kFileName = "nuwatchd.lock";
+
+  StateDirLock() = default;
+  ~StateDirLock();
+  StateDirLock(const StateDirLock&) = delete;
+  StateDirLock& operator=(const StateDirLock&) = delete;
+
+  // Takes the lock without waiting. Requires: `dir` exists and nothing is held yet. Returns true
+  // when taken; false when another process holds it, with `holder` set to the pid it wrote (0 if
+  // unknown). Throws StateFileError naming the lock file when it cannot be opened or locked for
+  // another reason (permissions, a file system without locks).
+  bool TryLock(const std::string& dir, long* holder);
+  const std::string& path() const { return path_; }
+
+ private:
+  int fd_ = -1;
+  std::string path_;
 };
 
 }  // namespace nuwatch

@@ -8,7 +8,7 @@
 // pointer to it until the pool is joined.
 #pragma once
 
-#include <atomic>
+#include <chrono>
 #include <cstdint>
 #include <functional>
 #include <memory>
@@ -73,16 +73,25 @@ struct Stream {
   int64_t seen_coalesced = 0;       // counters().refits_coalesced already counted
   std::set<std::string> warned;     // refit warnings already logged for this stream
   bool flooding = false;            // more than half flagged: logged once until it recovers
-  // Snapshots: the vector count and model version of the last one taken, and whether one is due
-  // once the refit in flight has finished.
+  // Snapshots. snapshot_vectors and snapshot_model_version describe what the stream's state file
+  // holds: restored at start-up, then changed only when a write has succeeded (fsynced and
+  // renamed), so that status never counts vectors the disk does not hold. snapshot_wanted: one is
+  // due once the refit in flight has finished (or the next retry).
   int64_t snapshot_vectors = -1;
   uint64_t snapshot_model_version = 0;
   bool snapshot_wanted = false;
-  // A state-file write of this stream is queued or running on the io thread (set by the socket
-  // thread, cleared by the writer): one at a time per stream, so a slow disk cannot pile them up.
-  std::atomic<bool> write_queued{false};
+  // A state-file write of this stream is queued or running on the io thread: one at a time per
+  // stream, so that a slow disk cannot pile them up. Set and cleared by the socket thread (the
+  // writer reports its outcome back to it).
+  bool write_queued = false;
+  // Failed writes in a row, the last one's error, and when the next attempt may run
+  // (StateWriteRetrySeconds; a snapshot request or the shutdown does not wait for it).
+  int write_failures = 0;
+  std::string write_error;
+  std::chrono::steady_clock::time_point retry_at{};
   std::unique_ptr<StreamRecorder> recorder;  // null: not recording
-  bool recording_failed = false;             // an error was logged; logged again on recovery
+  bool recording_failed = false;             // an error was logged; paused until the next flush
+  int64_t recording_skipped = 0;             // rows not recorded while paused (logged on resume)
   TrackedRefitExecutor executor;
   std::unique_ptr<Detector> detector;  // last: destroyed first
 };

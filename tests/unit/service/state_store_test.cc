@@ -6,8 +6,10 @@
 
 #include <gmock/gmock.h>
 #include <gtest/gtest.h>
+#include <sys/wait.h>
 #include <unistd.h>
 
+#include <cstdlib>
 #include <cstring>
 #include <filesystem>
 #include <fstream>
@@ -417,6 +419,60 @@ TEST(StateStore, NamesADirectoryItCannotCreate) {
     FAIL() << "a directory under a file was accepted";
   } catch (const StateFileError& e) {
     EXPECT_THAT(e.what(), HasSubstr(dir.path() + "/file/sub"));
+  }
+}
+
+// ---------------------------------------------------------------------------------------------
+// Retries and the directory lock
+
+TEST(StateWriteRetrySeconds, DoublesFromOneSecondUpToAMinute) {
+  // Exponential backoff with a ceiling (common practice): 1, 2, 4, ... s, never above 60 s.
+  EXPECT_EQ(StateWriteRetrySeconds(1), 1.0);
+  EXPECT_EQ(StateWriteRetrySeconds(2), 2.0);
+  EXPECT_EQ(StateWriteRetrySeconds(3), 4.0);
+  EXPECT_EQ(StateWriteRetrySeconds(6), 32.0);
+  EXPECT_EQ(StateWriteRetrySeconds(7), 60.0);
+  EXPECT_EQ(StateWriteRetrySeconds(1000000), 60.0);
+  EXPECT_EQ(StateWriteRetrySeconds(0), 1.0);
+}
+
+// util-linux's flock(1) (a third-party client of the same flock(2) lock): exit status 0 when it
+// could take the lock at once, 1 when another holds it (-n: fail rather than wait).
+int ShellFlock(const std::string& path) {
+  const std::string command = "flock -n '" + path + "' true";
+  const int status = std::system(command.c_str());
+  return WIFEXITED(status) ? WEXITSTATUS(status) : -1;
+}
+
+TEST(StateDirLock, RefusesASecondHolderAndNamesTheFirst) {
+  TempDir dir;
+  const std::string path = dir.path() + "/" + StateDirLock::kFileName;
+  long holder = -1;
+  {
+    StateDirLock first;
+    ASSERT_TRUE(first.TryLock(dir.path(), &holder));
+    EXPECT_EQ(first.path(), path);
+    EXPECT_EQ(ShellFlock(path), 1) << "flock(1) took a lock nuwatchd holds";
+    StateDirLock second;  // another open file description: flock(2) locks conflict between them
+    EXPECT_FALSE(second.TryLock(dir.path(), &holder));
+    EXPECT_EQ(holder, static_cast<long>(::getpid()));
+  }
+  // Released with its holder; a file left behind by a holder that died is no obstacle.
+  EXPECT_TRUE(fs::exists(path));
+  EXPECT_EQ(ShellFlock(path), 0);
+  StateDirLock again;
+  EXPECT_TRUE(again.TryLock(dir.path(), &holder));
+}
+
+TEST(StateDirLock, NamesALockFileItCannotOpen) {
+  TempDir dir;
+  StateDirLock lock;
+  long holder = 0;
+  try {
+    lock.TryLock(dir.path() + "/missing", &holder);
+    FAIL() << "a lock in a directory that does not exist was taken";
+  } catch (const StateFileError& e) {
+    EXPECT_THAT(e.what(), HasSubstr(dir.path() + "/missing/nuwatchd.lock: cannot open"));
   }
 }
 
