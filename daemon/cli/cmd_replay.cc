@@ -27,6 +27,7 @@ void RunReplay(const ReplayArgs& a) {
   } catch (const CsvError& e) {
     throw CommandError(e.what());
   }
+  if (!recording.cut_last_line.empty()) std::cerr << "warning: " << recording.cut_last_line << "\n";
   const bool show_progress = ::isatty(STDERR_FILENO) && recording.rows() > 50000;
   const auto started = std::chrono::steady_clock::now();
   auto progress = [&](int64_t done) {

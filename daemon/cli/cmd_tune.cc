@@ -214,6 +214,8 @@ void RunTune(const TuneArguments& a) {
   } catch (const CsvError& e) {
     throw CommandError(e.what());
   }
+  if (!recording.cut_last_line.empty())
+    std::cerr << "nuwatch tune: warning: " << recording.cut_last_line << "\n";
   WarnAboutIncidents(recording, incidents, a.incidents);
 
   const std::size_t settings = ExpandGrid(options.grid).size();

@@ -73,6 +73,7 @@ CsvReader& CsvReader::operator=(CsvReader&& other) noexcept {
   fields_.clear();  // views into the other's buffer
   unescaped_.clear();
   line_ = other.line_;
+  unterminated_ = other.unterminated_;
   return *this;
 }
 
@@ -178,7 +179,10 @@ CsvReader::Parse CsvReader::SplitQuoted() {
       while (true) {
         const void* quote = std::memchr(data + q, '"', size - q);
         if (quote == nullptr) {
-          if (end_of_input_) Fail(next_line_, "a quoted field is not closed before the end");
+          if (end_of_input_) {
+            unterminated_ = true;
+            Fail(next_line_, "a quoted field is not closed before the end");
+          }
           return need_more();
         }
         const std::size_t at = static_cast<const char*>(quote) - data;
@@ -226,6 +230,7 @@ CsvReader::Parse CsvReader::SplitQuoted() {
       break;
     }
     if (!end_of_input_) return need_more();
+    unterminated_ = true;
     break;
   }
   line_ = next_line_;
@@ -236,6 +241,7 @@ CsvReader::Parse CsvReader::SplitQuoted() {
 
 CsvReader::Parse CsvReader::ParseRecord() {
   fields_.clear();
+  unterminated_ = false;
   while (true) {
     if (at_start_) {
       if (buffer_.size() - pos_ < 3 && !end_of_input_ && Refill()) continue;
@@ -255,8 +261,10 @@ CsvReader::Parse CsvReader::ParseRecord() {
       return Parse::kNeedInput;
     }
     if (std::memchr(data + pos_, '"', end - pos_) == nullptr) {
+      unterminated_ = newline == nullptr;
       if (!SplitSimpleLine(end)) {
         fields_.clear();
+        unterminated_ = false;
         continue;  // a blank line
       }
       return Parse::kRecord;

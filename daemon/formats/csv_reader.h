@@ -74,6 +74,10 @@ class CsvReader {
   std::size_t size() const { return fields_.size(); }
   std::string_view operator[](std::size_t i) const { return fields_[i]; }
   const std::vector<std::string_view>& fields() const { return fields_; }
+  // Whether the current record (or the one Next just refused) ends at the end of the input
+  // without a line end: the sign of a file cut mid-record (a writer stopped by a crash or a full
+  // disk), which a caller may skip rather than refuse the whole file.
+  bool record_is_unterminated() const { return unterminated_; }
   // 1-based line where the current record starts, and "NAME:LINE: " for messages about it.
   int line() const { return line_; }
   std::string Where() const;
@@ -101,6 +105,7 @@ class CsvReader {
   std::vector<std::string_view> fields_;
   std::deque<std::string> unescaped_;  // fields with doubled quotes; a deque keeps them in place
   int line_ = 0;
+  bool unterminated_ = false;
 };
 
 // Appends `field` to `out` as one CSV field: as it is, or quoted (with its quotes doubled) when it

@@ -20,17 +20,32 @@ StreamRecording ReadRecording(CsvReader reader, const std::string& path) {
   std::vector<double> values;
   std::unordered_map<std::string, int32_t> stream_index;
   std::string key;
-  while (reader.Next() == CsvReader::Status::kRow) {
+  while (true) {
     values.resize(values.size() + dims);
-    r.times.push_back(
-        columns.Parse(reader, std::span<double>(values.data() + values.size() - dims, dims)));
+    try {
+      if (reader.Next() != CsvReader::Status::kRow) break;
+      r.times.push_back(
+          columns.Parse(reader, std::span<double>(values.data() + values.size() - dims, dims)));
+    } catch (const CsvError& e) {
+      // A last line without its line end that does not read is a row cut by a writer that
+      // stopped (a crash, a full disk): the rows before it are good, so skip it and say so.
+      if (!reader.record_is_unterminated()) throw;
+      r.cut_last_line =
+          std::string(e.what()) + " (the last line, cut: it has no line end; skipped)";
+      break;
+    }
     r.time_text.push_back(columns.TimeText(reader));
     key.assign(columns.Stream(reader));
     const auto [it, inserted] = stream_index.emplace(key, static_cast<int32_t>(r.streams.size()));
     if (inserted) r.streams.push_back(key);
     r.stream_of_row.push_back(it->second);
   }
-  if (r.times.empty()) throw CsvError(path + ": no data rows");
+  values.resize(r.times.size() * dims);
+  if (r.times.empty()) {
+    throw CsvError(
+        path + ": no data rows" +
+        (r.cut_last_line.empty() ? "" : " (besides a cut last line: " + r.cut_last_line + ")"));
+  }
   r.values = Eigen::Map<const MatrixD>(values.data(), static_cast<int64_t>(r.times.size()),
                                        static_cast<int64_t>(dims));
   return r;

@@ -25,12 +25,18 @@ struct StreamRecording {
   std::vector<double> times;           // seconds since the epoch
   PackedStrings time_text;             // as written in the file
   MatrixD values;                      // rows x features
+  // "" or a warning: the last line had no line end and did not read (a recording cut by a crash
+  // or a full disk), so it was skipped; the message names the file, the line and why.
+  std::string cut_last_line;
   int64_t rows() const { return values.rows(); }
 };
 
 // Reads the file row by row (CsvReader, StreamFileColumns): memory is that of the values kept, not
 // of the text. Throws CsvError naming the file and line: no `time` column, an unreadable time, a
-// non-numeric or non-finite value, a ragged row, no feature columns, no data rows.
+// non-numeric or non-finite value, a ragged row, no feature columns, no data rows. Except: a last
+// line without a line end that does not read is skipped and reported in cut_last_line (a row cut
+// by a writer that stopped); a last line without a line end that reads is kept, as hand-written
+// files often end so.
 StreamRecording ReadStreamRecording(const std::string& path);
 // The same from an open stream; `path` names it in messages (the fuzz target reads from memory).
 StreamRecording ReadStreamRecording(std::istream& in, const std::string& path);

@@ -1,5 +1,8 @@
 #include "service/recorder.h"
 
+#include <fcntl.h>
+#include <unistd.h>
+
 #include <algorithm>
 #include <cerrno>
 #include <charconv>
@@ -17,6 +20,24 @@ namespace fs = std::filesystem;
 
 // The longest shortest-round-trip double ("-2.2250738585072014e-308") has 24 characters.
 constexpr std::size_t kNumberChars = 32;
+// Rows are gathered whole in a buffer this large, written when it is full or at Flush.
+constexpr std::size_t kBufferBytes = 64 << 10;
+
+// Writes `n` bytes at `offset` (pwrite, resumed after a short write). Returns 0, or the errno of
+// the call that failed; `done` is the number of bytes written either way.
+int WriteAt(int fd, const char* data, std::size_t n, std::size_t offset, std::size_t* done) {
+  *done = 0;
+  while (*done < n) {
+    const ssize_t w = ::pwrite(fd, data + *done, n - *done, static_cast<off_t>(offset + *done));
+    if (w < 0) {
+      if (errno == EINTR) continue;
+      return errno;
+    }
+    if (w == 0) return EIO;  // no progress on a regular file: report rather than spin
+    *done += static_cast<std::size_t>(w);
+  }
+  return 0;
+}
 
 std::string SafeColumnName(std::string name) {
   for (char& c : name)
@@ -65,10 +86,17 @@ StreamRecorder::StreamRecorder(std::string dir, std::string stream_key, int dims
       header_(Header(dims, feature_names)),
       rotate_bytes_(std::max<std::size_t>(rotate_bytes, 1)),
       keep_files_(std::max(keep_files, 0)),
-      line_(key_.size() + (static_cast<std::size_t>(dims) + 1) * (kNumberChars + 1) + 2) {}
+      line_(key_.size() + (static_cast<std::size_t>(dims) + 1) * (kNumberChars + 1) + 2),
+      buffer_(std::max(kBufferBytes, line_.size())) {}
 
 StreamRecorder::~StreamRecorder() {
-  if (file_) std::fclose(file_);
+  if (fd_ >= 0) (void)WriteBuffer();
+  Close();
+}
+
+void StreamRecorder::Close() {
+  if (fd_ >= 0) ::close(fd_);
+  fd_ = -1;
 }
 
 void StreamRecorder::set_rotation(std::size_t rotate_bytes, int keep_files) {
@@ -117,30 +145,66 @@ std::string StreamRecorder::OpenNext() {
     const std::vector<int64_t> numbers = ExistingNumbers();
     next_number_ = numbers.empty() ? 1 : numbers.back() + 1;
   }
-  path_ = PathOf(next_number_++);
-  file_ = std::fopen(path_.c_str(), "wxe");  // x: never overwrite a recording
-  if (!file_) return path_ + ": cannot create: " + std::strerror(errno);
-  std::setvbuf(file_, nullptr, _IOFBF, 64 << 10);
-  bytes_ = 0;
-  if (std::fwrite(header_.data(), 1, header_.size(), file_) != header_.size()) {
-    const std::string message = path_ + ": write failed: " + std::strerror(errno);
-    std::fclose(file_);
-    file_ = nullptr;
-    return message;
+  path_ = PathOf(next_number_);
+  fd_ = ::open(path_.c_str(), O_WRONLY | O_CREAT | O_EXCL | O_CLOEXEC, 0644);  // never overwrite
+  if (fd_ < 0) {
+    const int open_error = errno;
+    if (open_error == EEXIST) ++next_number_;  // made by someone else meanwhile: skip it
+    return path_ + ": cannot create: " + std::strerror(open_error);
   }
-  bytes_ = header_.size();
-  DeleteOldFiles();
+  std::size_t done = 0;
+  if (const int write_error = WriteAt(fd_, header_.data(), header_.size(), 0, &done)) {
+    // A file without its header is no recording: remove it and reuse its number, so that a disk
+    // that stays full does not leave empty files behind that would push real ones out.
+    Close();
+    ::unlink(path_.c_str());
+    return path_ + ": cannot start the file: write failed: " + std::strerror(write_error);
+  }
+  ++next_number_;
+  written_ = header_.size();
+  buffered_ = 0;
+  DeleteOldFiles();  // only now that the new file holds its header
   return "";
 }
 
-std::string StreamRecorder::Append(double time, std::span<const double> x) {
-  if (file_ && bytes_ >= rotate_bytes_) {
-    const bool closed = std::fclose(file_) == 0;
-    file_ = nullptr;
-    if (!closed) return path_ + ": close failed: " + std::strerror(errno);
+std::string StreamRecorder::WriteBuffer() {
+  std::size_t done = 0;
+  const int error = WriteAt(fd_, buffer_.data(), buffered_, written_, &done);
+  if (error == 0) {
+    written_ += buffered_;
+    buffered_ = 0;
+    return "";
   }
-  if (!file_) {
-    if (std::string error = OpenNext(); !error.empty()) return error;
+  // Keep the whole rows that reached the file; cut off the part of a row after them.
+  std::size_t keep = done;
+  while (keep > 0 && buffer_[keep - 1] != '\n') --keep;
+  const auto dropped = std::count(buffer_.begin() + static_cast<std::ptrdiff_t>(keep),
+                                  buffer_.begin() + static_cast<std::ptrdiff_t>(buffered_), '\n');
+  written_ += keep;
+  buffered_ = 0;
+  std::string message = path_ + ": write failed: " + std::strerror(error) + "; " +
+                        std::to_string(dropped) + " rows not recorded";
+  if (::ftruncate(fd_, static_cast<off_t>(written_)) != 0) {
+    // Shrinking needs no space, so this is rare; the file may end in a cut row (which replay
+    // skips with a warning), and nothing more is appended after it.
+    message +=
+        "; cannot cut the file back to its last whole row: " + std::string(std::strerror(errno)) +
+        "; the next rows go to a new file";
+    Close();
+  }
+  return message;
+}
+
+std::string StreamRecorder::Append(double time, std::span<const double> x) {
+  std::string error;
+  if (fd_ >= 0 && written_ + buffered_ >= rotate_bytes_) {
+    error = Flush();
+    Close();
+  }
+  if (fd_ < 0) {
+    if (std::string open_error = OpenNext(); !open_error.empty()) {
+      return (error.empty() ? "" : error + "; ") + open_error + "; 1 row not recorded";
+    }
   }
   char* p = line_.data();
   char* const end = line_.data() + line_.size();
@@ -154,24 +218,20 @@ std::string StreamRecorder::Append(double time, std::span<const double> x) {
   }
   *p++ = '\n';
   const std::size_t n = static_cast<std::size_t>(p - line_.data());
-  if (std::fwrite(line_.data(), 1, n, file_) != n) {
-    const std::string message = path_ + ": write failed: " + std::strerror(errno);
-    std::fclose(file_);
-    file_ = nullptr;
-    return message;
+  if (buffered_ + n > buffer_.size()) {
+    if (std::string write_error = WriteBuffer(); !write_error.empty()) {
+      error += (error.empty() ? "" : "; ") + write_error;
+      if (fd_ < 0) return error + "; 1 row not recorded";
+    }
   }
-  bytes_ += n;
-  return "";
+  std::memcpy(buffer_.data() + buffered_, line_.data(), n);
+  buffered_ += n;
+  return error;
 }
 
 std::string StreamRecorder::Flush() {
-  if (file_ && std::fflush(file_) != 0) {
-    const std::string message = path_ + ": write failed: " + std::strerror(errno);
-    std::fclose(file_);
-    file_ = nullptr;
-    return message;
-  }
-  return "";
+  if (fd_ < 0 || buffered_ == 0) return "";
+  return WriteBuffer();
 }
 
 }  // namespace nuwatch

@@ -27,6 +27,7 @@ namespace {
 
 using ::testing::AllOf;
 using ::testing::HasSubstr;
+using ::testing::Not;
 
 const std::string kNuwatch = NUWATCH_PROGRAM;
 const std::string kHeader =
@@ -247,6 +248,35 @@ TEST_F(ReplayCliTest, BadInputExitsOneWithOneLineNamingFileAndLine) {
       HasSubstr("nu = 0"));
   // A failed replay leaves no output behind.
   EXPECT_FALSE(std::filesystem::exists(dir_ + "/x.csv"));
+}
+
+// A recording whose writer stopped mid-row (kill -9, a full disk) ends in a line without its line
+// end. replay reads the rows before it, warns once on stderr naming the file and line, and gives
+// exactly the output of the same file without that line (issue 10 section 2).
+TEST_F(ReplayCliTest, ALastLineCutMidRowIsSkippedWithAWarning) {
+  std::istringstream plant(ReadFile(stream_));
+  std::string whole, line;
+  for (int i = 0; i < 400 && std::getline(plant, line); ++i) whole += line + "\n";
+  ASSERT_TRUE(std::getline(plant, line));
+  const std::string cut_row = line.substr(0, line.rfind(','));  // one field short, no line end
+  const std::string whole_path = WriteInput("whole.csv", whole);
+  const std::string cut_path = WriteInput("cut.csv", whole + cut_row);
+  const std::string flags = " --window 100 --warmup 100 --support-vector-budget 32 --nu 0.05";
+  const RunResult a =
+      Run("replay --input " + whole_path + " --output " + dir_ + "/whole_out.csv" + flags);
+  ASSERT_EQ(a.exit_code, 0) << a.err;
+  const RunResult b =
+      Run("replay --input " + cut_path + " --output " + dir_ + "/cut_out.csv" + flags);
+  ASSERT_EQ(b.exit_code, 0) << b.err;
+  EXPECT_THAT(b.err, HasSubstr("warning: " + cut_path + ":401: "));
+  EXPECT_THAT(b.err, HasSubstr("the last line, cut: it has no line end; skipped"));
+  EXPECT_THAT(a.err, Not(HasSubstr("cut")));
+  EXPECT_EQ(ReadFile(dir_ + "/cut_out.csv"), ReadFile(dir_ + "/whole_out.csv"));
+  // A cut line anywhere but at the end is an error as before (the ragged case above); so is a
+  // last line that has its line end but not its fields.
+  const std::string ended = WriteInput("ended.csv", whole + cut_row + "\n");
+  EXPECT_THAT(ExpectOneLineFailure("replay --input " + ended + " --output " + dir_ + "/x.csv"),
+              HasSubstr("ended.csv:401"));
 }
 
 // The flags follow the detector's key table (nuwatch/detector_settings.h): one per key, named as
