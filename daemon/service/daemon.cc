@@ -75,6 +75,9 @@ using Clock = std::chrono::steady_clock;
 constexpr int kMessagesPerTurn = 256;  // then poll again, so control requests are not starved
 constexpr std::size_t kControlMaxBytes = 1 << 20;
 constexpr int kPublishLingerMs = 200;
+// At a stop the results of the drained input are still on their way to the subscribers: give them
+// this long to leave before the socket closes (a subscriber that is gone only delays the exit).
+constexpr int kStopPublishLingerMs = 5000;
 constexpr double kFlushIntervalSeconds = 1.0;
 constexpr int kTopFeatures = 3;
 // At a stop, the ingest sockets are read until they have been quiet this long (what ZeroMQ has
@@ -677,6 +680,11 @@ void Daemon::Impl::Shutdown() {
     io_work.reset();
   });
   if (io_thread.joinable()) io_thread.join();
+  try {
+    publish.set(zmq::sockopt::linger, kStopPublishLingerMs);
+  } catch (const zmq::error_t&) {
+    // the socket is closed already: nothing left to send
+  }
   publish.close();
   control.close();
   spdlog::info("stopped");

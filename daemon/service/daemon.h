@@ -17,7 +17,10 @@
 //   listening control=ENDPOINT
 //   listening metrics=HOST:PORT    the actual port
 //   ready streams=N                after the lines above; N streams were restored
-//   stopped                        the last line of a clean shutdown
+//   stopping: took N queued ingest messages   at a stop, after the ingest sockets were drained
+//   stopping: N state files written           or, per failed stream, "stopping: stream KEY: the
+//                                  state file could not be written: REASON"
+//   stopped                        the last line of a shutdown
 // The ready file (DaemonOptions::ready_file) is written atomically after the listening lines:
 //   {"ingest":["tcp://..."],"publish":"tcp://...","control":"tcp://...","metrics":"HOST:PORT"}
 //
