@@ -170,7 +170,8 @@ struct Daemon::Impl final : ControlCommands {
   void HandleIngest(std::string_view key, std::string_view payload);
   void ProcessVector(Stream& stream, const PayloadView& payload, int index);
   void Reject(RejectReason reason, std::string_view detail, std::string_view key);
-  void Publish(std::string_view key, const std::string& body);
+  void Publish(std::string_view key, const std::string& body, PublishedMessage message);
+  void DrainSubscriptions();
   void Record(Stream& stream, double time);
 
   // Background work noticed by the socket thread.
@@ -206,7 +207,7 @@ struct Daemon::Impl final : ControlCommands {
 
   zmq::context_t context{1};
   std::vector<zmq::socket_t> ingest;  // PULL sockets, then the SUB socket if any
-  zmq::socket_t publish;
+  zmq::socket_t publish;  // XPUB with ZMQ_XPUB_NODROP: a full subscriber queue is seen and counted
   zmq::socket_t control;
   int wake_fd = -1;
 
@@ -354,8 +355,13 @@ void Daemon::Impl::BindSockets() {
     }
     ingest.push_back(std::move(socket));
   }
-  publish = zmq::socket_t(context, zmq::socket_type::pub);
+  // XPUB rather than PUB: with ZMQ_XPUB_NODROP a send that finds some subscriber's queue at its
+  // high-water mark fails with EAGAIN instead of being dropped silently for that subscriber, so
+  // that every result is either delivered or counted (PROTOCOL.md §9.3). SUB peers see no
+  // difference.
+  publish = zmq::socket_t(context, zmq::socket_type::xpub);
   publish.set(zmq::sockopt::sndhwm, s.publish_high_water_mark);
+  publish.set(zmq::sockopt::xpub_nodrop, true);
   publish.set(zmq::sockopt::linger, kPublishLingerMs);
   endpoints.publish = bind(publish, s.publish_endpoint, "publish.endpoint");
   control = zmq::socket_t(context, zmq::socket_type::rep);
@@ -557,6 +563,8 @@ void Daemon::Impl::Loop() {
   items.push_back({nullptr, wake_fd, ZMQ_POLLIN, 0});
   items.push_back({control.handle(), 0, ZMQ_POLLIN, 0});
   for (auto& socket : ingest) items.push_back({socket.handle(), 0, ZMQ_POLLIN, 0});
+  const std::size_t publish_item = items.size();
+  items.push_back({publish.handle(), 0, ZMQ_POLLIN, 0});
   while (true) {
     try {
       zmq::poll(items, std::chrono::milliseconds(1000));
@@ -580,6 +588,7 @@ void Daemon::Impl::Loop() {
       for (std::size_t i = 0; i < ingest.size(); ++i) {
         if (items[2 + i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
       }
+      if (items[publish_item].revents & ZMQ_POLLIN) DrainSubscriptions();
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
       if (e.num() == ETERM) return;
@@ -830,7 +839,7 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
   }
   result.top_features = std::span<const FeatureShareView>(top_features.data(), top);
   EncodeResultJson(result, &result_json);
-  Publish(stream.key, result_json);
+  Publish(stream.key, result_json, PublishedMessage::kResult);
 
   if (v.transition.type != IncidentTransitionType::kNone) {
     const TrackedIncident& incident = v.transition.incident;
@@ -843,7 +852,7 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
     event.end = incident.end_time;
     event.peak_decision = incident.peak_decision;
     EncodeIncidentEventJson(event, &event_json);
-    Publish(stream.key, event_json);
+    Publish(stream.key, event_json, PublishedMessage::kIncidentEvent);
     spdlog::info("stream={} incident {} id={} start={} peak_decision={}", stream.key,
                  event.kind == IncidentEventKind::kOpen ? "opened" : "closed", incident.id,
                  incident.start_time, incident.peak_decision);
@@ -866,17 +875,31 @@ void Daemon::Impl::Reject(RejectReason reason, std::string_view detail, std::str
   }
 }
 
-void Daemon::Impl::Publish(std::string_view key, const std::string& body) {
+void Daemon::Impl::Publish(std::string_view key, const std::string& body,
+                           PublishedMessage message) {
   try {
-    // PUB never blocks: at a subscriber's high-water mark ZeroMQ drops for that subscriber.
+    // Never blocks. XPUB_NODROP checks every matching subscriber's queue before the first frame
+    // and counts whole messages, so a message goes to every matching subscriber or to none, and
+    // the second frame of a message whose first was taken is never refused.
     if (!publish.send(zmq::const_buffer(key.data(), key.size()),
-                      zmq::send_flags::sndmore | zmq::send_flags::dontwait) ||
-        !publish.send(zmq::const_buffer(body.data(), body.size()), zmq::send_flags::dontwait)) {
-      metrics.publish_failures().Increment();
+                      zmq::send_flags::sndmore | zmq::send_flags::dontwait)) {
+      metrics.publish_dropped(message, PublishDropReason::kSubscriberSlow).Increment();
+      return;
+    }
+    if (!publish.send(zmq::const_buffer(body.data(), body.size()), zmq::send_flags::dontwait)) {
+      metrics.publish_dropped(message, PublishDropReason::kSubscriberSlow).Increment();
     }
   } catch (const zmq::error_t& e) {
-    metrics.publish_failures().Increment();
+    metrics.publish_dropped(message, PublishDropReason::kSendError).Increment();
     spdlog::debug("publish failed: {}", e.what());
+  }
+}
+
+// XPUB hands the subscribers' (un)subscriptions to the application; nuwatchd needs none of them,
+// but unread ones would pile up in the socket for as long as subscribers come and go.
+void Daemon::Impl::DrainSubscriptions() {
+  for (int n = 0; n < kMessagesPerTurn; ++n) {
+    if (!publish.recv(extra_message, zmq::recv_flags::dontwait)) return;
   }
 }
 

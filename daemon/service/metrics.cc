@@ -22,6 +22,16 @@ std::string_view RefitResultLabel(RefitResult result) {
   return "unknown";
 }
 
+std::string_view PublishDropReasonLabel(PublishDropReason reason) {
+  switch (reason) {
+    case PublishDropReason::kSubscriberSlow:
+      return "subscriber_slow";
+    case PublishDropReason::kSendError:
+      return "send_error";
+  }
+  return "unknown";
+}
+
 RefitResult ClassifyRefit(const RefitReport& report) {
   if (report.discarded) return RefitResult::kDiscarded;
   if (!report.ok) return RefitResult::kFailed;
@@ -105,12 +115,24 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
                                       1e-6, 2.5e-6, 5e-6, 1e-5, 2.5e-5, 5e-5, 1e-4, 2.5e-4, 5e-4,
                                       1e-3, 2.5e-3, 5e-3, 1e-2});
   streams_ = &Build(BuildGauge(), "nuwatch_streams", "Streams tracked.", r).Add({});
-  publish_failures_ =
-      &Build(BuildCounter(), "nuwatch_publish_failures_total",
-             "Result and event messages the PUB socket refused to take. Messages ZeroMQ drops "
-             "for a subscriber at publish.high_water_mark are not seen and not counted.",
-             r)
-           .Add({});
+  auto& results_dropped =
+      Build(BuildCounter(), "nuwatch_results_dropped_total",
+            "Results (one per vector processed) not handed to the result socket, by reason: "
+            "subscriber_slow (a subscriber's queue was at publish.high_water_mark; the result "
+            "went to no subscriber), send_error (another ZeroMQ error).",
+            r);
+  auto& events_dropped = Build(BuildCounter(), "nuwatch_incident_events_dropped_total",
+                               "Incident events not handed to the result socket, by reason (as "
+                               "nuwatch_results_dropped_total).",
+                               r);
+  for (std::size_t i = 0; i < kPublishDropReasonCount; ++i) {
+    const prometheus::Labels labels{
+        {"reason", std::string(PublishDropReasonLabel(static_cast<PublishDropReason>(i)))}};
+    publish_dropped_[static_cast<std::size_t>(PublishedMessage::kResult)][i] =
+        &results_dropped.Add(labels);
+    publish_dropped_[static_cast<std::size_t>(PublishedMessage::kIncidentEvent)][i] =
+        &events_dropped.Add(labels);
+  }
   state_write_failures_ = &Build(BuildCounter(), "nuwatch_state_write_failures_total",
                                  "State files that could not be written.", r)
                                .Add({});

@@ -25,9 +25,10 @@
 //                                                      the vector that triggered the model's refit
 //   nuwatch_stream_memory_bytes{stream}       gauge    window, model and solution bytes
 //   nuwatch_streams                           gauge    streams tracked
-//   nuwatch_publish_failures_total            counter  result/event messages the PUB socket
-//                                                      refused (PUB drops at its high-water mark
-//                                                      silently; those drops are not seen)
+//   nuwatch_results_dropped_total{reason}     counter  results not handed to the result socket:
+//                                                      subscriber_slow (a subscriber's queue was at
+//                                                      publish.high_water_mark), send_error
+//   nuwatch_incident_events_dropped_total{reason}  counter  incident events, likewise
 //   nuwatch_state_write_failures_total        counter  state files that could not be written
 //   nuwatch_build_info{version}               gauge    always 1
 //
@@ -52,6 +53,13 @@
 #include "protocol/wire_protocol.h"
 
 namespace nuwatch {
+
+// Why a message for the result socket was not handed to it (PROTOCOL.md §9.3).
+enum class PublishDropReason : uint8_t { kSubscriberSlow, kSendError };
+inline constexpr std::size_t kPublishDropReasonCount = 2;
+// "subscriber_slow", "send_error".
+std::string_view PublishDropReasonLabel(PublishDropReason reason);
+enum class PublishedMessage : uint8_t { kResult, kIncidentEvent };
 
 enum class RefitResult : uint8_t { kOk, kNotConverged, kFailed, kDiscarded, kCoalesced };
 inline constexpr std::size_t kRefitResultCount = 5;
@@ -98,7 +106,10 @@ class DaemonMetrics {
   prometheus::Histogram& refit_duration() const { return *refit_duration_; }
   prometheus::Histogram& score_duration() const { return *score_duration_; }
   prometheus::Gauge& streams() const { return *streams_; }
-  prometheus::Counter& publish_failures() const { return *publish_failures_; }
+  // nuwatch_results_dropped_total or nuwatch_incident_events_dropped_total, by reason.
+  prometheus::Counter& publish_dropped(PublishedMessage message, PublishDropReason reason) const {
+    return *publish_dropped_[static_cast<std::size_t>(message)][static_cast<std::size_t>(reason)];
+  }
   prometheus::Counter& state_write_failures() const { return *state_write_failures_; }
 
   // The text exposition format, as /metrics serves it.
@@ -122,7 +133,7 @@ class DaemonMetrics {
   prometheus::Histogram* refit_duration_;
   prometheus::Histogram* score_duration_;
   prometheus::Gauge* streams_;
-  prometheus::Counter* publish_failures_;
+  std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;
 };
 

@@ -161,13 +161,15 @@ const Setting<S> kDaemonKeys[] = {
     {.section = "publish",
      .name = "endpoint",
      .member = &S::publish_endpoint,
-     .doc = "Endpoint the daemon binds its PUB socket on, for results and incident events.",
+     .doc = "Endpoint the daemon binds its result socket (XPUB) on, for results and incident "
+            "events.",
      .unit = "ZeroMQ endpoint",
      .reload = kRestart},
     {.section = "publish",
      .name = "high_water_mark",
      .member = &S::publish_high_water_mark,
-     .doc = "Messages queued per subscriber before ZeroMQ drops for that subscriber; 0: no limit.",
+     .doc = "Messages queued per subscriber; while one is full, results are dropped for all "
+            "and counted (nuwatch_results_dropped_total); 0: no limit.",
      .unit = "messages",
      .bounds = AtLeast(0),
      .bounds_note = " (0: no limit)",
