@@ -53,7 +53,7 @@ Stream::Stream(std::string stream_key, int stream_dims, const DetectorOptions& s
 
 Stream::~Stream() {
   detector.reset();
-  metrics_owner->RemoveStream(metrics);
+  if (!keep_metric_series) metrics_owner->RemoveStream(metrics);
 }
 
 void Stream::RefreshSlowGauges() {
@@ -85,6 +85,11 @@ std::unique_ptr<Stream> StreamRegistry::Remove(std::string_view key) {
   std::unique_ptr<Stream> stream = std::move(it->second);
   streams_.erase(it);
   return stream;
+}
+
+void StreamRegistry::Clear() {
+  for (auto& [key, stream] : streams_) stream->keep_metric_series = true;
+  streams_.clear();
 }
 
 std::vector<Stream*> StreamRegistry::Sorted() const {

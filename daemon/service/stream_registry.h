@@ -53,7 +53,8 @@ struct Stream {
   Stream(std::string key, int dims, const DetectorOptions& options, RefitExecutor* pool,
          DaemonMetrics* metrics, int64_t anomaly_ratio_window,
          std::function<void(Stream*)> on_refit_finished);
-  // Waits for the stream's refit in flight, then removes its metric series.
+  // Waits for the stream's refit in flight, then removes its metric series unless
+  // keep_metric_series is set.
   ~Stream();
   Stream(const Stream&) = delete;
   Stream& operator=(const Stream&) = delete;
@@ -89,6 +90,10 @@ struct Stream {
   int write_failures = 0;
   std::string write_error;
   std::chrono::steady_clock::time_point retry_at{};
+  // Set when the registry goes away with the daemon: its series go with the metrics registry, so
+  // they are not removed one by one (prometheus-cpp's Family::Remove scans the family, which
+  // made a shutdown of N streams cost N^2).
+  bool keep_metric_series = false;
   std::unique_ptr<StreamRecorder> recorder;  // null: not recording
   bool recording_failed = false;             // an error was logged; paused until the next flush
   int64_t recording_skipped = 0;             // rows not recorded while paused (logged on resume)
@@ -108,8 +113,10 @@ class StreamRegistry {
   std::size_t size() const { return streams_.size(); }
   // Every stream, sorted by key.
   std::vector<Stream*> Sorted() const;
-  // Destroys every stream (each waits for its refit in flight).
-  void Clear() { streams_.clear(); }
+  // Destroys every stream (each waits for its refit in flight), in time linear in their number:
+  // for the daemon's shutdown, so their metric series are left to the metrics registry, which
+  // must be destroyed after (or never scraped again).
+  void Clear();
 
  private:
   struct Hash {

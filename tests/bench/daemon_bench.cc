@@ -19,7 +19,7 @@
 // directory) and the time from SIGTERM to its exit is measured, with its RSS per stream.
 //
 // Usage: nuwatch_daemon_bench [--nuwatchd PATH] [--seconds 1.0] [--rounds 2] [--json]
-//                             [--shutdown-streams 0]
+//                             [--shutdown-streams 0] [--shutdown-without-state]
 #include <CLI/CLI.hpp>
 #include <algorithm>
 #include <atomic>
@@ -409,11 +409,12 @@ double RssBytes(pid_t pid) {
 }
 
 // N streams, one vector each, then SIGTERM: seconds to exit and RSS per stream.
-json MeasureShutdown(const std::string& program, const fs::path& dir, int streams) {
+json MeasureShutdown(const std::string& program, const fs::path& dir, int streams, bool state) {
   zmq::context_t context(1);
   ReadyEndpoints endpoints;
-  const std::string extra = "[limits]\nmax_streams = " + std::to_string(streams + 1) +
-                            "\n[state]\ndir = \"" + (dir / "state").string() + "\"\n";
+  fs::create_directories(dir / "state");
+  std::string extra = "[limits]\nmax_streams = " + std::to_string(streams + 1) + "\n";
+  if (state) extra += "[state]\ndir = \"" + (dir / "state").string() + "\"\n";
   auto process = StartDaemon(program, dir, "shutdown", DaemonConfig(extra), &endpoints);
   const double rss_before = RssBytes(process->pid());
   zmq::socket_t push(context, zmq::socket_type::push);
@@ -443,21 +444,22 @@ json MeasureShutdown(const std::string& program, const fs::path& dir, int stream
   std::size_t files = 0;
   for ([[maybe_unused]] const auto& f : fs::directory_iterator(dir / "state")) ++files;
   return {{"streams", streams},
+          {"state_dir", state},
           {"sigterm_to_exit_seconds", seconds},
           {"exit_status", status},
           {"state_files", files},
           {"rss_bytes_per_stream", (rss_after - rss_before) / streams}};
 }
 
-int Run(const std::string& program, double seconds, int rounds, bool as_json,
-        int shutdown_streams) {
+int Run(const std::string& program, double seconds, int rounds, bool as_json, int shutdown_streams,
+        bool shutdown_state) {
   const fs::path dir =
       fs::temp_directory_path() / ("nuwatch_daemon_bench_" + std::to_string(::getpid()));
   fs::create_directories(dir);
   zmq::context_t context(1);
   const double load_before = LoadAverage();
   if (rounds == 0) {  // the shutdown measure only
-    const json shutdown = MeasureShutdown(program, dir, shutdown_streams);
+    const json shutdown = MeasureShutdown(program, dir, shutdown_streams, shutdown_state);
     fs::remove_all(dir);
     std::cout << json{{"shutdown", shutdown},
                       {"load_average_before", load_before},
@@ -552,7 +554,8 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json,
   }
   daemon.process.reset();
   relay.process.reset();
-  if (shutdown_streams > 0) out["shutdown"] = MeasureShutdown(program, dir, shutdown_streams);
+  if (shutdown_streams > 0)
+    out["shutdown"] = MeasureShutdown(program, dir, shutdown_streams, shutdown_state);
   out["load_average_before"] = load_before;
   out["load_average_after"] = LoadAverage();
   fs::remove_all(dir);
@@ -596,6 +599,7 @@ int main(int argc, char** argv) {
   int rounds = 2;
   bool as_json = false;
   int shutdown_streams = 0;
+  bool shutdown_state = true;
   app.add_option("--nuwatchd", program, "the nuwatchd program to measure");
   app.add_option("--seconds", seconds, "sending time of each phase")->check(CLI::Range(0.1, 30.0));
   app.add_option("--rounds", rounds,
@@ -606,11 +610,13 @@ int main(int argc, char** argv) {
   app.add_option("--shutdown-streams", shutdown_streams,
                  "also time SIGTERM-to-exit of a nuwatchd holding this many streams")
       ->check(CLI::Range(0, 100000));
+  app.add_flag("!--shutdown-without-state", shutdown_state,
+               "--shutdown-streams without a state directory: no state files to write");
   app.add_option("--relay", relay_ready, "internal: run as the bare relay")->group("");
   CLI11_PARSE(app, argc, argv);
   try {
     if (!relay_ready.empty()) return nuwatch::RunRelay(relay_ready);
-    return nuwatch::Run(program, seconds, rounds, as_json, shutdown_streams);
+    return nuwatch::Run(program, seconds, rounds, as_json, shutdown_streams, shutdown_state);
   } catch (const std::exception& e) {
     std::fprintf(stderr, "nuwatch_daemon_bench: %s\n", e.what());
     return 1;
