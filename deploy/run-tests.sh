@@ -28,7 +28,11 @@ fi
 # The sanitizers' run-time options for every process a test starts (nuwatchd, nuwatch, python's
 # children): fail on the first report, and symbolize stacks with Debian's llvm-symbolizer.
 sanitizers=tests/sanitizers
-export ASAN_OPTIONS="abort_on_error=1:detect_leaks=1:strict_string_checks=1:check_initialization_order=1"
+# alloc_dealloc_mismatch=0: Debian's libzmq (ZeroMQ 4.3.4) frees with free() objects it allocated
+# with operator new(nothrow), in zmq_bind and in its own I/O threads (both frames inside
+# libzmq.so.5, seen in every test with a socket); an uninstrumented library's mismatch that no
+# suppression file can name. Every other ASan check stays on.
+export ASAN_OPTIONS="abort_on_error=1:detect_leaks=1:strict_string_checks=1:check_initialization_order=1:alloc_dealloc_mismatch=0"
 export UBSAN_OPTIONS="print_stacktrace=1:halt_on_error=1"
 export TSAN_OPTIONS="halt_on_error=1:second_deadlock_stack=1"
 # Suppressions (each line justified in its file) only for what uninstrumented libraries do.

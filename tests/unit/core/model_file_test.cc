@@ -59,7 +59,8 @@ bool SameBytes(const T& a, const T& b) {
 }
 
 bool SameDoubles(const double* a, const double* b, std::size_t n) {
-  return std::memcmp(a, b, n * sizeof(double)) == 0;
+  // memcmp's pointers must not be null even for n == 0 (an empty Eigen vector's data() is null).
+  return n == 0 || std::memcmp(a, b, n * sizeof(double)) == 0;
 }
 
 void ExpectIdenticalParts(const ModelParts& a, const ModelParts& b) {
