@@ -231,7 +231,7 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
   const int64_t l = x.rows();
   const double scale = options.nu * static_cast<double>(l);  // a' = scale * a
   const double upper = 1.0;
-  const double eps = options.tolerance * std::min(1.0, scale);
+  const double eps_requested = options.tolerance * std::min(1.0, scale);
   const int64_t max_iterations =
       options.max_iterations > 0 ? options.max_iterations : std::max<int64_t>(10'000'000, 100 * l);
 
@@ -278,6 +278,22 @@ SolverResult SolveOneClass(const MatrixD& x, const Kernel& kernel, const SolverO
   }
 
   ColumnCache cache(x, kernel, options.cache_bytes);
+  // The gradient is built from float columns, so it is exact only to about float epsilon times its
+  // largest possible magnitude, max k(x, x) (Cauchy-Schwarz) times sum a' = nu l. An absolute
+  // tolerance below that cannot be reached: a polynomial kernel on a vector far from the scaler's
+  // centre (k ~ 1e28) ran every refit to the iteration cap. The floor keeps the rule relative to
+  // what the cache resolves; for rbf (k(x, x) = 1) it stays below LIBSVM's rule unless nu l > 8000.
+  double largest_diagonal = 0;
+  for (int64_t i = 0; i < l; ++i) largest_diagonal = std::max(largest_diagonal, cache.Diagonal(i));
+  if (!(largest_diagonal <= static_cast<double>(std::numeric_limits<float>::max()))) {
+    std::ostringstream m;
+    m << "SolveOneClass: kernel values overflow the solver's float cache (largest k(x, x) = "
+      << largest_diagonal << "); scale the features or use the rbf kernel";
+    throw PreconditionError(m.str());
+  }
+  const double eps =
+      std::max(eps_requested, static_cast<double>(std::numeric_limits<float>::epsilon()) *
+                                  largest_diagonal * std::max(1.0, scale));
   std::vector<double> gradient(l, 0.0);
   auto reconstruct_gradient = [&](const std::vector<int64_t>& targets) {
     for (int64_t t : targets) gradient[t] = 0;

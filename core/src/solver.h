@@ -8,7 +8,12 @@
 //   max{G_i : a'_i > 0} - min{G_i : a'_i < 1} < tolerance,   G = K a'.
 // When nu l < 1 the gradient shrinks with nu l and that absolute rule would stop far too early, so
 // the tolerance is scaled by nu l there: the rule is relative to the size of the gradient.
-// Thread safety: SolveOneClass is reentrant; it allocates its own cache.
+// The kernel columns are cached in float, so the gradient is resolved only to about float epsilon
+// times its largest possible size (max k(x, x) nu l); the tolerance is never taken below that
+// floor, or a kernel with large values (polynomial or linear on a vector far from the scaler's
+// centre) could never meet the rule and would run to the iteration cap. For rbf (k(x, x) = 1) the
+// floor lies below LIBSVM's rule unless nu l > 8000. Kernel values beyond float's range are
+// refused. Thread safety: SolveOneClass is reentrant; it allocates its own cache.
 #pragma once
 
 #include <cstddef>
@@ -40,7 +45,8 @@ struct SolverResult {
 };
 
 // Solves the dual on the rows of x (already scaled).
-// Requires: x.rows() >= 1, finite values; 0 < nu <= 1; tolerance > 0; a valid kernel. If
+// Requires: x.rows() >= 1, finite values; 0 < nu <= 1; tolerance > 0; a valid kernel whose
+// values k(x_i, x_i) fit in a float. If
 // initial_alpha is given it must be feasible (size l, 0 <= a_i <= 1/(nu l), sum = 1, each to 1e-9
 // relative); it is the warm start. Violations throw PreconditionError naming the offending value.
 // Ensures: result.alpha feasible; converged unless the iteration cap was hit.

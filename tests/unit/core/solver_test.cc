@@ -458,6 +458,44 @@ TEST(IterationCap, ReportsNotConvergedWithAFeasibleAlpha) {
   EXPECT_NEAR(r.objective, 0.5 * a_capped.dot(k * a_capped), FloatSlack(k));
 }
 
+// A polynomial kernel on a vector far from the rest: k(x, x) ~ 1e28 for the far row, so the float
+// columns resolve the gradient only to about 1e21 and LIBSVM's absolute rule (gap < 1e-3) cannot be
+// met; the solver ran to the cap of 10^7 iterations on every refit (a state file found by the
+// state_fuzz target: 56 rows, 1.6 s a refit in Release, 36 s under ASan). With the floor in
+// solver.h it stops where the cache's precision does, and the KKT conditions recomputed in double
+// hold to that precision.
+TEST(StoppingRule, AFarVectorUnderAPolynomialKernelConvergesInsteadOfRunningToTheCap) {
+  MatrixD x(51, 2);
+  x.topRows(50) = RandomGaussian(50, 2, 4242);
+  x.row(50) << 0.2, 6.0e4;
+  Kernel kernel;
+  kernel.type = KernelType::kPolynomial;
+  kernel.gamma = 0.5;
+  kernel.degree = 3;
+  SolverOptions options = Options(0.05);
+  options.max_iterations = 100'000;  // ample for 51 rows; a regression fails here, not by time
+  const SolverResult r = SolveOneClass(x, kernel, options);
+  EXPECT_TRUE(r.converged) << r.iterations << " iterations";
+  ExpectFeasible(r, x.rows(), 0.05);
+  // ExpectKkt's float slack (1e-6 max |K|) exceeds the floor (float epsilon max k(x, x) nu l).
+  ExpectKkt(x, kernel, 0.05, 1e-3, r);
+}
+
+TEST(StoppingRule, KernelValuesBeyondTheFloatCacheAreRefusedByName) {
+  MatrixD x = RandomGaussian(20, 2, 4243);
+  x(19, 1) = 1.0e7;  // (0.5 * 1e14)^3 ~ 1e41 > FLT_MAX ~ 3.4e38: the float column would be inf
+  Kernel kernel;
+  kernel.type = KernelType::kPolynomial;
+  kernel.gamma = 0.5;
+  kernel.degree = 3;
+  try {
+    (void)SolveOneClass(x, kernel, Options(0.1));
+    ADD_FAILURE() << "no PreconditionError";
+  } catch (const PreconditionError& e) {
+    EXPECT_THAT(e.what(), HasSubstr("overflow"));
+  }
+}
+
 // ---------------------------------------------------------------------------------------------
 // Edge cases from methods.md.
 
