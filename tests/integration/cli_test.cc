@@ -22,6 +22,8 @@
 #include <thread>
 #include <vector>
 
+#include "common/program_test.h"
+
 namespace {
 
 using nlohmann::json;
@@ -31,42 +33,12 @@ using ::testing::Not;
 const std::string kNuwatch = NUWATCH_PROGRAM;
 const std::string kNuwatchd = NUWATCHD_PROGRAM;
 
-struct ProgramRun {
-  int exit_code = -1;
-  std::string out, err;
-};
+using nuwatch::testing_data::ProgramRun;
+using nuwatch::testing_data::ReadWholeFile;
 
-std::string ReadFile(const std::string& path) {
-  std::ifstream in(path, std::ios::binary);
-  std::ostringstream s;
-  s << in.rdbuf();
-  return s.str();
-}
-
-class Cli : public ::testing::Test {
+class Cli : public nuwatch::testing_data::ProgramTest {
  protected:
-  void SetUp() override {
-    dir_ = std::filesystem::temp_directory_path() /
-           ("nuwatch_cli_" + std::to_string(::getpid()) + "_" +
-            ::testing::UnitTest::GetInstance()->current_test_info()->name());
-    std::filesystem::create_directories(dir_);
-  }
-  void TearDown() override { std::filesystem::remove_all(dir_); }
-
-  std::string Path(const std::string& name) const { return (dir_ / name).string(); }
-  std::string Write(const std::string& name, const std::string& text) const {
-    std::ofstream(Path(name)) << text;
-    return Path(name);
-  }
-  ProgramRun Run(const std::string& program, const std::string& args) const {
-    const std::string out = Path("stdout.txt"), err = Path("stderr.txt");
-    const int status =
-        std::system((program + " " + args + " </dev/null >" + out + " 2>" + err).c_str());
-    return {WIFEXITED(status) ? WEXITSTATUS(status) : -1, ReadFile(out), ReadFile(err)};
-  }
   ProgramRun Nuwatch(const std::string& args) const { return Run(kNuwatch, args); }
-
-  std::filesystem::path dir_;
 };
 
 // A typo is named with the flag it resembles, before CLI11 would complain that the flag it
@@ -120,15 +92,15 @@ TEST_F(Cli, LastRepeatedFlagWins) {
 TEST_F(Cli, SimulateRefusesToOverwriteWithoutForce) {
   const std::string args = "simulate --pumps 1 --duration 1h --interval 60s --output " + Path("p");
   ASSERT_EQ(Nuwatch(args + " --seed 1").exit_code, 0);
-  const std::string first = ReadFile(Path("p") + "/stream.csv");
+  const std::string first = ReadWholeFile(Path("p") + "/stream.csv");
   const ProgramRun again = Nuwatch(args + " --seed 2");
   EXPECT_EQ(again.exit_code, 1);
   EXPECT_EQ(again.err,
             "nuwatch simulate: " + Path("p") + "/stream.csv exists; add --force to replace it\n");
-  EXPECT_EQ(ReadFile(Path("p") + "/stream.csv"), first);  // untouched
+  EXPECT_EQ(ReadWholeFile(Path("p") + "/stream.csv"), first);  // untouched
   const ProgramRun forced = Nuwatch(args + " --seed 2 --force");
   EXPECT_EQ(forced.exit_code, 0) << forced.err;
-  EXPECT_NE(ReadFile(Path("p") + "/stream.csv"), first);
+  EXPECT_NE(ReadWholeFile(Path("p") + "/stream.csv"), first);
 }
 
 // A repeatable flag keeps every value (tail --stream A --stream B follows both).
@@ -288,8 +260,8 @@ refit_every = 0
         Path("nuwatchd.log"));
     ASSERT_GT(daemon_->pid(), 0);
     ASSERT_TRUE(PollUntil([&] { return std::filesystem::exists(Path("ready.json")); }))
-        << ReadFile(Path("nuwatchd.log"));
-    const json ready = json::parse(ReadFile(Path("ready.json")));
+        << ReadWholeFile(Path("nuwatchd.log"));
+    const json ready = json::parse(ReadWholeFile(Path("ready.json")));
     control_ = ready["control"];
     ingest_ = ready["ingest"][0];
   }
@@ -329,7 +301,7 @@ refit_every = 0
 TEST_F(Control, EveryCommandAgainstARealDaemon) {
   SendRows("pump-01", 30);
   ASSERT_TRUE(PollUntil([&] { return Vectors("pump-01") == 30; }))
-      << StatusJson().dump() << ReadFile(Path("nuwatchd.log"));
+      << StatusJson().dump() << ReadWholeFile(Path("nuwatchd.log"));
 
   const std::string script = Write("status.py", R"(import sys, zmq
 s = zmq.Context().socket(zmq.REQ)

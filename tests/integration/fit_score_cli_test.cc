@@ -15,44 +15,21 @@
 #include <string>
 #include <vector>
 
+#include "common/program_test.h"
+
 namespace {
 
 using ::testing::HasSubstr;
 
 const std::string kNuwatch = NUWATCH_PROGRAM;
 
-struct ProgramRun {
-  int exit_code = -1;
-  std::string out, err;
-};
+using nuwatch::testing_data::ProgramRun;
+using nuwatch::testing_data::ReadWholeFile;
 
-std::string ReadFile(const std::string& path) {
-  std::ifstream in(path, std::ios::binary);
-  std::ostringstream s;
-  s << in.rdbuf();
-  return s.str();
-}
-
-class FitScoreCli : public ::testing::Test {
+class FitScoreCli : public nuwatch::testing_data::ProgramTest {
  protected:
-  void SetUp() override {
-    dir_ = std::filesystem::temp_directory_path() /
-           ("nuwatch_fit_cli_" + std::to_string(::getpid()) + "_" +
-            ::testing::UnitTest::GetInstance()->current_test_info()->name());
-    std::filesystem::create_directories(dir_);
-  }
-  void TearDown() override { std::filesystem::remove_all(dir_); }
+  ProgramRun Nuwatch(const std::string& args) const { return Run(kNuwatch, args); }
 
-  std::string Path(const std::string& name) const { return (dir_ / name).string(); }
-  std::string Write(const std::string& name, const std::string& text) const {
-    std::ofstream(Path(name)) << text;
-    return Path(name);
-  }
-  ProgramRun Nuwatch(const std::string& args) const {
-    const std::string out = Path("stdout.txt"), err = Path("stderr.txt");
-    const int status = std::system((kNuwatch + " " + args + " >" + out + " 2>" + err).c_str());
-    return {WIFEXITED(status) ? WEXITSTATUS(status) : -1, ReadFile(out), ReadFile(err)};
-  }
   // Gaussian training data with a time column, which fit must skip.
   std::string TrainingFile(int rows) const {
     std::mt19937_64 generator(3);
@@ -64,8 +41,6 @@ class FitScoreCli : public ::testing::Test {
           << 300 + 5 * normal(generator) << "," << 50 + normal(generator) << "\n";
     return Write("train.csv", csv.str());
   }
-
-  std::filesystem::path dir_;
 };
 
 int CountLines(const std::string& text) {
@@ -230,7 +205,7 @@ TEST_F(FitScoreCli, BadInputsGiveOneLineNamingFileAndLine) {
   EXPECT_EQ(mismatch.exit_code, 1);
   EXPECT_THAT(mismatch.err, HasSubstr("two.csv: 2 feature columns, the model"));
   // A corrupted model file.
-  std::string bytes = ReadFile(Path("m.nuw"));
+  std::string bytes = ReadWholeFile(Path("m.nuw"));
   bytes[bytes.size() / 2] ^= 0x40;
   std::ofstream(Path("bad.nuw"), std::ios::binary) << bytes;
   ProgramRun corrupt = Nuwatch("inspect " + Path("bad.nuw"));

@@ -21,6 +21,7 @@
 #include <string>
 #include <vector>
 
+#include "common/program_test.h"
 #include "nuwatch/detector_settings.h"
 
 namespace {
@@ -35,17 +36,10 @@ const std::string kHeader =
 constexpr int kWarmup = 720;
 constexpr int kBudget = 64;
 
-struct RunResult {
-  int exit_code = -1;
-  std::string err;
-};
+using RunResult = nuwatch::testing_data::ProgramRun;
+using nuwatch::testing_data::RunProgram;
 
-std::string ReadFile(const std::string& path) {
-  std::ifstream in(path, std::ios::binary);
-  std::ostringstream s;
-  s << in.rdbuf();
-  return s.str();
-}
+std::string ReadFile(const std::string& path) { return nuwatch::testing_data::ReadWholeFile(path); }
 
 std::vector<std::string> Split(const std::string& line) {
   std::vector<std::string> fields;
@@ -88,15 +82,7 @@ class ReplayCliTest : public ::testing::Test {
   }
   static void TearDownTestSuite() { std::filesystem::remove_all(dir_); }
 
-  static RunResult Run(const std::string& args) {
-    const std::string err_path = dir_ + "/stderr.txt";
-    const std::string command = kNuwatch + " " + args + " >" + dir_ + "/stdout.txt 2>" + err_path;
-    const int status = std::system(command.c_str());
-    RunResult r;
-    r.exit_code = WIFEXITED(status) ? WEXITSTATUS(status) : -1;
-    r.err = ReadFile(err_path);
-    return r;
-  }
+  static RunResult Run(const std::string& args) { return RunProgram(kNuwatch, args, dir_); }
 
   // The replay of the brief's settings, with `extra` flags appended, into dir_/name.
   static std::string Replay(const std::string& name, const std::string& extra = "") {

@@ -20,6 +20,7 @@
 #include <vector>
 
 #include "charts/charts.h"
+#include "common/program_test.h"
 #include "formats/csv_table.h"
 #include "settings/config.h"
 
@@ -31,27 +32,16 @@ using ::testing::Not;
 
 const std::string kBinary = std::string(NUWATCH_PROGRAM);
 
-std::string ReadBytes(const std::string& path) {
-  std::ifstream in(path, std::ios::binary);
-  return std::string(std::istreambuf_iterator<char>(in), std::istreambuf_iterator<char>());
-}
+using nuwatch::testing_data::ProgramRun;
 
-struct ProcessResult {
-  int status = -1;
-  std::string out, err;
-};
+std::string ReadBytes(const std::string& path) {
+  return nuwatch::testing_data::ReadWholeFile(path);
+}
 
 // Runs `nuwatch ARGS` with stdout and stderr captured in files (stderr is not a terminal, so
 // tune prints a one-line summary instead of a progress bar).
-ProcessResult Nuwatch(const std::string& arguments, const std::string& dir) {
-  const std::string out = dir + "/stdout.txt", err = dir + "/stderr.txt";
-  const std::string command = kBinary + " " + arguments + " >" + out + " 2>" + err + " </dev/null";
-  const int raw = std::system(command.c_str());
-  ProcessResult run;
-  run.status = WIFEXITED(raw) ? WEXITSTATUS(raw) : -1;
-  run.out = ReadBytes(out);
-  run.err = ReadBytes(err);
-  return run;
+ProgramRun Nuwatch(const std::string& arguments, const std::string& dir) {
+  return nuwatch::testing_data::RunProgram(kBinary, arguments, dir);
 }
 
 class TuneCliTest : public ::testing::Test {
@@ -60,10 +50,10 @@ class TuneCliTest : public ::testing::Test {
     dir_ = new std::string(::testing::TempDir() + "tune_cli_" + std::to_string(::getpid()));
     std::filesystem::remove_all(*dir_);
     std::filesystem::create_directories(*dir_);
-    const ProcessResult simulate = Nuwatch(
+    const ProgramRun simulate = Nuwatch(
         "simulate --output " + *dir_ + "/plant --duration 2d --interval 60s --pumps 2 --seed 5",
         *dir_);
-    ASSERT_EQ(simulate.status, 0) << simulate.err;
+    ASSERT_EQ(simulate.exit_code, 0) << simulate.err;
   }
   static void TearDownTestSuite() {
     std::filesystem::remove_all(*dir_);
@@ -151,9 +141,9 @@ const std::vector<std::string> kMetricColumns = {"nu",
 
 TEST_F(TuneCliTest, WritesTheReportDirectory) {
   const std::string report = Dir() + "/report";
-  const ProcessResult run =
+  const ProgramRun run =
       Nuwatch(Tune(report, "--nu 0.01,0.05,0.2 --max-false-alarms-per-day 5 --jobs 2"), Dir());
-  ASSERT_EQ(run.status, 0) << run.err;
+  ASSERT_EQ(run.exit_code, 0) << run.err;
   // Not a terminal: one summary line, no progress bar redraws.
   EXPECT_THAT(run.err, HasSubstr("tune: 3 setting(s) x 5760 rows replayed in"));
   EXPECT_THAT(run.err, Not(HasSubstr("\r")));
@@ -204,18 +194,17 @@ TEST_F(TuneCliTest, WritesTheReportDirectory) {
 // `nuwatch evaluate`: a path through the written files, the CSV readers and a second process.
 TEST_F(TuneCliTest, ScoresAsReplayAndEvaluateDo) {
   const std::string report = Dir() + "/single";
-  const ProcessResult tune =
-      Nuwatch(Tune(report, "--nu 0.05 --alarm-kind anomaly --jobs 1"), Dir());
-  ASSERT_EQ(tune.status, 0) << tune.err;
+  const ProgramRun tune = Nuwatch(Tune(report, "--nu 0.05 --alarm-kind anomaly --jobs 1"), Dir());
+  ASSERT_EQ(tune.exit_code, 0) << tune.err;
   const std::string replayed = Dir() + "/replayed.csv";
-  const ProcessResult replay = Nuwatch("replay --input " + Stream() + " --output " + replayed +
-                                           " --nu 0.05 --window 300" + SmallDetector(),
-                                       Dir());
-  ASSERT_EQ(replay.status, 0) << replay.err;
-  const ProcessResult evaluate = Nuwatch(
+  const ProgramRun replay = Nuwatch("replay --input " + Stream() + " --output " + replayed +
+                                        " --nu 0.05 --window 300" + SmallDetector(),
+                                    Dir());
+  ASSERT_EQ(replay.exit_code, 0) << replay.err;
+  const ProgramRun evaluate = Nuwatch(
       "evaluate --json --alarm-kind anomaly --alarms " + replayed + " --incidents " + Incidents(),
       Dir());
-  ASSERT_EQ(evaluate.status, 0) << evaluate.err;
+  ASSERT_EQ(evaluate.exit_code, 0) << evaluate.err;
 
   const nlohmann::json tuned =
       nlohmann::json::parse(ReadBytes(report + "/results.json")).at("chosen");
@@ -231,9 +220,9 @@ TEST_F(TuneCliTest, ScoresAsReplayAndEvaluateDo) {
 TEST_F(TuneCliTest, GivesTheSameResultsWithOneAndTwoJobs) {
   const auto results = [&](const std::string& jobs) {
     const std::string report = Dir() + "/jobs" + jobs;
-    const ProcessResult run =
+    const ProgramRun run =
         Nuwatch(Tune(report, "--nu 0.02,0.1 --window 200,300 --jobs " + jobs), Dir());
-    EXPECT_EQ(run.status, 0) << run.err;
+    EXPECT_EQ(run.exit_code, 0) << run.err;
     nlohmann::json json = nlohmann::json::parse(ReadBytes(report + "/results.json"));
     // Wall time is the one figure that may differ.
     for (nlohmann::json& setting : json.at("settings")) setting.erase("replay_seconds");
@@ -249,8 +238,8 @@ TEST_F(TuneCliTest, GivesTheSameResultsWithOneAndTwoJobs) {
 TEST_F(TuneCliTest, RejectsBadInputWithOneLine) {
   const auto expect_error = [&](const std::string& arguments, const std::string& message) {
     SCOPED_TRACE(arguments);
-    const ProcessResult run = Nuwatch(arguments, Dir());
-    EXPECT_EQ(run.status, 1);
+    const ProgramRun run = Nuwatch(arguments, Dir());
+    EXPECT_EQ(run.exit_code, 1);
     EXPECT_THAT(run.err, HasSubstr(message));
     EXPECT_EQ(std::count(run.err.begin(), run.err.end(), '\n'), 1) << run.err;
   };

@@ -15,6 +15,7 @@
 #include <nlohmann/json.hpp>
 #include <string>
 
+#include "common/run_command.h"
 #include "formats/csv_table.h"
 
 namespace nuwatch {
@@ -182,23 +183,10 @@ TEST(AlarmFilesTest, RejectsBadFilesNamingFileAndLine) {
 
 // --- the `nuwatch evaluate` command on files ---
 
-struct CommandResult {
-  int exit_code = -1;
-  std::string output;  // stdout and stderr
-};
+using nuwatch::testing_data::CommandResult;
 
 CommandResult RunEvaluate(const std::string& arguments) {
-  const std::string command = std::string(NUWATCH_PROGRAM) + " evaluate " + arguments + " 2>&1";
-  CommandResult result;
-  FILE* pipe = popen(command.c_str(), "r");
-  if (pipe == nullptr) return result;
-  std::array<char, 4096> buffer;
-  std::size_t n;
-  while ((n = fread(buffer.data(), 1, buffer.size(), pipe)) > 0)
-    result.output.append(buffer.data(), n);
-  const int status = pclose(pipe);
-  result.exit_code = WIFEXITED(status) ? WEXITSTATUS(status) : -1;
-  return result;
+  return nuwatch::testing_data::RunCommand(std::string(NUWATCH_PROGRAM) + " evaluate " + arguments);
 }
 
 class EvaluateCommandTest : public ::testing::Test {
