@@ -448,9 +448,14 @@ RefitReport Detector::last_refit() const {
 
 double Detector::model_time() const { return shared_->model_time.load(); }
 
-Verdict Detector::Observe(double time, std::span<const double> x) {
+void Detector::CheckVector(double time, std::span<const double> x, const char* caller,
+                           int64_t row) const {
+  // Built only on the way to a throw: Observe allocates nothing in the steady state.
+  auto where = [&] {
+    return std::string(caller) + (row >= 0 ? ": row " + std::to_string(row) + ":" : ":");
+  };
   if (static_cast<int>(x.size()) != dims_) {
-    throw PreconditionError("Detector::Observe: vector has " + std::to_string(x.size()) +
+    throw PreconditionError(where() + " vector has " + std::to_string(x.size()) +
                             " values, the stream " + std::to_string(dims_));
   }
   auto text = [](double v) {
@@ -459,14 +464,17 @@ Verdict Detector::Observe(double time, std::span<const double> x) {
     return s.str();
   };
   if (!std::isfinite(time))
-    throw PreconditionError("Detector::Observe: time = " + text(time) + " is not finite");
+    throw PreconditionError(where() + " time = " + text(time) + " is not finite");
   for (std::size_t j = 0; j < x.size(); ++j) {
     if (!std::isfinite(x[j])) {
-      throw PreconditionError("Detector::Observe: x[" + std::to_string(j) + "] = " + text(x[j]) +
+      throw PreconditionError(where() + " x[" + std::to_string(j) + "] = " + text(x[j]) +
                               " is not finite");
     }
   }
+}
 
+Verdict Detector::Observe(double time, std::span<const double> x) {
+  CheckVector(time, x, "Detector::Observe", -1);
   LiveCounters::Bump(counters_.vectors);
   if (options_.max_age_seconds > 0) window_.ExpireOlderThan(time);
   if (transform_.history_needed() == 0) return ObserveTransformed(time, x);
@@ -495,8 +503,84 @@ Verdict Detector::ObserveTransformed(double time, std::span<const double> x) {
     return verdict;
   }
 
+  return ObserveScored(time, x, *model, model->Evaluate(x));
+}
+
+void Detector::ObserveBatch(std::span<const double> times, const MatrixD& rows,
+                            std::vector<Verdict>* verdicts) {
+  const int64_t n = rows.rows();
+  if (static_cast<int64_t>(times.size()) != n) {
+    throw PreconditionError("Detector::ObserveBatch: " + std::to_string(times.size()) +
+                            " times for " + std::to_string(n) + " rows");
+  }
+  if (n > 0 && rows.cols() != dims_) {
+    throw PreconditionError("Detector::ObserveBatch: rows have " + std::to_string(rows.cols()) +
+                            " values, the stream " + std::to_string(dims_));
+  }
+  for (int64_t i = 0; i < n; ++i)
+    CheckVector(times[i], std::span<const double>(&rows(i, 0), dims_), "Detector::ObserveBatch", i);
+  verdicts->resize(static_cast<std::size_t>(n));
+  batch_scored_row_.assign(static_cast<std::size_t>(n), -1);
+  batch_model_ = shared_->model.load();
+  if (!batch_model_) {
+    // Learning: the warm-up fit may install a model within the batch (inline executor), and the
+    // rows after it are then scored by it, as Observe would.
+    for (int64_t i = 0; i < n; ++i)
+      (*verdicts)[i] = Observe(times[i], std::span<const double>(&rows(i, 0), dims_));
+    return;
+  }
+  // The transform depends on the rows alone, so it runs first; the window, the incidents and the
+  // refit schedule then advance row by row in order, as Observe does.
+  const int features = transform_.output_dims();
+  if (batch_z_.rows() < n || batch_z_.cols() != features) batch_z_.resize(n, features);
+  std::vector<char> ready(static_cast<std::size_t>(n), 1);
+  int64_t scored = 0;
+  for (int64_t i = 0; i < n; ++i) {
+    const std::span<const double> x(&rows(i, 0), dims_);
+    if (transform_.history_needed() == 0) {
+      batch_z_.row(scored) = rows.row(i);
+    } else {
+      ready[i] = transform_.Push(times[i], x, transformed_) ? 1 : 0;
+      if (transform_.last_push_reset() != HistoryReset::kNone)
+        LiveCounters::Bump(counters_.history_resets);
+      if (!ready[i]) continue;
+      batch_z_.row(scored) = Eigen::Map<const Eigen::RowVectorXd>(transformed_.data(), features);
+    }
+    batch_scored_row_[i] = scored++;
+  }
+  VectorD decisions, nonconformity;
+  if (scored > 0) batch_model_->EvaluateBatch(batch_z_.topRows(scored), &decisions, &nonconformity);
+  for (int64_t i = 0; i < n; ++i) {
+    LiveCounters::Bump(counters_.vectors);
+    if (options_.max_age_seconds > 0) window_.ExpireOlderThan(times[i]);
+    Verdict& verdict = (*verdicts)[i];
+    if (!ready[i]) {
+      LiveCounters::Bump(counters_.history_vectors);
+      verdict = Verdict();
+      verdict.state = StreamState::kHistory;
+      if (const auto open = incidents_.open_incident()) verdict.incident_id = open->id;
+      continue;
+    }
+    const int64_t k = batch_scored_row_[i];
+    Score score;
+    score.decision = decisions[k];
+    score.nonconformity = nonconformity[k];
+    verdict = ObserveScored(times[i], std::span<const double>(&batch_z_(k, 0), features),
+                            *batch_model_, score);
+  }
+}
+
+std::vector<FeatureShare> Detector::ExplainBatchRow(std::size_t i, int top_k) const {
+  if (i >= batch_scored_row_.size() || batch_scored_row_[i] < 0 || !batch_model_) return {};
+  const int64_t k = batch_scored_row_[i];
+  return batch_model_->Explain(std::span<const double>(&batch_z_(k, 0), batch_z_.cols()), top_k);
+}
+
+Verdict Detector::ObserveScored(double time, std::span<const double> x, const Model& model_ref,
+                                const Score& score) {
+  const Model* model = &model_ref;
+  Verdict verdict;
   verdict.state = StreamState::kScoring;
-  const Score score = model->Evaluate(x);
   std::copy(x.begin(), x.end(), last_scored_.begin());
   has_last_scored_ = true;
   verdict.decision = score.decision;

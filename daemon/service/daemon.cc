@@ -20,6 +20,7 @@
 #include <csignal>
 #include <cstring>
 #include <filesystem>
+#include <functional>
 #include <future>
 #include <nlohmann/json.hpp>
 #include <thread>
@@ -169,6 +170,15 @@ struct Daemon::Impl final : ControlCommands {
   void ReceiveFrom(zmq::socket_t& socket);
   void HandleIngest(std::string_view key, std::string_view payload);
   void ProcessVector(Stream& stream, const PayloadView& payload, int index);
+  // A message of several vectors: one batched product (Detector::ObserveBatch), the metrics
+  // updated once for the message, the flagged rows alone explained.
+  void ProcessBatch(Stream& stream, const PayloadView& payload);
+  // The stream's metrics after `verdicts` (the last of them at data time `last_time`).
+  void UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts, double last_time);
+  // Publishes the result of one vector (and its incident event); `explain` gives the flagged
+  // vector's attribution.
+  void PublishVerdict(Stream& stream, double t, const Verdict& v,
+                      const std::function<std::vector<FeatureShare>()>& explain);
   void Reject(RejectReason reason, std::string_view detail, std::string_view key);
   void Publish(std::string_view key, const std::string& body, PublishedMessage message);
   void DrainSubscriptions();
@@ -759,7 +769,11 @@ void Daemon::Impl::HandleIngest(std::string_view key, std::string_view payload) 
     Reject(RejectReason::kDimsMismatch, "the stream has vectors of another length", key);
     return;
   }
-  for (int i = 0; i < p.count; ++i) ProcessVector(*stream, p, i);
+  if (p.count == 1) {
+    ProcessVector(*stream, p, 0);
+  } else {
+    ProcessBatch(*stream, p);
+  }
 }
 
 void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int index) {
@@ -771,12 +785,56 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
   const Verdict v = detector.Observe(t, stream.row);
   metrics.score_duration().Observe(
       std::chrono::duration<double>(Clock::now() - started_at).count());
+  UpdateStreamMetrics(stream, std::span<const Verdict>(&v, 1), t);
+  PublishVerdict(stream, t, v, [&] { return detector.ExplainLast(kTopFeatures); });
+}
 
+void Daemon::Impl::ProcessBatch(Stream& stream, const PayloadView& payload) {
+  const int n = payload.count;
+  if (stream.batch_rows.rows() != n || stream.batch_rows.cols() != stream.dims)
+    stream.batch_rows.resize(n, stream.dims);
+  stream.batch_times.resize(static_cast<std::size_t>(n));
+  for (int i = 0; i < n; ++i) {
+    const double t = payload.time(i);
+    stream.batch_times[i] = t;
+    const std::span<double> row(&stream.batch_rows(i, 0), static_cast<std::size_t>(stream.dims));
+    payload.CopyRow(i, row);
+    if (stream.recorder) {
+      std::copy(row.begin(), row.end(), stream.row.begin());
+      Record(stream, t);
+    }
+  }
+  Detector& detector = *stream.detector;
+  const Clock::time_point started_at = Clock::now();
+  detector.ObserveBatch(stream.batch_times, stream.batch_rows, &stream.batch_verdicts);
+  // One observation per message, of the time per vector, so that the histogram keeps measuring
+  // what one vector costs (metrics.h) without a mutex-taking Observe per row.
+  metrics.score_duration().Observe(
+      std::chrono::duration<double>(Clock::now() - started_at).count() / n);
+  UpdateStreamMetrics(stream, stream.batch_verdicts, stream.batch_times.back());
+  for (int i = 0; i < n; ++i) {
+    PublishVerdict(stream, stream.batch_times[i], stream.batch_verdicts[i], [&] {
+      return detector.ExplainBatchRow(static_cast<std::size_t>(i), kTopFeatures);
+    });
+  }
+}
+
+void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts,
+                                       double last_time) {
+  Detector& detector = *stream.detector;
   const StreamMetrics& m = stream.metrics;
-  m.vectors->Increment();
-  const bool scoring = v.state == StreamState::kScoring;
-  if (scoring) {
+  m.vectors->Increment(static_cast<double>(verdicts.size()));
+  int64_t flagged = 0;
+  bool scored = false;
+  uint64_t model_version = stream.seen_model_version;
+  for (const Verdict& v : verdicts) {
+    if (v.state != StreamState::kScoring) continue;
+    scored = true;
     stream.ratio.Push(v.outlier);
+    flagged += v.outlier ? 1 : 0;
+    model_version = v.model_version;
+  }
+  if (scored) {
     const double ratio = stream.ratio.Ratio();
     m.anomaly_ratio->Set(ratio);
     if (!stream.flooding && ratio > 0.5 && stream.ratio.size() == stream.ratio.capacity()) {
@@ -789,10 +847,10 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
     } else if (stream.flooding && ratio < 0.25) {
       stream.flooding = false;
     }
-    if (v.outlier) m.anomalies->Increment();
-    m.model_age_seconds->Set(t - detector.model_time());
-    if (v.model_version != stream.seen_model_version) {
-      stream.seen_model_version = v.model_version;
+    if (flagged > 0) m.anomalies->Increment(static_cast<double>(flagged));
+    m.model_age_seconds->Set(last_time - detector.model_time());
+    if (model_version != stream.seen_model_version) {
+      stream.seen_model_version = model_version;
       stream.RefreshSlowGauges();
     }
   }
@@ -803,10 +861,16 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
         .Increment(static_cast<double>(coalesced - stream.seen_coalesced));
     stream.seen_coalesced = coalesced;
   }
-  if (v.transition.type != IncidentTransitionType::kNone) {
-    m.incidents_open->Set(v.transition.type == IncidentTransitionType::kOpened ? 1 : 0);
+  for (auto v = verdicts.rbegin(); v != verdicts.rend(); ++v) {
+    if (v->transition.type == IncidentTransitionType::kNone) continue;
+    m.incidents_open->Set(v->transition.type == IncidentTransitionType::kOpened ? 1 : 0);
+    break;
   }
+}
 
+void Daemon::Impl::PublishVerdict(Stream& stream, double t, const Verdict& v,
+                                  const std::function<std::vector<FeatureShare>()>& explain) {
+  const bool scoring = v.state == StreamState::kScoring;
   if (!scoring && !config.daemon.publish_learning) return;
   ScoredVector result;
   result.t = t;
@@ -821,10 +885,10 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
   std::size_t top = 0;
   std::shared_ptr<const Model> explained_by;  // keeps the names below alive until published
   if (scoring && v.outlier) {
-    if ((explained_by = detector.model())) {
+    if ((explained_by = stream.detector->model())) {
       // Explain allocates its result; only flagged vectors pay for it. It works in the model's
       // (transformed) features, which the model names ("flow_m3h, mean of 6").
-      const std::vector<FeatureShare> shares = detector.ExplainLast(kTopFeatures);
+      const std::vector<FeatureShare> shares = explain();
       const auto& names = explained_by->parts().feature_names;
       for (const FeatureShare& share : shares) {
         FeatureShareView& view = top_features[top++];

@@ -69,7 +69,11 @@ struct Stream {
   DaemonMetrics* const metrics_owner;
   StreamMetrics metrics;
   AnomalyRatioRing ratio;
-  std::vector<double> row;          // dims values: the vector being processed
+  std::vector<double> row;  // dims values: the vector being processed
+  // A message of several vectors, scored as one batch: its rows, times and verdicts (reused).
+  MatrixD batch_rows;
+  std::vector<double> batch_times;
+  std::vector<Verdict> batch_verdicts;
   uint64_t seen_model_version = 0;  // the model version the gauges describe
   int64_t seen_coalesced = 0;       // counters().refits_coalesced already counted
   std::set<std::string> warned;     // refit warnings already logged for this stream

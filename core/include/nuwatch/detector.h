@@ -146,6 +146,20 @@ class Detector {
   // otherwise, state unchanged). Allocates nothing unless a refit is posted.
   Verdict Observe(double time, std::span<const double> x);
 
+  // The rows of one message, in order: the same as Observe on each row, except that every row is
+  // scored by the model in place when the call began, in one batched product (Model::
+  // EvaluateBatch) instead of one per row; a model that a refit installs during the call scores
+  // from the next call on (with an inline executor too). While learning, rows go one by one.
+  // Requires: times.size() == rows.rows(), rows.cols() == dims(), finite values and times
+  // (PreconditionError naming the first bad row otherwise; the detector is then unchanged).
+  // Ensures: verdicts->size() == rows.rows(), verdict i for row i. Allocates the batched
+  // product's buffers once per call, not per row.
+  void ObserveBatch(std::span<const double> times, const MatrixD& rows,
+                    std::vector<Verdict>* verdicts);
+  // The attribution of row i of the last ObserveBatch, by the model that scored it; empty if that
+  // row was not scored. Owner thread; allocates its result.
+  std::vector<FeatureShare> ExplainBatchRow(std::size_t i, int top_k) const;
+
   // The attribution (Model::Explain) of the last vector Observe scored, in the transformed
   // features the model sees (named by the model's feature_names: "flow_m3h, mean of 6"), by the
   // current model. Empty before anything was scored. Owner thread; allocates its result.
@@ -191,6 +205,11 @@ class Detector {
   struct Shared;
   // Observe after the transform: z holds feature_dims() values.
   Verdict ObserveTransformed(double time, std::span<const double> z);
+  // The rest of ObserveTransformed once `model` has scored z.
+  Verdict ObserveScored(double time, std::span<const double> z, const Model& model,
+                        const struct Score& score);
+  // Throws PreconditionError if x or time is not what Observe requires; `row` names the batch row.
+  void CheckVector(double time, std::span<const double> x, const char* caller, int64_t row) const;
   bool RefitDue(double time, bool drift_alarm) const;
   void PostRefit(double time, RefitReason reason);
   void ApplyPendingOptions();
@@ -217,6 +236,11 @@ class Detector {
   std::vector<double> transformed_;  // output buffer of transform_, sized once
   std::vector<double> last_scored_;  // the last scored vector (transformed), for ExplainLast
   bool has_last_scored_ = false;
+  // The last ObserveBatch: its transformed rows, which of them were scored (row of batch_z_ or
+  // -1), and the model that scored them (kept for ExplainBatchRow).
+  MatrixD batch_z_;
+  std::vector<int64_t> batch_scored_row_;
+  std::shared_ptr<const Model> batch_model_;
   SampleWindow window_;
   IncidentTracker incidents_;
   PageHinkley drift_;

@@ -1073,5 +1073,147 @@ TEST(DetectorThreads, CountersAndMemoryAreReadFromAnotherThreadWhileTheOwnerObse
   EXPECT_GT(detector.MemoryBytes(), static_cast<std::size_t>(300 * d * 8));
 }
 
+// ---------------------------------------------------------------------------------------------
+// A message of many vectors scored as one batched product (issue 9 section 2).
+
+// Feeds rows [from, to) of `data` to `detector` in batches of sizes drawn from [1, 70].
+std::vector<Verdict> FeedInBatches(Detector& detector, const std::vector<std::vector<double>>& data,
+                                   const std::vector<double>& times, int64_t from, int64_t to,
+                                   std::mt19937_64& rng) {
+  std::uniform_int_distribution<int64_t> size(1, 70);
+  std::vector<Verdict> all, batch;
+  const int d = detector.dims();
+  for (int64_t start = from; start < to;) {
+    const int64_t n = std::min(size(rng), to - start);
+    MatrixD rows(n, d);
+    for (int64_t i = 0; i < n; ++i)
+      for (int j = 0; j < d; ++j) rows(i, j) = data[start + i][j];
+    detector.ObserveBatch(std::span<const double>(times.data() + start, n), rows, &batch);
+    EXPECT_EQ(batch.size(), static_cast<std::size_t>(n));
+    all.insert(all.end(), batch.begin(), batch.end());
+    start += n;
+  }
+  return all;
+}
+
+// While the model stays fixed (no refit after the warm-up) a batch gives what Observe gives row by
+// row: the incidents, the window and the transform's history advance in the same order. Both run
+// the model's float32 path (model.h), batched and single products summing in another order: the
+// decisions agree to float precision, and a flag may differ only where p is within rounding of the
+// level.
+TEST(DetectorBatch, SameVerdictsAsOneByOneWhileTheModelStaysFixed) {
+  const int d = 3;
+  DetectorOptions o = BaseOptions(0.05, 300, 0, 64);
+  o.lags = 1;
+  o.rolling_windows = {4};
+  o.max_gap_seconds = 10;
+  std::mt19937_64 rng(31);
+  std::vector<std::vector<double>> data;
+  std::vector<double> times;
+  for (int64_t t = 0; t < 2000; ++t) {
+    const bool fault = t >= 1200 && t < 1260;
+    data.push_back(Draw(rng, Shape::kGaussian, d, fault ? 4.0 : 0.0));
+    times.push_back(static_cast<double>(t) + (t >= 1500 ? 100.0 : 0.0));  // a gap at 1500
+  }
+  Detector single(o, d), batched(o, d);
+  for (int64_t t = 0; t < 400; ++t) {
+    single.Observe(times[t], data[t]);
+    batched.Observe(times[t], data[t]);
+  }
+  ASSERT_TRUE(single.model());
+  std::vector<Verdict> expected;
+  for (int64_t t = 400; t < 2000; ++t) expected.push_back(single.Observe(times[t], data[t]));
+  std::mt19937_64 sizes(32);
+  const std::vector<Verdict> got = FeedInBatches(batched, data, times, 400, 2000, sizes);
+  ASSERT_EQ(got.size(), expected.size());
+  int64_t incidents = 0, history = 0, flag_differences = 0;
+  const std::shared_ptr<const Model> model = batched.model();
+  for (std::size_t i = 0; i < got.size(); ++i) {
+    const Verdict& a = expected[i];
+    const Verdict& b = got[i];
+    EXPECT_EQ(a.state, b.state) << i;
+    if (a.state != StreamState::kScoring) {
+      ++history;
+      continue;
+    }
+    EXPECT_NEAR(b.decision, a.decision, 1e-5) << i;
+    if (a.outlier != b.outlier) {
+      ++flag_differences;
+      EXPECT_NEAR(a.p_value, model->parts().calibration.level(), 1e-6) << i;
+    }
+    EXPECT_EQ(a.incident_id, b.incident_id) << i;
+    EXPECT_EQ(a.accepted, b.accepted) << i;
+    EXPECT_EQ(a.model_version, b.model_version) << i;
+    incidents += b.transition.type == IncidentTransitionType::kOpened;
+  }
+  EXPECT_LE(flag_differences, 1);
+  EXPECT_GE(incidents, 1);  // the fault opened one
+  EXPECT_EQ(history, 3);    // lags 1 and a window of 4 need 3 earlier vectors after the gap
+  EXPECT_EQ(batched.window_size(), single.window_size());
+  EXPECT_EQ(batched.counters().vectors, single.counters().vectors);
+  EXPECT_EQ(batched.counters().anomalies, single.counters().anomalies);
+  EXPECT_EQ(batched.counters().history_resets, 1);
+}
+
+// With an inline executor a refit that falls due inside a batch runs there, but the batch keeps
+// the model it began with (the contract in detector.h); the next batch uses the new one.
+TEST(DetectorBatch, ARefitDueInsideABatchScoresFromTheNextBatch) {
+  const int d = 2;
+  DetectorOptions o = BaseOptions(0.1, 200, 50, 64);
+  Detector detector(o, d);
+  std::mt19937_64 rng(33);
+  for (int64_t t = 0; t < 200; ++t)
+    detector.Observe(static_cast<double>(t), Draw(rng, Shape::kGaussian, d));
+  const std::shared_ptr<const Model> first = detector.model();
+  const uint64_t before = first->version();
+  MatrixD rows(120, d);
+  std::vector<double> times(120);
+  for (int64_t i = 0; i < 120; ++i) {
+    rows.row(i) = Eigen::Map<const Eigen::RowVectorXd>(Draw(rng, Shape::kGaussian, d).data(), d);
+    times[i] = 200.0 + static_cast<double>(i);
+  }
+  std::vector<Verdict> verdicts;
+  detector.ObserveBatch(times, rows, &verdicts);
+  for (const Verdict& v : verdicts) EXPECT_EQ(v.model_version, before);
+  EXPECT_EQ(detector.counters().refits_started, 1 + 2);  // the warm-up fit and two due at 50, 100
+  // The explanation of a row is by the model that scored it, of that row (model.h's Explain).
+  const std::vector<FeatureShare> explained = detector.ExplainBatchRow(7, 2);
+  const std::vector<FeatureShare> reference =
+      first->Explain(std::span<const double>(&rows(7, 0), d), 2);
+  ASSERT_EQ(explained.size(), reference.size());
+  for (std::size_t k = 0; k < explained.size(); ++k) {
+    EXPECT_EQ(explained[k].feature, reference[k].feature);
+    EXPECT_EQ(explained[k].share, reference[k].share);
+  }
+  EXPECT_TRUE(detector.ExplainBatchRow(120, 2).empty());
+  const uint64_t after = detector.model()->version();
+  EXPECT_GT(after, before);
+  times[0] = 320.0;
+  detector.ObserveBatch(std::span<const double>(times.data(), 1), rows.topRows(1), &verdicts);
+  EXPECT_EQ(verdicts[0].model_version, after);
+}
+
+// A bad row refuses the whole batch, names the row, and leaves the detector as it was.
+TEST(DetectorBatch, ABadRowRefusesTheBatchNamingTheRowAndChangesNothing) {
+  const int d = 2;
+  Detector detector(BaseOptions(0.1, 100, 0, 64), d);
+  std::mt19937_64 rng(34);
+  for (int64_t t = 0; t < 150; ++t)
+    detector.Observe(static_cast<double>(t), Draw(rng, Shape::kGaussian, d));
+  const DetectorCounters counters = detector.counters();
+  const int64_t window = detector.window_size();
+  MatrixD rows = MatrixD::Zero(5, d);
+  rows(3, 1) = std::numeric_limits<double>::quiet_NaN();
+  const std::vector<double> times = {150, 151, 152, 153, 154};
+  std::vector<Verdict> verdicts;
+  EXPECT_THAT([&] { detector.ObserveBatch(times, rows, &verdicts); },
+              ::testing::ThrowsMessage<PreconditionError>(HasSubstr("row 3: x[1] = nan")));
+  EXPECT_THAT(
+      [&] { detector.ObserveBatch(std::span<const double>(times.data(), 4), rows, &verdicts); },
+      ::testing::ThrowsMessage<PreconditionError>(HasSubstr("4 times for 5 rows")));
+  EXPECT_EQ(detector.counters().vectors, counters.vectors);
+  EXPECT_EQ(detector.window_size(), window);
+}
+
 }  // namespace
 }  // namespace nuwatch
