@@ -366,14 +366,28 @@ void RunTail(const TailArguments& args) {
                    static_cast<int>(key.size()), key.data());
       continue;
     }
-    line.clear();
-    const Kind kind = printer.Format(key, text, object, &line);
-    if (kind == Kind::kSkipped) continue;
-    tally.events += kind == Kind::kIncidentEvent;
-    tally.anomalies += kind == Kind::kAnomaly;
-    tally.results += kind != Kind::kIncidentEvent;
-    ++tally.printed;
-    open = WriteLine(line);
+    // §9.4: a batch of results (publish.batches) is printed as its results, one line each.
+    const auto batch = object.find("results");
+    const bool is_batch = batch != object.end() && batch->is_array() && !object.contains("event");
+    const std::size_t entries = is_batch ? batch->size() : 1;
+    for (std::size_t i = 0; i < entries && open && (count == 0 || tally.printed < count); ++i) {
+      const json& item = is_batch ? (*batch)[i] : object;
+      if (!item.is_object()) {
+        ++tally.malformed;
+        std::fprintf(stderr, "nuwatch tail: skipped a batch entry for %.*s that is not an object\n",
+                     static_cast<int>(key.size()), key.data());
+        continue;
+      }
+      const std::string item_text = is_batch ? item.dump() : std::string();
+      line.clear();
+      const Kind kind = printer.Format(key, is_batch ? item_text : text, item, &line);
+      if (kind == Kind::kSkipped) continue;
+      tally.events += kind == Kind::kIncidentEvent;
+      tally.anomalies += kind == Kind::kAnomaly;
+      tally.results += kind != Kind::kIncidentEvent;
+      ++tally.printed;
+      open = WriteLine(line);
+    }
   }
   if (!open) return;  // the reader went away: nobody to tell
   std::fprintf(

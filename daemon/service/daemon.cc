@@ -179,8 +179,15 @@ struct Daemon::Impl final : ControlCommands {
   // vector's attribution.
   void PublishVerdict(Stream& stream, double t, const Verdict& v,
                       const std::function<std::vector<FeatureShare>()>& explain);
+  // The §9.1 result of one vector into *out; false if it is not published (learning, with
+  // publish.include_learning off).
+  bool EncodeVerdict(Stream& stream, double t, const Verdict& v,
+                     const std::function<std::vector<FeatureShare>()>& explain, std::string* out);
+  void PublishIncidentEvent(Stream& stream, double t, const Verdict& v);
   void Reject(RejectReason reason, std::string_view detail, std::string_view key);
-  void Publish(std::string_view key, const std::string& body, PublishedMessage message);
+  // `results`: the results the message holds (a batch, §9.4, holds several), for the drop counts.
+  void Publish(std::string_view key, const std::string& body, PublishedMessage message,
+               int64_t results = 1);
   void DrainSubscriptions();
   void Record(Stream& stream, double time);
 
@@ -274,6 +281,7 @@ struct Daemon::Impl final : ControlCommands {
   zmq::message_t extra_message;
   JsonScratch scratch;
   std::string result_json;
+  std::string batch_json;  // a §9.4 batch of results (publish.batches)
   std::string event_json;
   std::array<FeatureShareView, kTopFeatures> top_features;
   std::array<bool, 256> rejection_logged{};
@@ -786,7 +794,18 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
   metrics.score_duration().Observe(
       std::chrono::duration<double>(Clock::now() - started_at).count());
   UpdateStreamMetrics(stream, std::span<const Verdict>(&v, 1), t);
-  PublishVerdict(stream, t, v, [&] { return detector.ExplainLast(kTopFeatures); });
+  auto explain = [&] { return detector.ExplainLast(kTopFeatures); };
+  if (!config.daemon.publish_batches) {
+    PublishVerdict(stream, t, v, explain);
+    return;
+  }
+  if (EncodeVerdict(stream, t, v, explain, &result_json)) {
+    batch_json.assign("{\"results\":[");
+    batch_json.append(result_json);
+    batch_json.append("]}");
+    Publish(stream.key, batch_json, PublishedMessage::kResult);
+  }
+  PublishIncidentEvent(stream, t, v);
 }
 
 void Daemon::Impl::ProcessBatch(Stream& stream, const PayloadView& payload) {
@@ -812,11 +831,30 @@ void Daemon::Impl::ProcessBatch(Stream& stream, const PayloadView& payload) {
   metrics.score_duration().Observe(
       std::chrono::duration<double>(Clock::now() - started_at).count() / n);
   UpdateStreamMetrics(stream, stream.batch_verdicts, stream.batch_times.back());
-  for (int i = 0; i < n; ++i) {
-    PublishVerdict(stream, stream.batch_times[i], stream.batch_verdicts[i], [&] {
+  auto explain_row = [&](int i) {
+    return [&detector, i] {
       return detector.ExplainBatchRow(static_cast<std::size_t>(i), kTopFeatures);
-    });
+    };
+  };
+  if (!config.daemon.publish_batches) {
+    for (int i = 0; i < n; ++i)
+      PublishVerdict(stream, stream.batch_times[i], stream.batch_verdicts[i], explain_row(i));
+    return;
   }
+  // §9.4: one message with the message's results in order, then its incident events in order.
+  batch_json.assign("{\"results\":[");
+  int64_t results = 0;
+  for (int i = 0; i < n; ++i) {
+    if (!EncodeVerdict(stream, stream.batch_times[i], stream.batch_verdicts[i], explain_row(i),
+                       &result_json))
+      continue;
+    if (results++ > 0) batch_json.push_back(',');
+    batch_json.append(result_json);
+  }
+  batch_json.append("]}");
+  if (results > 0) Publish(stream.key, batch_json, PublishedMessage::kResult, results);
+  for (int i = 0; i < n; ++i)
+    PublishIncidentEvent(stream, stream.batch_times[i], stream.batch_verdicts[i]);
 }
 
 void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts,
@@ -870,8 +908,16 @@ void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> 
 
 void Daemon::Impl::PublishVerdict(Stream& stream, double t, const Verdict& v,
                                   const std::function<std::vector<FeatureShare>()>& explain) {
+  if (EncodeVerdict(stream, t, v, explain, &result_json))
+    Publish(stream.key, result_json, PublishedMessage::kResult);
+  PublishIncidentEvent(stream, t, v);
+}
+
+bool Daemon::Impl::EncodeVerdict(Stream& stream, double t, const Verdict& v,
+                                 const std::function<std::vector<FeatureShare>()>& explain,
+                                 std::string* out) {
   const bool scoring = v.state == StreamState::kScoring;
-  if (!scoring && !config.daemon.publish_learning) return;
+  if (!scoring && !config.daemon.publish_learning) return false;
   ScoredVector result;
   result.t = t;
   result.learning = !scoring;
@@ -902,9 +948,11 @@ void Daemon::Impl::PublishVerdict(Stream& stream, double t, const Verdict& v,
     }
   }
   result.top_features = std::span<const FeatureShareView>(top_features.data(), top);
-  EncodeResultJson(result, &result_json);
-  Publish(stream.key, result_json, PublishedMessage::kResult);
+  EncodeResultJson(result, out);
+  return true;
+}
 
+void Daemon::Impl::PublishIncidentEvent(Stream& stream, double t, const Verdict& v) {
   if (v.transition.type != IncidentTransitionType::kNone) {
     const TrackedIncident& incident = v.transition.incident;
     IncidentEvent event;
@@ -939,22 +987,25 @@ void Daemon::Impl::Reject(RejectReason reason, std::string_view detail, std::str
   }
 }
 
-void Daemon::Impl::Publish(std::string_view key, const std::string& body,
-                           PublishedMessage message) {
+void Daemon::Impl::Publish(std::string_view key, const std::string& body, PublishedMessage message,
+                           int64_t results) {
   try {
     // Never blocks. XPUB_NODROP checks every matching subscriber's queue before the first frame
     // and counts whole messages, so a message goes to every matching subscriber or to none, and
     // the second frame of a message whose first was taken is never refused.
     if (!publish.send(zmq::const_buffer(key.data(), key.size()),
                       zmq::send_flags::sndmore | zmq::send_flags::dontwait)) {
-      metrics.publish_dropped(message, PublishDropReason::kSubscriberSlow).Increment();
+      metrics.publish_dropped(message, PublishDropReason::kSubscriberSlow)
+          .Increment(static_cast<double>(results));
       return;
     }
     if (!publish.send(zmq::const_buffer(body.data(), body.size()), zmq::send_flags::dontwait)) {
-      metrics.publish_dropped(message, PublishDropReason::kSubscriberSlow).Increment();
+      metrics.publish_dropped(message, PublishDropReason::kSubscriberSlow)
+          .Increment(static_cast<double>(results));
     }
   } catch (const zmq::error_t& e) {
-    metrics.publish_dropped(message, PublishDropReason::kSendError).Increment();
+    metrics.publish_dropped(message, PublishDropReason::kSendError)
+        .Increment(static_cast<double>(results));
     spdlog::debug("publish failed: {}", e.what());
   }
 }

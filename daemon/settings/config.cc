@@ -180,6 +180,13 @@ const Setting<S> kDaemonKeys[] = {
      .doc = "Also publish results for vectors that arrive while their stream has no model yet "
             "(state \"learning\", decision null).",
      .reload = kNow},
+    {.section = "publish",
+     .name = "batches",
+     .member = &S::publish_batches,
+     .doc = "Publish the results of one ingest message as one message, {\"results\": [...]} "
+            "(PROTOCOL.md §9.4), instead of one message per vector: fewer messages for "
+            "subscribers that read batches. Off: every subscriber keeps the one-per-vector form.",
+     .reload = kNow},
     {.section = "control",
      .name = "endpoint",
      .member = &S::control_endpoint,

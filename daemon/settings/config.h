@@ -41,6 +41,7 @@ struct DaemonSettings {
   std::string publish_endpoint = "tcp://127.0.0.1:7602";  // endpoint
   int publish_high_water_mark = 10000;                    // high_water_mark
   bool publish_learning = true;                           // include_learning
+  bool publish_batches = false;                           // batches
   // [control]
   std::string control_endpoint = "tcp://127.0.0.1:7603";  // endpoint
   // [metrics]

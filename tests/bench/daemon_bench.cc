@@ -167,6 +167,19 @@ class Frames {
 
 // The send time a message on the result socket carries: a result's (or an event's) `t` for
 // nuwatchd; for the relay the ingest payload itself (binary: offset 16; JSON: its `t`).
+// --publish-batches: nuwatchd publishes a message's results as one §9.4 batch.
+bool g_publish_batches = false;
+
+// The results a published message holds: a §9.4 batch holds one "t" member per result.
+double ResultsIn(std::string_view text) {
+  if (!text.starts_with("{\"results\":")) return 1;
+  double n = 0;
+  for (std::size_t at = text.find("\"t\":"); at != std::string_view::npos;
+       at = text.find("\"t\":", at + 4))
+    ++n;
+  return n;
+}
+
 double CarriedTime(const zmq::message_t& body) {
   const char* data = static_cast<const char*>(body.data());
   if (body.size() >= 24 && data[0] == 'N') {
@@ -262,7 +275,7 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
         quiet_since = Clock::now();
         const std::string_view text(static_cast<const char*>(body.data()), body.size());
         if (t.daemon() && text.find("\"event\"") != std::string_view::npos) continue;
-        count += t.daemon() ? 1 : per;  // the relay forwards whole messages
+        count += t.daemon() ? ResultsIn(text) : per;  // the relay forwards whole messages
         const double now = WallSeconds();
         if (latency) phase.latencies.push_back(now - CarriedTime(body));
         last_result = now;
@@ -327,7 +340,7 @@ double LoadAverage() {
 }
 
 std::string DaemonConfig(const std::string& extra) {
-  return R"([daemon]
+  std::string text = R"([daemon]
 log_level = "warn"
 [ingest]
 endpoints = ["tcp://127.0.0.1:*"]
@@ -344,6 +357,11 @@ nu = 0.05
 window = 2000
 refit_every = 0
 )" + extra;
+  if (g_publish_batches) {
+    const std::string section = "[publish]\n";
+    text.insert(text.find(section) + section.size(), "batches = true\n");
+  }
+  return text;
 }
 
 std::unique_ptr<ChildProcess> StartDaemon(const std::string& program, const fs::path& dir,
@@ -504,6 +522,7 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
               {"seconds_per_phase", seconds},
               {"rounds", rounds},
               {"cores", std::thread::hardware_concurrency()},
+              {"publish_batches", g_publish_batches},
               {"forms", json::array()}};
   for (Form form : {Form::kJson1, Form::kBinary1, Form::kBinary64}) {
     // Best of the rounds for each target (the machine is shared); CPU per vector summed over all.
@@ -612,6 +631,9 @@ int main(int argc, char** argv) {
       ->check(CLI::Range(0, 100000));
   app.add_flag("!--shutdown-without-state", shutdown_state,
                "--shutdown-streams without a state directory: no state files to write");
+  app.add_flag("--publish-batches", nuwatch::g_publish_batches,
+               "configure nuwatchd with publish.batches = true (one result message per ingest "
+               "message, PROTOCOL.md §9.4)");
   app.add_option("--relay", relay_ready, "internal: run as the bare relay")->group("");
   CLI11_PARSE(app, argc, argv);
   try {

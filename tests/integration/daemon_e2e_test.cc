@@ -43,6 +43,8 @@ void RunScript(const std::string& test_class) {
 
 TEST(DaemonEndToEnd, ScoresFlagsRejectsCountsAndStops) { RunScript("ScoringRejectionsAndMetrics"); }
 
+TEST(DaemonEndToEnd, BatchResultsCarryAMessagesResultsInOneMessage) { RunScript("BatchResults"); }
+
 TEST(DaemonEndToEnd, RestartResumesModelsAndMovesCorruptStateAside) {
   RunScript("RestartFromState");
 }

@@ -55,12 +55,15 @@ START_TIMEOUT = 15.0  # seconds for the ready file to appear
 WAIT_TIMEOUT = 10.0   # seconds for any one expected message or state
 
 
-def config_text(refit_every, max_streams):
+def config_text(refit_every, max_streams, publish_batches=False):
     return """\
 # Written by daemon_e2e_test.py.
 [daemon]
 log_level = "info"
 refit_threads = 1
+
+[publish]
+batches = %s
 
 [metrics]
 anomaly_ratio_window = 100
@@ -81,19 +84,19 @@ open_after = %d
 open_window = %d
 close_after = %d
 feature_names = [%s]
-""" % (max_streams, MAX_DIMS, MAX_VECTORS, MAX_MESSAGE_BYTES, WINDOW, WARMUP, refit_every, BUDGET,
+""" % ("true" if publish_batches else "false", max_streams, MAX_DIMS, MAX_VECTORS, MAX_MESSAGE_BYTES, WINDOW, WARMUP, refit_every, BUDGET,
        OPEN_AFTER, OPEN_WINDOW, CLOSE_AFTER, ", ".join('"%s"' % f for f in FEATURES))
 
 
 class Daemon:
     """One nuwatchd process, started with wildcard ports and a ready file."""
 
-    def __init__(self, workdir, state_dir, refit_every=50, max_streams=3):
+    def __init__(self, workdir, state_dir, refit_every=50, max_streams=3, publish_batches=False):
         self.workdir = workdir
         self.state_dir = state_dir
         self.config_path = os.path.join(workdir, "nuwatchd.toml")
         with open(self.config_path, "w") as f:
-            f.write(config_text(refit_every, max_streams))
+            f.write(config_text(refit_every, max_streams, publish_batches))
         self.ready_path = os.path.join(workdir, "ready.json")
         self.log_path = os.path.join(workdir, "nuwatchd-%d.log" % len(glob.glob(
             os.path.join(workdir, "nuwatchd-*.log"))))
@@ -179,6 +182,7 @@ class Peer:
         self.control_endpoint = endpoints["control"]
         self.metrics_address = endpoints["metrics"]
         self.published = {}  # stream -> [normalised §9 objects, raw objects attached as "raw"]
+        self.batches = []  # (stream, results in the message) per message; 0: not a §9.4 batch
 
     def close(self):
         self.context.destroy(linger=0)
@@ -216,11 +220,14 @@ class Peer:
         key = frames[0].decode("ascii")
         text = frames[1].decode("utf-8")
         try:
-            normalised = codec.parse_published(text)
+            messages = codec.parse_published_messages(text)
         except codec.ProtocolError as e:
             raise AssertionError("%s published an object that breaks §9 (%s): %s" % (key, e, text))
-        normalised["raw"] = json.loads(text)
-        self.published.setdefault(key, []).append(normalised)
+        raw = json.loads(text)
+        self.batches.append((key, len(messages) if "results" in raw else 0))
+        for i, normalised in enumerate(messages):
+            normalised["raw"] = raw["results"][i] if "results" in raw else raw
+            self.published.setdefault(key, []).append(normalised)
 
     def subscribe_with_probe(self, stream="probe"):
         """ZeroMQ drops what a PUB sends before the subscription reaches it. Sends one vector at a
@@ -668,6 +675,81 @@ class ScoringRejectionsAndMetrics(DaemonTestCase):
             self.assertIn(stream + ".state", files)
             with open(os.path.join(self.state_dir, stream + ".state"), "rb") as f:
                 self.assertEqual(f.read(4), b"NUWS")
+
+
+class BatchResults(DaemonTestCase):
+    def test_a_message_of_many_vectors_gets_one_result_message(self):
+        """PROTOCOL.md §9.4 with publish.batches = true: the results of one ingest message come in
+        one message, in order, each a §9.1 result (checked by the independent codec in
+        python_codec_check.py); incident events follow the batch as messages of their own."""
+        daemon, peer = self.start_daemon(refit_every=0, max_streams=3, publish_batches=True)
+        peer.subscribe_with_probe()
+        a = StreamData(seed=7)
+        feed_until_scoring(peer, "pump-a", a, ["f32_batch", "json"])
+        # Every message so far, single or batch, came as a batch of its results (never empty).
+        self.assertTrue(all(n >= 1 for _, n in peer.batches), peer.batches)
+
+        normal = [a.normal() for _ in range(5)]
+        before_messages = len(peer.batches)
+        before = len(peer.results("pump-a"))
+        send_vectors(peer, "pump-a", normal, "f32_batch")
+        peer.wait_for(lambda: len(peer.results("pump-a")) >= before + 5, "the batch's results")
+        self.assertEqual(peer.batches[before_messages:], [("pump-a", 5)])
+        self.assertEqual([r["t"] for r in peer.results("pump-a")[before:]],
+                         [t for t, _ in normal])
+
+        # A burst of 8 outliers in one message: 8 flagged results in one message, explained, and
+        # the incident it opens (open_after = 3 of open_window = 5) announced after the batch.
+        burst = [a.outlier() for _ in range(8)]
+        before_published = len(peer.published["pump-a"])
+        send_vectors(peer, "pump-a", burst, "json_batch")
+        peer.wait_for(lambda: len(peer.events("pump-a")) >= 1, "the incident's open event")
+        after = peer.published["pump-a"][before_published:]
+        self.assertEqual([m["kind"] for m in after], ["result"] * 8 + ["event"])
+        self.assertTrue(all(r["anomaly"] and r["top_features"][0]["feature"] == "vibration"
+                            for r in after[:8]), after)
+        self.assertEqual(after[8]["event"], "incident_open")
+        self.assertIn(after[8]["t"], [t for t, _ in burst[:OPEN_AFTER]])
+        self.assertEqual(peer.batches[-1], ("pump-a", 0))  # the event: a message of its own
+        self.assertEqual(peer.batches[-2], ("pump-a", 8))
+
+        # `nuwatch tail --json` prints a batch as its results, one line each, and --count counts
+        # results, not messages (a 3-vector message and --count 4: the fourth line is the first
+        # result of the second message).
+        tail = subprocess.Popen([NUWATCH, "tail", "--connect", daemon.endpoints["publish"],
+                                 "--json", "--stream", "pump-a", "--count", "4", "--timeout",
+                                 "10s"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        sent = []
+        try:
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while tail.poll() is None:
+                self.assertLess(time.monotonic(), deadline, "tail --count 4 did not exit")
+                rows = [a.normal() for _ in range(3)]
+                sent.append([t for t, _ in rows])
+                send_vectors(peer, "pump-a", rows, "f32_batch")
+                try:
+                    tail.wait(timeout=0.2)
+                except subprocess.TimeoutExpired:
+                    pass
+            out, err = tail.communicate(timeout=WAIT_TIMEOUT)
+        finally:
+            if tail.poll() is None:
+                tail.kill()
+                tail.wait()
+        self.assertEqual(tail.returncode, 0, err)
+        lines = out.decode().splitlines()
+        self.assertEqual(len(lines), 4, out)
+        objects = [json.loads(line) for line in lines]
+        self.assertTrue(all(o.pop("stream") == "pump-a" for o in objects))
+        for o in objects:
+            codec.parse_published(json.dumps(o))
+        times = [o["t"] for o in objects]
+        # tail subscribed at some message; from there it printed whole messages' results in order.
+        flat = [t for message in sent for t in message]
+        start = flat.index(times[0])
+        self.assertEqual(start % 3, 0, "tail began in the middle of a batch")
+        self.assertEqual(times, flat[start:start + 4])
+        self.stop_daemon(daemon, peer)
 
 
 class RestartFromState(DaemonTestCase):

@@ -274,9 +274,31 @@ def _is_json_integer(v):
     return isinstance(v, int) and not isinstance(v, bool)
 
 
+def parse_published_messages(text: str):
+    """Validates one published message: a §9 object, or a §9.4 batch {"results": [...]} of §9.1
+    results (an object without an "event" member). Returns the normalised objects in order."""
+    obj = json.loads(text)
+    _need(isinstance(obj, dict), "not a JSON object")
+    if "results" in obj and "event" not in obj:
+        if "v" in obj:
+            _need(obj["v"] == 1, "a later version (v = %r): a v1 subscriber drops it" % obj["v"])
+        _need(isinstance(obj["results"], list), "results must be an array")
+        _need(len(obj["results"]) >= 1, "a batch holds at least one result")
+        out = []
+        for item in obj["results"]:
+            normalised = _parse_object(item)
+            _need(normalised["kind"] == "result", "a batch holds results only, not events")
+            out.append(normalised)
+        return out
+    return [_parse_object(obj)]
+
+
 def parse_published(text: str):
     """Validates one §9 object; returns it normalised (known members only, plus "kind")."""
-    obj = json.loads(text)
+    return _parse_object(json.loads(text))
+
+
+def _parse_object(obj):
     _need(isinstance(obj, dict), "not a JSON object")
     if "v" in obj:
         _need(obj["v"] == 1, "a later version (v = %r): a v1 subscriber drops it" % obj["v"])

@@ -859,7 +859,7 @@ TEST(KnownConfigKeys, AreUniqueAndCoverEverySection) {
     EXPECT_TRUE(unique.count(key)) << key;
   }
   // 20 daemon settings, 32 DetectorOptions members, and stream.match.
-  EXPECT_EQ(keys.size(), 53u);
+  EXPECT_EQ(keys.size(), 54u);
 }
 
 }  // namespace
