@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <atomic>
 #include <chrono>
+#include <limits>
 #include <sstream>
 
 #include "budget.h"
@@ -253,19 +254,12 @@ SingleFit FitOnce(const MatrixD& rows, const std::vector<uint64_t>& ids, const D
   return out;
 }
 
-}  // namespace
-
-WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
-                          std::span<const double> times, const DetectorOptions& o,
-                          const WarmStart* warm, uint64_t version) {
-  CheckDetectorOptions(o, "FitWindow");
+// FitWindow for one kernel width (the options' gamma, or the warm base's): the fit, compression
+// and calibration by cross-fitting. Requires what FitWindow checks.
+WindowFitResult FitCalibrated(const MatrixD& rows, const std::vector<uint64_t>& ids,
+                              std::span<const double> times, const DetectorOptions& o,
+                              const WarmStart* warm, uint64_t version) {
   const int64_t n = rows.rows();
-  if (n < 2 || static_cast<int64_t>(ids.size()) != n ||
-      (!times.empty() && static_cast<int64_t>(times.size()) != n)) {
-    throw PreconditionError("FitWindow: " + std::to_string(n) + " rows, " +
-                            std::to_string(ids.size()) + " ids, " + std::to_string(times.size()) +
-                            " times (need at least 2 rows and as many ids, and times if any)");
-  }
   WindowFitResult result;
   RefitReport& report = result.report;
   const Model* frozen = warm != nullptr ? warm->base.get() : nullptr;
@@ -362,9 +356,12 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
     full.model = std::make_shared<const Model>(std::move(parts));
     report.calibration_seconds = Seconds(calibration_started);
   }
-  if (!transform.identity()) {
+  // A warm refit keeps the width the cold fit chose, and with it the table it was chosen by.
+  const bool keep_table = frozen != nullptr && !frozen->parts().gamma_candidates.empty();
+  if (!transform.identity() || keep_table) {
     ModelParts parts = full.model->parts();
     parts.transform = transform;
+    if (keep_table) parts.gamma_candidates = frozen->parts().gamma_candidates;
     full.model = std::make_shared<const Model>(std::move(parts));
   }
   result.model = full.model;
@@ -372,6 +369,87 @@ WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
   report.model_version = version;
   report.ok = true;
   return result;
+}
+
+// The minimum-volume choice of the width (kernel_width.h): every candidate through
+// FitCalibrated, each calibrated region measured on the same importance sample, the least kept.
+WindowFitResult FitMinVolume(const MatrixD& rows, const std::vector<uint64_t>& ids,
+                             std::span<const double> times, const DetectorOptions& o,
+                             uint64_t version) {
+  const auto started = std::chrono::steady_clock::now();
+  DetectorOptions candidate = o;
+  candidate.gamma.mode = GammaSpec::Mode::kScale;
+  if (std::min<int64_t>(o.calibration_folds, rows.rows() / 2) < 2) {
+    WindowFitResult fallback = FitCalibrated(rows, ids, times, candidate, nullptr, version);
+    fallback.report.warnings.push_back(
+        "gamma = min_volume used scale: the window is too short to calibrate, and the criterion "
+        "compares calibrated envelopes");
+    return fallback;
+  }
+  // The candidates' models live in the space of this scaler (each fit refits the same one).
+  const Scaler scaler = Scaler::Fit(o.scaler, rows);
+  const MatrixD z = scaler.Transform(rows);
+  const VectorD center = z.colwise().mean().transpose();
+  const MatrixD centered = z.rowwise() - center.transpose();
+  const MatrixD covariance =
+      (centered.transpose() * centered) / static_cast<double>(std::max<int64_t>(1, z.rows() - 1));
+  const ImportanceSample sample = DrawImportanceSample(center, covariance, VolumeSampling{});
+
+  std::vector<GammaCandidate> table;
+  WindowFitResult best;
+  double best_log_volume = std::numeric_limits<double>::infinity();
+  double best_effective_samples = 0;
+  for (const double gamma : MinVolumeGammaGrid(ResolveGamma(GammaSpec{}, z))) {
+    candidate.gamma.mode = GammaSpec::Mode::kValue;
+    candidate.gamma.value = gamma;
+    WindowFitResult fit = FitCalibrated(rows, ids, times, candidate, nullptr, version);
+    GammaCandidate row;
+    row.gamma = gamma;
+    row.log_volume = std::numeric_limits<double>::infinity();  // no finite threshold: unbounded
+    if (std::isfinite(fit.model->parts().calibration.Threshold())) {
+      const VolumeEstimate volume =
+          EstimateVolume(sample, InsideAcceptanceRegion(*fit.model, sample.points));
+      row.log_volume = volume.log_volume;
+      row.standard_error = volume.standard_error;
+      row.effective_samples = volume.effective_samples;
+    }
+    table.push_back(row);
+    if (!best.model || row.log_volume < best_log_volume) {
+      best = std::move(fit);
+      best_log_volume = row.log_volume;
+      best_effective_samples = row.effective_samples;
+    }
+  }
+  if (best_effective_samples < 10) {
+    best.report.warnings.push_back(
+        "gamma = min_volume: the volume of the chosen envelope rests on fewer than 10 effective "
+        "importance samples, so the choice of width is uncertain");
+  }
+  ModelParts parts = best.model->parts();
+  parts.gamma_spec = o.gamma;
+  parts.gamma_candidates = std::move(table);
+  best.model = std::make_shared<const Model>(std::move(parts));
+  best.report.width_selection_seconds = Seconds(started);
+  return best;
+}
+
+}  // namespace
+
+WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,
+                          std::span<const double> times, const DetectorOptions& o,
+                          const WarmStart* warm, uint64_t version) {
+  CheckDetectorOptions(o, "FitWindow");
+  const int64_t n = rows.rows();
+  if (n < 2 || static_cast<int64_t>(ids.size()) != n ||
+      (!times.empty() && static_cast<int64_t>(times.size()) != n)) {
+    throw PreconditionError("FitWindow: " + std::to_string(n) + " rows, " +
+                            std::to_string(ids.size()) + " ids, " + std::to_string(times.size()) +
+                            " times (need at least 2 rows and as many ids, and times if any)");
+  }
+  const bool cold = warm == nullptr || warm->base == nullptr;
+  if (cold && o.gamma.mode == GammaSpec::Mode::kMinVolume)
+    return FitMinVolume(rows, ids, times, o, version);
+  return FitCalibrated(rows, ids, times, o, warm, version);
 }
 
 Detector::Detector(const DetectorOptions& options, int dims, RefitExecutor* executor)

@@ -47,10 +47,12 @@ const Setting<D> kDetectorKeys[] = {
      .name = "gamma",
      .member = &D::gamma,
      .doc = "Kernel width: \"scale\" (1 / (features x variance of the scaled window)), \"median\" "
-            "(1 / median squared distance) or a positive number.",
+            "(1 / median squared distance), \"min_volume\" (of scale x 1/4, 1/2, 1, 2, 4, the "
+            "width whose calibrated envelope has the least volume: Scott & Nowak's minimum-volume "
+            "set; cold fits cost 5 times as much) or a positive number.",
      .unit = "1 / scaled units squared",
      .bounds = Positive(),
-     .bounds_note = " (or \"scale\" or \"median\")",
+     .bounds_note = " (or \"scale\", \"median\" or \"min_volume\")",
      .group = kModel},
     {.section = "detector",
      .name = "degree",
@@ -309,6 +311,20 @@ std::optional<SettingViolation> FindDetectorViolation(const DetectorOptions& opt
                     name("detector", "false_incidents_per_day") +
                     " are both 0: set a false-alarm budget, or " +
                     name("detector", "calibration_folds") + " = 0 to flag decision < 0");
+  }
+  if (options.gamma.mode == GammaSpec::Mode::kMinVolume && options.kernel != KernelType::kRbf) {
+    return fail({"gamma", "kernel"},
+                name("detector", "gamma") + " = \"min_volume\" needs " +
+                    name("detector", "kernel") +
+                    " = \"rbf\" (the other kernels' envelopes are unbounded, so they have no "
+                    "volume to compare)");
+  }
+  if (options.gamma.mode == GammaSpec::Mode::kMinVolume && options.calibration_folds == 0) {
+    return fail({"gamma", "calibration_folds"},
+                name("detector", "gamma") + " = \"min_volume\" needs " +
+                    name("detector", "calibration_folds") +
+                    " >= 2: it compares the envelopes at the calibrated level, which held-out "
+                    "scores set");
   }
   if (!options.rolling_windows.empty() && options.rolling_statistics.empty()) {
     return fail({"rolling_statistics", "rolling_windows"},

@@ -107,6 +107,10 @@ std::optional<GammaSpec> GammaSpec::Parse(std::string_view text) {
     spec.mode = Mode::kMedian;
     return spec;
   }
+  if (text == "min_volume") {
+    spec.mode = Mode::kMinVolume;
+    return spec;
+  }
   double value = 0;
   auto [ptr, ec] = std::from_chars(text.data(), text.data() + text.size(), value);
   if (ec != std::errc() || ptr != text.data() + text.size() || !(value > 0) ||
@@ -123,6 +127,8 @@ std::string GammaSpec::ToString() const {
       return "scale";
     case Mode::kMedian:
       return "median";
+    case Mode::kMinVolume:
+      return "min_volume";
     case Mode::kValue: {
       std::ostringstream out;
       out.precision(17);
@@ -168,6 +174,10 @@ double ResolveGamma(const GammaSpec& spec, const MatrixD& x) {
       std::nth_element(distances.begin(), middle, distances.end());
       return *middle > 0 ? 1.0 / *middle : 1.0;
     }
+    case GammaSpec::Mode::kMinVolume:
+      throw PreconditionError(
+          "ResolveGamma: gamma = min_volume is chosen by comparing calibrated fits (FitWindow); "
+          "it has no value on the training matrix alone");
   }
   return 1.0;
 }

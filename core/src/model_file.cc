@@ -1,5 +1,6 @@
 #include "nuwatch/model_file.h"
 
+#include <cmath>
 #include <fstream>
 #include <iterator>
 
@@ -118,6 +119,14 @@ std::vector<uint8_t> EncodeModel(const Model& model) {
     w.Put<uint8_t>(static_cast<uint8_t>(statistic));
   w.Put<double>(t.max_gap_seconds);
   EncodeCalibration(w, p.calibration);
+  // Version 3.
+  w.Put<uint32_t>(static_cast<uint32_t>(p.gamma_candidates.size()));
+  for (const GammaCandidate& c : p.gamma_candidates) {
+    w.Put<double>(c.gamma);
+    w.Put<double>(c.log_volume);
+    w.Put<double>(c.standard_error);
+    w.Put<double>(c.effective_samples);
+  }
 
   return WrapChecksummed(kMagic, kModelFormatVersion, w.bytes);
 }
@@ -134,7 +143,8 @@ Model DecodeModelPayload(ByteReader& r, uint32_t version) {
   p.kernel.degree = r.Get<int32_t>("kernel");
   p.kernel.coef0 = r.Get<double>("kernel");
   const uint8_t gamma_mode = r.Get<uint8_t>("gamma");
-  if (gamma_mode > 2) throw ModelFileError("unknown gamma mode " + std::to_string(gamma_mode));
+  if (gamma_mode > 3 || (gamma_mode == 3 && version < 3))
+    throw ModelFileError("unknown gamma mode " + std::to_string(gamma_mode));
   p.gamma_spec.mode = static_cast<GammaSpec::Mode>(gamma_mode);
   p.gamma_spec.value = r.Get<double>("gamma");
   p.nu = r.Get<double>("nu");
@@ -203,6 +213,25 @@ Model DecodeModelPayload(ByteReader& r, uint32_t version) {
       }
       t.max_gap_seconds = r.Get<double>("transform");
       p.calibration = DecodeCalibration(r);
+    }
+    if (version >= 3) {
+      const uint32_t candidates = r.Get<uint32_t>("gamma candidates");
+      r.Need(candidates, 4 * sizeof(double), "gamma candidates");
+      for (uint32_t i = 0; i < candidates; ++i) {
+        GammaCandidate c;
+        c.gamma = r.Get<double>("gamma candidates");
+        c.log_volume = r.Get<double>("gamma candidates");
+        c.standard_error = r.Get<double>("gamma candidates");
+        c.effective_samples = r.Get<double>("gamma candidates");
+        // log_volume may be +-inf (an unbounded envelope, none sampled), never NaN.
+        if (!(c.gamma > 0) || !std::isfinite(c.gamma) || std::isnan(c.log_volume) ||
+            std::isnan(c.standard_error) || !std::isfinite(c.effective_samples)) {
+          throw ModelFileError("gamma candidate " + std::to_string(i) +
+                               " is not a width > 0 "
+                               "with a volume");
+        }
+        p.gamma_candidates.push_back(c);
+      }
     }
     if (r.remaining() != 0) throw ModelFileError("trailing bytes after the model");
     p.scaler =

@@ -108,6 +108,12 @@ void RunFit(const FitArgs& a) {
     std::cerr << ", compressed to " << model.num_support();
   std::cerr << ", gamma " << model.kernel().gamma << ", " << t.iterations << " iterations"
             << (t.converged ? "" : " (NOT converged)") << " -> " << a.output << "\n";
+  if (!model.parts().gamma_candidates.empty()) {
+    std::cerr << "gamma min_volume: log volume of the calibrated envelope (standard error) for";
+    for (const GammaCandidate& c : model.parts().gamma_candidates)
+      std::cerr << " " << c.gamma << ": " << c.log_volume << " (" << c.standard_error << ")";
+    std::cerr << "; kept " << model.kernel().gamma << "\n";
+  }
   if (model.calibrated()) {
     const CalibrationSummary& c = model.parts().calibration.summary();
     std::cerr << "calibrated (" << model.parts().calibration.Method() << ", "

@@ -1,4 +1,5 @@
 // nuwatch inspect: what a model file holds.
+#include <cmath>
 #include <iostream>
 #include <memory>
 #include <nlohmann/json.hpp>
@@ -24,6 +25,23 @@ void RunInspect(const InspectArgs& a) {
   j["kernel"] = std::string(KernelName(p.kernel.type));
   j["gamma"] = p.kernel.gamma;
   j["gamma_rule"] = p.gamma_spec.ToString();
+  if (!p.gamma_candidates.empty()) {
+    // The minimum-volume criterion's table: the width kept is the one of least log volume.
+    nlohmann::ordered_json rows = nlohmann::ordered_json::array();
+    for (const GammaCandidate& c : p.gamma_candidates) {
+      nlohmann::ordered_json row;
+      row["gamma"] = c.gamma;
+      // JSON has no infinity: an unbounded envelope (or none sampled) is null.
+      row["log_volume"] = std::isfinite(c.log_volume) ? nlohmann::ordered_json(c.log_volume)
+                                                      : nlohmann::ordered_json();
+      row["standard_error"] = std::isfinite(c.standard_error)
+                                  ? nlohmann::ordered_json(c.standard_error)
+                                  : nlohmann::ordered_json();
+      row["effective_samples"] = c.effective_samples;
+      rows.push_back(row);
+    }
+    j["gamma_candidates"] = rows;
+  }
   if (p.kernel.type == KernelType::kPolynomial) {
     j["degree"] = p.kernel.degree;
     j["coef0"] = p.kernel.coef0;

@@ -296,7 +296,7 @@ void AddTuneCommand(CLI::App& app) {
                     "0.02,0.05,0.1)")
       ->type_name("LIST");
   AddLastWinsOption(sub, "--gamma", a->gamma,
-                    "Kernel widths: scale, median or numbers (default: config)")
+                    "Kernel widths: scale, median, min_volume or numbers (default: config)")
       ->type_name("LIST");
   AddLastWinsOption(sub, "--false-alarm-rate", a->false_alarm_rate,
                     "Per-vector false-alarm budgets, each in (0, 0.5] (default "

@@ -304,7 +304,8 @@ std::vector<GammaSpec> ParseGammaList(std::string_view text) {
   for (const std::string_view item : items) {
     const std::optional<GammaSpec> value = GammaSpec::Parse(item);
     if (!value) {
-      throw TuningError("gamma '" + std::string(item) + "' is not scale, median or a number > 0");
+      throw TuningError("gamma '" + std::string(item) +
+                        "' is not scale, median, min_volume or a number > 0");
     }
     values.push_back(*value);
   }

@@ -67,8 +67,8 @@ std::string_view TuningObjectiveDescription(TuningObjective objective);
 
 // Comma-separated lists ("0.01, 0.02,0.05"; spaces around items are ignored). Throw TuningError
 // naming the offending item for an empty list or item, a value out of range or a repeated value.
-// nu: numbers in (0, 1]. gamma: "scale", "median" or a number > 0. window: integers >= 2.
-// support_vector_budget: integers >= 1.
+// nu: numbers in (0, 1]. gamma: "scale", "median", "min_volume" or a number > 0. window: integers
+// >= 2. support_vector_budget: integers >= 1.
 std::vector<double> ParseNuList(std::string_view text);
 std::vector<GammaSpec> ParseGammaList(std::string_view text);
 std::vector<int64_t> ParseWindowList(std::string_view text);

@@ -53,6 +53,8 @@ std::string ToToml(const GammaSpec& v) {
       return Quote("scale");
     case GammaSpec::Mode::kMedian:
       return Quote("median");
+    case GammaSpec::Mode::kMinVolume:
+      return Quote("min_volume");
     case GammaSpec::Mode::kValue:
       break;
   }
@@ -412,7 +414,8 @@ class Reader {
       if (!parsed) WrongType(node, key, kExpected);
       return *parsed;
     } else if constexpr (std::is_same_v<T, GammaSpec>) {
-      constexpr std::string_view kExpected = "\"scale\", \"median\" or a positive number";
+      constexpr std::string_view kExpected =
+          "\"scale\", \"median\", \"min_volume\" or a positive number";
       if (const auto* s = node.as_string()) {
         const auto parsed = GammaSpec::Parse(s->get());
         if (!parsed) WrongType(node, key, kExpected);

@@ -149,7 +149,7 @@ std::optional<std::string> ParseValueText(std::string_view text, ScalerType& out
 }
 std::optional<std::string> ParseValueText(std::string_view text, GammaSpec& out) {
   const auto parsed = GammaSpec::Parse(TrimBlanks(text));
-  if (!parsed) return Shown(text) + " is not scale, median or a number > 0";
+  if (!parsed) return Shown(text) + " is not scale, median, min_volume or a number > 0";
   out = *parsed;
   return std::nullopt;
 }

@@ -80,7 +80,7 @@ std::optional<std::string> ParseSettingText(const Setting<S>& setting, std::stri
 }
 
 // What a flag of this key takes, for help: "NUMBER", "INTEGER", "true|false", "rbf|linear|poly",
-// "scale|median|NUMBER", "TEXT", "LIST", ...
+// "scale|median|min_volume|NUMBER", "TEXT", "LIST", ...
 template <class S>
 std::string SettingTypeName(const Setting<S>& setting) {
   if (!setting.choices.empty()) {
@@ -96,7 +96,7 @@ std::string SettingTypeName(const Setting<S>& setting) {
         if constexpr (std::is_same_v<T, double>) return "NUMBER";
         if constexpr (std::is_same_v<T, bool>) return "true|false";
         if constexpr (std::is_integral_v<T>) return "INTEGER";
-        if constexpr (std::is_same_v<T, GammaSpec>) return "scale|median|NUMBER";
+        if constexpr (std::is_same_v<T, GammaSpec>) return "scale|median|min_volume|NUMBER";
         if constexpr (std::is_same_v<T, std::vector<std::string>>) return "NAME,...";
         if constexpr (std::is_same_v<T, std::vector<int64_t>>) return "INTEGER,...";
         return "TEXT";

@@ -9,6 +9,7 @@
 #include <cstdlib>
 #include <filesystem>
 #include <fstream>
+#include <limits>
 #include <nlohmann/json.hpp>
 #include <random>
 #include <sstream>
@@ -104,6 +105,41 @@ TEST_F(FitScoreCli, FitScoreInspectRoundTrip) {
   EXPECT_GT(j["alarm_level"].get<double>(), 0.0);
 }
 
+// gamma = min_volume through the flag, the model file and inspect (kernel_width.h): the width kept
+// is one of the five candidates, scale x 1/4 .. 4, the one of least log volume, and the choice is
+// printed by fit; a config-style mistake (a linear kernel) is refused naming both keys.
+TEST_F(FitScoreCli, MinVolumeWidthIsChosenKeptAndShown) {
+  const std::string train = TrainingFile(300);
+  ProgramRun fit = Nuwatch("fit --input " + train + " --output " + Path("m.nuw") +
+                           " --gamma min_volume --false-alarm-rate 0.01");
+  ASSERT_EQ(fit.exit_code, 0) << fit.err;
+  EXPECT_THAT(fit.err, HasSubstr("\ngamma min_volume: log volume of the calibrated envelope"));
+  ProgramRun inspect = Nuwatch("inspect --json " + Path("m.nuw"));
+  ASSERT_EQ(inspect.exit_code, 0) << inspect.err;
+  const auto j = nlohmann::json::parse(inspect.out);
+  EXPECT_EQ(j["gamma_rule"], "min_volume");
+  ASSERT_TRUE(j.contains("gamma_candidates"));
+  const auto& rows = j["gamma_candidates"];
+  ASSERT_EQ(rows.size(), 5u);
+  // scale = 1 / (d Var) = 1 / 3 on 3 whitened features (kernel.h; whitened data has unit
+  // variance along every axis), so the grid is 1/12 .. 4/3.
+  EXPECT_NEAR(rows[2]["gamma"].get<double>(), 1.0 / 3.0, 1e-2);
+  double least = std::numeric_limits<double>::infinity(), least_gamma = 0;
+  for (const auto& row : rows) {
+    ASSERT_TRUE(row["log_volume"].is_number()) << row.dump();
+    if (row["log_volume"].get<double>() < least) {
+      least = row["log_volume"].get<double>();
+      least_gamma = row["gamma"].get<double>();
+    }
+  }
+  EXPECT_EQ(j["gamma"].get<double>(), least_gamma);
+  ProgramRun linear = Nuwatch("fit --input " + train + " --output " + Path("l.nuw") +
+                              " --gamma min_volume --kernel linear");
+  EXPECT_EQ(linear.exit_code, 1);
+  EXPECT_THAT(linear.err, HasSubstr("min_volume"));
+  EXPECT_THAT(linear.err, HasSubstr("rbf"));
+}
+
 // Through the programs: fit on 400 vectors, score 4000 fresh ones of the same distribution. At a
 // 5% budget (incident budget off) the realised flagged fraction is near 5%: conformal validity
 // (Vovk, Gammerman & Shafer 2005) bounds it by the level for exchangeable data, and the models
@@ -183,7 +219,7 @@ TEST_F(FitScoreCli, BadInputsGiveOneLineNamingFileAndLine) {
   for (const Flag& f : std::vector<Flag>{
            {"--nu 1.5", "nu = 1.5 is outside (0, 1]"},
            {"--nu 0", "nu = 0 is outside (0, 1]"},
-           {"--gamma 0", "--gamma: '0' is not scale, median or a number > 0"},
+           {"--gamma 0", "--gamma: '0' is not scale, median, min_volume or a number > 0"},
            {"--gamma -2", "--gamma: '-2'"},
            {"--kernel sigmoid", "--kernel: 'sigmoid' is not one of rbf, linear, poly"},
            {"--cache-bytes 100", "--cache-bytes = 100 must be at least 1048576"},

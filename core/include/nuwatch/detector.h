@@ -80,6 +80,9 @@ struct RefitReport {
   double solve_seconds = 0;
   double compress_seconds = 0;
   double calibration_seconds = 0;  // the cross-fitted models and the calibration
+  // gamma = min_volume, cold fits: fitting, calibrating and measuring every candidate width
+  // (includes the chosen one's solve, compress and calibration seconds); 0 otherwise.
+  double width_selection_seconds = 0;
   double total_seconds = 0;
   uint64_t model_version = 0;
   double alarm_level = 0;  // the calibrated p-value level (0: uncalibrated, decision < 0 flags)
@@ -279,6 +282,11 @@ struct WindowFitResult {
 // cross-validation for dependent data, common practice), and spread, so that a window spanning a
 // cycle does not hold out a whole phase of it. Each fold model is warm-started from the full
 // solution (MapWarmStart).
+// gamma = "min_volume" on a cold fit (nuwatch/kernel_width.h): the whole of the above once per
+// candidate width, scale x 1/4, 1/2, 1, 2, 4 (so a cold fit costs five calibrated fits), each
+// calibrated region's volume estimated on one importance sample, and the fit of the least volume
+// kept, with the table in the model's gamma_candidates. A window too short to calibrate falls
+// back to "scale" with a warning. Warm fits keep the base model's width, as they keep its scaler.
 // Requires: rows.rows() == ids.size() >= 2 (ids strictly increasing), times empty or of the same
 // size; finite values; valid options. Throws PreconditionError otherwise.
 WindowFitResult FitWindow(const MatrixD& rows, const std::vector<uint64_t>& ids,

@@ -42,12 +42,15 @@ struct Kernel {
 };
 
 // How the kernel width is chosen for rbf (and the gamma of polynomial).
+//   kMinVolume: chosen from the data by the minimum-volume criterion (nuwatch/kernel_width.h):
+//   among a grid around "scale", the width whose calibrated acceptance region is smallest. It
+//   needs calibrated fits, so only FitWindow (detector.h) resolves it, and only for rbf.
 struct GammaSpec {
-  enum class Mode { kValue, kScale, kMedian };
+  enum class Mode { kValue = 0, kScale = 1, kMedian = 2, kMinVolume = 3 };
   Mode mode = Mode::kScale;
   double value = 0.0;  // used when mode == kValue
 
-  // "scale", "median" or a positive number. Returns nullopt for anything else.
+  // "scale", "median", "min_volume" or a positive number. Returns nullopt for anything else.
   static std::optional<GammaSpec> Parse(std::string_view text);
   std::string ToString() const;
 };
@@ -58,7 +61,8 @@ struct GammaSpec {
 //   median: 1 / median ||x_i - x_j||^2 over up to 2000 pairs drawn with a fixed seed (so the same
 //           data always gives the same gamma). This is the convention k = exp(-d^2 / (2 sigma^2))
 //           with 2 sigma^2 = median d^2; others in the literature differ by a factor of 2.
-// Requires: x.rows() >= 1. Ensures: result > 0.
+// Requires: x.rows() >= 1 and spec.mode != kMinVolume (that one needs FitWindow's calibrated
+// fits: PreconditionError). Ensures: result > 0.
 double ResolveGamma(const GammaSpec& spec, const MatrixD& x);
 
 }  // namespace nuwatch

@@ -17,6 +17,7 @@
 #include "nuwatch/calibration.h"
 #include "nuwatch/feature_transform.h"
 #include "nuwatch/kernel.h"
+#include "nuwatch/kernel_width.h"
 #include "nuwatch/scaler.h"
 #include "nuwatch/types.h"
 
@@ -62,6 +63,10 @@ struct Score {
 struct ModelParts {
   Kernel kernel;
   GammaSpec gamma_spec;  // how kernel.gamma was chosen (for display)
+  // gamma = min_volume: the criterion's table (kernel_width.h), one row per candidate width, as
+  // measured by the cold fit that chose kernel.gamma (warm refits keep the width and the table).
+  // Empty otherwise.
+  std::vector<GammaCandidate> gamma_candidates;
   Scaler scaler;
   double nu = 0.05;
   MatrixD support_vectors;  // scaled, one row each

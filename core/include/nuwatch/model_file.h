@@ -15,8 +15,9 @@
 namespace nuwatch {
 
 // Version 2 adds the whitening matrix, the feature transform and the calibration; version 1 files
-// are still read (as uncalibrated models without a transform).
-inline constexpr uint32_t kModelFormatVersion = 2;
+// are still read (as uncalibrated models without a transform). Version 3 adds gamma mode 3
+// (min_volume) and the table it chose the width by; version 2 files are still read.
+inline constexpr uint32_t kModelFormatVersion = 3;
 
 // Serialises to bytes and back. Decode throws ModelFileError with a clear reason (truncated,
 // checksum mismatch, newer format version, inconsistent sizes); it never reads out of bounds.

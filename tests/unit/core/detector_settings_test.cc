@@ -87,7 +87,8 @@ TEST(DetectorKeys, MessagesNameTheKeyTheValueAndTheRange) {
   o = DetectorOptions{};
   o.gamma.mode = GammaSpec::Mode::kValue;
   o.gamma.value = -0.5;
-  EXPECT_EQ(Violation(o), "gamma = -0.5 must be positive (or \"scale\" or \"median\")");
+  EXPECT_EQ(Violation(o),
+            "gamma = -0.5 must be positive (or \"scale\", \"median\" or \"min_volume\")");
   o = DetectorOptions{};
   o.refit_every = -1;
   EXPECT_EQ(Violation(o), "refit_every = -1 must not be negative (0: fit once, never refit)");

@@ -11,6 +11,7 @@
 #include <filesystem>
 #include <fstream>
 #include <iterator>
+#include <limits>
 #include <random>
 #include <string>
 #include <vector>
@@ -114,6 +115,15 @@ void ExpectIdenticalParts(const ModelParts& a, const ModelParts& b) {
     EXPECT_TRUE(SameBytes(ca.summary.incidents_per_day, cb.summary.incidents_per_day));
     EXPECT_EQ(ca.summary.reference_opened, cb.summary.reference_opened);
     EXPECT_EQ(ca.summary.warnings, cb.summary.warnings);
+  }
+  ASSERT_EQ(a.gamma_candidates.size(), b.gamma_candidates.size());
+  for (std::size_t i = 0; i < a.gamma_candidates.size(); ++i) {
+    EXPECT_TRUE(SameBytes(a.gamma_candidates[i].gamma, b.gamma_candidates[i].gamma));
+    EXPECT_TRUE(SameBytes(a.gamma_candidates[i].log_volume, b.gamma_candidates[i].log_volume));
+    EXPECT_TRUE(
+        SameBytes(a.gamma_candidates[i].standard_error, b.gamma_candidates[i].standard_error));
+    EXPECT_TRUE(SameBytes(a.gamma_candidates[i].effective_samples,
+                          b.gamma_candidates[i].effective_samples));
   }
 }
 
@@ -239,6 +249,36 @@ TEST(ModelFileRoundTrip, AllStatisticsVersionAndNoNamesSurvive) {
   const Model decoded = DecodeModel(bytes.data(), bytes.size());
   ExpectIdenticalParts(model.parts(), decoded.parts());
   EXPECT_TRUE(decoded.parts().feature_names.empty());
+}
+
+TEST(ModelFileRoundTrip, MinVolumeWidthAndItsTableSurvive) {
+  ModelParts p = FittedModel(KernelType::kRbf, ScalerType::kWhiten, 60, 2, 0.3, {}, 3).parts();
+  p.gamma_spec = *GammaSpec::Parse("min_volume");
+  const double inf = std::numeric_limits<double>::infinity();
+  p.gamma_candidates = {{0.1, 3.25, 0.02, 812.5}, {0.2, 2.75, 0.03, 640}, {0.4, inf, 0, 0}};
+  const Model model(p);
+  const std::vector<uint8_t> bytes = EncodeModel(model);
+  const Model decoded = DecodeModel(bytes.data(), bytes.size());
+  EXPECT_EQ(decoded.parts().gamma_spec.ToString(), "min_volume");
+  ExpectIdenticalParts(model.parts(), decoded.parts());
+  EXPECT_EQ(EncodeModel(decoded), bytes);
+}
+
+TEST(ModelFileCompatibility, VersionTwoFilesStillReadAndCannotClaimMinVolume) {
+  // A version 2 payload is a version 3 payload without the trailing candidate count.
+  static constexpr char kModelMagic[4] = {'N', 'U', 'W', 'M'};
+  ModelParts p = FittedModel(KernelType::kRbf, ScalerType::kStandard, 60, 2, 0.3, {}, 3).parts();
+  const std::vector<uint8_t> v3 = EncodeModel(Model(p));
+  constexpr std::size_t kHeader = 4 + 4 + 8, kTrailer = 4;
+  std::vector<uint8_t> payload(v3.begin() + kHeader, v3.end() - kTrailer - 4);
+  const std::vector<uint8_t> v2 = WrapChecksummed(kModelMagic, 2, payload);
+  const Model old = DecodeModel(v2.data(), v2.size());
+  ExpectIdenticalParts(p, old.parts());
+  // Gamma mode 3 did not exist in version 2: such a file is corrupt, not a min_volume model.
+  payload[1 + 8 + 4 + 8] = 3;  // kernel type, gamma, degree, coef0, then the gamma mode
+  const std::vector<uint8_t> forged = WrapChecksummed(kModelMagic, 2, payload);
+  EXPECT_THAT([&] { DecodeModel(forged.data(), forged.size()); },
+              ::testing::ThrowsMessage<ModelFileError>(HasSubstr("unknown gamma mode 3")));
 }
 
 TEST(ModelFileRoundTrip, SaveLoadIsExact) {
@@ -375,7 +415,8 @@ std::string DecodeError(const std::vector<uint8_t>& file) {
   return "accepted";
 }
 
-constexpr std::size_t kVersion2TailBytes = 4 + (4 + 4 + 4 + 3 + 8) + 1;
+// Version 3 adds the gamma candidates' count (u32 0 for a model without a table).
+constexpr std::size_t kVersion2TailBytes = 4 + (4 + 4 + 4 + 3 + 8) + 1 + 4;
 
 TEST(ModelFileCrafted, ResealedLiesAreRejected) {
   const Model model = SmallModel();
@@ -411,7 +452,8 @@ TEST(ModelFileCrafted, ResealedLiesAreRejected) {
   // The feature-name count and the first name's length sit near the end of the payload, before the
   // names "temp" and "rpm": 4 + (4 + 4) + (4 + 3) bytes, followed by version 2's fields of an
   // uncalibrated standard-scaled model: whitening rows (u32 0), the identity transform (lags i32,
-  // no windows u32, three statistics u32 + 3 x u8, max gap f64) and the calibration flag (u8 0).
+  // no windows u32, three statistics u32 + 3 x u8, max gap f64) and the calibration flag (u8 0),
+  // and version 3's count of gamma candidates (u32 0).
   const std::size_t names_at = bytes.size() - 4 - 19 - kVersion2TailBytes;
   EXPECT_THAT(crafted([&](auto& f) { Put<uint32_t>(f, names_at, 3u); }),
               HasSubstr("3 feature names for 2 features"));
@@ -423,6 +465,31 @@ TEST(ModelFileCrafted, ResealedLiesAreRejected) {
   // A payload cut short before the names, resealed so that only the parser can notice.
   EXPECT_THAT(crafted([](auto& f) { f.erase(f.end() - 4 - 10 - kVersion2TailBytes, f.end() - 4); }),
               HasSubstr("ends inside"));
+}
+
+TEST(ModelFileCrafted, ResealedLiesInTheGammaTableAreRejected) {
+  ModelParts p = SmallModel().parts();
+  p.gamma_spec = *GammaSpec::Parse("min_volume");
+  p.gamma_candidates = {{0.5, 1.25, 0.01, 900}};
+  const std::vector<uint8_t> bytes = EncodeModel(Model(p));
+  // The table ends the payload: count u32, then gamma, log volume, standard error, effective
+  // samples (f64 each), then the CRC-32.
+  const std::size_t table_at = bytes.size() - 4 - 32 - 4;
+  auto crafted = [&](auto&& edit) {
+    std::vector<uint8_t> f = bytes;
+    edit(f);
+    Reseal(f);
+    return DecodeError(f);
+  };
+  EXPECT_EQ(crafted([](auto&) {}), "accepted");
+  EXPECT_THAT(crafted([&](auto& f) { Put<uint32_t>(f, table_at, 0x7FFFFFFFu); }),
+              HasSubstr("gamma candidates"));
+  EXPECT_THAT(crafted([&](auto& f) { Put<double>(f, table_at + 4, -0.5); }),
+              HasSubstr("gamma candidate 0"));
+  EXPECT_THAT(crafted([&](auto& f) {
+                Put<double>(f, table_at + 12, std::numeric_limits<double>::quiet_NaN());
+              }),
+              HasSubstr("gamma candidate 0"));
 }
 
 TEST(ModelFileCrafted, RandomResealedCorruptionNeverEscapesAsAnotherError) {

@@ -125,6 +125,7 @@ TEST(TuningListsTest, ParsesCommaSeparatedValues) {
   EXPECT_EQ(ParseNuList(" 0.01, 0.02 ,1"), (std::vector<double>{0.01, 0.02, 1.0}));
   EXPECT_EQ(ParseWindowList("2,1440"), (std::vector<int64_t>{2, 1440}));
   EXPECT_EQ(ParseSupportVectorBudgetList("1, 64"), (std::vector<int64_t>{1, 64}));
+  EXPECT_EQ(ParseGammaList("min_volume,scale")[0].mode, GammaSpec::Mode::kMinVolume);
   const std::vector<GammaSpec> gammas = ParseGammaList("scale,median,0.25");
   ASSERT_EQ(gammas.size(), 3u);
   EXPECT_EQ(gammas[0].mode, GammaSpec::Mode::kScale);

@@ -217,6 +217,17 @@ TEST(ConfigParse, GammaTakesAModeNameOrANumber) {
   EXPECT_EQ(Parse("[detector]\ngamma = \"scale\"\n").detector.gamma.mode, GammaSpec::Mode::kScale);
   EXPECT_EQ(Parse("[detector]\ngamma = \"median\"\n").detector.gamma.mode,
             GammaSpec::Mode::kMedian);
+  EXPECT_EQ(Parse("[detector]\ngamma = \"min_volume\"\n").detector.gamma.mode,
+            GammaSpec::Mode::kMinVolume);
+  // And back: the written configuration reads as the same choice.
+  DetectorOptions min_volume;
+  min_volume.gamma = *GammaSpec::Parse("min_volume");
+  const std::string text = DescribeDetectorOptions(min_volume);
+  EXPECT_THAT(text, HasSubstr("\ngamma = \"min_volume\"\n"));
+  EXPECT_EQ(Parse(text).detector.gamma.mode, GammaSpec::Mode::kMinVolume);
+  // Where it has no meaning, the configuration is refused with the keys named.
+  EXPECT_THAT(ErrorOf("[detector]\ngamma = \"min_volume\"\nkernel = \"linear\"\n"),
+              HasSubstr("gamma = \"min_volume\" needs detector.kernel = \"rbf\""));
   // A TOML integer where a number is expected is that number (TOML keeps 2 and 2.0 apart; a
   // user who writes gamma = 2 means 2).
   const GammaSpec two = Parse("[detector]\ngamma = 2\n").detector.gamma;
@@ -305,8 +316,8 @@ TEST(ConfigErrors, WrongTypesNameTheExpectedType) {
               HasSubstr("key 'detector.scaler' must be one of \"none\", \"standard\", \"robust\", "
                         "not an integer"));
   EXPECT_THAT(ErrorOf("[detector]\ngamma = true\n"),
-              HasSubstr("key 'detector.gamma' must be \"scale\", \"median\" or a positive number, "
-                        "not a boolean"));
+              HasSubstr("key 'detector.gamma' must be \"scale\", \"median\", \"min_volume\" or a "
+                        "positive number, not a boolean"));
   EXPECT_THAT(ErrorOf("[detector]\ngamma = \"wide\"\n"), HasSubstr("not the string \"wide\""));
   EXPECT_EQ(ErrorOf("[detector]\nfeature_names = [\"a\", 3]\n"),
             "t.toml:2:23: key 'detector.feature_names' must be an array of strings; element 2 is "
@@ -361,7 +372,8 @@ TEST(ConfigErrors, OutOfRangeDetectorValuesNameFileLineAndKey) {
   EXPECT_EQ(ErrorOf("[detector]\nsupport_vector_budget = 0\n"),
             "t.toml:2:25: detector.support_vector_budget = 0 must be at least 1");
   EXPECT_EQ(ErrorOf("[detector]\ngamma = -0.5\n"),
-            "t.toml:2:9: detector.gamma = -0.5 must be positive (or \"scale\" or \"median\")");
+            "t.toml:2:9: detector.gamma = -0.5 must be positive (or \"scale\", \"median\" or "
+            "\"min_volume\")");
   EXPECT_THAT(ErrorOf("[detector]\ngamma = 0\n"), HasSubstr("detector.gamma = 0 must be positive"));
   EXPECT_THAT(ErrorOf("[detector]\ngamma = inf\n"),
               HasSubstr("detector.gamma = inf is not finite"));

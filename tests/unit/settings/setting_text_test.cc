@@ -42,7 +42,9 @@ TEST(SettingText, RefusesTextThatIsNotOfTheKeysType) {
             "'3000000000' is out of range [-2147483648, 2147483647]");
   EXPECT_EQ(error("cache_bytes", "-1"), "'-1' must not be negative");
   EXPECT_EQ(error("kernel", "sigmoid"), "'sigmoid' is not one of rbf, linear, poly");
-  EXPECT_EQ(error("gamma", "wide"), "'wide' is not scale, median or a number > 0");
+  EXPECT_EQ(error("gamma", "wide"), "'wide' is not scale, median, min_volume or a number > 0");
+  EXPECT_EQ(error("gamma", "min_volume"), "accepted");
+  EXPECT_EQ(o.gamma.mode, GammaSpec::Mode::kMinVolume);
   EXPECT_EQ(error("drift_detection", "yes"), "'yes' is not true or false");
   EXPECT_EQ(o.nu, DetectorOptions{}.nu);  // unchanged by the failures
   EXPECT_EQ(error("feature_names", " a, b ,c"), "accepted");
