@@ -103,6 +103,9 @@ int main(int argc, char** argv) {
   calibrated.warmup = 120;
   calibrated.calibration_folds = 2;
   cases.push_back({"rbf-calibrated", calibrated, 2, 130, true});
+  nuwatch::DetectorOptions min_volume = calibrated;  // the width's table (model format 3)
+  min_volume.gamma.mode = nuwatch::GammaSpec::Mode::kMinVolume;
+  cases.push_back({"rbf-min-volume", min_volume, 2, 130, false});
   nuwatch::DetectorOptions linear = SmallOptions();
   linear.kernel = nuwatch::KernelType::kLinear;
   linear.scaler = nuwatch::ScalerType::kRobust;
