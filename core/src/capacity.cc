@@ -106,8 +106,10 @@ CapacityReport MeasureCapacity(const CapacityOptions& a) {
       first_times[i] = 10.0 * static_cast<double>(i);
       slid_times[i] = 10.0 * static_cast<double>(i + slide);
     }
-    auto time_fits = [&](int folds, double* cold_best, double* warm_best) {
+    auto time_fits = [&](int folds, double* cold_best, double* warm_best,
+                         GammaSpec gamma = GammaSpec{}) {
       DetectorOptions o;
+      o.gamma = gamma;
       o.nu = a.nu;
       o.scaler = ScalerType::kStandard;
       o.window = a.window;
@@ -128,6 +130,9 @@ CapacityReport MeasureCapacity(const CapacityOptions& a) {
     time_fits(0, &r.window_cold_fit_seconds, &r.window_refit_seconds);
     time_fits(DetectorOptions{}.calibration_folds, &r.window_cold_fit_calibrated_seconds,
               &r.window_refit_calibrated_seconds);
+    double warm_min_volume = 0;  // the same as the calibrated warm refit: the width is kept
+    time_fits(DetectorOptions{}.calibration_folds, &r.window_cold_fit_min_volume_seconds,
+              &warm_min_volume, GammaSpec{GammaSpec::Mode::kMinVolume, 0});
   }
   r.model_bytes = budgeted.MemoryBytes();
 

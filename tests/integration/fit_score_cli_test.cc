@@ -182,9 +182,9 @@ TEST_F(FitScoreCli, BenchJsonHasTheCapacityPlanningKeys) {
   ProgramRun bench = Nuwatch("bench --dims 4 --window 300 --support-vector-budget 16 --json");
   ASSERT_EQ(bench.exit_code, 0) << bench.err;
   const auto j = nlohmann::json::parse(bench.out);
-  for (const char* key :
-       {"fit_seconds", "score_vectors_per_second", "score_p50_seconds", "score_p99_seconds",
-        "model_bytes", "refit_seconds", "compress_seconds", "stream_bytes"})
+  for (const char* key : {"fit_seconds", "score_vectors_per_second", "score_p50_seconds",
+                          "score_p99_seconds", "model_bytes", "refit_seconds", "compress_seconds",
+                          "stream_bytes", "window_cold_fit_min_volume_seconds"})
     EXPECT_TRUE(j.contains(key)) << key;
   EXPECT_LE(j["support_vectors"].get<int>(), 16);
   EXPECT_LE(j["score_p50_seconds"].get<double>(), j["score_p99_seconds"].get<double>());

@@ -34,12 +34,16 @@ struct CapacityReport {
   double cold_objective = 0;
   double compress_seconds = 0;  // compression and rho recalibration
   // A whole refit as the detector runs it (FitWindow: standard scaler, compression, warm after the
-  // slide), without calibration and with the default calibration (calibration_folds cross-fitted models): what
-  // calibrated alarms cost. Best of three each.
+  // slide), without calibration and with the default calibration (calibration_folds cross-fitted
+  // models): what calibrated alarms cost. Best of three each.
   double window_refit_seconds = 0;
   double window_refit_calibrated_seconds = 0;
   double window_cold_fit_seconds = 0;
   double window_cold_fit_calibrated_seconds = 0;
+  // The calibrated cold fit with gamma = "min_volume" (kernel_width.h): five candidate widths,
+  // each fitted and calibrated, and their envelopes' volumes estimated. Best of three. Warm
+  // refits keep the width, so they cost what window_refit_calibrated_seconds says.
+  double window_cold_fit_min_volume_seconds = 0;
   int64_t compressed_from = 0;  // support vectors of the warm refit before compression
   int support_vectors = 0;      // after compression
   double score_vectors_per_second = 0;
