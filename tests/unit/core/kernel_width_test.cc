@@ -184,11 +184,8 @@ TEST(MinVolumeWidth, TooShortToCalibrateFallsBackToScaleAndSaysSo) {
   const MatrixD z = fit.model->parts().scaler.Transform(x);
   EXPECT_DOUBLE_EQ(fit.model->kernel().gamma, ResolveGamma(GammaSpec{}, z));
   EXPECT_TRUE(fit.model->parts().gamma_candidates.empty());
-  bool said = false;
-  for (const auto& w : fit.report.warnings)
-    said = said || w.find("min_volume used scale") == 0 ||
-           w.find("gamma = min_volume used scale") == 0;
-  EXPECT_TRUE(said);
+  EXPECT_THAT(fit.report.warnings,
+              ::testing::Contains(::testing::StartsWith("gamma = min_volume used scale")));
 }
 
 TEST(MinVolumeWidth, RefusedWhereItHasNoMeaning) {
