@@ -53,7 +53,7 @@ py=/usr/bin/python3
 ready="$out/ready.json"
 rm -rf "$ready" "$out/state" "$out/live"
 "$nuwatchd" --config config/demo.toml --ingest 'tcp://127.0.0.1:*' --publish 'tcp://127.0.0.1:*' \
-  --control 'tcp://127.0.0.1:*' --metrics 127.0.0.1:0 --state-dir "$out/state" \
+  --metrics 127.0.0.1:0 --state-dir "$out/state" \
   --ready-file "$ready" 2>"$out/nuwatchd.log" &
 daemon=$!
 cleanup() {

@@ -14,6 +14,7 @@
 #include <zmq.hpp>
 
 #include "cli/cli_util.h"
+#include "cli/client_keys.h"
 #include "cli/commands.h"
 
 namespace nuwatch::cli {
@@ -27,6 +28,7 @@ struct ControlArguments {
   std::string connect;
   std::string output = "table";
   std::string timeout = "5s";
+  ClientKeyFlags keys;
 };
 
 struct KnownCommand {
@@ -46,10 +48,12 @@ std::string KnownList() {
 // Sends `request` on a REQ socket and waits at most `timeout` seconds for the reply. Throws
 // CommandError when the endpoint cannot be used or nothing answers in time.
 std::string Exchange(const std::string& endpoint, const std::string& request, double timeout,
-                     const std::string& timeout_text) {
+                     const std::string& timeout_text, const ClientKeyFlags& keys) {
   zmq::context_t context(1);
   zmq::socket_t socket(context, zmq::socket_type::req);
   socket.set(zmq::sockopt::linger, 0);
+  ApplyClientKeys(keys, socket);
+  HandshakeWatch watch(context, socket, keys);
   try {
     socket.connect(endpoint);
     // A REQ socket queues the request until a peer completes the handshake; a peer of another
@@ -60,10 +64,15 @@ std::string Exchange(const std::string& endpoint, const std::string& request, do
     throw CommandError("--connect: cannot use '" + endpoint + "': " + e.what());
   }
   zmq::pollitem_t item{socket.handle(), 0, ZMQ_POLLIN, 0};
-  const auto wait = std::chrono::milliseconds(static_cast<int64_t>(timeout * 1000));
-  if (zmq::poll(&item, 1, wait) == 0) {
-    throw CommandError("no reply from " + endpoint + " within --timeout " + timeout_text +
-                       " (is nuwatchd running, and is this its control socket?)");
+  const auto deadline = std::chrono::steady_clock::now() +
+                        std::chrono::milliseconds(static_cast<int64_t>(timeout * 1000));
+  // In slices, so that a refused handshake is reported at once rather than at the timeout.
+  while (zmq::poll(&item, 1, std::chrono::milliseconds(100)) == 0) {
+    if (const auto failure = watch.Failure()) throw CommandError(endpoint + ": " + *failure);
+    if (std::chrono::steady_clock::now() >= deadline) {
+      throw CommandError("no reply from " + endpoint + " within --timeout " + timeout_text +
+                         " (is nuwatchd running, and is this its control socket?)");
+    }
   }
   zmq::message_t reply;
   (void)socket.recv(reply, zmq::recv_flags::none);
@@ -119,7 +128,7 @@ void RunControl(const ControlArguments& args) {
 
   json request = {{"command", args.command}};
   if (known->takes_stream) request["stream"] = args.stream;
-  const std::string text = Exchange(args.connect, request.dump(), timeout, args.timeout);
+  const std::string text = Exchange(args.connect, request.dump(), timeout, args.timeout, args.keys);
   const json reply = json::parse(text, nullptr, /*allow_exceptions=*/false);
   if (!reply.is_object() || !reply.contains("ok") || !reply["ok"].is_boolean())
     throw CommandError(args.connect +
@@ -165,6 +174,7 @@ void AddControlCommand(CLI::App& app) {
   command->add_option("--timeout", args->timeout, "How long to wait for the reply")
       ->type_name("DURATION")
       ->capture_default_str();
+  AddClientKeyFlags(command, &args->keys);
   command->callback([args] { RunControl(*args); });
 }
 

@@ -29,6 +29,7 @@
 #include <zmq.hpp>
 
 #include "cli/cli_util.h"
+#include "cli/client_keys.h"
 #include "cli/commands.h"
 #include "formats/csv_reader.h"
 #include "formats/stream_file.h"
@@ -50,6 +51,7 @@ struct SendArguments {
   std::string dtype = "f64";
   std::string batch = "1";
   std::string linger = "5s";
+  ClientKeyFlags keys;
 };
 
 // The arguments after parsing and range checks.
@@ -63,6 +65,7 @@ struct SendSettings {
   int batch = 1;
   std::chrono::milliseconds linger{5000};
   std::string linger_text = "5s";
+  ClientKeyFlags keys;
 };
 
 volatile std::sig_atomic_t stop_requested = 0;
@@ -126,6 +129,7 @@ SendSettings ToSettings(const SendArguments& args) {
   const double linger = DurationFlag("--linger", args.linger, 3600);
   settings.linger = std::chrono::milliseconds(static_cast<int64_t>(std::llround(linger * 1000)));
   settings.linger_text = args.linger;
+  settings.keys = args.keys;
   return settings;
 }
 
@@ -155,6 +159,12 @@ class Sender {
   Sender(const SendSettings& settings, int dims)
       : settings_(settings), dims_(dims), context_(1), socket_(context_, zmq::socket_type::push) {
     socket_.set(zmq::sockopt::linger, static_cast<int>(settings.linger.count()));
+    // Queue only on a connection whose handshake succeeded: a daemon that refuses this client
+    // (CURVE, PROTOCOL.md §12) then holds up the first send, where the watch below names the
+    // reason, instead of taking messages that can never leave.
+    socket_.set(zmq::sockopt::immediate, true);
+    ApplyClientKeys(settings.keys, socket_);
+    watch_.emplace(context_, socket_, settings.keys);
     try {
       socket_.connect(settings.endpoint);
     } catch (const zmq::error_t& e) {
@@ -199,6 +209,7 @@ class Sender {
                     : settings_.linger;
     socket_.set(zmq::sockopt::linger, static_cast<int>(linger.count()));
     const auto started = Clock::now();
+    watch_.reset();  // its socket must be closed before the context can end
     socket_.close();
     context_.close();
     // zmq_ctx_term returns as soon as everything queued has left, and only at the linger deadline
@@ -264,6 +275,9 @@ class Sender {
         // The queue is full (or no peer ever connected): wait until the socket takes more.
         zmq::pollitem_t item{socket_.handle(), 0, ZMQ_POLLOUT, 0};
         zmq::poll(&item, 1, std::chrono::milliseconds(200));
+        if (const auto failure = watch_->Failure()) {
+          throw CommandError(settings_.endpoint + ": " + *failure);
+        }
       } catch (const zmq::error_t& e) {
         if (e.num() != EINTR) throw CommandError(std::string("send failed: ") + e.what());
       }
@@ -291,6 +305,7 @@ class Sender {
   const int dims_;
   zmq::context_t context_;
   zmq::socket_t socket_;
+  std::optional<HandshakeWatch> watch_;  // after socket_: destroyed before it
   std::unordered_map<std::string, Pending> pending_;
   std::vector<std::string> order_;  // streams in order of first appearance
   std::string payload_;             // reused: stops allocating once grown to the largest message
@@ -601,6 +616,7 @@ void AddSendCommand(CLI::App& app) {
                    "How long to wait at the end for queued messages to reach the daemon")
       ->type_name("DURATION")
       ->capture_default_str();
+  AddClientKeyFlags(command, &args->keys);
   command->callback([args] { RunSend(*args); });
 }
 

@@ -21,6 +21,7 @@
 #include <zmq_addon.hpp>
 
 #include "cli/cli_util.h"
+#include "cli/client_keys.h"
 #include "cli/commands.h"
 #include "formats/timestamps.h"
 
@@ -40,6 +41,7 @@ struct TailArguments {
   std::string count = "0";
   std::string timeout = "0";
   bool json_output = false;
+  ClientKeyFlags keys;
 };
 
 volatile std::sig_atomic_t stop_requested = 0;
@@ -261,6 +263,7 @@ void RunTail(const TailArguments& args) {
   zmq::context_t context(1);
   zmq::socket_t socket(context, zmq::socket_type::sub);
   socket.set(zmq::sockopt::linger, 0);
+  ApplyClientKeys(args.keys, socket);
   // ZeroMQ subscriptions match prefixes (§9): subscribe to each key, then compare whole keys.
   if (args.streams.empty()) {
     socket.set(zmq::sockopt::subscribe, "");
@@ -276,7 +279,8 @@ void RunTail(const TailArguments& args) {
   if (zmq_socket_monitor(socket.handle(), monitor_endpoint.c_str(),
                          ZMQ_EVENT_CONNECTED | ZMQ_EVENT_DISCONNECTED |
                              ZMQ_EVENT_HANDSHAKE_SUCCEEDED | ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL |
-                             ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL) != 0)
+                             ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL |
+                             ZMQ_EVENT_HANDSHAKE_FAILED_AUTH) != 0)
     throw CommandError(std::string("cannot watch the connection: ") + zmq_strerror(zmq_errno()));
   monitor.connect(monitor_endpoint);
   try {
@@ -326,19 +330,44 @@ void RunTail(const TailArguments& args) {
         std::vector<zmq::message_t> event;
         (void)zmq::recv_multipart(monitor, std::back_inserter(event));
         uint16_t id = 0;
-        if (!event.empty() && event[0].size() >= sizeof id)
+        uint32_t value = 0;
+        if (!event.empty() && event[0].size() >= sizeof id + sizeof value) {
           std::memcpy(&id, event[0].data(), sizeof id);
+          std::memcpy(&value, static_cast<const char*>(event[0].data()) + sizeof id, sizeof value);
+        }
         if (id == ZMQ_EVENT_CONNECTED) handshake_pending = true;
+        // CURVE (PROTOCOL.md §12): a refused key, or a plain client at a daemon with [auth].
+        if (id == ZMQ_EVENT_HANDSHAKE_FAILED_AUTH)
+          throw CommandError(args.connect + ": nuwatchd refused this client key (ZAP status " +
+                             std::to_string(value) +
+                             "): is its public key in the daemon's auth.client_keys?");
+        if (id == ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL &&
+            value == ZMQ_PROTOCOL_ERROR_ZMTP_MECHANISM_MISMATCH)
+          throw CommandError(args.connect +
+                             (args.keys.enabled()
+                                  ? ": the peer does not use CURVE: leave out --client-key and "
+                                    "--server-key"
+                                  : ": the daemon requires CURVE authentication: pass "
+                                    "--client-key and --server-key"));
         if (id == ZMQ_EVENT_HANDSHAKE_SUCCEEDED) {
           handshake_done = true;
           handshake_pending = false;
         }
-        if ((id == ZMQ_EVENT_DISCONNECTED && handshake_pending) ||
-            id == ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL || id == ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL)
+        // A close during the handshake: a socket of another type (ZMTP checks the pair), a CURVE
+        // server that cannot open this client's HELLO, or one that closed before this side read
+        // the mechanism mismatch.
+        const bool unexplained_close = (id == ZMQ_EVENT_DISCONNECTED && handshake_pending) ||
+                                       id == ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL;
+        if (args.keys.enabled() && unexplained_close)
+          throw CommandError(args.connect +
+                             ": the connection closed during the CURVE handshake: is "
+                             "--server-key this daemon's key, and is this its publish socket?");
+        if (unexplained_close || id == ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL)
           throw CommandError(args.connect +
                              " is not a PUB socket: it refused the subscription (tail reads "
                              "nuwatchd's publish socket, publish.endpoint; the ingest and control "
-                             "sockets never publish)");
+                             "sockets never publish), or the daemon requires CURVE (pass "
+                             "--client-key and --server-key)");
       }
       if (!(items[0].revents & ZMQ_POLLIN)) continue;
       frames.clear();
@@ -429,6 +458,7 @@ void AddTailCommand(CLI::App& app) {
   command->add_flag("--json", args->json_output,
                     "Print each published JSON object as received, one per line, with the "
                     "stream key added as its first member \"stream\"");
+  AddClientKeyFlags(command, &args->keys);
   command->callback([args] { RunTail(*args); });
 }
 

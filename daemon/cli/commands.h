@@ -21,7 +21,7 @@ using CommandAdder = void (*)(CLI::App& app);
 
 struct CommandRegistration {
   // `order` sorts the subcommands in --help (fit 10, score 20, inspect 30, bench 40, replay 50,
-  // simulate 60, tune 70, evaluate 80, send 90, tail 100, control 110).
+  // simulate 60, tune 70, evaluate 80, send 90, tail 100, control 110, keygen 120).
   CommandRegistration(int order, CommandAdder adder);
 };
 

@@ -6,6 +6,8 @@
 #include <spdlog/spdlog.h>
 #include <sys/eventfd.h>
 #include <sys/socket.h>
+#include <sys/stat.h>
+#include <sys/un.h>
 #include <unistd.h>
 
 #include <array>
@@ -18,18 +20,22 @@
 #include <cerrno>
 #include <chrono>
 #include <csignal>
+#include <cstdlib>
 #include <cstring>
 #include <filesystem>
 #include <functional>
 #include <future>
 #include <nlohmann/json.hpp>
+#include <set>
 #include <thread>
 #include <zmq.hpp>
 
 #include "nuwatch/checked_file.h"
 #include "nuwatch/mutex.h"
+#include "protocol/curve_keys.h"
 #include "protocol/wire_protocol.h"
 #include "service/control.h"
+#include "service/curve_auth.h"
 #include "service/metrics.h"
 #include "service/recorder.h"
 #include "service/refit_pool.h"
@@ -88,6 +94,46 @@ constexpr std::chrono::milliseconds kDrainQuiet{300};
 constexpr std::chrono::seconds kDrainSeconds{30};
 
 void NameThisThread(const char* name) { pthread_setname_np(pthread_self(), name); }
+
+// The file of an ipc:// endpoint ("" for other transports).
+std::string IpcPath(const std::string& endpoint) {
+  constexpr std::string_view kIpc = "ipc://";
+  return endpoint.starts_with(kIpc) ? endpoint.substr(kIpc.size()) : std::string();
+}
+
+// libzmq replaces an ipc socket file that exists, so a second daemon would silently take the
+// first one's control socket: refuse when something still answers on it.
+void RefuseLiveIpcSocket(const std::string& path, const char* key) {
+  sockaddr_un address{};
+  if (path.empty() || path.size() >= sizeof address.sun_path) return;  // bind reports it
+  address.sun_family = AF_UNIX;
+  std::memcpy(address.sun_path, path.c_str(), path.size() + 1);
+  const int fd = ::socket(AF_UNIX, SOCK_STREAM | SOCK_CLOEXEC, 0);
+  if (fd < 0) return;
+  const bool live = ::connect(fd, reinterpret_cast<sockaddr*>(&address), sizeof address) == 0;
+  ::close(fd);
+  if (live) {
+    throw DaemonError(std::string(key) + ": " + path +
+                      " is in use by another process (another nuwatchd?); stop it, or give this "
+                      "one another endpoint or --state-dir");
+  }
+}
+
+// The runtime directory of the default control endpoint, /tmp/nuwatchd-UID, is created 0700 and
+// must belong to this user with no access for others (else another user could have placed a
+// socket or a link there).
+void PrepareTmpRuntimeDir(const std::string& dir) {
+  if (::mkdir(dir.c_str(), 0700) != 0 && errno != EEXIST) {
+    throw DaemonError("control.endpoint: cannot create " + dir + ": " + std::strerror(errno));
+  }
+  struct stat st {};
+  if (::lstat(dir.c_str(), &st) != 0 || !S_ISDIR(st.st_mode) || st.st_uid != ::getuid() ||
+      (st.st_mode & 077) != 0) {
+    throw DaemonError("control.endpoint: " + dir +
+                      " is not a directory of this user with mode 0700; remove it, or set "
+                      "control.endpoint or state.dir");
+  }
+}
 
 spdlog::level::level_enum LogLevel(const std::string& name) {
   return spdlog::level::from_str(name);
@@ -149,6 +195,7 @@ struct Daemon::Impl final : ControlCommands {
   ~Impl() override;
 
   // Set-up.
+  void SetUpAuth();
   void BindSockets();
   void StartExposer();
   void RestoreStreams();
@@ -223,6 +270,10 @@ struct Daemon::Impl final : ControlCommands {
   DaemonEndpoints endpoints;
 
   zmq::context_t context{1};
+  // CURVE ([auth]): the daemon's key pair and the ZAP handler. Declared before the sockets, so
+  // that it is destroyed after them: with no handler bound, libzmq would admit any CURVE client.
+  std::optional<CurveKeyPair> server_keys;
+  std::unique_ptr<CurveAuthenticator> auth;
   std::vector<zmq::socket_t> ingest;  // PULL sockets, then the SUB socket if any
   zmq::socket_t publish;  // XPUB with ZMQ_XPUB_NODROP: a full subscriber queue is seen and counted
   zmq::socket_t control;
@@ -315,6 +366,7 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
       throw DaemonError(e.what());
     }
   }
+  SetUpAuth();
   BindSockets();
   StartExposer();
   if (store) {
@@ -333,6 +385,33 @@ Daemon::Impl::~Impl() {
   streams.Clear();
   StopExposer(exposer, metrics_host, metrics_port);
   if (wake_fd >= 0) ::close(wake_fd);
+}
+
+void Daemon::Impl::SetUpAuth() {
+  const DaemonSettings& s = config.daemon;
+  if (s.server_secret_key_file.empty()) return;
+  if (!CurveAvailable()) throw DaemonError("auth: " + CurveUnavailableMessage());
+  std::set<std::string> allowed;
+  try {
+    server_keys = ReadCurveKeyFile(s.server_secret_key_file, /*need_secret=*/true);
+  } catch (const CurveKeyError& e) {
+    throw ConfigError(std::string("auth.server_secret_key_file: ") + e.what());
+  }
+  try {
+    allowed = ReadAllowedCurveKeys(s.client_keys);
+  } catch (const CurveKeyError& e) {
+    throw ConfigError(std::string("auth.client_keys: ") + e.what());
+  }
+  const std::size_t count = allowed.size();
+  try {
+    auth = std::make_unique<CurveAuthenticator>(context, std::move(allowed), &metrics);
+  } catch (const zmq::error_t& e) {
+    throw DaemonError(std::string("auth: cannot start the ZAP handler: ") + e.what());
+  }
+  spdlog::info(
+      "auth: CURVE on the ingest, publish and control sockets; server key {}; {} client "
+      "keys admitted from {}",
+      server_keys->public_key, count, s.client_keys);
 }
 
 void Daemon::Impl::BindSockets() {
@@ -354,6 +433,7 @@ void Daemon::Impl::BindSockets() {
     socket.set(zmq::sockopt::rcvhwm, s.receive_high_water_mark);
     socket.set(zmq::sockopt::maxmsgsize, max_frame);
     socket.set(zmq::sockopt::linger, 0);
+    if (auth) auth->Protect(socket, AuthSocket::kIngest, *server_keys);
     endpoints.ingest.push_back(bind(socket, endpoint, "ingest.endpoints"));
     ingest.push_back(std::move(socket));
   }
@@ -381,11 +461,30 @@ void Daemon::Impl::BindSockets() {
   publish.set(zmq::sockopt::sndhwm, s.publish_high_water_mark);
   publish.set(zmq::sockopt::xpub_nodrop, true);
   publish.set(zmq::sockopt::linger, kPublishLingerMs);
+  if (auth) auth->Protect(publish, AuthSocket::kPublish, *server_keys);
   endpoints.publish = bind(publish, s.publish_endpoint, "publish.endpoint");
   control = zmq::socket_t(context, zmq::socket_type::rep);
   control.set(zmq::sockopt::maxmsgsize, static_cast<int64_t>(kControlMaxBytes));
   control.set(zmq::sockopt::linger, 0);
-  endpoints.control = bind(control, s.control_endpoint, "control.endpoint");
+  if (auth) auth->Protect(control, AuthSocket::kControl, *server_keys);
+  std::string control_endpoint = s.control_endpoint;
+  if (control_endpoint.empty()) {
+    control_endpoint = DefaultControlEndpoint(s.state_dir, std::getenv("RUNTIME_DIRECTORY"),
+                                              std::getenv("XDG_RUNTIME_DIR"), ::getuid());
+    const std::string dir = std::filesystem::path(IpcPath(control_endpoint)).parent_path();
+    if (dir == "/tmp/nuwatchd-" + std::to_string(::getuid())) PrepareTmpRuntimeDir(dir);
+  }
+  const std::string control_path = IpcPath(control_endpoint);
+  RefuseLiveIpcSocket(control_path, "control.endpoint");
+  endpoints.control = bind(control, control_endpoint, "control.endpoint");
+  // Whoever may open the socket file may steer the daemon: its owner only. libzmq creates it
+  // with the umask's mode (a directory such as systemd's RuntimeDirectory= is 0755 by default);
+  // /tmp/nuwatchd-UID is 0700 besides, so that no one can connect before this chmod.
+  if (!control_path.empty() && ::chmod(control_path.c_str(), 0600) != 0) {
+    throw DaemonError("control.endpoint: cannot restrict " + control_path +
+                      " to mode 0600: " + std::strerror(errno));
+  }
+  if (auth) auth->Start();
 }
 
 void Daemon::Impl::StartExposer() {
@@ -714,6 +813,7 @@ void Daemon::Impl::Shutdown() {
   }
   publish.close();
   control.close();
+  if (auth) auth->Stop();  // every protected socket is closed now
   spdlog::info("stopped");
 }
 
@@ -1333,6 +1433,7 @@ ReloadOutcome Daemon::Impl::Reload() {
     return outcome;
   }
   Config next;
+  std::set<std::string> next_allowed;
   try {
     next = LoadConfig(config.source_path);
     ApplyOverrides(options.overrides, &next.daemon);
@@ -1340,6 +1441,19 @@ ReloadOutcome Daemon::Impl::Reload() {
     CheckConfigForDaemon(next);
     if (const std::string error = WireLimitsError(LimitsOf(next.daemon)); !error.empty()) {
       throw ConfigError(config.source_path + ": limits: " + error);
+    }
+    if (auth) {
+      // Keys are added and revoked by editing the list and reloading (README, "Keys").
+      if (next.daemon.client_keys.empty()) {
+        throw ConfigError(config.source_path +
+                          ": auth.client_keys is empty, but authentication is on; turning it off "
+                          "takes a restart");
+      }
+      try {
+        next_allowed = ReadAllowedCurveKeys(next.daemon.client_keys);
+      } catch (const CurveKeyError& e) {
+        throw ConfigError(std::string("auth.client_keys: ") + e.what());
+      }
     }
   } catch (const ConfigError& e) {
     outcome.ok = false;
@@ -1358,6 +1472,11 @@ ReloadOutcome Daemon::Impl::Reload() {
   next.source_path = config.source_path;
 
   spdlog::set_level(LogLevel(next.daemon.log_level));
+  if (auth) {
+    spdlog::info("reload: {} client keys admitted from {}", next_allowed.size(),
+                 next.daemon.client_keys);
+    auth->ReplaceAllowed(std::move(next_allowed));
+  }
   limits = LimitsOf(next.daemon);
   snapshot_interval_seconds = next.daemon.snapshot_interval_seconds;
   const bool new_ratio_window =

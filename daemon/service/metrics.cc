@@ -32,6 +32,32 @@ std::string_view PublishDropReasonLabel(PublishDropReason reason) {
   return "unknown";
 }
 
+std::string_view AuthSocketLabel(AuthSocket socket) {
+  switch (socket) {
+    case AuthSocket::kIngest:
+      return "ingest";
+    case AuthSocket::kPublish:
+      return "publish";
+    case AuthSocket::kControl:
+      return "control";
+  }
+  return "unknown";
+}
+
+std::string_view AuthRefusalLabel(AuthRefusal reason) {
+  switch (reason) {
+    case AuthRefusal::kUnknownKey:
+      return "unknown_key";
+    case AuthRefusal::kWrongMechanism:
+      return "wrong_mechanism";
+    case AuthRefusal::kBadHandshake:
+      return "bad_handshake";
+    case AuthRefusal::kIncompleteHandshake:
+      return "incomplete_handshake";
+  }
+  return "unknown";
+}
+
 RefitResult ClassifyRefit(const RefitReport& report) {
   if (report.discarded) return RefitResult::kDiscarded;
   if (!report.ok) return RefitResult::kFailed;
@@ -136,6 +162,25 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
   state_write_failures_ = &Build(BuildCounter(), "nuwatch_state_write_failures_total",
                                  "State files that could not be written.", r)
                                .Add({});
+  auto& admitted =
+      Build(BuildCounter(), "nuwatch_auth_handshakes_total",
+            "CURVE handshakes admitted by the daemon's ZAP handler, by socket (ingest, "
+            "publish, control); stays 0 without [auth].",
+            r);
+  auto& refused = Build(BuildCounter(), "nuwatch_auth_refusals_total",
+                        "Peers refused on a CURVE socket, by socket and reason: unknown_key (not "
+                        "in auth.client_keys), wrong_mechanism (no CURVE), bad_handshake (e.g. a "
+                        "wrong server key), incomplete_handshake (gone before it finished).",
+                        r);
+  for (std::size_t i = 0; i < kAuthSocketCount; ++i) {
+    const std::string socket(AuthSocketLabel(static_cast<AuthSocket>(i)));
+    auth_admitted_[i] = &admitted.Add({{"socket", socket}});
+    for (std::size_t j = 0; j < kAuthRefusalCount; ++j) {
+      auth_refused_[i][j] =
+          &refused.Add({{"socket", socket},
+                        {"reason", std::string(AuthRefusalLabel(static_cast<AuthRefusal>(j)))}});
+    }
+  }
   Build(BuildGauge(), "nuwatch_build_info", "Always 1; the version label names the build.", r)
       .Add({{"version", version}})
       .Set(1);

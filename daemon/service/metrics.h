@@ -30,6 +30,11 @@
 //                                                      publish.high_water_mark), send_error
 //   nuwatch_incident_events_dropped_total{reason}  counter  incident events, likewise
 //   nuwatch_state_write_failures_total        counter  state files that could not be written
+//   nuwatch_auth_handshakes_total{socket}     counter  CURVE handshakes admitted (socket: ingest,
+//                                                      publish, control; only with [auth])
+//   nuwatch_auth_refusals_total{socket,reason}  counter  peers refused: unknown_key,
+//                                                      wrong_mechanism, bad_handshake,
+//                                                      incomplete_handshake (curve_auth.h)
 //   nuwatch_build_info{version}               gauge    always 1
 //
 // Thread safety: counters, gauges and histograms are prometheus-cpp objects (atomic, or locked
@@ -60,6 +65,24 @@ inline constexpr std::size_t kPublishDropReasonCount = 2;
 // "subscriber_slow", "send_error".
 std::string_view PublishDropReasonLabel(PublishDropReason reason);
 enum class PublishedMessage : uint8_t { kResult, kIncidentEvent };
+
+// The sockets CURVE protects, named by their ZAP domain and metric label: "ingest", "publish",
+// "control".
+enum class AuthSocket : uint8_t { kIngest, kPublish, kControl };
+inline constexpr std::size_t kAuthSocketCount = 3;
+std::string_view AuthSocketLabel(AuthSocket socket);
+// Why a peer was refused (PROTOCOL.md §12): unknown_key (CURVE, but its public key is not in
+// auth.client_keys), wrong_mechanism (no CURVE), bad_handshake (the CURVE handshake failed: a wrong
+// server key, a malformed command), incomplete_handshake (the peer went away or timed out before
+// the handshake finished, e.g. a port scan).
+enum class AuthRefusal : uint8_t {
+  kUnknownKey,
+  kWrongMechanism,
+  kBadHandshake,
+  kIncompleteHandshake
+};
+inline constexpr std::size_t kAuthRefusalCount = 4;
+std::string_view AuthRefusalLabel(AuthRefusal reason);
 
 enum class RefitResult : uint8_t { kOk, kNotConverged, kFailed, kDiscarded, kCoalesced };
 inline constexpr std::size_t kRefitResultCount = 5;
@@ -111,6 +134,12 @@ class DaemonMetrics {
     return *publish_dropped_[static_cast<std::size_t>(message)][static_cast<std::size_t>(reason)];
   }
   prometheus::Counter& state_write_failures() const { return *state_write_failures_; }
+  prometheus::Counter& auth_refused(AuthSocket socket, AuthRefusal reason) const {
+    return *auth_refused_[static_cast<std::size_t>(socket)][static_cast<std::size_t>(reason)];
+  }
+  prometheus::Counter& auth_admitted(AuthSocket socket) const {
+    return *auth_admitted_[static_cast<std::size_t>(socket)];
+  }
 
   // The text exposition format, as /metrics serves it.
   std::string Serialize() const;
@@ -135,6 +164,8 @@ class DaemonMetrics {
   prometheus::Gauge* streams_;
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;
+  std::array<std::array<prometheus::Counter*, kAuthRefusalCount>, kAuthSocketCount> auth_refused_{};
+  std::array<prometheus::Counter*, kAuthSocketCount> auth_admitted_{};
 };
 
 }  // namespace nuwatch

@@ -192,9 +192,33 @@ const Setting<S> kDaemonKeys[] = {
     {.section = "control",
      .name = "endpoint",
      .member = &S::control_endpoint,
-     .doc = "Endpoint the daemon binds its REP socket on, for control requests.",
+     .doc = "Endpoint the daemon binds its REP socket on, for control requests (relearn, forget, "
+            "reload: whoever reaches it steers the daemon). \"\": an ipc:// socket of mode 0600, "
+            "STATE_DIR/nuwatchd.control, else nuwatchd.control in $RUNTIME_DIRECTORY, "
+            "$XDG_RUNTIME_DIR or /tmp/nuwatchd-UID (0700).",
      .unit = "ZeroMQ endpoint",
      .reload = kRestart},
+    {.section = "control",
+     .name = "allow_unauthenticated_tcp",
+     .member = &S::control_allow_unauthenticated_tcp,
+     .doc = "A tcp:// control endpoint without [auth] is refused unless this says, in words, that "
+            "anyone who can reach it may steer the daemon.",
+     .reload = kRestart},
+    {.section = "auth",
+     .name = "server_secret_key_file",
+     .member = &S::server_secret_key_file,
+     .doc = "The daemon's CURVE certificate with its secret key (NAME.key_secret of nuwatch "
+            "keygen, mode 0600). Set: the ingest, result and control sockets require CURVE and "
+            "admit only client_keys. \"\": no authentication.",
+     .unit = "file",
+     .reload = kRestart},
+    {.section = "auth",
+     .name = "client_keys",
+     .member = &S::client_keys,
+     .doc = "The client public keys admitted: a file of Z85 keys (one a line) or a directory of "
+            "NAME.key certificates. Reread on reload, so that keys can be added and revoked.",
+     .unit = "file or directory",
+     .reload = kNow},
     {.section = "metrics",
      .name = "listen",
      .member = &S::metrics_listen,
@@ -280,7 +304,7 @@ const Setting<S> kDaemonKeys[] = {
      .reload = kNow},
 };
 
-constexpr std::string_view kDaemonSections[] = {"daemon",  "ingest", "publish", "control",
+constexpr std::string_view kDaemonSections[] = {"daemon",  "ingest", "publish", "control",  "auth",
                                                 "metrics", "state",  "limits",  "recording"};
 constexpr std::string_view kDetectorSection = "detector";
 constexpr std::string_view kStreamSection = "stream";
@@ -679,11 +703,36 @@ std::optional<Violation> CheckDaemon(const DaemonSettings& s) {
                                         " is not a ZeroMQ endpoint" + example);
   }
   bound.emplace_back("publish.endpoint", s.publish_endpoint);
-  if (!LooksLikeEndpoint(s.control_endpoint)) {
-    return fail("control.endpoint", "control.endpoint = " + Quote(s.control_endpoint) +
-                                        " is not a ZeroMQ endpoint" + example);
+  if (!s.control_endpoint.empty()) {
+    if (!LooksLikeEndpoint(s.control_endpoint)) {
+      return fail("control.endpoint", "control.endpoint = " + Quote(s.control_endpoint) +
+                                          " is not a ZeroMQ endpoint" + example);
+    }
+    bound.emplace_back("control.endpoint", s.control_endpoint);
   }
-  bound.emplace_back("control.endpoint", s.control_endpoint);
+  // The control socket relearns, forgets and reloads: on TCP anyone who reaches the port could.
+  if (IsTcpEndpoint(s.control_endpoint) && s.server_secret_key_file.empty() &&
+      !s.control_allow_unauthenticated_tcp) {
+    return std::optional<Violation>(Violation{
+        "control",
+        {"control.endpoint", "auth.server_secret_key_file", "control.allow_unauthenticated_tcp"},
+        "control.endpoint = " + Quote(s.control_endpoint) +
+            " is a TCP control socket without authentication: anyone who can reach it could "
+            "relearn, forget and reload. Leave control.endpoint unset (an ipc:// socket of mode "
+            "0600), set [auth] server_secret_key_file and client_keys, or set "
+            "control.allow_unauthenticated_tcp = true"});
+  }
+  if (s.server_secret_key_file.empty() != s.client_keys.empty()) {
+    const bool server_only = s.client_keys.empty();
+    return std::optional<Violation>(Violation{
+        "auth",
+        {server_only ? "auth.server_secret_key_file" : "auth.client_keys",
+         server_only ? "auth.client_keys" : "auth.server_secret_key_file"},
+        server_only ? "auth.server_secret_key_file is set but auth.client_keys is not: CURVE "
+                      "would admit no client"
+                    : "auth.client_keys is set but auth.server_secret_key_file is not: the "
+                      "daemon has no key to offer CURVE clients"});
+  }
   for (std::size_t i = 0; i < bound.size(); ++i) {
     for (std::size_t j = 0; j < i; ++j) {
       if (bound[i].second == bound[j].second && !IsEphemeral(bound[i].second)) {
@@ -880,6 +929,26 @@ void ValidateDaemonSettings(const DaemonSettings& settings, const std::string& w
   if (const auto violation = CheckDaemon(settings)) {
     throw ConfigError(where.empty() ? violation->message : where + ": " + violation->message);
   }
+}
+
+bool IsTcpEndpoint(std::string_view endpoint) { return endpoint.starts_with("tcp://"); }
+
+std::string DefaultControlEndpoint(const std::string& state_dir, const char* runtime_directory,
+                                   const char* xdg_runtime_dir, unsigned uid) {
+  constexpr std::string_view kName = "nuwatchd.control";
+  std::string dir;
+  if (!state_dir.empty()) {
+    dir = state_dir;
+  } else if (runtime_directory != nullptr && *runtime_directory != '\0') {
+    dir = runtime_directory;
+    dir = dir.substr(0, dir.find(':'));  // systemd lists several directories with ':'
+  } else if (xdg_runtime_dir != nullptr && *xdg_runtime_dir != '\0') {
+    dir = xdg_runtime_dir;
+  } else {
+    dir = "/tmp/nuwatchd-" + std::to_string(uid);
+  }
+  while (dir.size() > 1 && dir.back() == '/') dir.pop_back();
+  return "ipc://" + dir + "/" + std::string(kName);
 }
 
 std::string DescribeDetectorOptions(const DetectorOptions& options) {

@@ -42,8 +42,13 @@ struct DaemonSettings {
   int publish_high_water_mark = 10000;                    // high_water_mark
   bool publish_learning = true;                           // include_learning
   bool publish_batches = false;                           // batches
-  // [control]
-  std::string control_endpoint = "tcp://127.0.0.1:7603";  // endpoint
+  // [control] ("" = ipc://STATE_DIR/nuwatchd.control, else in the runtime directory:
+  // DefaultControlEndpoint)
+  std::string control_endpoint;                    // endpoint
+  bool control_allow_unauthenticated_tcp = false;  // allow_unauthenticated_tcp
+  // [auth] (CURVE on the ingest, result and control sockets; PROTOCOL.md §12)
+  std::string server_secret_key_file;  // server_secret_key_file ("" = no authentication)
+  std::string client_keys;             // client_keys (a file or a directory of public keys)
   // [metrics]
   std::string metrics_listen = "127.0.0.1:9464";  // listen ("HOST:PORT"; port 0: ephemeral)
   int64_t anomaly_ratio_window = 1000;            // anomaly_ratio_window (vectors)
@@ -110,6 +115,16 @@ void ValidateDaemonSettings(const DaemonSettings& settings, const std::string& w
 // address itself); else what is wrong, with a hint: "'127.0.0.1:7601' is not a ZeroMQ endpoint;
 // write tcp://127.0.0.1:7601". For the flags that take an endpoint.
 std::string EndpointSyntaxProblem(std::string_view endpoint);
+
+// The control endpoint when control.endpoint is "": ipc://STATE_DIR/nuwatchd.control with a state
+// directory, else ipc://RUNTIME/nuwatchd.control where RUNTIME is $RUNTIME_DIRECTORY (systemd's
+// RuntimeDirectory=, the first of a list), else $XDG_RUNTIME_DIR, else /tmp/nuwatchd-UID (which
+// the daemon creates 0700 and refuses if another user owns it). A pure function of its inputs.
+std::string DefaultControlEndpoint(const std::string& state_dir, const char* runtime_directory,
+                                   const char* xdg_runtime_dir, unsigned uid);
+
+// True for a tcp:// endpoint (which any process that can reach the address may use).
+bool IsTcpEndpoint(std::string_view endpoint);
 
 // A [detector] section with every key, which ParseConfig reads back to the same options (numbers
 // are written with round-trip precision). Used for `nuwatch tune`'s best.toml.

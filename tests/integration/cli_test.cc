@@ -254,9 +254,8 @@ refit_every = 0
 )");
     daemon_ = std::make_unique<Process>(
         std::vector<std::string>{kNuwatchd, "--config", config, "--ingest", "tcp://127.0.0.1:*",
-                                 "--publish", "tcp://127.0.0.1:*", "--control", "tcp://127.0.0.1:*",
-                                 "--metrics", "127.0.0.1:0", "--state-dir", Path("state"),
-                                 "--ready-file", Path("ready.json")},
+                                 "--publish", "tcp://127.0.0.1:*", "--metrics", "127.0.0.1:0",
+                                 "--state-dir", Path("state"), "--ready-file", Path("ready.json")},
         Path("nuwatchd.log"));
     ASSERT_GT(daemon_->pid(), 0);
     ASSERT_TRUE(PollUntil([&] { return std::filesystem::exists(Path("ready.json")); }))

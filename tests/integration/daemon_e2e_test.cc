@@ -53,4 +53,12 @@ TEST(DaemonEndToEnd, SendAndTailTalkToTheDaemon) { RunScript("SendAndTail"); }
 
 TEST(DaemonEndToEnd, SendAndTailRefuseBadInputWithOneLine) { RunScript("ClientBadInput"); }
 
+TEST(DaemonEndToEnd, AnOversizedFrameDropsItsSenderWhileOthersKeepScoring) {
+  RunScript("OversizedFrames");
+}
+
+TEST(DaemonEndToEnd, CurveAdmitsListedKeysOnlyAndCountsRefusals) {
+  RunScript("CurveAuthentication");
+}
+
 }  // namespace

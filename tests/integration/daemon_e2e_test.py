@@ -91,12 +91,13 @@ feature_names = [%s]
 class Daemon:
     """One nuwatchd process, started with wildcard ports and a ready file."""
 
-    def __init__(self, workdir, state_dir, refit_every=50, max_streams=3, publish_batches=False):
+    def __init__(self, workdir, state_dir, refit_every=50, max_streams=3, publish_batches=False,
+                 extra_config=""):
         self.workdir = workdir
         self.state_dir = state_dir
         self.config_path = os.path.join(workdir, "nuwatchd.toml")
         with open(self.config_path, "w") as f:
-            f.write(config_text(refit_every, max_streams, publish_batches))
+            f.write(config_text(refit_every, max_streams, publish_batches) + extra_config)
         self.ready_path = os.path.join(workdir, "ready.json")
         self.log_path = os.path.join(workdir, "nuwatchd-%d.log" % len(glob.glob(
             os.path.join(workdir, "nuwatchd-*.log"))))
@@ -110,7 +111,7 @@ class Daemon:
         self.process = subprocess.Popen(
             [NUWATCHD, "--config", self.config_path,
              "--ingest", "tcp://127.0.0.1:*", "--publish", "tcp://127.0.0.1:*",
-             "--control", "tcp://127.0.0.1:*", "--metrics", "127.0.0.1:0",
+             "--metrics", "127.0.0.1:0",  # control: ipc://STATE_DIR/nuwatchd.control
              "--state-dir", self.state_dir, "--ready-file", self.ready_path],
             stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
         deadline = time.monotonic() + START_TIMEOUT
@@ -395,7 +396,9 @@ def send_inside(peer, stream, data, row, best, count):
 
 
 def state_files(state_dir):
-    return sorted(os.path.basename(p) for p in glob.glob(os.path.join(state_dir, "*")))
+    """The regular files of the state directory (not the control socket that lives there)."""
+    return sorted(os.path.basename(p) for p in glob.glob(os.path.join(state_dir, "*"))
+                  if os.path.isfile(p))
 
 
 class DaemonTestCase(unittest.TestCase):
@@ -444,8 +447,12 @@ class ScoringRejectionsAndMetrics(DaemonTestCase):
         # refit_every = 0 (fit once): every score comes from the warm-up model (see send_inside).
         daemon, peer = self.start_daemon(refit_every=0, max_streams=3)
         self.assertEqual(len(daemon.endpoints["ingest"]), 1)
-        for name in ("publish", "control"):
-            self.assertRegex(daemon.endpoints[name], r"^tcp://127\.0\.0\.1:\d+$")
+        self.assertRegex(daemon.endpoints["publish"], r"^tcp://127\.0\.0\.1:\d+$")
+        # Issue 10 §1: the default control socket is an ipc socket in the state directory that
+        # only the daemon's user may open.
+        control_path = os.path.join(self.state_dir, "nuwatchd.control")
+        self.assertEqual(daemon.endpoints["control"], "ipc://" + control_path)
+        self.assertEqual(os.stat(control_path).st_mode & 0o777, 0o600)
         self.assertRegex(daemon.endpoints["metrics"], r"^127\.0\.0\.1:\d+$")
         self.assertNotRegex(daemon.endpoints["metrics"], r":0$", "port 0 must be resolved")
         # The listening lines name the same, resolved endpoints as the ready file.
@@ -945,6 +952,278 @@ class SendAndTail(DaemonTestCase):
             self.assertEqual(obj.pop("stream"), "pump-c")
             codec.parse_published(json.dumps(obj))
             self.assertIn(obj["t"], c.sent_times)
+        self.stop_daemon(daemon, peer)
+
+
+def series_value(text, name, **labels):
+    """The value of the series `name` with exactly `labels` in a text exposition, or None."""
+    wanted = dict((k, str(v)) for k, v in labels.items())
+    for line in text.splitlines():
+        m = re.match(r'^([a-zA-Z_:][a-zA-Z0-9_:]*)(\{(.*)\})? (\S+)$', line)
+        if not m or m.group(1) != name:
+            continue
+        found = dict(re.findall(r'([a-zA-Z_][a-zA-Z0-9_]*)="((?:[^"\\]|\\.)*)"', m.group(3) or ""))
+        if found == wanted:
+            return float(m.group(4))
+    return None
+
+
+class CurveAuthentication(DaemonTestCase):
+    """Issue 10 §1: CURVE on ingest, results and control with a ZAP handler that admits only the
+    listed client keys (daemon/protocol/PROTOCOL.md §12).
+
+    The third-party side is pyzmq (python3-zmq, libzmq with libsodium): it makes the server's
+    certificate (zmq.auth.create_certificates), reads the client certificate `nuwatch keygen`
+    wrote (zmq.auth.load_certificate), and is the CURVE client, the unknown client (a key from
+    zmq.curve_keypair) and the plain client. Refusals are read from /metrics."""
+
+    def setUp(self):
+        super().setUp()
+        self.keys = os.path.join(self.workdir, "keys")
+        self.clients = os.path.join(self.workdir, "clients")
+        os.makedirs(self.keys)
+        os.makedirs(self.clients)
+        import zmq.auth
+        self.zauth = zmq.auth
+        # The daemon's certificate, written by pyzmq (CZMQ's format); a secret key file must not
+        # be readable by others, and pyzmq leaves it at the umask's mode.
+        public_file, secret_file = zmq.auth.create_certificates(self.keys, "server")
+        os.chmod(secret_file, 0o600)
+        self.server_public_file, self.server_secret_file = public_file, secret_file
+        self.server_public, _ = zmq.auth.load_certificate(public_file)
+        # The admitted client's pair, written by nuwatch keygen and read back by pyzmq.
+        self.alice = os.path.join(self.keys, "alice")
+        code, err = self.run_nuwatch("keygen", "--output", self.alice, "--comment", "alice")
+        self.assertEqual(code, 0, err)
+        self.assertEqual(os.stat(self.alice + ".key_secret").st_mode & 0o777, 0o600)
+        self.alice_public, self.alice_secret = zmq.auth.load_certificate(
+            self.alice + ".key_secret")
+        self.assertIsNotNone(self.alice_secret)
+        self.assertEqual(zmq.auth.load_certificate(self.alice + ".key")[0], self.alice_public)
+        # libzmq derives the same public key from the secret one: the pair is a real pair.
+        self.assertEqual(zmq.curve_public(self.alice_secret), self.alice_public)
+        shutil.copy(self.alice + ".key", self.clients)
+        # A key nobody listed.
+        self.mallory_public, self.mallory_secret = zmq.curve_keypair()
+        self.context = zmq.Context()
+
+    def tearDown(self):
+        self.context.destroy(linger=0)
+        super().tearDown()
+
+    def run_nuwatch(self, *args, stdin=None):
+        run = subprocess.run([NUWATCH] + list(args), input=stdin, capture_output=True,
+                             timeout=60)
+        return run.returncode, run.stdout.decode() + run.stderr.decode()
+
+    def socket(self, kind, endpoint, public=None, secret=None, server=None):
+        s = self.context.socket(kind)
+        s.setsockopt(zmq.LINGER, 0)
+        if public is not None:
+            s.curve_serverkey = server if server is not None else self.server_public
+            s.curve_publickey = public
+            s.curve_secretkey = secret
+        if kind == zmq.SUB:
+            s.setsockopt(zmq.SUBSCRIBE, b"")
+        s.connect(endpoint)
+        return s
+
+    def wait_for_series(self, peer, name, at_least, what, reasons=None, **labels):
+        """Polls /metrics until the series (summed over `reasons` when given) reaches at_least."""
+        deadline = time.monotonic() + WAIT_TIMEOUT
+        while True:
+            text = peer.scrape()
+            if reasons is None:
+                value = series_value(text, name, **labels) or 0
+            else:
+                value = sum(series_value(text, name, reason=r, **labels) or 0 for r in reasons)
+            if value >= at_least:
+                return value
+            if time.monotonic() > deadline:
+                raise AssertionError("%s: %s%r stayed at %s" % (what, name, labels, value))
+            time.sleep(0.05)  # polling an HTTP endpoint for a count, bounded by the deadline
+
+    def control(self, endpoint, request, public, secret):
+        req = self.socket(zmq.REQ, endpoint, public, secret)
+        req.setsockopt(zmq.RCVTIMEO, int(WAIT_TIMEOUT * 1000))
+        try:
+            req.send(json.dumps(request).encode())
+            return json.loads(req.recv())
+        finally:
+            req.close()
+
+    def test_only_listed_keys_are_admitted_and_refusals_are_counted(self):
+        extra = '\n[auth]\nserver_secret_key_file = "%s"\nclient_keys = "%s"\n' % (
+            self.server_secret_file, self.clients)
+        daemon = Daemon(self.workdir, self.state_dir, extra_config=extra)
+        self.daemons.append(daemon)
+        endpoints = daemon.start()
+        # The default control socket: an ipc socket in the state directory, mode 0600.
+        control = endpoints["control"]
+        self.assertEqual(control, "ipc://" + os.path.join(self.state_dir, "nuwatchd.control"))
+        self.assertEqual(os.stat(control[len("ipc://"):]).st_mode & 0o777, 0o600)
+        peer = Peer.__new__(Peer)  # only its metrics scrape: its sockets would be plain ones
+        peer.metrics_address = endpoints["metrics"]
+
+        # An admitted client scores: its vectors get results on an admitted SUB, and the stream
+        # leaves the warm-up.
+        sub = self.socket(zmq.SUB, endpoints["publish"], self.alice_public, self.alice_secret)
+        push = self.socket(zmq.PUSH, endpoints["ingest"][0], self.alice_public, self.alice_secret)
+        data = StreamData(seed=10)
+        scoring = []
+        deadline = time.monotonic() + 3 * WAIT_TIMEOUT
+        while not scoring:
+            t, x = data.normal()
+            push.send_multipart([b"pump-01", codec.encode_json([t], [x])])
+            while sub.poll(20):
+                key, body = sub.recv_multipart()
+                result = codec.parse_published(body.decode())
+                if key == b"pump-01" and result.get("state") == "scoring":
+                    scoring.append(result)
+            if time.monotonic() > deadline:
+                raise AssertionError("no scored result for the admitted client:\n"
+                                     + daemon.log_tail())
+        self.assertIsNotNone(scoring[0]["decision"])
+        self.wait_for_series(peer, "nuwatch_auth_handshakes_total", 1, "the admitted ingest",
+                             socket="ingest")
+        self.wait_for_series(peer, "nuwatch_auth_handshakes_total", 1, "the admitted subscriber",
+                             socket="publish")
+
+        # An unknown key is refused by the ZAP handler and counted; its vector is not taken.
+        intruder = self.socket(zmq.PUSH, endpoints["ingest"][0], self.mallory_public,
+                               self.mallory_secret)
+        try:
+            intruder.send_multipart([b"intruder", codec.encode_json([T0], [[1.0, 2.0, 3.0]])],
+                                    zmq.NOBLOCK)
+        except zmq.Again:
+            pass  # nothing to queue it on yet: the handshake is what this checks
+        self.wait_for_series(peer, "nuwatch_auth_refusals_total", 1, "the unknown key",
+                             socket="ingest", reason="unknown_key")
+        # A client without CURVE fails the handshake on each socket: a mechanism mismatch, or,
+        # when the client noticed the mismatch first and hung up, an incomplete handshake
+        # (libzmq's two ends race to notice; each retry, every 100 ms, is counted again).
+        not_curve = ["wrong_mechanism", "incomplete_handshake"]
+        plain = self.socket(zmq.PUSH, endpoints["ingest"][0])
+        self.wait_for_series(peer, "nuwatch_auth_refusals_total", 1, "the plain client",
+                             reasons=not_curve, socket="ingest")
+        plain_req = self.socket(zmq.REQ, control)
+        try:
+            plain_req.send(b'{"command":"status"}', zmq.NOBLOCK)
+        except zmq.Again:
+            pass
+        self.wait_for_series(peer, "nuwatch_auth_refusals_total", 1, "the plain control client",
+                             reasons=not_curve, socket="control")
+        wrong_server = self.socket(zmq.SUB, endpoints["publish"], self.alice_public,
+                                   self.alice_secret, server=self.mallory_public)
+        self.wait_for_series(peer, "nuwatch_auth_refusals_total", 1, "the wrong server key",
+                             socket="publish", reason="bad_handshake")
+        for s in (intruder, plain, plain_req, wrong_server):
+            s.close()
+        # The admitted key works on the control socket, and no refused peer created a stream.
+        status = self.control(control, {"command": "status"}, self.alice_public,
+                              self.alice_secret)
+        self.assertTrue(status["ok"], status)
+        self.assertEqual([s["stream"] for s in status["streams"]], ["pump-01"])
+
+        # nuwatch's own clients take key files: the admitted pair scores, an unknown one and a
+        # missing one are refused with one line.
+        csv = "time,stream,pressure,flow,vibration\n%d,pump-02,10,50,1\n" % int(T0)
+        code, out = self.run_nuwatch("send", "--connect", endpoints["ingest"][0], "--input", "-",
+                                     "--client-key", self.alice + ".key_secret", "--server-key",
+                                     self.server_public_file, stdin=csv.encode())
+        self.assertEqual(code, 0, out)
+        mallory = os.path.join(self.keys, "mallory")
+        code, err = self.run_nuwatch("keygen", "--output", mallory)
+        self.assertEqual(code, 0, err)
+        code, err = self.run_nuwatch("send", "--connect", endpoints["ingest"][0], "--input", "-",
+                                     "--client-key", mallory + ".key_secret", "--server-key",
+                                     self.server_public_file, stdin=csv.encode())
+        self.assertEqual(code, 1, err)
+        self.assertIn("refused this client key", err)
+        code, err = self.run_nuwatch("control", "status", "--connect", control)
+        self.assertEqual(code, 1, err)
+        # "requires CURVE" when the mechanism mismatch reached the client before the close,
+        # "may require CURVE" when the daemon closed first (libzmq reports no reason then).
+        self.assertRegex(err, r"(requires|may require) CURVE")
+        code, out = self.run_nuwatch("control", "status", "--connect", control, "--client-key",
+                                     self.alice + ".key_secret", "--server-key",
+                                     self.server_public_file)
+        self.assertEqual(code, 0, out)
+        self.assertIn("pump-02", out)
+
+        # Rotation: list mallory's key (a bare Z85 line with a comment), revoke alice's, reload.
+        os.remove(os.path.join(self.clients, "alice.key"))
+        with open(os.path.join(self.clients, "mallory.key"), "w") as f:
+            f.write("# rotated in\n%s mallory\n"
+                    % self.zauth.load_certificate(mallory + ".key")[0].decode())
+        code, out = self.run_nuwatch("control", "reload", "--connect", control, "--client-key",
+                                     self.alice + ".key_secret", "--server-key",
+                                     self.server_public_file)
+        self.assertEqual(code, 0, out)
+        code, err = self.run_nuwatch("control", "status", "--connect", control, "--client-key",
+                                     self.alice + ".key_secret", "--server-key",
+                                     self.server_public_file)
+        self.assertEqual(code, 1, err)
+        self.assertIn("refused this client key", err)
+        code, out = self.run_nuwatch("control", "status", "--connect", control, "--client-key",
+                                     mallory + ".key_secret", "--server-key",
+                                     self.server_public_file)
+        self.assertEqual(code, 0, out)
+        sub.close()
+        push.close()
+        self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
+
+
+class OversizedFrames(DaemonTestCase):
+    """Issue 10 §3: ingest is bounded in bytes by ZeroMQ itself. nuwatchd sets ZMQ_MAXMSGSIZE on
+    its ingest sockets to 2 x limits.max_message_bytes + 4096 (daemon.cc): a frame up to that
+    reaches the decoder and is counted as message_too_large (§8), a larger one is refused by
+    libzmq, which drops the sender's connection before the frame is ever buffered whole. libzmq
+    reports that drop as a plain disconnect (zmq_socket_monitor(3) has no event for it), so the
+    daemon cannot count it; the sender sees it (here: pyzmq's socket monitor)."""
+
+    def test_an_oversized_frame_drops_its_sender_while_others_keep_scoring(self):
+        daemon, peer = self.start_daemon(refit_every=0)
+        peer.subscribe_with_probe()
+        data = StreamData(seed=31)
+        feed_until_scoring(peer, "pump-a", data, ["json"])
+
+        big = peer.context.socket(zmq.PUSH)
+        big.setsockopt(zmq.LINGER, 0)
+        monitor = big.get_monitor_socket(zmq.EVENT_HANDSHAKE_SUCCEEDED | zmq.EVENT_DISCONNECTED)
+        big.connect(daemon.endpoints["ingest"][0])
+        from zmq.utils.monitor import recv_monitor_message
+        events = []
+
+        def wait_event(event, what):
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while event not in events:
+                if time.monotonic() > deadline:
+                    raise AssertionError("no %s on the big sender's socket: %r" % (what, events))
+                if monitor.poll(200):
+                    events.append(recv_monitor_message(monitor)["event"])
+
+        wait_event(zmq.EVENT_HANDSHAKE_SUCCEEDED, "connection")
+        frame_limit = 2 * MAX_MESSAGE_BYTES + 4096
+        payload = b'{"t":1,"x":[1,2,3],"pad":"' + b"a" * frame_limit + b'"}'
+        big.send_multipart([b"pump-big", payload])
+        wait_event(zmq.EVENT_DISCONNECTED, "disconnect after the oversized frame")
+
+        # The other sender's stream keeps scoring, and the refused frame was neither decoded nor
+        # counted as a §8 rejection (it never reached nuwatchd's code).
+        before = len(peer.results("pump-a"))
+        for _ in range(20):
+            t, x = data.normal()
+            peer.send("pump-a", codec.encode_json([t], [x]))
+        peer.wait_for(lambda: len(peer.results("pump-a")) >= before + 20,
+                      "pump-a's results after the oversized frame")
+        self.assertTrue(all(r["state"] == "scoring" for r in peer.results("pump-a")[before:]))
+        self.assertEqual(peer.results("pump-big"), [])
+        metrics = peer.scrape()
+        self.assertEqual(series_value(metrics, "nuwatch_rejected_messages_total",
+                                      reason="message_too_large"), 0.0)
+        monitor.close()
+        big.close()
         self.stop_daemon(daemon, peer)
 
 

@@ -100,6 +100,7 @@ endpoints = ["tcp://127.0.0.1:*"]
 endpoint = "tcp://127.0.0.1:*"
 [control]
 endpoint = "tcp://127.0.0.1:*"
+allow_unauthenticated_tcp = true
 [metrics]
 listen = "127.0.0.1:0"
 )";
@@ -1014,11 +1015,10 @@ DaemonEndpoints ReadyEndpoints(const std::string& ready_file) {
 }
 
 std::vector<std::string> DaemonArgs(const TempDir& dir, const std::string& config) {
-  return {
-      kNuwatchd,      "--config",          config,        "--ingest",          "tcp://127.0.0.1:*",
-      "--publish",    "tcp://127.0.0.1:*", "--control",   "tcp://127.0.0.1:*", "--metrics",
-      "127.0.0.1:0",  "--state-dir",       dir / "state", "--log-level",       "info",
-      "--ready-file", dir / "ready.json"};
+  return {// The control socket is the default: ipc://STATE_DIR/nuwatchd.control.
+          kNuwatchd,     "--config",          config,      "--ingest",     "tcp://127.0.0.1:*",
+          "--publish",   "tcp://127.0.0.1:*", "--metrics", "127.0.0.1:0",  "--state-dir",
+          dir / "state", "--log-level",       "info",      "--ready-file", dir / "ready.json"};
 }
 
 TEST(Nuwatchd, ResumesScoringAfterKill9FromItsPeriodicSnapshot) {

@@ -53,6 +53,7 @@ endpoint = "tcp://127.0.0.1:*"
 high_water_mark = 10
 [control]
 endpoint = "tcp://127.0.0.1:*"
+allow_unauthenticated_tcp = true
 [metrics]
 listen = "127.0.0.1:0"
 [detector]

@@ -38,7 +38,7 @@ THIRD_PARTY = {
     "CLI/": {"cli"},
     "toml++/": {"settings"},
     "cairo": {"charts"},
-    "zmq": {"service", "cli"},
+    "zmq": {"protocol", "service", "cli"},
     "boost/": {"service", "concurrency"},
     "prometheus/": {"service"},
     "spdlog/": {"service", "cli"},

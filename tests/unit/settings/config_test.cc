@@ -57,7 +57,12 @@ TEST(ConfigDefaults, AreTheSpecifiedValues) {
   EXPECT_EQ(d.ingest_endpoints, std::vector<std::string>{"tcp://127.0.0.1:7601"});
   EXPECT_TRUE(d.subscribe_endpoints.empty());
   EXPECT_EQ(d.publish_endpoint, "tcp://127.0.0.1:7602");
-  EXPECT_EQ(d.control_endpoint, "tcp://127.0.0.1:7603");
+  // Issue 10 §1: control on an ipc socket of the state or runtime directory by default, never
+  // TCP without authentication unless the file says so.
+  EXPECT_EQ(d.control_endpoint, "");
+  EXPECT_FALSE(d.control_allow_unauthenticated_tcp);
+  EXPECT_EQ(d.server_secret_key_file, "");
+  EXPECT_EQ(d.client_keys, "");
   EXPECT_EQ(d.metrics_listen, "127.0.0.1:9464");
   EXPECT_EQ(d.state_dir, "");
   EXPECT_EQ(d.snapshot_interval_seconds, 300);
@@ -114,6 +119,11 @@ include_learning = false
 
 [control]
 endpoint = "tcp://127.0.0.1:8603"
+allow_unauthenticated_tcp = true
+
+[auth]
+server_secret_key_file = "/etc/nuwatch/server.key_secret"
+client_keys = "/etc/nuwatch/clients"
 
 [metrics]
 listen = "0.0.0.0:19464"
@@ -172,6 +182,9 @@ feature_names = ["a", "b", "c"]
   EXPECT_EQ(d.publish_high_water_mark, 0);
   EXPECT_FALSE(d.publish_learning);
   EXPECT_EQ(d.control_endpoint, "tcp://127.0.0.1:8603");
+  EXPECT_TRUE(d.control_allow_unauthenticated_tcp);
+  EXPECT_EQ(d.server_secret_key_file, "/etc/nuwatch/server.key_secret");
+  EXPECT_EQ(d.client_keys, "/etc/nuwatch/clients");
   EXPECT_EQ(d.metrics_listen, "0.0.0.0:19464");
   EXPECT_EQ(d.anomaly_ratio_window, 50);
   EXPECT_EQ(d.state_dir, "/var/lib/nuwatch");
@@ -426,13 +439,15 @@ TEST(ConfigErrors, OutOfRangeDaemonValuesNameFileLineAndKey) {
             "endpoint (TRANSPORT://ADDRESS, e.g. tcp://127.0.0.1:7601)");
   EXPECT_THAT(ErrorOf("[publish]\nendpoint = \"\"\n"),
               HasSubstr("t.toml:2:12: publish.endpoint = \"\" is not a ZeroMQ endpoint"));
-  EXPECT_EQ(ErrorOf("[control]\nendpoint = \"tcp://127.0.0.1:7602\"\n"),
+  EXPECT_EQ(ErrorOf("[control]\nendpoint = \"tcp://127.0.0.1:7602\"\n"
+                    "allow_unauthenticated_tcp = true\n"),
             "t.toml:2:12: control.endpoint = \"tcp://127.0.0.1:7602\" is also bound by "
             "publish.endpoint; each socket needs its own endpoint");
   // Ephemeral ports may repeat: each bind picks its own port.
   EXPECT_NO_THROW(
       Parse("[ingest]\nendpoints = [\"tcp://127.0.0.1:*\"]\n[publish]\nendpoint = "
-            "\"tcp://127.0.0.1:*\"\n[control]\nendpoint = \"tcp://127.0.0.1:*\"\n"));
+            "\"tcp://127.0.0.1:*\"\n[control]\nendpoint = \"tcp://127.0.0.1:*\"\n"
+            "allow_unauthenticated_tcp = true\n"));
   EXPECT_THAT(ErrorOf("[daemon]\nlog_level = \"verbose\"\n"),
               HasSubstr("t.toml:2:13: daemon.log_level = \"verbose\" must be one of"));
   EXPECT_THAT(ErrorOf("[daemon]\nrefit_threads = 0\n"), HasSubstr("must be at least 1"));
@@ -847,10 +862,11 @@ TEST(DaemonKeys, ARestartOnlyChangeIsReportedAndKeptAtItsRunningValue) {
     }
   }
   EXPECT_EQ(restart,
-            (std::set<std::string>{"daemon.refit_threads", "ingest.endpoints", "ingest.subscribe",
-                                   "ingest.receive_high_water_mark", "publish.endpoint",
-                                   "publish.high_water_mark", "control.endpoint", "metrics.listen",
-                                   "state.dir", "recording.dir"}));
+            (std::set<std::string>{
+                "daemon.refit_threads", "ingest.endpoints", "ingest.subscribe",
+                "ingest.receive_high_water_mark", "publish.endpoint", "publish.high_water_mark",
+                "control.endpoint", "control.allow_unauthenticated_tcp",
+                "auth.server_secret_key_file", "metrics.listen", "state.dir", "recording.dir"}));
 }
 
 TEST(DaemonKeys, EveryKeyIsDocumented) {
@@ -870,8 +886,42 @@ TEST(KnownConfigKeys, AreUniqueAndCoverEverySection) {
         "detector.feature_names", "stream.match"}) {
     EXPECT_TRUE(unique.count(key)) << key;
   }
-  // 20 daemon settings, 32 DetectorOptions members, and stream.match.
-  EXPECT_EQ(keys.size(), 54u);
+  // 24 daemon settings, 32 DetectorOptions members, and stream.match.
+  EXPECT_EQ(keys.size(), 57u);
+}
+
+// Issue 10 §1: the control socket relearns, forgets and reloads, so a TCP control socket needs
+// CURVE or an explicit key that accepts the exposure; [auth] needs both of its keys.
+TEST(ConfigControlSocket, TcpWithoutAuthenticationIsRefusedUnlessTheFileSaysSo) {
+  EXPECT_THAT(ErrorOf("[control]\nendpoint = \"tcp://127.0.0.1:7603\"\n"),
+              HasSubstr("t.toml:2:12: control.endpoint = \"tcp://127.0.0.1:7603\" is a TCP "
+                        "control socket without authentication"));
+  EXPECT_THAT(ErrorOf("[control]\nendpoint = \"tcp://127.0.0.1:7603\"\n"),
+              HasSubstr("control.allow_unauthenticated_tcp = true"));
+  EXPECT_EQ(Parse("[control]\nendpoint = \"tcp://127.0.0.1:7603\"\nallow_unauthenticated_tcp = "
+                  "true\n")
+                .daemon.control_endpoint,
+            "tcp://127.0.0.1:7603");
+  EXPECT_NO_THROW(
+      Parse("[control]\nendpoint = \"tcp://127.0.0.1:7603\"\n[auth]\n"
+            "server_secret_key_file = \"s.key_secret\"\nclient_keys = \"c\"\n"));
+  EXPECT_NO_THROW(Parse("[control]\nendpoint = \"ipc:///run/nuwatch/control\"\n"));
+  EXPECT_THAT(ErrorOf("[auth]\nserver_secret_key_file = \"s.key_secret\"\n"),
+              HasSubstr("t.toml:2:26: auth.server_secret_key_file is set but auth.client_keys "
+                        "is not"));
+  EXPECT_THAT(ErrorOf("[auth]\nclient_keys = \"c\"\n"),
+              HasSubstr("auth.client_keys is set but auth.server_secret_key_file is not"));
+}
+
+TEST(ConfigControlSocket, DefaultEndpointIsAnIpcSocketOfTheStateOrRuntimeDirectory) {
+  EXPECT_EQ(DefaultControlEndpoint("/var/lib/nuwatch/", "/run/nuwatch", "/run/user/7", 7),
+            "ipc:///var/lib/nuwatch/nuwatchd.control");
+  // systemd's RuntimeDirectory= may list several directories: the first one.
+  EXPECT_EQ(DefaultControlEndpoint("", "/run/nuwatch:/run/other", "/run/user/7", 7),
+            "ipc:///run/nuwatch/nuwatchd.control");
+  EXPECT_EQ(DefaultControlEndpoint("", nullptr, "/run/user/7", 7),
+            "ipc:///run/user/7/nuwatchd.control");
+  EXPECT_EQ(DefaultControlEndpoint("", "", "", 7), "ipc:///tmp/nuwatchd-7/nuwatchd.control");
 }
 
 }  // namespace

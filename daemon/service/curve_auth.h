@@ -1,0 +1,83 @@
+// The daemon's CURVE authentication (daemon/protocol/PROTOCOL.md §12): a ZAP handler (ZeroMQ RFC
+// 27) on inproc://zeromq.zap.01 that admits only the configured client public keys, and a socket
+// monitor on each protected socket that counts the handshakes ZAP never sees (a client without
+// CURVE, a client with the wrong server key).
+//
+// Why both: libzmq asks the ZAP handler only once a CURVE handshake has got as far as the client's
+// public key. A peer that speaks another mechanism, or cannot open the server's box, fails before
+// that, and only the socket's monitor reports it. Every refusal is counted in
+// nuwatch_auth_refusals_total{socket,reason}; every admitted handshake in
+// nuwatch_auth_handshakes_total{socket}.
+//
+// libzmq admits every CURVE client when no ZAP handler is bound in the context, so the handler is
+// bound in the constructor, before any protected socket binds, and stops only once they are all
+// closed (Stop's requirement).
+//
+// Threads: one thread, "nuwatchd-auth", owns the ZAP socket and the monitor sockets from Start to
+// Stop. ReplaceAllowed may be called from any thread.
+#pragma once
+
+#include <array>
+#include <atomic>
+#include <cstdint>
+#include <set>
+#include <string>
+#include <thread>
+#include <vector>
+#include <zmq.hpp>
+
+#include "nuwatch/mutex.h"
+#include "protocol/curve_keys.h"
+#include "service/metrics.h"
+
+namespace nuwatch {
+
+class CurveAuthenticator {
+ public:
+  // Binds the ZAP socket in `context`. Requires: CurveAvailable(); no other ZAP handler in the
+  // context; `metrics` outlives this. Throws zmq::error_t if the ZAP endpoint cannot be bound.
+  CurveAuthenticator(zmq::context_t& context, std::set<std::string> allowed_keys,
+                     DaemonMetrics* metrics);
+  // Stop().
+  ~CurveAuthenticator();
+  CurveAuthenticator(const CurveAuthenticator&) = delete;
+  CurveAuthenticator& operator=(const CurveAuthenticator&) = delete;
+
+  // Makes `socket` a CURVE server with `server` (its secret key), names its ZAP domain after
+  // `which` and watches its handshakes. Requires: before Start, on the thread that owns `socket`,
+  // before `socket` binds.
+  void Protect(zmq::socket_t& socket, AuthSocket which, const CurveKeyPair& server);
+  // Starts the thread. Call once, after every Protect.
+  void Start();
+  // The keys admitted from now on (a connection admitted before keeps its session).
+  void ReplaceAllowed(std::set<std::string> keys) EXCLUDES(mutex_);
+  std::size_t allowed_count() const EXCLUDES(mutex_);
+  // Stops and joins the thread. Requires: every protected socket is closed. Idempotent.
+  void Stop();
+
+ private:
+  struct Watched {
+    AuthSocket which;
+    zmq::socket_t monitor;  // PAIR, connected to the protected socket's monitor endpoint
+  };
+  void Run();
+  void HandleZapRequest();
+  void HandleMonitorEvent(Watched& watched);
+  bool Allowed(const std::string& z85_key) const EXCLUDES(mutex_);
+  void Refuse(AuthSocket which, AuthRefusal reason, const std::string& detail);
+
+  zmq::context_t& context_;
+  DaemonMetrics* metrics_;
+  zmq::socket_t zap_;             // REP on inproc://zeromq.zap.01
+  std::vector<Watched> watched_;  // filled before Start, then the thread's
+  int wake_fd_ = -1;              // Stop wakes the thread
+  std::atomic<bool> stop_{false};
+  std::thread thread_;
+  int monitors_ = 0;
+  std::array<bool, kAuthRefusalCount> logged_{};  // the thread's: first refusal of each reason
+
+  mutable Mutex mutex_;
+  std::set<std::string> allowed_ GUARDED_BY(mutex_);
+};
+
+}  // namespace nuwatch
