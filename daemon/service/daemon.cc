@@ -23,6 +23,7 @@
 #include <cstdlib>
 #include <cstring>
 #include <filesystem>
+#include <fstream>
 #include <functional>
 #include <future>
 #include <nlohmann/json.hpp>
@@ -133,6 +134,33 @@ void PrepareTmpRuntimeDir(const std::string& dir) {
                       " is not a directory of this user with mode 0700; remove it, or set "
                       "control.endpoint or state.dir");
   }
+}
+
+// Equal strings, in a time that depends on the lengths only.
+bool SameSecret(const std::string& a, const std::string& b) {
+  unsigned char difference = a.size() == b.size() ? 0 : 1;
+  for (std::size_t i = 0; i < a.size(); ++i) {
+    difference |= static_cast<unsigned char>(a[i] ^ (i < b.size() ? b[i] : 0));
+  }
+  return difference == 0;
+}
+
+// The first line of metrics.basic_auth_password_file, which only its owner may read.
+std::string ReadPasswordFile(const std::string& path) {
+  const std::string key = "metrics.basic_auth_password_file: " + path;
+  struct stat st {};
+  if (::stat(path.c_str(), &st) != 0) {
+    throw ConfigError(key + ": cannot read: " + std::strerror(errno));
+  }
+  if ((st.st_mode & 077) != 0) {
+    throw ConfigError(key + ": readable by others; chmod 600 " + path);
+  }
+  std::ifstream in(path);
+  std::string password;
+  if (!in || !std::getline(in, password)) throw ConfigError(key + ": cannot read the password");
+  if (!password.empty() && password.back() == '\r') password.pop_back();
+  if (password.empty()) throw ConfigError(key + ": the first line, the password, is empty");
+  return password;
 }
 
 spdlog::level::level_enum LogLevel(const std::string& name) {
@@ -493,6 +521,17 @@ void Daemon::Impl::StartExposer() {
     exposer = std::make_unique<prometheus::Exposer>(listen, 2);
   } catch (const std::exception& e) {
     throw DaemonError("metrics.listen: cannot listen on " + listen + ": " + e.what());
+  }
+  if (!config.daemon.metrics_basic_auth_user.empty()) {
+    const std::string password = ReadPasswordFile(config.daemon.metrics_basic_auth_password_file);
+    // Civetweb calls this on its own threads; the strings are copies, compared in constant time
+    // so that the time of a refusal says nothing about how much of a guess was right.
+    exposer->RegisterAuth(
+        [user = config.daemon.metrics_basic_auth_user, password](const std::string& given_user,
+                                                                 const std::string& given) {
+          return SameSecret(given_user, user) & SameSecret(given, password);
+        },
+        "nuwatch", "/metrics");
   }
   exposer->RegisterCollectable(metrics.registry());
   const std::vector<int> ports = exposer->GetListeningPorts();

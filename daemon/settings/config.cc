@@ -225,6 +225,19 @@ const Setting<S> kDaemonKeys[] = {
      .doc = "HOST:PORT of the Prometheus /metrics endpoint; port 0 picks a free port.",
      .reload = kRestart},
     {.section = "metrics",
+     .name = "basic_auth_user",
+     .member = &S::metrics_basic_auth_user,
+     .doc = "User name that /metrics requires (HTTP basic authentication, RFC 7617); \"\": none. "
+            "Needs basic_auth_password_file.",
+     .reload = kRestart},
+    {.section = "metrics",
+     .name = "basic_auth_password_file",
+     .member = &S::metrics_basic_auth_password_file,
+     .doc = "File whose first line is the password of basic_auth_user (mode 0600 or 0400: the "
+            "daemon refuses a file others may read).",
+     .unit = "file",
+     .reload = kRestart},
+    {.section = "metrics",
      .name = "anomaly_ratio_window",
      .member = &S::anomaly_ratio_window,
      .doc = "The nuwatch_anomaly_ratio gauge is the flagged fraction of each stream's last this "
@@ -741,6 +754,15 @@ std::optional<Violation> CheckDaemon(const DaemonSettings& s) {
                                         "; each socket needs its own endpoint");
       }
     }
+  }
+  if (s.metrics_basic_auth_user.empty() != s.metrics_basic_auth_password_file.empty()) {
+    const bool user_only = s.metrics_basic_auth_password_file.empty();
+    return std::optional<Violation>(Violation{
+        "metrics",
+        {user_only ? "metrics.basic_auth_user" : "metrics.basic_auth_password_file",
+         user_only ? "metrics.basic_auth_password_file" : "metrics.basic_auth_user"},
+        user_only ? "metrics.basic_auth_user is set but metrics.basic_auth_password_file is not"
+                  : "metrics.basic_auth_password_file is set but metrics.basic_auth_user is not"});
   }
   if (!LooksLikeListenAddress(s.metrics_listen)) {
     return fail("metrics.listen", "metrics.listen = " + Quote(s.metrics_listen) +

@@ -51,6 +51,8 @@ struct DaemonSettings {
   std::string client_keys;             // client_keys (a file or a directory of public keys)
   // [metrics]
   std::string metrics_listen = "127.0.0.1:9464";  // listen ("HOST:PORT"; port 0: ephemeral)
+  std::string metrics_basic_auth_user;            // basic_auth_user ("" = no authentication)
+  std::string metrics_basic_auth_password_file;   // basic_auth_password_file
   int64_t anomaly_ratio_window = 1000;            // anomaly_ratio_window (vectors)
   // [state]
   std::string state_dir;                   // dir ("" = no state is kept)

@@ -57,6 +57,8 @@ TEST(DaemonEndToEnd, AnOversizedFrameDropsItsSenderWhileOthersKeepScoring) {
   RunScript("OversizedFrames");
 }
 
+TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("MetricsBasicAuth"); }
+
 TEST(DaemonEndToEnd, CurveAdmitsListedKeysOnlyAndCountsRefusals) {
   RunScript("CurveAuthentication");
 }

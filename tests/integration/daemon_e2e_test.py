@@ -1227,6 +1227,49 @@ class OversizedFrames(DaemonTestCase):
         self.stop_daemon(daemon, peer)
 
 
+class MetricsBasicAuth(DaemonTestCase):
+    """Issue 10 §1: optional basic authentication on /metrics (RFC 7617), read with urllib's own
+    HTTPBasicAuthHandler as the third-party client."""
+
+    def test_metrics_need_the_configured_user_and_password(self):
+        password_file = os.path.join(self.workdir, "metrics.password")
+        with open(password_file, "w") as f:
+            f.write("s3cret pump fleet\n")
+        os.chmod(password_file, 0o600)
+        extra = '\n[metrics]\nbasic_auth_user = "prometheus"\nbasic_auth_password_file = "%s"\n' % (
+            password_file)
+        # config_text has a [metrics] table already: TOML forbids a second one, so merge.
+        daemon = Daemon(self.workdir, self.state_dir)
+        with open(daemon.config_path) as f:
+            text = f.read()
+        text = text.replace("[metrics]\n", "[metrics]\nbasic_auth_user = \"prometheus\"\n"
+                            "basic_auth_password_file = \"%s\"\n" % password_file, 1)
+        with open(daemon.config_path, "w") as f:
+            f.write(text)
+        self.daemons.append(daemon)
+        endpoints = daemon.start()
+        url = "http://%s/metrics" % endpoints["metrics"]
+
+        def get(user=None, password=None):
+            manager = urllib.request.HTTPPasswordMgrWithDefaultRealm()
+            if user is not None:
+                manager.add_password(None, url, user, password)
+            opener = urllib.request.build_opener(urllib.request.HTTPBasicAuthHandler(manager))
+            try:
+                with opener.open(url, timeout=WAIT_TIMEOUT) as response:
+                    return response.status, response.read().decode()
+            except urllib.error.HTTPError as e:
+                return e.code, ""
+
+        self.assertEqual(get()[0], 401)
+        self.assertEqual(get("prometheus", "wrong")[0], 401)
+        self.assertEqual(get("someone", "s3cret pump fleet")[0], 401)
+        status, body = get("prometheus", "s3cret pump fleet")
+        self.assertEqual(status, 200)
+        self.assertIn("nuwatch_build_info", body)
+        self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
+
+
 class ClientBadInput(unittest.TestCase):
     """Bad input: one line on stderr, exit code 1 (commands.h)."""
 

@@ -303,7 +303,7 @@ TEST(ConfigErrors, FarFromEveryKeyThereIsNoSuggestion) {
   // A small table lists its keys instead.
   EXPECT_EQ(ErrorOf("[metrics]\ncolour = 1\n"),
             "t.toml:2:1: key 'metrics.colour' is not a known key (known keys here: listen, "
-            "anomaly_ratio_window)");
+            "basic_auth_user, basic_auth_password_file, anomaly_ratio_window)");
 }
 
 TEST(ConfigErrors, TheFirstErrorInTheFileIsReported) {
@@ -866,7 +866,8 @@ TEST(DaemonKeys, ARestartOnlyChangeIsReportedAndKeptAtItsRunningValue) {
                 "daemon.refit_threads", "ingest.endpoints", "ingest.subscribe",
                 "ingest.receive_high_water_mark", "publish.endpoint", "publish.high_water_mark",
                 "control.endpoint", "control.allow_unauthenticated_tcp",
-                "auth.server_secret_key_file", "metrics.listen", "state.dir", "recording.dir"}));
+                "auth.server_secret_key_file", "metrics.listen", "metrics.basic_auth_user",
+                "metrics.basic_auth_password_file", "state.dir", "recording.dir"}));
 }
 
 TEST(DaemonKeys, EveryKeyIsDocumented) {
@@ -886,8 +887,8 @@ TEST(KnownConfigKeys, AreUniqueAndCoverEverySection) {
         "detector.feature_names", "stream.match"}) {
     EXPECT_TRUE(unique.count(key)) << key;
   }
-  // 24 daemon settings, 32 DetectorOptions members, and stream.match.
-  EXPECT_EQ(keys.size(), 57u);
+  // 26 daemon settings, 32 DetectorOptions members, and stream.match.
+  EXPECT_EQ(keys.size(), 59u);
 }
 
 // Issue 10 §1: the control socket relearns, forgets and reloads, so a TCP control socket needs
@@ -911,6 +912,9 @@ TEST(ConfigControlSocket, TcpWithoutAuthenticationIsRefusedUnlessTheFileSaysSo) 
                         "is not"));
   EXPECT_THAT(ErrorOf("[auth]\nclient_keys = \"c\"\n"),
               HasSubstr("auth.client_keys is set but auth.server_secret_key_file is not"));
+  EXPECT_THAT(ErrorOf("[metrics]\nbasic_auth_user = \"prometheus\"\n"),
+              HasSubstr("t.toml:2:19: metrics.basic_auth_user is set but "
+                        "metrics.basic_auth_password_file is not"));
 }
 
 TEST(ConfigControlSocket, DefaultEndpointIsAnIpcSocketOfTheStateOrRuntimeDirectory) {
