@@ -395,6 +395,39 @@ def send_inside(peer, stream, data, row, best, count):
         raise AssertionError("copies of %r scored differently from %r: %r" % (row, best, results))
 
 
+def tail_json_until_count(test, daemon, stream, count, send_more, poll=0.1):
+    """Runs `nuwatch tail --json --stream STREAM --count COUNT`, calling send_more() until tail
+    exits by itself; checks that it printed COUNT lines, each a §9 object (by the independent codec)
+    with "stream" added, and returns the objects without it."""
+    tail = subprocess.Popen([NUWATCH, "tail", "--connect", daemon.endpoints["publish"], "--json",
+                             "--stream", stream, "--count", str(count), "--timeout", "10s"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    try:
+        deadline = time.monotonic() + WAIT_TIMEOUT
+        while tail.poll() is None:
+            test.assertLess(time.monotonic(), deadline, "tail --count %d did not exit" % count)
+            send_more()
+            try:
+                tail.wait(timeout=poll)
+            except subprocess.TimeoutExpired:
+                pass
+        out, err = tail.communicate(timeout=WAIT_TIMEOUT)
+    finally:
+        if tail.poll() is None:
+            tail.kill()
+            tail.wait()
+    test.assertEqual(tail.returncode, 0, err)
+    lines = out.decode().splitlines()
+    test.assertEqual(len(lines), count, out)
+    objects = []
+    for text in lines:
+        obj = json.loads(text)
+        test.assertEqual(obj.pop("stream"), stream)
+        codec.parse_published(json.dumps(obj))
+        objects.append(obj)
+    return objects
+
+
 def state_files(state_dir):
     """The regular files of the state directory (not the control socket that lives there)."""
     return sorted(os.path.basename(p) for p in glob.glob(os.path.join(state_dir, "*"))
@@ -723,33 +756,14 @@ class BatchResults(DaemonTestCase):
         # `nuwatch tail --json` prints a batch as its results, one line each, and --count counts
         # results, not messages (a 3-vector message and --count 4: the fourth line is the first
         # result of the second message).
-        tail = subprocess.Popen([NUWATCH, "tail", "--connect", daemon.endpoints["publish"],
-                                 "--json", "--stream", "pump-a", "--count", "4", "--timeout",
-                                 "10s"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
         sent = []
-        try:
-            deadline = time.monotonic() + WAIT_TIMEOUT
-            while tail.poll() is None:
-                self.assertLess(time.monotonic(), deadline, "tail --count 4 did not exit")
-                rows = [a.normal() for _ in range(3)]
-                sent.append([t for t, _ in rows])
-                send_vectors(peer, "pump-a", rows, "f32_batch")
-                try:
-                    tail.wait(timeout=0.2)
-                except subprocess.TimeoutExpired:
-                    pass
-            out, err = tail.communicate(timeout=WAIT_TIMEOUT)
-        finally:
-            if tail.poll() is None:
-                tail.kill()
-                tail.wait()
-        self.assertEqual(tail.returncode, 0, err)
-        lines = out.decode().splitlines()
-        self.assertEqual(len(lines), 4, out)
-        objects = [json.loads(line) for line in lines]
-        self.assertTrue(all(o.pop("stream") == "pump-a" for o in objects))
-        for o in objects:
-            codec.parse_published(json.dumps(o))
+
+        def send_three():
+            rows = [a.normal() for _ in range(3)]
+            sent.append([t for t, _ in rows])
+            send_vectors(peer, "pump-a", rows, "f32_batch")
+
+        objects = tail_json_until_count(self, daemon, "pump-a", 4, send_three, poll=0.2)
         times = [o["t"] for o in objects]
         # tail subscribed at some message; from there it printed whole messages' results in order.
         flat = [t for message in sent for t in message]
@@ -927,30 +941,9 @@ class SendAndTail(DaemonTestCase):
                 tail.wait()
 
         # --json --count: exits by itself after N objects, each §9-valid with its stream added.
-        tail = subprocess.Popen([NUWATCH, "tail", "--connect", daemon.endpoints["publish"],
-                                 "--json", "--stream", "pump-c", "--count", "3", "--timeout",
-                                 "10s"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-        try:
-            deadline = time.monotonic() + WAIT_TIMEOUT
-            while tail.poll() is None:
-                self.assertLess(time.monotonic(), deadline, "tail --count 3 did not exit")
-                send_vectors(peer, "pump-c", [c.normal()], "json")
-                try:
-                    tail.wait(timeout=0.1)
-                except subprocess.TimeoutExpired:
-                    pass
-            out, err = tail.communicate(timeout=WAIT_TIMEOUT)
-        finally:
-            if tail.poll() is None:
-                tail.kill()
-                tail.wait()
-        self.assertEqual(tail.returncode, 0, err)
-        lines = out.decode().splitlines()
-        self.assertEqual(len(lines), 3, out)
-        for text in lines:
-            obj = json.loads(text)
-            self.assertEqual(obj.pop("stream"), "pump-c")
-            codec.parse_published(json.dumps(obj))
+        objects = tail_json_until_count(
+            self, daemon, "pump-c", 3, lambda: send_vectors(peer, "pump-c", [c.normal()], "json"))
+        for obj in objects:
             self.assertIn(obj["t"], c.sent_times)
         self.stop_daemon(daemon, peer)
 
@@ -1236,8 +1229,6 @@ class MetricsBasicAuth(DaemonTestCase):
         with open(password_file, "w") as f:
             f.write("s3cret pump fleet\n")
         os.chmod(password_file, 0o600)
-        extra = '\n[metrics]\nbasic_auth_user = "prometheus"\nbasic_auth_password_file = "%s"\n' % (
-            password_file)
         # config_text has a [metrics] table already: TOML forbids a second one, so merge.
         daemon = Daemon(self.workdir, self.state_dir)
         with open(daemon.config_path) as f:
