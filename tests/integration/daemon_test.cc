@@ -38,6 +38,7 @@
 #include <vector>
 #include <zmq.hpp>
 
+#include "common/child_daemon.h"
 #include "offline/replay.h"
 #include "protocol/wire_protocol.h"
 #include "service/state_store.h"
@@ -310,42 +311,9 @@ class Client {
   double last_time_ = 0;
 };
 
-// A minimal HTTP/1.0 GET: the body, or "" on failure.
-std::string HttpGet(const std::string& host_port, const std::string& path) {
-  const auto colon = host_port.rfind(':');
-  const int port = std::stoi(host_port.substr(colon + 1));
-  const int fd = ::socket(AF_INET, SOCK_STREAM, 0);
-  if (fd < 0) return "";
-  sockaddr_in address{};
-  address.sin_family = AF_INET;
-  address.sin_port = htons(static_cast<uint16_t>(port));
-  address.sin_addr.s_addr = htonl(INADDR_LOOPBACK);
-  if (::connect(fd, reinterpret_cast<sockaddr*>(&address), sizeof address) != 0) {
-    ::close(fd);
-    return "";
-  }
-  const std::string request = "GET " + path + " HTTP/1.0\r\nHost: " + host_port + "\r\n\r\n";
-  if (::send(fd, request.data(), request.size(), 0) != static_cast<ssize_t>(request.size())) {
-    ::close(fd);
-    return "";
-  }
-  std::string response;
-  char buffer[4096];
-  for (ssize_t n; (n = ::recv(fd, buffer, sizeof buffer, 0)) > 0;) response.append(buffer, n);
-  ::close(fd);
-  const auto body = response.find("\r\n\r\n");
-  return body == std::string::npos ? "" : response.substr(body + 4);
-}
-
-// The value of the series `series` (name and labels exactly as exposed, e.g.
-// nuwatch_rejected_messages_total{reason="bad_json"}) in a text exposition.
-std::optional<double> MetricValue(const std::string& text, const std::string& series) {
-  std::istringstream lines(text);
-  for (std::string line; std::getline(lines, line);) {
-    if (line.rfind(series + " ", 0) == 0) return std::stod(line.substr(series.size() + 1));
-  }
-  return std::nullopt;
-}
+// The /metrics reader and series lookup shared with the other process tests.
+using testing_data::HttpGet;
+const auto& MetricValue = testing_data::SeriesValue;
 
 // ---------------------------------------------------------------------------------------------
 // Configuration
