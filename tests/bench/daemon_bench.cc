@@ -35,6 +35,7 @@
 #include <random>
 #include <string>
 #include <thread>
+#include <utility>
 #include <vector>
 #include <zmq.hpp>
 
@@ -196,6 +197,7 @@ double CarriedTime(const zmq::message_t& body) {
 // A target and its client sockets.
 
 struct Target {
+  explicit Target(std::string target_name) : name(std::move(target_name)) {}
   std::string name;
   std::unique_ptr<ChildProcess> process;
   ReadyEndpoints endpoints;
