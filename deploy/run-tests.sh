@@ -11,7 +11,7 @@
 #   asan     clang, ./build-asan: -Wthread-safety as errors (the clang build of the whole tree),
 #            AddressSanitizer + UndefinedBehaviorSanitizer on every target, libFuzzer targets;
 #            the whole suite
-#   fuzz     each libFuzzer target of ./build-asan for NUWATCH_FUZZ_SECONDS (30) from its corpus
+#   fuzz     each libFuzzer target of ./build-asan for NUWATCH_FUZZ_SECONDS (20) from its corpus
 #   tsan     gcc, ./build-tsan: ThreadSanitizer on every target; the unit and integration tests
 # Each stage prints its wall time ("stage NAME: N s"); the first failing stage stops the run.
 set -euo pipefail
@@ -73,7 +73,7 @@ stage_asan() {
 }
 
 stage_fuzz() {
-  local seconds=${NUWATCH_FUZZ_SECONDS:-30}
+  local seconds=${NUWATCH_FUZZ_SECONDS:-20}
   [ -d build-asan/tests/fuzz ] || stage_asan -L fuzz
   local work
   work=$(mktemp -d)
