@@ -551,6 +551,14 @@ void Detector::CheckVector(double time, std::span<const double> x, const char* c
   }
 }
 
+Verdict Detector::HistoryVerdict() {
+  LiveCounters::Bump(counters_.history_vectors);
+  Verdict verdict;
+  verdict.state = StreamState::kHistory;
+  if (const auto open = incidents_.open_incident()) verdict.incident_id = open->id;
+  return verdict;
+}
+
 Verdict Detector::Observe(double time, std::span<const double> x) {
   CheckVector(time, x, "Detector::Observe", -1);
   LiveCounters::Bump(counters_.vectors);
@@ -559,13 +567,7 @@ Verdict Detector::Observe(double time, std::span<const double> x) {
   const bool ready = transform_.Push(time, x, transformed_);
   if (transform_.last_push_reset() != HistoryReset::kNone)
     LiveCounters::Bump(counters_.history_resets);
-  if (!ready) {
-    LiveCounters::Bump(counters_.history_vectors);
-    Verdict verdict;
-    verdict.state = StreamState::kHistory;
-    if (const auto open = incidents_.open_incident()) verdict.incident_id = open->id;
-    return verdict;
-  }
+  if (!ready) return HistoryVerdict();
   return ObserveTransformed(time, transformed_);
 }
 
@@ -633,10 +635,7 @@ void Detector::ObserveBatch(std::span<const double> times, const MatrixD& rows,
     if (options_.max_age_seconds > 0) window_.ExpireOlderThan(times[i]);
     Verdict& verdict = (*verdicts)[i];
     if (!ready[i]) {
-      LiveCounters::Bump(counters_.history_vectors);
-      verdict = Verdict();
-      verdict.state = StreamState::kHistory;
-      if (const auto open = incidents_.open_incident()) verdict.incident_id = open->id;
+      verdict = HistoryVerdict();
       continue;
     }
     const int64_t k = batch_scored_row_[i];

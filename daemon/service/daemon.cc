@@ -24,7 +24,6 @@
 #include <cstring>
 #include <filesystem>
 #include <fstream>
-#include <functional>
 #include <future>
 #include <nlohmann/json.hpp>
 #include <set>
@@ -250,14 +249,15 @@ struct Daemon::Impl final : ControlCommands {
   void ProcessBatch(Stream& stream, const PayloadView& payload);
   // The stream's metrics after `verdicts` (the last of them at data time `last_time`).
   void UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts, double last_time);
-  // Publishes the result of one vector (and its incident event); `explain` gives the flagged
-  // vector's attribution.
-  void PublishVerdict(Stream& stream, double t, const Verdict& v,
-                      const std::function<std::vector<FeatureShare>()>& explain);
+  // Publishes the results of one ingest message's vectors (one message each, or one §9.4 batch
+  // with publish.batches), then their incident events. `batch`: the verdicts came from
+  // ObserveBatch (flagged rows are explained by ExplainBatchRow), else from one Observe.
+  void PublishResults(Stream& stream, std::span<const double> times,
+                      std::span<const Verdict> verdicts, bool batch);
   // The §9.1 result of one vector into *out; false if it is not published (learning, with
-  // publish.include_learning off).
-  bool EncodeVerdict(Stream& stream, double t, const Verdict& v,
-                     const std::function<std::vector<FeatureShare>()>& explain, std::string* out);
+  // publish.include_learning off). `batch_row`: its row in the last ObserveBatch, or -1 for the
+  // vector the last Observe scored.
+  bool EncodeVerdict(Stream& stream, double t, const Verdict& v, int batch_row, std::string* out);
   void PublishIncidentEvent(Stream& stream, double t, const Verdict& v);
   void Reject(RejectReason reason, std::string_view detail, std::string_view key);
   // `results`: the results the message holds (a batch, §9.4, holds several), for the drop counts.
@@ -933,18 +933,8 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
   metrics.score_duration().Observe(
       std::chrono::duration<double>(Clock::now() - started_at).count());
   UpdateStreamMetrics(stream, std::span<const Verdict>(&v, 1), t);
-  auto explain = [&] { return detector.ExplainLast(kTopFeatures); };
-  if (!config.daemon.publish_batches) {
-    PublishVerdict(stream, t, v, explain);
-    return;
-  }
-  if (EncodeVerdict(stream, t, v, explain, &result_json)) {
-    batch_json.assign("{\"results\":[");
-    batch_json.append(result_json);
-    batch_json.append("]}");
-    Publish(stream.key, batch_json, PublishedMessage::kResult);
-  }
-  PublishIncidentEvent(stream, t, v);
+  PublishResults(stream, std::span<const double>(&t, 1), std::span<const Verdict>(&v, 1),
+                 /*batch=*/false);
 }
 
 void Daemon::Impl::ProcessBatch(Stream& stream, const PayloadView& payload) {
@@ -970,30 +960,7 @@ void Daemon::Impl::ProcessBatch(Stream& stream, const PayloadView& payload) {
   metrics.score_duration().Observe(
       std::chrono::duration<double>(Clock::now() - started_at).count() / n);
   UpdateStreamMetrics(stream, stream.batch_verdicts, stream.batch_times.back());
-  auto explain_row = [&](int i) {
-    return [&detector, i] {
-      return detector.ExplainBatchRow(static_cast<std::size_t>(i), kTopFeatures);
-    };
-  };
-  if (!config.daemon.publish_batches) {
-    for (int i = 0; i < n; ++i)
-      PublishVerdict(stream, stream.batch_times[i], stream.batch_verdicts[i], explain_row(i));
-    return;
-  }
-  // §9.4: one message with the message's results in order, then its incident events in order.
-  batch_json.assign("{\"results\":[");
-  int64_t results = 0;
-  for (int i = 0; i < n; ++i) {
-    if (!EncodeVerdict(stream, stream.batch_times[i], stream.batch_verdicts[i], explain_row(i),
-                       &result_json))
-      continue;
-    if (results++ > 0) batch_json.push_back(',');
-    batch_json.append(result_json);
-  }
-  batch_json.append("]}");
-  if (results > 0) Publish(stream.key, batch_json, PublishedMessage::kResult, results);
-  for (int i = 0; i < n; ++i)
-    PublishIncidentEvent(stream, stream.batch_times[i], stream.batch_verdicts[i]);
+  PublishResults(stream, stream.batch_times, stream.batch_verdicts, /*batch=*/true);
 }
 
 void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts,
@@ -1045,15 +1012,32 @@ void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> 
   }
 }
 
-void Daemon::Impl::PublishVerdict(Stream& stream, double t, const Verdict& v,
-                                  const std::function<std::vector<FeatureShare>()>& explain) {
-  if (EncodeVerdict(stream, t, v, explain, &result_json))
-    Publish(stream.key, result_json, PublishedMessage::kResult);
-  PublishIncidentEvent(stream, t, v);
+void Daemon::Impl::PublishResults(Stream& stream, std::span<const double> times,
+                                  std::span<const Verdict> verdicts, bool batch) {
+  const int n = static_cast<int>(verdicts.size());
+  if (config.daemon.publish_batches) {
+    // §9.4: one message with the message's results in order, then its incident events in order.
+    batch_json.assign("{\"results\":[");
+    int64_t results = 0;
+    for (int i = 0; i < n; ++i) {
+      if (!EncodeVerdict(stream, times[i], verdicts[i], batch ? i : -1, &result_json)) continue;
+      if (results++ > 0) batch_json.push_back(',');
+      batch_json.append(result_json);
+    }
+    batch_json.append("]}");
+    if (results > 0) Publish(stream.key, batch_json, PublishedMessage::kResult, results);
+    for (int i = 0; i < n; ++i) PublishIncidentEvent(stream, times[i], verdicts[i]);
+    return;
+  }
+  // §9: each result, then the event of the vector that opened or closed an incident.
+  for (int i = 0; i < n; ++i) {
+    if (EncodeVerdict(stream, times[i], verdicts[i], batch ? i : -1, &result_json))
+      Publish(stream.key, result_json, PublishedMessage::kResult);
+    PublishIncidentEvent(stream, times[i], verdicts[i]);
+  }
 }
 
-bool Daemon::Impl::EncodeVerdict(Stream& stream, double t, const Verdict& v,
-                                 const std::function<std::vector<FeatureShare>()>& explain,
+bool Daemon::Impl::EncodeVerdict(Stream& stream, double t, const Verdict& v, int batch_row,
                                  std::string* out) {
   const bool scoring = v.state == StreamState::kScoring;
   if (!scoring && !config.daemon.publish_learning) return false;
@@ -1073,7 +1057,11 @@ bool Daemon::Impl::EncodeVerdict(Stream& stream, double t, const Verdict& v,
     if ((explained_by = stream.detector->model())) {
       // Explain allocates its result; only flagged vectors pay for it. It works in the model's
       // (transformed) features, which the model names ("flow_m3h, mean of 6").
-      const std::vector<FeatureShare> shares = explain();
+      const Detector& detector = *stream.detector;
+      const std::vector<FeatureShare> shares =
+          batch_row < 0
+              ? detector.ExplainLast(kTopFeatures)
+              : detector.ExplainBatchRow(static_cast<std::size_t>(batch_row), kTopFeatures);
       const auto& names = explained_by->parts().feature_names;
       for (const FeatureShare& share : shares) {
         FeatureShareView& view = top_features[top++];

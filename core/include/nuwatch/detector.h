@@ -208,6 +208,8 @@ class Detector {
   struct Shared;
   // Observe after the transform: z holds feature_dims() values.
   Verdict ObserveTransformed(double time, std::span<const double> z);
+  // A vector spent (re)filling the transform's history: counted, not scored.
+  Verdict HistoryVerdict();
   // The rest of ObserveTransformed once `model` has scored z.
   Verdict ObserveScored(double time, std::span<const double> z, const Model& model,
                         const struct Score& score);
