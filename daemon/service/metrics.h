@@ -25,6 +25,8 @@
 //                                                      the vector that triggered the model's refit
 //   nuwatch_stream_memory_bytes{stream}       gauge    window, model and solution bytes
 //   nuwatch_streams                           gauge    streams tracked
+//   nuwatch_refits_queued                     gauge    refits waiting for a refit thread (at most
+//                                                      one per stream: later ones are coalesced)
 //   nuwatch_results_dropped_total{reason}     counter  results not handed to the result socket:
 //                                                      subscriber_slow (a subscriber's queue was at
 //                                                      publish.high_water_mark), send_error
@@ -129,6 +131,7 @@ class DaemonMetrics {
   prometheus::Histogram& refit_duration() const { return *refit_duration_; }
   prometheus::Histogram& score_duration() const { return *score_duration_; }
   prometheus::Gauge& streams() const { return *streams_; }
+  prometheus::Gauge& refits_queued() const { return *refits_queued_; }
   // nuwatch_results_dropped_total or nuwatch_incident_events_dropped_total, by reason.
   prometheus::Counter& publish_dropped(PublishedMessage message, PublishDropReason reason) const {
     return *publish_dropped_[static_cast<std::size_t>(message)][static_cast<std::size_t>(reason)];
@@ -162,6 +165,7 @@ class DaemonMetrics {
   prometheus::Histogram* refit_duration_;
   prometheus::Histogram* score_duration_;
   prometheus::Gauge* streams_;
+  prometheus::Gauge* refits_queued_;
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;
   std::array<std::array<prometheus::Counter*, kAuthRefusalCount>, kAuthSocketCount> auth_refused_{};

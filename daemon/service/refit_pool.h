@@ -27,12 +27,17 @@ class RefitPool : public RefitExecutor {
   int threads() const { return pool_.threads(); }
   // Runs `job` on a pool thread. Ensures: it runs exactly once, unless Post is called after Join
   // (a precondition violation: the job is then run on the caller's thread, so it still runs).
+  // The pool's threads run at a lower priority than the rest of the process (nice + 10, set by
+  // each thread on its first job), so that under saturation scoring takes the cores first.
   void Post(std::function<void()> job) override;
   // Waits until every posted job has finished; the pool takes no more jobs afterwards.
   void Join();
+  // Jobs posted and not yet started (any thread; a snapshot).
+  int64_t queued() const { return queued_.load(std::memory_order_relaxed); }
 
  private:
   ThreadPool pool_;
+  std::atomic<int64_t> queued_{0};
 };
 
 // A stream's view of the pool: counts the jobs it posted and those that finished, and calls
