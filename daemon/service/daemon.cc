@@ -80,6 +80,10 @@ namespace {
 using Clock = std::chrono::steady_clock;
 
 constexpr int kMessagesPerTurn = 256;  // then poll again, so control requests are not starved
+// Messages queued for one scoring thread before the socket thread waits for it.
+constexpr int kShardQueueMessages = 1000;
+// How often the socket thread reads the (un)subscriptions the XPUB socket hands up.
+constexpr std::chrono::milliseconds kSubscriptionDrainInterval{200};
 constexpr std::size_t kControlMaxBytes = 1 << 20;
 constexpr int kPublishLingerMs = 200;
 // At a stop the results of the drained input are still on their way to the subscribers: give them
@@ -215,6 +219,85 @@ void StopExposer(std::unique_ptr<prometheus::Exposer>& exposer, std::string host
   ::freeaddrinfo(found);
 }
 
+// The state-file write outcomes the io thread reports to a stream's scoring thread.
+struct FinishedWrite {
+  Stream* stream = nullptr;
+  int64_t vectors = 0;         // what the file holds if the write succeeded
+  uint64_t model_version = 0;  // likewise
+  std::string error;           // "" when the file was written, fsynced and renamed
+};
+
+// One scoring thread and what it owns outright: its streams (detector, window, incident state,
+// metric handles, recorder), its end of the inproc queue the socket thread hands it messages on,
+// and the hot path's reusable buffers. Other threads reach it only through `commands` (the socket
+// thread: pauses, periodic work), `finished_refits` (refit threads) and `finished_writes` (the io
+// thread), each under its own mutex and followed by a write to `wake_fd`; the per-vector path
+// takes none of them.
+struct Shard {
+  explicit Shard(int shard_index) : index(shard_index) {}
+  ~Shard() {
+    if (wake_fd >= 0) ::close(wake_fd);
+  }
+  Shard(const Shard&) = delete;
+  Shard& operator=(const Shard&) = delete;
+
+  const int index;
+  StreamRegistry streams;
+  zmq::socket_t input;  // PULL, inproc: the socket thread's feed; two frames a message, or one
+                        // empty frame (kShardStop) that ends the thread
+  int wake_fd = -1;
+  std::thread thread;
+
+  Mutex commands_mutex;
+  std::vector<std::function<void()>> commands GUARDED_BY(commands_mutex);
+  std::vector<std::function<void()>> command_work;  // the shard's thread: swapped with commands
+
+  // Refit threads report finished refits here (Impl::NoteFinishedRefit).
+  Mutex finished_mutex;
+  std::vector<Stream*> finished_refits GUARDED_BY(finished_mutex);
+  std::vector<Stream*> finished_work;  // swapped with finished_refits
+
+  // The io thread reports each state write's outcome here, so that a stream's snapshot
+  // bookkeeping has one owner.
+  Mutex writes_mutex;
+  std::vector<FinishedWrite> finished_writes GUARDED_BY(writes_mutex);
+  std::vector<FinishedWrite> finished_write_work;
+  // The earliest moment a failed write is due again; none while no write has failed.
+  std::optional<Clock::time_point> next_write_retry;
+
+  // Hot-path buffers, reused so that steady-state processing does not allocate.
+  zmq::message_t key_message;
+  zmq::message_t payload_message;
+  JsonScratch scratch;
+  std::string result_json;
+  std::string batch_json;  // a §9.4 batch of results (publish.batches)
+  std::string event_json;
+  std::array<FeatureShareView, kTopFeatures> top_features;
+
+  void Wake() const {
+    const uint64_t one = 1;
+    // EAGAIN means the counter is saturated: a wake-up is pending anyway.
+    [[maybe_unused]] const ssize_t n = ::write(wake_fd, &one, sizeof one);
+  }
+  // Runs `command` on the shard's thread, between two messages, in the order posted.
+  void Post(std::function<void()> command) EXCLUDES(commands_mutex) {
+    {
+      MutexLock lock(&commands_mutex);
+      commands.push_back(std::move(command));
+    }
+    Wake();
+  }
+};
+
+int ScoringThreads(const DaemonSettings& s) {
+  if (s.scoring_threads > 0) return s.scoring_threads;
+  return std::max(1, static_cast<int>(std::thread::hardware_concurrency()));
+}
+
+std::size_t ShardOf(std::string_view key, std::size_t shards) {
+  return std::hash<std::string_view>{}(key) % shards;
+}
+
 }  // namespace
 
 struct Daemon::Impl final : ControlCommands {
@@ -226,8 +309,11 @@ struct Daemon::Impl final : ControlCommands {
   void BindSockets();
   void StartExposer();
   void RestoreStreams();
-  std::unique_ptr<Stream> MakeStream(const std::string& key, int dims,
+  std::unique_ptr<Stream> MakeStream(Shard& shard, const std::string& key, int dims,
                                      const DetectorOptions& options);
+  Shard& ShardFor(std::string_view key) { return *shards[ShardOf(key, shards.size())]; }
+  // Every stream of every shard, sorted by key. Only while the shards are paused or stopped.
+  std::vector<Stream*> AllStreamsSorted() const;
 
   // Threads.
   void Start();
@@ -240,45 +326,61 @@ struct Daemon::Impl final : ControlCommands {
   void StartTimer(boost::asio::steady_timer& timer, double seconds, std::atomic<bool>& flag);
   void WaitForSignal();
 
-  // The hot path.
+  // Scoring threads.
+  void StartShards();
+  // Hands each shard the stop marker after what is queued for it, and joins the threads.
+  void StopShards();
+  void RunShard(Shard& shard);
+  // Runs the commands posted to the shard, then its finished refits and writes.
+  void HandleShardWork(Shard& shard);
+  // Takes up to kMessagesPerTurn messages from the shard's queue; false at the stop marker.
+  bool ReceiveShardInput(Shard& shard);
+  // Holds every scoring thread between two messages while it lives (the socket thread's control
+  // requests and reloads read and change every shard's streams and the configuration).
+  class ShardsPaused;
+
+  // The hot path: the socket thread receives and hands over (ReceiveFrom), the stream's scoring
+  // thread does the rest.
   void ReceiveFrom(zmq::socket_t& socket);
-  void HandleIngest(std::string_view key, std::string_view payload);
-  void ProcessVector(Stream& stream, const PayloadView& payload, int index);
+  void HandleIngest(Shard& shard, std::string_view key, std::string_view payload);
+  void ProcessVector(Shard& shard, Stream& stream, const PayloadView& payload, int index);
   // A message of several vectors: one batched product (Detector::ObserveBatch), the metrics
   // updated once for the message, the flagged rows alone explained.
-  void ProcessBatch(Stream& stream, const PayloadView& payload);
+  void ProcessBatch(Shard& shard, Stream& stream, const PayloadView& payload);
   // The stream's metrics after `verdicts` (the last of them at data time `last_time`).
   void UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts, double last_time);
   // Publishes the results of one ingest message's vectors (one message each, or one §9.4 batch
   // with publish.batches), then their incident events. `batch`: the verdicts came from
   // ObserveBatch (flagged rows are explained by ExplainBatchRow), else from one Observe.
-  void PublishResults(Stream& stream, std::span<const double> times,
+  void PublishResults(Shard& shard, Stream& stream, std::span<const double> times,
                       std::span<const Verdict> verdicts, bool batch);
   // The §9.1 result of one vector into *out; false if it is not published (learning, with
   // publish.include_learning off). `batch_row`: its row in the last ObserveBatch, or -1 for the
   // vector the last Observe scored.
-  bool EncodeVerdict(Stream& stream, double t, const Verdict& v, int batch_row, std::string* out);
-  void PublishIncidentEvent(Stream& stream, double t, const Verdict& v);
+  bool EncodeVerdict(Shard& shard, Stream& stream, double t, const Verdict& v, int batch_row,
+                     std::string* out);
+  void PublishIncidentEvent(Shard& shard, Stream& stream, double t, const Verdict& v);
   void Reject(RejectReason reason, std::string_view detail, std::string_view key);
   // `results`: the results the message holds (a batch, §9.4, holds several), for the drop counts.
   void Publish(std::string_view key, const std::string& body, PublishedMessage message,
-               int64_t results = 1);
-  void DrainSubscriptions();
+               int64_t results = 1) EXCLUDES(publish_mutex);
+  void DrainSubscriptions() EXCLUDES(publish_mutex);
   void Record(Stream& stream, double time);
 
-  // Background work noticed by the socket thread.
-  void NoteFinishedRefit(Stream* stream) EXCLUDES(finished_mutex);  // any thread
-  void HandleFinishedRefits() EXCLUDES(finished_mutex);
-  void PeriodicSnapshot();
-  void FlushRecordings();
+  // Background work, noticed by the stream's scoring thread (or by the socket thread while the
+  // shards are paused or stopped).
+  void NoteFinishedRefit(Shard& shard, Stream* stream);  // any thread
+  void HandleFinishedRefits(Shard& shard);
+  void PeriodicSnapshot(Shard& shard);
+  void FlushRecordings(Shard& shard);
   // Why a snapshot is taken: a periodic or refit-driven one skips an unchanged stream and waits
   // for a failing stream's backoff; a request writes every stream now; the final one at shutdown
   // writes every changed or failing stream without waiting.
   enum class SnapshotKind { kPeriodic, kRequest, kFinal };
-  bool TrySnapshot(Stream& stream, SnapshotKind kind);
+  bool TrySnapshot(Shard& shard, Stream& stream, SnapshotKind kind);
   void WaitForStateWrites();
-  void HandleFinishedWrites() EXCLUDES(writes_mutex);
-  void RetryFailedWrites();
+  void HandleFinishedWrites(Shard& shard);
+  void RetryFailedWrites(Shard& shard);
   void HandleControl();
 
   // ControlCommands (socket thread).
@@ -303,15 +405,34 @@ struct Daemon::Impl final : ControlCommands {
   std::optional<CurveKeyPair> server_keys;
   std::unique_ptr<CurveAuthenticator> auth;
   std::vector<zmq::socket_t> ingest;  // PULL sockets, then the SUB socket if any
-  zmq::socket_t publish;  // XPUB with ZMQ_XPUB_NODROP: a full subscriber queue is seen and counted
+  // XPUB with ZMQ_XPUB_NODROP: a full subscriber queue is seen and counted. The scoring threads
+  // publish on it in turn: a ZeroMQ socket may change threads behind a full memory barrier, which
+  // the mutex provides; the socket thread only drains its subscriptions.
+  Mutex publish_mutex;
+  zmq::socket_t publish;
   zmq::socket_t control;
   int wake_fd = -1;
 
   RefitPool pool;
   std::optional<StateStore> store;
   StateDirLock state_lock;  // held while the daemon lives
-  StreamRegistry streams;
+  // The scoring threads (daemon.scoring_threads), and the socket thread's PUSH end of each one's
+  // queue (feeds[i] to shards[i]->input).
+  std::vector<std::unique_ptr<Shard>> shards;
+  std::vector<zmq::socket_t> feeds;
+  bool shards_running = false;  // socket thread
+  // Streams over every shard: a new stream takes a place (TakeStreamPlace) before it is created,
+  // so that shards together never exceed limits.max_streams.
+  std::atomic<int64_t> stream_count{0};
+  bool TakeStreamPlace();
+  void ReleaseStreamPlaces(int64_t n);
   int64_t restored_streams = 0;
+  // ShardsPaused: how many shards are held, and whether they are to stay.
+  Mutex pause_mutex;
+  CondVar pause_changed{&pause_mutex};
+  int shards_held GUARDED_BY(pause_mutex) = 0;
+  bool hold_shards GUARDED_BY(pause_mutex) = false;
+  Clock::time_point last_subscription_drain{};
 
   boost::asio::io_context io;
   boost::asio::executor_work_guard<boost::asio::io_context::executor_type> io_work{
@@ -335,35 +456,52 @@ struct Daemon::Impl final : ControlCommands {
   bool final_write_failed = false;  // socket thread; read after it has been joined
   int64_t received_messages = 0;    // socket thread: ingest messages taken, for the stop's log
 
-  // Refit threads report finished refits here; the socket thread takes them (HandleFinishedRefits).
-  Mutex finished_mutex;
-  std::vector<Stream*> finished_refits GUARDED_BY(finished_mutex);
-  std::vector<Stream*> finished_work;  // socket thread: swapped with finished_refits
-
-  // The io thread reports each state write's outcome here; the socket thread takes them
-  // (HandleFinishedWrites), so that a stream's snapshot bookkeeping has one owner.
-  struct FinishedWrite {
-    Stream* stream = nullptr;
-    int64_t vectors = 0;         // what the file holds if the write succeeded
-    uint64_t model_version = 0;  // likewise
-    std::string error;           // "" when the file was written, fsynced and renamed
-  };
-  Mutex writes_mutex;
-  std::vector<FinishedWrite> finished_writes GUARDED_BY(writes_mutex);
-  std::vector<FinishedWrite> finished_write_work;  // socket thread
-  // The earliest moment a failed write is due again; none while no write has failed.
-  std::optional<Clock::time_point> next_write_retry;
-
-  // Hot-path buffers, reused so that steady-state processing does not allocate.
+  // The socket thread's receive buffers, reused.
   zmq::message_t key_message;
   zmq::message_t payload_message;
   zmq::message_t extra_message;
-  JsonScratch scratch;
-  std::string result_json;
-  std::string batch_json;  // a §9.4 batch of results (publish.batches)
-  std::string event_json;
-  std::array<FeatureShareView, kTopFeatures> top_features;
-  std::array<bool, 256> rejection_logged{};
+  zmq::message_t subscription_message;  // DrainSubscriptions, under publish_mutex
+  std::array<std::atomic<bool>, 256> rejection_logged{};
+};
+
+// Holds every running scoring thread between two messages, from construction to destruction, so
+// that the socket thread may read and change any shard's streams and the configuration they read.
+// A no-op once the shards have stopped (the socket thread then owns everything). Rare by design:
+// control requests and reloads only; periodic work is posted to each shard instead.
+class Daemon::Impl::ShardsPaused {
+ public:
+  explicit ShardsPaused(Impl& impl) : impl_(impl) {
+    if (!impl_.shards_running) return;
+    {
+      MutexLock lock(&impl_.pause_mutex);
+      impl_.hold_shards = true;
+    }
+    for (auto& shard : impl_.shards) {
+      shard->Post([this] {
+        MutexLock lock(&impl_.pause_mutex);
+        ++impl_.shards_held;
+        impl_.pause_changed.SignalAll();
+        while (impl_.hold_shards) impl_.pause_changed.Wait();
+        --impl_.shards_held;
+        impl_.pause_changed.SignalAll();
+      });
+    }
+    MutexLock lock(&impl_.pause_mutex);
+    while (impl_.shards_held < static_cast<int>(impl_.shards.size())) impl_.pause_changed.Wait();
+  }
+  ~ShardsPaused() {
+    if (!impl_.shards_running) return;
+    MutexLock lock(&impl_.pause_mutex);
+    impl_.hold_shards = false;
+    impl_.pause_changed.SignalAll();
+    // Every shard has left before the next pause may begin.
+    while (impl_.shards_held > 0) impl_.pause_changed.Wait();
+  }
+  ShardsPaused(const ShardsPaused&) = delete;
+  ShardsPaused& operator=(const ShardsPaused&) = delete;
+
+ private:
+  Impl& impl_;
 };
 
 Daemon::Impl::Impl(DaemonOptions daemon_options)
@@ -397,6 +535,27 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
   SetUpAuth();
   BindSockets();
   StartExposer();
+  const int scoring_threads = ScoringThreads(config.daemon);
+  for (int i = 0; i < scoring_threads; ++i) {
+    auto shard = std::make_unique<Shard>(i);
+    shard->wake_fd = ::eventfd(0, EFD_NONBLOCK | EFD_CLOEXEC);
+    if (shard->wake_fd < 0)
+      throw DaemonError(std::string("eventfd failed: ") + std::strerror(errno));
+    // inproc: ZeroMQ's lock-free pipes between two threads of this process; a message moves
+    // without being copied. The high-water marks bound what waits for one scoring thread; when
+    // it is full, the socket thread waits and the ingest sockets' own queues take the rest.
+    const std::string endpoint = "inproc://nuwatchd-shard-" + std::to_string(i);
+    shard->input = zmq::socket_t(context, zmq::socket_type::pull);
+    shard->input.set(zmq::sockopt::rcvhwm, kShardQueueMessages);
+    shard->input.set(zmq::sockopt::linger, 0);
+    shard->input.bind(endpoint);
+    zmq::socket_t feed(context, zmq::socket_type::push);
+    feed.set(zmq::sockopt::sndhwm, kShardQueueMessages);
+    feed.set(zmq::sockopt::linger, 0);
+    feed.connect(endpoint);
+    feeds.push_back(std::move(feed));
+    shards.push_back(std::move(shard));
+  }
   if (store) {
     try {
       RestoreStreams();
@@ -404,15 +563,36 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
       throw DaemonError(e.what());
     }
   }
-  metrics.streams().Set(static_cast<double>(streams.size()));
+  metrics.streams().Set(static_cast<double>(stream_count.load()));
 }
 
 Daemon::Impl::~Impl() {
   // Streams first (each waits for its refit), while the pool and the metrics still exist.
   pool.Join();
-  streams.Clear();
+  for (auto& shard : shards) shard->streams.Clear();
   StopExposer(exposer, metrics_host, metrics_port);
   if (wake_fd >= 0) ::close(wake_fd);
+}
+
+bool Daemon::Impl::TakeStreamPlace() {
+  int64_t n = stream_count.load();
+  while (n < config.daemon.max_streams) {
+    if (stream_count.compare_exchange_weak(n, n + 1)) return true;
+  }
+  return false;
+}
+
+void Daemon::Impl::ReleaseStreamPlaces(int64_t n) { stream_count.fetch_sub(n); }
+
+std::vector<Stream*> Daemon::Impl::AllStreamsSorted() const {
+  std::vector<Stream*> all;
+  for (const auto& shard : shards) {
+    std::vector<Stream*> some = shard->streams.Sorted();
+    all.insert(all.end(), some.begin(), some.end());
+  }
+  std::sort(all.begin(), all.end(),
+            [](const Stream* a, const Stream* b) { return a->key < b->key; });
+  return all;
 }
 
 void Daemon::Impl::SetUpAuth() {
@@ -540,11 +720,11 @@ void Daemon::Impl::StartExposer() {
   endpoints.metrics = metrics_host + ":" + std::to_string(metrics_port);
 }
 
-std::unique_ptr<Stream> Daemon::Impl::MakeStream(const std::string& key, int dims,
+std::unique_ptr<Stream> Daemon::Impl::MakeStream(Shard& shard, const std::string& key, int dims,
                                                  const DetectorOptions& stream_options) {
-  auto stream = std::make_unique<Stream>(key, dims, stream_options, &pool, &metrics,
-                                         config.daemon.anomaly_ratio_window,
-                                         [this](Stream* s) { NoteFinishedRefit(s); });
+  auto stream = std::make_unique<Stream>(
+      key, dims, stream_options, &pool, &metrics, config.daemon.anomaly_ratio_window,
+      [this, &shard](Stream* s) { NoteFinishedRefit(shard, s); });
   if (!config.daemon.record_dir.empty()) {
     stream->recorder = std::make_unique<StreamRecorder>(
         config.daemon.record_dir, key, dims, stream_options.feature_names,
@@ -558,7 +738,7 @@ void Daemon::Impl::RestoreStreams() {
     spdlog::info("state: removed {} (left by an interrupted write)", path);
   }
   for (const StateStore::Entry& entry : store->List()) {
-    if (static_cast<int64_t>(streams.size()) >= config.daemon.max_streams) {
+    if (stream_count.load() >= config.daemon.max_streams) {
       spdlog::warn("state: {} not restored: limits.max_streams = {} streams are restored already",
                    entry.path, config.daemon.max_streams);
       continue;
@@ -573,7 +753,9 @@ void Daemon::Impl::RestoreStreams() {
                              " features but the configuration names " +
                              std::to_string(stream_options.feature_names.size()));
       }
-      std::unique_ptr<Stream> stream = MakeStream(file.stream_key, file.dims, stream_options);
+      Shard& shard = ShardFor(file.stream_key);
+      std::unique_ptr<Stream> stream =
+          MakeStream(shard, file.stream_key, file.dims, stream_options);
       stream->detector->ImportState(file.state);
       const auto model = stream->detector->model();
       stream->seen_model_version = model ? model->version() : 0;
@@ -584,7 +766,8 @@ void Daemon::Impl::RestoreStreams() {
       spdlog::info("state: restored stream={} state={} model_version={} window={} from {}",
                    file.stream_key, StreamStateName(stream->detector->state()),
                    stream->seen_model_version, stream->detector->window_size(), entry.path);
-      streams.Add(std::move(stream));
+      shard.streams.Add(std::move(stream));
+      ++stream_count;
       ++restored_streams;
       continue;
     } catch (const StateFileError& e) {
@@ -699,8 +882,9 @@ void Daemon::Impl::Start() {
       }
     }
   });
+  StartShards();
   socket_thread = std::thread([this] { RunSocketThread(); });
-  spdlog::info("ready streams={}", restored_streams);
+  spdlog::info("ready streams={} scoring_threads={}", restored_streams, shards.size());
 }
 
 void Daemon::Impl::RunSocketThread() {
@@ -714,13 +898,88 @@ void Daemon::Impl::RunSocketThread() {
   Shutdown();
 }
 
+void Daemon::Impl::StartShards() {
+  shards_running = true;
+  for (auto& shard : shards) {
+    Shard* s = shard.get();
+    s->thread = std::thread([this, s] { RunShard(*s); });
+    // Named here rather than by the thread, so that the name is in place when Start returns.
+    const std::string name = ("nuwatchd-score" + std::to_string(s->index)).substr(0, 15);
+    pthread_setname_np(s->thread.native_handle(), name.c_str());
+  }
+}
+
+void Daemon::Impl::StopShards() {
+  if (!shards_running) return;
+  for (auto& feed : feeds) {
+    // After everything queued for the shard: its thread ends when it reaches this.
+    try {
+      (void)feed.send(zmq::message_t(), zmq::send_flags::none);
+    } catch (const zmq::error_t& e) {
+      spdlog::error("stopping: cannot reach a scoring thread: {}", e.what());
+    }
+  }
+  for (auto& shard : shards) {
+    if (shard->thread.joinable()) shard->thread.join();
+  }
+  shards_running = false;
+}
+
+void Daemon::Impl::RunShard(Shard& shard) {
+  std::array<zmq_pollitem_t, 2> items{
+      {{nullptr, shard.wake_fd, ZMQ_POLLIN, 0}, {shard.input.handle(), 0, ZMQ_POLLIN, 0}}};
+  while (true) {
+    try {
+      zmq::poll(items.data(), items.size(), std::chrono::milliseconds(1000));
+      if (items[0].revents & ZMQ_POLLIN) {
+        uint64_t count;
+        [[maybe_unused]] const ssize_t n = ::read(shard.wake_fd, &count, sizeof count);
+        HandleShardWork(shard);
+      }
+      if (shard.next_write_retry && Clock::now() >= *shard.next_write_retry) {
+        RetryFailedWrites(shard);
+      }
+      if ((items[1].revents & ZMQ_POLLIN) && !ReceiveShardInput(shard)) break;
+    } catch (const zmq::error_t& e) {
+      if (e.num() == EINTR) continue;
+      if (e.num() == ETERM) break;
+      spdlog::error("scoring thread {}: ZeroMQ error: {}", shard.index, e.what());
+    } catch (const std::exception& e) {
+      // A bug, not bad input (bad input is rejected and counted): log it and keep serving.
+      spdlog::error("scoring thread {}: internal error: {}", shard.index, e.what());
+    }
+  }
+  // Commands posted until now still run (a pause the socket thread waits for).
+  HandleShardWork(shard);
+}
+
+void Daemon::Impl::HandleShardWork(Shard& shard) {
+  shard.command_work.clear();
+  {
+    MutexLock lock(&shard.commands_mutex);
+    shard.command_work.swap(shard.commands);
+  }
+  for (auto& command : shard.command_work) command();
+  HandleFinishedRefits(shard);
+  HandleFinishedWrites(shard);
+}
+
+bool Daemon::Impl::ReceiveShardInput(Shard& shard) {
+  for (int n = 0; n < kMessagesPerTurn; ++n) {
+    if (!shard.input.recv(shard.key_message, zmq::recv_flags::dontwait)) return true;
+    if (!shard.key_message.more()) return false;  // the stop marker: nothing follows it
+    // The socket thread hands over whole two-frame messages only.
+    (void)shard.input.recv(shard.payload_message, zmq::recv_flags::none);
+    HandleIngest(shard, shard.key_message.to_string_view(), shard.payload_message.to_string_view());
+  }
+  return true;
+}
+
 void Daemon::Impl::Loop() {
   std::vector<zmq_pollitem_t> items;
   items.push_back({nullptr, wake_fd, ZMQ_POLLIN, 0});
   items.push_back({control.handle(), 0, ZMQ_POLLIN, 0});
   for (auto& socket : ingest) items.push_back({socket.handle(), 0, ZMQ_POLLIN, 0});
-  const std::size_t publish_item = items.size();
-  items.push_back({publish.handle(), 0, ZMQ_POLLIN, 0});
   while (true) {
     try {
       zmq::poll(items, std::chrono::milliseconds(1000));
@@ -733,18 +992,23 @@ void Daemon::Impl::Loop() {
       [[maybe_unused]] const ssize_t n = ::read(wake_fd, &count, sizeof count);
     }
     if (stop_requested.load()) return;
+    metrics.refits_queued().Set(static_cast<double>(pool.queued()));
     try {
       if (reload_requested.exchange(false)) Reload();
-      HandleFinishedRefits();
-      HandleFinishedWrites();
-      if (next_write_retry && Clock::now() >= *next_write_retry) RetryFailedWrites();
-      if (snapshot_due.exchange(false)) PeriodicSnapshot();
-      if (flush_due.exchange(false)) FlushRecordings();
+      if (snapshot_due.exchange(false)) {
+        for (auto& shard : shards) shard->Post([this, s = shard.get()] { PeriodicSnapshot(*s); });
+      }
+      if (flush_due.exchange(false)) {
+        for (auto& shard : shards) shard->Post([this, s = shard.get()] { FlushRecordings(*s); });
+      }
       if (items[1].revents & ZMQ_POLLIN) HandleControl();
       for (std::size_t i = 0; i < ingest.size(); ++i) {
         if (items[2 + i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
       }
-      if (items[publish_item].revents & ZMQ_POLLIN) DrainSubscriptions();
+      if (Clock::now() - last_subscription_drain > kSubscriptionDrainInterval) {
+        last_subscription_drain = Clock::now();
+        DrainSubscriptions();
+      }
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
       if (e.num() == ETERM) return;
@@ -780,8 +1044,6 @@ void Daemon::Impl::DrainIngest() {
   while (!items.empty() && Clock::now() < until) {
     try {
       if (zmq::poll(items, kDrainQuiet) == 0) break;  // quiet: nothing more was queued
-      HandleFinishedRefits();
-      HandleFinishedWrites();
       for (std::size_t i = 0; i < ingest.size(); ++i) {
         if (items[i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
       }
@@ -804,21 +1066,29 @@ void Daemon::Impl::DrainIngest() {
 void Daemon::Impl::Shutdown() {
   DrainIngest();
   ingest.clear();  // input stops here
+  // The scoring threads finish what was handed to them (scored and published), then end: from
+  // here on the socket thread owns every stream.
+  StopShards();
+  const std::vector<Stream*> all = AllStreamsSorted();
   int busy = 0;
-  for (Stream* s : streams.Sorted()) busy += s->executor.idle() ? 0 : 1;
+  for (Stream* s : all) busy += s->executor.idle() ? 0 : 1;
   if (busy > 0) spdlog::info("stopping: waiting for {} refits in flight", busy);
   pool.Join();
   try {
-    HandleFinishedRefits();
+    for (auto& shard : shards) HandleFinishedRefits(*shard);
     WaitForStateWrites();  // so that no stream's final snapshot is skipped as still queued
-    HandleFinishedWrites();
+    for (auto& shard : shards) HandleFinishedWrites(*shard);
     if (store) {
       int queued = 0;
-      for (Stream* s : streams.Sorted()) queued += TrySnapshot(*s, SnapshotKind::kFinal) ? 1 : 0;
+      for (auto& shard : shards) {
+        for (Stream* s : shard->streams.Sorted()) {
+          queued += TrySnapshot(*shard, *s, SnapshotKind::kFinal) ? 1 : 0;
+        }
+      }
       WaitForStateWrites();
-      HandleFinishedWrites();
+      for (auto& shard : shards) HandleFinishedWrites(*shard);
       int failed = 0;
-      for (Stream* s : streams.Sorted()) {
+      for (Stream* s : all) {
         if (s->write_failures == 0) continue;
         ++failed;
         spdlog::error("stopping: stream {}: the state file could not be written: {}", s->key,
@@ -827,13 +1097,13 @@ void Daemon::Impl::Shutdown() {
       if (failed > 0) {
         final_write_failed = true;
         spdlog::error("stopping: {} of {} streams' state files are not up to date", failed,
-                      streams.size());
+                      all.size());
       } else {
         spdlog::info("stopping: {} state files written", queued);
       }
     }
-    FlushRecordings();
-    for (Stream* s : streams.Sorted()) s->recorder.reset();
+    for (auto& shard : shards) FlushRecordings(*shard);
+    for (Stream* s : all) s->recorder.reset();
   } catch (const std::exception& e) {
     final_write_failed = true;
     spdlog::error("stopping: {}", e.what());
@@ -845,6 +1115,7 @@ void Daemon::Impl::Shutdown() {
     io_work.reset();
   });
   if (io_thread.joinable()) io_thread.join();
+  MutexLock lock(&publish_mutex);
   try {
     publish.set(zmq::sockopt::linger, kStopPublishLingerMs);
   } catch (const zmq::error_t&) {
@@ -877,24 +1148,25 @@ void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
       Reject(RejectReason::kWrongFrameCount, "the message does not have exactly two frames", {});
       continue;
     }
-    HandleIngest(key_message.to_string_view(), payload_message.to_string_view());
+    // To the thread that owns the stream: the frames move (inproc does not copy them). Waits
+    // while that thread's queue is full, so that nothing is dropped here; the ingest sockets'
+    // own queues, then the senders, take up the slack.
+    zmq::socket_t& feed = feeds[ShardOf(key_message.to_string_view(), feeds.size())];
+    (void)feed.send(key_message, zmq::send_flags::sndmore);
+    (void)feed.send(payload_message, zmq::send_flags::none);
   }
 }
 
-void Daemon::Impl::HandleIngest(std::string_view key, std::string_view payload) {
-  const DecodeResult decoded = DecodeIngest(key, payload, limits, &scratch);
+void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_view payload) {
+  const DecodeResult decoded = DecodeIngest(key, payload, limits, &shard.scratch);
   if (!decoded.ok()) {
     Reject(decoded.reason, decoded.detail,
            decoded.reason == RejectReason::kBadStreamKey ? std::string_view() : key);
     return;
   }
   const PayloadView& p = decoded.payload;
-  Stream* stream = streams.Find(key);
+  Stream* stream = shard.streams.Find(key);
   if (stream == nullptr) {
-    if (static_cast<int64_t>(streams.size()) >= config.daemon.max_streams) {
-      Reject(RejectReason::kStreamLimit, "a new stream, and limits.max_streams are tracked", key);
-      return;
-    }
     const std::string stream_key(key);
     const DetectorOptions stream_options = DetectorOptionsFor(config, stream_key);
     if (!stream_options.feature_names.empty() &&
@@ -902,28 +1174,34 @@ void Daemon::Impl::HandleIngest(std::string_view key, std::string_view payload) 
       Reject(RejectReason::kDimsMismatch, "the configured feature_names fix another length", key);
       return;
     }
+    if (!TakeStreamPlace()) {
+      Reject(RejectReason::kStreamLimit, "a new stream, and limits.max_streams are tracked", key);
+      return;
+    }
     try {
-      stream = streams.Add(MakeStream(stream_key, p.dims, stream_options));
+      stream = shard.streams.Add(MakeStream(shard, stream_key, p.dims, stream_options));
     } catch (const std::exception& e) {
       // PreconditionError, or a window that cannot be allocated for this many features
       // (bad_alloc, length_error): this stream is refused, the others carry on.
+      ReleaseStreamPlaces(1);
       spdlog::error("stream {}: cannot create its detector: {}", stream_key, e.what());
       return;
     }
-    metrics.streams().Set(static_cast<double>(streams.size()));
+    metrics.streams().Set(static_cast<double>(stream_count.load()));
     spdlog::info("new stream={} dims={}", stream_key, p.dims);
   } else if (p.dims != stream->dims) {
     Reject(RejectReason::kDimsMismatch, "the stream has vectors of another length", key);
     return;
   }
   if (p.count == 1) {
-    ProcessVector(*stream, p, 0);
+    ProcessVector(shard, *stream, p, 0);
   } else {
-    ProcessBatch(*stream, p);
+    ProcessBatch(shard, *stream, p);
   }
 }
 
-void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int index) {
+void Daemon::Impl::ProcessVector(Shard& shard, Stream& stream, const PayloadView& payload,
+                                 int index) {
   const double t = payload.time(index);
   payload.CopyRow(index, stream.row);
   if (stream.recorder) Record(stream, t);
@@ -933,11 +1211,11 @@ void Daemon::Impl::ProcessVector(Stream& stream, const PayloadView& payload, int
   metrics.score_duration().Observe(
       std::chrono::duration<double>(Clock::now() - started_at).count());
   UpdateStreamMetrics(stream, std::span<const Verdict>(&v, 1), t);
-  PublishResults(stream, std::span<const double>(&t, 1), std::span<const Verdict>(&v, 1),
+  PublishResults(shard, stream, std::span<const double>(&t, 1), std::span<const Verdict>(&v, 1),
                  /*batch=*/false);
 }
 
-void Daemon::Impl::ProcessBatch(Stream& stream, const PayloadView& payload) {
+void Daemon::Impl::ProcessBatch(Shard& shard, Stream& stream, const PayloadView& payload) {
   const int n = payload.count;
   if (stream.batch_rows.rows() != n || stream.batch_rows.cols() != stream.dims)
     stream.batch_rows.resize(n, stream.dims);
@@ -960,7 +1238,7 @@ void Daemon::Impl::ProcessBatch(Stream& stream, const PayloadView& payload) {
   metrics.score_duration().Observe(
       std::chrono::duration<double>(Clock::now() - started_at).count() / n);
   UpdateStreamMetrics(stream, stream.batch_verdicts, stream.batch_times.back());
-  PublishResults(stream, stream.batch_times, stream.batch_verdicts, /*batch=*/true);
+  PublishResults(shard, stream, stream.batch_times, stream.batch_verdicts, /*batch=*/true);
 }
 
 void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts,
@@ -1012,33 +1290,37 @@ void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> 
   }
 }
 
-void Daemon::Impl::PublishResults(Stream& stream, std::span<const double> times,
+void Daemon::Impl::PublishResults(Shard& shard, Stream& stream, std::span<const double> times,
                                   std::span<const Verdict> verdicts, bool batch) {
   const int n = static_cast<int>(verdicts.size());
+  std::string& batch_json = shard.batch_json;
+  std::string& result_json = shard.result_json;
   if (config.daemon.publish_batches) {
     // §9.4: one message with the message's results in order, then its incident events in order.
     batch_json.assign("{\"results\":[");
     int64_t results = 0;
     for (int i = 0; i < n; ++i) {
-      if (!EncodeVerdict(stream, times[i], verdicts[i], batch ? i : -1, &result_json)) continue;
+      if (!EncodeVerdict(shard, stream, times[i], verdicts[i], batch ? i : -1, &result_json))
+        continue;
       if (results++ > 0) batch_json.push_back(',');
       batch_json.append(result_json);
     }
     batch_json.append("]}");
     if (results > 0) Publish(stream.key, batch_json, PublishedMessage::kResult, results);
-    for (int i = 0; i < n; ++i) PublishIncidentEvent(stream, times[i], verdicts[i]);
+    for (int i = 0; i < n; ++i) PublishIncidentEvent(shard, stream, times[i], verdicts[i]);
     return;
   }
   // §9: each result, then the event of the vector that opened or closed an incident.
   for (int i = 0; i < n; ++i) {
-    if (EncodeVerdict(stream, times[i], verdicts[i], batch ? i : -1, &result_json))
+    if (EncodeVerdict(shard, stream, times[i], verdicts[i], batch ? i : -1, &result_json))
       Publish(stream.key, result_json, PublishedMessage::kResult);
-    PublishIncidentEvent(stream, times[i], verdicts[i]);
+    PublishIncidentEvent(shard, stream, times[i], verdicts[i]);
   }
 }
 
-bool Daemon::Impl::EncodeVerdict(Stream& stream, double t, const Verdict& v, int batch_row,
-                                 std::string* out) {
+bool Daemon::Impl::EncodeVerdict(Shard& shard, Stream& stream, double t, const Verdict& v,
+                                 int batch_row, std::string* out) {
+  auto& top_features = shard.top_features;
   const bool scoring = v.state == StreamState::kScoring;
   if (!scoring && !config.daemon.publish_learning) return false;
   ScoredVector result;
@@ -1079,7 +1361,8 @@ bool Daemon::Impl::EncodeVerdict(Stream& stream, double t, const Verdict& v, int
   return true;
 }
 
-void Daemon::Impl::PublishIncidentEvent(Stream& stream, double t, const Verdict& v) {
+void Daemon::Impl::PublishIncidentEvent(Shard& shard, Stream& stream, double t, const Verdict& v) {
+  std::string& event_json = shard.event_json;
   if (v.transition.type != IncidentTransitionType::kNone) {
     const TrackedIncident& incident = v.transition.incident;
     IncidentEvent event;
@@ -1100,10 +1383,9 @@ void Daemon::Impl::PublishIncidentEvent(Stream& stream, double t, const Verdict&
 
 void Daemon::Impl::Reject(RejectReason reason, std::string_view detail, std::string_view key) {
   metrics.CountRejected(reason);
-  bool& logged = rejection_logged[static_cast<std::size_t>(reason)];
+  const bool logged = rejection_logged[static_cast<std::size_t>(reason)].exchange(true);
   const std::string_view label = RejectReasonLabel(reason);
   if (!logged) {
-    logged = true;
     spdlog::warn(
         "rejected an ingest message{}{}: {} ({}); further {} rejections are logged at "
         "debug level",
@@ -1116,6 +1398,7 @@ void Daemon::Impl::Reject(RejectReason reason, std::string_view detail, std::str
 
 void Daemon::Impl::Publish(std::string_view key, const std::string& body, PublishedMessage message,
                            int64_t results) {
+  MutexLock lock(&publish_mutex);
   try {
     // Never blocks. XPUB_NODROP checks every matching subscriber's queue before the first frame
     // and counts whole messages, so a message goes to every matching subscriber or to none, and
@@ -1140,8 +1423,8 @@ void Daemon::Impl::Publish(std::string_view key, const std::string& body, Publis
 // XPUB hands the subscribers' (un)subscriptions to the application; nuwatchd needs none of them,
 // but unread ones would pile up in the socket for as long as subscribers come and go.
 void Daemon::Impl::DrainSubscriptions() {
-  for (int n = 0; n < kMessagesPerTurn; ++n) {
-    if (!publish.recv(extra_message, zmq::recv_flags::dontwait)) return;
+  MutexLock lock(&publish_mutex);
+  while (publish.recv(subscription_message, zmq::recv_flags::dontwait)) {
   }
 }
 
@@ -1158,8 +1441,8 @@ void Daemon::Impl::Record(Stream& stream, double time) {
   }
 }
 
-void Daemon::Impl::FlushRecordings() {
-  for (Stream* s : streams.Sorted()) {
+void Daemon::Impl::FlushRecordings(Shard& shard) {
+  for (Stream* s : shard.streams.Sorted()) {
     if (!s->recorder) continue;
     if (s->recording_skipped > 0) {
       spdlog::warn("recording: stream {}: {} rows not recorded while writes failed", s->key,
@@ -1175,19 +1458,20 @@ void Daemon::Impl::FlushRecordings() {
   }
 }
 
-void Daemon::Impl::NoteFinishedRefit(Stream* stream) {
+void Daemon::Impl::NoteFinishedRefit(Shard& shard, Stream* stream) {
   {
-    MutexLock lock(&finished_mutex);
-    finished_refits.push_back(stream);
+    MutexLock lock(&shard.finished_mutex);
+    shard.finished_refits.push_back(stream);
   }
-  Wake();
+  shard.Wake();
 }
 
-void Daemon::Impl::HandleFinishedRefits() {
+void Daemon::Impl::HandleFinishedRefits(Shard& shard) {
+  std::vector<Stream*>& finished_work = shard.finished_work;
   finished_work.clear();
   {
-    MutexLock lock(&finished_mutex);
-    finished_work.swap(finished_refits);
+    MutexLock lock(&shard.finished_mutex);
+    finished_work.swap(shard.finished_refits);
   }
   for (Stream* s : finished_work) {
     const auto model = s->detector->model();
@@ -1209,11 +1493,11 @@ void Daemon::Impl::HandleFinishedRefits() {
     if (store) s->snapshot_wanted = true;
   }
   for (Stream* s : finished_work) {
-    if (s->snapshot_wanted) TrySnapshot(*s, SnapshotKind::kPeriodic);
+    if (s->snapshot_wanted) TrySnapshot(shard, *s, SnapshotKind::kPeriodic);
   }
 }
 
-bool Daemon::Impl::TrySnapshot(Stream& stream, SnapshotKind kind) {
+bool Daemon::Impl::TrySnapshot(Shard& shard, Stream& stream, SnapshotKind kind) {
   if (!store) return false;
   if (!stream.executor.idle() || stream.write_queued) {
     stream.snapshot_wanted = true;  // taken when the refit has finished, or at the next tick
@@ -1235,7 +1519,7 @@ bool Daemon::Impl::TrySnapshot(Stream& stream, SnapshotKind kind) {
   auto state = std::make_shared<const DetectorState>(stream.detector->ExportState());
   stream.write_queued = true;
   const int64_t vectors = counters.vectors;
-  boost::asio::post(io, [this, &stream, state, vectors, version] {
+  boost::asio::post(io, [this, &shard, &stream, state, vectors, version] {
     FinishedWrite outcome{&stream, vectors, version, {}};
     try {
       store->Save(stream.key, stream.dims, *state);
@@ -1244,20 +1528,22 @@ bool Daemon::Impl::TrySnapshot(Stream& stream, SnapshotKind kind) {
       outcome.error = e.what();
     }
     {
-      MutexLock lock(&writes_mutex);
-      finished_writes.push_back(std::move(outcome));
+      MutexLock lock(&shard.writes_mutex);
+      shard.finished_writes.push_back(std::move(outcome));
     }
-    Wake();
+    shard.Wake();
   });
   return true;
 }
 
-void Daemon::Impl::HandleFinishedWrites() {
+void Daemon::Impl::HandleFinishedWrites(Shard& shard) {
+  std::vector<FinishedWrite>& finished_write_work = shard.finished_write_work;
   finished_write_work.clear();
   {
-    MutexLock lock(&writes_mutex);
-    finished_write_work.swap(finished_writes);
+    MutexLock lock(&shard.writes_mutex);
+    finished_write_work.swap(shard.finished_writes);
   }
+  std::optional<Clock::time_point>& next_write_retry = shard.next_write_retry;
   for (FinishedWrite& w : finished_write_work) {
     Stream& s = *w.stream;
     s.write_queued = false;
@@ -1290,12 +1576,13 @@ void Daemon::Impl::HandleFinishedWrites() {
   }
 }
 
-void Daemon::Impl::RetryFailedWrites() {
+void Daemon::Impl::RetryFailedWrites(Shard& shard) {
+  std::optional<Clock::time_point>& next_write_retry = shard.next_write_retry;
   next_write_retry.reset();
   const Clock::time_point now = Clock::now();
-  for (Stream* s : streams.Sorted()) {
+  for (Stream* s : shard.streams.Sorted()) {
     if (s->write_failures == 0) continue;
-    TrySnapshot(*s, SnapshotKind::kPeriodic);
+    TrySnapshot(shard, *s, SnapshotKind::kPeriodic);
     if (s->write_queued) continue;  // its outcome sets the next retry if it fails again
     // Not due yet, or a refit is running (HandleFinishedRefits takes it then): look again
     // later, at most once a second.
@@ -1304,10 +1591,10 @@ void Daemon::Impl::RetryFailedWrites() {
   }
 }
 
-void Daemon::Impl::PeriodicSnapshot() {
+void Daemon::Impl::PeriodicSnapshot(Shard& shard) {
   int written = 0;
-  for (Stream* s : streams.Sorted()) {
-    written += TrySnapshot(*s, SnapshotKind::kPeriodic) ? 1 : 0;
+  for (Stream* s : shard.streams.Sorted()) {
+    written += TrySnapshot(shard, *s, SnapshotKind::kPeriodic) ? 1 : 0;
     s->metrics.memory_bytes->Set(static_cast<double>(s->detector->MemoryBytes()));
   }
   if (written > 0) spdlog::debug("state: snapshot of {} streams queued", written);
@@ -1337,8 +1624,9 @@ void Daemon::Impl::HandleControl() {
 }
 
 std::vector<StreamStatus> Daemon::Impl::Status() {
+  ShardsPaused paused(*this);
   std::vector<StreamStatus> out;
-  for (Stream* s : streams.Sorted()) {
+  for (Stream* s : AllStreamsSorted()) {
     const Detector& d = *s->detector;
     const auto model = d.model();
     const DetectorCounters c = d.counters();
@@ -1368,19 +1656,22 @@ SnapshotOutcome Daemon::Impl::Snapshot() {
     outcome.error = "no state directory is configured (state.dir or --state-dir)";
     return outcome;
   }
+  ShardsPaused paused(*this);
   WaitForStateWrites();
-  HandleFinishedWrites();  // every stream's write_queued is false now
+  for (auto& shard : shards) HandleFinishedWrites(*shard);  // no write_queued is set now
   std::vector<Stream*> queued;
-  for (Stream* s : streams.Sorted()) {
-    if (!s->executor.idle()) {
-      s->snapshot_wanted = true;
-      ++outcome.pending;
-    } else if (TrySnapshot(*s, SnapshotKind::kRequest)) {
-      queued.push_back(s);
+  for (auto& shard : shards) {
+    for (Stream* s : shard->streams.Sorted()) {
+      if (!s->executor.idle()) {
+        s->snapshot_wanted = true;
+        ++outcome.pending;
+      } else if (TrySnapshot(*shard, *s, SnapshotKind::kRequest)) {
+        queued.push_back(s);
+      }
     }
   }
   WaitForStateWrites();
-  HandleFinishedWrites();
+  for (auto& shard : shards) HandleFinishedWrites(*shard);
   std::string failures;
   for (Stream* s : queued) {
     if (s->write_failures == 0) {
@@ -1409,7 +1700,8 @@ SnapshotOutcome Daemon::Impl::Snapshot() {
 }
 
 std::optional<std::string> Daemon::Impl::Relearn(const std::string& key) {
-  Stream* s = streams.Find(key);
+  ShardsPaused paused(*this);
+  Stream* s = ShardFor(key).streams.Find(key);
   if (s == nullptr) return "unknown stream '" + key + "'";
   s->detector->Relearn();
   s->ratio = AnomalyRatioRing(config.daemon.anomaly_ratio_window);
@@ -1425,21 +1717,26 @@ std::optional<std::string> Daemon::Impl::Relearn(const std::string& key) {
 }
 
 std::optional<std::string> Daemon::Impl::Forget(const std::string& key) {
-  Stream* s = streams.Find(key);
+  ShardsPaused paused(*this);
+  Shard& shard = ShardFor(key);
+  Stream* s = shard.streams.Find(key);
   if (s == nullptr) return "unknown stream '" + key + "'";
-  // No state write of the stream may be queued or running (it holds a reference to it), and its
-  // refit in flight must have finished and reported back (its listener and callback use the
-  // stream) before the stream goes; its report is then dropped from the list the socket thread
-  // reads. Like a snapshot, this holds up scoring for as long as that refit takes.
+  // No state write of the stream may be queued or running (it holds a reference to it) or
+  // reported and not yet taken, and its refit in flight must have finished and reported back
+  // (its listener and callback use the stream) before the stream goes; its report is then
+  // dropped from the shard's list. Like a snapshot, this holds up scoring for as long as that
+  // refit takes.
   WaitForStateWrites();
-  std::unique_ptr<Stream> removed = streams.Remove(key);
+  HandleFinishedWrites(shard);
+  std::unique_ptr<Stream> removed = shard.streams.Remove(key);
   while (!removed->executor.settled()) std::this_thread::sleep_for(std::chrono::milliseconds(1));
   {
-    MutexLock lock(&finished_mutex);
-    std::erase(finished_refits, removed.get());
+    MutexLock lock(&shard.finished_mutex);
+    std::erase(shard.finished_refits, removed.get());
   }
   removed.reset();  // removes its metric series and closes its recording
-  metrics.streams().Set(static_cast<double>(streams.size()));
+  ReleaseStreamPlaces(1);
+  metrics.streams().Set(static_cast<double>(stream_count.load()));
   if (store) {
     std::error_code error;
     std::filesystem::remove(store->PathFor(key), error);
@@ -1498,6 +1795,8 @@ ReloadOutcome Daemon::Impl::Reload() {
   KeepRestartOnly(config.daemon, &next.daemon);
   next.source_path = config.source_path;
 
+  ShardsPaused paused(*this);  // they read `config`, `limits` and their streams' settings
+
   spdlog::set_level(LogLevel(next.daemon.log_level));
   if (auth) {
     spdlog::info("reload: {} client keys admitted from {}", next_allowed.size(),
@@ -1508,7 +1807,8 @@ ReloadOutcome Daemon::Impl::Reload() {
   snapshot_interval_seconds = next.daemon.snapshot_interval_seconds;
   const bool new_ratio_window =
       next.daemon.anomaly_ratio_window != config.daemon.anomaly_ratio_window;
-  for (Stream* s : streams.Sorted()) {
+  const std::vector<Stream*> all = AllStreamsSorted();
+  for (Stream* s : all) {
     if (new_ratio_window) {
       s->ratio = AnomalyRatioRing(next.daemon.anomaly_ratio_window);
       s->metrics.anomaly_ratio->Set(0);
@@ -1543,7 +1843,7 @@ ReloadOutcome Daemon::Impl::Reload() {
   spdlog::info(
       "reload: applied {}: {} of {} streams take new detector settings at their next "
       "refit",
-      config.source_path, outcome.streams_updated, streams.size());
+      config.source_path, outcome.streams_updated, all.size());
   return outcome;
 }
 

@@ -1,9 +1,17 @@
 // nuwatchd as a library class, so that tests run the whole service in-process with real sockets.
 //
-// Threads: one socket thread owns every ZeroMQ socket (ingest PULL and SUB, the result PUB, the
-// control REP) and an eventfd that other threads use to wake it; it polls them with zmq::poll,
-// decodes, scores (Detector::Observe), publishes and answers control requests. Refits run on a
-// Boost.Asio thread_pool of daemon.refit_threads threads (RefitPool). One Boost.Asio io_context
+// Threads: one socket thread owns the ingest PULL and SUB sockets, the control REP socket and an
+// eventfd that other threads use to wake it; it polls them with zmq::poll, checks each ingest
+// message's frames and hands the message (moved, not copied) over an inproc PUSH/PULL pair to the
+// scoring thread that owns its stream (daemon.scoring_threads, default one per core; chosen by a
+// hash of the key, so a stream's messages are scored in the order they arrived), and answers
+// control requests, holding every scoring thread between two messages while it does. Each scoring
+// thread owns its streams outright: it decodes, scores (Detector::Observe, ObserveBatch), keeps
+// the incident state, updates the stream's metrics, records, and publishes on the result XPUB
+// socket, which the scoring threads share under a mutex taken once per published message.
+// Refits run on a Boost.Asio thread_pool of daemon.refit_threads threads (RefitPool), at a lower
+// priority than scoring; a finished refit is reported to its stream's scoring thread. One
+// Boost.Asio io_context
 // thread runs the signal handlers (SIGTERM and SIGINT stop, SIGHUP reloads; only with
 // handle_signals), the snapshot timer, the recording flush timer and the state-file writes, so
 // that disk latency never stalls scoring. The prometheus-cpp Exposer serves /metrics from its own
@@ -16,7 +24,7 @@
 //   listening publish=ENDPOINT
 //   listening control=ENDPOINT
 //   listening metrics=HOST:PORT    the actual port
-//   ready streams=N                after the lines above; N streams were restored
+//   ready streams=N scoring_threads=M   after the lines above; N streams were restored
 //   stopping: took N queued ingest messages   at a stop, after the ingest sockets were drained
 //   stopping: N state files written           or, per failed stream, "stopping: stream KEY: the
 //                                  state file could not be written: REASON"

@@ -137,6 +137,15 @@ const Setting<S> kDaemonKeys[] = {
      .unit = "threads",
      .bounds = AtLeast(1),
      .reload = kRestart},
+    {.section = "daemon",
+     .name = "scoring_threads",
+     .member = &S::scoring_threads,
+     .doc = "Threads that score vectors; each owns a share of the streams (a stream always "
+            "belongs to one thread, so its vectors are scored in order) and scores them without "
+            "locks. 0: one per core.",
+     .unit = "threads",
+     .bounds = AtLeast(0),
+     .reload = kRestart},
     {.section = "ingest",
      .name = "endpoints",
      .member = &S::ingest_endpoints,

@@ -60,6 +60,7 @@ struct DaemonSettings {
   // [daemon]
   std::string log_level = "info";  // log_level: trace, debug, info, warn, error, critical, off
   int refit_threads = 1;           // refit_threads
+  int scoring_threads = 0;         // scoring_threads (0 = one per core)
   // [limits] (the wire bounds are daemon/protocol/PROTOCOL.md §7's)
   int64_t max_streams = 1000;                // max_streams
   int max_dims = 256;                        // max_dims, 1..65535

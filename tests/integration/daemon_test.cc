@@ -18,6 +18,7 @@
 #include <sys/wait.h>
 #include <unistd.h>
 
+#include <algorithm>
 #include <atomic>
 #include <cerrno>
 #include <chrono>
@@ -28,10 +29,12 @@
 #include <fstream>
 #include <functional>
 #include <iostream>
+#include <map>
 #include <new>
 #include <nlohmann/json.hpp>
 #include <optional>
 #include <random>
+#include <set>
 #include <sstream>
 #include <string>
 #include <thread>
@@ -46,8 +49,9 @@
 
 extern char** environ;
 
-// Counting the allocations of the daemon's socket thread (named "nuwatchd-socket" by daemon.cc):
-// while g_count_socket_thread_allocations is set, every operator new on that thread is counted.
+// Counting the allocations of the daemon's socket thread and scoring threads (named
+// "nuwatchd-socket" and "nuwatchd-scoreN" by daemon.cc): while g_count_socket_thread_allocations
+// is set, every operator new on those threads is counted.
 namespace {
 std::atomic<bool> g_count_socket_thread_allocations{false};
 std::atomic<long> g_socket_thread_allocations{0};
@@ -56,7 +60,7 @@ void CountIfSocketThread() {
   if (!g_count_socket_thread_allocations.load(std::memory_order_relaxed)) return;
   char name[32] = {};
   pthread_getname_np(pthread_self(), name, sizeof name);
-  if (std::strcmp(name, "nuwatchd-socket") == 0) g_socket_thread_allocations.fetch_add(1);
+  if (std::strncmp(name, "nuwatchd-s", 10) == 0) g_socket_thread_allocations.fetch_add(1);
 }
 }  // namespace
 
@@ -419,7 +423,7 @@ TEST(Daemon, LearnsThenScoresAndPublishesOneResultPerVector) {
   EXPECT_EQ(status["model_version"], scored["model_version"]);
 }
 
-TEST(Daemon, SteadyStateScoringAllocatesNothingOnTheSocketThread) {
+TEST(Daemon, SteadyStateScoringAllocatesNothingOnTheSocketOrScoringThreads) {
   // design.md: "Per-vector work allocates nothing in the steady state". Binary payloads (the
   // JSON form may grow its scratch), vectors inside the envelope (explaining an anomaly
   // allocates), no refits (refit_every = 0), no state directory: receive, decode, score, update
@@ -444,6 +448,80 @@ TEST(Daemon, SteadyStateScoringAllocatesNothingOnTheSocketThread) {
   for (int i = 0; i < 200; ++i) ASSERT_EQ(client.ReceiveResultFor("pump-01")["state"], "scoring");
   g_count_socket_thread_allocations = false;
   EXPECT_EQ(g_socket_thread_allocations.load(), 0);
+}
+
+// The names of this process's threads (/proc/self/task/*/comm; proc(5)).
+std::multiset<std::string> ThreadNames() {
+  std::multiset<std::string> names;
+  for (const auto& task : fs::directory_iterator("/proc/self/task")) {
+    std::ifstream comm(task.path() / "comm");
+    std::string name;
+    if (std::getline(comm, name)) names.insert(name);
+  }
+  return names;
+}
+
+TEST(Daemon, StreamsSpreadOverScoringThreadsKeepTheirOrder) {
+  // issue 9 §1: a message for a stream always reaches the thread that owns it, in order. Twelve
+  // streams over three scoring threads (more than this machine's cores, so that the threads
+  // interleave), single vectors and batches mixed: every result arrives, each stream's results in
+  // the order of their times.
+  auto options = Options();
+  options.config.daemon.scoring_threads = 3;
+  auto daemon = Start(std::move(options));
+  const std::multiset<std::string> threads = ThreadNames();
+  EXPECT_EQ(threads.count("nuwatchd-score0") + threads.count("nuwatchd-score1") +
+                threads.count("nuwatchd-score2"),
+            3u);
+  EXPECT_EQ(threads.count("nuwatchd-score3"), 0u);
+  Client client(daemon->endpoints());
+  constexpr int kStreams = 12;
+  constexpr int kRounds = 60;
+  const std::vector<std::vector<double>> vectors = NormalVectors(3 * kRounds, 29);
+  std::map<std::string, int> expected;
+  std::string binary;
+  for (int round = 0; round < kRounds; ++round) {
+    for (int s = 0; s < kStreams; ++s) {
+      const std::string key = "unit-" + std::to_string(s);
+      const double t = 1000 + 30 * round;
+      if (s % 3 == 0) {
+        // A batch of three (binary, §6): t, t + 10, t + 20.
+        const std::vector<double> times = {t, t + 10, t + 20};
+        std::vector<double> values;
+        for (int i = 0; i < 3; ++i) {
+          values.insert(values.end(), vectors[3 * round + i].begin(), vectors[3 * round + i].end());
+        }
+        EncodeBinaryPayload(times, values.data(), 2, Dtype::kFloat64, &binary);
+        client.SendFrames({key, binary});
+        expected[key] += 3;
+      } else {
+        client.Send(key, t, vectors[3 * round]);
+        expected[key] += 1;
+      }
+    }
+  }
+  int total = 0;
+  for (const auto& [key, n] : expected) total += n;
+  std::map<std::string, std::vector<double>> times;
+  for (int received = 0; received < total;) {
+    std::optional<Message> m = client.Receive();
+    ASSERT_TRUE(m) << received << " of " << total << " results before the deadline";
+    if (m->key == "probe" || m->body.contains("event")) continue;
+    times[m->key].push_back(m->body["t"].get<double>());
+    ++received;
+  }
+  for (const auto& [key, n] : expected) {
+    const std::vector<double>& got = times[key];
+    ASSERT_EQ(got.size(), static_cast<std::size_t>(n)) << key;
+    EXPECT_TRUE(std::is_sorted(got.begin(), got.end()) &&
+                std::adjacent_find(got.begin(), got.end()) == got.end())
+        << key << ": results out of order";
+  }
+  // Every stream is tracked once, whichever thread owns it.
+  const json status = client.Status();
+  int streams = 0;
+  for (const json& s : status["streams"]) streams += s["stream"] == "probe" ? 0 : 1;
+  EXPECT_EQ(streams, kStreams);
 }
 
 TEST(Daemon, WithoutIncludeLearningOnlyScoredVectorsArePublished) {

@@ -68,6 +68,7 @@ TEST(ConfigDefaults, AreTheSpecifiedValues) {
   EXPECT_EQ(d.snapshot_interval_seconds, 300);
   EXPECT_EQ(d.log_level, "info");
   EXPECT_EQ(d.refit_threads, 1);
+  EXPECT_EQ(d.scoring_threads, 0);
   EXPECT_EQ(d.max_streams, 1000);
   EXPECT_EQ(d.max_dims, 256);
   EXPECT_EQ(d.max_message_bytes, 4u * 1024 * 1024);
@@ -863,7 +864,8 @@ TEST(DaemonKeys, ARestartOnlyChangeIsReportedAndKeptAtItsRunningValue) {
   }
   EXPECT_EQ(restart,
             (std::set<std::string>{
-                "daemon.refit_threads", "ingest.endpoints", "ingest.subscribe",
+                "daemon.refit_threads", "daemon.scoring_threads", "ingest.endpoints",
+                "ingest.subscribe",
                 "ingest.receive_high_water_mark", "publish.endpoint", "publish.high_water_mark",
                 "control.endpoint", "control.allow_unauthenticated_tcp",
                 "auth.server_secret_key_file", "metrics.listen", "metrics.basic_auth_user",
@@ -887,8 +889,8 @@ TEST(KnownConfigKeys, AreUniqueAndCoverEverySection) {
         "detector.feature_names", "stream.match"}) {
     EXPECT_TRUE(unique.count(key)) << key;
   }
-  // 26 daemon settings, 32 DetectorOptions members, and stream.match.
-  EXPECT_EQ(keys.size(), 59u);
+  // 27 daemon settings, 32 DetectorOptions members, and stream.match.
+  EXPECT_EQ(keys.size(), 60u);
 }
 
 // Issue 10 §1: the control socket relearns, forgets and reloads, so a TCP control socket needs
