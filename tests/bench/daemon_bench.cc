@@ -4,21 +4,25 @@
 // Two targets are started as child processes on loopback ephemeral ports:
 //   relay     this program with --relay: a PULL socket forwarding every message as it is to a
 //             PUB socket, the bare transport cost of a PUSH/PULL + PUB/SUB hop;
-//   nuwatchd  the daemon, one stream warmed up first (d = 16, window 2000, nu chosen for about
-//             150 support vectors, refit_every = 0 so that only scoring runs during the phases).
+//   nuwatchd  the daemon, --streams streams warmed up first (d = 16, window 2000, nu chosen for
+//             about 150 support vectors, refit_every = 0 so that only scoring runs during the
+//             phases), daemon.scoring_threads = --scoring-threads (0: one per core). Messages go
+//             to the streams in turn, so that every scoring thread has work.
 // For each message form (1 vector JSON, 1 vector binary, 64 vectors binary; frames made by the
 // protocol library's encoders) the phases alternate relay and nuwatchd (--rounds times), each
 // sending as fast as PUSH takes them for --seconds and waiting until every message was handled.
 // Per form it reports the vectors/s through each (vectors sent / time from the first send to the
 // last result received), their ratio, results received by the subscriber against vectors accepted
 // (nuwatch_vectors_total, from /metrics) and drops counted (nuwatch_results_dropped_total), the
-// CPU seconds per vector of the nuwatchd process and of its socket thread (from /proc, so that a
+// CPU seconds per vector of the nuwatchd process, of its socket thread and of its scoring threads
+// together (from /proc, so that a
 // busy machine stretches wall time but not these), and then p50/p99 ingest-to-result latency at
 // half of nuwatchd's maximum rate for that form (the result's `t` is the send time).
 // --shutdown-streams N: a second nuwatchd gets N streams (one vector each, window 2000, a state
 // directory) and the time from SIGTERM to its exit is measured, with its RSS per stream.
 //
 // Usage: nuwatch_daemon_bench [--nuwatchd PATH] [--seconds 1.0] [--rounds 2] [--json]
+//                             [--streams 4] [--scoring-threads 0] [--publish-batches]
 //                             [--shutdown-streams 0] [--shutdown-without-state]
 #include <CLI/CLI.hpp>
 #include <algorithm>
@@ -56,8 +60,16 @@ using testing_data::SumOfSeries;
 
 constexpr int kDims = 16;
 constexpr int kWindow = 2000;
-constexpr int kHighWaterMark = 10000;  // both targets, both directions: the daemon's default
-const char* const kKey = "bench-01";
+constexpr int kHighWaterMark = 10000;     // both targets, both directions: the daemon's default
+const char* const kKeyPrefix = "bench-";  // the streams' keys: bench-0, bench-1, ...
+int g_streams = 4;                        // --streams
+int g_scoring_threads = 0;                // --scoring-threads
+
+std::vector<std::string> Keys() {
+  std::vector<std::string> keys;
+  for (int i = 0; i < g_streams; ++i) keys.push_back(kKeyPrefix + std::to_string(i));
+  return keys;
+}
 
 double WallSeconds() {
   return std::chrono::duration<double>(std::chrono::system_clock::now().time_since_epoch()).count();
@@ -201,7 +213,8 @@ struct Target {
   std::string name;
   std::unique_ptr<ChildProcess> process;
   ReadyEndpoints endpoints;
-  pid_t socket_thread = 0;  // nuwatchd: the thread that receives, scores and publishes
+  pid_t socket_thread = 0;             // nuwatchd: the thread that receives and hands over
+  std::vector<pid_t> scoring_threads;  // nuwatchd: the threads that score and publish
   zmq::socket_t push, sub;
   bool daemon() const { return name == "nuwatchd"; }
 };
@@ -222,14 +235,14 @@ void Connect(zmq::context_t& context, Target& t) {
   t.push.set(zmq::sockopt::linger, 0);
   t.sub.set(zmq::sockopt::rcvhwm, kHighWaterMark);
   t.sub.set(zmq::sockopt::linger, 0);
-  t.sub.set(zmq::sockopt::subscribe, kKey);
+  t.sub.set(zmq::sockopt::subscribe, kKeyPrefix);
   t.push.connect(t.endpoints.ingest.at(0));
   t.sub.connect(t.endpoints.publish);
 }
 
 // Counters read around a phase.
 struct Reading {
-  double vectors = 0, dropped = 0, cpu_process = 0, cpu_thread = 0;
+  double vectors = 0, dropped = 0, cpu_process = 0, cpu_thread = 0, cpu_scoring = 0;
 };
 Reading Read(const Target& t) {
   Reading r;
@@ -239,12 +252,13 @@ Reading Read(const Target& t) {
   r.vectors = SumOfSeries(text, "nuwatch_vectors_total");
   r.dropped = SumOfSeries(text, "nuwatch_results_dropped_total");
   r.cpu_thread = t.socket_thread > 0 ? CpuSeconds(t.process->pid(), t.socket_thread) : 0;
+  for (pid_t tid : t.scoring_threads) r.cpu_scoring += CpuSeconds(t.process->pid(), tid);
   return r;
 }
 
 struct Phase {
   double vectors_sent = 0, vectors_accepted = 0, results = 0, dropped = 0, seconds = 0;
-  double cpu_process = 0, cpu_thread = 0;
+  double cpu_process = 0, cpu_thread = 0, cpu_scoring = 0;
   std::vector<double> latencies;  // seconds, latency phases only
   double rate() const { return seconds > 0 ? vectors_sent / seconds : 0; }
 };
@@ -254,6 +268,7 @@ struct Phase {
 Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) {
   Frames frames(form);
   const int per = VectorsPerMessage(form);
+  const std::vector<std::string> keys = Keys();
   const Reading before = Read(t);
   std::atomic<bool> sending{true};
   std::atomic<double> results{0};
@@ -300,7 +315,8 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
       }
     }
     const std::string& payload = frames.Next(WallSeconds());
-    t.push.send(zmq::buffer(kKey, std::strlen(kKey)), zmq::send_flags::sndmore);
+    const std::string& key = keys[static_cast<std::size_t>(messages) % keys.size()];
+    t.push.send(zmq::buffer(key), zmq::send_flags::sndmore);
     t.push.send(zmq::buffer(payload), zmq::send_flags::none);
     ++messages;
   }
@@ -326,6 +342,7 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
   phase.seconds = last_result.load() - start;
   phase.cpu_process = after.cpu_process - before.cpu_process;
   phase.cpu_thread = after.cpu_thread - before.cpu_thread;
+  phase.cpu_scoring = after.cpu_scoring - before.cpu_scoring;
   return phase;
 }
 
@@ -360,6 +377,11 @@ nu = 0.05
 window = 2000
 refit_every = 0
 )" + extra;
+  {
+    const std::string section = "[daemon]\n";
+    text.insert(text.find(section) + section.size(),
+                "scoring_threads = " + std::to_string(g_scoring_threads) + "\n");
+  }
   if (g_publish_batches) {
     const std::string section = "[publish]\n";
     text.insert(text.find(section) + section.size(), "batches = true\n");
@@ -394,31 +416,40 @@ json Control(zmq::context_t& context, const std::string& endpoint, const std::st
   return json::parse(reply.to_string());
 }
 
-// Sends normal vectors until the stream scores; returns its support vectors.
+// Sends normal vectors (the same to every stream) until every stream scores; returns the first
+// stream's support vectors.
 int WarmUp(zmq::context_t& context, Target& t) {
   const std::vector<double> values = NormalValues(kWindow, 3);
   std::string payload;
   double now = WallSeconds() - kWindow;
+  const std::vector<std::string> keys = Keys();
   for (int i = 0; i < kWindow; ++i) {
     const double time = now + i;
     EncodeBinaryPayload(std::span<const double>(&time, 1),
                         values.data() + static_cast<std::size_t>(i) * kDims, kDims, Dtype::kFloat64,
                         &payload);
-    t.push.send(zmq::buffer(kKey, std::strlen(kKey)), zmq::send_flags::sndmore);
-    t.push.send(zmq::buffer(payload), zmq::send_flags::none);
+    for (const std::string& key : keys) {
+      t.push.send(zmq::buffer(key), zmq::send_flags::sndmore);
+      t.push.send(zmq::buffer(payload), zmq::send_flags::none);
+    }
   }
-  const auto until = Clock::now() + std::chrono::seconds(120);
+  const auto until = Clock::now() + std::chrono::seconds(300);
   while (Clock::now() < until) {
     std::this_thread::sleep_for(std::chrono::milliseconds(100));
     zmq::message_t frame;
     while (t.sub.recv(frame, zmq::recv_flags::dontwait)) {
     }
     const json status = Control(context, t.endpoints.control, R"({"command":"status"})");
+    int scoring = 0;
+    int support_vectors = 0;
     for (const json& s : status["streams"]) {
-      if (s["stream"] == kKey && s["state"] == "scoring") return s["support_vectors"];
+      if (s["state"] != "scoring") continue;
+      if (s["stream"] == keys.front()) support_vectors = s["support_vectors"];
+      ++scoring;
     }
+    if (scoring == g_streams) return support_vectors;
   }
-  throw std::runtime_error("the stream never left its warm-up");
+  throw std::runtime_error("the streams never left their warm-up");
 }
 
 double RssBytes(pid_t pid) {
@@ -506,13 +537,19 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
   // Named once it runs, which is after the ready file is written: look for it after the warm-up.
   daemon.socket_thread = testing_data::ThreadNamed(daemon.process->pid(), "nuwatchd-socket");
   if (daemon.socket_thread == 0) throw std::runtime_error("no thread named nuwatchd-socket");
+  for (int i = 0;; ++i) {
+    const pid_t tid = testing_data::ThreadNamed(
+        daemon.process->pid(), ("nuwatchd-score" + std::to_string(i)).substr(0, 15));
+    if (tid == 0) break;
+    daemon.scoring_threads.push_back(tid);
+  }
   // PUB/SUB subscriptions take effect asynchronously: the relay's is in place once a message
   // sent through it arrives.
   {
     Frames frames(Form::kBinary1);
     std::vector<zmq::pollitem_t> items = {{relay.sub.handle(), 0, ZMQ_POLLIN, 0}};
     do {
-      relay.push.send(zmq::buffer(kKey, std::strlen(kKey)), zmq::send_flags::sndmore);
+      relay.push.send(zmq::buffer(Keys().front()), zmq::send_flags::sndmore);
       relay.push.send(zmq::buffer(frames.Next(WallSeconds())), zmq::send_flags::none);
     } while (zmq::poll(items, std::chrono::milliseconds(50)) == 0);
     zmq::message_t frame;
@@ -526,12 +563,14 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
               {"rounds", rounds},
               {"cores", std::thread::hardware_concurrency()},
               {"publish_batches", g_publish_batches},
+              {"streams", g_streams},
+              {"scoring_threads", daemon.scoring_threads.size()},
               {"forms", json::array()}};
   for (Form form : {Form::kJson1, Form::kBinary1, Form::kBinary64}) {
     // Best of the rounds for each target (the machine is shared); CPU per vector summed over all.
     Phase best_relay, best_daemon;
     double daemon_sent = 0, daemon_accepted = 0, daemon_results = 0, daemon_dropped = 0;
-    double cpu_process = 0, cpu_thread = 0, relay_cpu = 0, relay_vectors = 0;
+    double cpu_process = 0, cpu_thread = 0, cpu_scoring = 0, relay_cpu = 0, relay_vectors = 0;
     for (int r = 0; r < rounds; ++r) {
       const Phase a = RunPhase(relay, form, seconds, 0, false);
       const Phase b = RunPhase(daemon, form, seconds, 0, false);
@@ -545,6 +584,7 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
       daemon_dropped += b.dropped;
       cpu_process += b.cpu_process;
       cpu_thread += b.cpu_thread;
+      cpu_scoring += b.cpu_scoring;
     }
     // Latency at half of nuwatchd's best rate, through both.
     const double message_rate = 0.5 * best_daemon.rate() / VectorsPerMessage(form);
@@ -567,6 +607,7 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
          {"nuwatchd_unaccounted", daemon_accepted - daemon_results - daemon_dropped},
          {"nuwatchd_cpu_us_per_vector_process", 1e6 * cpu_process / daemon_accepted},
          {"nuwatchd_cpu_us_per_vector_socket_thread", 1e6 * cpu_thread / daemon_accepted},
+         {"nuwatchd_cpu_us_per_vector_scoring_threads", 1e6 * cpu_scoring / daemon_accepted},
          {"bare_cpu_us_per_vector", 1e6 * relay_cpu / relay_vectors},
          {"latency_rate_vectors_per_second", message_rate * VectorsPerMessage(form)},
          {"nuwatchd_latency_p50_ms", 1e3 * Percentile(lat_daemon.latencies, 0.5)},
@@ -588,8 +629,10 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
   }
   std::printf(
       "nuwatchd against bare ZeroMQ (PUSH/PULL + PUB/SUB relay), d = %d, %d support "
-      "vectors, best of %d x %.1f s, load average %.1f -> %.1f\n\n",
-      kDims, support_vectors, rounds, seconds, load_before, LoadAverage());
+      "vectors, %d streams, %zu scoring threads, best of %d x %.1f s, load average %.1f -> "
+      "%.1f\n\n",
+      kDims, support_vectors, g_streams, daemon.scoring_threads.size(), rounds, seconds,
+      load_before, LoadAverage());
   std::printf("%-36s %12s %12s %6s %12s %12s %10s %9s %9s %9s\n", "form", "bare vec/s",
               "nuwatchd v/s", "ratio", "accepted", "received", "dropped", "cpu us/v", "p50 ms",
               "p99 ms");
@@ -604,8 +647,9 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
         f["nuwatchd_latency_p50_ms"].get<double>(), f["nuwatchd_latency_p99_ms"].get<double>());
   }
   std::printf(
-      "\ncpu us/v: CPU time of the whole nuwatchd process per vector accepted (socket "
-      "thread alone in --json); latency at half of nuwatchd's best rate for the form.\n");
+      "\ncpu us/v: CPU time of the whole nuwatchd process per vector accepted (the socket "
+      "thread's and the scoring threads' in --json); latency at half of nuwatchd's best rate for "
+      "the form.\n");
   if (out.contains("shutdown")) std::printf("shutdown: %s\n", out["shutdown"].dump().c_str());
   return 0;
 }
@@ -637,6 +681,12 @@ int main(int argc, char** argv) {
   app.add_flag("--publish-batches", nuwatch::g_publish_batches,
                "configure nuwatchd with publish.batches = true (one result message per ingest "
                "message, PROTOCOL.md §9.4)");
+  app.add_option("--streams", nuwatch::g_streams,
+                 "streams the messages go to in turn (each warmed up first)")
+      ->check(CLI::Range(1, 64));
+  app.add_option("--scoring-threads", nuwatch::g_scoring_threads,
+                 "daemon.scoring_threads of the measured nuwatchd (0: one per core)")
+      ->check(CLI::Range(0, 64));
   app.add_option("--relay", relay_ready, "internal: run as the bare relay")->group("");
   CLI11_PARSE(app, argc, argv);
   try {
