@@ -10,6 +10,7 @@
 #include <sys/un.h>
 #include <unistd.h>
 
+#include <algorithm>
 #include <array>
 #include <atomic>
 #include <boost/asio/executor_work_guard.hpp>
@@ -264,6 +265,7 @@ struct Shard {
   std::vector<FinishedWrite> finished_write_work;
   // The earliest moment a failed write is due again; none while no write has failed.
   std::optional<Clock::time_point> next_write_retry;
+  Clock::time_point turn_time{};  // when the current turn of messages began (Stream::last_seen)
 
   // Hot-path buffers, reused so that steady-state processing does not allocate.
   zmq::message_t key_message;
@@ -373,6 +375,9 @@ struct Daemon::Impl final : ControlCommands {
   void HandleFinishedRefits(Shard& shard);
   void PeriodicSnapshot(Shard& shard);
   void FlushRecordings(Shard& shard);
+  // Forgets the shard's streams that sent nothing for limits.idle_expiry_seconds (a stream with a
+  // refit or a state write in flight waits for the next scan).
+  void ExpireIdleStreams(Shard& shard);
   // Why a snapshot is taken: a periodic or refit-driven one skips an unchanged stream and waits
   // for a failing stream's backoff; a request writes every stream now; the final one at shutdown
   // writes every changed or failing stream without waiting.
@@ -433,6 +438,7 @@ struct Daemon::Impl final : ControlCommands {
   int shards_held GUARDED_BY(pause_mutex) = 0;
   bool hold_shards GUARDED_BY(pause_mutex) = false;
   Clock::time_point last_subscription_drain{};
+  Clock::time_point next_expiry_scan{};
 
   boost::asio::io_context io;
   boost::asio::executor_work_guard<boost::asio::io_context::executor_type> io_work{
@@ -766,6 +772,7 @@ void Daemon::Impl::RestoreStreams() {
       spdlog::info("state: restored stream={} state={} model_version={} window={} from {}",
                    file.stream_key, StreamStateName(stream->detector->state()),
                    stream->seen_model_version, stream->detector->window_size(), entry.path);
+      stream->last_seen = Clock::now();  // restored streams get the whole expiry from the start
       shard.streams.Add(std::move(stream));
       ++stream_count;
       ++restored_streams;
@@ -939,7 +946,10 @@ void Daemon::Impl::RunShard(Shard& shard) {
       if (shard.next_write_retry && Clock::now() >= *shard.next_write_retry) {
         RetryFailedWrites(shard);
       }
-      if ((items[1].revents & ZMQ_POLLIN) && !ReceiveShardInput(shard)) break;
+      if (items[1].revents & ZMQ_POLLIN) {
+        shard.turn_time = Clock::now();
+        if (!ReceiveShardInput(shard)) break;
+      }
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
       if (e.num() == ETERM) break;
@@ -1000,6 +1010,14 @@ void Daemon::Impl::Loop() {
       }
       if (flush_due.exchange(false)) {
         for (auto& shard : shards) shard->Post([this, s = shard.get()] { FlushRecordings(*s); });
+      }
+      if (const double expiry = config.daemon.idle_expiry_seconds;
+          expiry > 0 && Clock::now() >= next_expiry_scan) {
+        // A quarter of the expiry between scans, so a stream goes at most 25 % late.
+        next_expiry_scan =
+            Clock::now() + std::chrono::duration_cast<Clock::duration>(
+                               std::chrono::duration<double>(std::clamp(expiry / 4, 1.0, 60.0)));
+        for (auto& shard : shards) shard->Post([this, s = shard.get()] { ExpireIdleStreams(*s); });
       }
       if (items[1].revents & ZMQ_POLLIN) HandleControl();
       for (std::size_t i = 0; i < ingest.size(); ++i) {
@@ -1189,10 +1207,12 @@ void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_
     }
     metrics.streams().Set(static_cast<double>(stream_count.load()));
     spdlog::info("new stream={} dims={}", stream_key, p.dims);
+    stream->last_seen = shard.turn_time;
   } else if (p.dims != stream->dims) {
     Reject(RejectReason::kDimsMismatch, "the stream has vectors of another length", key);
     return;
   }
+  stream->last_seen = shard.turn_time;
   if (p.count == 1) {
     ProcessVector(shard, *stream, p, 0);
   } else {
@@ -1598,6 +1618,47 @@ void Daemon::Impl::PeriodicSnapshot(Shard& shard) {
     s->metrics.memory_bytes->Set(static_cast<double>(s->detector->MemoryBytes()));
   }
   if (written > 0) spdlog::debug("state: snapshot of {} streams queued", written);
+}
+
+void Daemon::Impl::ExpireIdleStreams(Shard& shard) {
+  const double expiry = config.daemon.idle_expiry_seconds;
+  if (expiry <= 0) return;
+  // Reports first, so that a stream whose write or refit has just finished can go now.
+  HandleFinishedRefits(shard);
+  HandleFinishedWrites(shard);
+  const Clock::time_point now = Clock::now();
+  const auto limit =
+      std::chrono::duration_cast<Clock::duration>(std::chrono::duration<double>(expiry));
+  std::vector<std::string> idle;
+  for (Stream* s : shard.streams.Sorted()) {
+    // A refit in flight or a write queued still uses the stream: the next scan takes it.
+    if (now - s->last_seen >= limit && s->executor.settled() && !s->write_queued) {
+      idle.push_back(s->key);
+    }
+  }
+  for (const std::string& key : idle) {
+    std::unique_ptr<Stream> removed = shard.streams.Remove(key);
+    {
+      MutexLock lock(&shard.finished_mutex);
+      std::erase(shard.finished_refits, removed.get());
+    }
+    removed.reset();  // removes its metric series and closes its recording
+    ReleaseStreamPlaces(1);
+    metrics.streams_expired().Increment();
+    if (store) {
+      // On the io thread, in order with the writes: a write of a new stream with this key,
+      // queued later, is not undone.
+      boost::asio::post(io, [path = store->PathFor(key), key] {
+        std::error_code error;
+        std::filesystem::remove(path, error);
+        if (error)
+          spdlog::error("expired: stream {}: its state file stays: {}", key, error.message());
+      });
+    }
+    spdlog::info("expired: stream={} sent no vector for {} s; forgotten with its state", key,
+                 expiry);
+  }
+  if (!idle.empty()) metrics.streams().Set(static_cast<double>(stream_count.load()));
 }
 
 void Daemon::Impl::WaitForStateWrites() {

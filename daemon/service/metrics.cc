@@ -141,6 +141,10 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
                                       1e-6, 2.5e-6, 5e-6, 1e-5, 2.5e-5, 5e-5, 1e-4, 2.5e-4, 5e-4,
                                       1e-3, 2.5e-3, 5e-3, 1e-2});
   streams_ = &Build(BuildGauge(), "nuwatch_streams", "Streams tracked.", r).Add({});
+  streams_expired_ =
+      &Build(BuildCounter(), "nuwatch_streams_expired_total",
+             "Streams forgotten after limits.idle_expiry_seconds without a vector.", r)
+           .Add({});
   refits_queued_ = &Build(BuildGauge(), "nuwatch_refits_queued",
                           "Refits waiting for a refit thread (at most one per stream).", r)
                         .Add({});

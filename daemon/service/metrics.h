@@ -25,6 +25,8 @@
 //                                                      the vector that triggered the model's refit
 //   nuwatch_stream_memory_bytes{stream}       gauge    window, model and solution bytes
 //   nuwatch_streams                           gauge    streams tracked
+//   nuwatch_streams_expired_total             counter  streams forgotten after
+//                                                      limits.idle_expiry_seconds without a vector
 //   nuwatch_refits_queued                     gauge    refits waiting for a refit thread (at most
 //                                                      one per stream: later ones are coalesced)
 //   nuwatch_results_dropped_total{reason}     counter  results not handed to the result socket:
@@ -132,6 +134,7 @@ class DaemonMetrics {
   prometheus::Histogram& score_duration() const { return *score_duration_; }
   prometheus::Gauge& streams() const { return *streams_; }
   prometheus::Gauge& refits_queued() const { return *refits_queued_; }
+  prometheus::Counter& streams_expired() const { return *streams_expired_; }
   // nuwatch_results_dropped_total or nuwatch_incident_events_dropped_total, by reason.
   prometheus::Counter& publish_dropped(PublishedMessage message, PublishDropReason reason) const {
     return *publish_dropped_[static_cast<std::size_t>(message)][static_cast<std::size_t>(reason)];
@@ -166,6 +169,7 @@ class DaemonMetrics {
   prometheus::Histogram* score_duration_;
   prometheus::Gauge* streams_;
   prometheus::Gauge* refits_queued_;
+  prometheus::Counter* streams_expired_;
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;
   std::array<std::array<prometheus::Counter*, kAuthRefusalCount>, kAuthSocketCount> auth_refused_{};

@@ -74,6 +74,9 @@ struct Stream {
   MatrixD batch_rows;
   std::vector<double> batch_times;
   std::vector<Verdict> batch_verdicts;
+  // When its last message arrived (its scoring thread's clock at the turn it was taken), for
+  // limits.idle_expiry_seconds.
+  std::chrono::steady_clock::time_point last_seen{};
   uint64_t seen_model_version = 0;  // the model version the gauges describe
   int64_t seen_coalesced = 0;       // counters().refits_coalesced already counted
   std::set<std::string> warned;     // refit warnings already logged for this stream

@@ -276,6 +276,15 @@ const Setting<S> kDaemonKeys[] = {
      .unit = "streams",
      .bounds = AtLeast(1),
      .reload = kNow},
+    {.section = "limits",
+     .name = "idle_expiry_seconds",
+     .member = &S::idle_expiry_seconds,
+     .doc = "A stream that sends no vector for this long is forgotten as the forget control "
+            "command does (model, window, metric series and state file go), so that its place "
+            "under max_streams comes back; its next vector starts it afresh. 0: never.",
+     .unit = "seconds",
+     .bounds = {.min = 0, .max = 1e9},
+     .reload = kNow},
     // The wire bounds of daemon/protocol/PROTOCOL.md §7: the binary dims field is 16 bits, and
     // 28 bytes is the smallest binary message.
     {.section = "limits",

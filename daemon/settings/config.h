@@ -63,6 +63,7 @@ struct DaemonSettings {
   int scoring_threads = 0;         // scoring_threads (0 = one per core)
   // [limits] (the wire bounds are daemon/protocol/PROTOCOL.md §7's)
   int64_t max_streams = 1000;                // max_streams
+  double idle_expiry_seconds = 0;            // idle_expiry_seconds (0 = never)
   int max_dims = 256;                        // max_dims, 1..65535
   std::size_t max_message_bytes = 4u << 20;  // max_message_bytes, >= 28
   int max_vectors_per_message = 4096;        // max_vectors_per_message, >= 1

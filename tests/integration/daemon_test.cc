@@ -1103,6 +1103,41 @@ std::vector<std::string> DaemonArgs(const TempDir& dir, const std::string& confi
           dir / "state", "--log-level",       "info",      "--ready-file", dir / "ready.json"};
 }
 
+TEST(Daemon, AStreamIdleForLongerThanTheExpiryIsForgottenWithItsStateFile) {
+  // issue 10 section 3: idle streams give their place back (config/REFERENCE.md,
+  // limits.idle_expiry_seconds). A stream that keeps sending stays.
+  TempDir dir;
+  auto options = Options("", "[limits]\nidle_expiry_seconds = 1\nmax_streams = 3\n");
+  options.config.daemon.state_dir = dir / "state";
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  client.Send("idle-1", 1000, {5, 100});
+  client.ReceiveFor("idle-1");
+  ASSERT_EQ(client.Control(R"({"command":"snapshot"})")["ok"], true);
+  const StateStore store(dir / "state");
+  ASSERT_TRUE(fs::exists(store.PathFor("idle-1")));
+  // busy-1 sends every 100 ms for up to 10 s, until idle-1 is gone.
+  double t = 1000;
+  bool gone = false;
+  for (int i = 0; i < 100 && !gone; ++i) {
+    client.Send("busy-1", t += 10, {5, 100});
+    client.ReceiveFor("busy-1");
+    std::this_thread::sleep_for(std::chrono::milliseconds(100));
+    gone = client.StreamStatus("idle-1").is_null();
+  }
+  ASSERT_TRUE(gone) << "idle-1 was not forgotten within 10 s of an expiry of 1 s";
+  EXPECT_FALSE(client.StreamStatus("busy-1").is_null()) << "a stream that sends must stay";
+  EXPECT_GE(MetricValue(daemon->MetricsText(), "nuwatch_streams_expired_total").value_or(0), 1);
+  // The state file goes on the io thread, after any write queued before it.
+  EXPECT_TRUE(PollUntil([&] { return !fs::exists(store.PathFor("idle-1")); }));
+  // Its place came back (max_streams = 3: busy-1, probe or its successor, and this one), and it
+  // starts afresh.
+  client.Send("idle-1", 5000, {5, 100});
+  const json result = client.ReceiveResultFor("idle-1");
+  EXPECT_EQ(result["state"], "learning");
+  EXPECT_EQ(client.StreamStatus("idle-1")["vectors"], 1);
+}
+
 TEST(Nuwatchd, ResumesScoringAfterKill9FromItsPeriodicSnapshot) {
   TempDir dir;
   const std::string config = dir / "nuwatchd.toml";
