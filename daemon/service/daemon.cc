@@ -765,6 +765,7 @@ void Daemon::Impl::RestoreStreams() {
       stream->detector->ImportState(file.state);
       const auto model = stream->detector->model();
       stream->seen_model_version = model ? model->version() : 0;
+      stream->model_seen_at = Clock::now();
       stream->seen_coalesced = stream->detector->counters().refits_coalesced;
       stream->snapshot_vectors = stream->detector->counters().vectors;
       stream->snapshot_model_version = stream->seen_model_version;
@@ -1290,11 +1291,14 @@ void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> 
       stream.flooding = false;
     }
     if (flagged > 0) m.anomalies->Increment(static_cast<double>(flagged));
-    m.model_age_seconds->Set(last_time - detector.model_time());
+    m.model_data_age_seconds->Set(last_time - detector.model_time());
+    const Clock::time_point now = Clock::now();
     if (model_version != stream.seen_model_version) {
       stream.seen_model_version = model_version;
+      stream.model_seen_at = now;
       stream.RefreshSlowGauges();
     }
+    m.model_age_seconds->Set(std::chrono::duration<double>(now - stream.model_seen_at).count());
   }
   m.window_vectors->Set(static_cast<double>(detector.window_size()));
   const int64_t coalesced = detector.counters().refits_coalesced;
@@ -1495,7 +1499,9 @@ void Daemon::Impl::HandleFinishedRefits(Shard& shard) {
   }
   for (Stream* s : finished_work) {
     const auto model = s->detector->model();
-    s->seen_model_version = model ? model->version() : 0;
+    const uint64_t version = model ? model->version() : 0;
+    if (version != s->seen_model_version) s->model_seen_at = Clock::now();
+    s->seen_model_version = version;
     s->RefreshSlowGauges();
     const RefitReport report = s->detector->last_refit();
     if (report.ok && !report.discarded) {

@@ -115,10 +115,15 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
   incidents_open_ = &Build(BuildGauge(), "nuwatch_incidents_open",
                            "1 while the stream has an open incident, else 0.", r);
   model_age_ = &Build(BuildGauge(), "nuwatch_model_age_seconds",
-                      "Data time since the model was fitted: the latest vector's timestamp minus "
-                      "the timestamp of the vector that triggered the model's refit (0 while "
-                      "learning).",
+                      "Wall-clock seconds since the daemon put the stream's current model in "
+                      "place (a model restored from its state file: since the restart), as of the "
+                      "stream's latest scored message (0 while learning).",
                       r);
+  model_data_age_ = &Build(BuildGauge(), "nuwatch_model_data_age_seconds",
+                           "Data time since the model was fitted: the latest vector's timestamp "
+                           "minus the timestamp of the vector that triggered the model's refit "
+                           "(0 while learning).",
+                           r);
   memory_ = &Build(BuildGauge(), "nuwatch_stream_memory_bytes",
                    "Bytes held for the stream: window, model, last solution, incident ring.", r);
 
@@ -206,6 +211,7 @@ StreamMetrics DaemonMetrics::AddStream(const std::string& stream) {
   m.window_vectors = &window_vectors_->Add(labels);
   m.incidents_open = &incidents_open_->Add(labels);
   m.model_age_seconds = &model_age_->Add(labels);
+  m.model_data_age_seconds = &model_data_age_->Add(labels);
   m.memory_bytes = &memory_->Add(labels);
   for (std::size_t i = 0; i < kRefitResultCount; ++i) {
     m.refits[i] =
@@ -226,6 +232,7 @@ void DaemonMetrics::RemoveStream(const StreamMetrics& m) {
   if (m.window_vectors) window_vectors_->Remove(m.window_vectors);
   if (m.incidents_open) incidents_open_->Remove(m.incidents_open);
   if (m.model_age_seconds) model_age_->Remove(m.model_age_seconds);
+  if (m.model_data_age_seconds) model_data_age_->Remove(m.model_data_age_seconds);
   if (m.memory_bytes) memory_->Remove(m.memory_bytes);
   for (prometheus::Counter* c : m.refits)
     if (c) refits_->Remove(c);

@@ -21,7 +21,11 @@
 //   nuwatch_score_duration_seconds            histogram  wall time of scoring one vector
 //   nuwatch_rejected_messages_total{reason}   counter  rejected ingest messages (PROTOCOL.md §8)
 //   nuwatch_incidents_open{stream}            gauge    1 while the stream has an open incident
-//   nuwatch_model_age_seconds{stream}         gauge    data time: latest vector's t minus the t of
+//   nuwatch_model_age_seconds{stream}         gauge    wall-clock seconds since the daemon put
+//                                                      the current model in place (a restored
+//                                                      model: since the restart); set with each
+//                                                      scored message
+//   nuwatch_model_data_age_seconds{stream}    gauge    data time: latest vector's t minus the t of
 //                                                      the vector that triggered the model's refit
 //   nuwatch_stream_memory_bytes{stream}       gauge    window, model and solution bytes
 //   nuwatch_streams                           gauge    streams tracked
@@ -107,6 +111,7 @@ struct StreamMetrics {
   prometheus::Gauge* window_vectors = nullptr;
   prometheus::Gauge* incidents_open = nullptr;
   prometheus::Gauge* model_age_seconds = nullptr;
+  prometheus::Gauge* model_data_age_seconds = nullptr;
   prometheus::Gauge* memory_bytes = nullptr;
   std::array<prometheus::Counter*, kRefitResultCount> refits{};
 
@@ -163,6 +168,7 @@ class DaemonMetrics {
   prometheus::Family<prometheus::Counter>* refits_;
   prometheus::Family<prometheus::Gauge>* incidents_open_;
   prometheus::Family<prometheus::Gauge>* model_age_;
+  prometheus::Family<prometheus::Gauge>* model_data_age_;
   prometheus::Family<prometheus::Gauge>* memory_;
   std::array<prometheus::Counter*, 256> rejected_{};
   prometheus::Histogram* refit_duration_;

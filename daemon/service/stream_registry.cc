@@ -65,7 +65,10 @@ void Stream::RefreshSlowGauges() {
   metrics.window_vectors->Set(static_cast<double>(detector->window_size()));
   metrics.memory_bytes->Set(static_cast<double>(detector->MemoryBytes()));
   metrics.incidents_open->Set(detector->open_incident() ? 1 : 0);
-  if (!model) metrics.model_age_seconds->Set(0);
+  if (!model) {
+    metrics.model_age_seconds->Set(0);
+    metrics.model_data_age_seconds->Set(0);
+  }
 }
 
 Stream* StreamRegistry::Find(std::string_view key) const {

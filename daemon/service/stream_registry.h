@@ -78,9 +78,12 @@ struct Stream {
   // limits.idle_expiry_seconds.
   std::chrono::steady_clock::time_point last_seen{};
   uint64_t seen_model_version = 0;  // the model version the gauges describe
-  int64_t seen_coalesced = 0;       // counters().refits_coalesced already counted
-  std::set<std::string> warned;     // refit warnings already logged for this stream
-  bool flooding = false;            // more than half flagged: logged once until it recovers
+  // When the stream's thread first saw that model (restored: at the restart), for
+  // nuwatch_model_age_seconds.
+  std::chrono::steady_clock::time_point model_seen_at{};
+  int64_t seen_coalesced = 0;    // counters().refits_coalesced already counted
+  std::set<std::string> warned;  // refit warnings already logged for this stream
+  bool flooding = false;         // more than half flagged: logged once until it recovers
   // Snapshots. snapshot_vectors and snapshot_model_version describe what the stream's state file
   // holds: restored at start-up, then changed only when a write has succeeded (fsynced and
   // renamed), so that status never counts vectors the disk does not hold. snapshot_wanted: one is

@@ -742,7 +742,11 @@ TEST(Daemon, ExposesThePrometheusMetricsUnderTheirNames) {
   EXPECT_TRUE(MetricValue(metrics, "nuwatch_anomalies_total" + s));
   EXPECT_TRUE(MetricValue(metrics, "nuwatch_anomaly_ratio" + s));
   EXPECT_EQ(MetricValue(metrics, "nuwatch_incidents_open" + s), 0);
-  EXPECT_TRUE(MetricValue(metrics, "nuwatch_model_age_seconds" + s));
+  // Wall clock since the warm-up model was put in place: at least 0, less than the test has run;
+  // data time: the latest t (1000 + 10 per vector) minus the t of the vector that triggered it.
+  EXPECT_GE(MetricValue(metrics, "nuwatch_model_age_seconds" + s).value_or(-1), 0);
+  EXPECT_LT(MetricValue(metrics, "nuwatch_model_age_seconds" + s).value_or(1e9), 60);
+  EXPECT_GE(MetricValue(metrics, "nuwatch_model_data_age_seconds" + s).value_or(-1), 0);
   EXPECT_GT(MetricValue(metrics, "nuwatch_stream_memory_bytes" + s).value_or(0), 0);
   EXPECT_EQ(MetricValue(metrics, "nuwatch_refit_duration_seconds_count"), 1);
   EXPECT_EQ(MetricValue(metrics, "nuwatch_score_duration_seconds_count").value_or(0),
