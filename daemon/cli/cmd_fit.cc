@@ -2,14 +2,20 @@
 // refit of the daemon, replay and tune makes (FitWindow: transforms, scaler, kernel width, solver,
 // budget, calibration by cross-fitting), on the whole file as one window.
 #include <algorithm>
+#include <chrono>
 #include <cmath>
+#include <cstdio>
 #include <iostream>
 #include <limits>
 #include <memory>
 #include <numeric>
+#include <stop_token>
+#include <string>
+#include <thread>
 
 #include "cli/cli_util.h"
 #include "cli/detector_flags.h"
+#include "cli/progress_line.h"
 #include "formats/timestamps.h"
 #include "nuwatch/detector.h"
 #include "nuwatch/model_file.h"
@@ -54,6 +60,37 @@ struct FitArgs {
   DetectorKeyFlags keys;
 };
 
+// While one long step runs (reading the file, or the fit: one solver run with no progress of its
+// own to report), "fit: STEP, 12 s" on a terminal's stderr, so that a long fit shows it is alive;
+// erased when the ticker is destroyed. On a stderr that is no terminal it starts no thread.
+class ElapsedTicker {
+ public:
+  explicit ElapsedTicker(std::string step) {
+    ProgressLine line = ProgressLine::ForStderr();
+    if (!line.enabled()) return;
+    thread_ = std::jthread(
+        [line = std::move(line), step = std::move(step)](std::stop_token stop) mutable {
+          const auto started = ProgressLine::Clock::now();
+          while (!stop.stop_requested()) {
+            const auto now = ProgressLine::Clock::now();
+            char text[200];
+            std::snprintf(text, sizeof text, "fit: %s, %.0f s", step.c_str(),
+                          std::chrono::duration<double>(now - started).count());
+            line.Draw(text, now);
+            // Short naps, so that the line is erased promptly once the step is over.
+            for (int nap = 0; nap < 5 && !stop.stop_requested(); ++nap)
+              std::this_thread::sleep_for(std::chrono::milliseconds(50));
+          }
+          line.Clear();
+        });
+  }
+  // Stops and joins the thread (std::jthread), which erases the line.
+  ~ElapsedTicker() = default;
+
+ private:
+  std::jthread thread_;
+};
+
 double TimeBound(const std::string& text, const char* flag, double none) {
   if (text.empty()) return none;
   const auto t = ParseTimestamp(text);
@@ -66,8 +103,13 @@ double TimeBound(const std::string& text, const char* flag, double none) {
 void RunFit(const FitArgs& a) {
   DetectorOptions options = FitDefaults();
   a.keys.ApplyTo(options);
+  FeatureFile all_rows;
+  {
+    const ElapsedTicker ticker("reading " + a.input);
+    all_rows = ReadFeatureFile(a.input);
+  }
   const FeatureFile file =
-      SelectRows(ReadFeatureFile(a.input), a.stream, TimeBound(a.from, "--from", -INFINITY),
+      SelectRows(std::move(all_rows), a.stream, TimeBound(a.from, "--from", -INFINITY),
                  TimeBound(a.until, "--until", INFINITY));
   options.feature_names = file.names;
   options.window = std::max<int64_t>(2, file.values.rows());
@@ -94,6 +136,8 @@ void RunFit(const FitArgs& a) {
   std::iota(ids.begin(), ids.end(), uint64_t{1});
   WindowFitResult fit;
   try {
+    const ElapsedTicker ticker("fitting " + std::to_string(rows.rows()) + " vectors of " +
+                               std::to_string(rows.cols()) + " features");
     fit = FitWindow(rows, ids, times, options, nullptr, 1);
   } catch (const PreconditionError& e) {
     throw CommandError(a.input + ": " + e.what());

@@ -1,14 +1,14 @@
 // nuwatch replay: a recorded stream file through the same detector code as the daemon, refits
 // inline, so that two runs give byte-identical output.
-#include <unistd.h>
-
 #include <chrono>
 #include <cmath>
+#include <cstdio>
 #include <iostream>
 #include <memory>
 
 #include "cli/cli_util.h"
 #include "cli/detector_flags.h"
+#include "cli/progress_line.h"
 #include "offline/replay.h"
 
 namespace nuwatch::cli {
@@ -28,17 +28,21 @@ void RunReplay(const ReplayArgs& a) {
     throw CommandError(e.what());
   }
   if (!recording.cut_last_line.empty()) std::cerr << "warning: " << recording.cut_last_line << "\n";
-  const bool show_progress = ::isatty(STDERR_FILENO) && recording.rows() > 50000;
+  // Rows replayed so far, on a terminal only (ProgressLine), erased before the summary.
+  ProgressLine progress_line = ProgressLine::ForStderr();
   const auto started = std::chrono::steady_clock::now();
   auto progress = [&](int64_t done) {
-    if (!show_progress) return;
-    const double elapsed =
-        std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+    const auto now = std::chrono::steady_clock::now();
+    if (!progress_line.Due(now)) return;
+    const double elapsed = std::chrono::duration<double>(now - started).count();
     const double total = static_cast<double>(recording.rows());
-    std::fprintf(stderr, "\rreplay: %lld / %lld rows (%.0f%%), %.0f s elapsed, ~%.0f s left   ",
-                 static_cast<long long>(done), static_cast<long long>(recording.rows()),
-                 100.0 * done / total, elapsed, done > 0 ? elapsed * (total - done) / done : 0.0);
-    if (done == recording.rows()) std::fprintf(stderr, "\n");
+    char text[160];
+    std::snprintf(
+        text, sizeof text, "replay: %lld / %lld rows (%.0f%%), %.0f s elapsed, ~%.0f s left",
+        static_cast<long long>(done), static_cast<long long>(recording.rows()),
+        100.0 * static_cast<double>(done) / total, elapsed,
+        done > 0 ? elapsed * (total - static_cast<double>(done)) / static_cast<double>(done) : 0.0);
+    progress_line.Draw(text, now);
   };
   std::vector<ReplayRow> rows;
   std::vector<std::string> warnings;
@@ -49,6 +53,7 @@ void RunReplay(const ReplayArgs& a) {
   } catch (const PreconditionError& e) {
     throw CommandError(std::string(e.what()));
   }
+  progress_line.Clear();
   OutputFile out(a.output);
   std::FILE* f = out.get();
   std::fputs("time,stream,state,decision,p_value,anomaly,incident,support_vectors,model_version\n",
