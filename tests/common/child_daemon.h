@@ -22,6 +22,8 @@
 #include <string>
 #include <vector>
 
+#include "common/read_file.h"
+
 extern char** environ;
 
 namespace nuwatch::testing_data {
@@ -66,13 +68,6 @@ class ChildProcess {
   pid_t pid_ = -1;
   bool exited_ = false;
 };
-
-inline std::string ReadWholeFile(const std::string& path) {
-  std::ifstream in(path);
-  std::ostringstream text;
-  text << in.rdbuf();
-  return text.str();
-}
 
 // The endpoints of a ready file (PROTOCOL.md §11.5). Throws nlohmann::json::exception when the
 // file is not (yet) a complete one.

@@ -12,19 +12,14 @@
 #include <sstream>
 #include <string>
 
+#include "common/read_file.h"
+
 namespace nuwatch::testing_data {
 
 struct ProgramRun {
   int exit_code = -1;  // -1 when the program did not exit normally
   std::string out, err;
 };
-
-inline std::string ReadWholeFile(const std::string& path) {
-  std::ifstream in(path, std::ios::binary);
-  std::ostringstream s;
-  s << in.rdbuf();
-  return s.str();
-}
 
 // Runs `program args` through the shell with stdin from /dev/null (no test waits on a terminal),
 // stdout and stderr captured in files of `dir` (overwritten by the next run there).
