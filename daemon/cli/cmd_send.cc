@@ -7,6 +7,13 @@
 // arrives (`nuwatch simulate --live | nuwatch send --input -`): a batch that is not yet full is
 // sent whenever the pipe has nothing more to read at the moment, so batching never holds a live
 // row back waiting for rows that have not been produced yet.
+//
+// ZeroMQ's PUSH socket says nothing about what the daemon did with a message. With --metrics,
+// send reads the daemon's rejection counters (nuwatch_rejected_messages_total, PROTOCOL.md §8)
+// before the first message and again once the daemon has processed the last one, prints the
+// increase by reason and exits 3 when it is not zero. The counters are the daemon's, not this
+// sender's: a rejection of another sender's message in the same interval counts too, and the
+// output says so whenever it reports one.
 #include <poll.h>
 #include <unistd.h>
 
@@ -18,6 +25,7 @@
 #include <cstdio>
 #include <cstring>
 #include <limits>
+#include <map>
 #include <memory>
 #include <optional>
 #include <span>
@@ -31,6 +39,8 @@
 #include "cli/cli_util.h"
 #include "cli/client_keys.h"
 #include "cli/commands.h"
+#include "cli/daemon_metrics.h"
+#include "cli/progress_line.h"
 #include "formats/csv_reader.h"
 #include "formats/stream_file.h"
 #include "formats/timestamps.h"
@@ -51,6 +61,10 @@ struct SendArguments {
   std::string dtype = "f64";
   std::string batch = "1";
   std::string linger = "5s";
+  std::string metrics;
+  std::string metrics_user;
+  std::string metrics_password_file;
+  std::string metrics_wait = "10s";
   ClientKeyFlags keys;
 };
 
@@ -66,6 +80,9 @@ struct SendSettings {
   std::chrono::milliseconds linger{5000};
   std::string linger_text = "5s";
   ClientKeyFlags keys;
+  std::optional<MetricsClient> metrics;  // with --metrics
+  std::chrono::milliseconds metrics_wait{10000};
+  std::string metrics_wait_text = "10s";
 };
 
 volatile std::sig_atomic_t stop_requested = 0;
@@ -130,6 +147,18 @@ SendSettings ToSettings(const SendArguments& args) {
   settings.linger = std::chrono::milliseconds(static_cast<int64_t>(std::llround(linger * 1000)));
   settings.linger_text = args.linger;
   settings.keys = args.keys;
+  if (args.metrics.empty()) {
+    if (!args.metrics_user.empty() || !args.metrics_password_file.empty())
+      throw CommandError(
+          std::string(args.metrics_user.empty() ? "--metrics-password-file" : "--metrics-user") +
+          " needs --metrics HOST:PORT");
+  } else {
+    settings.metrics.emplace(args.metrics, args.metrics_user, args.metrics_password_file);
+  }
+  const double wait = DurationFlag("--metrics-wait", args.metrics_wait, 3600, LowBound::kExclusive);
+  settings.metrics_wait =
+      std::chrono::milliseconds(static_cast<int64_t>(std::llround(wait * 1000)));
+  settings.metrics_wait_text = args.metrics_wait;
   return settings;
 }
 
@@ -315,43 +344,36 @@ class Sender {
   int64_t messages_sent_ = 0;
 };
 
-// A progress line on stderr, redrawn at most twice a second, when stderr is a terminal.
+// The vectors sent so far, on a terminal's stderr (ProgressLine), erased before the summary.
 class Progress {
  public:
-  explicit Progress(int64_t total) : total_(total), enabled_(::isatty(STDERR_FILENO) == 1) {}
+  explicit Progress(int64_t total) : total_(total) {}
 
   void Update(Sender& sender) {
-    if (!enabled_) return;
     const auto now = Clock::now();
-    if (now - last_ < std::chrono::milliseconds(500)) return;
-    last_ = now;
+    if (!line_.Due(now)) return;
     const double elapsed = std::chrono::duration<double>(now - started_).count();
     const int64_t done = sender.vectors_sent();
+    const double rate = elapsed > 0 ? static_cast<double>(done) / elapsed : 0.0;
+    char text[160];
     if (total_ > 0) {
-      std::fprintf(stderr, "\rnuwatch send: %lld / %lld vectors (%.0f%%), %.0f/s   ",
-                   static_cast<long long>(done), static_cast<long long>(total_),
-                   100.0 * static_cast<double>(done) / static_cast<double>(total_),
-                   elapsed > 0 ? static_cast<double>(done) / elapsed : 0.0);
+      std::snprintf(text, sizeof text, "nuwatch send: %lld / %lld vectors (%.0f%%), %.0f/s",
+                    static_cast<long long>(done), static_cast<long long>(total_),
+                    100.0 * static_cast<double>(done) / static_cast<double>(total_), rate);
     } else {
-      std::fprintf(stderr, "\rnuwatch send: %lld vectors of %zu streams, %.0f/s   ",
-                   static_cast<long long>(done), sender.streams(),
-                   elapsed > 0 ? static_cast<double>(done) / elapsed : 0.0);
+      std::snprintf(text, sizeof text, "nuwatch send: %lld vectors of %zu streams, %.0f/s",
+                    static_cast<long long>(done), sender.streams(), rate);
     }
-    shown_ = true;
+    line_.Draw(text, now);
   }
 
-  // Ends the progress line, if one was drawn, so that the summary starts on a line of its own.
-  void Finish() {
-    if (shown_) std::fputc('\n', stderr);
-    shown_ = false;
-  }
+  // Erases the progress line, so that the summary starts on a clean line.
+  void Finish() { line_.Clear(); }
 
  private:
   int64_t total_;
-  bool enabled_;
-  bool shown_ = false;
+  ProgressLine line_ = ProgressLine::ForStderr();
   Clock::time_point started_ = Clock::now();
-  Clock::time_point last_ = Clock::now();
 };
 
 // Returns false when interrupted.
@@ -516,13 +538,92 @@ void PrintSummary(const SendSettings& settings, const SendSummary& s, double ela
   }
 }
 
+// With --metrics, once the messages have left: waits until the daemon has processed them, then
+// reports what it rejected since `before`. Throws CommandStatusError (exit 3) when that is not
+// nothing, CommandError when the counters did not settle within --metrics-wait.
+//
+// "Processed" is read off the daemon's counters: vectors processed (nuwatch_vectors_total over
+// the streams) plus rejected messages. They settle when they have not changed for kQuiet and
+// could account for every vector sent (a rejected message holds at most --batch vectors); with
+// nothing rejected and every vector counted there is nothing left to wait for.
+void ReportRejections(const SendSettings& settings, const SendSummary& summary,
+                      const DaemonCounters& before) {
+  constexpr auto kQuiet = std::chrono::milliseconds(500);
+  constexpr auto kPollEvery = std::chrono::milliseconds(100);
+  const MetricsClient& metrics = *settings.metrics;
+  const auto deadline = Clock::now() + settings.metrics_wait;
+  const auto scrape_timeout = std::max(settings.metrics_wait, std::chrono::milliseconds(1000));
+  DaemonCounters after = metrics.Read(scrape_timeout);
+  auto last_change = Clock::now();
+  std::map<std::string, double> rejected;
+  double processed_vectors = 0;
+  double rejected_messages = 0;
+  while (true) {
+    rejected = RejectedSince(before, after);
+    rejected_messages = 0;
+    for (const auto& [reason, count] : rejected) rejected_messages += count;
+    processed_vectors = std::max(0.0, after.vectors_processed - before.vectors_processed);
+    const auto sent = static_cast<double>(summary.vectors);
+    const bool could_be_complete = processed_vectors + rejected_messages * settings.batch >= sent;
+    const auto now = Clock::now();
+    if (rejected_messages == 0 && processed_vectors >= sent) break;
+    if (could_be_complete && now - last_change >= kQuiet) break;
+    if (now >= deadline) {
+      throw CommandError("--metrics-wait " + settings.metrics_wait_text + " ran out before " +
+                         metrics.host_port() + "'s counters accounted for the " +
+                         std::to_string(summary.vectors) + " vectors sent (so far " +
+                         FormatNumber(processed_vectors) + " vectors processed, " +
+                         FormatNumber(rejected_messages) + " messages rejected" +
+                         (rejected.empty() ? "" : ": " + FormatByReason(rejected)) +
+                         "); the daemon may still be busy: allow longer with --metrics-wait");
+    }
+    std::this_thread::sleep_for(kPollEvery);
+    DaemonCounters next = metrics.Read(scrape_timeout);
+    if (next.vectors_processed != after.vectors_processed ||
+        next.rejected_by_reason != after.rejected_by_reason)
+      last_change = Clock::now();
+    after = std::move(next);
+  }
+  if (rejected.empty()) {
+    std::fprintf(stderr, "nuwatch send: %s rejected no messages during this send\n",
+                 metrics.host_port().c_str());
+    return;
+  }
+  throw CommandStatusError(
+      kExitDaemonRejected,
+      "the daemon at " + metrics.host_port() + " rejected " + FormatNumber(rejected_messages) +
+          " message(s) during this send: " + FormatByReason(rejected) +
+          " (nuwatch_rejected_messages_total, reasons in PROTOCOL.md §8; the counters are "
+          "daemon-wide: another sender's rejections in the same interval count too)");
+}
+
+// What the daemon's counters read before the first message, or nothing without --metrics.
+std::optional<DaemonCounters> CountersBefore(const SendSettings& settings) {
+  if (!settings.metrics) return std::nullopt;
+  return settings.metrics->Read(std::max(settings.metrics_wait, std::chrono::milliseconds(1000)));
+}
+
+void FinishSend(const SendSettings& settings, const SendSummary& summary, double elapsed,
+                const std::optional<DaemonCounters>& before) {
+  PrintSummary(settings, summary, elapsed);
+  if (!before) return;
+  if (summary.interrupted) {
+    std::fprintf(stderr,
+                 "nuwatch send: interrupted, so the daemon's rejection counters were not read "
+                 "again\n");
+    return;
+  }
+  ReportRejections(settings, summary, *before);
+}
+
 void RunSend(const SendArguments& args) {
   const SendSettings settings = ToSettings(args);
   StopSignals signals;
   if (settings.input == "-") {
+    const std::optional<DaemonCounters> before = CountersBefore(settings);
     double elapsed = 0;
     const SendSummary summary = SendStdin(settings, &elapsed);
-    PrintSummary(settings, summary, elapsed);
+    FinishSend(settings, summary, elapsed, before);
     return;
   }
 
@@ -561,6 +662,7 @@ void RunSend(const SendArguments& args) {
     }
   }
 
+  const std::optional<DaemonCounters> before = CountersBefore(settings);
   Sender sender(settings, dims);
   const auto started = Clock::now();
   Progress progress(recording.rows());
@@ -573,7 +675,7 @@ void RunSend(const SendArguments& args) {
   summary.messages = sender.messages_sent();
   const double elapsed = std::chrono::duration<double>(Clock::now() - started).count();
   summary.delivered = sender.Close(summary.interrupted);
-  PrintSummary(settings, summary, elapsed);
+  FinishSend(settings, summary, elapsed, before);
 }
 
 void AddSendCommand(CLI::App& app) {
@@ -616,7 +718,31 @@ void AddSendCommand(CLI::App& app) {
                    "How long to wait at the end for queued messages to reach the daemon")
       ->type_name("DURATION")
       ->capture_default_str();
+  command
+      ->add_option("--metrics", args->metrics,
+                   "nuwatchd's metrics endpoint (its metrics.listen): read its rejection counters "
+                   "before and after sending, report by reason what it rejected meanwhile, and "
+                   "exit 3 if it rejected anything (the counters are daemon-wide: other senders' "
+                   "rejections count too). Without it, nothing tells what the daemon rejected")
+      ->type_name("HOST:PORT");
+  command
+      ->add_option("--metrics-user", args->metrics_user,
+                   "User for the metrics endpoint's basic authentication (metrics.basic_auth_user)")
+      ->type_name("USER");
+  command
+      ->add_option("--metrics-password-file", args->metrics_password_file,
+                   "File whose first line is that user's password")
+      ->type_name("FILE");
+  command
+      ->add_option("--metrics-wait", args->metrics_wait,
+                   "With --metrics: how long at most to wait after the last message for the "
+                   "daemon's counters to account for every vector sent (exit 1 if they do not)")
+      ->type_name("DURATION")
+      ->capture_default_str();
   AddClientKeyFlags(command, &args->keys);
+  command->footer(
+      "Exit status: 0 sent (and, with --metrics, nothing rejected); 1 bad input or a failed send; "
+      "3 with --metrics, the daemon rejected messages during the send.\n");
   command->callback([args] { RunSend(*args); });
 }
 

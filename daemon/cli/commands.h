@@ -17,6 +17,24 @@ class CommandError : public std::runtime_error {
   using std::runtime_error::runtime_error;
 };
 
+// A failure that has its own exit status, so that a script can tell it from bad input (1):
+// `nuwatch send --metrics` exits 3 when the daemon rejected messages (kExitDaemonRejected).
+// main prints the message as for CommandError and exits with `exit_status`.
+class CommandStatusError : public CommandError {
+ public:
+  CommandStatusError(int exit_status, const std::string& message)
+      : CommandError(message), exit_status_(exit_status) {}
+  int exit_status() const { return exit_status_; }
+
+ private:
+  int exit_status_;
+};
+
+// The exit statuses of `nuwatch`: 0 success, 1 bad input or a failed operation (CommandError),
+// 3 the daemon rejected messages a `send --metrics` sent (2 stays unused: nuwatchd's status for
+// a configuration it refuses).
+inline constexpr int kExitDaemonRejected = 3;
+
 using CommandAdder = void (*)(CLI::App& app);
 
 struct CommandRegistration {

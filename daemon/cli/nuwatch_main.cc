@@ -61,6 +61,11 @@ int main(int argc, char** argv) {
     for (const CLI::App* sub : app.get_subcommands()) name += " " + sub->get_name();
     std::cerr << name << ": " << e.what() << " (see --help)\n";
     return 1;
+  } catch (const nuwatch::cli::CommandStatusError& e) {
+    std::string name = "nuwatch";
+    for (const CLI::App* sub : app.get_subcommands()) name += " " + sub->get_name();
+    std::cerr << name << ": " << e.what() << "\n";
+    return e.exit_status();
   } catch (const std::exception& e) {
     std::string name = "nuwatch";
     for (const CLI::App* sub : app.get_subcommands()) name += " " + sub->get_name();

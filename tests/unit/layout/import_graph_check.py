@@ -39,7 +39,7 @@ THIRD_PARTY = {
     "toml++/": {"settings"},
     "cairo": {"charts"},
     "zmq": {"protocol", "service", "cli"},
-    "boost/": {"service", "concurrency"},
+    "boost/": {"service", "concurrency", "cli"},
     "prometheus/": {"service"},
     "spdlog/": {"service", "cli"},
 }
