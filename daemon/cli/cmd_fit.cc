@@ -61,8 +61,9 @@ struct FitArgs {
 };
 
 // While one long step runs (reading the file, or the fit: one solver run with no progress of its
-// own to report), "fit: STEP, 12 s" on a terminal's stderr, so that a long fit shows it is alive;
-// erased when the ticker is destroyed. On a stderr that is no terminal it starts no thread.
+// own to report), "fit: STEP, 12 s" on a terminal's stderr from its first second on, so that a
+// long fit shows it is alive; erased when the ticker is destroyed. On a stderr that is no terminal
+// it starts no thread.
 class ElapsedTicker {
  public:
   explicit ElapsedTicker(std::string step) {
@@ -73,6 +74,11 @@ class ElapsedTicker {
           const auto started = ProgressLine::Clock::now();
           while (!stop.stop_requested()) {
             const auto now = ProgressLine::Clock::now();
+            // A step shorter than a second gets no line: it would only flicker.
+            if (now - started < std::chrono::seconds(1)) {
+              std::this_thread::sleep_for(std::chrono::milliseconds(50));
+              continue;
+            }
             char text[200];
             std::snprintf(text, sizeof text, "fit: %s, %.0f s", step.c_str(),
                           std::chrono::duration<double>(now - started).count());
