@@ -49,6 +49,7 @@ std::string ShortIpcEndpoint() {
 class SendMetrics : public nuwatch::testing_data::ProgramTest {
  protected:
   void StartDaemon(const std::string& extra_config = "") {
+    control_ = ShortIpcEndpoint();
     const std::string config = Write("nuwatchd.toml", R"([detector]
 nu = 0.1
 window = 40
@@ -60,7 +61,7 @@ max_streams = 2
 )" + extra_config);
     daemon_ = std::make_unique<ChildProcess>(
         std::vector<std::string>{kNuwatchd, "--config", config, "--ingest", "tcp://127.0.0.1:*",
-                                 "--publish", "tcp://127.0.0.1:*", "--control", ShortIpcEndpoint(),
+                                 "--publish", "tcp://127.0.0.1:*", "--control", control_,
                                  "--metrics", "127.0.0.1:0", "--state-dir", Path("state"),
                                  "--ready-file", Path("ready.json")},
         Path("nuwatchd.log"));
@@ -75,7 +76,8 @@ max_streams = 2
     metrics_ = endpoints.metrics;
   }
   void TearDown() override {
-    daemon_.reset();
+    daemon_.reset();  // SIGKILL: the daemon cannot remove its ipc socket file itself
+    if (!control_.empty()) std::filesystem::remove(control_.substr(std::string("ipc://").size()));
     ProgramTest::TearDown();
   }
 
@@ -111,7 +113,7 @@ max_streams = 2
   }
 
   std::unique_ptr<ChildProcess> daemon_;
-  std::string ingest_, metrics_;
+  std::string ingest_, metrics_, control_;
 };
 
 TEST_F(SendMetrics, ReportsWhatTheDaemonRejectedByReasonAndExits3) {
