@@ -646,7 +646,12 @@ void Daemon::Impl::BindSockets() {
     zmq::socket_t socket(context, zmq::socket_type::pull);
     socket.set(zmq::sockopt::rcvhwm, s.receive_high_water_mark);
     socket.set(zmq::sockopt::maxmsgsize, max_frame);
-    socket.set(zmq::sockopt::linger, 0);
+    // Not 0: when a sender disconnects, libzmq ends its connection's pipe after as many
+    // milliseconds as the receiving socket's linger, dropping what the daemon has not read yet. A
+    // sender that sends and closes at once (its messages are in the kernel's hands) lost them
+    // whenever the daemon was behind; -1 keeps them until they are read. Closing the socket at
+    // the stop still drops at once what is left then (DrainIngest reads it first).
+    socket.set(zmq::sockopt::linger, -1);
     if (auth) auth->Protect(socket, AuthSocket::kIngest, *server_keys);
     endpoints.ingest.push_back(bind(socket, endpoint, "ingest.endpoints"));
     ingest.push_back(std::move(socket));
@@ -655,7 +660,7 @@ void Daemon::Impl::BindSockets() {
     zmq::socket_t socket(context, zmq::socket_type::sub);
     socket.set(zmq::sockopt::rcvhwm, s.receive_high_water_mark);
     socket.set(zmq::sockopt::maxmsgsize, max_frame);
-    socket.set(zmq::sockopt::linger, 0);
+    socket.set(zmq::sockopt::linger, -1);  // as the PULL sockets': keep what a peer left
     socket.set(zmq::sockopt::subscribe, "");
     for (const std::string& endpoint : s.subscribe_endpoints) {
       try {
