@@ -245,7 +245,7 @@ struct Shard {
   const int index;
   StreamRegistry streams;
   zmq::socket_t input;  // PULL, inproc: the socket thread's feed; two frames a message, or one
-                        // empty frame (kShardStop) that ends the thread
+                        // empty frame (the stop marker) that ends the thread
   int wake_fd = -1;
   std::thread thread;
 
@@ -378,6 +378,11 @@ struct Daemon::Impl final : ControlCommands {
   // Forgets the shard's streams that sent nothing for limits.idle_expiry_seconds (a stream with a
   // refit or a state write in flight waits for the next scan).
   void ExpireIdleStreams(Shard& shard);
+  // Destroys a stream taken out of `shard`'s registry: drops its refit report, removes its metric
+  // series, closes its recording and gives its place under limits.max_streams back.
+  // Requires: removed->executor.settled() (nothing of it is in use on a refit thread) and no state
+  // write of it queued or reported and not yet taken.
+  void DropStream(Shard& shard, std::unique_ptr<Stream> removed);
   // Why a snapshot is taken: a periodic or refit-driven one skips an unchanged stream and waits
   // for a failing stream's backoff; a request writes every stream now; the final one at shutdown
   // writes every changed or failing stream without waiting.
@@ -1648,13 +1653,7 @@ void Daemon::Impl::ExpireIdleStreams(Shard& shard) {
     }
   }
   for (const std::string& key : idle) {
-    std::unique_ptr<Stream> removed = shard.streams.Remove(key);
-    {
-      MutexLock lock(&shard.finished_mutex);
-      std::erase(shard.finished_refits, removed.get());
-    }
-    removed.reset();  // removes its metric series and closes its recording
-    ReleaseStreamPlaces(1);
+    DropStream(shard, shard.streams.Remove(key));
     metrics.streams_expired().Increment();
     if (store) {
       // On the io thread, in order with the writes: a write of a new stream with this key,
@@ -1669,7 +1668,16 @@ void Daemon::Impl::ExpireIdleStreams(Shard& shard) {
     spdlog::info("expired: stream={} sent no vector for {} s; forgotten with its state", key,
                  expiry);
   }
-  if (!idle.empty()) metrics.streams().Set(static_cast<double>(stream_count.load()));
+}
+
+void Daemon::Impl::DropStream(Shard& shard, std::unique_ptr<Stream> removed) {
+  {
+    MutexLock lock(&shard.finished_mutex);
+    std::erase(shard.finished_refits, removed.get());
+  }
+  removed.reset();  // removes its metric series and closes its recording
+  ReleaseStreamPlaces(1);
+  metrics.streams().Set(static_cast<double>(stream_count.load()));
 }
 
 void Daemon::Impl::WaitForStateWrites() {
@@ -1802,13 +1810,7 @@ std::optional<std::string> Daemon::Impl::Forget(const std::string& key) {
   HandleFinishedWrites(shard);
   std::unique_ptr<Stream> removed = shard.streams.Remove(key);
   while (!removed->executor.settled()) std::this_thread::sleep_for(std::chrono::milliseconds(1));
-  {
-    MutexLock lock(&shard.finished_mutex);
-    std::erase(shard.finished_refits, removed.get());
-  }
-  removed.reset();  // removes its metric series and closes its recording
-  ReleaseStreamPlaces(1);
-  metrics.streams().Set(static_cast<double>(stream_count.load()));
+  DropStream(shard, std::move(removed));
   if (store) {
     std::error_code error;
     std::filesystem::remove(store->PathFor(key), error);
