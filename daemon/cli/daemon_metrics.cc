@@ -1,5 +1,7 @@
 #include "cli/daemon_metrics.h"
 
+#include <boost/archive/iterators/base64_from_binary.hpp>
+#include <boost/archive/iterators/transform_width.hpp>
 #include <boost/asio/connect.hpp>
 #include <boost/asio/io_context.hpp>
 #include <boost/asio/ip/tcp.hpp>
@@ -7,11 +9,11 @@
 #include <boost/beast/core/tcp_stream.hpp>
 #include <boost/beast/http.hpp>
 #include <cmath>
-#include <fstream>
 
 #include "cli/cli_util.h"
 #include "cli/commands.h"
 #include "formats/prometheus_text.h"
+#include "settings/secret_file.h"
 
 namespace nuwatch::cli {
 namespace {
@@ -20,35 +22,14 @@ namespace asio = boost::asio;
 namespace beast = boost::beast;
 namespace http = beast::http;
 
-// RFC 4648 base64 with padding, as RFC 7617's credentials need; a few lines instead of Beast's
-// detail namespace, which is not its public interface.
+// RFC 4648 base64 with padding, as RFC 7617's credentials need. Boost.Serialization's
+// header-only iterators do the encoding (6 bits per output character); they leave the padding to
+// the caller.
 std::string Base64(const std::string& bytes) {
-  static constexpr char kAlphabet[] =
-      "ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789+/";
-  std::string out;
-  std::size_t i = 0;
-  for (; i + 2 < bytes.size(); i += 3) {
-    const unsigned v = (static_cast<unsigned char>(bytes[i]) << 16) |
-                       (static_cast<unsigned char>(bytes[i + 1]) << 8) |
-                       static_cast<unsigned char>(bytes[i + 2]);
-    out += kAlphabet[(v >> 18) & 63];
-    out += kAlphabet[(v >> 12) & 63];
-    out += kAlphabet[(v >> 6) & 63];
-    out += kAlphabet[v & 63];
-  }
-  if (i + 1 == bytes.size()) {
-    const unsigned v = static_cast<unsigned char>(bytes[i]) << 16;
-    out += kAlphabet[(v >> 18) & 63];
-    out += kAlphabet[(v >> 12) & 63];
-    out += "==";
-  } else if (i + 2 == bytes.size()) {
-    const unsigned v = (static_cast<unsigned char>(bytes[i]) << 16) |
-                       (static_cast<unsigned char>(bytes[i + 1]) << 8);
-    out += kAlphabet[(v >> 18) & 63];
-    out += kAlphabet[(v >> 12) & 63];
-    out += kAlphabet[(v >> 6) & 63];
-    out += '=';
-  }
+  using Encoder = boost::archive::iterators::base64_from_binary<
+      boost::archive::iterators::transform_width<std::string::const_iterator, 6, 8>>;
+  std::string out(Encoder(bytes.begin()), Encoder(bytes.end()));
+  out.append((3 - bytes.size() % 3) % 3, '=');
   return out;
 }
 
@@ -106,14 +87,12 @@ MetricsClient::MetricsClient(std::string host_port, std::string user,
   if (user.empty()) return;
   if (user.find(':') != std::string::npos)
     throw CommandError("--metrics-user: a user name may not hold ':' (RFC 7617)");
-  std::ifstream in(password_file);
   std::string password;
-  if (!in || !std::getline(in, password))
-    throw CommandError("--metrics-password-file: cannot read " + password_file);
-  if (!password.empty() && password.back() == '\r') password.pop_back();
-  if (password.empty())
-    throw CommandError("--metrics-password-file: " + password_file +
-                       ": the first line, the password, is empty");
+  try {
+    password = ReadSecretFirstLine(password_file);
+  } catch (const SecretFileError& error) {
+    throw CommandError(std::string("--metrics-password-file: ") + error.what());
+  }
   authorization_ = "Basic " + Base64(user + ":" + password);
 }
 

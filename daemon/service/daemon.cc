@@ -42,6 +42,7 @@
 #include "service/refit_pool.h"
 #include "service/state_store.h"
 #include "service/stream_registry.h"
+#include "settings/secret_file.h"
 
 namespace nuwatch {
 
@@ -151,20 +152,11 @@ bool SameSecret(const std::string& a, const std::string& b) {
 
 // The first line of metrics.basic_auth_password_file, which only its owner may read.
 std::string ReadPasswordFile(const std::string& path) {
-  const std::string key = "metrics.basic_auth_password_file: " + path;
-  struct stat st {};
-  if (::stat(path.c_str(), &st) != 0) {
-    throw ConfigError(key + ": cannot read: " + std::strerror(errno));
+  try {
+    return ReadSecretFirstLine(path);
+  } catch (const SecretFileError& error) {
+    throw ConfigError(std::string("metrics.basic_auth_password_file: ") + error.what());
   }
-  if ((st.st_mode & 077) != 0) {
-    throw ConfigError(key + ": readable by others; chmod 600 " + path);
-  }
-  std::ifstream in(path);
-  std::string password;
-  if (!in || !std::getline(in, password)) throw ConfigError(key + ": cannot read the password");
-  if (!password.empty() && password.back() == '\r') password.pop_back();
-  if (password.empty()) throw ConfigError(key + ": the first line, the password, is empty");
-  return password;
 }
 
 spdlog::level::level_enum LogLevel(const std::string& name) {

@@ -199,10 +199,19 @@ TEST_F(SendMetrics, BasicAuthenticationIsAskedForAndUsed) {
   EXPECT_EQ(anonymous.exit_code, 1);
   EXPECT_THAT(anonymous.err, HasSubstr("401 Unauthorized: it requires basic authentication"));
   const std::string wrong = Write("wrong", "guess\n");
+  ::chmod(wrong.c_str(), 0600);
   const ProgramRun refused = Send(
       input, "--metrics " + metrics_ + " --metrics-user scraper --metrics-password-file " + wrong);
   EXPECT_EQ(refused.exit_code, 1);
   EXPECT_THAT(refused.err, HasSubstr("the daemon refused --metrics-user and the password"));
+  // The same reader as the daemon's: a password file others may read is refused before sending.
+  const std::string open_file = Write("open", "s3cret\n");
+  ::chmod(open_file.c_str(), 0644);
+  const ProgramRun open_refused =
+      Send(input, "--metrics " + metrics_ + " --metrics-user scraper --metrics-password-file " +
+                      open_file);
+  EXPECT_EQ(open_refused.exit_code, 1);
+  EXPECT_THAT(open_refused.err, HasSubstr("readable by others; chmod 600"));
   const ProgramRun admitted =
       Send(input,
            "--metrics " + metrics_ + " --metrics-user scraper --metrics-password-file " + password);
