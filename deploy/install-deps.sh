@@ -10,7 +10,7 @@ packages=(
   libeigen3-dev
   # daemon
   libboost-dev libzmq3-dev cppzmq-dev prometheus-cpp-dev libtomlplusplus-dev libcli11-dev
-  libspdlog-dev nlohmann-json3-dev libcairo2-dev
+  libspdlog-dev nlohmann-json3-dev libcairo2-dev libsimdjson-dev
   # tests and benchmarks
   libgtest-dev libgmock-dev libbenchmark-dev python3 python3-sklearn python3-numpy python3-zmq
   prometheus

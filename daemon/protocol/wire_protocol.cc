@@ -1,5 +1,7 @@
 #include "protocol/wire_protocol.h"
 
+#include <simdjson.h>
+
 #include <bit>
 #include <charconv>
 #include <cmath>
@@ -371,12 +373,152 @@ class IngestJsonReader {
   std::string_view detail_;
 };
 
-DecodeResult DecodeJson(std::string_view payload, const WireLimits& limits, JsonScratch* scratch) {
+DecodeResult DecodeJsonReference(std::string_view payload, const WireLimits& limits,
+                                 JsonScratch* scratch) {
   IngestJsonReader reader(limits, scratch);
   const bool parsed = nlohmann::json::sax_parse(payload.data(), payload.data() + payload.size(),
                                                 &reader, nlohmann::json::input_format_t::json,
                                                 /*strict=*/true, /*ignore_comments=*/false);
   return reader.Finish(parsed);
+}
+
+}  // namespace
+
+// simdjson needs SIMDJSON_PADDING readable bytes after the document, which a ZeroMQ message
+// buffer does not promise, so each payload is copied into `padded` (grown, never shrunk).
+struct JsonScratch::Parser {
+  simdjson::dom::parser dom;
+  std::unique_ptr<char[]> padded;
+  std::size_t padded_capacity = 0;
+};
+
+JsonScratch::JsonScratch() = default;
+JsonScratch::~JsonScratch() = default;
+JsonScratch::JsonScratch(JsonScratch&&) noexcept = default;
+JsonScratch& JsonScratch::operator=(JsonScratch&&) noexcept = default;
+
+namespace {
+
+// A number of the §5 object as a double, as the reference reader converts it (int64 and uint64
+// are cast; simdjson refuses a number outside the double range, so none here is infinite).
+bool AsFiniteNumber(simdjson::dom::element element, double* out) {
+  switch (element.type()) {
+    case simdjson::dom::element_type::DOUBLE:
+      *out = element.get_double().value_unsafe();
+      return std::isfinite(*out);
+    case simdjson::dom::element_type::INT64:
+      *out = static_cast<double>(element.get_int64().value_unsafe());
+      return true;
+    case simdjson::dom::element_type::UINT64:
+      *out = static_cast<double>(element.get_uint64().value_unsafe());
+      return true;
+    default:
+      return false;
+  }
+}
+
+// The §5 shapes that are accepted, read from simdjson's document into `scratch`. Returns false
+// for anything else, without saying why: the reference reader then gives the reason. Accepts
+// exactly what IngestJsonReader accepts: an object whose members t and x appear once each
+// (other members ignored), either t a number and x 1..max_dims numbers, or t n numbers and x n
+// rows of the same 1..max_dims numbers, 1 <= n <= max_vectors_per_message, all finite.
+bool ReadAcceptedShape(simdjson::dom::element document, const WireLimits& limits,
+                       JsonScratch* scratch) {
+  simdjson::dom::object object;
+  if (document.get_object().get(object) != simdjson::SUCCESS) return false;
+  scratch->times.clear();
+  scratch->values.clear();
+  simdjson::dom::element t;
+  simdjson::dom::element x;
+  bool seen_t = false;
+  bool seen_x = false;
+  for (const simdjson::dom::key_value_pair member : object) {
+    if (member.key == "t") {
+      if (seen_t) return false;
+      seen_t = true;
+      t = member.value;
+    } else if (member.key == "x") {
+      if (seen_x) return false;
+      seen_x = true;
+      x = member.value;
+    }
+  }
+  if (!seen_t || !seen_x) return false;
+  simdjson::dom::array x_array;
+  if (x.get_array().get(x_array) != simdjson::SUCCESS) return false;
+  double number = 0;
+  if (AsFiniteNumber(t, &number)) {
+    scratch->times.push_back(number);
+    for (const simdjson::dom::element value : x_array) {
+      if (scratch->values.size() >= static_cast<std::size_t>(limits.max_dims)) return false;
+      if (!AsFiniteNumber(value, &number)) return false;
+      scratch->values.push_back(number);
+    }
+    return !scratch->values.empty();
+  }
+  simdjson::dom::array t_array;
+  if (t.get_array().get(t_array) != simdjson::SUCCESS) return false;
+  const std::size_t rows = t_array.size();
+  if (rows == 0 || rows > static_cast<std::size_t>(limits.max_vectors_per_message) ||
+      x_array.size() != rows) {
+    return false;
+  }
+  for (const simdjson::dom::element time : t_array) {
+    if (!AsFiniteNumber(time, &number)) return false;
+    scratch->times.push_back(number);
+  }
+  std::size_t dims = 0;
+  for (const simdjson::dom::element row : x_array) {
+    simdjson::dom::array row_array;
+    if (row.get_array().get(row_array) != simdjson::SUCCESS) return false;
+    const std::size_t length = row_array.size();
+    if (length == 0 || length > static_cast<std::size_t>(limits.max_dims)) return false;
+    if (dims == 0) dims = length;
+    if (length != dims) return false;
+    for (const simdjson::dom::element value : row_array) {
+      if (!AsFiniteNumber(value, &number)) return false;
+      scratch->values.push_back(number);
+    }
+  }
+  return true;
+}
+
+DecodeResult DecodeJson(std::string_view payload, const WireLimits& limits, JsonScratch* scratch) {
+  if (!scratch->parser) {
+    scratch->parser = std::make_unique<JsonScratch::Parser>();
+    // The depth limit of §5, counted as the reference reader counts it (the top-level object is
+    // depth 1); a deeper document is refused here and the reference reader names it.
+    if (scratch->parser->dom.allocate(0, kMaxJsonDepth) != simdjson::SUCCESS) {
+      return DecodeJsonReference(payload, limits, scratch);
+    }
+  }
+  JsonScratch::Parser& parser = *scratch->parser;
+  const std::size_t needed = payload.size() + simdjson::SIMDJSON_PADDING;
+  if (parser.padded_capacity < needed) {
+    parser.padded = std::make_unique<char[]>(needed);
+    parser.padded_capacity = needed;
+  }
+  std::memcpy(parser.padded.get(), payload.data(), payload.size());
+  std::memset(parser.padded.get() + payload.size(), 0, simdjson::SIMDJSON_PADDING);
+  simdjson::dom::element document;
+  if (parser.dom.parse(parser.padded.get(), payload.size(), /*realloc_if_needed=*/false)
+              .get(document) != simdjson::SUCCESS ||
+      !ReadAcceptedShape(document, limits, scratch)) {
+    return DecodeJsonReference(payload, limits, scratch);
+  }
+  DecodeResult result;
+  PayloadView& view = result.payload;
+  const std::size_t dims = scratch->values.size() / scratch->times.size();
+  view.format = PayloadFormat::kJson;
+  view.dtype = Dtype::kFloat64;
+  view.count = static_cast<int>(scratch->times.size());
+  view.dims = static_cast<int>(dims);
+  view.times = reinterpret_cast<const std::byte*>(scratch->times.data());
+  view.values = reinterpret_cast<const std::byte*>(scratch->values.data());
+  view.time_stride = sizeof(double);
+  view.value_stride = sizeof(double);
+  view.row_stride = sizeof(double) * dims;
+  return result;
 }
 
 // --- Encoding ---------------------------------------------------------------------------------
@@ -623,6 +765,11 @@ DecodeResult DecodePayload(std::string_view payload, const WireLimits& limits,
     default:
       return Reject(RejectReason::kUnknownFormat, "payload starts with neither '{' nor 'N'");
   }
+}
+
+DecodeResult DecodeJsonWithReferenceReader(std::string_view payload, const WireLimits& limits,
+                                           JsonScratch* scratch) noexcept {
+  return DecodeJsonReference(payload, limits, scratch);
 }
 
 DecodeResult DecodeIngest(std::string_view key, std::string_view payload, const WireLimits& limits,

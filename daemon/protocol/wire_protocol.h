@@ -13,6 +13,7 @@
 
 #include <cstddef>
 #include <cstdint>
+#include <memory>
 #include <optional>
 #include <span>
 #include <string>
@@ -104,11 +105,19 @@ struct PayloadView {
   void CopyRow(int row, std::span<double> out) const noexcept;
 };
 
-// Where the JSON form's numbers are stored while a view of them is in use. Keep one per receiving
-// thread and reuse it: its vectors keep their capacity, so steady-state decoding reuses memory.
+// Where the JSON form's numbers are stored while a view of them is in use, with the JSON parser's
+// own buffers. Keep one per receiving thread and reuse it: everything keeps its capacity, so
+// steady-state decoding reuses memory. Movable, not copyable.
 struct JsonScratch {
+  JsonScratch();
+  ~JsonScratch();
+  JsonScratch(JsonScratch&&) noexcept;
+  JsonScratch& operator=(JsonScratch&&) noexcept;
+
   std::vector<double> times;
   std::vector<double> values;
+  struct Parser;  // simdjson's DOM parser and a padded copy of the payload (wire_protocol.cc)
+  std::unique_ptr<Parser> parser;
 };
 
 struct DecodeResult {
@@ -136,6 +145,15 @@ constexpr RejectReason CheckFrameCount(std::size_t frames) {
 // token buffer, and scratch growth). Never throws (an allocation failure terminates).
 DecodeResult DecodePayload(std::string_view payload, const WireLimits& limits,
                            JsonScratch* scratch) noexcept;
+
+// The JSON form (§5) decoded by the reference reader alone (nlohmann's SAX parser, which stops at
+// the first defect). DecodePayload parses JSON with simdjson, which is several times faster, and
+// asks this reader for the verdict whenever simdjson or the §5 shape check refuses a payload, so
+// every rejection reason and detail is this reader's. Exposed so that tests and the fuzzer can
+// check that both paths agree. Requires and ensures as DecodePayload, for a payload of at most
+// limits.max_message_bytes bytes.
+DecodeResult DecodeJsonWithReferenceReader(std::string_view payload, const WireLimits& limits,
+                                           JsonScratch* scratch) noexcept;
 
 // Both frames of an ingest message: ValidateStreamKey, then DecodePayload.
 DecodeResult DecodeIngest(std::string_view key, std::string_view payload, const WireLimits& limits,

@@ -4,8 +4,9 @@
 //
 // Input layout: byte 0 gives the key length k (mod 131), the next k bytes are the stream key, the
 // rest is the payload. Besides the sanitizers' checks it traps when a decoded message breaks the
-// decoder's contract, when re-encoding an accepted message and decoding it again changes a number,
-// or when the result encoder writes something that is not valid JSON.
+// decoder's contract, when the simdjson path and the reference JSON reader disagree, when
+// re-encoding an accepted message and decoding it again changes a number, or when the result
+// encoder writes something that is not valid JSON.
 #include <algorithm>
 #include <cmath>
 #include <cstdint>
@@ -63,6 +64,26 @@ extern "C" int LLVMFuzzerTestOneInput(const std::uint8_t* data, std::size_t size
   nuwatch::JsonScratch scratch;
   const nuwatch::DecodeResult result = nuwatch::DecodeIngest(key, payload, limits, &scratch);
   Require(!nuwatch::RejectReasonLabel(result.reason).empty());
+  // A JSON payload that reached the JSON decoder: the simdjson path and the reference reader
+  // (nlohmann's SAX parser) agree on the verdict, the detail and every number, bit for bit.
+  if (nuwatch::ValidateStreamKey(key, limits) == nuwatch::RejectReason::kNone && !payload.empty() &&
+      payload.size() <= limits.max_message_bytes &&
+      std::string_view("{ \t\r\n").find(payload.front()) != std::string_view::npos) {
+    nuwatch::JsonScratch reference_scratch;
+    const nuwatch::DecodeResult reference =
+        nuwatch::DecodeJsonWithReferenceReader(payload, limits, &reference_scratch);
+    Require(reference.reason == result.reason && reference.detail == result.detail);
+    if (result.ok()) {
+      Require(reference.payload.count == result.payload.count &&
+              reference.payload.dims == result.payload.dims);
+      for (int i = 0; i < result.payload.count; ++i) {
+        Require(SameBits(reference.payload.time(i), result.payload.time(i)));
+        for (int j = 0; j < result.payload.dims; ++j) {
+          Require(SameBits(reference.payload.value(i, j), result.payload.value(i, j)));
+        }
+      }
+    }
+  }
   if (result.ok()) {
     const nuwatch::PayloadView& view = result.payload;
     Require(view.count >= 1 && view.count <= limits.max_vectors_per_message);
