@@ -41,6 +41,7 @@ constexpr RejectReason kAllRejectReasons[] = {
     RejectReason::kCountLimit,
     RejectReason::kDimsMismatch,
     RejectReason::kStreamLimit,
+    RejectReason::kNotOwner,
 };
 
 // Offsets of the §6.1 header fields.
@@ -694,6 +695,8 @@ std::string_view RejectReasonLabel(RejectReason reason) noexcept {
       return "dims_mismatch";
     case RejectReason::kStreamLimit:
       return "stream_limit";
+    case RejectReason::kNotOwner:
+      return "not_owner";
   }
   return "unknown";
 }

@@ -55,6 +55,7 @@ enum class RejectReason : std::uint8_t {
   kCountLimit,
   kDimsMismatch,  // not produced here: the daemon's check against a stream's fixed dims
   kStreamLimit,   // not produced here: the daemon's cap on the number of streams
+  kNotOwner,      // not produced here: another replica owns the key (§13, ownership.h)
 };
 
 // Ensures: the §8 label ("bad_json", ...), "none" for kNone, "unknown" for a value outside the
