@@ -38,7 +38,7 @@ int main(int argc, char** argv) {
       "metrics. Flags override the configuration file."};
   std::string config_path;
   std::vector<std::string> ingest, subscribe;
-  std::string publish, metrics, control, state_dir, log_level, ready_file;
+  std::string publish, metrics, control, state_dir, log_level, ready_file, member;
   app.add_option("--config", config_path,
                  "TOML configuration file (config/REFERENCE.md); without it every key keeps its "
                  "default");
@@ -57,6 +57,9 @@ int main(int argc, char** argv) {
   auto* level_flag =
       app.add_option("--log-level", log_level,
                      "trace, debug, info, warn, error, critical or off (daemon.log_level)");
+  auto* member_flag = app.add_option(
+      "--member", member,
+      "This replica's name among cluster.members, e.g. the pod name (cluster.member)");
   app.add_option("--ready-file", ready_file,
                  "Write the actual endpoints as JSON to this file once everything listens");
   bool print_defaults = false;
@@ -83,6 +86,7 @@ int main(int argc, char** argv) {
   if (control_flag->count() > 0) overrides.control_endpoint = control;
   if (state_flag->count() > 0) overrides.state_dir = state_dir;
   if (level_flag->count() > 0) overrides.log_level = log_level;
+  if (member_flag->count() > 0) overrides.cluster_member = member;
 
   // A flag's value is reported under the flag the user typed ("--log-level verbose: ..."), not
   // only under the config key it replaces. The endpoints' syntax is checked here; the rules

@@ -12,7 +12,8 @@ using nlohmann::json;
 // JSON has no NaN or infinity: such numbers are written as null (PROTOCOL.md §9).
 json Number(double value) { return std::isfinite(value) ? json(value) : json(nullptr); }
 
-json StatusJson(const std::vector<StreamStatus>& streams, std::string_view version) {
+json StatusJson(const std::vector<StreamStatus>& streams, const ClusterStatus& cluster,
+                std::string_view version) {
   json list = json::array();
   for (const StreamStatus& s : streams) {
     json incident = nullptr;
@@ -38,7 +39,11 @@ json StatusJson(const std::vector<StreamStatus>& streams, std::string_view versi
          {"snapshot_vectors", s.snapshot_vectors < 0 ? json(nullptr) : json(s.snapshot_vectors)},
          {"snapshot_error", s.snapshot_error.empty() ? json(nullptr) : json(s.snapshot_error)}});
   }
-  return {{"ok", true}, {"version", std::string(version)}, {"streams", list}};
+  return {{"ok", true},
+          {"version", std::string(version)},
+          {"member", cluster.member.empty() ? json(nullptr) : json(cluster.member)},
+          {"members", cluster.members},
+          {"streams", list}};
 }
 
 std::string Dump(const json& reply) {
@@ -63,7 +68,9 @@ std::string HandleControlRequest(std::string_view request, ControlCommands& comm
   if (!command_it->is_string()) return ControlErrorReply("\"command\" must be a string");
   const std::string command = command_it->get<std::string>();
   try {
-    if (command == "status") return Dump(StatusJson(commands.Status(), version));
+    if (command == "status") {
+      return Dump(StatusJson(commands.Status(), commands.Cluster(), version));
+    }
     if (command == "snapshot") {
       const SnapshotOutcome outcome = commands.Snapshot();
       if (!outcome.ok && !outcome.failed.empty()) {

@@ -46,10 +46,18 @@ struct ReloadOutcome : ControlOutcome {
   int64_t streams_updated = 0;  // streams given new detector settings
 };
 
+// The replica's place among cluster.members (PROTOCOL.md §13), for status.
+struct ClusterStatus {
+  std::string member;       // this daemon's name; "" = none (a lone daemon)
+  std::size_t members = 0;  // size of the member list; 0 = a lone daemon that owns every stream
+};
+
 class ControlCommands {
  public:
   virtual ~ControlCommands() = default;
   virtual std::vector<StreamStatus> Status() = 0;
+  // Called with Status() on the same thread. The default: a lone daemon.
+  virtual ClusterStatus Cluster() { return {}; }
   virtual SnapshotOutcome Snapshot() = 0;
   // nullopt when done; else the error (e.g. unknown stream).
   virtual std::optional<std::string> Relearn(const std::string& stream) = 0;

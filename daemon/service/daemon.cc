@@ -29,11 +29,13 @@
 #include <nlohmann/json.hpp>
 #include <set>
 #include <thread>
+#include <unordered_map>
 #include <zmq.hpp>
 
 #include "nuwatch/checked_file.h"
 #include "nuwatch/mutex.h"
 #include "protocol/curve_keys.h"
+#include "protocol/ownership.h"
 #include "protocol/wire_protocol.h"
 #include "service/control.h"
 #include "service/curve_auth.h"
@@ -54,6 +56,7 @@ void ApplyOverrides(const CommandLineOverrides& o, DaemonSettings* s) {
   if (o.control_endpoint) s->control_endpoint = *o.control_endpoint;
   if (o.state_dir) s->state_dir = *o.state_dir;
   if (o.log_level) s->log_level = *o.log_level;
+  if (o.cluster_member) s->cluster_member = *o.cluster_member;
 }
 
 void CheckConfigForDaemon(const Config& config) {
@@ -67,6 +70,24 @@ void CheckConfigForDaemon(const Config& config) {
     }
   };
   check(config.detector, file + ": [detector]");
+  // [cluster]: the names' syntax is the protocol's (§13.1), which settings cannot see.
+  const DaemonSettings& d = config.daemon;
+  if (std::string error = MemberListError(d.cluster_members); !error.empty()) {
+    throw ConfigError(file + ": cluster.members: " + error);
+  }
+  if (!d.cluster_member.empty()) {
+    if (std::string error = MemberNameError(d.cluster_member); !error.empty()) {
+      throw ConfigError(file + ": cluster.member: " + error);
+    }
+  }
+  if (!d.cluster_members.empty() && std::find(d.cluster_members.begin(), d.cluster_members.end(),
+                                              d.cluster_member) == d.cluster_members.end()) {
+    std::string list;
+    for (const std::string& m : d.cluster_members) list += (list.empty() ? "" : ", ") + m;
+    throw ConfigError(file + ": cluster.member = \"" + d.cluster_member +
+                      "\" is not one of cluster.members (" + list +
+                      "): set it in [cluster] or with nuwatchd --member NAME");
+  }
   for (const auto& override_table : config.overrides) {
     // [detector] with this table applied: the table alone, matching every key.
     Config one = config;
@@ -98,6 +119,9 @@ constexpr int kTopFeatures = 3;
 // most kDrainSeconds.
 constexpr std::chrono::milliseconds kDrainQuiet{300};
 constexpr std::chrono::seconds kDrainSeconds{30};
+// Ownership decisions kept (Owns): about 10 MB at most with keys of 32 bytes, and more keys than
+// a replica usually sees, so that the cache rarely starts over.
+constexpr std::size_t kOwnerCacheKeys = 1 << 17;
 
 void NameThisThread(const char* name) { pthread_setname_np(pthread_self(), name); }
 
@@ -387,6 +411,9 @@ struct Daemon::Impl final : ControlCommands {
 
   // ControlCommands (socket thread).
   std::vector<StreamStatus> Status() override;
+  ClusterStatus Cluster() override {
+    return {config.daemon.cluster_member, config.daemon.cluster_members.size()};
+  }
   SnapshotOutcome Snapshot() override;
   std::optional<std::string> Relearn(const std::string& stream) override;
   ReloadOutcome Reload() override;
@@ -465,6 +492,22 @@ struct Daemon::Impl final : ControlCommands {
   zmq::message_t extra_message;
   zmq::message_t subscription_message;  // DrainSubscriptions, under publish_mutex
   std::array<std::atomic<bool>, 256> rejection_logged{};
+
+  // [cluster] (PROTOCOL.md §13), socket thread only (it reloads `config`): whether this member
+  // owns a key. Deciding costs one BLAKE2b per member, so decisions are kept per key, at most
+  // kOwnerCacheKeys of them (then the cache starts over), and dropped when a reload changes the
+  // member list.
+  bool Owns(std::string_view key);
+  // After a reload that changed the member list (shards paused): writes the state file of every
+  // stream this member no longer owns and unloads it (the file stays).
+  void ReleaseStreamsNotOwned();
+  struct KeyHash {
+    using is_transparent = void;
+    std::size_t operator()(std::string_view key) const noexcept {
+      return std::hash<std::string_view>{}(key);
+    }
+  };
+  std::unordered_map<std::string, bool, KeyHash, std::equal_to<>> owner_cache;
 };
 
 // Holds every running scoring thread between two messages, from construction to destruction, so
@@ -745,7 +788,12 @@ void Daemon::Impl::RestoreStreams() {
   for (const std::string& path : store->RemoveStaleTemporaries()) {
     spdlog::info("state: removed {} (left by an interrupted write)", path);
   }
+  int64_t not_owned = 0;
   for (const StateStore::Entry& entry : store->List()) {
+    if (!Owns(entry.stream_key)) {
+      ++not_owned;  // another member's stream (§13.4): its file stays, unread
+      continue;
+    }
     if (stream_count.load() >= config.daemon.max_streams) {
       spdlog::warn("state: {} not restored: limits.max_streams = {} streams are restored already",
                    entry.path, config.daemon.max_streams);
@@ -792,6 +840,12 @@ void Daemon::Impl::RestoreStreams() {
     } catch (const StateFileError& e) {
       spdlog::error("state: {}; {}; stream {} starts afresh", reason, e.what(), entry.stream_key);
     }
+  }
+  if (not_owned > 0) {
+    spdlog::info(
+        "state: {} state files are of streams other members of cluster.members own; left on disk "
+        "and not loaded",
+        not_owned);
   }
 }
 
@@ -1172,7 +1226,15 @@ void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
     // To the thread that owns the stream: the frames move (inproc does not copy them). Waits
     // while that thread's queue is full, so that nothing is dropped here; the ingest sockets'
     // own queues, then the senders, take up the slack.
-    zmq::socket_t& feed = feeds[ShardOf(key_message.to_string_view(), feeds.size())];
+    // A key another member owns never reaches a scoring thread, so it never creates a stream
+    // (PROTOCOL.md §13.2). An invalid key goes on, to be rejected as bad_stream_key.
+    const std::string_view key = key_message.to_string_view();
+    if (!config.daemon.cluster_members.empty() &&
+        ValidateStreamKey(key, limits) == RejectReason::kNone && !Owns(key)) {
+      Reject(RejectReason::kNotOwner, "another member of cluster.members owns the key", key);
+      continue;
+    }
+    zmq::socket_t& feed = feeds[ShardOf(key, feeds.size())];
     (void)feed.send(key_message, zmq::send_flags::sndmore);
     (void)feed.send(payload_message, zmq::send_flags::none);
   }
@@ -1905,12 +1967,75 @@ ReloadOutcome Daemon::Impl::Reload() {
         static_cast<double>(stream_options.support_vector_budget));
     ++outcome.streams_updated;
   }
+  const bool new_members = next.daemon.cluster_members != config.daemon.cluster_members ||
+                           next.daemon.cluster_member != config.daemon.cluster_member;
   config = std::move(next);
   spdlog::info(
       "reload: applied {}: {} of {} streams take new detector settings at their next "
       "refit",
       config.source_path, outcome.streams_updated, all.size());
+  if (new_members) {
+    owner_cache.clear();
+    spdlog::info("reload: cluster.member = {}, cluster.members has {} members",
+                 config.daemon.cluster_member.empty() ? "(none)" : config.daemon.cluster_member,
+                 config.daemon.cluster_members.size());
+    ReleaseStreamsNotOwned();
+  }
   return outcome;
+}
+
+bool Daemon::Impl::Owns(std::string_view key) {
+  const std::vector<std::string>& members = config.daemon.cluster_members;
+  if (members.empty()) return true;
+  if (const auto it = owner_cache.find(key); it != owner_cache.end()) return it->second;
+  const bool owned = members[OwnerOf(key, members)] == config.daemon.cluster_member;
+  if (owner_cache.size() >= kOwnerCacheKeys) owner_cache.clear();
+  owner_cache.emplace(std::string(key), owned);
+  return owned;
+}
+
+void Daemon::Impl::ReleaseStreamsNotOwned() {
+  std::vector<std::pair<Shard*, std::string>> leaving;
+  for (auto& shard : shards) {
+    for (Stream* s : shard->streams.Sorted()) {
+      if (!Owns(s->key)) leaving.emplace_back(shard.get(), s->key);
+    }
+  }
+  if (leaving.empty()) return;
+  // A refit in flight finishes and its model is taken first, so that the state file holds it
+  // (like forget, this holds up scoring for as long as that refit takes).
+  for (const auto& entry : leaving) {
+    const Stream* s = entry.first->streams.Find(entry.second);
+    while (!s->executor.settled()) std::this_thread::sleep_for(std::chrono::milliseconds(1));
+  }
+  for (auto& shard : shards) HandleFinishedRefits(*shard);
+  WaitForStateWrites();
+  for (auto& shard : shards) HandleFinishedWrites(*shard);
+  for (const auto& entry : leaving) {
+    TrySnapshot(*entry.first, *entry.first->streams.Find(entry.second), SnapshotKind::kFinal);
+  }
+  WaitForStateWrites();
+  for (auto& shard : shards) HandleFinishedWrites(*shard);
+  int64_t failed = 0;
+  for (const auto& entry : leaving) {
+    std::unique_ptr<Stream> removed = entry.first->streams.Remove(entry.second);
+    if (removed->write_failures > 0) {
+      ++failed;
+      spdlog::error(
+          "reload: stream {} released, but its state file could not be written: {}; the file "
+          "keeps its last snapshot",
+          removed->key, removed->write_error);
+    }
+    DropStream(*entry.first, std::move(removed));
+    metrics.streams_released().Increment();
+  }
+  spdlog::info(
+      "reload: released {} streams that other members now own ({}); they start afresh at their "
+      "new owner (PROTOCOL.md §13.4)",
+      leaving.size(),
+      store ? (failed == 0 ? std::string("state files written and kept")
+                           : std::to_string(failed) + " state files not up to date")
+            : std::string("no state directory"));
 }
 
 Daemon::Daemon(DaemonOptions options) : impl_(std::make_unique<Impl>(std::move(options))) {}

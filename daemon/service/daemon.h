@@ -70,6 +70,7 @@ struct CommandLineOverrides {
   std::optional<std::string> control_endpoint;                  // --control
   std::optional<std::string> state_dir;                         // --state-dir
   std::optional<std::string> log_level;                         // --log-level
+  std::optional<std::string> cluster_member;                    // --member
 };
 void ApplyOverrides(const CommandLineOverrides& overrides, DaemonSettings* settings);
 

@@ -150,6 +150,11 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
       &Build(BuildCounter(), "nuwatch_streams_expired_total",
              "Streams forgotten after limits.idle_expiry_seconds without a vector.", r)
            .Add({});
+  streams_released_ = &Build(BuildCounter(), "nuwatch_streams_released_total",
+                             "Streams unloaded, their state file written and kept, because a "
+                             "reload of cluster.members gave them to another member.",
+                             r)
+                           .Add({});
   refits_queued_ = &Build(BuildGauge(), "nuwatch_refits_queued",
                           "Refits waiting for a refit thread (at most one per stream).", r)
                         .Add({});

@@ -333,10 +333,27 @@ const Setting<S> kDaemonKeys[] = {
      .bounds = AtLeast(0),
      .bounds_note = " (0: keep every file)",
      .reload = kNow},
+    {.section = "cluster",
+     .name = "members",
+     .member = &S::cluster_members,
+     .doc = "Names of every replica that shares the streams (StatefulSet pod names such as "
+            "nuwatchd-0); each stream is owned by one of them (PROTOCOL.md §13) and a vector for "
+            "another member's stream is rejected (not_owner). []: a lone daemon owns every stream.",
+     .unit = "member names",
+     .distinct = true,
+     .reload = kNow},
+    {.section = "cluster",
+     .name = "member",
+     .member = &S::cluster_member,
+     .doc = "This daemon's name, one of members (nuwatchd --member NAME overrides it, e.g. with "
+            "the pod's name). \"\": none, for a lone daemon.",
+     .unit = "member name",
+     .reload = kNow},
 };
 
-constexpr std::string_view kDaemonSections[] = {"daemon",  "ingest", "publish", "control",  "auth",
-                                                "metrics", "state",  "limits",  "recording"};
+constexpr std::string_view kDaemonSections[] = {"daemon",    "ingest",  "publish", "control",
+                                                "auth",      "metrics", "state",   "limits",
+                                                "recording", "cluster"};
 constexpr std::string_view kDetectorSection = "detector";
 constexpr std::string_view kStreamSection = "stream";
 constexpr std::string_view kMatchKey = "match";

@@ -71,6 +71,9 @@ struct DaemonSettings {
   std::string record_dir;                       // dir ("" = recording off)
   std::size_t record_rotate_bytes = 64u << 20;  // rotate_bytes
   int record_keep_files = 10;                   // keep_files (0 = keep every file)
+  // [cluster] (replicas that share the streams by owner: daemon/protocol/PROTOCOL.md §13)
+  std::vector<std::string> cluster_members;  // members ([] = a lone daemon: owns every stream)
+  std::string cluster_member;                // member (this daemon's name; required with members)
 
   bool operator==(const DaemonSettings&) const = default;
 };
