@@ -8,6 +8,12 @@
 // sent whenever the pipe has nothing more to read at the moment, so batching never holds a live
 // row back waiting for rows that have not been produced yet.
 //
+// Several replicas (PROTOCOL.md §13): with --member NAME=ENDPOINT (repeatable), or --member NAME
+// with --member-endpoint TEMPLATE, each stream goes to its owner among the named members, computed
+// with the protocol's rendezvous hash, over one PUSH socket per member: a stream always takes the
+// same socket, so its vectors arrive in order. Without --member, --connect names one daemon that
+// owns every stream, as before.
+//
 // ZeroMQ's PUSH socket says nothing about what the daemon did with a message. With --metrics,
 // send reads the daemon's rejection counters (nuwatch_rejected_messages_total, PROTOCOL.md §8)
 // before the first message and again once the daemon has processed the last one, prints the
@@ -45,6 +51,7 @@
 #include "formats/stream_file.h"
 #include "formats/timestamps.h"
 #include "offline/replay.h"
+#include "protocol/ownership.h"
 #include "protocol/wire_protocol.h"
 
 namespace nuwatch::cli {
@@ -54,6 +61,8 @@ using Clock = std::chrono::steady_clock;
 
 struct SendArguments {
   std::string connect;
+  std::vector<std::string> members;  // NAME=ENDPOINT, or NAME with member_endpoint
+  std::string member_endpoint;       // a template with {member}
   std::string input;
   std::string stream;
   std::string rate = "0";
@@ -68,10 +77,18 @@ struct SendArguments {
   ClientKeyFlags keys;
 };
 
+// A daemon to send to: with --connect the one, unnamed; with --member a replica and its name.
+struct Destination {
+  std::string member;  // "" for --connect
+  std::string endpoint;
+};
+
 // The arguments after parsing and range checks.
 struct SendSettings {
-  std::string endpoint;
-  std::string input;  // a path, or "-" for standard input
+  std::vector<Destination> destinations;  // one for --connect; else one per --member
+  std::vector<std::string> member_names;  // the names of `destinations`, for OwnerOf
+  std::string endpoint;                   // what the messages name: the endpoint, or the members
+  std::string input;                      // a path, or "-" for standard input
   std::string default_stream;
   double rate = 0;  // vectors per second; 0: as fast as the socket takes them
   PayloadFormat format = PayloadFormat::kJson;
@@ -115,10 +132,51 @@ class StopSignals {
 
 SendSettings ToSettings(const SendArguments& args) {
   SendSettings settings;
-  settings.endpoint = args.connect;
   settings.input = args.input;
   settings.default_stream = args.stream;
-  CheckEndpoint("--connect", args.connect);
+  if (args.members.empty()) {
+    if (args.connect.empty())
+      throw CommandError(
+          "name the daemon with --connect, or the replicas "
+          "with --member NAME=ENDPOINT");
+    if (!args.member_endpoint.empty()) throw CommandError("--member-endpoint needs --member NAME");
+    CheckEndpoint("--connect", args.connect);
+    settings.destinations.push_back({"", args.connect});
+    settings.endpoint = args.connect;
+  } else {
+    if (!args.connect.empty())
+      throw CommandError(
+          "--connect and --member exclude each other: --connect names one daemon "
+          "that owns every stream, --member the replicas that share them");
+    for (const std::string& flag : args.members) {
+      const std::size_t equals = flag.find('=');
+      Destination d;
+      d.member = flag.substr(0, equals);
+      if (const std::string error = MemberNameError(d.member); !error.empty())
+        throw CommandError("--member " + flag + ": " + error);
+      if (equals != std::string::npos) {
+        d.endpoint = flag.substr(equals + 1);
+      } else if (!args.member_endpoint.empty()) {
+        d.endpoint = args.member_endpoint;
+        for (std::size_t at; (at = d.endpoint.find("{member}")) != std::string::npos;)
+          d.endpoint.replace(at, 8, d.member);
+      } else {
+        throw CommandError("--member " + flag +
+                           ": no endpoint: give --member NAME=ENDPOINT, or --member-endpoint "
+                           "TEMPLATE (e.g. 'tcp://{member}.nuwatchd:7601')");
+      }
+      CheckEndpoint("--member " + d.member, d.endpoint);
+      settings.member_names.push_back(d.member);
+      settings.destinations.push_back(std::move(d));
+    }
+    if (const std::string error = MemberListError(settings.member_names); !error.empty())
+      throw CommandError("--member: " + error);
+    settings.endpoint = std::to_string(settings.destinations.size()) + " member(s)";
+    if (!args.metrics.empty())
+      throw CommandError(
+          "--metrics reads one daemon's counters, and --member sends to several: "
+          "read each replica's nuwatch_rejected_messages_total instead");
+  }
   settings.rate = NumberFlag("--rate", args.rate);
   // Below a vector every 1000 s the schedule's arithmetic would stop meaning anything useful.
   if (settings.rate < 0 || (settings.rate > 0 && settings.rate < 1e-3))
@@ -185,19 +243,23 @@ std::string Float32Overflow(std::span<const double> values,
 // sends. Not thread-safe (one thread drives it, as ZeroMQ requires for its socket).
 class Sender {
  public:
-  Sender(const SendSettings& settings, int dims)
-      : settings_(settings), dims_(dims), context_(1), socket_(context_, zmq::socket_type::push) {
-    socket_.set(zmq::sockopt::linger, static_cast<int>(settings.linger.count()));
-    // Queue only on a connection whose handshake succeeded: a daemon that refuses this client
-    // (CURVE, PROTOCOL.md §12) then holds up the first send, where the watch below names the
-    // reason, instead of taking messages that can never leave.
-    socket_.set(zmq::sockopt::immediate, true);
-    ApplyClientKeys(settings.keys, socket_);
-    watch_.emplace(context_, socket_, settings.keys);
-    try {
-      socket_.connect(settings.endpoint);
-    } catch (const zmq::error_t& e) {
-      throw CommandError("--connect: cannot connect to '" + settings.endpoint + "': " + e.what());
+  Sender(const SendSettings& settings, int dims) : settings_(settings), dims_(dims), context_(1) {
+    for (const Destination& destination : settings.destinations) {
+      auto route = std::make_unique<Route>(context_, destination);
+      route->socket.set(zmq::sockopt::linger, static_cast<int>(settings.linger.count()));
+      // Queue only on a connection whose handshake succeeded: a daemon that refuses this client
+      // (CURVE, PROTOCOL.md §12) then holds up the first send, where the watch below names the
+      // reason, instead of taking messages that can never leave. The keys apply to every member.
+      route->socket.set(zmq::sockopt::immediate, true);
+      ApplyClientKeys(settings.keys, route->socket);
+      route->watch.emplace(context_, route->socket, settings.keys);
+      try {
+        route->socket.connect(destination.endpoint);
+      } catch (const zmq::error_t& e) {
+        throw CommandError(route->Flag() + ": cannot connect to '" + destination.endpoint +
+                           "': " + e.what());
+      }
+      routes_.push_back(std::move(route));
     }
   }
 
@@ -207,8 +269,14 @@ class Sender {
   bool Add(const std::string& stream, double time, std::span<const double> values) {
     if (!WaitUntilDue(vectors_queued_)) return false;
     auto [it, inserted] = pending_.try_emplace(stream);
-    if (inserted) order_.push_back(stream);
     Pending& pending = it->second;
+    if (inserted) {
+      order_.push_back(stream);
+      // The owner, once per stream: every message of the stream takes its socket (§13.2).
+      pending.route = routes_.size() == 1 ? routes_[0].get()
+                                          : routes_[OwnerOf(stream, settings_.member_names)].get();
+      ++pending.route->streams;
+    }
     pending.times.push_back(time);
     pending.values.insert(pending.values.end(), values.begin(), values.end());
     ++vectors_queued_;
@@ -228,6 +296,16 @@ class Sender {
   int64_t messages_sent() const { return messages_sent_; }
   std::size_t streams() const { return order_.size(); }
 
+  // With --member: one line per member, what it was sent.
+  void PrintRoutes() const {
+    if (settings_.member_names.empty()) return;
+    for (const auto& route : routes_) {
+      std::fprintf(stderr, "nuwatch send: member %s (%s): %lld vectors of %zu stream(s)\n",
+                   route->destination.member.c_str(), route->destination.endpoint.c_str(),
+                   static_cast<long long>(route->vectors), route->streams);
+    }
+  }
+
   // Closes the socket and waits up to the linger time for the queued messages to leave. Returns
   // false when they did not all leave in time.
   // After an interruption the wait is cut to at most a second: the user asked to stop. With
@@ -236,10 +314,12 @@ class Sender {
     const std::chrono::milliseconds linger =
         interrupted ? std::min(settings_.linger, std::chrono::milliseconds(1000))
                     : settings_.linger;
-    socket_.set(zmq::sockopt::linger, static_cast<int>(linger.count()));
     const auto started = Clock::now();
-    watch_.reset();  // its socket must be closed before the context can end
-    socket_.close();
+    for (auto& route : routes_) {
+      route->socket.set(zmq::sockopt::linger, static_cast<int>(linger.count()));
+      route->watch.reset();  // its socket must be closed before the context can end
+      route->socket.close();
+    }
     context_.close();
     // zmq_ctx_term returns as soon as everything queued has left, and only at the linger deadline
     // when something is still queued, so reaching the deadline means messages were left behind.
@@ -247,7 +327,22 @@ class Sender {
   }
 
  private:
+  // One daemon's PUSH socket.
+  struct Route {
+    Route(zmq::context_t& context, const Destination& d)
+        : destination(d), socket(context, zmq::socket_type::push) {}
+    std::string Flag() const {
+      return destination.member.empty() ? "--connect" : "--member " + destination.member;
+    }
+    Destination destination;
+    zmq::socket_t socket;
+    std::optional<HandshakeWatch> watch;  // after socket: destroyed before it
+    int64_t vectors = 0;
+    std::size_t streams = 0;
+  };
+
   struct Pending {
+    Route* route = nullptr;
     std::vector<double> times;
     std::vector<double> values;
   };
@@ -284,8 +379,9 @@ class Sender {
       throw CommandError(std::string("cannot encode a message for stream ") + stream + ": " +
                          e.what());
     }
-    if (!SendFrames(stream, payload_)) return false;
+    if (!SendFrames(*pending.route, stream, payload_)) return false;
     vectors_sent_ += static_cast<int64_t>(pending.times.size());
+    pending.route->vectors += static_cast<int64_t>(pending.times.size());
     ++messages_sent_;
     pending.times.clear();
     pending.values.clear();
@@ -293,19 +389,21 @@ class Sender {
   }
 
   // Both frames, or neither when a stop is requested before the first one could go out.
-  bool SendFrames(std::string_view key, std::string_view payload) {
+  bool SendFrames(Route& route, std::string_view key, std::string_view payload) {
+    zmq::socket_t& socket = route.socket;
+    const std::string& endpoint = route.destination.endpoint;
     const auto blocked_since = Clock::now();
     bool told_waiting = false;
     while (true) {
       if (stop_requested) return false;
       try {
-        if (socket_.send(zmq::buffer(key), zmq::send_flags::sndmore | zmq::send_flags::dontwait))
+        if (socket.send(zmq::buffer(key), zmq::send_flags::sndmore | zmq::send_flags::dontwait))
           break;
         // The queue is full (or no peer ever connected): wait until the socket takes more.
-        zmq::pollitem_t item{socket_.handle(), 0, ZMQ_POLLOUT, 0};
+        zmq::pollitem_t item{socket.handle(), 0, ZMQ_POLLOUT, 0};
         zmq::poll(&item, 1, std::chrono::milliseconds(200));
-        if (const auto failure = watch_->Failure()) {
-          throw CommandError(settings_.endpoint + ": " + *failure);
+        if (const auto failure = route.watch->Failure()) {
+          throw CommandError(endpoint + ": " + *failure);
         }
       } catch (const zmq::error_t& e) {
         if (e.num() != EINTR) throw CommandError(std::string("send failed: ") + e.what());
@@ -314,7 +412,7 @@ class Sender {
         std::fprintf(stderr,
                      "%snuwatch send: waiting for %s to take messages (is nuwatchd "
                      "running?)\n",
-                     ::isatty(STDERR_FILENO) == 1 ? "\n" : "", settings_.endpoint.c_str());
+                     ::isatty(STDERR_FILENO) == 1 ? "\n" : "", endpoint.c_str());
         told_waiting = true;
       }
     }
@@ -322,7 +420,7 @@ class Sender {
     // guards against a signal interrupting the call.
     while (true) {
       try {
-        socket_.send(zmq::buffer(payload), zmq::send_flags::none);
+        socket.send(zmq::buffer(payload), zmq::send_flags::none);
         return true;
       } catch (const zmq::error_t& e) {
         if (e.num() != EINTR) throw CommandError(std::string("send failed: ") + e.what());
@@ -333,8 +431,7 @@ class Sender {
   const SendSettings& settings_;
   const int dims_;
   zmq::context_t context_;
-  zmq::socket_t socket_;
-  std::optional<HandshakeWatch> watch_;  // after socket_: destroyed before it
+  std::vector<std::unique_ptr<Route>> routes_;  // after context_: destroyed before it
   std::unordered_map<std::string, Pending> pending_;
   std::vector<std::string> order_;  // streams in order of first appearance
   std::string payload_;             // reused: stops allocating once grown to the largest message
@@ -511,6 +608,7 @@ SendSummary SendStdin(const SendSettings& settings, double* elapsed_seconds) {
     summary.messages = sender->messages_sent();
     progress->Finish();
     *elapsed_seconds = std::chrono::duration<double>(Clock::now() - started).count();
+    sender->PrintRoutes();
     summary.delivered = sender->Close(interrupted);
   }
   summary.interrupted = interrupted;
@@ -674,6 +772,7 @@ void RunSend(const SendArguments& args) {
   summary.streams = sender.streams();
   summary.messages = sender.messages_sent();
   const double elapsed = std::chrono::duration<double>(Clock::now() - started).count();
+  sender.PrintRoutes();
   summary.delivered = sender.Close(summary.interrupted);
   FinishSend(settings, summary, elapsed, before);
 }
@@ -685,9 +784,21 @@ void AddSendCommand(CLI::App& app) {
       "Send the vectors of a stream file (or of rows piped in) to nuwatchd's ingest socket");
   command
       ->add_option("--connect", args->connect,
-                   "ZeroMQ endpoint of nuwatchd's ingest socket (PUSH connects to it)")
-      ->type_name("ENDPOINT")
-      ->required();
+                   "ZeroMQ endpoint of nuwatchd's ingest socket (PUSH connects to it); for one "
+                   "daemon that owns every stream")
+      ->type_name("ENDPOINT");
+  command
+      ->add_option(
+          "--member", args->members,
+          "A replica among several (cluster.members) and its ingest endpoint; repeat for "
+          "each member. Each stream goes to its owner (PROTOCOL.md §13), always over the "
+          "same socket, so in order. List every member, as the daemons' cluster.members do")
+      ->type_name("NAME[=ENDPOINT]");
+  command
+      ->add_option("--member-endpoint", args->member_endpoint,
+                   "Endpoint of each --member given without one, {member} standing for its name, "
+                   "e.g. 'tcp://{member}.nuwatchd:7601' for a StatefulSet's headless service")
+      ->type_name("TEMPLATE");
   command
       ->add_option("--input", args->input,
                    "Stream CSV: a time column (ISO-8601 or epoch seconds), a stream column, "
