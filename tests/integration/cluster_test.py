@@ -1,0 +1,503 @@
+#!/usr/bin/python3
+"""Several nuwatchd replicas sharing streams by owner (daemon/protocol/PROTOCOL.md §13), as real
+processes on loopback.
+
+The routing sender here is written from PROTOCOL.md §13.2 alone: the owner of a key is the member
+with the largest BLAKE2b-64(member || 0x00 || key), computed with Python's hashlib.blake2b (a
+third-party BLAKE2 implementation), and messages go over pyzmq (python3-zmq) PUSH sockets with
+python_codec_check.py's encoders; `nuwatch send --member NAME=ENDPOINT` is the other sender. The
+daemons' results are read on their result sockets, their counters over HTTP, their status on the
+control socket. The fraction of keys a fourth member takes is checked against the binomial law of
+rendezvous hashing (Thaler & Ravishankar 1998): each key moves with probability 1/4.
+
+Usage (run by tests/integration/cluster_test.cc):
+  cluster_test.py --nuwatchd BIN --nuwatch BIN [unittest arguments]
+"""
+
+import argparse
+import hashlib
+import json
+import os
+import random
+import shutil
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+import unittest
+
+import zmq
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+import daemon_e2e_test as e2e  # noqa: E402  (the nuwatchd process, pyzmq peer and metrics helpers)
+import python_codec_check as codec  # noqa: E402
+
+NUWATCH = None
+STREAMS = 300
+# Small detectors, so that 300 streams warm up in a few seconds. No periodic refit within a run
+# (refit_every is larger than what a stream receives) and no calibration: each stream's model is the
+# one fitted on its first WARMUP vectors, so a replica's decisions can be compared with a lone
+# daemon's vector for vector.
+WINDOW, WARMUP = 40, 30
+DETECTOR = """
+[limits]
+max_streams = 2000
+max_dims = 8
+
+[detector]
+nu = 0.1
+window = %d
+warmup = %d
+refit_every = 1000
+support_vector_budget = 64
+calibration_folds = 0
+""" % (WINDOW, WARMUP)
+
+
+def weight(member, key):
+    """PROTOCOL.md §13.2, from its Python line."""
+    return int.from_bytes(hashlib.blake2b(member.encode() + b"\0" + key.encode(),
+                                          digest_size=8).digest(), "big")
+
+
+def owner(key, members):
+    """The largest weight; a tie to the bytewise smaller name (§13.2)."""
+    return min(members, key=lambda m: (-weight(m, key), m.encode()))
+
+
+def names(n):
+    return ["nuwatchd-%d" % i for i in range(n)]
+
+
+def cluster_config(members):
+    return DETECTOR + "\n[cluster]\nmembers = [%s]\n" % ", ".join('"%s"' % m for m in members)
+
+
+class Replica(e2e.Daemon):
+    """nuwatchd with `--member NAME` (the name from the flag, the list from the file), or a lone
+    daemon (name None)."""
+
+    def __init__(self, workdir, name, members):
+        os.makedirs(workdir, exist_ok=True)
+        self.name = name
+        # e2e.Daemon writes its test configuration; the [limits] and [detector] here replace its.
+        super().__init__(workdir, os.path.join(workdir, "state"))
+        self.write_config(members)
+
+    def write_config(self, members):
+        with open(self.config_path, "w") as f:
+            f.write('[daemon]\nlog_level = "info"\nrefit_threads = 1\nscoring_threads = 1\n')
+            f.write(cluster_config(members) if members else DETECTOR)
+
+    def start(self):
+        if os.path.exists(self.ready_path):
+            os.remove(self.ready_path)
+        self.log = open(self.log_path, "wb")
+        args = [e2e.NUWATCHD, "--config", self.config_path,
+                "--ingest", "tcp://127.0.0.1:*", "--publish", "tcp://127.0.0.1:*",
+                "--metrics", "127.0.0.1:0", "--state-dir", self.state_dir,
+                "--ready-file", self.ready_path]
+        if self.name is not None:
+            args += ["--member", self.name]
+        self.process = subprocess.Popen(args, stdout=self.log, stderr=subprocess.STDOUT,
+                                        stdin=subprocess.DEVNULL)
+        deadline = time.monotonic() + e2e.START_TIMEOUT
+        while not os.path.exists(self.ready_path):
+            if self.process.poll() is not None:
+                raise AssertionError("nuwatchd exited with %d before it was ready:\n%s"
+                                     % (self.process.returncode, self.log_tail()))
+            if time.monotonic() > deadline:
+                raise AssertionError("no ready file:\n%s" % self.log_tail())
+            time.sleep(0.02)  # polling a file for its appearance, bounded by the deadline
+        with open(self.ready_path) as f:
+            self.endpoints = json.load(f)
+        return self.endpoints
+
+
+class Fleet:
+    """Invented readings of STREAMS units (Gaussian noise around a point per unit)."""
+
+    def __init__(self, seed):
+        rng = random.Random(seed)
+        self.keys = ["site-%d/pump-%03d" % (i % 3, i) for i in range(STREAMS)]
+        self.center = {k: [rng.uniform(5, 15), rng.uniform(40, 60), rng.uniform(0.5, 2)]
+                       for k in self.keys}
+        self.rng = random.Random(seed + 1)
+        self.next_t = {k: e2e.T0 for k in self.keys}
+
+    def rows(self, count, keys=None):
+        """count vectors per stream, interleaved across the streams: [(key, t, x)]."""
+        out = []
+        for _ in range(count):
+            for k in keys or self.keys:
+                t = self.next_t[k]
+                self.next_t[k] += 10.0
+                out.append((k, t, [c + self.rng.gauss(0, 0.05 * c) for c in self.center[k]]))
+        return out
+
+    @staticmethod
+    def write_csv(path, rows):
+        with open(path, "w") as f:
+            f.write("time,stream,a,b,c\n")
+            for k, t, x in rows:
+                f.write("%r,%s,%s\n" % (t, k, ",".join(repr(v) for v in x)))
+
+
+class ClusterTestCase(unittest.TestCase):
+    def setUp(self):
+        for program in (e2e.NUWATCHD, NUWATCH):
+            if not program or not os.access(program, os.X_OK):
+                self.fail("program not found or not executable: %r" % program)
+        self.workdir = tempfile.mkdtemp(prefix="nuwatch-cluster-")
+        self.replicas = {}  # name (None: the lone daemon) -> Replica
+        self.peers = {}
+        self.context = zmq.Context()
+        self.routes = {}  # member -> PUSH socket of the Python router
+
+    def tearDown(self):
+        self.context.destroy(linger=0)
+        for peer in self.peers.values():
+            peer.close()
+        for replica in self.replicas.values():
+            replica.kill()
+        failed = getattr(getattr(self, "_outcome", None), "result", None)
+        if failed is None or any(t is self for t, _ in failed.errors + failed.failures):
+            for replica in self.replicas.values():
+                sys.stderr.write("--- %s ---\n%s\n" % (replica.log_path, replica.log_tail()))
+        shutil.rmtree(self.workdir, ignore_errors=True)
+
+    def start(self, name, members):
+        replica = Replica(os.path.join(self.workdir, name or "lone"), name, members)
+        self.replicas[name] = replica
+        endpoints = replica.start()
+        peer = e2e.Peer(endpoints)
+        # Thousands of results arrive while the test is sending: no high-water mark on this side
+        # (set before connecting), so that the daemon never has to drop one for a slow reader.
+        peer.sub.close()
+        peer.sub = peer.context.socket(zmq.SUB)
+        peer.sub.setsockopt(zmq.LINGER, 0)
+        peer.sub.setsockopt(zmq.RCVHWM, 0)
+        peer.sub.setsockopt(zmq.SUBSCRIBE, b"")
+        peer.sub.connect(endpoints["publish"])
+        self.peers[name] = peer
+        # A probe key this member owns, so that the probe is scored here (e2e's probe is "probe").
+        probe = "probe"
+        if members:
+            probe = next("probe-%d" % i for i in range(1000)
+                         if owner("probe-%d" % i, members) == name)
+        peer.subscribe_with_probe(probe)
+        return replica, peer
+
+    def route(self, rows, members):
+        """The Python router of §13: each row to its owner, one JSON message per vector."""
+        for key, t, x in rows:
+            m = owner(key, members)
+            if m not in self.routes:
+                push = self.context.socket(zmq.PUSH)
+                push.setsockopt(zmq.LINGER, 2000)
+                push.connect(self.replicas[m].endpoints["ingest"][0])
+                self.routes[m] = push
+            self.routes[m].send_multipart([key.encode(), codec.encode_json([t], [x])])
+
+    def send_to_lone(self, rows):
+        for key, t, x in rows:
+            self.peers[None].send(key, codec.encode_json([t], [x]))
+
+    def nuwatch_send(self, rows, *target):
+        path = os.path.join(self.workdir, "rows-%d.csv" % len(os.listdir(self.workdir)))
+        Fleet.write_csv(path, rows)
+        run = subprocess.run([NUWATCH, "send", "--input", path] + list(target),
+                             capture_output=True, timeout=60)
+        self.assertEqual(run.returncode, 0, run.stderr.decode())
+        return run.stderr.decode()
+
+    def member_flags(self, members):
+        return [a for m in members
+                for a in ("--member", "%s=%s" % (m, self.replicas[m].endpoints["ingest"][0]))]
+
+    def results_by_stream(self, name, keys):
+        return {k: self.peers[name].results(k) for k in keys if self.peers[name].results(k)}
+
+    def wait_for_results(self, expected):
+        """Until replica n has expected[n][key] results of each key (or more)."""
+        def complete():
+            return all(len(self.peers[n].results(k)) >= count
+                       for n, counts in expected.items() for k, count in counts.items())
+        deadline = time.monotonic() + 30
+        while not complete():
+            if time.monotonic() > deadline:
+                missing = [(n, k, len(self.peers[n].results(k)), c)
+                           for n, counts in expected.items() for k, c in counts.items()
+                           if len(self.peers[n].results(k)) < c]
+                self.fail("results missing after 30 s (replica, stream, got, expected): %r"
+                          % missing[:5])
+            for n in expected:
+                try:
+                    self.peers[n].wait_for(complete, "results", timeout=0.05)
+                except AssertionError:
+                    pass  # this replica has nothing more now: read the next
+
+    def wait_for_models(self, name, keys):
+        """Until the replica's status shows a model for every key of `keys`."""
+        deadline = time.monotonic() + 30
+        while True:
+            status = self.peers[name].control({"command": "status"})
+            versions = {s["stream"]: s["model_version"] for s in status["streams"]}
+            if all(versions.get(k, 0) >= 1 for k in keys):
+                return status
+            self.assertLess(time.monotonic(), deadline,
+                            "%s: streams without a model after 30 s" % name)
+            time.sleep(0.05)  # polling the control socket, bounded by the deadline
+
+    def counter(self, name, metric, **labels):
+        return e2e.metric(e2e.parse_metrics(self.peers[name].scrape()), metric, **labels)
+
+
+class OwnershipAndRouting(ClusterTestCase):
+    def test_every_stream_is_scored_once_by_its_owner_as_a_lone_daemon_scores_it(self):
+        members = names(3)
+        for m in members:
+            self.start(m, members)
+        self.start(None, [])
+        for m in members:
+            status = self.peers[m].control({"command": "status"})
+            self.assertEqual((status["member"], status["members"]), (m, 3))
+        status = self.peers[None].control({"command": "status"})
+        self.assertEqual((status["member"], status["members"]), (None, 0))
+
+        fleet = Fleet(seed=1)
+        owners = {k: owner(k, members) for k in fleet.keys}
+        # The hash spreads the 300 keys: Binomial(300, 1/3) per member, sd 8.2; 5 sd either side.
+        for m in members:
+            share = sum(1 for k in fleet.keys if owners[k] == m)
+            self.assertLess(abs(share - 100), 41, (m, share))
+
+        # Warm-up through the Python router, the same messages to the lone daemon.
+        warm = fleet.rows(WARMUP)
+        self.route(warm, members)
+        self.send_to_lone(warm)
+        for m in members:
+            self.wait_for_models(m, [k for k in fleet.keys if owners[k] == m])
+        self.wait_for_models(None, fleet.keys)
+
+        # Then through `nuwatch send --member`, and `nuwatch send --connect` to the lone daemon.
+        scored = fleet.rows(10)
+        out = self.nuwatch_send(scored, *self.member_flags(members))
+        for m in members:
+            share = sum(1 for k in fleet.keys if owners[k] == m)
+            self.assertIn("member %s (%s): %d vectors of %d stream(s)"
+                          % (m, self.replicas[m].endpoints["ingest"][0], 10 * share, share), out)
+        self.nuwatch_send(scored, "--connect", self.replicas[None].endpoints["ingest"][0])
+        expected = {m: {} for m in members + [None]}
+        for k in fleet.keys:
+            expected[owners[k]][k] = expected[None][k] = WARMUP + 10
+        self.wait_for_results(expected)
+
+        lone = self.peers[None]
+        for k in fleet.keys:
+            at = [m for m in members if self.peers[m].results(k)]
+            self.assertEqual(at, [owners[k]], k)  # exactly one replica, the owner by hashlib
+            mine = self.peers[owners[k]].results(k)
+            self.assertEqual([r["t"] for r in mine], [r["t"] for r in lone.results(k)], k)
+            self.assertEqual(len(mine), WARMUP + 10, k)
+            # The last 10 were scored by the model fitted on the warm-up, on both sides: the same
+            # decisions, bit for bit (the same code, data and message shapes).
+            for r, expected in zip(mine[WARMUP:], lone.results(k)[WARMUP:]):
+                self.assertEqual(r["state"], "scoring", k)
+                self.assertEqual((r["decision"], r["anomaly"]),
+                                 (expected["decision"], expected["anomaly"]), (k, r["t"]))
+        for m in members:
+            self.assertEqual(self.counter(m, "nuwatch_rejected_messages_total",
+                                          reason="not_owner"), 0)
+
+        # A misrouted message: counted under not_owner, and it creates no stream.
+        key = next(k for k in fleet.keys if owners[k] == "nuwatchd-1")
+        (_, t, x), = fleet.rows(1, [key])
+        self.peers["nuwatchd-0"].send(key, codec.encode_json([t], [x]))
+        deadline = time.monotonic() + e2e.WAIT_TIMEOUT
+        while self.counter("nuwatchd-0", "nuwatch_rejected_messages_total",
+                           reason="not_owner") < 1:
+            self.assertLess(time.monotonic(), deadline, "no not_owner rejection counted")
+            time.sleep(0.05)  # polling the counter, bounded by the deadline
+        status = self.peers["nuwatchd-0"].control({"command": "status"})
+        self.assertNotIn(key, [s["stream"] for s in status["streams"]])
+        self.assertEqual(self.counter("nuwatchd-0", "nuwatch_rejected_messages_total",
+                                      reason="not_owner"), 1)
+
+
+class MembershipChanges(ClusterTestCase):
+    def warm(self, fleet, members):
+        self.route(fleet.rows(WARMUP), members)
+        owners = {k: owner(k, members) for k in fleet.keys}
+        for m in members:
+            self.wait_for_models(m, [k for k in fleet.keys if owners[k] == m])
+        return owners
+
+    def test_a_fourth_member_takes_about_a_quarter_of_the_streams_which_relearn_there(self):
+        three, four = names(3), names(4)
+        for m in three:
+            self.start(m, three)
+        self.start("nuwatchd-3", four)
+        fleet = Fleet(seed=2)
+        before = self.warm(fleet, three)
+        after = {k: owner(k, four) for k in fleet.keys}
+        moved = [k for k in fleet.keys if after[k] != before[k]]
+        # Rendezvous hashing moves keys only to the new member (Thaler & Ravishankar 1998)...
+        self.assertTrue(all(after[k] == "nuwatchd-3" for k in moved))
+        # ... each with probability 1/4: Binomial(300, 1/4), mean 75, sd 7.5; 5 sd either side.
+        self.assertLess(abs(len(moved) - 75), 38, len(moved))
+
+        for m in three:
+            self.replicas[m].write_config(four)
+            self.replicas[m].process.send_signal(signal.SIGHUP)
+        for m in three:
+            mine = [k for k in moved if before[k] == m]
+            self.replicas[m].wait_for_log(lambda text: "reload: released %d streams" % len(mine)
+                                          in text or (not mine and "cluster.members has 4"
+                                                      in text), "the release")
+            self.assertEqual(self.counter(m, "nuwatch_streams_released_total"), len(mine))
+            status = self.peers[m].control({"command": "status"})
+            self.assertEqual(status["members"], 4)
+            tracked = {s["stream"] for s in status["streams"]}
+            self.assertFalse(tracked & set(mine), m)
+            self.assertEqual(tracked - {s for s in tracked if s.startswith("probe")},
+                             {k for k in fleet.keys if after[k] == m})
+            # The state files stay on disk (§13.4).
+            files = set(os.listdir(self.replicas[m].state_dir))
+            for k in mine:
+                self.assertIn(k.replace("/", "%").replace(":", "+") + ".state", files)
+
+        # Routed over four members: the moved streams learn afresh at nuwatchd-3 (a new warm-up,
+        # until the handover of issue 12 §3 exists), the others go on scoring where they were.
+        self.route(fleet.rows(WARMUP), four)
+        self.wait_for_results({m: {k: WARMUP if k in moved else 2 * WARMUP
+                                   for k in fleet.keys if after[k] == m} for m in four})
+        for k in fleet.keys:
+            results = self.peers[after[k]].results(k)
+            if k in moved:
+                self.assertEqual(len(results), WARMUP, k)
+                self.assertTrue(all(r["state"] == "learning" for r in results), k)
+            else:
+                self.assertEqual(len(results), 2 * WARMUP, k)
+                self.assertTrue(all(r["state"] == "scoring" for r in results[WARMUP:]), k)
+        self.wait_for_models("nuwatchd-3", moved)
+        self.route(fleet.rows(1, moved), four)
+        self.wait_for_results({"nuwatchd-3": {k: WARMUP + 1 for k in moved}})
+        for k in moved:
+            self.assertEqual(self.peers["nuwatchd-3"].results(k)[-1]["state"], "scoring", k)
+
+    def test_a_killed_member_leaves_its_streams_to_the_others_which_start_them_fresh(self):
+        three, two = names(3), names(2)
+        for m in three:
+            self.start(m, three)
+        fleet = Fleet(seed=3)
+        before = self.warm(fleet, three)
+        lost = [k for k in fleet.keys if before[k] == "nuwatchd-2"]
+        self.replicas["nuwatchd-2"].process.send_signal(signal.SIGKILL)
+        self.replicas["nuwatchd-2"].process.wait(timeout=e2e.WAIT_TIMEOUT)
+
+        # Until the survivors' member list drops the lost member, its keys are still not theirs:
+        # a sender that routes them elsewhere sees them counted under not_owner (§13.2).
+        rows = fleet.rows(1, lost[:5])
+        self.nuwatch_send(rows, *self.member_flags(two))
+        deadline = time.monotonic() + e2e.WAIT_TIMEOUT
+        while sum(self.counter(m, "nuwatch_rejected_messages_total", reason="not_owner")
+                  for m in two) < 5:
+            self.assertLess(time.monotonic(), deadline, "the 5 misrouted messages not counted")
+            time.sleep(0.05)  # polling the counters, bounded by the deadline
+
+        # The survivors reload with two members; the sender, given the surviving members, routes
+        # every stream; the lost member's streams start afresh at their new owners.
+        for m in two:
+            self.replicas[m].write_config(two)
+            self.replicas[m].process.send_signal(signal.SIGHUP)
+            self.replicas[m].wait_for_log(lambda text: "cluster.members has 2" in text, "reload")
+            self.assertEqual(self.counter(m, "nuwatch_streams_released_total"), 0)
+        rows = fleet.rows(3)
+        self.nuwatch_send(rows, *self.member_flags(two))
+        after = {k: owner(k, two) for k in fleet.keys}
+        self.wait_for_results({m: {k: 3 if k in lost else WARMUP + 3
+                                   for k in fleet.keys if after[k] == m} for m in two})
+        for k in fleet.keys:
+            # Rendezvous: a surviving member keeps its keys (the lost member's move alone).
+            if k not in lost:
+                self.assertEqual(after[k], before[k], k)
+            results = self.peers[after[k]].results(k)
+            if k in lost:
+                self.assertEqual([r["state"] for r in results], ["learning"] * 3, k)
+            else:
+                self.assertEqual([r["state"] for r in results[WARMUP:]], ["scoring"] * 3, k)
+
+
+class ConfigurationErrors(ClusterTestCase):
+    """Bad member lists stop nuwatchd with one line and status 2 (PROTOCOL.md §11.6), a reload
+    with one is refused as a whole, and `nuwatch send` refuses bad --member flags with one line."""
+
+    def run_nuwatchd(self, members, member):
+        path = os.path.join(self.workdir, "bad.toml")
+        with open(path, "w") as f:
+            f.write(cluster_config(members))
+        return subprocess.run([e2e.NUWATCHD, "--config", path, "--member", member,
+                               "--ingest", "tcp://127.0.0.1:*", "--publish", "tcp://127.0.0.1:*",
+                               "--metrics", "127.0.0.1:0",
+                               "--state-dir", os.path.join(self.workdir, "bad-state")],
+                              capture_output=True, timeout=e2e.WAIT_TIMEOUT)
+
+    def assert_refused(self, run, *fragments):
+        err = run.stderr.decode()
+        self.assertEqual(run.returncode, 2, err)
+        self.assertEqual(len(err.strip().splitlines()), 1, err)
+        for fragment in fragments:
+            self.assertIn(fragment, err)
+
+    def test_bad_member_lists_are_refused_at_start_and_on_reload(self):
+        self.assert_refused(self.run_nuwatchd(["nuwatchd-0", "nuwatchd-1"], "nuwatchd-7"),
+                            'cluster.member = "nuwatchd-7" is not one of cluster.members '
+                            "(nuwatchd-0, nuwatchd-1)")
+        self.assert_refused(self.run_nuwatchd(["nuwatchd-0", "nuwatchd-0"], "nuwatchd-0"),
+                            "cluster.members")
+        self.assert_refused(self.run_nuwatchd(["nuwatchd 0"], "nuwatchd 0"),
+                            "cluster.members", "0x20 at offset 8")
+        self.assert_refused(self.run_nuwatchd(["a=b"], "a=b"), "0x3D at offset 1")
+
+        members = names(2)
+        self.start("nuwatchd-0", members)
+        replica = self.replicas["nuwatchd-0"]
+        replica.write_config(["nuwatchd-1", "nuwatchd-2"])  # --member nuwatchd-0 is not in it
+        reply = self.peers["nuwatchd-0"].control({"command": "reload"})
+        self.assertFalse(reply["ok"])
+        self.assertIn('cluster.member = "nuwatchd-0" is not one of cluster.members', reply["error"])
+        self.assertEqual(self.peers["nuwatchd-0"].control({"command": "status"})["members"], 2)
+
+        endpoint = replica.endpoints["ingest"][0]
+        path = os.path.join(self.workdir, "one.csv")
+        Fleet.write_csv(path, [("pump-1", e2e.T0, [1.0, 2.0, 3.0])])
+        for flags, fragment in (
+                (["--member", "a=" + endpoint, "--member", "a=" + endpoint], '"a" appears twice'),
+                (["--member", "a"], "no endpoint"),
+                (["--member", "a b=" + endpoint], "0x20"),
+                (["--member", "a=" + endpoint, "--connect", endpoint], "exclude each other"),
+                (["--member", "a=" + endpoint, "--metrics", replica.endpoints["metrics"]],
+                 "--metrics reads one daemon"),
+                (["--member", "a", "--member-endpoint", "nowhere"], "--member a")):
+            run = subprocess.run([NUWATCH, "send", "--input", path] + flags,
+                                 capture_output=True, timeout=e2e.WAIT_TIMEOUT)
+            err = run.stderr.decode()
+            self.assertEqual(run.returncode, 1, (flags, err))
+            self.assertEqual(len(err.strip().splitlines()), 1, err)
+            self.assertIn(fragment, err, flags)
+
+
+def main():
+    global NUWATCH
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--nuwatchd", required=True)
+    parser.add_argument("--nuwatch", required=True)
+    args, rest = parser.parse_known_args()
+    e2e.NUWATCHD, NUWATCH = args.nuwatchd, args.nuwatch
+    unittest.main(argv=[sys.argv[0]] + rest, verbosity=2)
+
+
+if __name__ == "__main__":
+    main()
