@@ -4,8 +4,8 @@ processes on loopback.
 
 The routing sender here is written from PROTOCOL.md §13.2 alone: the owner of a key is the member
 with the largest BLAKE2b-64(member || 0x00 || key), computed with Python's hashlib.blake2b (a
-third-party BLAKE2 implementation), and messages go over pyzmq (python3-zmq) PUSH sockets with
-python_codec_check.py's encoders; `nuwatch send --member NAME=ENDPOINT` is the other sender. The
+third-party BLAKE2 implementation) in python_codec_check.py, and messages go over pyzmq
+(python3-zmq) PUSH sockets with that file's encoders; `nuwatch send --member NAME=ENDPOINT` is the other sender. The
 daemons' results are read on their result sockets, their counters over HTTP, their status on the
 control socket. The fraction of keys a fourth member takes is checked against the binomial law of
 rendezvous hashing (Thaler & Ravishankar 1998): each key moves with probability 1/4.
@@ -15,7 +15,6 @@ Usage (run by tests/integration/cluster_test.cc):
 """
 
 import argparse
-import hashlib
 import json
 import os
 import random
@@ -55,15 +54,8 @@ calibration_folds = 0
 """ % (WINDOW, WARMUP)
 
 
-def weight(member, key):
-    """PROTOCOL.md §13.2, from its Python line."""
-    return int.from_bytes(hashlib.blake2b(member.encode() + b"\0" + key.encode(),
-                                          digest_size=8).digest(), "big")
-
-
-def owner(key, members):
-    """The largest weight; a tie to the bytewise smaller name (§13.2)."""
-    return min(members, key=lambda m: (-weight(m, key), m.encode()))
+# PROTOCOL.md §13.2 in python_codec_check.py, the independent Python reading of the document.
+owner = codec.owner_of
 
 
 def names(n):

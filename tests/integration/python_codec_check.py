@@ -4,7 +4,7 @@
 It is an independent implementation that follows daemon/protocol/PROTOCOL.md only (section numbers below,
 "§", refer to it): it shares no code with the C++ codec and relies on nothing the document does not
 say, so that the C++ tests (tests/unit/protocol/wire_protocol_test.cc) check the C++ codec against a
-separate reading of the document. Only the standard library is used (struct, json, math).
+separate reading of the document. Only the standard library is used (struct, json, math, hashlib).
 
 Usage:
   python_codec_check.py --emit DIR        write sample payloads and DIR/manifest.json, which says
@@ -18,10 +18,12 @@ Usage:
                                           validate each line of FILE as a §9 result or incident
                                           event; print one normalised JSON line each; exit 1 with a
                                           message at the first line that breaks §9
-  python_codec_check.py --self-test       check this implementation against the §6.4 example
+  python_codec_check.py --self-test       check this implementation against the §6.4 example and
+                                          §13.3's vectors
 """
 
 import argparse
+import hashlib
 import json
 import math
 import os
@@ -71,6 +73,20 @@ class ProtocolError(Exception):
 
 def key_ok(key: bytes) -> bool:
     return 1 <= len(key) <= MAX_KEY_BYTES and all(b in KEY_BYTES for b in key)
+
+
+# --- Ownership across replicas (§13) ---
+
+
+def owner_weight(member: str, key: str) -> int:
+    """§13.2: BLAKE2b with an 8-byte digest of member || 0x00 || key, big-endian."""
+    digest = hashlib.blake2b(member.encode() + b"\0" + key.encode(), digest_size=8).digest()
+    return int.from_bytes(digest, "big")
+
+
+def owner_of(key: str, members) -> str:
+    """§13.2: the member with the largest weight; a tie to the bytewise smaller name."""
+    return min(members, key=lambda m: (-owner_weight(m, key), m.encode()))
 
 
 # --- Encoders ---
@@ -505,6 +521,10 @@ def _self_test():
                             "000000000000F83F" "00000000000000C0")
     assert encode_binary([1767225600.25], [[1.5, -2.0]]) == example
     assert decode_payload(example) == ([1767225600.25], [[1.5, -2.0]], "f64")
+    # §13.3: a weight and an owner from the tables.
+    assert owner_weight("nuwatchd-1", "pump-01") == 0xe2be1b902c4f4aae
+    assert owner_of("pump-03", ["nuwatchd-0", "nuwatchd-1", "nuwatchd-2", "nuwatchd-3"]) == \
+        "nuwatchd-3"
     print("self-test passed")
     return 0
 

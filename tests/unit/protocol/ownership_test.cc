@@ -189,10 +189,10 @@ TEST(OwnerOf, TakesTheLargestWeightWhateverTheOrderOfTheList) {
   }
 }
 
-TEST(OwnerOf, BreaksATieInFavourOfTheBytewiseSmallerName) {
-  // Equal weights need equal names with distinct lists... which §13.1 forbids; the tie rule is
-  // still observable with a list naming the same member twice: the first index of the smallest
-  // name wins, and a smaller name placed later wins over a larger one.
+TEST(OwnerOf, EqualWeightsGoToTheFirstOfEqualNamesAndAnEmptyListIsRefused) {
+  // Two distinct names with equal weights would take a 64-bit BLAKE2b collision, so §13.2's tie
+  // rule cannot be shown with a real tie; equal names (which §13.1 forbids in a member list, and
+  // MemberListError refuses) have equal weights and show that a later equal weight never wins.
   const std::vector<std::string> twice = {"nuwatchd-1", "nuwatchd-1"};
   EXPECT_EQ(OwnerOf("k", twice), 0u);
   EXPECT_THROW(OwnerOf("k", std::vector<std::string>{}), PreconditionError);
