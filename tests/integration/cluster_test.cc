@@ -37,6 +37,10 @@ TEST(Cluster, EveryStreamIsScoredOnceByItsOwnerAsALoneDaemonScoresIt) {
   RunScript("OwnershipAndRouting");
 }
 
+TEST(Cluster, ReplicasOnOnePublisherKeepTheirOwnStreamsAndCountTheRest) {
+  RunScript("SubscribedReplicas");
+}
+
 TEST(Cluster, AFourthMemberTakesAboutAQuarterOfTheStreamsWhichRelearnThere) {
   RunScript(
       "MembershipChanges.test_a_fourth_member_takes_about_a_quarter_of_the_streams_which_"

@@ -58,6 +58,13 @@ calibration_folds = 0
 owner = codec.owner_of
 
 
+def probe_key(name, members):
+    """A probe key the member owns, so that the probe is scored there (e2e's probe is "probe")."""
+    if not members:
+        return "probe"
+    return next("probe-%d" % i for i in range(1000) if owner("probe-%d" % i, members) == name)
+
+
 def names(n):
     return ["nuwatchd-%d" % i for i in range(n)]
 
@@ -70,9 +77,10 @@ class Replica(e2e.Daemon):
     """nuwatchd with `--member NAME` (the name from the flag, the list from the file), or a lone
     daemon (name None)."""
 
-    def __init__(self, workdir, name, members):
+    def __init__(self, workdir, name, members, subscribe=None):
         os.makedirs(workdir, exist_ok=True)
         self.name = name
+        self.subscribe = subscribe
         # e2e.Daemon writes its test configuration; the [limits] and [detector] here replace its.
         super().__init__(workdir, os.path.join(workdir, "state"))
         self.write_config(members)
@@ -92,6 +100,8 @@ class Replica(e2e.Daemon):
                 "--ready-file", self.ready_path]
         if self.name is not None:
             args += ["--member", self.name]
+        if self.subscribe:
+            args += ["--subscribe", self.subscribe]
         self.process = subprocess.Popen(args, stdout=self.log, stderr=subprocess.STDOUT,
                                         stdin=subprocess.DEVNULL)
         deadline = time.monotonic() + e2e.START_TIMEOUT
@@ -159,8 +169,8 @@ class ClusterTestCase(unittest.TestCase):
                 sys.stderr.write("--- %s ---\n%s\n" % (replica.log_path, replica.log_tail()))
         shutil.rmtree(self.workdir, ignore_errors=True)
 
-    def start(self, name, members):
-        replica = Replica(os.path.join(self.workdir, name or "lone"), name, members)
+    def start(self, name, members, subscribe=None, probe=True):
+        replica = Replica(os.path.join(self.workdir, name or "lone"), name, members, subscribe)
         self.replicas[name] = replica
         endpoints = replica.start()
         peer = e2e.Peer(endpoints)
@@ -173,12 +183,8 @@ class ClusterTestCase(unittest.TestCase):
         peer.sub.setsockopt(zmq.SUBSCRIBE, b"")
         peer.sub.connect(endpoints["publish"])
         self.peers[name] = peer
-        # A probe key this member owns, so that the probe is scored here (e2e's probe is "probe").
-        probe = "probe"
-        if members:
-            probe = next("probe-%d" % i for i in range(1000)
-                         if owner("probe-%d" % i, members) == name)
-        peer.subscribe_with_probe(probe)
+        if probe:
+            peer.subscribe_with_probe(probe_key(name, members))
         return replica, peer
 
     def route(self, rows, members):
@@ -316,6 +322,61 @@ class OwnershipAndRouting(ClusterTestCase):
         self.assertNotIn(key, [s["stream"] for s in status["streams"]])
         self.assertEqual(self.counter("nuwatchd-0", "nuwatch_rejected_messages_total",
                                       reason="not_owner"), 1)
+
+
+class SubscribedReplicas(ClusterTestCase):
+    def test_replicas_on_one_publisher_keep_their_own_streams_and_count_the_rest(self):
+        """README "Producers that cannot route": every replica subscribes to the producer's PUB
+        socket and keeps only the keys it owns; the others count under not_owner (§13.2)."""
+        members = names(3)
+        publisher = self.context.socket(zmq.PUB)
+        self.addCleanup(publisher.close, 0)
+        publisher.setsockopt(zmq.SNDHWM, 0)  # no drops on this side while the replicas keep up
+        publisher.bind("tcp://127.0.0.1:*")
+        endpoint = publisher.getsockopt(zmq.LAST_ENDPOINT).decode()
+        for m in members:
+            self.start(m, members, subscribe=endpoint, probe=False)
+        # ZeroMQ delivers to a subscriber only once its subscription has arrived: publish each
+        # replica's probe until every replica has scored its own (results from each one's socket).
+        probes = {m: probe_key(m, members) for m in members}
+        data = e2e.StreamData(seed=7, start=e2e.T0 + 1e8)
+        deadline = time.monotonic() + e2e.WAIT_TIMEOUT
+        while not all(self.peers[m].results(probes[m]) for m in members):
+            self.assertLess(time.monotonic(), deadline, "the replicas do not see the publisher")
+            for m in members:
+                t, x = data.normal()
+                publisher.send_multipart([probes[m].encode(), codec.encode_json([t], [x])])
+            for m in members:
+                try:
+                    self.peers[m].wait_for(lambda: False, "probe", timeout=0.05)
+                except AssertionError:
+                    pass  # results are read; the loop checks them
+        before = {m: self.counter(m, "nuwatch_rejected_messages_total", reason="not_owner")
+                  for m in members}
+
+        fleet = Fleet(seed=4)
+        rows = fleet.rows(5)
+        for key, t, x in rows:
+            publisher.send_multipart([key.encode(), codec.encode_json([t], [x])])
+        owners = {k: owner(k, members) for k in fleet.keys}
+        self.wait_for_results({m: {k: 5 for k in fleet.keys if owners[k] == m} for m in members})
+        for m in members:
+            mine = sum(1 for k in fleet.keys if owners[k] == m)
+            deadline = time.monotonic() + e2e.WAIT_TIMEOUT
+            while True:
+                rejected = self.counter(m, "nuwatch_rejected_messages_total",
+                                        reason="not_owner") - before[m]
+                if rejected >= 5 * (STREAMS - mine) or time.monotonic() > deadline:
+                    break
+                time.sleep(0.05)  # polling the counter, bounded by the deadline
+            # Every message of another member's key, and none of its own, counted not_owner.
+            self.assertEqual(rejected, 5 * (STREAMS - mine), m)
+            status = self.peers[m].control({"command": "status"})
+            self.assertEqual({s["stream"] for s in status["streams"]} - set(probes.values()),
+                             {k for k in fleet.keys if owners[k] == m})
+            for k in fleet.keys:
+                if owners[k] != m:
+                    self.assertFalse(self.peers[m].results(k), (m, k))
 
 
 class MembershipChanges(ClusterTestCase):
