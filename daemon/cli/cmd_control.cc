@@ -88,8 +88,16 @@ std::string Text(const json& value) {
 // The status reply as one row per stream.
 void PrintStatusTable(const json& reply) {
   const json& streams = reply.value("streams", json::array());
-  std::printf("nuwatchd %s: %zu stream(s)\n", Text(reply.value("version", json())).c_str(),
+  std::printf("nuwatchd %s: %zu stream(s)", Text(reply.value("version", json())).c_str(),
               streams.size());
+  // A replica among several (PROTOCOL.md §13) says which one it is.
+  const json& member = reply.value("member", json());
+  const json& members = reply.value("members", json());
+  if (member.is_string() && members.is_number_integer() && members.get<int64_t>() > 0) {
+    std::printf(", member %s of %lld", member.get<std::string>().c_str(),
+                static_cast<long long>(members.get<int64_t>()));
+  }
+  std::printf("\n");
   if (streams.empty()) return;
   std::size_t width = 6;
   for (const json& s : streams) width = std::max(width, Text(s.value("stream", json())).size());

@@ -261,6 +261,11 @@ class OwnershipAndRouting(ClusterTestCase):
         for m in members:
             status = self.peers[m].control({"command": "status"})
             self.assertEqual((status["member"], status["members"]), (m, 3))
+            shown = subprocess.run([NUWATCH, "control", "--connect",
+                                    self.replicas[m].endpoints["control"], "status"],
+                                   capture_output=True, timeout=e2e.WAIT_TIMEOUT)
+            self.assertEqual(shown.returncode, 0, shown.stderr)
+            self.assertIn(", member %s of 3\n" % m, shown.stdout.decode())
         status = self.peers[None].control({"command": "status"})
         self.assertEqual((status["member"], status["members"]), (None, 0))
 
