@@ -1251,6 +1251,13 @@ void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_
   const PayloadView& p = decoded.payload;
   Stream* stream = shard.streams.Find(key);
   if (stream == nullptr) {
+    // The socket thread checked the owner, but a reload may have changed it while this message
+    // waited in the shard's queue (a released stream must not come back here).
+    const std::vector<std::string>& members = config.daemon.cluster_members;
+    if (!members.empty() && members[OwnerOf(key, members)] != config.daemon.cluster_member) {
+      Reject(RejectReason::kNotOwner, "another member of cluster.members owns the key", key);
+      return;
+    }
     const std::string stream_key(key);
     const DetectorOptions stream_options = DetectorOptionsFor(config, stream_key);
     if (!stream_options.feature_names.empty() &&
