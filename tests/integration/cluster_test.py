@@ -445,6 +445,26 @@ class MembershipChanges(ClusterTestCase):
         for k in moved:
             self.assertEqual(self.peers["nuwatchd-3"].results(k)[-1]["state"], "scoring", k)
 
+        # A restart leaves the released streams' state files on disk, unread (§13.4), and
+        # restores the streams the member owns.
+        m = max(three, key=lambda n: sum(1 for k in moved if before[k] == n))
+        released = [k for k in moved if before[k] == m]
+        self.peers.pop(m).close()
+        self.assertEqual(self.replicas[m].stop(), 0, self.replicas[m].log_tail())
+        self.start(m, four, probe=False)
+        self.replicas[m].wait_for_log(
+            lambda text: "state: %d state files are of streams other members" % len(released)
+            in text, "the count of state files left unread")
+        status = self.peers[m].control({"command": "status"})
+        restored = {s["stream"] for s in status["streams"]}
+        self.assertEqual(restored - {s for s in restored if s.startswith("probe")},
+                         {k for k in fleet.keys if after[k] == m})
+        self.assertTrue(all(s["model_version"] >= 1 for s in status["streams"]
+                            if not s["stream"].startswith("probe")))
+        files = set(os.listdir(self.replicas[m].state_dir))
+        for k in released:
+            self.assertIn(k.replace("/", "%").replace(":", "+") + ".state", files)
+
     def test_a_killed_member_leaves_its_streams_to_the_others_which_start_them_fresh(self):
         three, two = names(3), names(2)
         for m in three:
