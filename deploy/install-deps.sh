@@ -23,6 +23,11 @@ missing=()
 for p in "${packages[@]}"; do
   dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "install ok installed" || missing+=("$p")
 done
+# `kubectl kustomize` builds deploy/kubernetes in the tests. Debian's kubernetes-client provides
+# it; a kubectl installed some other way owns /usr/bin/kubectl, and the two packages conflict.
+if ! command -v kubectl >/dev/null 2>&1; then
+  missing+=(kubernetes-client)
+fi
 if [ ${#missing[@]} -eq 0 ]; then
   exit 0
 fi

@@ -902,6 +902,7 @@ void Daemon::Impl::Start() {
   spdlog::info("listening publish={}", endpoints.publish);
   spdlog::info("listening control={}", endpoints.control);
   spdlog::info("listening metrics={}", endpoints.metrics);
+  metrics.cluster_members().Set(static_cast<double>(config.daemon.cluster_members.size()));
   if (!options.ready_file.empty()) {
     const nlohmann::json ready = {{"ingest", endpoints.ingest},
                                   {"publish", endpoints.publish},
@@ -1984,6 +1985,7 @@ ReloadOutcome Daemon::Impl::Reload() {
       config.source_path, outcome.streams_updated, all.size());
   if (new_members) {
     owner_cache.clear();
+    metrics.cluster_members().Set(static_cast<double>(config.daemon.cluster_members.size()));
     spdlog::info("reload: cluster.member = {}, cluster.members has {} members",
                  config.daemon.cluster_member.empty() ? "(none)" : config.daemon.cluster_member,
                  config.daemon.cluster_members.size());

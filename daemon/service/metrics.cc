@@ -155,6 +155,10 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
                              "reload of cluster.members gave them to another member.",
                              r)
                            .Add({});
+  cluster_members_ =
+      &Build(BuildGauge(), "nuwatch_cluster_members",
+             "Members in this replica's cluster.members list (0: not part of a cluster).", r)
+           .Add({});
   refits_queued_ = &Build(BuildGauge(), "nuwatch_refits_queued",
                           "Refits waiting for a refit thread (at most one per stream).", r)
                         .Add({});

@@ -34,6 +34,10 @@
 //   nuwatch_streams_released_total            counter  streams unloaded (state file written and
 //                                                      kept) because a reload gave them to another
 //                                                      member (PROTOCOL.md §13.4)
+//   nuwatch_cluster_members                   gauge    members in this replica's cluster.members
+//                                                      list, 0 outside a cluster (replicas that
+//                                                      disagree or a missing replica show in the
+//                                                      fleet rules of nuwatch_rules.yml)
 //   nuwatch_refits_queued                     gauge    refits waiting for a refit thread (at most
 //                                                      one per stream: later ones are coalesced)
 //   nuwatch_results_dropped_total{reason}     counter  results not handed to the result socket:
@@ -144,6 +148,7 @@ class DaemonMetrics {
   prometheus::Gauge& refits_queued() const { return *refits_queued_; }
   prometheus::Counter& streams_expired() const { return *streams_expired_; }
   prometheus::Counter& streams_released() const { return *streams_released_; }
+  prometheus::Gauge& cluster_members() const { return *cluster_members_; }
   // nuwatch_results_dropped_total or nuwatch_incident_events_dropped_total, by reason.
   prometheus::Counter& publish_dropped(PublishedMessage message, PublishDropReason reason) const {
     return *publish_dropped_[static_cast<std::size_t>(message)][static_cast<std::size_t>(reason)];
@@ -181,6 +186,7 @@ class DaemonMetrics {
   prometheus::Gauge* refits_queued_;
   prometheus::Counter* streams_expired_;
   prometheus::Counter* streams_released_;
+  prometheus::Gauge* cluster_members_;
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;
   std::array<std::array<prometheus::Counter*, kAuthRefusalCount>, kAuthSocketCount> auth_refused_{};

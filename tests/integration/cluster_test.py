@@ -313,6 +313,9 @@ class OwnershipAndRouting(ClusterTestCase):
         for m in members:
             self.assertEqual(self.counter(m, "nuwatch_rejected_messages_total",
                                           reason="not_owner"), 0)
+            # What the fleet rules compare across replicas (nuwatch_rules.yml, nuwatch-fleet).
+            self.assertEqual(self.counter(m, "nuwatch_cluster_members"), len(members))
+        self.assertEqual(self.counter(None, "nuwatch_cluster_members"), 0)
 
         # A misrouted message: counted under not_owner, and it creates no stream.
         key = next(k for k in fleet.keys if owners[k] == "nuwatchd-1")

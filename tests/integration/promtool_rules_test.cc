@@ -1,7 +1,7 @@
 // The shipped Prometheus files, checked by Prometheus' own tool:
 // deploy/prometheus/nuwatch_rules.yml must pass `promtool check rules`, its unit tests
 // (nuwatch_rules_test.yml: each alert firing and not firing) must pass `promtool test rules`, and
-// prometheus.yml must pass `promtool check config`. promtool is /usr/bin/promtool from Debian's
+// prometheus.yml and prometheus-kubernetes.yml must pass `promtool check config`. promtool is /usr/bin/promtool from Debian's
 // prometheus package (deploy/install-deps.sh); a missing promtool is a failure, not a skip.
 #include <gtest/gtest.h>
 #include <sys/wait.h>
@@ -38,8 +38,9 @@ class PromtoolTest : public ::testing::Test {
 TEST_F(PromtoolTest, RulesFilePassesCheckRules) {
   const RunResult run = RunPromtool("check rules nuwatch_rules.yml");
   EXPECT_EQ(run.exit_code, 0) << run.output;
-  // promtool's success line names the number of rules: the nine alerts of the file.
-  EXPECT_NE(run.output.find("SUCCESS: 9 rules found"), std::string::npos) << run.output;
+  // promtool's success line names the number of rules: the nine alerts of group nuwatch, the six
+  // recording rules and four alerts of group nuwatch-fleet.
+  EXPECT_NE(run.output.find("SUCCESS: 19 rules found"), std::string::npos) << run.output;
 }
 
 TEST_F(PromtoolTest, RuleUnitTestsPass) {
@@ -51,6 +52,13 @@ TEST_F(PromtoolTest, RuleUnitTestsPass) {
 
 TEST_F(PromtoolTest, ScrapeConfigPassesCheckConfig) {
   const RunResult run = RunPromtool("check config prometheus.yml");
+  EXPECT_EQ(run.exit_code, 0) << run.output;
+  EXPECT_NE(run.output.find("SUCCESS: 1 rule files found"), std::string::npos) << run.output;
+}
+
+// The scrape configuration for a cluster: every replica behind the headless Service.
+TEST_F(PromtoolTest, KubernetesScrapeConfigPassesCheckConfig) {
+  const RunResult run = RunPromtool("check config prometheus-kubernetes.yml");
   EXPECT_EQ(run.exit_code, 0) << run.output;
   EXPECT_NE(run.output.find("SUCCESS: 1 rule files found"), std::string::npos) << run.output;
 }
