@@ -103,17 +103,17 @@ void AddBenchCommand(CLI::App& app) {
   args->seed = std::to_string(c.seed);
   CLI::App* sub = app.add_subcommand("bench", "Capacity planning on synthetic Gaussian data");
   sub->add_option("--dims", args->dims, "Features per vector")
-      ->type_name("N")
+      ->type_name("INTEGER")
       ->capture_default_str();
   sub->add_option("--window", args->window, "Training window (vectors, at least 10)")
-      ->type_name("N")
+      ->type_name("INTEGER")
       ->capture_default_str();
-  sub->add_option("--nu", args->nu, "nu, in (0, 1]")->type_name("X")->capture_default_str();
+  sub->add_option("--nu", args->nu, "nu, in (0, 1]")->type_name("NUMBER")->capture_default_str();
   sub->add_option("--support-vector-budget", args->support_vector_budget, "Support-vector budget")
-      ->type_name("N")
+      ->type_name("INTEGER")
       ->capture_default_str();
   sub->add_option("--seed", args->seed, "Seed of the synthetic data")
-      ->type_name("N")
+      ->type_name("INTEGER")
       ->capture_default_str();
   sub->add_flag("--json", args->json, "Print one JSON object");
   sub->callback([args] { RunBench(*args); });

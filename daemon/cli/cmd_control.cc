@@ -177,7 +177,7 @@ void AddControlCommand(CLI::App& app) {
       ->type_name("ENDPOINT")
       ->required();
   command->add_option("--output", args->output, "table, or json: the daemon's reply as it is")
-      ->type_name("FORM")
+      ->type_name("table|json")
       ->capture_default_str();
   command->add_option("--timeout", args->timeout, "How long to wait for the reply")
       ->type_name("DURATION")

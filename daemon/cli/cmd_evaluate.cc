@@ -205,7 +205,7 @@ void AddEvaluateCommand(CLI::App& app) {
   command
       ->add_option("--alpha", arguments->alpha,
                    "Weight of the existence reward in range-based recall, in [0, 1]")
-      ->type_name("A")
+      ->type_name("NUMBER")
       ->capture_default_str();
   command
       ->add_option("--cardinality", arguments->cardinality,

@@ -181,12 +181,16 @@ void AddFitCommand(CLI::App& app) {
       "fit", "Fit a model on a CSV file of vectors, calibrated to the false-alarm budget");
   sub->add_option("--input", args->input,
                   "CSV with a header row; every column is a feature except 'time' and 'stream'")
+      ->type_name("FILE")
       ->required();
-  sub->add_option("--output", args->output, "Model file to write")->required();
+  sub->add_option("--output", args->output, "Model file to write")->type_name("FILE")->required();
   AddLastWinsOption(sub, "--stream", args->stream,
-                    "Fit the rows of this stream only (needed when the file holds several)");
-  AddLastWinsOption(sub, "--from", args->from, "Fit the rows at or after this time");
-  AddLastWinsOption(sub, "--until", args->until, "Fit the rows at or before this time");
+                    "Fit the rows of this stream only (needed when the file holds several)")
+      ->type_name("STREAM");
+  AddLastWinsOption(sub, "--from", args->from, "Fit the rows at or after this time")
+      ->type_name("TIME");
+  AddLastWinsOption(sub, "--until", args->until, "Fit the rows at or before this time")
+      ->type_name("TIME");
   args->keys.AddTo(sub, FitDefaults(), [](const Setting<DetectorOptions>& s) {
     return std::find(std::begin(kFitKeys), std::end(kFitKeys), s.name) != std::end(kFitKeys);
   });

@@ -97,10 +97,12 @@ void AddReplayCommand(CLI::App& app) {
       "Replay a recorded stream file through the detectors (refits inline, deterministic)");
   sub->add_option("--input", args->input,
                   "CSV: a time column (ISO-8601 or epoch seconds), optional stream, features")
+      ->type_name("FILE")
       ->required();
   sub->add_option("--output", args->output,
                   "CSV to write: time,stream,state,decision,p_value,anomaly,incident,"
-                  "support_vectors,model_version (default: standard output)");
+                  "support_vectors,model_version (default: standard output)")
+      ->type_name("FILE");
   args->detector.AddTo(sub);
   sub->callback([args] { RunReplay(*args); });
 }

@@ -115,15 +115,19 @@ void AddScoreCommand(CLI::App& app) {
       "score",
       "Score the vectors of a CSV file: decision, p-value and anomaly (1: flagged at the model's "
       "calibrated level; decision < 0 for an uncalibrated model)");
-  sub->add_option("--model", args->model, "Model file written by 'nuwatch fit'")->required();
+  sub->add_option("--model", args->model, "Model file written by 'nuwatch fit'")
+      ->type_name("FILE")
+      ->required();
   sub->add_option("--input", args->input,
                   "CSV with the model's feature columns (and optionally time and stream, which "
                   "are copied to the output)")
+      ->type_name("FILE")
       ->required();
-  sub->add_option("--output", args->output, "CSV to write (default: standard output)");
+  sub->add_option("--output", args->output, "CSV to write (default: standard output)")
+      ->type_name("FILE");
   sub->add_option("--explain", args->explain,
-                  "Add the K features that move the decision most (gradient shares)")
-      ->type_name("K")
+                  "Add this many features: those that move the decision most (gradient shares)")
+      ->type_name("INTEGER")
       ->capture_default_str();
   sub->callback([args] { RunScore(*args); });
 }

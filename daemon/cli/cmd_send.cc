@@ -808,21 +808,21 @@ void AddSendCommand(CLI::App& app) {
   command
       ->add_option("--stream", args->stream,
                    "Stream key for every row, when the input has no stream column")
-      ->type_name("KEY");
+      ->type_name("STREAM");
   command->add_option("--rate", args->rate, "Vectors per second; 0: as fast as possible")
-      ->type_name("N")
+      ->type_name("NUMBER")
       ->capture_default_str();
   command->add_option("--format", args->format, "Payload form: json or binary (PROTOCOL.md §5, §6)")
-      ->type_name("FORM")
+      ->type_name("json|binary")
       ->capture_default_str();
   command->add_option("--dtype", args->dtype, "Value type of the binary form: f64 or f32")
-      ->type_name("TYPE")
+      ->type_name("f64|f32")
       ->capture_default_str();
   command
       ->add_option("--batch", args->batch,
                    "Vectors of one stream per message at most (1..4096); a partly filled batch "
                    "is sent at the end, and with --input - whenever the input pauses")
-      ->type_name("K")
+      ->type_name("INTEGER")
       ->capture_default_str();
   command
       ->add_option("--linger", args->linger,

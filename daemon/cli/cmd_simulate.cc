@@ -230,7 +230,7 @@ void AddSimulateCommand(CLI::App& app) {
                    "--live only incidents.csv is written there")
       ->type_name("DIR");
   command->add_option("--pumps", args->pumps, "Number of pumps (streams pump-01 ...), 1..99")
-      ->type_name("N")
+      ->type_name("INTEGER")
       ->capture_default_str();
   command->add_option("--duration", args->duration, "Simulated time span (e.g. 90m, 12h, 7d)")
       ->type_name("DURATION")
@@ -239,7 +239,7 @@ void AddSimulateCommand(CLI::App& app) {
       ->type_name("DURATION")
       ->capture_default_str();
   command->add_option("--seed", args->seed, "Seed; the same seed gives the same rows")
-      ->type_name("N")
+      ->type_name("INTEGER")
       ->capture_default_str();
   command
       ->add_option("--start", args->start,
@@ -254,7 +254,7 @@ void AddSimulateCommand(CLI::App& app) {
   command
       ->add_option("--fault-rate", args->fault_rate,
                    "Incidents planned per pump per week of simulated time")
-      ->type_name("X")
+      ->type_name("NUMBER")
       ->capture_default_str();
   command
       ->add_option("--fault-free", args->fault_free,
@@ -267,7 +267,7 @@ void AddSimulateCommand(CLI::App& app) {
   command
       ->add_option("--speed", args->speed,
                    "With --live: simulated seconds per wall-clock second (60 = a minute a second)")
-      ->type_name("X")
+      ->type_name("NUMBER")
       ->capture_default_str()
       ->each([args](const std::string&) { args->speed_given = true; });
   command->callback([args] { RunSimulate(*args); });

@@ -442,7 +442,7 @@ void AddTailCommand(CLI::App& app) {
       ->type_name("ENDPOINT")
       ->required();
   command->add_option("--stream", args->streams, "Only this stream (repeat for several)")
-      ->type_name("KEY")
+      ->type_name("STREAM")
       ->multi_option_policy(CLI::MultiOptionPolicy::TakeAll);
   command->add_flag("--anomalies-only", args->anomalies_only,
                     "Only flagged results and incident events");
@@ -450,7 +450,7 @@ void AddTailCommand(CLI::App& app) {
       ->add_option("--count", args->count,
                    "Exit after printing this many messages; 0: no limit (with --timeout, "
                    "exit 1 if fewer arrive in time)")
-      ->type_name("N")
+      ->type_name("INTEGER")
       ->capture_default_str();
   command->add_option("--timeout", args->timeout, "Exit after this long (e.g. 30s); 0: never")
       ->type_name("DURATION")

@@ -283,10 +283,10 @@ void AddTuneCommand(CLI::App& app) {
       "against labelled incidents and pick the best under a false-alarm limit");
   a->command = sub;
   sub->add_option("--input", a->input, "Recorded stream file: time[,stream],features (CSV)")
-      ->type_name("STREAM.csv")
+      ->type_name("FILE")
       ->required();
   sub->add_option("--incidents", a->incidents, "Labelled incidents: stream,start,end[,kind] (CSV)")
-      ->type_name("INCIDENTS.csv")
+      ->type_name("FILE")
       ->required();
   sub->add_option("--report", a->report, "Directory for the results, best.toml and pictures")
       ->type_name("DIR")
@@ -317,7 +317,7 @@ void AddTuneCommand(CLI::App& app) {
   sub->add_option(
          "--max-false-alarms-per-day", a->max_false_alarms,
          "Only settings with at most this many false alarms per stream and incident-free day")
-      ->type_name("X");
+      ->type_name("NUMBER");
   sub->add_option("--objective", a->objective, "What to maximise: f1 | range-f1 | recall")
       ->type_name("f1|range-f1|recall")
       ->capture_default_str();
@@ -327,7 +327,7 @@ void AddTuneCommand(CLI::App& app) {
       ->type_name("incident|anomaly")
       ->capture_default_str();
   sub->add_option("--jobs", a->jobs, "Settings replayed in parallel (default: hardware threads)")
-      ->type_name("N");
+      ->type_name("INTEGER");
   sub->add_option("--grace", a->grace,
                   "How long after an incident's end an alarm still detects it (90, 15m, 2h)")
       ->type_name("DURATION")

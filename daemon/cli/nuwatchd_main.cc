@@ -41,27 +41,40 @@ int main(int argc, char** argv) {
   std::string publish, metrics, control, state_dir, log_level, ready_file, member;
   app.add_option("--config", config_path,
                  "TOML configuration file (config/REFERENCE.md); without it every key keeps its "
-                 "default");
-  auto* ingest_flag = app.add_option(
-      "--ingest", ingest, "Bind a PULL socket on ENDPOINT (repeatable; replaces ingest.endpoints)");
+                 "default")
+      ->type_name("FILE");
+  auto* ingest_flag =
+      app.add_option("--ingest", ingest,
+                     "Bind a PULL socket on ENDPOINT (repeatable; replaces ingest.endpoints)")
+          ->type_name("ENDPOINT");
   auto* subscribe_flag =
       app.add_option("--subscribe", subscribe,
-                     "Connect a SUB socket to ENDPOINT (repeatable; replaces ingest.subscribe)");
+                     "Connect a SUB socket to ENDPOINT (repeatable; replaces ingest.subscribe)")
+          ->type_name("ENDPOINT");
   auto* publish_flag =
-      app.add_option("--publish", publish, "Bind the PUB socket on ENDPOINT (publish.endpoint)");
-  auto* metrics_flag = app.add_option(
-      "--metrics", metrics, "Prometheus endpoint HOST:PORT, port 0 = any free (metrics.listen)");
+      app.add_option("--publish", publish, "Bind the PUB socket on ENDPOINT (publish.endpoint)")
+          ->type_name("ENDPOINT");
+  auto* metrics_flag =
+      app.add_option("--metrics", metrics,
+                     "Prometheus endpoint HOST:PORT, port 0 = any free (metrics.listen)")
+          ->type_name("HOST:PORT");
   auto* control_flag =
-      app.add_option("--control", control, "Bind the REP control socket on ENDPOINT");
-  auto* state_flag = app.add_option("--state-dir", state_dir, "State directory (state.dir)");
+      app.add_option("--control", control, "Bind the REP control socket on ENDPOINT")
+          ->type_name("ENDPOINT");
+  auto* state_flag =
+      app.add_option("--state-dir", state_dir, "State directory (state.dir)")->type_name("DIR");
   auto* level_flag =
       app.add_option("--log-level", log_level,
-                     "trace, debug, info, warn, error, critical or off (daemon.log_level)");
-  auto* member_flag = app.add_option(
-      "--member", member,
-      "This replica's name among cluster.members, e.g. the pod name (cluster.member)");
+                     "trace, debug, info, warn, error, critical or off (daemon.log_level)")
+          ->type_name("LEVEL");
+  auto* member_flag =
+      app.add_option(
+             "--member", member,
+             "This replica's name among cluster.members, e.g. the pod name (cluster.member)")
+          ->type_name("NAME");
   app.add_option("--ready-file", ready_file,
-                 "Write the actual endpoints as JSON to this file once everything listens");
+                 "Write the actual endpoints as JSON to this file once everything listens")
+      ->type_name("FILE");
   bool print_defaults = false;
   app.add_flag(
       "--print-defaults", print_defaults,
