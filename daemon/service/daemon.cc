@@ -761,7 +761,11 @@ void Daemon::Impl::StartExposer() {
     exposer->RegisterAuth(
         [user = config.daemon.metrics_basic_auth_user, password](const std::string& given_user,
                                                                  const std::string& given) {
-          return SameSecret(given_user, user) & SameSecret(given, password);
+          // Both compared before either is looked at, so that a wrong user name takes as long
+          // as a wrong password (&& would skip the second comparison).
+          const bool user_matches = SameSecret(given_user, user);
+          const bool password_matches = SameSecret(given, password);
+          return user_matches && password_matches;
         },
         "nuwatch", "/metrics");
   }
