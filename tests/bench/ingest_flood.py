@@ -1,0 +1,139 @@
+#!/usr/bin/python3
+"""Memory of nuwatchd under a flood of maximal ingest messages (a benchmark, not a test).
+
+PEERS PUSH sockets (pyzmq) each send MESSAGES valid binary messages as close to
+limits.max_message_bytes (4 MiB by default) as the protocol allows: 4096 vectors of 126 f64
+features, one stream per peer, as fast as ZeroMQ takes them, while this script samples the
+daemon's resident memory (VmRSS, /proc) every 20 ms. It waits until the daemon has counted every
+vector (nuwatch_vectors_total), lets it idle for six seconds (the daemon trims its heap every five) and reads VmRSS again. Prints one JSON
+object: peak and settled RSS, the RSS before the flood, and the bytes sent.
+
+  /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 1 --messages 300
+  /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 10 --messages 30
+"""
+import argparse
+import json
+import os
+import struct
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import urllib.request
+
+import zmq
+
+sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "integration"))
+import python_codec_check as codec  # noqa: E402
+
+VECTORS, DIMS = 4096, 126  # 4096 * (126 + 1) * 8 + header = 4,161,560 bytes <= 4 MiB
+
+
+def rss_bytes(pid):
+    with open("/proc/%d/status" % pid) as f:
+        for line in f:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    return 0
+
+
+def vectors_counted(metrics):
+    text = urllib.request.urlopen("http://%s/metrics" % metrics, timeout=5).read().decode()
+    total = 0.0
+    for line in text.splitlines():
+        if line.startswith("nuwatch_vectors_total{"):
+            total += float(line.rsplit(" ", 1)[1])
+    return total
+
+
+def main():
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--nuwatchd", required=True)
+    parser.add_argument("--peers", type=int, default=1)
+    parser.add_argument("--messages", type=int, default=300)
+    args = parser.parse_args()
+
+    payload_rows = [[(i * 7 + j) % 13 * 0.1 for j in range(DIMS)] for i in range(VECTORS)]
+    with tempfile.TemporaryDirectory() as work:
+        config = os.path.join(work, "flood.toml")
+        with open(config, "w") as f:
+            # A short window keeps the streams' own memory (126 x 500 x 8 bytes each) small
+            # beside the queued messages, which are what this measures.
+            f.write("[detector]\nwindow = 500\nwarmup = 400\nrefit_every = 0\n")
+        ready = os.path.join(work, "ready.json")
+        daemon = subprocess.Popen(
+            [args.nuwatchd, "--config", config, "--ingest", "tcp://127.0.0.1:*",
+             "--publish", "tcp://127.0.0.1:*", "--metrics", "127.0.0.1:0",
+             "--control", "ipc://" + work + "/control", "--ready-file", ready,
+             "--log-level", "warn"])
+        try:
+            deadline = time.monotonic() + 30
+            while not os.path.exists(ready):
+                assert daemon.poll() is None and time.monotonic() < deadline, "no ready file"
+                time.sleep(0.05)
+            with open(ready) as f:
+                endpoints = json.load(f)
+            time.sleep(0.5)
+            before = rss_bytes(daemon.pid)
+            peak = [before]
+            sampling = threading.Event()
+            sampling.set()
+
+            def sample():
+                while sampling.is_set():
+                    peak[0] = max(peak[0], rss_bytes(daemon.pid))
+                    time.sleep(0.02)
+
+            sampler = threading.Thread(target=sample)
+            sampler.start()
+            context = zmq.Context()
+            payloads = [codec.encode_binary([float(m * VECTORS + i) for i in range(VECTORS)],
+                                            payload_rows) for m in range(2)]
+            sent_bytes = 0
+
+            def flood(peer):
+                nonlocal sent_bytes
+                push = context.socket(zmq.PUSH)
+                push.setsockopt(zmq.LINGER, -1)
+                push.connect(endpoints["ingest"][0])
+                key = ("flood-%02d" % peer).encode()
+                for m in range(args.messages):
+                    times = [float(m * VECTORS + i) for i in range(VECTORS)]
+                    body = struct.pack("<%dd" % VECTORS, *times)
+                    payload = payloads[0][:codec.HEADER.size] + body + \
+                        payloads[0][codec.HEADER.size + 8 * VECTORS:]
+                    push.send_multipart([key, payload])
+                    sent_bytes += len(payload)
+                push.close()
+
+            started = time.monotonic()
+            peers = [threading.Thread(target=flood, args=(p,)) for p in range(args.peers)]
+            for t in peers:
+                t.start()
+            for t in peers:
+                t.join()
+            expected = args.peers * args.messages * VECTORS
+            while vectors_counted(endpoints["metrics"]) < expected:
+                assert daemon.poll() is None, "nuwatchd exited"
+                assert time.monotonic() - started < 600, "not every vector counted"
+                time.sleep(0.2)
+            drained = time.monotonic() - started
+            time.sleep(6.0)  # longer than the daemon's 5 s heap trim interval
+            settled = rss_bytes(daemon.pid)
+            sampling.clear()
+            sampler.join()
+            context.term()
+            print(json.dumps({
+                "peers": args.peers, "messages_per_peer": args.messages,
+                "message_bytes": len(payloads[0]), "sent_bytes": sent_bytes,
+                "rss_before_bytes": before, "rss_peak_bytes": peak[0],
+                "rss_settled_bytes": settled, "seconds_to_count_every_vector": round(drained, 2),
+            }))
+        finally:
+            daemon.terminate()
+            daemon.wait(timeout=120)
+
+
+if __name__ == "__main__":
+    main()
