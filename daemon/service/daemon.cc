@@ -1130,6 +1130,11 @@ void Daemon::Impl::DrainIngest() {
   // senders can still connect meanwhile; kDrainSeconds bounds the stop for one that never
   // pauses.
   if (!config.daemon.subscribe_endpoints.empty() && !ingest.empty()) {
+    // Linger 0 first: a SUB socket holds its subscription for every publisher it has not reached
+    // (one that is down, or refused the handshake); a disconnect or close at the linger of -1
+    // set at bind would wait for those forever, and zmq_ctx_term with it, so the daemon never
+    // exited on SIGTERM. It sends nothing else; what it received stays queued for the loop below.
+    ingest.back().set(zmq::sockopt::linger, 0);
     for (const std::string& endpoint : endpoints.subscribe) {
       try {
         ingest.back().disconnect(endpoint);

@@ -59,6 +59,8 @@ TEST(DaemonEndToEnd, AnOversizedFrameDropsItsSenderWhileOthersKeepScoring) {
 
 TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("MetricsBasicAuth"); }
 
+TEST(DaemonEndToEnd, SigtermStopsADaemonWhosePublisherIsDown) { RunScript("AbsentPublisher"); }
+
 TEST(DaemonEndToEnd, CurveAdmitsListedKeysOnlyAndCountsRefusals) {
   RunScript("CurveAuthentication");
 }

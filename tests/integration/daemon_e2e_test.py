@@ -1167,6 +1167,21 @@ class CurveAuthentication(DaemonTestCase):
         self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
 
 
+class AbsentPublisher(DaemonTestCase):
+    """A publisher of ingest.subscribe that is down must not keep nuwatchd from stopping: its SUB
+    socket holds the subscription for it, and closing that at the linger of -1 made
+    zmq_ctx_term wait for ever (found while adding CURVE to ingest.subscribe)."""
+
+    def test_sigterm_stops_a_daemon_whose_publisher_never_came(self):
+        # Port 1 on loopback: nothing listens there (connections are refused and retried).
+        extra = '\n[ingest]\nsubscribe = ["tcp://127.0.0.1:1"]\n'
+        daemon = Daemon(self.workdir, self.state_dir, extra_config=extra)
+        self.daemons.append(daemon)
+        daemon.start()
+        self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
+        self.assertIn("stopped", daemon.log_text())
+
+
 class OversizedFrames(DaemonTestCase):
     """Issue 10 §3: ingest is bounded in bytes by ZeroMQ itself. nuwatchd sets ZMQ_MAXMSGSIZE on
     its ingest sockets to 2 x limits.max_message_bytes + 4096 (daemon.cc): a frame up to that
