@@ -19,9 +19,9 @@ constexpr std::string_view kZapVersion = "1.0";
 constexpr std::size_t kCurveKeyBytes = 32;
 
 // The monitor events that say how a handshake ended (zmq_socket_monitor(3), libzmq 4.3).
-constexpr int kWatchedEvents = ZMQ_EVENT_HANDSHAKE_SUCCEEDED |
-                               ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL |
-                               ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL;
+constexpr int kWatchedEvents =
+    ZMQ_EVENT_HANDSHAKE_SUCCEEDED | ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL |
+    ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL | ZMQ_EVENT_HANDSHAKE_FAILED_AUTH;
 
 std::string Frame(const zmq::message_t& message) { return message.to_string(); }
 
@@ -52,6 +52,19 @@ void CurveAuthenticator::Protect(zmq::socket_t& socket, AuthSocket which,
   // A ZAP domain makes libzmq ask the handler for every handshake on the socket, and tells the
   // handler which socket asks.
   socket.set(zmq::sockopt::zap_domain, AuthSocketLabel(which));
+  Watch(socket, which, /*client=*/false);
+}
+
+void CurveAuthenticator::ProtectClient(zmq::socket_t& socket, AuthSocket which,
+                                       const CurveKeyPair& client,
+                                       const std::string& server_public_key) {
+  socket.set(zmq::sockopt::curve_serverkey, server_public_key);
+  socket.set(zmq::sockopt::curve_publickey, client.public_key);
+  socket.set(zmq::sockopt::curve_secretkey, client.secret_key);
+  Watch(socket, which, /*client=*/true);
+}
+
+void CurveAuthenticator::Watch(zmq::socket_t& socket, AuthSocket which, bool client) {
   const std::string endpoint = "inproc://nuwatchd-auth-monitor-" + std::to_string(monitors_++);
   if (zmq_socket_monitor(socket.handle(), endpoint.c_str(), kWatchedEvents) != 0) {
     throw zmq::error_t();
@@ -59,7 +72,7 @@ void CurveAuthenticator::Protect(zmq::socket_t& socket, AuthSocket which,
   zmq::socket_t monitor(context_, zmq::socket_type::pair);
   monitor.set(zmq::sockopt::linger, 0);
   monitor.connect(endpoint);
-  watched_.push_back({which, std::move(monitor)});
+  watched_.push_back({which, client, std::move(monitor)});
 }
 
 void CurveAuthenticator::Start() {
@@ -195,9 +208,18 @@ void CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
         std::snprintf(code, sizeof code, "0x%x", value);
         Refuse(watched.which, AuthRefusal::kBadHandshake,
                std::string("ZMTP error ") + code + " on " + endpoint +
-                   (value == ZMQ_PROTOCOL_ERROR_ZMTP_CRYPTOGRAPHIC
-                        ? ": the client's server key is not this daemon's"
-                        : ""));
+                   (value != ZMQ_PROTOCOL_ERROR_ZMTP_CRYPTOGRAPHIC ? ""
+                    : watched.client
+                        ? ": the publisher does not hold auth.subscribe_server_key_file's key"
+                        : ": the client's server key is not this daemon's"));
+      }
+      break;
+    case ZMQ_EVENT_HANDSHAKE_FAILED_AUTH:
+      // On a server socket the ZAP handler has counted this refusal already (it made it).
+      if (watched.client) {
+        Refuse(watched.which, AuthRefusal::kUnknownKey,
+               "the publisher at " + endpoint + " does not admit this daemon's key (status " +
+                   std::to_string(value) + ")");
       }
       break;
     case ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL:

@@ -47,6 +47,12 @@ class CurveAuthenticator {
   // `which` and watches its handshakes. Requires: before Start, on the thread that owns `socket`,
   // before `socket` binds.
   void Protect(zmq::socket_t& socket, AuthSocket which, const CurveKeyPair& server);
+  // Makes `socket` a CURVE client offering `client` to a server that must hold
+  // `server_public_key` (Z85), and watches its handshakes: one with a server that does not hold
+  // that key fails (bad_handshake or incomplete_handshake), one the server refuses counts as
+  // unknown_key. Requires: as Protect, before `socket` connects.
+  void ProtectClient(zmq::socket_t& socket, AuthSocket which, const CurveKeyPair& client,
+                     const std::string& server_public_key);
   // Starts the thread. Call once, after every Protect.
   void Start();
   // The keys admitted from now on (a connection admitted before keeps its session).
@@ -58,8 +64,10 @@ class CurveAuthenticator {
  private:
   struct Watched {
     AuthSocket which;
+    bool client = false;    // a CURVE client: no ZAP request; a server's refusal is an event
     zmq::socket_t monitor;  // PAIR, connected to the protected socket's monitor endpoint
   };
+  void Watch(zmq::socket_t& socket, AuthSocket which, bool client);
   void Run();
   void HandleZapRequest();
   void HandleMonitorEvent(Watched& watched);

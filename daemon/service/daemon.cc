@@ -436,6 +436,7 @@ struct Daemon::Impl final : ControlCommands {
   // CURVE ([auth]): the daemon's key pair and the ZAP handler. Declared before the sockets, so
   // that it is destroyed after them: with no handler bound, libzmq would admit any CURVE client.
   std::optional<CurveKeyPair> server_keys;
+  std::string subscribe_server_key;  // Z85; "" = the SUB socket is plain
   std::unique_ptr<CurveAuthenticator> auth;
   std::vector<zmq::socket_t> ingest;  // PULL sockets, then the SUB socket if any
   // XPUB with ZMQ_XPUB_NODROP: a full subscriber queue is seen and counted. The scoring threads
@@ -662,6 +663,14 @@ void Daemon::Impl::SetUpAuth() {
   } catch (const CurveKeyError& e) {
     throw ConfigError(std::string("auth.client_keys: ") + e.what());
   }
+  if (!s.subscribe_server_key_file.empty()) {
+    try {
+      subscribe_server_key =
+          ReadCurveKeyFile(s.subscribe_server_key_file, /*need_secret=*/false).public_key;
+    } catch (const CurveKeyError& e) {
+      throw ConfigError(std::string("auth.subscribe_server_key_file: ") + e.what());
+    }
+  }
   const std::size_t count = allowed.size();
   try {
     auth = std::make_unique<CurveAuthenticator>(context, std::move(allowed), &metrics);
@@ -708,6 +717,15 @@ void Daemon::Impl::BindSockets() {
     socket.set(zmq::sockopt::maxmsgsize, max_frame);
     socket.set(zmq::sockopt::linger, -1);  // as the PULL sockets': keep what a peer left
     socket.set(zmq::sockopt::subscribe, "");
+    if (auth && !subscribe_server_key.empty()) {
+      auth->ProtectClient(socket, AuthSocket::kSubscribe, *server_keys, subscribe_server_key);
+      spdlog::info("auth: ingest.subscribe is a CURVE client of publisher key {}",
+                   subscribe_server_key);
+    } else if (auth) {
+      spdlog::warn(
+          "auth: ingest.subscribe connects without CURVE (auth.subscribe_server_key_file is "
+          "not set): anything that answers at those endpoints is taken as ingest");
+    }
     for (const std::string& endpoint : s.subscribe_endpoints) {
       try {
         socket.connect(endpoint);

@@ -40,6 +40,8 @@ std::string_view AuthSocketLabel(AuthSocket socket) {
       return "publish";
     case AuthSocket::kControl:
       return "control";
+    case AuthSocket::kSubscribe:
+      return "subscribe";
   }
   return "unknown";
 }

@@ -46,7 +46,8 @@
 //   nuwatch_incident_events_dropped_total{reason}  counter  incident events, likewise
 //   nuwatch_state_write_failures_total        counter  state files that could not be written
 //   nuwatch_auth_handshakes_total{socket}     counter  CURVE handshakes admitted (socket: ingest,
-//                                                      publish, control; only with [auth])
+//                                                      publish, control; only with [auth]), and
+//                                                      subscribe: handshakes with publishers
 //   nuwatch_auth_refusals_total{socket,reason}  counter  peers refused: unknown_key,
 //                                                      wrong_mechanism, bad_handshake,
 //                                                      incomplete_handshake (curve_auth.h)
@@ -83,8 +84,9 @@ enum class PublishedMessage : uint8_t { kResult, kIncidentEvent };
 
 // The sockets CURVE protects, named by their ZAP domain and metric label: "ingest", "publish",
 // "control".
-enum class AuthSocket : uint8_t { kIngest, kPublish, kControl };
-inline constexpr std::size_t kAuthSocketCount = 3;
+// kSubscribe: the SUB socket of ingest.subscribe, a CURVE client (auth.subscribe_server_key_file).
+enum class AuthSocket : uint8_t { kIngest, kPublish, kControl, kSubscribe };
+inline constexpr std::size_t kAuthSocketCount = 4;
 std::string_view AuthSocketLabel(AuthSocket socket);
 // Why a peer was refused (PROTOCOL.md §12): unknown_key (CURVE, but its public key is not in
 // auth.client_keys), wrong_mechanism (no CURVE), bad_handshake (the CURVE handshake failed: a wrong

@@ -228,6 +228,15 @@ const Setting<S> kDaemonKeys[] = {
             "NAME.key certificates. Reread on reload, so that keys can be added and revoked.",
      .unit = "file or directory",
      .reload = kNow},
+    {.section = "auth",
+     .name = "subscribe_server_key_file",
+     .member = &S::subscribe_server_key_file,
+     .doc = "The public key (NAME.key) of the publishers ingest.subscribe connects to. Set: the "
+            "SUB socket is a CURVE client that offers the daemon's own key pair "
+            "(server_secret_key_file) and takes data only from a publisher holding this key. "
+            "\"\": a plain SUB socket.",
+     .unit = "file",
+     .reload = kRestart},
     {.section = "metrics",
      .name = "listen",
      .member = &S::metrics_listen,
@@ -780,6 +789,13 @@ std::optional<Violation> CheckDaemon(const DaemonSettings& s) {
                       "would admit no client"
                     : "auth.client_keys is set but auth.server_secret_key_file is not: the "
                       "daemon has no key to offer CURVE clients"});
+  }
+  if (!s.subscribe_server_key_file.empty() && s.server_secret_key_file.empty()) {
+    return std::optional<Violation>(Violation{
+        "auth",
+        {"auth.subscribe_server_key_file", "auth.server_secret_key_file"},
+        "auth.subscribe_server_key_file is set but auth.server_secret_key_file is not: the "
+        "daemon's key pair is what it offers the publishers as a CURVE client"});
   }
   for (std::size_t i = 0; i < bound.size(); ++i) {
     for (std::size_t j = 0; j < i; ++j) {

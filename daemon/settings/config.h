@@ -49,6 +49,8 @@ struct DaemonSettings {
   // [auth] (CURVE on the ingest, result and control sockets; PROTOCOL.md §12)
   std::string server_secret_key_file;  // server_secret_key_file ("" = no authentication)
   std::string client_keys;             // client_keys (a file or a directory of public keys)
+  // subscribe_server_key_file: the publishers' public key for ingest.subscribe ("" = plain SUB)
+  std::string subscribe_server_key_file;
   // [metrics]
   std::string metrics_listen = "127.0.0.1:9464";  // listen ("HOST:PORT"; port 0: ephemeral)
   std::string metrics_basic_auth_user;            // basic_auth_user ("" = no authentication)

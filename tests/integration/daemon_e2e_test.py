@@ -1166,6 +1166,90 @@ class CurveAuthentication(DaemonTestCase):
         push.close()
         self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
 
+    def test_the_subscribe_socket_takes_data_only_from_the_publisher_holding_its_key(self):
+        """auth.subscribe_server_key_file: the SUB socket of ingest.subscribe is a CURVE client.
+        Three pyzmq PUB sockets, each a CURVE server: the publisher with the configured key (no
+        ZAP handler in its context, so libzmq admits any client), an impostor with another key,
+        and a publisher with the right key whose own ZAP handler (pyzmq's ThreadAuthenticator)
+        admits no client. Only the first one's vectors are scored; the impostor's handshakes fail
+        and the third's refusal are counted under socket="subscribe"."""
+        import zmq.auth.thread
+        public_file, secret_file = self.zauth.create_certificates(self.keys, "publisher")
+        publisher_public, publisher_secret = self.zauth.load_certificate(secret_file)
+        impostor_public, impostor_secret = zmq.curve_keypair()
+
+        def pub(context, secret):
+            s = context.socket(zmq.PUB)
+            s.setsockopt(zmq.LINGER, 0)
+            s.curve_server = True
+            s.curve_secretkey = secret
+            port = s.bind_to_random_port("tcp://127.0.0.1")
+            return s, "tcp://127.0.0.1:%d" % port
+
+        good, good_endpoint = pub(self.context, publisher_secret)
+        impostor, impostor_endpoint = pub(self.context, impostor_secret)
+        refusing_context = zmq.Context()
+        authenticator = zmq.auth.thread.ThreadAuthenticator(refusing_context)
+        authenticator.start()
+        empty = os.path.join(self.workdir, "no-keys")
+        os.makedirs(empty)
+        authenticator.configure_curve(domain="*", location=empty)
+        refusing, refusing_endpoint = pub(refusing_context, publisher_secret)
+        try:
+            extra = ('\n[ingest]\nsubscribe = ["%s", "%s", "%s"]\n'
+                     '\n[auth]\nserver_secret_key_file = "%s"\nclient_keys = "%s"\n'
+                     'subscribe_server_key_file = "%s"\n') % (
+                good_endpoint, impostor_endpoint, refusing_endpoint, self.server_secret_file,
+                self.clients, public_file)
+            daemon = Daemon(self.workdir, self.state_dir, extra_config=extra)
+            self.daemons.append(daemon)
+            endpoints = daemon.start()
+            peer = Peer.__new__(Peer)  # only its metrics scrape
+            peer.metrics_address = endpoints["metrics"]
+            data = StreamData(seed=11)
+            deadline = time.monotonic() + 3 * WAIT_TIMEOUT
+            while True:
+                t, x = data.normal()
+                good.send_multipart([b"pump-good", codec.encode_json([t], [x])])
+                impostor.send_multipart([b"pump-impostor", codec.encode_json([t], [x])])
+                refusing.send_multipart([b"pump-refusing", codec.encode_json([t], [x])])
+                text = peer.scrape()
+                taken = series_value(text, "nuwatch_vectors_total", stream="pump-good") or 0
+                failed = sum(series_value(text, "nuwatch_auth_refusals_total", socket="subscribe",
+                                          reason=r) or 0
+                             for r in ("bad_handshake", "incomplete_handshake"))
+                refused = series_value(text, "nuwatch_auth_refusals_total", socket="subscribe",
+                                       reason="unknown_key") or 0
+                if taken >= 20 and failed >= 1 and refused >= 1:
+                    break
+                self.assertLess(time.monotonic(), deadline,
+                                "taken %s, failed %s, refused %s\n%s"
+                                % (taken, failed, refused, daemon.log_tail()))
+                time.sleep(0.02)  # a PUB drops until the SUB has joined: send until counted
+            text = peer.scrape()
+            self.assertIsNone(series_value(text, "nuwatch_vectors_total", stream="pump-impostor"))
+            self.assertIsNone(series_value(text, "nuwatch_vectors_total", stream="pump-refusing"))
+            self.assertGreaterEqual(
+                series_value(text, "nuwatch_auth_handshakes_total", socket="subscribe"), 1)
+            self.assertIn("ingest.subscribe is a CURVE client of publisher key "
+                          + publisher_public.decode(), daemon.log_text())
+            self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
+        finally:
+            good.close()
+            impostor.close()
+            refusing.close()
+            authenticator.stop()
+            refusing_context.destroy(linger=0)
+
+    def test_a_subscribe_key_without_the_daemons_own_pair_is_refused(self):
+        public_file, _ = self.zauth.create_certificates(self.keys, "publisher")
+        extra = '\n[auth]\nsubscribe_server_key_file = "%s"\n' % public_file
+        daemon = Daemon(self.workdir, self.state_dir, extra_config=extra)
+        with self.assertRaises(AssertionError) as refused:
+            daemon.start()
+        self.assertIn("auth.subscribe_server_key_file is set but auth.server_secret_key_file is "
+                      "not", str(refused.exception))
+
 
 class AbsentPublisher(DaemonTestCase):
     """A publisher of ingest.subscribe that is down must not keep nuwatchd from stopping: its SUB
