@@ -449,8 +449,9 @@ std::string TidyExponent(std::string text) {
   return mantissa + "e" + sign + exponent;
 }
 
+// At least three ticks: one or two labels leave the reader unable to tell the scale.
 AxisTicks LinearAxisTicks(double low, double high, int target) {
-  const Ticks ticks = LinearTicks(low, high, target);
+  const Ticks ticks = LinearTicksAtLeast(low, high, target, 3);
   AxisTicks out;
   out.values = ticks.values;
   double largest = 0;
@@ -555,11 +556,12 @@ AxisTicks FitHorizontalTicks(cairo_t* cr, const Axis& axis, MakeTicks make) {
 // ---- Legends --------------------------------------------------------------------------------
 
 struct LegendEntry {
-  enum class Kind { kLineWithMarker, kLine, kDashedLine, kBox, kRug };
+  enum class Kind { kLineWithMarker, kLine, kDashedLine, kBox, kRug, kTriangle };
   std::string label;
   Kind kind = Kind::kLine;
   std::uint32_t colour = 0;
   std::size_t marker = 0;
+  double alpha = kShadeAlpha;  // of a box
 };
 
 void DrawLegendSample(cairo_t* cr, const LegendEntry& entry, double x, double y_middle) {
@@ -583,8 +585,21 @@ void DrawLegendSample(cairo_t* cr, const LegendEntry& entry, double x, double y_
       }
       break;
     case Kind::kBox:
-      SetColour(cr, entry.colour, kShadeAlpha);
+      SetColour(cr, entry.colour, entry.alpha);
       cairo_rectangle(cr, x, y_middle - 7, kLegendSampleWidth, 14);
+      cairo_fill(cr);
+      break;
+    case Kind::kTriangle:  // as on the bottom edge of a panel: pointing down to the edge line
+      SetColour(cr, kAxisColour);
+      cairo_set_line_width(cr, 1);
+      cairo_move_to(cr, x, SnapOdd(y_middle + 4));
+      cairo_line_to(cr, x + kLegendSampleWidth, SnapOdd(y_middle + 4));
+      cairo_stroke(cr);
+      SetColour(cr, entry.colour);
+      cairo_move_to(cr, x + kLegendSampleWidth / 2, y_middle + 6);
+      cairo_line_to(cr, x + kLegendSampleWidth / 2 - 4, y_middle - 1);
+      cairo_line_to(cr, x + kLegendSampleWidth / 2 + 4, y_middle - 1);
+      cairo_close_path(cr);
       cairo_fill(cr);
       break;
     case Kind::kRug:
@@ -1019,13 +1034,33 @@ struct TimelineLayout {
   int height = 0;
 };
 
+// The samples a timeline panel draws: finite t and value.
+std::vector<double> DrawnValues(const TimelinePanel& panel) {
+  std::vector<double> values;
+  for (std::size_t i = 0; i < panel.t.size() && i < panel.value.size(); ++i) {
+    if (Finite(panel.t[i]) && Finite(panel.value[i])) values.push_back(panel.value[i]);
+  }
+  return values;
+}
+
+// The panel's y range: its own, else RobustValueRange with the envelope boundary (0) in view.
+ValueRange PanelValueRange(const TimelinePanel& panel) {
+  const std::vector<double> values = DrawnValues(panel);
+  if (!panel.y_range) return RobustValueRange(values, 0);
+  ValueRange range{panel.y_range->first, panel.y_range->second, false};
+  for (double v : values) range.clipped = range.clipped || v < range.low || v > range.high;
+  return range;
+}
+
 std::vector<LegendEntry> TimelineLegend(const TimelineFigure& figure) {
   using Kind = LegendEntry::Kind;
   std::vector<LegendEntry> entries;
-  bool any_shaded = false, any_marks = false;
+  bool any_shaded = false, any_marks = false, any_learning = false, any_clipped = false;
   for (const TimelinePanel& panel : figure.panels) {
     any_shaded = any_shaded || !panel.shaded.empty();
     any_marks = any_marks || !panel.marks.empty();
+    any_learning = any_learning || !panel.learning.empty();
+    any_clipped = any_clipped || PanelValueRange(panel).clipped;
   }
   if (!figure.value_label.empty()) {
     entries.push_back({figure.value_label, Kind::kLine, kTimelineValueColour});
@@ -1038,6 +1073,12 @@ std::vector<LegendEntry> TimelineLegend(const TimelineFigure& figure) {
   }
   if (any_marks && !figure.marks_label.empty()) {
     entries.push_back({figure.marks_label, Kind::kRug, kMarkColour});
+  }
+  if (any_learning && !figure.learning_label.empty()) {
+    entries.push_back({figure.learning_label, Kind::kBox, kLearningColour, 0, kLearningAlpha});
+  }
+  if (any_clipped && !figure.clipped_label.empty()) {
+    entries.push_back({figure.clipped_label, Kind::kTriangle, kClippedColour});
   }
   return entries;
 }
@@ -1099,6 +1140,13 @@ void ValidateTimelineFigure(const TimelineFigure& figure, const std::string& pat
                        " must be finite with start <= end");
       }
     }
+    for (std::size_t i = 0; i < panel.learning.size(); ++i) {
+      const Interval& interval = panel.learning[i];
+      if (!Finite(interval.start) || !Finite(interval.end) || interval.end < interval.start) {
+        Fail(path, where + ": learning interval " + std::to_string(i + 1) +
+                       " must be finite with start <= end");
+      }
+    }
     for (std::size_t i = 0; i < panel.marks.size(); ++i) {
       if (!Finite(panel.marks[i])) {
         Fail(path, where + ": mark " + std::to_string(i + 1) + " is not finite");
@@ -1131,15 +1179,32 @@ AxisTicks UtcTicks(double low, double high, int target) {
       1,    2,    5,    10,    15,    30,    60,    120,    300,    600,    900,
       1800, 3600, 7200, 10800, 21600, 43200, 86400, 172800, 604800, 1209600};
   const double span = high - low;
+  const auto count_for = [&](double step) {
+    return std::floor(high / step + 1e-9) - std::ceil(low / step - 1e-9) + 1;
+  };
   double step = 0;
-  for (double candidate : kSteps) {
-    if (span / candidate <= target) {
-      step = candidate;
-      break;
-    }
+  std::size_t index = 0;
+  while (index < kSteps.size() && span / kSteps[index] > target) ++index;
+  if (index < kSteps.size()) {
+    // The step that suits the target can leave one or two ticks in the span: take smaller ones.
+    while (index > 0 && count_for(kSteps[index]) < 3) --index;
+    step = kSteps[index];
+  } else {  // beyond four weeks: whole days, at least three ticks
+    step = LinearTicksAtLeast(low / 86400, high / 86400, target, 3).step * 86400;
   }
-  if (step == 0) step = NiceNumber(span / 86400 / target, true) * 86400;  // beyond four weeks
   AxisTicks out;
+  if (count_for(step) < 3) {
+    // Under two seconds: sub-second ticks, labelled with the fraction after the seconds.
+    const Ticks fine = LinearTicksAtLeast(low, high, target, 3);
+    for (double t : fine.values) {
+      out.values.push_back(t);
+      const double whole = std::floor(t);
+      const std::string fraction = Printf("%.*f", t - whole, fine.fraction_digits);
+      out.labels.push_back(FormatUtc(whole, "%H:%M:%S") + fraction.substr(1));
+      out.second_labels.push_back(out.second_labels.empty() ? FormatUtc(whole, "%Y-%m-%d") : "");
+    }
+    return out;
+  }
   const double first = std::ceil(low / step) * step;
   std::string previous_date;
   for (double t = first; t <= high + 1e-9 * step && out.values.size() < 1000; t += step) {
@@ -1192,82 +1257,86 @@ std::vector<Interval> Merged(std::vector<Interval> intervals) {
   return merged;
 }
 
+// Pixel coordinates rounded to a quarter: finer detail is invisible under a 1.2 px line, and
+// cairo keeps coordinates in 1/256 px, so a quarter prints in at most two decimals where a tenth
+// would print as six ("0.398438"); short numbers keep the SVG path data small.
+double Quarter(double p) { return std::round(p * 4) / 4; }
+
 // The line through (t, value); with more points than pixel columns, each column is drawn from its
-// first, lowest, highest and last value, which keeps every spike and costs O(points).
+// lowest and highest value (DecimateToColumns), which keeps every spike and costs O(points) time
+// and O(width) output. Values beyond the y axis are drawn at its edge, and each
+// stretch of columns where that happens gets a triangle on the edge pointing the way they go.
 void DrawDecimatedLine(cairo_t* cr, const TimelinePanel& panel, const Axis& x, const Axis& y,
                        const Rect& plot) {
+  constexpr double kNaN = std::numeric_limits<double>::quiet_NaN();
+  std::vector<Point> points;
+  points.reserve(panel.t.size());
+  std::vector<double> below, above;  // pixel columns with values beyond the axis
   std::size_t finite = 0;
   for (std::size_t i = 0; i < panel.t.size(); ++i) {
-    finite += Finite(panel.t[i]) && Finite(panel.value[i]) ? 1 : 0;
+    if (!Finite(panel.t[i]) || !Finite(panel.value[i])) {
+      points.push_back({kNaN, kNaN});
+      continue;
+    }
+    ++finite;
+    const double v = panel.value[i];
+    const double px = x.Map(panel.t[i]);
+    if (v < y.low) below.push_back(std::floor(px));
+    if (v > y.high) above.push_back(std::floor(px));
+    points.push_back({px, y.Map(std::clamp(v, y.low, y.high))});
   }
+  if (static_cast<double>(finite) > 2 * plot.w) points = DecimateToColumns(points);
   SetColour(cr, kTimelineValueColour);
   cairo_set_line_width(cr, kTimelineLineWidth);
   cairo_set_line_join(cr, CAIRO_LINE_JOIN_ROUND);
+  auto drawable = [&](std::size_t i) { return i < points.size() && !std::isnan(points[i].y); };
+  std::vector<Point> isolated;  // no line shows them
   bool pen_down = false;
-  if (static_cast<double>(finite) <= 2 * plot.w) {
-    auto drawable = [&](std::size_t i) {
-      return i < panel.t.size() && Finite(panel.t[i]) && Finite(panel.value[i]);
-    };
-    std::vector<std::pair<double, double>> isolated;  // no line shows them
-    for (std::size_t i = 0; i < panel.t.size(); ++i) {
-      if (!drawable(i)) {
-        pen_down = false;
-        continue;
-      }
-      const double px = x.Map(panel.t[i]), py = y.Map(panel.value[i]);
-      if (pen_down) {
-        cairo_line_to(cr, px, py);
-      } else {
-        cairo_move_to(cr, px, py);
-        if (!drawable(i + 1)) isolated.emplace_back(px, py);
-      }
-      pen_down = true;
-    }
-    cairo_stroke(cr);
-    for (const auto& [px, py] : isolated) {
-      cairo_new_sub_path(cr);
-      cairo_arc(cr, px, py, 2.5, 0, 2 * std::numbers::pi);
-    }
-    cairo_fill(cr);
-    return;
-  }
-  struct Column {
-    double index = 0, first = 0, last = 0, lowest = 0, highest = 0;
-    bool active = false;
-  } column;
-  auto flush = [&] {
-    if (!column.active) return;
-    const double px = column.index + 0.5;
-    if (pen_down) {
-      cairo_line_to(cr, px, column.first);
-    } else {
-      cairo_move_to(cr, px, column.first);
-    }
-    cairo_line_to(cr, px, column.lowest);
-    cairo_line_to(cr, px, column.highest);
-    cairo_line_to(cr, px, column.last);
-    pen_down = true;
-    column.active = false;
-  };
-  for (std::size_t i = 0; i < panel.t.size(); ++i) {
-    if (!Finite(panel.t[i]) || !Finite(panel.value[i])) {
-      flush();
+  Point previous;
+  for (std::size_t i = 0; i < points.size(); ++i) {
+    if (!drawable(i)) {
       pen_down = false;
       continue;
     }
-    const double index = std::floor(x.Map(panel.t[i]));
-    const double py = y.Map(panel.value[i]);
-    if (column.active && index == column.index) {
-      column.last = py;
-      column.lowest = std::min(column.lowest, py);
-      column.highest = std::max(column.highest, py);
+    const double px = Quarter(points[i].x), py = Quarter(points[i].y);
+    if (pen_down) {
+      if (px == previous.x && py == previous.y) continue;  // the same vertex once rounded
+      cairo_line_to(cr, px, py);
     } else {
-      flush();
-      column = {index, py, py, py, py, true};
+      cairo_move_to(cr, px, py);
+      if (!drawable(i + 1)) isolated.push_back({px, py});
     }
+    previous = {px, py};
+    pen_down = true;
   }
-  flush();
   cairo_stroke(cr);
+  for (const Point& p : isolated) {
+    cairo_new_sub_path(cr);
+    cairo_arc(cr, p.x, p.y, 2.5, 0, 2 * std::numbers::pi);
+  }
+  cairo_fill(cr);
+
+  // One triangle per stretch of clipped columns (a new one after a gap wider than a triangle).
+  constexpr double kHalfBase = 4, kTriangleHeight = 7;
+  const auto triangles = [&](const std::vector<double>& columns, double edge, double direction) {
+    double previous = -std::numeric_limits<double>::infinity();
+    for (double column : columns) {
+      if (column - previous <= 2 * kHalfBase) {
+        previous = column;
+        continue;
+      }
+      const double centre = column + 0.5;
+      cairo_move_to(cr, centre, edge + direction * 2);  // the tip, just outside the plot
+      cairo_line_to(cr, centre - kHalfBase, edge - direction * (kTriangleHeight - 2));
+      cairo_line_to(cr, centre + kHalfBase, edge - direction * (kTriangleHeight - 2));
+      cairo_close_path(cr);
+      previous = column;
+    }
+  };
+  SetColour(cr, kClippedColour);
+  triangles(below, plot.Bottom(), 1);
+  triangles(above, plot.y, -1);
+  cairo_fill(cr);
 }
 
 // The value at time t by linear interpolation between the neighbouring samples; nullopt outside
@@ -1313,23 +1382,37 @@ void DrawMarks(cairo_t* cr, const TimelinePanel& panel, const Axis& x, const Axi
 
 void DrawTimelinePanel(cairo_t* cr, const TimelinePanel& panel, const Axis& time,
                        const AxisTicks& time_ticks, const Rect& plot, const Axis& y,
-                       const AxisTicks& y_ticks, double block_left, bool has_data) {
+                       const AxisTicks& y_ticks, double block_left, bool has_data,
+                       const std::string& learning_label) {
   DrawGridAndAxes(cr, plot, time, time_ticks, y, y_ticks);
   DrawYTickLabels(cr, plot, y, y_ticks);
 
   cairo_save(cr);
   cairo_rectangle(cr, plot.x - 4, plot.y - 4, plot.w + 8, plot.h + 8);
   cairo_clip(cr);
-  SetColour(cr, kShadeColour, kShadeAlpha);
-  for (const Interval& interval : Merged(panel.shaded)) {
-    if (interval.end < time.low || interval.start > time.high) continue;
-    double left = time.Map(std::max(interval.start, time.low));
-    double right = time.Map(std::min(interval.end, time.high));
-    if (right - left < 1) {  // a short window stays visible
-      const double middle = (left + right) / 2;
-      left = middle - 0.5;
-      right = middle + 0.5;
+  // Pixel spans of merged intervals; a short window stays visible as 1 px.
+  const auto bands = [&](const std::vector<Interval>& intervals) {
+    std::vector<std::pair<double, double>> spans;
+    for (const Interval& interval : Merged(intervals)) {
+      if (interval.end < time.low || interval.start > time.high) continue;
+      double left = time.Map(std::max(interval.start, time.low));
+      double right = time.Map(std::min(interval.end, time.high));
+      if (right - left < 1) {
+        const double middle = (left + right) / 2;
+        left = middle - 0.5;
+        right = middle + 0.5;
+      }
+      spans.emplace_back(left, right);
     }
+    return spans;
+  };
+  const std::vector<std::pair<double, double>> learning = bands(panel.learning);
+  SetColour(cr, kLearningColour, kLearningAlpha);
+  for (const auto& [left, right] : learning)
+    cairo_rectangle(cr, left, plot.y, right - left, plot.h);
+  cairo_fill(cr);
+  SetColour(cr, kShadeColour, kShadeAlpha);
+  for (const auto& [left, right] : bands(panel.shaded)) {
     cairo_rectangle(cr, left, plot.y, right - left, plot.h);
   }
   cairo_fill(cr);
@@ -1347,6 +1430,14 @@ void DrawTimelinePanel(cairo_t* cr, const TimelinePanel& panel, const Axis& time
   DrawDecimatedLine(cr, panel, time, y, plot);
   DrawMarks(cr, panel, time, y, plot);
   cairo_restore(cr);
+  // Each learning band says what it is, inside its top left corner (kept within the plot).
+  for (const auto& [left, right] : learning) {
+    if (learning_label.empty()) break;
+    const double label_width = TextWidth(cr, learning_label, kTickFont);
+    const double anchor = std::clamp(left + 4, plot.x + 4, plot.Right() - label_width - 4);
+    DrawTextOnBox(cr, learning_label, anchor, plot.y + 4, kTickFont, kTextColour, HAlign::kLeft,
+                  VAlign::kTop);
+  }
 
   if (!has_data) DrawNote(cr, plot, "no data");
   if (!panel.title.empty()) {
@@ -1421,6 +1512,125 @@ Ticks LinearTicks(double low, double high, int target_count) {
     ticks.values.push_back(k == 0 ? 0.0 : v);
   }
   return ticks;
+}
+
+Ticks LinearTicksAtLeast(double low, double high, int target_count, int min_count) {
+  if (min_count < 1 || min_count > 100) {
+    throw std::invalid_argument("LinearTicksAtLeast needs 1 <= min_count <= 100");
+  }
+  Ticks ticks = LinearTicks(low, high, target_count);
+  // Each pass at least halves the step, and a step of (high - low) / min_count or less fits
+  // min_count ticks, so this ends; the bound only guards against a range at the edge of precision.
+  for (int pass = 0; pass < 64 && static_cast<int>(ticks.values.size()) < min_count; ++pass) {
+    const int exponent = static_cast<int>(std::floor(std::log10(ticks.step) + 1e-9));
+    const double power = std::pow(10.0, exponent);
+    const double mantissa = std::round(ticks.step / power);
+    const double smaller = mantissa == 5 ? 2 * power : mantissa == 2 ? power : 0.5 * power;
+    // The multiples of the smaller step, formed as LinearTicks forms them (k * mantissa / 10^-e).
+    Ticks next;
+    next.step = smaller;
+    const int next_exponent = static_cast<int>(std::floor(std::log10(smaller) + 1e-9));
+    next.fraction_digits = std::max(0, -next_exponent);
+    const double next_mantissa = std::round(smaller / std::pow(10.0, next_exponent));
+    const double first = std::ceil(low / smaller - 1e-9), last = std::floor(high / smaller + 1e-9);
+    for (double k = first; k <= last && next.values.size() < 10000; ++k) {
+      const double v = next_exponent < 0 ? k * next_mantissa / std::pow(10.0, -next_exponent)
+                                         : k * next_mantissa * std::pow(10.0, next_exponent);
+      next.values.push_back(k == 0 ? 0.0 : v);
+    }
+    ticks = std::move(next);
+  }
+  return ticks;
+}
+
+TimeTicks TimeAxisTicks(double low, double high, int target_count, TimeLabels style) {
+  if (!std::isfinite(low) || !std::isfinite(high) || !(low < high) || target_count < 3) {
+    throw std::invalid_argument("TimeAxisTicks needs finite low < high and target_count >= 3");
+  }
+  const AxisTicks ticks = style == TimeLabels::kUtc ? UtcTicks(low, high, target_count)
+                                                    : ElapsedTicks(low, high, target_count);
+  return TimeTicks{ticks.values, ticks.labels, ticks.second_labels};
+}
+
+std::pair<double, double> RatioAxisRange(const std::vector<double>& values) {
+  double largest = 0;
+  for (double v : values) {
+    if (Finite(v)) largest = std::max(largest, v);
+  }
+  double top = 1;
+  if (largest > 0) {
+    // Heckbert's loose labelling of [0, largest] with 5 ticks.
+    const double step = NiceNumber(NiceNumber(largest, false) / 4, true);
+    top = std::ceil(largest / step - 1e-9) * step;
+  }
+  return {-0.03 * top, 1.03 * top};
+}
+
+ValueRange RobustValueRange(const std::vector<double>& values, double always_shown) {
+  std::vector<double> sorted;
+  sorted.reserve(values.size());
+  for (double v : values) {
+    if (Finite(v)) sorted.push_back(v);
+  }
+  ValueRange range;
+  if (sorted.empty()) return range;
+  std::sort(sorted.begin(), sorted.end());
+  const auto quantile = [&](double p) {  // Hyndman & Fan type 7
+    const double h = p * static_cast<double>(sorted.size() - 1);
+    const auto below = static_cast<std::size_t>(std::floor(h));
+    const std::size_t above = std::min(below + 1, sorted.size() - 1);
+    return sorted[below] + (h - std::floor(h)) * (sorted[above] - sorted[below]);
+  };
+  Extent robust;
+  robust.Add(quantile(0.005));
+  robust.Add(quantile(0.995));
+  if (Finite(always_shown)) robust.Add(always_shown);
+  const double span = robust.high - robust.low;
+  Extent full = robust;
+  full.Add(sorted.front());
+  full.Add(sorted.back());
+  if (sorted.front() >= robust.low - 0.5 * span && sorted.back() <= robust.high + 0.5 * span) {
+    std::tie(range.low, range.high) = PaddedRange(full, false);
+    return range;
+  }
+  std::tie(range.low, range.high) = PaddedRange(robust, false);
+  range.clipped = sorted.front() < range.low || sorted.back() > range.high;
+  return range;
+}
+
+std::vector<Point> DecimateToColumns(const std::vector<Point>& points) {
+  constexpr double kNaN = std::numeric_limits<double>::quiet_NaN();
+  std::vector<Point> out;
+  struct Column {
+    double index = 0;
+    std::size_t lowest = 0, highest = 0;
+    bool active = false;
+  } column;
+  const auto flush = [&] {
+    if (!column.active) return;
+    out.push_back(points[std::min(column.lowest, column.highest)]);
+    if (column.lowest != column.highest)
+      out.push_back(points[std::max(column.lowest, column.highest)]);
+    column.active = false;
+  };
+  for (std::size_t i = 0; i < points.size(); ++i) {
+    const Point& p = points[i];
+    if (!Finite(p.x) || !Finite(p.y)) {
+      flush();
+      if (!out.empty() && !std::isnan(out.back().y)) out.push_back({kNaN, kNaN});
+      continue;
+    }
+    const double index = std::floor(p.x);
+    if (column.active && index == column.index) {
+      if (p.y < points[column.lowest].y) column.lowest = i;
+      if (p.y > points[column.highest].y) column.highest = i;
+    } else {
+      flush();
+      column = {index, i, i, true};
+    }
+  }
+  flush();
+  return out;
 }
 
 namespace {
@@ -1536,14 +1746,10 @@ void RenderTimelineFigure(const TimelineFigure& figure, const std::string& path,
   bool any_y_label = false;
   for (std::size_t p = 0; p < figure.panels.size(); ++p) {
     const TimelinePanel& panel = figure.panels[p];
-    Extent values;
-    for (std::size_t i = 0; i < panel.t.size(); ++i) {
-      if (Finite(panel.t[i]) && Finite(panel.value[i])) values.Add(panel.value[i]);
-    }
-    scales[p].has_data = !values.Empty();
-    if (!values.Empty()) values.Add(0);  // the boundary always shows
-    std::tie(scales[p].y.low, scales[p].y.high) =
-        panel.y_range ? *panel.y_range : PaddedRange(values, false);
+    scales[p].has_data = !DrawnValues(panel).empty();
+    const ValueRange range = PanelValueRange(panel);  // the boundary (0) always shows
+    scales[p].y.low = range.low;
+    scales[p].y.high = range.high;
     scales[p].ticks = LinearAxisTicks(scales[p].y.low, scales[p].y.high,
                                       std::clamp(static_cast<int>(plot_h / 35), 2, 8));
     for (const std::string& label : scales[p].ticks.labels) {
@@ -1558,8 +1764,9 @@ void RenderTimelineFigure(const TimelineFigure& figure, const std::string& path,
   time.pixel_low = left;
   time.pixel_high = right;
   const AxisTicks time_ticks = FitHorizontalTicks(cr, time, [&](int target) {
-    return figure.time_labels == TimeLabels::kUtc ? UtcTicks(time.low, time.high, target)
-                                                  : ElapsedTicks(time.low, time.high, target);
+    const TimeTicks ticks =
+        TimeAxisTicks(time.low, time.high, std::max(3, target), figure.time_labels);
+    return AxisTicks{ticks.values, ticks.labels, ticks.second_labels};
   });
 
   double block_top = layout.panels_top;
@@ -1569,7 +1776,7 @@ void RenderTimelineFigure(const TimelineFigure& figure, const std::string& path,
     scales[p].y.pixel_low = plot.Bottom();
     scales[p].y.pixel_high = plot.y;
     DrawTimelinePanel(cr, figure.panels[p], time, time_ticks, plot, scales[p].y, scales[p].ticks,
-                      block_left, scales[p].has_data);
+                      block_left, scales[p].has_data, figure.learning_label);
     titles.push_back(figure.panels[p].title);
     block_top += figure.panel_height;
   }
@@ -1589,7 +1796,12 @@ void RenderTimelineFigure(const TimelineFigure& figure, const std::string& path,
     DrawText(cr, label, left + (right - left) / 2, last_plot.Bottom() + used + 6, kAxisLabelFont,
              kTextColour, HAlign::kCentre, VAlign::kTop);
   }
-  canvas.Save(figure.title, PanelTitles(titles));
+  // cairo writes words as glyph outlines: the key goes into the SVG's description too.
+  std::string key;
+  for (const LegendEntry& entry : layout.legend) key += (key.empty() ? "" : ", ") + entry.label;
+  const std::string panels = PanelTitles(titles);
+  canvas.Save(figure.title, panels + (panels.empty() || key.empty() ? "" : "; ") +
+                                (key.empty() ? "" : "key: " + key));
 }
 
 }  // namespace

@@ -605,7 +605,7 @@ TEST(DrawTimelineFigure, PngAndSvgHaveTheStatedSize) {
   EXPECT_THAT(facts.height,
               ::testing::AnyOf(std::to_string(height), std::to_string(height) + "px"));
   EXPECT_EQ(facts.title, figure.title);
-  // Decimated to about four vertices per pixel column: far below the ~20 bytes per point that
+  // Decimated to at most two vertices per pixel column: far below the ~20 bytes per point that
   // 120k undecimated vertices would take in SVG path data.
   EXPECT_LT(ReadBytes(svg).size(), 600'000u);
 }
@@ -764,6 +764,360 @@ TEST(ReadPng, ThrowsNamingPathForNonPng) {
   } catch (const std::runtime_error& error) {
     EXPECT_THAT(error.what(), HasSubstr(path));
   }
+}
+
+// ---- Issue 11 section 4: fitted ratio axes, three ticks, robust ranges, learning, SVG size ----
+
+// Heckbert's loose labelling ("Nice numbers for graph labels", Graphics Gems, 1990; worked example
+// recalled from memory): data 105..543 with 5 ticks gives range NiceNumber(438, false) = 500, step
+// NiceNumber(500 / 4, true) = 100 and a top label of 600. For [0, max] the same rules apply to
+// max: 543 -> NiceNumber(543, false) = 1000, step NiceNumber(250, true) = 200, top 600.
+TEST(RatioAxisRange, HeckbertsLooseTopWithZeroInView) {
+  auto top_of = [](const std::vector<double>& values) {
+    const auto [low, high] = RatioAxisRange(values);
+    EXPECT_NEAR(low, -0.03 / 1.03 * high, 1e-12);  // 3% of the top below 0
+    return high / 1.03;
+  };
+  EXPECT_NEAR(top_of({543, 105}), 600, 1e-9);
+  // 0.05: NiceNumber(0.05, false) = 0.05, step NiceNumber(0.0125, true) = 0.01, top 0.05.
+  EXPECT_NEAR(top_of({0.01, 0.05, 0.03, kNaN}), 0.05, 1e-12);
+  // 0.73: range 1, step NiceNumber(0.25, true) = 0.2, top ceil(3.65) * 0.2 = 0.8.
+  EXPECT_NEAR(top_of({0.2, 0.73}), 0.8, 1e-12);
+  EXPECT_NEAR(top_of({1.0, 0.4}), 1.0, 1e-12);   // full ratios keep the 0-1 axis
+  EXPECT_NEAR(top_of({0.0, kNaN}), 1.0, 1e-12);  // nothing positive: the 0-1 axis
+  EXPECT_NEAR(top_of({}), 1.0, 1e-12);
+  // The issue's case: a sweep whose best precision is 0.05 gets an axis below 0.1.
+  const auto [low, high] = RatioAxisRange({0.002, 0.05, 0.017});
+  EXPECT_LT(high, 0.1);
+  EXPECT_LE(low, 0.0);
+}
+
+// End to end: precisions 0.01..0.05 drawn on the fitted axis fill most of the plot's height; on
+// the old fixed -0.03..1.03 axis the same points sit within a few per cent of it.
+TEST(DrawLineFigure, SmallRatiosFillThePanelOnAFittedAxis) {
+  const std::vector<double> nu = {0.01, 0.02, 0.05, 0.1}, precision = {0.01, 0.02, 0.05, 0.03};
+  auto blue_extent = [&](std::pair<double, double> range, const std::string& path) {
+    LineFigure figure;
+    figure.width = 500;
+    figure.height = 400;
+    LinePanel panel = MakePanel("precision", {MakeSeries("", nu, precision)}, true);
+    panel.y_range = range;
+    figure.panels = {panel};
+    DrawLineFigure(figure, path, Format::kPng);
+    const RasterImage image = ReadPng(path);
+    int top = image.height, bottom = -1;
+    for (int y = 0; y < image.height; ++y) {
+      if (CountInRow(image, y, SeriesColour(0)) > 0) {
+        top = std::min(top, y);
+        bottom = std::max(bottom, y);
+      }
+    }
+    return bottom - top;
+  };
+  const int fitted = blue_extent(RatioAxisRange(precision), TempPath("ratio_fitted.png"));
+  const int fixed = blue_extent({-0.03, 1.03}, TempPath("ratio_fixed.png"));
+  EXPECT_GT(fitted, 200);  // the plot is about 300 px tall
+  EXPECT_LT(fixed, 30);
+}
+
+TEST(LinearTicksAtLeast, HandWorkedExamples) {
+  // [0, 1], target 2: LinearTicks gives step 1 (0 and 1); lowered to 0.5: 0, 0.5, 1.
+  const Ticks unit = LinearTicksAtLeast(0, 1, 2, 3);
+  EXPECT_DOUBLE_EQ(unit.step, 0.5);
+  EXPECT_EQ(unit.values, (std::vector<double>{0, 0.5, 1}));
+  EXPECT_EQ(unit.fraction_digits, 1);
+  // [0.1, 0.95], target 2: step 1 has no multiple inside, 0.5 one, 0.2 four (0.2 .. 0.8).
+  const Ticks inner = LinearTicksAtLeast(0.1, 0.95, 2, 3);
+  EXPECT_DOUBLE_EQ(inner.step, 0.2);
+  ASSERT_EQ(inner.values.size(), 4u);
+  EXPECT_NEAR(inner.values[3], 0.8, 1e-15);
+  // Enough already: the same as LinearTicks.
+  EXPECT_EQ(LinearTicksAtLeast(0, 1, 6, 3).values, LinearTicks(0, 1, 6).values);
+  EXPECT_THROW(LinearTicksAtLeast(0, 1, 5, 0), std::invalid_argument);
+  EXPECT_THROW(LinearTicksAtLeast(1, 0, 5, 3), std::invalid_argument);
+}
+
+TEST(LinearTicksAtLeast, AlwaysThreeNiceTicksInsideTheRange) {
+  std::mt19937 rng(11);
+  std::uniform_real_distribution<double> exponent(-6, 8), unit(-1, 1);
+  std::uniform_int_distribution<int> count(2, 12);
+  for (int trial = 0; trial < 2000; ++trial) {
+    const double scale = std::pow(10.0, exponent(rng));
+    double low = unit(rng) * scale, high = unit(rng) * scale;
+    if (low > high) std::swap(low, high);
+    if (!(high - low > scale * 1e-3)) continue;
+    const Ticks ticks = LinearTicksAtLeast(low, high, count(rng), 3);
+    ASSERT_GE(ticks.values.size(), 3u) << low << " " << high;
+    const double power = std::pow(10.0, std::floor(std::log10(ticks.step) + 1e-9));
+    const double mantissa = ticks.step / power;
+    EXPECT_TRUE(std::fabs(mantissa - 1) < 1e-9 || std::fabs(mantissa - 2) < 1e-9 ||
+                std::fabs(mantissa - 5) < 1e-9)
+        << "step " << ticks.step;
+    for (double v : ticks.values) {
+      EXPECT_GE(v, low - 1e-9 * ticks.step);
+      EXPECT_LE(v, high + 1e-9 * ticks.step);
+    }
+  }
+}
+
+// A timeline over two hours from 00:10 UTC with room for 3 ticks: hourly ticks would give only
+// 01:00 and 02:00; half-hourly ones give four labels.
+TEST(TimeAxisTicks, TwoHoursGetAtLeastThreeLabels) {
+  const double from = kStart + 600, to = kStart + 600 + 7200;
+  const TimeTicks three = TimeAxisTicks(from, to, 3, TimeLabels::kUtc);
+  EXPECT_EQ(three.labels, (std::vector<std::string>{"00:30", "01:00", "01:30", "02:00"}));
+  ASSERT_EQ(three.second_labels.size(), 4u);
+  EXPECT_EQ(three.second_labels[0], "2026-03-01");  // the date under the first tick of the day
+  for (const TimeLabels style : {TimeLabels::kUtc, TimeLabels::kElapsed}) {
+    for (double span : {1.5, 59.0, 7200.0, 86400.0 * 7, 86400.0 * 40, 86400.0 * 400}) {
+      for (int target = 3; target <= 20; ++target) {
+        const TimeTicks ticks = TimeAxisTicks(from, from + span, target, style);
+        ASSERT_GE(ticks.values.size(), 3u) << span << " s, target " << target;
+        ASSERT_EQ(ticks.labels.size(), ticks.values.size());
+        for (const std::string& label : ticks.labels) EXPECT_FALSE(label.empty());
+        if (style == TimeLabels::kElapsed) {  // clock labels repeat daily, under their dates
+          const std::set<std::string> distinct(ticks.labels.begin(), ticks.labels.end());
+          EXPECT_EQ(distinct.size(), ticks.labels.size()) << span << " s, target " << target;
+        }
+        for (double t : ticks.values) {
+          EXPECT_GE(t, from - 1e-6);
+          EXPECT_LE(t, from + span + 1e-6);
+        }
+      }
+    }
+  }
+  EXPECT_THROW(TimeAxisTicks(from, from, 5, TimeLabels::kUtc), std::invalid_argument);
+}
+
+// Independent quantiles: numpy's default (method "linear", Hyndman & Fan type 7).
+std::pair<double, double> NumpyQuantiles(const std::vector<double>& values) {
+  const std::string data = TempPath("quantile_values.txt");
+  {
+    std::ofstream out(data);
+    out.precision(17);
+    for (double v : values) out << v << "\n";
+  }
+  const std::string command = std::string(NUWATCH_PYTHON) +
+                              " -c 'import sys, numpy; v = numpy.loadtxt(sys.argv[1]); "
+                              "print(repr(numpy.quantile(v, 0.005)), repr(numpy.quantile(v, "
+                              "0.995)))' '" +
+                              data + "'";
+  FILE* pipe = popen(command.c_str(), "r");
+  double low = kNaN, high = kNaN;
+  if (pipe != nullptr) {
+    if (std::fscanf(pipe, "%lf %lf", &low, &high) != 2) low = high = kNaN;
+    pclose(pipe);
+  }
+  return {low, high};
+}
+
+TEST(RobustValueRange, OneDeepDipDoesNotSetTheRange) {
+  std::vector<double> values;
+  for (int i = 0; i <= 10000; ++i) values.push_back(-1 + 2.0 * i / 10000);
+  const ValueRange normal = RobustValueRange(values, 0);
+  EXPECT_FALSE(normal.clipped);
+  EXPECT_LE(normal.low, -1);
+  EXPECT_GE(normal.high, 1);
+  values[5000] = -1000;
+  const ValueRange dipped = RobustValueRange(values, 0);
+  EXPECT_TRUE(dipped.clipped);
+  EXPECT_GT(dipped.low, -1.5);  // within a small multiple of the normal spread (2)
+  EXPECT_LT(dipped.high, 1.5);
+  EXPECT_LT(dipped.high - dipped.low, 3);
+  // Not rare: 2% of the values that deep is part of the picture, shown whole.
+  for (int i = 0; i < 200; ++i) values[static_cast<std::size_t>(i * 50)] = -1000;
+  const ValueRange common = RobustValueRange(values, 0);
+  EXPECT_FALSE(common.clipped);
+  EXPECT_LE(common.low, -1000);
+  // The value always shown (the envelope boundary) widens the range.
+  EXPECT_LE(RobustValueRange({5, 6, 5.5}, 0).low, 0);
+  const ValueRange none = RobustValueRange({kNaN}, 0);
+  EXPECT_EQ(none.low, -1);
+  EXPECT_EQ(none.high, 1);
+}
+
+TEST(RobustValueRange, QuantilesAgreeWithNumpy) {
+  std::mt19937 rng(5);
+  std::cauchy_distribution<double> heavy(3, 0.5);  // heavy tails: clipping is certain
+  std::vector<double> values(4000);
+  for (double& v : values) v = heavy(rng);
+  const auto [q_low, q_high] = NumpyQuantiles(values);
+  ASSERT_TRUE(std::isfinite(q_low) && std::isfinite(q_high)) << "python3 with numpy is needed";
+  const ValueRange range = RobustValueRange(values, kNaN);  // nothing else to show
+  ASSERT_TRUE(range.clipped);
+  const double span = q_high - q_low;
+  EXPECT_NEAR(range.low, q_low - 0.05 * span, 1e-9 * span);
+  EXPECT_NEAR(range.high, q_high + 0.05 * span, 1e-9 * span);
+}
+
+// One sample at -1000 among values in [-1, 1]: the normal variation keeps most of the panel's
+// height (the axis follows the robust range), and the dip is marked by a black triangle on the
+// bottom edge (with no legend entry here, the only black besides the dashed zero line).
+TEST(DrawTimelineFigure, DeepDipIsClippedAndMarked) {
+  auto draw = [](bool dip, const std::string& path) {
+    TimelineFigure figure;
+    figure.clipped_label = "";
+    figure.value_label = "";
+    TimelinePanel panel = MakeTimeline("dip");
+    std::mt19937 rng(3);
+    std::uniform_real_distribution<double> noise(-1, 1);
+    for (int i = 0; i < 3000; ++i) {
+      panel.t.push_back(kStart + i * 60.0);
+      panel.value.push_back(dip && i == 2250 ? -1000 : noise(rng));
+    }
+    figure.panels = {panel};
+    DrawTimelineFigure(figure, path, Format::kPng);
+    return ReadPng(path);
+  };
+  const RasterImage with_dip = draw(true, TempPath("dip.png"));
+  const RasterImage without = draw(false, TempPath("no_dip.png"));
+  // Rows holding the line in the left half (away from the dip at 3/4 of the time axis).
+  auto line_rows = [](const RasterImage& image) {
+    int rows = 0;
+    for (int y = 0; y < image.height; ++y) {
+      bool any = false;
+      for (int x = 0; x < image.width / 2 && !any; ++x) any = Bluish(image.At(x, y));
+      rows += any ? 1 : 0;
+    }
+    return rows;
+  };
+  EXPECT_GT(line_rows(with_dip), 100);  // a panel of about 190 px; squashed it would be ~1 px
+  EXPECT_NEAR(line_rows(with_dip), line_rows(without), 30);
+  const std::size_t black_with = CountColour(with_dip, kClippedColour);
+  const std::size_t black_without = CountColour(without, kClippedColour);
+  EXPECT_GE(black_with, black_without + 12) << "no triangle marks the clipped dip";
+}
+
+// The learning span (no decision values) is a grey band labelled in the key; in the PNG it covers
+// its share of the time axis, in the SVG the key names it (cairo writes words as outlines, so the
+// description carries them).
+TEST(DrawTimelineFigure, LearningSpanIsABandNamedInTheKey) {
+  TimelineFigure figure;
+  figure.title = "learning (invented data)";
+  TimelinePanel panel = MakeTimeline("pump");
+  const int points = 4000;
+  for (int i = 0; i < points; ++i) {
+    panel.t.push_back(kStart + i * 60.0);
+    panel.value.push_back(i < points / 4 ? kNaN : std::sin(i / 50.0));
+  }
+  panel.learning = {{panel.t.front(), panel.t[points / 4]}};
+  figure.panels = {panel};
+  const std::string png = TempPath("learning.png"), svg = TempPath("learning.svg");
+  DrawTimelineFigure(figure, png, Format::kPng);
+  DrawTimelineFigure(figure, svg, Format::kSvg);
+  const RasterImage image = ReadPng(png);
+  const std::uint32_t band = OverWhite(kLearningColour, kLearningAlpha);
+  std::size_t best_row = 0;
+  for (int y = 0; y < image.height; ++y) {
+    std::size_t count = 0;
+    for (int x = 0; x < image.width; ++x) count += Near(image.At(x, y), band, 3) ? 1 : 0;
+    best_row = std::max(best_row, count);
+  }
+  int first_blue = image.width, last_blue = -1;
+  for (int y = 0; y < image.height; ++y) {
+    for (int x = 0; x < image.width; ++x) {
+      if (Bluish(image.At(x, y))) {
+        first_blue = std::min(first_blue, x);
+        last_blue = std::max(last_blue, x);
+      }
+    }
+  }
+  // The line spans the scored three quarters; the band the learning quarter before it.
+  ASSERT_GT(last_blue - first_blue, image.width / 3);
+  EXPECT_NEAR(static_cast<double>(best_row) / (last_blue - first_blue), 1.0 / 3, 0.04);
+  const std::string text = ReadBytes(svg);
+  EXPECT_THAT(text, HasSubstr("<desc>pump; key: decision value, envelope boundary (0), learning"));
+  EXPECT_TRUE(ReadSvg(svg).parsed);
+  // A learning interval must be finite and ordered.
+  panel.learning = {{kStart + 10, kStart}};
+  figure.panels = {panel};
+  EXPECT_THROW(DrawTimelineFigure(figure, TempPath("bad_learning.svg"), Format::kSvg),
+               std::runtime_error);
+}
+
+TEST(DecimateToColumns, KeepsEachColumnsExtremesInOrder) {
+  // Column 0: values 5, 9, 1, 4 at x 0.1..0.7: the highest (9, x 0.3) comes before the lowest
+  // (1, x 0.5), and stays first; column 1 holds one value, kept once.
+  const std::vector<Point> column = {{0.1, 5}, {0.3, 9}, {0.5, 1}, {0.7, 4}, {1.5, 2}};
+  const std::vector<Point> kept = DecimateToColumns(column);
+  ASSERT_EQ(kept.size(), 3u);
+  EXPECT_EQ(kept[0].x, 0.3);
+  EXPECT_EQ(kept[0].y, 9);
+  EXPECT_EQ(kept[1].x, 0.5);
+  EXPECT_EQ(kept[1].y, 1);
+  EXPECT_EQ(kept[2].y, 2);
+  // A break survives as a NaN point; a lone point stays one point.
+  const std::vector<Point> broken = DecimateToColumns({{0.2, 1}, {1.2, kNaN}, {2.5, 3}});
+  ASSERT_EQ(broken.size(), 3u);
+  EXPECT_TRUE(std::isnan(broken[1].y));
+  // 100,000 random points over 1000 columns: at most 2 per column, and every column's minimum
+  // and maximum (computed here directly) are among the kept points.
+  std::mt19937 rng(9);
+  std::normal_distribution<double> noise(0, 1);
+  std::vector<Point> many;
+  for (int i = 0; i < 100000; ++i) many.push_back({i / 100.0, noise(rng)});
+  const std::vector<Point> decimated = DecimateToColumns(many);
+  EXPECT_LE(decimated.size(), 2000u);
+  std::vector<double> low(1000, 1e9), high(1000, -1e9), kept_low(1000, 1e9), kept_high(1000, -1e9);
+  for (const Point& p : many) {
+    const auto c = static_cast<std::size_t>(p.x);
+    low[c] = std::min(low[c], p.y);
+    high[c] = std::max(high[c], p.y);
+  }
+  for (const Point& p : decimated) {
+    const auto c = static_cast<std::size_t>(p.x);
+    kept_low[c] = std::min(kept_low[c], p.y);
+    kept_high[c] = std::max(kept_high[c], p.y);
+  }
+  EXPECT_EQ(low, kept_low);
+  EXPECT_EQ(high, kept_high);
+}
+
+// A colour channel as cairo's SVG surface writes it: the percentage printed with "%f", trailing
+// zeros (and a bare point) dropped, e.g. 213 -> "83.529412", 0 -> "0", 255 -> "100".
+std::string CairoPercent(int channel) {
+  char text[32];
+  std::snprintf(text, sizeof text, "%f", channel / 255.0 * 100);
+  std::string out = text;
+  out.erase(out.find_last_not_of('0') + 1);
+  if (out.back() == '.') out.pop_back();
+  return out;
+}
+
+// How often the SVG fills a shape with this colour (cairo writes "fill:rgb(R%,G%,B%)").
+std::size_t CountFills(const std::string& svg, std::uint32_t colour) {
+  char pattern[96];
+  std::snprintf(pattern, sizeof pattern, "fill:rgb(%s%%,%s%%,%s%%)",
+                CairoPercent(Channel(colour, 16)).c_str(), CairoPercent(Channel(colour, 8)).c_str(),
+                CairoPercent(Channel(colour, 0)).c_str());
+  std::size_t count = 0;
+  for (std::size_t at = svg.find(pattern); at != std::string::npos;
+       at = svg.find(pattern, at + 1)) {
+    ++count;
+  }
+  return count;
+}
+
+// A week of 100,000 samples with 40 alarms: the SVG stays under 150 kB (it holds O(width) points,
+// not O(samples)), and each of the 40 alarms still has its own dot (plus one path for the rug).
+TEST(DrawTimelineFigure, SvgOfManySamplesIsSmallAndKeepsEveryAlarm) {
+  TimelineFigure figure;
+  figure.marks_label = "";  // no legend sample in the alarm colour
+  TimelinePanel panel = MakeTimeline("stream");
+  std::mt19937 rng(1);
+  std::normal_distribution<double> noise(0, 0.3);
+  for (int i = 0; i < 100000; ++i) {
+    panel.t.push_back(kStart + i * 6.0);
+    panel.value.push_back(noise(rng));
+  }
+  for (int k = 0; k < 40; ++k) panel.marks.push_back(kStart + 6.0 * (1000 + k * 2400 + k % 3));
+  figure.panels = {panel};
+  const std::string svg_path = TempPath("many.svg");
+  DrawTimelineFigure(figure, svg_path, Format::kSvg);
+  const std::string svg = ReadBytes(svg_path);
+  EXPECT_LT(svg.size(), 150'000u);
+  EXPECT_EQ(CountFills(svg, kMarkColour), 40u + 1);
+  EXPECT_TRUE(ReadSvg(svg_path).parsed);
 }
 
 }  // namespace
