@@ -11,6 +11,7 @@
 #include <limits>
 #include <map>
 #include <nlohmann/json.hpp>
+#include <optional>
 #include <set>
 #include <utility>
 
@@ -973,7 +974,13 @@ charts::LineFigure SweepFigure(const TuningReport& report) {
     chosen.y = {metrics[m].value(report.chosen()).value_or(kNaN)};
     panel.series.push_back(std::move(chosen));
     if (m + 1 < metrics.size()) {
-      panel.y_range = std::make_pair(-0.03, 1.03);
+      // Ratios: from 0 (so that heights compare honestly) to just above the largest, so that a
+      // precision of 0.02 is not a flat line along the bottom of a 0-1 axis.
+      std::vector<double> ratios;
+      for (const charts::Series& series : panel.series) {
+        ratios.insert(ratios.end(), series.y.begin(), series.y.end());
+      }
+      panel.y_range = charts::RatioAxisRange(ratios);
     } else if (report.max_false_alarms_per_day) {
       panel.reference_y = *report.max_false_alarms_per_day;
       panel.reference_label = "limit " + Shortest(*report.max_false_alarms_per_day) + "/day";
@@ -1027,13 +1034,23 @@ charts::TimelineFigure ChosenTimelineFigure(const TuningReport& report,
                   std::to_string(e.false_alarm_events) + " false alarm(s)";
     panel.y_label = "decision value";
     bool previous = false;
+    // Learning rows have no decision value: a band from the first learning row to the next
+    // scored one (or the last learning row) explains the gap in the line.
+    std::optional<double> learning_since;
     for (const int64_t i : by_stream[s]) {
-      panel.t.push_back(recording.times[i]);
+      const double t = recording.times[i];
+      panel.t.push_back(t);
       panel.value.push_back(rows[i].learning ? kNaN : rows[i].decision);
+      if (rows[i].learning && !learning_since) learning_since = t;
+      if (!rows[i].learning && learning_since) {
+        panel.learning.push_back({*learning_since, t});
+        learning_since.reset();
+      }
       const bool alarmed = Alarmed(rows[i], report.alarms);
-      if (alarmed && !previous) panel.marks.push_back(recording.times[i]);
+      if (alarmed && !previous) panel.marks.push_back(t);
       previous = alarmed;
     }
+    if (learning_since) panel.learning.push_back({*learning_since, panel.t.back()});
     for (const Incident& incident : incidents) {
       if (incident.stream == recording.streams[s]) {
         panel.shaded.push_back({incident.start_seconds, incident.end_seconds});

@@ -226,11 +226,14 @@ std::string ResultsJson(const TuningReport& report, const TuningProvenance& prov
 
 // Precision, recall, the objective and false alarms per day against nu (log axis), one line per
 // combination of the other tuned keys, the chosen setting marked, the limit as a reference line.
+// The ratio panels share no fixed 0-1 axis: each runs from 0 to just above its largest value
+// (charts::RatioAxisRange), so that small precisions stay readable.
 charts::LineFigure SweepFigure(const TuningReport& report);
 
 // The chosen setting's decision values per stream over time, incident windows shaded, the start
-// of each alarm event marked. At most `max_panels` streams: those with labelled incidents first,
-// then those with the most alarm events, shown in recording order.
+// of each alarm event marked, each run of learning rows (no decision value) a band from its first
+// row to the next scored row (or its own last row). At most `max_panels` streams: those with
+// labelled incidents first, then those with the most alarm events, shown in recording order.
 // Requires: rows is the chosen setting's replay of `recording`; max_panels >= 1.
 charts::TimelineFigure ChosenTimelineFigure(const TuningReport& report,
                                             const StreamRecording& recording,

@@ -573,6 +573,17 @@ TEST(TuningReportTest, FiguresFollowTheResults) {
   }
   ASSERT_TRUE(sweep.panels[3].reference_y);
   EXPECT_EQ(*sweep.panels[3].reference_y, 50.0);
+  // The ratio panels: an axis from (just below) 0 to at or above their largest value.
+  for (std::size_t m = 0; m < 3; ++m) {
+    ASSERT_TRUE(sweep.panels[m].y_range);
+    double largest = 0;
+    for (const charts::Series& series : sweep.panels[m].series) {
+      for (double y : series.y) largest = std::isfinite(y) ? std::max(largest, y) : largest;
+    }
+    EXPECT_LT(sweep.panels[m].y_range->first, 0);
+    EXPECT_GE(sweep.panels[m].y_range->second, largest);
+    EXPECT_LE(sweep.panels[m].y_range->second, 1.03 + 1e-12);
+  }
 
   const std::vector<ReplayRow> rows =
       ReplaySetting(recording, options.base, report.chosen().setting);
@@ -585,6 +596,17 @@ TEST(TuningReportTest, FiguresFollowTheResults) {
   EXPECT_THAT(one.title, HasSubstr("1 of 3 streams"));
   const charts::TimelineFigure all = ChosenTimelineFigure(report, recording, rows, incidents);
   ASSERT_EQ(all.panels.size(), 3u);
+  // The rows a detector spent learning (no decision value) are one band per run of them, from
+  // the first such row to the next scored row.
+  for (std::size_t p = 0; p < all.panels.size(); ++p) {
+    const charts::TimelinePanel& panel = all.panels[p];
+    std::size_t learning_rows = 0;
+    for (double v : panel.value) learning_rows += std::isnan(v) ? 1 : 0;
+    ASSERT_GT(learning_rows, 0u) << "the small detector learns first";
+    ASSERT_FALSE(panel.learning.empty());
+    EXPECT_EQ(panel.learning[0].start, panel.t[0]);
+    EXPECT_EQ(panel.learning[0].end, panel.t[learning_rows]);
+  }
   // One mark per alarm event: the events of the chosen setting's evaluation.
   std::size_t marks = 0;
   for (const charts::TimelinePanel& panel : all.panels) marks += panel.marks.size();
