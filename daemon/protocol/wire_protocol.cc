@@ -42,6 +42,7 @@ constexpr RejectReason kAllRejectReasons[] = {
     RejectReason::kDimsMismatch,
     RejectReason::kStreamLimit,
     RejectReason::kNotOwner,
+    RejectReason::kAwaitingHandoff,
 };
 
 // Offsets of the §6.1 header fields.
@@ -697,6 +698,8 @@ std::string_view RejectReasonLabel(RejectReason reason) noexcept {
       return "stream_limit";
     case RejectReason::kNotOwner:
       return "not_owner";
+    case RejectReason::kAwaitingHandoff:
+      return "awaiting_handoff";
   }
   return "unknown";
 }

@@ -53,9 +53,11 @@ enum class RejectReason : std::uint8_t {
   kNonFinite,
   kDimsLimit,
   kCountLimit,
-  kDimsMismatch,  // not produced here: the daemon's check against a stream's fixed dims
-  kStreamLimit,   // not produced here: the daemon's cap on the number of streams
-  kNotOwner,      // not produced here: another replica owns the key (§13, ownership.h)
+  kDimsMismatch,     // not produced here: the daemon's check against a stream's fixed dims
+  kStreamLimit,      // not produced here: the daemon's cap on the number of streams
+  kNotOwner,         // not produced here: another replica owns the key (§13, ownership.h)
+  kAwaitingHandoff,  // not produced here: the key's state is on its way from its previous owner
+                     // and the vectors held meanwhile are at their bound (§13.4)
 };
 
 // Ensures: the §8 label ("bad_json", ...), "none" for kNone, "unknown" for a value outside the

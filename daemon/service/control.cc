@@ -58,6 +58,12 @@ std::string ControlErrorReply(std::string_view error) {
 
 std::string HandleControlRequest(std::string_view request, ControlCommands& commands,
                                  std::string_view version) {
+  return HandleControlRequest(request, std::nullopt, commands, version);
+}
+
+std::string HandleControlRequest(std::string_view request,
+                                 std::optional<std::string_view> attachment,
+                                 ControlCommands& commands, std::string_view version) {
   const json parsed = json::parse(request.begin(), request.end(), nullptr, false);
   if (parsed.is_discarded()) return ControlErrorReply("the request is not valid JSON");
   if (!parsed.is_object()) return ControlErrorReply("the request must be a JSON object");
@@ -67,7 +73,32 @@ std::string HandleControlRequest(std::string_view request, ControlCommands& comm
   }
   if (!command_it->is_string()) return ControlErrorReply("\"command\" must be a string");
   const std::string command = command_it->get<std::string>();
+  if (attachment && command != "adopt") {
+    return ControlErrorReply("a control request is a single frame (only adopt takes a second)");
+  }
   try {
+    if (command == "adopt") {
+      const auto stream_it = parsed.find("stream");
+      const auto from_it = parsed.find("from");
+      if (stream_it == parsed.end() || !stream_it->is_string() || from_it == parsed.end() ||
+          !from_it->is_string()) {
+        return ControlErrorReply("adopt needs string members \"stream\" and \"from\"");
+      }
+      if (!attachment) {
+        return ControlErrorReply("adopt needs a second frame: the stream's state");
+      }
+      const std::string stream = stream_it->get<std::string>();
+      const AdoptOutcome outcome = commands.Adopt(
+          stream, from_it->get<std::string>(),
+          std::span(reinterpret_cast<const uint8_t*>(attachment->data()), attachment->size()));
+      if (!outcome.ok) {
+        return Dump({{"ok", false}, {"error", outcome.error}, {"reason", outcome.reason}});
+      }
+      return Dump({{"ok", true},
+                   {"stream", stream},
+                   {"held_vectors", outcome.held_vectors},
+                   {"state_written", outcome.state_written}});
+    }
     if (command == "status") {
       return Dump(StatusJson(commands.Status(), commands.Cluster(), version));
     }
@@ -105,7 +136,7 @@ std::string HandleControlRequest(std::string_view request, ControlCommands& comm
     return ControlErrorReply("command '" + command + "' failed: " + e.what());
   }
   return ControlErrorReply("unknown command '" + command +
-                           "' (known: status, snapshot, relearn, reload, forget)");
+                           "' (known: status, snapshot, relearn, reload, forget, adopt)");
 }
 
 }  // namespace nuwatch

@@ -6,6 +6,7 @@
 
 #include <cstdint>
 #include <optional>
+#include <span>
 #include <string>
 #include <string_view>
 #include <vector>
@@ -46,6 +47,19 @@ struct ReloadOutcome : ControlOutcome {
   int64_t streams_updated = 0;  // streams given new detector settings
 };
 
+// The outcome of an adopt request (PROTOCOL.md §11.7): a stream's state handed over by the member
+// that owned it before a change of cluster.members.
+struct AdoptOutcome : ControlOutcome {
+  // When !ok, the stable label of the refusal: "not_owner" (this member does not own the key
+  // under its member list: the sender retries until it has reloaded too), "stream_exists",
+  // "corrupt_state", "dims_mismatch", "stream_limit", "unsupported".
+  std::string reason;
+  int64_t held_vectors = 0;  // vectors that came before the state, scored by the adopted model
+  // The adopted state is in this member's state file (fsynced and renamed), so that the old
+  // owner may delete its copy; false without a state directory or when the write failed.
+  bool state_written = false;
+};
+
 // The replica's place among cluster.members (PROTOCOL.md §13), for status.
 struct ClusterStatus {
   std::string member;       // this daemon's name; "" = none (a lone daemon)
@@ -65,6 +79,19 @@ class ControlCommands {
   // Stops tracking the stream: its model, window, metric series and state file go; its next
   // vector starts it afresh. nullopt when done; else the error (e.g. unknown stream).
   virtual std::optional<std::string> Forget(const std::string& stream) = 0;
+  // Takes over `stream` with `state` (state_store.h's EncodeStreamState bytes) from member
+  // `from`. The default refuses: a daemon that cannot adopt.
+  virtual AdoptOutcome Adopt(const std::string& stream, const std::string& from,
+                             std::span<const uint8_t> state) {
+    (void)stream;
+    (void)from;
+    (void)state;
+    AdoptOutcome outcome;
+    outcome.ok = false;
+    outcome.reason = "unsupported";
+    outcome.error = "this daemon does not adopt streams";
+    return outcome;
+  }
 };
 
 // Ensures: a one-line JSON object. {"ok":false,"error":"..."} for anything that is not a JSON
@@ -72,6 +99,12 @@ class ControlCommands {
 // throws except std::bad_alloc. Exceptions from `commands` become {"ok":false,...} too.
 std::string HandleControlRequest(std::string_view request, ControlCommands& commands,
                                  std::string_view version);
+// The same for a request of two frames: `attachment` is the second frame, which only adopt takes
+// (and requires); nullopt for a request of one frame. A second frame with another command, or an
+// adopt without one, is answered with an error.
+std::string HandleControlRequest(std::string_view request,
+                                 std::optional<std::string_view> attachment,
+                                 ControlCommands& commands, std::string_view version);
 
 // The reply to a request of more than one frame.
 std::string ControlErrorReply(std::string_view error);

@@ -161,6 +161,21 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
       &Build(BuildGauge(), "nuwatch_cluster_members",
              "Members in this replica's cluster.members list (0: not part of a cluster).", r)
            .Add({});
+  auto& handoffs = Build(BuildCounter(), "nuwatch_stream_handoffs_total",
+                         "Streams handed between members after a change of cluster.members, by "
+                         "direction (sent, received) and outcome: ok (adopted), refused (for "
+                         "good), corrupt (received state that did not decode), timeout (sent: "
+                         "not adopted in time, the state file stays; received: held for a state "
+                         "that did not come, started afresh).",
+                         r);
+  const char* outcomes[] = {"ok", "refused", "corrupt", "timeout"};  // HandoffOutcome's order
+  for (std::size_t i = 0; i < kHandoffOutcomeCount; ++i) {
+    // A sender refuses its own undecodable state before sending: no sent/corrupt series.
+    if (static_cast<HandoffOutcome>(i) != HandoffOutcome::kCorrupt) {
+      handoffs_[0][i] = &handoffs.Add({{"direction", "sent"}, {"outcome", outcomes[i]}});
+    }
+    handoffs_[1][i] = &handoffs.Add({{"direction", "received"}, {"outcome", outcomes[i]}});
+  }
   refits_queued_ = &Build(BuildGauge(), "nuwatch_refits_queued",
                           "Refits waiting for a refit thread (at most one per stream).", r)
                         .Add({});

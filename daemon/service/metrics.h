@@ -38,6 +38,11 @@
 //                                                      list, 0 outside a cluster (replicas that
 //                                                      disagree or a missing replica show in the
 //                                                      fleet rules of nuwatch_rules.yml)
+//   nuwatch_stream_handoffs_total{direction,outcome}  counter  streams handed between members
+//                                                      after a change of cluster.members
+//                                                      (PROTOCOL.md §13.4): direction sent
+//                                                      (outcome ok, refused, timeout) or
+//                                                      received (ok, refused, corrupt, timeout)
 //   nuwatch_refits_queued                     gauge    refits waiting for a refit thread (at most
 //                                                      one per stream: later ones are coalesced)
 //   nuwatch_results_dropped_total{reason}     counter  results not handed to the result socket:
@@ -101,6 +106,15 @@ enum class AuthRefusal : uint8_t {
 inline constexpr std::size_t kAuthRefusalCount = 4;
 std::string_view AuthRefusalLabel(AuthRefusal reason);
 
+// A stream handed to another member (kSent) or taken over from one (kReceived), PROTOCOL.md §13.4.
+enum class HandoffDirection : uint8_t { kSent, kReceived };
+// kOk: handed over and adopted. kRefused: the receiver refused it for good (sent: it said so;
+// received: stream_exists, dims_mismatch, stream_limit, not_owner). kCorrupt (received only): the
+// state did not decode. kTimeout: sent, no adoption within cluster.handoff_timeout_seconds (the
+// state file stays); received, a key held for its state that did not come (started afresh).
+enum class HandoffOutcome : uint8_t { kOk, kRefused, kCorrupt, kTimeout };
+inline constexpr std::size_t kHandoffOutcomeCount = 4;
+
 enum class RefitResult : uint8_t { kOk, kNotConverged, kFailed, kDiscarded, kCoalesced };
 inline constexpr std::size_t kRefitResultCount = 5;
 // "ok", "not_converged", "failed", "discarded", "coalesced".
@@ -151,6 +165,10 @@ class DaemonMetrics {
   prometheus::Counter& streams_expired() const { return *streams_expired_; }
   prometheus::Counter& streams_released() const { return *streams_released_; }
   prometheus::Gauge& cluster_members() const { return *cluster_members_; }
+  // Requires: not (kSent, kCorrupt), which is not a series (a sender's corrupt state is refused).
+  prometheus::Counter& handoffs(HandoffDirection direction, HandoffOutcome outcome) const {
+    return *handoffs_[static_cast<std::size_t>(direction)][static_cast<std::size_t>(outcome)];
+  }
   // nuwatch_results_dropped_total or nuwatch_incident_events_dropped_total, by reason.
   prometheus::Counter& publish_dropped(PublishedMessage message, PublishDropReason reason) const {
     return *publish_dropped_[static_cast<std::size_t>(message)][static_cast<std::size_t>(reason)];
@@ -189,6 +207,7 @@ class DaemonMetrics {
   prometheus::Counter* streams_expired_;
   prometheus::Counter* streams_released_;
   prometheus::Gauge* cluster_members_;
+  std::array<std::array<prometheus::Counter*, kHandoffOutcomeCount>, 2> handoffs_{};
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;
   std::array<std::array<prometheus::Counter*, kAuthRefusalCount>, kAuthSocketCount> auth_refused_{};

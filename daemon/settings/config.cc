@@ -358,6 +358,25 @@ const Setting<S> kDaemonKeys[] = {
             "the pod's name). \"\": none, for a lone daemon.",
      .unit = "member name",
      .reload = kNow},
+    {.section = "cluster",
+     .name = "control_endpoint",
+     .member = &S::cluster_control_endpoint,
+     .doc = "Every member's control endpoint, {member} standing for the member's name (e.g. "
+            "\"tcp://{member}.nuwatchd:7603\"): when a reload of members moves a stream, its old "
+            "owner hands the stream's state to the new owner there, so that scoring goes on "
+            "without a new warm-up (PROTOCOL.md §13.4). \"\": no handoff; a stream that changes "
+            "owner starts afresh at its new owner.",
+     .unit = "ZeroMQ endpoint template",
+     .reload = kNow},
+    {.section = "cluster",
+     .name = "handoff_timeout_seconds",
+     .member = &S::cluster_handoff_timeout_seconds,
+     .doc = "After a change of members, how long an old owner keeps offering a stream's state to "
+            "its new owner, and how long the new owner holds the vectors of a stream whose state "
+            "has not come yet; then the stream starts afresh at its new owner.",
+     .unit = "seconds",
+     .bounds = {.min = 0, .min_open = true, .max = 86400},
+     .reload = kNow},
 };
 
 constexpr std::string_view kDaemonSections[] = {"daemon",    "ingest",  "publish", "control",

@@ -76,6 +76,10 @@ struct DaemonSettings {
   // [cluster] (replicas that share the streams by owner: daemon/protocol/PROTOCOL.md §13)
   std::vector<std::string> cluster_members;  // members ([] = a lone daemon: owns every stream)
   std::string cluster_member;                // member (this daemon's name; required with members)
+  // control_endpoint: each member's control endpoint, "{member}" standing for its name ("" = no
+  // handoff: a stream that changes owner starts afresh there)
+  std::string cluster_control_endpoint;
+  double cluster_handoff_timeout_seconds = 30;  // handoff_timeout_seconds
 
   bool operator==(const DaemonSettings&) const = default;
 };
