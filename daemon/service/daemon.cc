@@ -40,12 +40,14 @@
 #include "protocol/wire_protocol.h"
 #include "service/control.h"
 #include "service/curve_auth.h"
+#include "service/handoff.h"
 #include "service/metrics.h"
 #include "service/recorder.h"
 #include "service/refit_pool.h"
 #include "service/state_store.h"
 #include "service/stream_registry.h"
 #include "settings/secret_file.h"
+#include "settings/setting_text.h"
 
 namespace nuwatch {
 
@@ -59,6 +61,10 @@ void ApplyOverrides(const CommandLineOverrides& o, DaemonSettings* s) {
   if (o.log_level) s->log_level = *o.log_level;
   if (o.cluster_member) s->cluster_member = *o.cluster_member;
 }
+
+namespace {
+constexpr std::string_view kMemberPlaceholder = "{member}";
+}  // namespace
 
 void CheckConfigForDaemon(const Config& config) {
   const std::string file =
@@ -89,6 +95,11 @@ void CheckConfigForDaemon(const Config& config) {
                       "\" is not one of cluster.members (" + list +
                       "): set it in [cluster] or with nuwatchd --member NAME");
   }
+  if (!d.cluster_control_endpoint.empty() &&
+      d.cluster_control_endpoint.find(kMemberPlaceholder) == std::string::npos) {
+    throw ConfigError(file + ": cluster.control_endpoint = \"" + d.cluster_control_endpoint +
+                      "\" does not contain {member}, which stands for each member's name");
+  }
   for (const auto& override_table : config.overrides) {
     // [detector] with this table applied: the table alone, matching every key.
     Config one = config;
@@ -110,6 +121,12 @@ constexpr int kTrimIntervalSeconds = 5;
 // How often the socket thread reads the (un)subscriptions the XPUB socket hands up.
 constexpr std::chrono::milliseconds kSubscriptionDrainInterval{200};
 constexpr std::size_t kControlMaxBytes = 1 << 20;
+// The second frame of an adopt request (a stream's whole state) may be larger: ZeroMQ drops a
+// connection that sends a frame longer than this (PROTOCOL.md §11).
+constexpr std::size_t kAdoptMaxBytes = std::size_t{256} << 20;
+// Vectors held for streams whose state is on its way (PROTOCOL.md §13.4): payload bytes per
+// scoring thread at most, beyond each key's own bound.
+constexpr std::size_t kHeldBytesPerShard = std::size_t{64} << 20;
 constexpr int kPublishLingerMs = 200;
 // At a stop the results of the drained input are still on their way to the subscribers: give them
 // this long to leave before the socket closes (a subscriber that is gone only delays the exit).
@@ -285,6 +302,18 @@ struct Shard {
   std::optional<Clock::time_point> next_write_retry;
   Clock::time_point turn_time{};  // when the current turn of messages began (Stream::last_seen)
 
+  // Ingest payloads of keys this member has just come to own and whose state is on its way from
+  // their previous owner (PROTOCOL.md §13.4), in arrival order; scored once the state is adopted
+  // or the wait is over. Each key holds at most `max_vectors`; the shard at most
+  // kHeldBytesPerShard bytes.
+  struct Held {
+    std::vector<std::string> payloads;
+    int64_t vectors = 0;
+    int64_t max_vectors = 0;
+  };
+  std::unordered_map<std::string, Held> held;
+  std::size_t held_bytes = 0;
+
   // Hot-path buffers, reused so that steady-state processing does not allocate.
   zmq::message_t key_message;
   zmq::message_t payload_message;
@@ -422,6 +451,25 @@ struct Daemon::Impl final : ControlCommands {
   std::optional<std::string> Relearn(const std::string& stream) override;
   ReloadOutcome Reload() override;
   std::optional<std::string> Forget(const std::string& stream) override;
+  AdoptOutcome Adopt(const std::string& stream, const std::string& from,
+                     std::span<const uint8_t> state) override;
+
+  // Handoff (PROTOCOL.md §13.4). The new owner's side: whether a key without a stream here waits
+  // for its state from its previous owner (scoring threads, and the socket thread while they are
+  // paused), holding its vectors meanwhile; the held vectors of one key, scored now (by the
+  // adopted stream, or by a new one once the wait is over); every held key whose wait is over
+  // (`all`: every held key, at a stop).
+  bool AwaitsHandoff(std::string_view key) const;
+  void Hold(Shard& shard, std::string_view key, std::string_view payload, int64_t vectors);
+  int64_t ScoreHeld(Shard& shard, const std::string& key);
+  void EndHolds(Shard& shard, bool all);
+  bool HandoffEnabled() const {
+    return !config.daemon.cluster_control_endpoint.empty() &&
+           !config.daemon.cluster_members.empty();
+  }
+  // The old owner's side: the stream's state offered to its new owner by `handoff_sender`.
+  void ReportHandoff(const HandoffOffer& offer, const HandoffReport& report);
+  std::string ControlEndpointOf(const std::string& member) const;
 
   DaemonOptions options;
   Config config;  // in force
@@ -515,6 +563,15 @@ struct Daemon::Impl final : ControlCommands {
     }
   };
   std::unordered_map<std::string, bool, KeyHash, std::equal_to<>> owner_cache;
+
+  // Until when keys this member has come to own wait for their state (AwaitsHandoff), and which
+  // member owned them before: at start-up nothing is known (every key without a restored stream
+  // waits: a new member's keys all come from others), after a reload the previous member list
+  // and name. Written by the socket thread while the shards are paused or not yet started.
+  Clock::time_point handoff_until{};
+  std::optional<std::vector<std::string>> handoff_previous_members;
+  std::string handoff_previous_member;
+  std::unique_ptr<HandoffSender> handoff_sender;
 };
 
 // Holds every running scoring thread between two messages, from construction to destruction, so
@@ -617,9 +674,20 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
     }
   }
   metrics.streams().Set(static_cast<double>(stream_count.load()));
+  if (HandoffEnabled()) {
+    // A member that joins owns keys whose state the others will hand over once they reload.
+    handoff_until =
+        Clock::now() + std::chrono::duration_cast<Clock::duration>(std::chrono::duration<double>(
+                           config.daemon.cluster_handoff_timeout_seconds));
+  }
+  handoff_sender = std::make_unique<HandoffSender>(
+      context, server_keys, [this](const HandoffOffer& offer, const HandoffReport& report) {
+        ReportHandoff(offer, report);
+      });
 }
 
 Daemon::Impl::~Impl() {
+  if (handoff_sender) handoff_sender->Stop();
   // Streams first (each waits for its refit), while the pool and the metrics still exist.
   pool.Join();
   for (auto& shard : shards) shard->streams.Clear();
@@ -747,7 +815,7 @@ void Daemon::Impl::BindSockets() {
   if (auth) auth->Protect(publish, AuthSocket::kPublish, *server_keys);
   endpoints.publish = bind(publish, s.publish_endpoint, "publish.endpoint");
   control = zmq::socket_t(context, zmq::socket_type::rep);
-  control.set(zmq::sockopt::maxmsgsize, static_cast<int64_t>(kControlMaxBytes));
+  control.set(zmq::sockopt::maxmsgsize, static_cast<int64_t>(kAdoptMaxBytes));
   control.set(zmq::sockopt::linger, 0);
   if (auth) auth->Protect(control, AuthSocket::kControl, *server_keys);
   std::string control_endpoint = s.control_endpoint;
@@ -1048,6 +1116,7 @@ void Daemon::Impl::RunShard(Shard& shard) {
       if (shard.next_write_retry && Clock::now() >= *shard.next_write_retry) {
         RetryFailedWrites(shard);
       }
+      if (!shard.held.empty() && Clock::now() >= handoff_until) EndHolds(shard, false);
       if (items[1].revents & ZMQ_POLLIN) {
         shard.turn_time = Clock::now();
         if (!ReceiveShardInput(shard)) break;
@@ -1189,11 +1258,16 @@ void Daemon::Impl::DrainIngest() {
 }
 
 void Daemon::Impl::Shutdown() {
+  // Offers not adopted yet end here; their streams' state files stay (§13.4).
+  handoff_sender->Stop();
   DrainIngest();
   ingest.clear();  // input stops here
   // The scoring threads finish what was handed to them (scored and published), then end: from
   // here on the socket thread owns every stream.
   StopShards();
+  // Vectors still held for a state that has not come are not dropped: they start their streams.
+  handoff_until = Clock::time_point{};
+  for (auto& shard : shards) EndHolds(*shard, true);
   const std::vector<Stream*> all = AllStreamsSorted();
   int busy = 0;
   for (Stream* s : all) busy += s->executor.idle() ? 0 : 1;
@@ -1306,6 +1380,10 @@ void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_
     const std::vector<std::string>& members = config.daemon.cluster_members;
     if (!members.empty() && members[OwnerOf(key, members)] != config.daemon.cluster_member) {
       Reject(RejectReason::kNotOwner, "another member of cluster.members owns the key", key);
+      return;
+    }
+    if (AwaitsHandoff(key)) {
+      Hold(shard, key, payload, p.count);
       return;
     }
     const std::string stream_key(key);
@@ -1802,16 +1880,26 @@ void Daemon::Impl::WaitForStateWrites() {
 void Daemon::Impl::HandleControl() {
   zmq::message_t request;
   if (!control.recv(request, zmq::recv_flags::dontwait)) return;
-  bool multipart = false;
-  for (bool more = request.more(); more;) {
+  // One frame, or two for adopt (its second frame is the stream's state).
+  int frames = 1;
+  zmq::message_t attachment;
+  for (bool more = request.more(); more; ++frames) {
     zmq::message_t extra;
     (void)control.recv(extra, zmq::recv_flags::none);
     more = extra.more();
-    multipart = true;
+    if (frames == 1) attachment = std::move(extra);
   }
-  const std::string reply =
-      multipart ? ControlErrorReply("a control request is a single frame")
-                : HandleControlRequest(request.to_string_view(), *this, NUWATCH_VERSION);
+  std::string reply;
+  if (frames > 2) {
+    reply = ControlErrorReply("a control request is a single frame (adopt takes two)");
+  } else if (request.size() > kControlMaxBytes) {
+    reply = ControlErrorReply("the request frame is longer than 1 MiB");
+  } else {
+    reply = HandleControlRequest(
+        request.to_string_view(),
+        frames == 2 ? std::optional<std::string_view>(attachment.to_string_view()) : std::nullopt,
+        *this, NUWATCH_VERSION);
+  }
   (void)control.send(zmq::buffer(reply), zmq::send_flags::dontwait);
 }
 
@@ -2027,6 +2115,10 @@ ReloadOutcome Daemon::Impl::Reload() {
   }
   const bool new_members = next.daemon.cluster_members != config.daemon.cluster_members ||
                            next.daemon.cluster_member != config.daemon.cluster_member;
+  if (new_members) {
+    handoff_previous_members = config.daemon.cluster_members;
+    handoff_previous_member = config.daemon.cluster_member;
+  }
   config = std::move(next);
   spdlog::info(
       "reload: applied {}: {} of {} streams take new detector settings at their next "
@@ -2035,6 +2127,12 @@ ReloadOutcome Daemon::Impl::Reload() {
   if (new_members) {
     owner_cache.clear();
     metrics.cluster_members().Set(static_cast<double>(config.daemon.cluster_members.size()));
+    handoff_until =
+        HandoffEnabled()
+            ? Clock::now() +
+                  std::chrono::duration_cast<Clock::duration>(
+                      std::chrono::duration<double>(config.daemon.cluster_handoff_timeout_seconds))
+            : Clock::time_point{};
     spdlog::info("reload: cluster.member = {}, cluster.members has {} members",
                  config.daemon.cluster_member.empty() ? "(none)" : config.daemon.cluster_member,
                  config.daemon.cluster_members.size());
@@ -2075,6 +2173,24 @@ void Daemon::Impl::ReleaseStreamsNotOwned() {
   }
   WaitForStateWrites();
   for (auto& shard : shards) HandleFinishedWrites(*shard);
+  // With cluster.control_endpoint, each stream's state as it is now goes to its new owner, from
+  // the handoff thread (a new owner that has not reloaded yet refuses it for a while).
+  std::vector<HandoffOffer> offers;
+  if (HandoffEnabled()) {
+    const std::vector<std::string>& members = config.daemon.cluster_members;
+    for (const auto& entry : leaving) {
+      const Stream* s = entry.first->streams.Find(entry.second);
+      const std::string& to = members[OwnerOf(s->key, members)];
+      try {
+        offers.push_back({s->key, to, ControlEndpointOf(to),
+                          EncodeStreamState(s->key, s->dims, s->detector->ExportState())});
+      } catch (const std::exception& e) {
+        metrics.handoffs(HandoffDirection::kSent, HandoffOutcome::kRefused).Increment();
+        spdlog::error("handoff: stream {} cannot be encoded ({}); it starts afresh at {}", s->key,
+                      e.what(), to);
+      }
+    }
+  }
   int64_t failed = 0;
   for (const auto& entry : leaving) {
     std::unique_ptr<Stream> removed = entry.first->streams.Remove(entry.second);
@@ -2089,12 +2205,226 @@ void Daemon::Impl::ReleaseStreamsNotOwned() {
     metrics.streams_released().Increment();
   }
   spdlog::info(
-      "reload: released {} streams that other members now own ({}); they start afresh at their "
-      "new owner (PROTOCOL.md §13.4)",
+      "reload: released {} streams that other members now own ({}); {} (PROTOCOL.md §13.4)",
       leaving.size(),
       store ? (failed == 0 ? std::string("state files written and kept")
                            : std::to_string(failed) + " state files not up to date")
-            : std::string("no state directory"));
+            : std::string("no state directory"),
+      HandoffEnabled() ? "handing " + std::to_string(offers.size()) +
+                             " of them to their new owners for at most " +
+                             SettingNumberText(config.daemon.cluster_handoff_timeout_seconds) + " s"
+                       : std::string("they start afresh at their new owners"));
+  if (!offers.empty()) {
+    handoff_sender->Offer(config.daemon.cluster_member, std::move(offers), handoff_until);
+  }
+}
+
+std::string Daemon::Impl::ControlEndpointOf(const std::string& member) const {
+  std::string endpoint = config.daemon.cluster_control_endpoint;
+  for (std::size_t at = endpoint.find(kMemberPlaceholder); at != std::string::npos;
+       at = endpoint.find(kMemberPlaceholder, at + member.size())) {
+    endpoint.replace(at, kMemberPlaceholder.size(), member);
+  }
+  return endpoint;
+}
+
+void Daemon::Impl::ReportHandoff(const HandoffOffer& offer, const HandoffReport& report) {
+  switch (report.end) {
+    case HandoffEnd::kAdopted:
+      metrics.handoffs(HandoffDirection::kSent, HandoffOutcome::kOk).Increment();
+      spdlog::debug("handoff: stream={} adopted by {} ({} attempts, {} vectors held there)",
+                    offer.stream, offer.to_member, report.attempts, report.held_vectors);
+      if (store && report.state_written) {
+        // The new owner has it on its disk: this copy would only be read if the stream came
+        // back, older than the one it would bring. On the io thread, in order with the writes.
+        boost::asio::post(io, [path = store->PathFor(offer.stream), key = offer.stream] {
+          std::error_code error;
+          std::filesystem::remove(path, error);
+          if (error)
+            spdlog::error("handoff: stream {}: its state file stays: {}", key, error.message());
+        });
+      }
+      return;
+    case HandoffEnd::kRefused:
+      metrics.handoffs(HandoffDirection::kSent, HandoffOutcome::kRefused).Increment();
+      spdlog::warn("handoff: {} refused stream={} ({}: {}); it starts afresh there{}",
+                   offer.to_member, offer.stream, report.reason, report.detail,
+                   store ? "; its state file stays here" : "");
+      return;
+    case HandoffEnd::kTimedOut:
+      metrics.handoffs(HandoffDirection::kSent, HandoffOutcome::kTimeout).Increment();
+      spdlog::warn(
+          "handoff: stream={} not adopted by {} within cluster.handoff_timeout_seconds ({} "
+          "attempts; last: {} {}); it starts afresh there{}",
+          offer.stream, offer.to_member, report.attempts, report.reason, report.detail,
+          store ? "; its state file stays here" : "");
+      return;
+    case HandoffEnd::kStopped:
+      spdlog::info("handoff: stream={} not handed to {} before the stop{}", offer.stream,
+                   offer.to_member, store ? "; its state file stays here" : "");
+      return;
+  }
+}
+
+bool Daemon::Impl::AwaitsHandoff(std::string_view key) const {
+  if (!HandoffEnabled() || Clock::now() >= handoff_until) return false;
+  if (!handoff_previous_members) return true;  // since the start-up: every key not restored
+  const std::vector<std::string>& before = *handoff_previous_members;
+  if (before.empty()) return false;  // a lone daemon before, which owned every key itself
+  const std::string& previous_owner = before[OwnerOf(key, before)];
+  if (previous_owner == handoff_previous_member) return false;  // a new stream of ours
+  // A member that has left the list cannot reload into it, so it hands nothing over (a lost
+  // node, or one removed): its keys start afresh at once.
+  const std::vector<std::string>& members = config.daemon.cluster_members;
+  return std::find(members.begin(), members.end(), previous_owner) != members.end();
+}
+
+void Daemon::Impl::Hold(Shard& shard, std::string_view key, std::string_view payload,
+                        int64_t vectors) {
+  auto it = shard.held.find(std::string(key));
+  if (it == shard.held.end()) {
+    const DetectorOptions stream_options = DetectorOptionsFor(config, std::string(key));
+    Shard::Held held;
+    // A window's worth: more would push the whole handed window out before it is scored.
+    held.max_vectors = std::max(stream_options.window, EffectiveWarmup(stream_options));
+    it = shard.held.emplace(std::string(key), std::move(held)).first;
+  }
+  Shard::Held& held = it->second;
+  if (held.vectors + vectors > held.max_vectors ||
+      shard.held_bytes + payload.size() > kHeldBytesPerShard) {
+    Reject(RejectReason::kAwaitingHandoff,
+           "the stream's state is on its way from its previous owner and the vectors held for it "
+           "meanwhile are at their bound",
+           key);
+    if (held.payloads.empty()) shard.held.erase(it);
+    return;
+  }
+  held.payloads.emplace_back(payload);
+  held.vectors += vectors;
+  shard.held_bytes += payload.size();
+}
+
+int64_t Daemon::Impl::ScoreHeld(Shard& shard, const std::string& key) {
+  const auto it = shard.held.find(key);
+  if (it == shard.held.end()) return 0;
+  Shard::Held held = std::move(it->second);
+  shard.held.erase(it);
+  for (const std::string& payload : held.payloads) shard.held_bytes -= payload.size();
+  shard.turn_time = Clock::now();
+  for (const std::string& payload : held.payloads) HandleIngest(shard, key, payload);
+  return held.vectors;
+}
+
+void Daemon::Impl::EndHolds(Shard& shard, bool all) {
+  std::vector<std::string> keys;
+  for (const auto& entry : shard.held) keys.push_back(entry.first);
+  std::sort(keys.begin(), keys.end());
+  for (const std::string& key : keys) {
+    metrics.handoffs(HandoffDirection::kReceived, HandoffOutcome::kTimeout).Increment();
+    const int64_t vectors = ScoreHeld(shard, key);
+    spdlog::warn(
+        "handoff: no state came for stream={} {}; it starts afresh with the {} vectors held for it",
+        key, all ? "before the stop" : "within cluster.handoff_timeout_seconds", vectors);
+  }
+}
+
+AdoptOutcome Daemon::Impl::Adopt(const std::string& key, const std::string& from,
+                                 std::span<const uint8_t> bytes) {
+  AdoptOutcome outcome;
+  auto refuse = [&outcome, &key, &from](HandoffOutcome counted, const char* reason,
+                                        std::string error, DaemonMetrics& m) {
+    outcome.ok = false;
+    outcome.reason = reason;
+    outcome.error = std::move(error);
+    // not_owner is the expected answer until this member has reloaded: the sender retries.
+    if (std::string_view(reason) != "not_owner") {
+      m.handoffs(HandoffDirection::kReceived, counted).Increment();
+      spdlog::warn("handoff: stream {} from {} refused ({}): {}", key, from, reason, outcome.error);
+    }
+    return outcome;
+  };
+  constexpr HandoffOutcome kRefused = HandoffOutcome::kRefused;
+  if (ValidateStreamKey(key, limits) != RejectReason::kNone) {
+    return refuse(kRefused, "bad_stream_key", "'" + key + "' is not a valid stream key", metrics);
+  }
+  const std::vector<std::string>& members = config.daemon.cluster_members;
+  if (members.empty()) {
+    return refuse(kRefused, "not_owner", "this daemon is not a member of a cluster", metrics);
+  }
+  if (!Owns(key)) {
+    return refuse(kRefused, "not_owner",
+                  "member " + config.daemon.cluster_member + " does not own '" + key +
+                      "' under its cluster.members (" + std::to_string(members.size()) +
+                      " members)",
+                  metrics);
+  }
+  StreamStateFile file;
+  try {
+    file = DecodeStreamState(bytes.data(), bytes.size());
+    if (file.stream_key != key) {
+      throw StateFileError("it is the state of stream '" + file.stream_key + "'");
+    }
+  } catch (const StateFileError& e) {
+    return refuse(HandoffOutcome::kCorrupt, "corrupt_state", e.what(), metrics);
+  }
+  const DetectorOptions stream_options = DetectorOptionsFor(config, key);
+  if (!stream_options.feature_names.empty() &&
+      stream_options.feature_names.size() != static_cast<std::size_t>(file.dims)) {
+    return refuse(kRefused, "dims_mismatch",
+                  "the state has " + std::to_string(file.dims) +
+                      " features but the configuration names " +
+                      std::to_string(stream_options.feature_names.size()),
+                  metrics);
+  }
+  ShardsPaused paused(*this);
+  Shard& shard = ShardFor(key);
+  if (shard.streams.Find(key) != nullptr) {
+    return refuse(kRefused, "stream_exists",
+                  "stream '" + key + "' is tracked here already (it started afresh here)", metrics);
+  }
+  if (!TakeStreamPlace()) {
+    return refuse(kRefused, "stream_limit",
+                  "limits.max_streams = " + std::to_string(config.daemon.max_streams) +
+                      " streams are tracked",
+                  metrics);
+  }
+  std::unique_ptr<Stream> stream;
+  try {
+    stream = MakeStream(shard, key, file.dims, stream_options);
+    stream->detector->ImportState(file.state);
+  } catch (const std::bad_alloc&) {
+    ReleaseStreamPlaces(1);
+    return refuse(kRefused, "stream_limit", "not enough memory for the stream", metrics);
+  } catch (const std::exception& e) {
+    // PreconditionError: the contents contradict themselves or the stream's settings.
+    ReleaseStreamPlaces(1);
+    return refuse(HandoffOutcome::kCorrupt, "corrupt_state", e.what(), metrics);
+  }
+  const auto model = stream->detector->model();
+  stream->seen_model_version = model ? model->version() : 0;
+  stream->model_seen_at = Clock::now();
+  stream->seen_coalesced = stream->detector->counters().refits_coalesced;
+  stream->RefreshSlowGauges();
+  stream->last_seen = Clock::now();
+  Stream* s = shard.streams.Add(std::move(stream));
+  ++stream_count;
+  metrics.streams().Set(static_cast<double>(stream_count.load()));
+  // On this member's disk before the reply, so that the old owner may delete its copy.
+  const bool write_queued = TrySnapshot(shard, *s, SnapshotKind::kRequest);
+  outcome.held_vectors = ScoreHeld(shard, key);
+  if (write_queued) {
+    WaitForStateWrites();
+    HandleFinishedWrites(shard);
+    outcome.state_written = s->write_failures == 0;
+  }
+  metrics.handoffs(HandoffDirection::kReceived, HandoffOutcome::kOk).Increment();
+  spdlog::info(
+      "handoff: adopted stream={} from {}: state={} model_version={} window={}; {} vectors held "
+      "for it scored now{}",
+      key, from, StreamStateName(s->detector->state()), s->seen_model_version,
+      s->detector->window_size(), outcome.held_vectors,
+      store && !outcome.state_written ? "; its state file could not be written" : "");
+  return outcome;
 }
 
 Daemon::Daemon(DaemonOptions options) : impl_(std::make_unique<Impl>(std::move(options))) {}

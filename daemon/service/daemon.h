@@ -15,7 +15,9 @@
 // thread runs the signal handlers (SIGTERM and SIGINT stop, SIGHUP reloads; only with
 // handle_signals), the snapshot timer, the recording flush timer and the state-file writes, so
 // that disk latency never stalls scoring. The prometheus-cpp Exposer serves /metrics from its own
-// threads.
+// threads. With cluster.control_endpoint, a handoff thread (handoff.h) sends the streams a reload
+// gave to other members to their new owners; a stream handed to this daemon is adopted on the
+// socket thread (a control request), and its vectors that came first wait in its scoring thread.
 //
 // Log lines (spdlog, default logger) the tests and scripts rely on; each is a whole message:
 //   listening ingest=ENDPOINT      one per bound PULL socket, the actual endpoint (a wildcard

@@ -47,6 +47,12 @@ TEST(Cluster, AFourthMemberTakesAboutAQuarterOfTheStreamsWhichRelearnThere) {
       "relearn_there");
 }
 
+TEST(Cluster, AFourthMemberTakesOverAQuarterOfTheStreamsWithTheirStateAndScoresOnWithoutWarmUp) {
+  RunScript(
+      "MembershipChanges.test_a_fourth_member_takes_over_a_quarter_of_the_streams_with_their_"
+      "state");
+}
+
 TEST(Cluster, AKilledMemberLeavesItsStreamsToTheOthersWhichStartThemFresh) {
   RunScript(
       "MembershipChanges.test_a_killed_member_leaves_its_streams_to_the_others_which_start_"

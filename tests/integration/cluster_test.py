@@ -69,18 +69,22 @@ def names(n):
     return ["nuwatchd-%d" % i for i in range(n)]
 
 
-def cluster_config(members):
-    return DETECTOR + "\n[cluster]\nmembers = [%s]\n" % ", ".join('"%s"' % m for m in members)
+def cluster_config(members, control_endpoint=None):
+    text = DETECTOR + "\n[cluster]\nmembers = [%s]\n" % ", ".join('"%s"' % m for m in members)
+    if control_endpoint:
+        text += 'control_endpoint = "%s"\n' % control_endpoint
+    return text
 
 
 class Replica(e2e.Daemon):
     """nuwatchd with `--member NAME` (the name from the flag, the list from the file), or a lone
     daemon (name None)."""
 
-    def __init__(self, workdir, name, members, subscribe=None):
+    def __init__(self, workdir, name, members, subscribe=None, control_endpoint=None):
         os.makedirs(workdir, exist_ok=True)
         self.name = name
         self.subscribe = subscribe
+        self.control_endpoint = control_endpoint  # cluster.control_endpoint, the handoff's
         # e2e.Daemon writes its test configuration; the [limits] and [detector] here replace its.
         super().__init__(workdir, os.path.join(workdir, "state"))
         self.write_config(members)
@@ -88,7 +92,7 @@ class Replica(e2e.Daemon):
     def write_config(self, members):
         with open(self.config_path, "w") as f:
             f.write('[daemon]\nlog_level = "info"\nrefit_threads = 1\nscoring_threads = 1\n')
-            f.write(cluster_config(members) if members else DETECTOR)
+            f.write(cluster_config(members, self.control_endpoint) if members else DETECTOR)
 
     def start(self):
         if os.path.exists(self.ready_path):
@@ -169,8 +173,9 @@ class ClusterTestCase(unittest.TestCase):
                 sys.stderr.write("--- %s ---\n%s\n" % (replica.log_path, replica.log_tail()))
         shutil.rmtree(self.workdir, ignore_errors=True)
 
-    def start(self, name, members, subscribe=None, probe=True):
-        replica = Replica(os.path.join(self.workdir, name or "lone"), name, members, subscribe)
+    def start(self, name, members, subscribe=None, probe=True, control_endpoint=None):
+        replica = Replica(os.path.join(self.workdir, name or "lone"), name, members, subscribe,
+                          control_endpoint)
         self.replicas[name] = replica
         endpoints = replica.start()
         peer = e2e.Peer(endpoints)
@@ -185,6 +190,16 @@ class ClusterTestCase(unittest.TestCase):
         self.peers[name] = peer
         if probe:
             peer.subscribe_with_probe(probe_key(name, members))
+        else:
+            # No probe result to wait for: wait for the subscriber's ZMTP handshake instead, after
+            # which its subscription goes out ahead of anything the daemon publishes later.
+            monitor = peer.sub.get_monitor_socket(zmq.EVENT_HANDSHAKE_SUCCEEDED)
+            try:
+                if not monitor.poll(int(e2e.WAIT_TIMEOUT * 1000)):
+                    self.fail("%s: the result socket did not connect" % name)
+            finally:
+                peer.sub.disable_monitor()
+                monitor.close(0)
         return replica, peer
 
     def route(self, rows, members):
@@ -467,6 +482,131 @@ class MembershipChanges(ClusterTestCase):
         files = set(os.listdir(self.replicas[m].state_dir))
         for k in released:
             self.assertIn(k.replace("/", "%").replace(":", "+") + ".state", files)
+
+    def test_a_fourth_member_takes_over_a_quarter_of_the_streams_with_their_state(self):
+        """Issue 12 §3, PROTOCOL.md §13.4: with cluster.control_endpoint each moved stream is
+        handed to nuwatchd-3 with its state (adopt, §11.7) and scores there without a new
+        warm-up; every vector is scored exactly once across the replicas, with the decisions a
+        lone daemon fed the same vectors makes."""
+        three, four = names(3), names(4)
+        # The replicas' control sockets are their default ipc://STATE_DIR/nuwatchd.control. The
+        # three start without handoff (a member started with it waits for the state of every key
+        # it has no state file for, §13.4) and take it with the new member list, as an operator
+        # who turns it on with the scale-up does; the joining member has it from the start, and
+        # waits for its keys' state (its probe would wait too).
+        template = "ipc://%s/{member}/state/nuwatchd.control" % self.workdir
+        for m in three:
+            self.start(m, three)
+        self.start("nuwatchd-3", four, control_endpoint=template, probe=False)
+        self.assertEqual(self.replicas["nuwatchd-3"].endpoints["control"],
+                         template.replace("{member}", "nuwatchd-3"))
+        self.start(None, [])
+        fleet = Fleet(seed=5)
+        warm = fleet.rows(WARMUP)
+        self.route(warm, three)
+        self.send_to_lone(warm)
+        before = {k: owner(k, three) for k in fleet.keys}
+        versions = {}
+        for m in three:
+            status = self.wait_for_models(m, [k for k in fleet.keys if before[k] == m])
+            versions.update({s["stream"]: s["model_version"] for s in status["streams"]})
+        self.wait_for_models(None, fleet.keys)
+        after = {k: owner(k, four) for k in fleet.keys}
+        moved = [k for k in fleet.keys if after[k] != before[k]]
+        self.assertTrue(all(after[k] == "nuwatchd-3" for k in moved))
+        self.assertLess(abs(len(moved) - 75), 38, len(moved))  # Binomial(300, 1/4), 5 sd
+        # The probes stay with their members, so that the counts below are the fleet's alone.
+        self.assertTrue(all(owner(probe_key(m, three), four) == m for m in three))
+
+        # The three reload and, at once, the router sends over four members: vectors of a moved
+        # stream that reach nuwatchd-3 before its state are held there, then scored by the handed
+        # model (§13.4), never by a fresh one.
+        for m in three:
+            self.replicas[m].control_endpoint = template
+            self.replicas[m].write_config(four)
+            self.replicas[m].process.send_signal(signal.SIGHUP)
+        scored = fleet.rows(10)
+        self.route(scored, four)
+        self.send_to_lone(scored)
+        seconds = []
+        for m in three:
+            mine = [k for k in moved if before[k] == m]
+            if not mine:
+                continue
+            summary = "handoff: %d of %d streams adopted" % (len(mine), len(mine))
+            self.replicas[m].wait_for_log(lambda text: summary in text,
+                                          "the handoff of %d streams" % len(mine), timeout=30)
+            text = self.replicas[m].log_text()
+            line = text[text.index(summary):]
+            seconds.append(float(line.split(" in ")[1].split(" s")[0]))
+            self.assertEqual(self.counter(m, "nuwatch_streams_released_total"), len(mine))
+            self.assertEqual(self.counter(m, "nuwatch_stream_handoffs_total", direction="sent",
+                                          outcome="ok"), len(mine))
+            status = self.peers[m].control({"command": "status"})
+            self.assertFalse({s["stream"] for s in status["streams"]} & set(mine), m)
+        self.wait_for_results({m: {k: 10 if k in moved else WARMUP + 10
+                                   for k in fleet.keys if after[k] == m} for m in four})
+        self.wait_for_results({None: {k: WARMUP + 10 for k in fleet.keys}})
+        for m in four:  # anything published late (a vector scored twice) arrives meanwhile
+            try:
+                self.peers[m].wait_for(lambda: False, "late results", timeout=0.5)
+            except AssertionError:
+                pass
+
+        lone = self.peers[None]
+        for k in fleet.keys:
+            expected = lone.results(k)
+            self.assertEqual([r["t"] for r in expected], [t for key, t, _ in warm + scored
+                                                          if key == k], k)
+            # Exactly once across the replicas: the warm-up at the old owner, the rest at the new.
+            at = {m: self.peers[m].results(k) for m in four if self.peers[m].results(k)}
+            if k in moved:
+                self.assertEqual(sorted(at), sorted([before[k], "nuwatchd-3"]), k)
+                self.assertEqual([r["t"] for r in at[before[k]]],
+                                 [r["t"] for r in expected[:WARMUP]], k)
+            else:
+                self.assertEqual(list(at), [after[k]], k)
+            mine = at[after[k]][-10:]
+            self.assertEqual([r["t"] for r in at[after[k]]],
+                             [r["t"] for r in expected[WARMUP if k in moved else 0:]], k)
+            # No new warm-up: scored by the handed model, the decisions the lone daemon's.
+            for r, e in zip(mine, expected[WARMUP:]):
+                self.assertEqual(r["state"], "scoring", (k, r["t"]))
+                self.assertEqual(r["model_version"], versions[k], (k, r["t"]))
+                self.assertEqual((r["decision"], r["anomaly"]), (e["decision"], e["anomaly"]),
+                                 (k, r["t"]))
+
+        # nuwatchd-3 holds the moved streams with their counters, and their state files; the old
+        # owners' copies are deleted once nuwatchd-3 has written its own (§11.7 state_written).
+        status = self.peers["nuwatchd-3"].control({"command": "status"})
+        held = {s["stream"]: s for s in status["streams"]}
+        self.assertEqual(set(held), set(moved))
+        for k in moved:
+            self.assertEqual((held[k]["vectors"], held[k]["model_version"]),
+                             (WARMUP + 10, versions[k]), k)
+        self.assertEqual(self.counter("nuwatchd-3", "nuwatch_stream_handoffs_total",
+                                      direction="received", outcome="ok"), len(moved))
+        for m in four:
+            for reason in ("awaiting_handoff", "not_owner"):
+                self.assertEqual(self.counter(m, "nuwatch_rejected_messages_total",
+                                              reason=reason), 0, (m, reason))
+        escaped = {k: k.replace("/", "%").replace(":", "+") + ".state" for k in moved}
+        self.assertTrue(set(escaped.values()) <=
+                        set(os.listdir(self.replicas["nuwatchd-3"].state_dir)))
+        deadline = time.monotonic() + e2e.WAIT_TIMEOUT
+        while True:
+            left = [k for k in moved
+                    if escaped[k] in os.listdir(self.replicas[before[k]].state_dir)]
+            if not left:
+                break
+            self.assertLess(time.monotonic(), deadline, "old owners keep state files: %r" % left)
+            time.sleep(0.05)  # polling the directories, bounded by the deadline
+        log = self.replicas["nuwatchd-3"].log_text()
+        held_vectors = sum(int(line.split("; ")[1].split(" vectors held")[0])
+                           for line in log.splitlines() if "handoff: adopted stream=" in line)
+        sys.stderr.write("handoff: %d streams moved, adopted in %s s by the senders' clocks; "
+                         "%d vectors held at nuwatchd-3 before their state came\n"
+                         % (len(moved), ", ".join("%.3f" % s for s in seconds), held_vectors))
 
     def test_a_killed_member_leaves_its_streams_to_the_others_which_start_them_fresh(self):
         three, two = names(3), names(2)

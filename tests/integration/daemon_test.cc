@@ -43,6 +43,7 @@
 
 #include "common/child_daemon.h"
 #include "offline/replay.h"
+#include "protocol/ownership.h"
 #include "protocol/wire_protocol.h"
 #include "service/state_store.h"
 #include "settings/config.h"
@@ -885,6 +886,122 @@ TEST(Daemon, ARequestOfSeveralFramesGetsAnError) {
   zmq::message_t reply;
   ASSERT_TRUE(req.recv(reply));
   EXPECT_EQ(json::parse(reply.to_string())["ok"], false);
+}
+
+// PROTOCOL.md §11.7 (adopt) and §13.4: the new owner's side of a handoff, on the control socket.
+TEST(Daemon, AdoptTakesOverAHandedStreamAndRefusesWhatItMustNot) {
+  // Members "A" and "B"; A owns `key`, `named` and the clients' probe stream, B owns `other`
+  // (§13.2's owner, which ownership_test holds to Python's hashlib).
+  const std::vector<std::string> members = {"A", "B"};
+  auto owned_by = [&](const std::string& member, const std::string& prefix) {
+    for (int i = 0;; ++i) {
+      const std::string key = prefix + std::to_string(i);
+      if (members[OwnerOf(key, members)] == member) return key;
+    }
+  };
+  ASSERT_EQ(members[OwnerOf("probe", members)], "A") << "the test needs A to own the probe";
+  const std::string key = owned_by("A", "pump-");
+  const std::string named = owned_by("A", "named-");
+  const std::string other = owned_by("B", "pump-");
+
+  // The handed state: a stream's state file as a lone daemon wrote it at its stop.
+  TempDir dir;
+  json before;
+  double t = 0;
+  {
+    auto options = Options();
+    options.config.daemon.state_dir = dir / "old";
+    auto daemon = Start(std::move(options));
+    Client client(daemon->endpoints());
+    client.WarmUp(key, NormalVectors(20, 7), 1000);
+    before = client.StreamStatus(key);
+    t = client.last_time();
+  }
+  std::ifstream file(dir / ("old/" + EscapeStreamKey(key) + ".state"), std::ios::binary);
+  const std::string state((std::istreambuf_iterator<char>(file)), std::istreambuf_iterator<char>());
+  ASSERT_FALSE(state.empty());
+  const StreamStateFile decoded =
+      DecodeStreamState(reinterpret_cast<const uint8_t*>(state.data()), state.size());
+  auto encode = [&](const std::string& as_key) {
+    const std::vector<uint8_t> bytes = EncodeStreamState(as_key, decoded.dims, decoded.state);
+    return std::string(bytes.begin(), bytes.end());
+  };
+
+  auto daemon = Start(Options("", R"(
+[[stream]]
+match = "named-*"
+feature_names = ["x", "y", "z"]
+
+[cluster]
+members = ["A", "B"]
+member = "A"
+)"));
+  Client client(daemon->endpoints());
+  zmq::context_t context;
+  zmq::socket_t req(context, zmq::socket_type::req);
+  req.set(zmq::sockopt::linger, 0);
+  req.set(zmq::sockopt::rcvtimeo, 10000);
+  req.connect(daemon->endpoints().control);
+  auto adopt = [&](const std::string& stream, const std::optional<std::string>& bytes) {
+    const std::string request =
+        json{{"command", "adopt"}, {"stream", stream}, {"from", "B"}}.dump();
+    req.send(zmq::buffer(request), bytes ? zmq::send_flags::sndmore : zmq::send_flags::none);
+    if (bytes) req.send(zmq::buffer(*bytes), zmq::send_flags::none);
+    zmq::message_t reply;
+    if (!req.recv(reply)) {
+      ADD_FAILURE() << "no reply to adopt " << stream;
+      return json();
+    }
+    return json::parse(reply.to_string());
+  };
+  auto handoffs = [&](const std::string& outcome) {
+    return MetricValue(
+        daemon->MetricsText(),
+        "nuwatch_stream_handoffs_total{direction=\"received\",outcome=\"" + outcome + "\"}");
+  };
+
+  // §11.7: another member's key is refused with reason not_owner (the sender retries).
+  json reply = adopt(other, encode(other));
+  EXPECT_EQ(reply["ok"], false);
+  EXPECT_EQ(reply["reason"], "not_owner") << reply;
+  // Without the state frame: an error.
+  reply = adopt(key, std::nullopt);
+  EXPECT_EQ(reply["ok"], false);
+  EXPECT_THAT(reply["error"].get<std::string>(), ::testing::HasSubstr("second frame"));
+  // A damaged state (state_store.h's CRC-32 fails) and another stream's state: corrupt_state.
+  std::string damaged = state;
+  damaged[damaged.size() / 2] ^= 0x5a;
+  reply = adopt(key, damaged);
+  EXPECT_EQ(reply["reason"], "corrupt_state") << reply;
+  reply = adopt(key, encode(named));
+  EXPECT_EQ(reply["reason"], "corrupt_state") << reply;
+  EXPECT_THAT(reply["error"].get<std::string>(), ::testing::HasSubstr(named));
+  // Two features where the configuration names three: dims_mismatch.
+  reply = adopt(named, encode(named));
+  EXPECT_EQ(reply["reason"], "dims_mismatch") << reply;
+  EXPECT_TRUE(client.StreamStatus(key).is_null()) << "a refused state must create no stream";
+
+  // The state itself: adopted, with its model, window and counters; no state directory here,
+  // so state_written is false (the old owner keeps its file).
+  reply = adopt(key, state);
+  EXPECT_EQ(reply["ok"], true) << reply;
+  EXPECT_EQ(reply["held_vectors"], 0);
+  EXPECT_EQ(reply["state_written"], false);
+  const json after = client.StreamStatus(key);
+  for (const char* member : {"state", "model_version", "window", "vectors", "support_vectors"}) {
+    EXPECT_EQ(after[member], before[member]) << member;
+  }
+  client.Send(key, t, {5, 100});
+  const json result = client.ReceiveResultFor(key);
+  EXPECT_EQ(result["state"], "scoring");  // no new warm-up
+  EXPECT_EQ(result["model_version"], before["model_version"]);
+  // Once tracked, a second state for the key is refused.
+  reply = adopt(key, state);
+  EXPECT_EQ(reply["reason"], "stream_exists") << reply;
+
+  EXPECT_EQ(handoffs("ok"), 1);
+  EXPECT_EQ(handoffs("corrupt"), 2);
+  EXPECT_EQ(handoffs("refused"), 2);  // dims_mismatch, stream_exists; not_owner is not counted
 }
 
 // ---------------------------------------------------------------------------------------------
