@@ -313,6 +313,7 @@ struct Shard {
   };
   std::unordered_map<std::string, Held> held;
   std::size_t held_bytes = 0;
+  bool ending_holds = false;  // EndHolds is running (it calls HandleIngest, which calls it)
 
   // Hot-path buffers, reused so that steady-state processing does not allocate.
   zmq::message_t key_message;
@@ -1366,6 +1367,12 @@ void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
 }
 
 void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_view payload) {
+  if (!shard.held.empty() && !shard.ending_holds && Clock::now() >= handoff_until) {
+    // The wait is over, but RunShard (once a second) has not taken the held vectors yet: they
+    // come first, so that each stream sees its vectors in order. Before this message is
+    // decoded: scoring them reuses the shard's decoding scratch.
+    EndHolds(shard, false);
+  }
   const DecodeResult decoded = DecodeIngest(key, payload, limits, &shard.scratch);
   if (!decoded.ok()) {
     Reject(decoded.reason, decoded.detail,
@@ -1382,10 +1389,16 @@ void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_
       Reject(RejectReason::kNotOwner, "another member of cluster.members owns the key", key);
       return;
     }
-    if (AwaitsHandoff(key)) {
+    // A key already held stays held until its wait is over, even if a reload meanwhile says
+    // it would not wait now, so that its vectors keep their order.
+    const bool waiting = Clock::now() < handoff_until;
+    if ((waiting && !shard.held.empty() && shard.held.count(std::string(key)) > 0) ||
+        AwaitsHandoff(key)) {
       Hold(shard, key, payload, p.count);
       return;
     }
+  }
+  if (stream == nullptr) {
     const std::string stream_key(key);
     const DetectorOptions stream_options = DetectorOptionsFor(config, stream_key);
     if (!stream_options.feature_names.empty() &&
@@ -2316,6 +2329,11 @@ int64_t Daemon::Impl::ScoreHeld(Shard& shard, const std::string& key) {
 }
 
 void Daemon::Impl::EndHolds(Shard& shard, bool all) {
+  shard.ending_holds = true;
+  struct Reset {
+    bool& flag;
+    ~Reset() { flag = false; }
+  } reset{shard.ending_holds};
   std::vector<std::string> keys;
   for (const auto& entry : shard.held) keys.push_back(entry.first);
   std::sort(keys.begin(), keys.end());

@@ -56,7 +56,7 @@ class HandoffSender {
  public:
   using Report = std::function<void(const HandoffOffer&, const HandoffReport&)>;
 
-  // `client_keys`: with CURVE on the receivers' control sockets (tcp://), this member's key
+  // `client_keys`: with CURVE on the receivers' control sockets ([auth]), this member's key
   // pair, used as the client pair and its public key as the server key: the members share one
   // server key pair, which each admits in auth.client_keys (README "Several replicas").
   HandoffSender(zmq::context_t& context, std::optional<CurveKeyPair> client_keys, Report report);

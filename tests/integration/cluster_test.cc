@@ -53,6 +53,12 @@ TEST(Cluster, AFourthMemberTakesOverAQuarterOfTheStreamsWithTheirStateAndScoresO
       "state");
 }
 
+TEST(Cluster, AStateThatDoesNotComeInTimeLeavesTheStreamToStartAfresh) {
+  RunScript(
+      "MembershipChanges.test_a_state_that_does_not_come_in_time_leaves_the_stream_to_start_"
+      "afresh");
+}
+
 TEST(Cluster, AKilledMemberLeavesItsStreamsToTheOthersWhichStartThemFresh) {
   RunScript(
       "MembershipChanges.test_a_killed_member_leaves_its_streams_to_the_others_which_start_"

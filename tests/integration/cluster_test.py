@@ -69,10 +69,12 @@ def names(n):
     return ["nuwatchd-%d" % i for i in range(n)]
 
 
-def cluster_config(members, control_endpoint=None):
+def cluster_config(members, control_endpoint=None, handoff_timeout=None):
     text = DETECTOR + "\n[cluster]\nmembers = [%s]\n" % ", ".join('"%s"' % m for m in members)
     if control_endpoint:
         text += 'control_endpoint = "%s"\n' % control_endpoint
+    if handoff_timeout:
+        text += "handoff_timeout_seconds = %r\n" % handoff_timeout
     return text
 
 
@@ -80,11 +82,13 @@ class Replica(e2e.Daemon):
     """nuwatchd with `--member NAME` (the name from the flag, the list from the file), or a lone
     daemon (name None)."""
 
-    def __init__(self, workdir, name, members, subscribe=None, control_endpoint=None):
+    def __init__(self, workdir, name, members, subscribe=None, control_endpoint=None,
+                 handoff_timeout=None):
         os.makedirs(workdir, exist_ok=True)
         self.name = name
         self.subscribe = subscribe
         self.control_endpoint = control_endpoint  # cluster.control_endpoint, the handoff's
+        self.handoff_timeout = handoff_timeout  # cluster.handoff_timeout_seconds (None: default)
         # e2e.Daemon writes its test configuration; the [limits] and [detector] here replace its.
         super().__init__(workdir, os.path.join(workdir, "state"))
         self.write_config(members)
@@ -92,7 +96,8 @@ class Replica(e2e.Daemon):
     def write_config(self, members):
         with open(self.config_path, "w") as f:
             f.write('[daemon]\nlog_level = "info"\nrefit_threads = 1\nscoring_threads = 1\n')
-            f.write(cluster_config(members, self.control_endpoint) if members else DETECTOR)
+            f.write(cluster_config(members, self.control_endpoint, self.handoff_timeout)
+                    if members else DETECTOR)
 
     def start(self):
         if os.path.exists(self.ready_path):
@@ -173,9 +178,10 @@ class ClusterTestCase(unittest.TestCase):
                 sys.stderr.write("--- %s ---\n%s\n" % (replica.log_path, replica.log_tail()))
         shutil.rmtree(self.workdir, ignore_errors=True)
 
-    def start(self, name, members, subscribe=None, probe=True, control_endpoint=None):
+    def start(self, name, members, subscribe=None, probe=True, control_endpoint=None,
+              handoff_timeout=None):
         replica = Replica(os.path.join(self.workdir, name or "lone"), name, members, subscribe,
-                          control_endpoint)
+                          control_endpoint, handoff_timeout)
         self.replicas[name] = replica
         endpoints = replica.start()
         peer = e2e.Peer(endpoints)
@@ -607,6 +613,63 @@ class MembershipChanges(ClusterTestCase):
         sys.stderr.write("handoff: %d streams moved, adopted in %s s by the senders' clocks; "
                          "%d vectors held at nuwatchd-3 before their state came\n"
                          % (len(moved), ", ".join("%.3f" % s for s in seconds), held_vectors))
+
+    def test_a_state_that_does_not_come_in_time_leaves_the_stream_to_start_afresh(self):
+        """PROTOCOL.md §13.4: a new owner holds a key's vectors for handoff_timeout_seconds, then
+        starts the stream afresh with them, in order, counted; an old owner whose offer comes too
+        late is refused (stream_exists) and keeps its state file, while a stream the new owner
+        has not started is adopted."""
+        one, two = ["nuwatchd-0"], names(2)
+        template = "ipc://%s/{member}/state/nuwatchd.control" % self.workdir
+        self.start("nuwatchd-0", one)
+        fleet = Fleet(seed=6)
+        keys = [k for k in fleet.keys if owner(k, two) == "nuwatchd-1"][:20]
+        warm = fleet.rows(WARMUP, keys)
+        self.route(warm, one)
+        self.wait_for_models("nuwatchd-0", keys)
+        early, late = keys[:10], keys[10:]
+
+        # nuwatchd-1 joins with a short wait; nuwatchd-0 has not reloaded, so nothing comes.
+        started = time.monotonic()
+        self.start("nuwatchd-1", two, probe=False, control_endpoint=template, handoff_timeout=2.0)
+        rows = fleet.rows(3, early)
+        self.route(rows, two)
+        self.wait_for_results({"nuwatchd-1": {k: 3 for k in early}})
+        waited = time.monotonic() - started
+        for k in early:
+            results = self.peers["nuwatchd-1"].results(k)
+            self.assertEqual([r["t"] for r in results], [t for key, t, _ in rows if key == k], k)
+            self.assertEqual([r["state"] for r in results], ["learning"] * 3, k)
+        self.assertGreaterEqual(waited, 2.0)  # held for the whole wait, not scored before
+        self.assertEqual(self.counter("nuwatchd-1", "nuwatch_stream_handoffs_total",
+                                      direction="received", outcome="timeout"), len(early))
+        self.assertEqual(self.counter("nuwatchd-1", "nuwatch_rejected_messages_total",
+                                      reason="awaiting_handoff"), 0)
+
+        # Now nuwatchd-0 reloads: the streams nuwatchd-1 started afresh are refused there, the
+        # others adopted; a refused stream's state file stays at nuwatchd-0.
+        self.replicas["nuwatchd-0"].control_endpoint = template
+        self.replicas["nuwatchd-0"].handoff_timeout = 2.0
+        self.replicas["nuwatchd-0"].write_config(two)
+        self.assertTrue(self.peers["nuwatchd-0"].control({"command": "reload"})["ok"])
+        # nuwatchd-0's probe moves too when nuwatchd-1 owns it: adopted, never seen there.
+        probe = 1 if owner(probe_key("nuwatchd-0", one), two) == "nuwatchd-1" else 0
+        summary = "handoff: %d of %d streams adopted" % (len(late) + probe, len(keys) + probe)
+        self.replicas["nuwatchd-0"].wait_for_log(lambda text: summary in text, summary)
+        self.assertEqual(self.counter("nuwatchd-0", "nuwatch_stream_handoffs_total",
+                                      direction="sent", outcome="refused"), len(early))
+        self.assertEqual(self.counter("nuwatchd-0", "nuwatch_stream_handoffs_total",
+                                      direction="sent", outcome="ok"), len(late) + probe)
+        files = set(os.listdir(self.replicas["nuwatchd-0"].state_dir))
+        for k in early:
+            self.assertIn(k.replace("/", "%").replace(":", "+") + ".state", files)
+        status = {s["stream"]: s for s in
+                  self.peers["nuwatchd-1"].control({"command": "status"})["streams"]}
+        for k in late:
+            self.assertEqual(status[k]["vectors"], WARMUP, k)
+            self.assertGreaterEqual(status[k]["model_version"], 1, k)
+        sys.stderr.write("handoff: %d held streams started afresh %.1f s after nuwatchd-1's "
+                         "start (handoff_timeout_seconds = 2)\n" % (len(early), waited))
 
     def test_a_killed_member_leaves_its_streams_to_the_others_which_start_them_fresh(self):
         three, two = names(3), names(2)

@@ -345,6 +345,20 @@ TEST(CheckConfigForDaemon, TheLoaderAlreadyRefusesWhatTheDetectorRefuses) {
   EXPECT_NO_THROW(CheckConfigForDaemon(ParseConfig(ConfigText(), "t.toml")));
 }
 
+// PROTOCOL.md §13.4: cluster.control_endpoint is a template of every member's endpoint.
+TEST(CheckConfigForDaemon, AControlEndpointTemplateMustNameTheMember) {
+  const std::string cluster = "[cluster]\nmembers = [\"a\", \"b\"]\nmember = \"a\"\n";
+  Config config = ParseConfig(cluster + "control_endpoint = \"ipc:///run/a.control\"\n", "c.toml");
+  try {
+    CheckConfigForDaemon(config);
+    ADD_FAILURE() << "a template without {member} was accepted";
+  } catch (const ConfigError& e) {
+    EXPECT_THAT(e.what(), ::testing::HasSubstr("does not contain {member}"));
+  }
+  config = ParseConfig(cluster + "control_endpoint = \"ipc:///run/{member}.control\"\n", "c.toml");
+  EXPECT_NO_THROW(CheckConfigForDaemon(config));
+}
+
 TEST(ApplyOverrides, ReplacesOnlyWhatWasGiven) {
   DaemonSettings settings = DefaultConfig().daemon;
   CommandLineOverrides overrides;
