@@ -450,8 +450,8 @@ class MembershipChanges(ClusterTestCase):
             for k in mine:
                 self.assertIn(k.replace("/", "%").replace(":", "+") + ".state", files)
 
-        # Routed over four members: the moved streams learn afresh at nuwatchd-3 (a new warm-up,
-        # until the handover of issue 12 §3 exists), the others go on scoring where they were.
+        # Routed over four members: the moved streams learn afresh at nuwatchd-3 (a new warm-up:
+        # no cluster.control_endpoint, so no handoff), the others go on scoring where they were.
         self.route(fleet.rows(WARMUP), four)
         self.wait_for_results({m: {k: WARMUP if k in moved else 2 * WARMUP
                                    for k in fleet.keys if after[k] == m} for m in four})
