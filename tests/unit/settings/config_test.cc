@@ -862,13 +862,14 @@ TEST(DaemonKeys, ARestartOnlyChangeIsReportedAndKeptAtItsRunningValue) {
       restart.insert(std::string(key.section) + "." + std::string(key.name));
     }
   }
-  EXPECT_EQ(restart,
-            (std::set<std::string>{
-                "daemon.refit_threads", "daemon.scoring_threads", "ingest.endpoints",
-                "ingest.subscribe", "ingest.receive_high_water_mark", "publish.endpoint",
-                "publish.high_water_mark", "control.endpoint", "control.allow_unauthenticated_tcp",
-                "auth.server_secret_key_file", "metrics.listen", "metrics.basic_auth_user",
-                "metrics.basic_auth_password_file", "state.dir", "recording.dir"}));
+  EXPECT_EQ(
+      restart,
+      (std::set<std::string>{
+          "daemon.refit_threads", "daemon.scoring_threads", "ingest.endpoints", "ingest.subscribe",
+          "ingest.receive_high_water_mark", "publish.endpoint", "publish.high_water_mark",
+          "control.endpoint", "control.allow_unauthenticated_tcp", "auth.server_secret_key_file",
+          "auth.subscribe_server_key_file", "metrics.listen", "metrics.basic_auth_user",
+          "metrics.basic_auth_password_file", "state.dir", "recording.dir"}));
 }
 
 TEST(DaemonKeys, EveryKeyIsDocumented) {
