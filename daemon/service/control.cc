@@ -43,6 +43,8 @@ json StatusJson(const std::vector<StreamStatus>& streams, const ClusterStatus& c
           {"version", std::string(version)},
           {"member", cluster.member.empty() ? json(nullptr) : json(cluster.member)},
           {"members", cluster.members},
+          {"departed", cluster.departed},
+          {"handoffs_pending", cluster.handoffs_pending},
           {"streams", list}};
 }
 

@@ -64,6 +64,8 @@ struct AdoptOutcome : ControlOutcome {
 struct ClusterStatus {
   std::string member;       // this daemon's name; "" = none (a lone daemon)
   std::size_t members = 0;  // size of the member list; 0 = a lone daemon that owns every stream
+  bool departed = false;    // a reload took `member` out of the list: it owns no key
+  int64_t handoffs_pending = 0;  // streams offered to their new owners, not adopted or given up
 };
 
 class ControlCommands {

@@ -64,9 +64,15 @@ void ApplyOverrides(const CommandLineOverrides& o, DaemonSettings* s) {
 
 namespace {
 constexpr std::string_view kMemberPlaceholder = "{member}";
+
+// Whether cluster.member is one of cluster.members.
+bool IsMemberOf(const DaemonSettings& settings) {
+  const std::vector<std::string>& members = settings.cluster_members;
+  return std::find(members.begin(), members.end(), settings.cluster_member) != members.end();
+}
 }  // namespace
 
-void CheckConfigForDaemon(const Config& config) {
+void CheckConfigForDaemon(const Config& config, const Config* running) {
   const std::string file =
       config.source_path.empty() ? std::string("the default configuration") : config.source_path;
   auto check = [](const DetectorOptions& options, const std::string& where) {
@@ -87,8 +93,11 @@ void CheckConfigForDaemon(const Config& config) {
       throw ConfigError(file + ": cluster.member: " + error);
     }
   }
-  if (!d.cluster_members.empty() && std::find(d.cluster_members.begin(), d.cluster_members.end(),
-                                              d.cluster_member) == d.cluster_members.end()) {
+  // A departure: a reload takes a member of a cluster out of the list (scale-down), or keeps
+  // a member that has left out of it.
+  const bool departs = running != nullptr && !running->daemon.cluster_members.empty() &&
+                       running->daemon.cluster_member == d.cluster_member;
+  if (!d.cluster_members.empty() && !IsMemberOf(d) && !departs) {
     std::string list;
     for (const std::string& m : d.cluster_members) list += (list.empty() ? "" : ", ") + m;
     throw ConfigError(file + ": cluster.member = \"" + d.cluster_member +
@@ -446,7 +455,9 @@ struct Daemon::Impl final : ControlCommands {
   // ControlCommands (socket thread).
   std::vector<StreamStatus> Status() override;
   ClusterStatus Cluster() override {
-    return {config.daemon.cluster_member, config.daemon.cluster_members.size()};
+    return {config.daemon.cluster_member, config.daemon.cluster_members.size(),
+            !config.daemon.cluster_members.empty() && !IsMemberOf(config.daemon),
+            handoffs_pending.load(std::memory_order_relaxed)};
   }
   SnapshotOutcome Snapshot() override;
   std::optional<std::string> Relearn(const std::string& stream) override;
@@ -573,6 +584,9 @@ struct Daemon::Impl final : ControlCommands {
   std::optional<std::vector<std::string>> handoff_previous_members;
   std::string handoff_previous_member;
   std::unique_ptr<HandoffSender> handoff_sender;
+  // Offers handed to handoff_sender and not yet reported (status, §11.1): the socket thread adds,
+  // the handoff thread's reports take away.
+  std::atomic<int64_t> handoffs_pending{0};
 };
 
 // Holds every running scoring thread between two messages, from construction to destruction, so
@@ -2049,7 +2063,7 @@ ReloadOutcome Daemon::Impl::Reload() {
     next = LoadConfig(config.source_path);
     ApplyOverrides(options.overrides, &next.daemon);
     ValidateDaemonSettings(next.daemon, config.source_path + " (with the command-line flags)");
-    CheckConfigForDaemon(next);
+    CheckConfigForDaemon(next, &config);
     if (const std::string error = WireLimitsError(LimitsOf(next.daemon)); !error.empty()) {
       throw ConfigError(config.source_path + ": limits: " + error);
     }
@@ -2149,6 +2163,15 @@ ReloadOutcome Daemon::Impl::Reload() {
     spdlog::info("reload: cluster.member = {}, cluster.members has {} members",
                  config.daemon.cluster_member.empty() ? "(none)" : config.daemon.cluster_member,
                  config.daemon.cluster_members.size());
+    if (!config.daemon.cluster_members.empty() && !IsMemberOf(config.daemon)) {
+      spdlog::warn(
+          "reload: {} is not one of cluster.members any more: it owns no key from now on and "
+          "rejects every message as not_owner; {} (PROTOCOL.md §13.4). Stop it when that is "
+          "done; it would not start again with this file",
+          config.daemon.cluster_member,
+          HandoffEnabled() ? "its streams are handed to their new owners"
+                           : "its streams start afresh at their new owners");
+    }
     ReleaseStreamsNotOwned();
   }
   return outcome;
@@ -2228,6 +2251,7 @@ void Daemon::Impl::ReleaseStreamsNotOwned() {
                              SettingNumberText(config.daemon.cluster_handoff_timeout_seconds) + " s"
                        : std::string("they start afresh at their new owners"));
   if (!offers.empty()) {
+    handoffs_pending.fetch_add(static_cast<int64_t>(offers.size()), std::memory_order_relaxed);
     handoff_sender->Offer(config.daemon.cluster_member, std::move(offers), handoff_until);
   }
 }
@@ -2242,6 +2266,7 @@ std::string Daemon::Impl::ControlEndpointOf(const std::string& member) const {
 }
 
 void Daemon::Impl::ReportHandoff(const HandoffOffer& offer, const HandoffReport& report) {
+  handoffs_pending.fetch_sub(1, std::memory_order_relaxed);
   switch (report.end) {
     case HandoffEnd::kAdopted:
       metrics.handoffs(HandoffDirection::kSent, HandoffOutcome::kOk).Increment();
@@ -2285,11 +2310,10 @@ bool Daemon::Impl::AwaitsHandoff(std::string_view key) const {
   const std::vector<std::string>& before = *handoff_previous_members;
   if (before.empty()) return false;  // a lone daemon before, which owned every key itself
   const std::string& previous_owner = before[OwnerOf(key, before)];
-  if (previous_owner == handoff_previous_member) return false;  // a new stream of ours
-  // A member that has left the list cannot reload into it, so it hands nothing over (a lost
-  // node, or one removed): its keys start afresh at once.
-  const std::vector<std::string>& members = config.daemon.cluster_members;
-  return std::find(members.begin(), members.end(), previous_owner) != members.end();
+  // Another member owned it: one still in the list hands it over when it reloads; one that
+  // has left it hands it over as it departs (a scale-down), or never if it was lost (then the
+  // held vectors start the stream afresh when the wait is over, a delay but no loss).
+  return previous_owner != handoff_previous_member;
 }
 
 void Daemon::Impl::Hold(Shard& shard, std::string_view key, std::string_view payload,

@@ -77,9 +77,13 @@ struct CommandLineOverrides {
 void ApplyOverrides(const CommandLineOverrides& overrides, DaemonSettings* settings);
 
 // What the daemon needs beyond ParseConfig's checks: every stream's detector options (the
-// [detector] section and each [[stream]] table applied to it) must pass CheckDetectorOptions.
+// [detector] section and each [[stream]] table applied to it) must pass CheckDetectorOptions, and
+// cluster.member must be one of a non-empty cluster.members. `running`: at a reload, the
+// configuration in force; a member that is in its list may then leave the new one (a departure,
+// PROTOCOL.md §13.4: it hands its streams over and owns no key). At start-up (nullptr) a member
+// outside the list is refused, as it is most likely a typing error.
 // Throws ConfigError naming the file and the section.
-void CheckConfigForDaemon(const Config& config);
+void CheckConfigForDaemon(const Config& config, const Config* running = nullptr);
 
 struct DaemonOptions {
   // The configuration, overrides applied; config.source_path is the file a reload reads again

@@ -677,6 +677,88 @@ class MembershipChanges(ClusterTestCase):
         sys.stderr.write("handoff: %d held streams started afresh %.1f s after nuwatchd-1's "
                          "start (handoff_timeout_seconds = 2)\n" % (len(early), waited))
 
+    def test_a_member_taken_out_of_the_list_hands_its_streams_to_the_others(self):
+        """Issue 12 §3 for a scale-down, PROTOCOL.md §13.4 "A departure": reloaded with a list
+        that no longer names it, a member hands every stream to its new owner and owns no key;
+        the streams go on scoring there with the same model (the decisions of a lone daemon fed
+        the same vectors), and nothing is scored twice or by a fresh model."""
+        three, two = names(3), names(2)
+        template = "ipc://%s/{member}/state/nuwatchd.control" % self.workdir
+        for m in three:
+            self.start(m, three)
+        self.start(None, [])
+        fleet = Fleet(seed=7)
+        leaving = [k for k in fleet.keys if owner(k, three) == "nuwatchd-2"]
+        warm = fleet.rows(WARMUP)
+        self.route(warm, three)
+        self.send_to_lone(warm)
+        status = self.wait_for_models("nuwatchd-2", leaving)
+        versions = {s["stream"]: s["model_version"] for s in status["streams"]}
+        self.wait_for_models(None, leaving)
+        after = {k: owner(k, two) for k in leaving}
+        # Rendezvous hashing: only the departing member's keys move (Thaler & Ravishankar 1998).
+        self.assertTrue(all(owner(k, two) == owner(k, three)
+                            for k in fleet.keys if k not in leaving))
+
+        # The survivors reload first (they hold the departing member's keys meanwhile), then
+        # nuwatchd-2, whose new list lacks it; the router already sends over two members.
+        for m in ("nuwatchd-0", "nuwatchd-1", "nuwatchd-2"):
+            self.replicas[m].control_endpoint = template
+            self.replicas[m].handoff_timeout = 120  # a ThreadSanitizer build is slow
+            self.replicas[m].write_config(two)
+            self.assertTrue(self.peers[m].control({"command": "reload"})["ok"], m)
+            if m == "nuwatchd-1":
+                scored = fleet.rows(10, leaving)
+                self.route(scored, two)
+                self.send_to_lone(scored)
+        # The leaving member's own probe is handed over too.
+        probe = probe_key("nuwatchd-2", three)
+        handed = len(leaving) + 1
+        summary = "handoff: %d of %d streams adopted" % (handed, handed)
+        self.replicas["nuwatchd-2"].wait_for_log(lambda text: summary in text, summary,
+                                                 timeout=120)
+        self.assertIn("nuwatchd-2 is not one of cluster.members any more",
+                      self.replicas["nuwatchd-2"].log_text())
+        status = self.peers["nuwatchd-2"].control({"command": "status"})
+        self.assertEqual((status["member"], status["members"], status["departed"],
+                          status["handoffs_pending"], status["streams"]),
+                         ("nuwatchd-2", 2, True, 0, []))
+        self.assertEqual(self.counter("nuwatchd-2", "nuwatch_stream_handoffs_total",
+                                      direction="sent", outcome="ok"), handed)
+        for m in two:
+            status = self.peers[m].control({"command": "status"})
+            self.assertFalse(status["departed"], m)
+            mine = [k for k in leaving if after[k] == m] + ([probe] if owner(probe, two) == m
+                                                            else [])
+            self.assertEqual(self.counter(m, "nuwatch_stream_handoffs_total",
+                                          direction="received", outcome="ok"), len(mine), m)
+
+        self.wait_for_results({m: {k: 10 for k in leaving if after[k] == m} for m in two},
+                              timeout=120)
+        self.wait_for_results({None: {k: WARMUP + 10 for k in leaving}})
+        for k in leaving:
+            expected = self.peers[None].results(k)[WARMUP:]
+            got = self.peers[after[k]].results(k)
+            self.assertEqual([r["t"] for r in got], [r["t"] for r in expected], k)
+            for r, e in zip(got, expected):
+                self.assertEqual((r["state"], r["model_version"]), ("scoring", versions[k]), k)
+                self.assertEqual((r["decision"], r["anomaly"]), (e["decision"], e["anomaly"]), k)
+        for m in two:
+            self.assertEqual(self.counter(m, "nuwatch_rejected_messages_total",
+                                          reason="awaiting_handoff"), 0, m)
+
+        # The departed member owns no key: a message still sent to it is counted, not scored.
+        self.peers["nuwatchd-2"].send(leaving[0], codec.encode_json([fleet.next_t[leaving[0]]],
+                                                                    [[1.0, 2.0, 3.0]]))
+        deadline = time.monotonic() + e2e.WAIT_TIMEOUT
+        while self.counter("nuwatchd-2", "nuwatch_rejected_messages_total",
+                           reason="not_owner") < 1:
+            self.assertLess(time.monotonic(), deadline, "the misrouted message not counted")
+            time.sleep(0.05)  # polling the counter, bounded by the deadline
+        self.peers.pop("nuwatchd-2").close()
+        self.assertEqual(self.replicas["nuwatchd-2"].stop(), 0,
+                         self.replicas["nuwatchd-2"].log_tail())
+
     def test_a_killed_member_leaves_its_streams_to_the_others_which_start_them_fresh(self):
         three, two = names(3), names(2)
         for m in three:
@@ -751,14 +833,19 @@ class ConfigurationErrors(ClusterTestCase):
                             "cluster.members", "0x20 at offset 8")
         self.assert_refused(self.run_nuwatchd(["a=b"], "a=b"), "0x3D at offset 1")
 
-        members = names(2)
-        self.start("nuwatchd-0", members)
+        # A lone daemon cannot be reloaded into a list without it (a member outside the list is
+        # a departure only for a member of a cluster, §13.4); a bad list is refused as a whole.
+        self.start("nuwatchd-0", [])
         replica = self.replicas["nuwatchd-0"]
         replica.write_config(["nuwatchd-1", "nuwatchd-2"])  # --member nuwatchd-0 is not in it
         reply = self.peers["nuwatchd-0"].control({"command": "reload"})
         self.assertFalse(reply["ok"])
         self.assertIn('cluster.member = "nuwatchd-0" is not one of cluster.members', reply["error"])
-        self.assertEqual(self.peers["nuwatchd-0"].control({"command": "status"})["members"], 2)
+        replica.write_config(["nuwatchd-0", "nuwatchd-0"])
+        reply = self.peers["nuwatchd-0"].control({"command": "reload"})
+        self.assertFalse(reply["ok"])
+        self.assertIn("cluster.members", reply["error"])
+        self.assertEqual(self.peers["nuwatchd-0"].control({"command": "status"})["members"], 0)
 
         endpoint = replica.endpoints["ingest"][0]
         path = os.path.join(self.workdir, "one.csv")
