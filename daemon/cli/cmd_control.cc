@@ -94,8 +94,18 @@ void PrintStatusTable(const json& reply) {
   const json& member = reply.value("member", json());
   const json& members = reply.value("members", json());
   if (member.is_string() && members.is_number_integer() && members.get<int64_t>() > 0) {
-    std::printf(", member %s of %lld", member.get<std::string>().c_str(),
-                static_cast<long long>(members.get<int64_t>()));
+    if (reply.value("departed", false)) {
+      // §13.4: taken out of the list; an operator stops it once nothing is pending.
+      std::printf(", %s departed from the %lld members", member.get<std::string>().c_str(),
+                  static_cast<long long>(members.get<int64_t>()));
+    } else {
+      std::printf(", member %s of %lld", member.get<std::string>().c_str(),
+                  static_cast<long long>(members.get<int64_t>()));
+    }
+  }
+  if (const json& pending = reply.value("handoffs_pending", json());
+      pending.is_number_integer() && pending.get<int64_t>() > 0) {
+    std::printf(", %lld handoff(s) pending", static_cast<long long>(pending.get<int64_t>()));
   }
   std::printf("\n");
   if (streams.empty()) return;

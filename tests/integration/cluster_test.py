@@ -725,6 +725,10 @@ class MembershipChanges(ClusterTestCase):
                          ("nuwatchd-2", 2, True, 0, []))
         self.assertEqual(self.counter("nuwatchd-2", "nuwatch_stream_handoffs_total",
                                       direction="sent", outcome="ok"), handed)
+        shown = subprocess.run([NUWATCH, "control", "status", "--connect",
+                                self.replicas["nuwatchd-2"].endpoints["control"]],
+                               capture_output=True, timeout=e2e.WAIT_TIMEOUT)
+        self.assertIn(", nuwatchd-2 departed from the 2 members\n", shown.stdout.decode())
         for m in two:
             status = self.peers[m].control({"command": "status"})
             self.assertFalse(status["departed"], m)
