@@ -355,7 +355,8 @@ const Setting<S> kDaemonKeys[] = {
      .name = "member",
      .member = &S::cluster_member,
      .doc = "This daemon's name, one of members (nuwatchd --member NAME overrides it, e.g. with "
-            "the pod's name). \"\": none, for a lone daemon.",
+            "the pod's name); a reload that leaves it out of members makes it depart, handing "
+            "its streams over (PROTOCOL.md §13.4). \"\": none, for a lone daemon.",
      .unit = "member name",
      .reload = kNow},
     {.section = "cluster",

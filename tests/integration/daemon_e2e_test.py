@@ -1166,6 +1166,101 @@ class CurveAuthentication(DaemonTestCase):
         push.close()
         self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
 
+    def test_members_hand_a_stream_over_between_tcp_control_sockets_with_curve(self):
+        """PROTOCOL.md §13.4 with §12: the handoff as a Kubernetes deployment makes it, between
+        tcp:// control sockets with [auth]. The old owner connects to the new owner's control
+        socket as a CURVE client with the members' shared server key pair, whose public key the
+        members list in auth.client_keys; the stream arrives with its model and counters. The
+        member names are loopback addresses, so that "tcp://{member}:PORT" names each control
+        socket as a pod's DNS name does."""
+        import socket as pysocket
+        first, second = "127.0.0.2", "127.0.0.3"  # all of 127/8 is loopback on Linux
+        probe = pysocket.socket()
+        probe.bind((first, 0))
+        port = probe.getsockname()[1]
+        probe.close()
+        template = "tcp://{member}:%d" % port
+        # The members connect to each other with the server pair: list its public key.
+        shutil.copy(self.server_public_file, os.path.join(self.clients, "members.key"))
+        auth = '\n[auth]\nserver_secret_key_file = "%s"\nclient_keys = "%s"\n' % (
+            self.server_secret_file, self.clients)
+
+        def settings(members, me, handoff):
+            text = auth + '\n[control]\nendpoint = "tcp://%s:%d"\n' % (me, port)
+            text += "\n[cluster]\nmembers = [%s]\nmember = \"%s\"\n" % (
+                ", ".join('"%s"' % m for m in members), me)
+            return text + ('control_endpoint = "%s"\n' % template if handoff else "")
+
+        def in_dir(name):
+            path = os.path.join(self.workdir, name)
+            os.makedirs(path)
+            return path
+
+        old = Daemon(in_dir("old"), os.path.join(self.workdir, "old", "state"),
+                     extra_config=settings([first], first, handoff=False))
+        new = Daemon(in_dir("new"), os.path.join(self.workdir, "new", "state"),
+                     extra_config=settings([first, second], second, handoff=True))
+        self.daemons += [old, new]
+        old_endpoints = old.start()
+        new_endpoints = new.start()
+        self.assertEqual(new_endpoints["control"], template.replace("{member}", second))
+        key = next("pump-%d" % i for i in range(1000)
+                   if codec.owner_of("pump-%d" % i, [first, second]) == second)
+
+        # The stream learns and scores at its first owner.
+        sub = self.socket(zmq.SUB, old_endpoints["publish"], self.alice_public, self.alice_secret)
+        push = self.socket(zmq.PUSH, old_endpoints["ingest"][0], self.alice_public,
+                           self.alice_secret)
+        data = StreamData(seed=12)
+        deadline = time.monotonic() + 3 * WAIT_TIMEOUT
+        scored = False
+        while not scored:
+            t, x = data.normal()
+            push.send_multipart([key.encode(), codec.encode_json([t], [x])])
+            while sub.poll(20):
+                got, body = sub.recv_multipart()
+                scored = scored or (got == key.encode() and
+                                    codec.parse_published(body.decode()).get("state") == "scoring")
+            if time.monotonic() > deadline:
+                raise AssertionError("no scored result:\n" + old.log_tail())
+        before = self.control(old_endpoints["control"], {"command": "status"},
+                              self.alice_public, self.alice_secret)["streams"]
+        self.assertEqual([s["stream"] for s in before], [key])
+
+        # A second member: the first reloads with the list of two and hands the stream over.
+        with open(old.config_path, "a") as f:
+            f.write('control_endpoint = "%s"\n' % template)
+        with open(old.config_path) as f:
+            text = f.read().replace('members = ["%s"]' % first,
+                                    'members = ["%s", "%s"]' % (first, second))
+        with open(old.config_path, "w") as f:
+            f.write(text)
+        reply = self.control(old_endpoints["control"], {"command": "reload"}, self.alice_public,
+                             self.alice_secret)
+        self.assertTrue(reply["ok"], reply)
+        old_peer = Peer.__new__(Peer)
+        old_peer.metrics_address = old_endpoints["metrics"]
+        new_peer = Peer.__new__(Peer)
+        new_peer.metrics_address = new_endpoints["metrics"]
+        self.wait_for_series(old_peer, "nuwatch_stream_handoffs_total", 1, "the handoff",
+                             direction="sent", outcome="ok")
+        self.wait_for_series(new_peer, "nuwatch_stream_handoffs_total", 1, "the adoption",
+                             direction="received", outcome="ok")
+        # The old owner's request went through the new owner's CURVE handshake on control.
+        self.wait_for_series(new_peer, "nuwatch_auth_handshakes_total", 1, "the members' handshake",
+                             socket="control")
+        after = self.control(new_endpoints["control"], {"command": "status"}, self.alice_public,
+                             self.alice_secret)["streams"]
+        self.assertEqual([s["stream"] for s in after], [key])
+        for field in ("state", "vectors", "anomalies", "model_version", "window", "refits"):
+            self.assertEqual(after[0][field], before[0][field], field)
+        self.assertEqual(self.control(old_endpoints["control"], {"command": "status"},
+                                      self.alice_public, self.alice_secret)["streams"], [])
+        for s in (sub, push):
+            s.close()
+        self.assertEqual(old.stop(signal.SIGTERM), 0, old.log_tail())
+        self.assertEqual(new.stop(signal.SIGTERM), 0, new.log_tail())
+
     def test_the_subscribe_socket_takes_data_only_from_the_publisher_holding_its_key(self):
         """auth.subscribe_server_key_file: the SUB socket of ingest.subscribe is a CURVE client.
         Three pyzmq PUB sockets, each a CURVE server: the publisher with the configured key (no
