@@ -59,6 +59,11 @@ TEST(Cluster, AStateThatDoesNotComeInTimeLeavesTheStreamToStartAfresh) {
       "afresh");
 }
 
+TEST(Cluster, AMemberTakenOutOfTheListHandsItsStreamsToTheOthers) {
+  RunScript(
+      "MembershipChanges.test_a_member_taken_out_of_the_list_hands_its_streams_to_the_others");
+}
+
 TEST(Cluster, AKilledMemberLeavesItsStreamsToTheOthersWhichStartThemFresh) {
   RunScript(
       "MembershipChanges.test_a_killed_member_leaves_its_streams_to_the_others_which_start_"
