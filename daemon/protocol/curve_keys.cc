@@ -15,6 +15,8 @@
 #include <sstream>
 #include <vector>
 
+#include "settings/secret_file.h"
+
 namespace nuwatch {
 namespace {
 
@@ -220,7 +222,8 @@ CurveKeyPair ReadCurveKeyFile(const std::string& path, bool need_secret) {
                           "(NAME.key_secret), not the public one");
     }
     struct stat st {};
-    if (::stat(path.c_str(), &st) == 0 && (st.st_mode & 077) != 0) {
+    if (::stat(path.c_str(), &st) == 0 &&
+        !SecretFileModeAllowed(st.st_mode, st.st_uid, ::geteuid())) {
       char mode[8];
       std::snprintf(mode, sizeof mode, "%04o", static_cast<unsigned>(st.st_mode & 07777));
       throw CurveKeyError(path + ": holds a secret key but is readable by others (mode " + mode +

@@ -54,7 +54,8 @@ struct CurveKeyPair {
 // when `need_secret` the secret key too and public_key is the one derived from it (a mismatch is
 // an error: the file was edited or pieced together). A bare file holding one Z85 key line is
 // accepted as a public key. Throws CurveKeyError ("PATH: ...") for an unreadable file, a missing
-// or malformed key, or (need_secret) a secret key file readable by group or others.
+// or malformed key, or (need_secret) a secret key file whose mode SecretFileModeAllowed refuses
+// (settings/secret_file.h: no access for others, group read only for a file root owns).
 CurveKeyPair ReadCurveKeyFile(const std::string& path, bool need_secret);
 
 // The public keys of a list (a file, or a directory of *.key files, see above), as Z85 strings.

@@ -1,6 +1,7 @@
 #include "settings/secret_file.h"
 
 #include <sys/stat.h>
+#include <unistd.h>
 
 #include <cerrno>
 #include <cstring>
@@ -8,12 +9,17 @@
 
 namespace nuwatch {
 
+bool SecretFileModeAllowed(mode_t mode, uid_t owner_uid, uid_t reader_uid) {
+  const bool group_may_read = owner_uid == 0 && reader_uid != 0;
+  return (mode & (group_may_read ? 037 : 077)) == 0;
+}
+
 std::string ReadSecretFirstLine(const std::string& path) {
   struct stat st {};
   if (::stat(path.c_str(), &st) != 0) {
     throw SecretFileError(path + ": cannot read: " + std::strerror(errno));
   }
-  if ((st.st_mode & 077) != 0) {
+  if (!SecretFileModeAllowed(st.st_mode, st.st_uid, ::geteuid())) {
     throw SecretFileError(path + ": readable by others; chmod 600 " + path);
   }
   std::ifstream in(path);

@@ -63,6 +63,28 @@ TEST_F(SecretFileTest, RefusesAFileOthersMayReadOrWrite) {
   }
 }
 
+// The rule itself, for owners a test run by one user cannot create files as.
+TEST(SecretFileModeAllowed, GroupReadOnlyForARootOwnedFileThatAnotherUserReads) {
+  const uid_t root = 0, daemon = 10001, other = 10002;
+  // Owner-only modes pass for every owner and reader.
+  for (const mode_t mode : {0400, 0600, 0700}) {
+    EXPECT_TRUE(SecretFileModeAllowed(mode, daemon, daemon)) << std::oct << mode;
+    EXPECT_TRUE(SecretFileModeAllowed(mode, root, daemon)) << std::oct << mode;
+    EXPECT_TRUE(SecretFileModeAllowed(mode, root, root)) << std::oct << mode;
+  }
+  // Kubernetes with fsGroup: root's file, group fsGroup, 0440 (kubernetes/kubernetes#57923).
+  EXPECT_TRUE(SecretFileModeAllowed(0440, root, daemon));
+  EXPECT_TRUE(SecretFileModeAllowed(0640, root, daemon));
+  // Group read of one's own file, or of another user's, or root reading root's: refused (ssh).
+  EXPECT_FALSE(SecretFileModeAllowed(0440, daemon, daemon));
+  EXPECT_FALSE(SecretFileModeAllowed(0440, other, daemon));
+  EXPECT_FALSE(SecretFileModeAllowed(0440, root, root));
+  // Group write or execute, and anything for others, are refused for root's files too.
+  for (const mode_t mode : {0460, 0420, 0410, 0404, 0402, 0401, 0444}) {
+    EXPECT_FALSE(SecretFileModeAllowed(mode, root, daemon)) << std::oct << mode;
+  }
+}
+
 TEST_F(SecretFileTest, RefusesAMissingFileAndAnEmptyFirstLine) {
   EXPECT_THAT(ErrorOf(dir_ + "/missing"), HasSubstr("cannot read: No such file or directory"));
   EXPECT_THAT(ErrorOf(Write("empty-line", "\nsecond\n", 0600)), HasSubstr("is empty"));
