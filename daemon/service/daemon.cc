@@ -475,6 +475,9 @@ struct Daemon::Impl final : ControlCommands {
   void Hold(Shard& shard, std::string_view key, std::string_view payload, int64_t vectors);
   int64_t ScoreHeld(Shard& shard, const std::string& key);
   void EndHolds(Shard& shard, bool all);
+  // Writes cluster.member and cluster.members to the state directory (StateStore::SaveMembers),
+  // read at the next start-up; a failure is logged.
+  void RecordMembers();
   bool HandoffEnabled() const {
     return !config.daemon.cluster_control_endpoint.empty() &&
            !config.daemon.cluster_members.empty();
@@ -690,11 +693,42 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
   }
   metrics.streams().Set(static_cast<double>(stream_count.load()));
   if (HandoffEnabled()) {
-    // A member that joins owns keys whose state the others will hand over once they reload.
+    // A member that joins owns keys whose state the others will hand over once they reload. One
+    // that restarts under the list it last had (its state directory's record) was not given any
+    // key meanwhile: it waits only for keys another member owned under that list.
+    std::optional<StateStore::MemberRecord> last;
+    if (store) {
+      try {
+        last = store->LoadMembers();
+      } catch (const StateFileError& e) {
+        spdlog::warn(
+            "state: {}; every key this member owns and restored no state for waits for "
+            "a handoff",
+            e.what());
+      }
+    }
+    if (last && last->member == config.daemon.cluster_member) {
+      handoff_previous_members = last->members;
+      handoff_previous_member = last->member;
+    }
     handoff_until =
         Clock::now() + std::chrono::duration_cast<Clock::duration>(std::chrono::duration<double>(
                            config.daemon.cluster_handoff_timeout_seconds));
+    spdlog::info(
+        "handoff: {}",
+        !handoff_previous_members
+            ? "no member list recorded in the state directory: for " +
+                  SettingNumberText(config.daemon.cluster_handoff_timeout_seconds) +
+                  " s every key this member owns and has no state file for waits for its state "
+                  "from another member"
+        : *handoff_previous_members == config.daemon.cluster_members
+            ? std::string("the member list is the one recorded at the last start or reload: "
+                          "no stream waits for a handoff")
+            : "the member list differs from the one recorded: for " +
+                  SettingNumberText(config.daemon.cluster_handoff_timeout_seconds) +
+                  " s a key another member owned under that list waits for its state");
   }
+  RecordMembers();
   handoff_sender = std::make_unique<HandoffSender>(
       context, server_keys, [this](const HandoffOffer& offer, const HandoffReport& report) {
         ReportHandoff(offer, report);
@@ -2160,6 +2194,7 @@ ReloadOutcome Daemon::Impl::Reload() {
                   std::chrono::duration_cast<Clock::duration>(
                       std::chrono::duration<double>(config.daemon.cluster_handoff_timeout_seconds))
             : Clock::time_point{};
+    RecordMembers();
     spdlog::info("reload: cluster.member = {}, cluster.members has {} members",
                  config.daemon.cluster_member.empty() ? "(none)" : config.daemon.cluster_member,
                  config.daemon.cluster_members.size());
@@ -2175,6 +2210,18 @@ ReloadOutcome Daemon::Impl::Reload() {
     ReleaseStreamsNotOwned();
   }
   return outcome;
+}
+
+void Daemon::Impl::RecordMembers() {
+  if (!store) return;
+  try {
+    store->SaveMembers({config.daemon.cluster_member, config.daemon.cluster_members});
+  } catch (const StateFileError& e) {
+    spdlog::error(
+        "state: {}: at its next start this member cannot tell whether the member list changed, "
+        "and waits for the state of every new key",
+        e.what());
+  }
 }
 
 bool Daemon::Impl::Owns(std::string_view key) {

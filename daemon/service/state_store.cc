@@ -321,6 +321,46 @@ void StateStore::Save(std::string_view stream_key, int dims, const DetectorState
   }
 }
 
+void StateStore::SaveMembers(const MemberRecord& record) const {
+  std::string text =
+      "# nuwatchd: cluster.member and cluster.members as of the last start or reload "
+      "(PROTOCOL.md 13.4)\nmember " +
+      record.member + "\n";
+  for (const std::string& m : record.members) text += "members " + m + "\n";
+  const std::string path = (fs::path(dir_) / kMembersFileName).string();
+  try {
+    WriteFileAtomically(path, reinterpret_cast<const uint8_t*>(text.data()), text.size());
+  } catch (const ModelFileError& e) {
+    throw StateFileError(e.what());
+  }
+}
+
+std::optional<StateStore::MemberRecord> StateStore::LoadMembers() const {
+  const std::string path = (fs::path(dir_) / kMembersFileName).string();
+  std::ifstream in(path);
+  if (!in) {
+    std::error_code error;
+    if (!fs::exists(path, error) && !error) return std::nullopt;
+    throw StateFileError(path + ": cannot be read");
+  }
+  MemberRecord record;
+  bool named = false;
+  std::string line;
+  for (int number = 1; std::getline(in, line); ++number) {
+    if (line.empty() || line[0] == '#') continue;
+    if (line.rfind("member ", 0) == 0 && !named) {
+      record.member = line.substr(7);
+      named = true;
+    } else if (line.rfind("members ", 0) == 0 && named && line.size() > 8) {
+      record.members.push_back(line.substr(8));
+    } else {
+      throw StateFileError(path + ":" + std::to_string(number) + ": not a member record line");
+    }
+  }
+  if (!named) throw StateFileError(path + ": names no member");
+  return record;
+}
+
 std::vector<StateStore::Entry> StateStore::List() const {
   std::vector<Entry> entries;
   std::error_code error;

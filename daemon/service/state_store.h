@@ -106,6 +106,21 @@ class StateStore {
   // Deletes leftovers of interrupted writes (`*.state.tmp.*`); returns their paths.
   std::vector<std::string> RemoveStaleTemporaries() const;
 
+  // The member list in force when this replica last started or reloaded (PROTOCOL.md §13.4), so
+  // that a restart under the same list knows that no stream is on its way to it. File
+  // `<dir>/nuwatchd.members`, text: a comment line, `member NAME` (empty name: none), then one
+  // `members NAME` line per member in order. Replaced durably. Throws StateFileError naming the
+  // file.
+  static constexpr const char* kMembersFileName = "nuwatchd.members";
+  struct MemberRecord {
+    std::string member;
+    std::vector<std::string> members;
+  };
+  void SaveMembers(const MemberRecord& record) const;
+  // nullopt when there is no file. Throws StateFileError naming the file when it cannot be read
+  // or is not such a record.
+  std::optional<MemberRecord> LoadMembers() const;
+
  private:
   std::string dir_;
 };

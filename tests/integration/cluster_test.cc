@@ -64,6 +64,10 @@ TEST(Cluster, AMemberTakenOutOfTheListHandsItsStreamsToTheOthers) {
       "MembershipChanges.test_a_member_taken_out_of_the_list_hands_its_streams_to_the_others");
 }
 
+TEST(Cluster, AMemberRestartedUnderTheSameListWaitsForNoHandoff) {
+  RunScript("MembershipChanges.test_a_member_restarted_under_the_same_list_waits_for_no_handoff");
+}
+
 TEST(Cluster, AKilledMemberLeavesItsStreamsToTheOthersWhichStartThemFresh) {
   RunScript(
       "MembershipChanges.test_a_killed_member_leaves_its_streams_to_the_others_which_start_"

@@ -763,6 +763,41 @@ class MembershipChanges(ClusterTestCase):
         self.assertEqual(self.replicas["nuwatchd-2"].stop(), 0,
                          self.replicas["nuwatchd-2"].log_tail())
 
+    def test_a_member_restarted_under_the_same_list_waits_for_no_handoff(self):
+        """PROTOCOL.md §13.4: a member started with control_endpoint and no record of its last
+        member list holds the new keys it owns (it may just have joined); one restarted under
+        the list its state directory recorded at its last start knows no key came to it while
+        it was down, and scores new keys at once, without waiting handoff_timeout_seconds."""
+        two = names(2)
+        template = "ipc://%s/{member}/state/nuwatchd.control" % self.workdir
+        _, peer = self.start("nuwatchd-0", two, control_endpoint=template, probe=False,
+                             handoff_timeout=120)
+        replica = self.replicas["nuwatchd-0"]
+        self.assertIn("no member list recorded", replica.log_text())
+        fleet = Fleet(seed=8)
+        mine = [k for k in fleet.keys if owner(k, two) == "nuwatchd-0"]
+        self.route(fleet.rows(1, mine[:1]), two)
+        with self.assertRaises(AssertionError):  # held: no result within a second
+            peer.wait_for(lambda: peer.results(mine[0]), "a held key's result", timeout=1.0)
+        self.peers.pop("nuwatchd-0").close()
+        self.assertEqual(replica.stop(), 0, replica.log_tail())
+        self.routes.pop("nuwatchd-0").close(0)
+        with open(os.path.join(replica.state_dir, "nuwatchd.members")) as f:
+            self.assertEqual([line.split(" ", 1)[1] for line in f.read().splitlines()
+                              if not line.startswith("#")], ["nuwatchd-0"] + two)
+
+        _, peer = self.start("nuwatchd-0", two, control_endpoint=template, probe=False,
+                             handoff_timeout=120)
+        self.assertIn("the member list is the one recorded",
+                      self.replicas["nuwatchd-0"].log_text())
+        started = time.monotonic()
+        self.route(fleet.rows(1, mine[1:2]), two)
+        peer.wait_for(lambda: peer.results(mine[1]), "a new key's result", timeout=30)
+        self.assertEqual(peer.results(mine[1])[0]["state"], "learning")
+        self.assertLess(time.monotonic() - started, 30)  # not held for the 120 s
+        self.assertEqual(self.counter("nuwatchd-0", "nuwatch_stream_handoffs_total",
+                                      direction="received", outcome="timeout"), 0)
+
     def test_a_killed_member_leaves_its_streams_to_the_others_which_start_them_fresh(self):
         three, two = names(3), names(2)
         for m in three:

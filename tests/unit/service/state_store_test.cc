@@ -411,6 +411,38 @@ TEST(StateStore, RemovesLeftoversOfInterruptedWrites) {
   EXPECT_TRUE(fs::exists(store.PathFor("pump-01")));
 }
 
+// The member record (PROTOCOL.md §13.4): what a restart compares its member list with.
+TEST(StateStore, RecordsTheMemberListAndRefusesAFileThatIsNotARecord) {
+  TempDir dir;
+  const StateStore store(dir.path());
+  EXPECT_EQ(store.LoadMembers(), std::nullopt);  // a first start
+  store.SaveMembers({"nuwatchd-1", {"nuwatchd-0", "nuwatchd-1", "nuwatchd-2"}});
+  std::optional<StateStore::MemberRecord> record = store.LoadMembers();
+  ASSERT_TRUE(record.has_value());
+  EXPECT_EQ(record->member, "nuwatchd-1");
+  EXPECT_EQ(record->members, (std::vector<std::string>{"nuwatchd-0", "nuwatchd-1", "nuwatchd-2"}));
+  store.SaveMembers({"", {}});  // a lone daemon
+  record = store.LoadMembers();
+  ASSERT_TRUE(record.has_value());
+  EXPECT_EQ(record->member, "");
+  EXPECT_TRUE(record->members.empty());
+  // Not a stream's state file, so List does not see it.
+  EXPECT_TRUE(store.List().empty());
+
+  const std::string path = dir.path() + "/" + StateStore::kMembersFileName;
+  for (const std::string& text :
+       {std::string("members nuwatchd-0\n"),  // no member line first
+        std::string("member a\nsomething else\n"), std::string("# only a comment\n")}) {
+    std::ofstream(path, std::ios::trunc) << text;
+    try {
+      store.LoadMembers();
+      FAIL() << "accepted: " << text;
+    } catch (const StateFileError& e) {
+      EXPECT_THAT(e.what(), HasSubstr(path)) << text;
+    }
+  }
+}
+
 TEST(StateStore, NamesADirectoryItCannotCreate) {
   TempDir dir;
   std::ofstream(dir.path() + "/file") << "x";
