@@ -337,10 +337,18 @@ void RunTail(const TailArguments& args) {
         }
         if (id == ZMQ_EVENT_CONNECTED) handshake_pending = true;
         // CURVE (PROTOCOL.md §12): a refused key, or a plain client at a daemon with [auth].
+        // ZAP status 400: without CURVE only the subscriber limit refuses (curve_auth.h); with
+        // it, a key the daemon does not list, or the limit.
+        if (id == ZMQ_EVENT_HANDSHAKE_FAILED_AUTH && !args.keys.enabled())
+          throw CommandError(args.connect + ": nuwatchd refused the subscription (ZAP status " +
+                             std::to_string(value) +
+                             "): it has as many subscribers as its publish.max_subscribers "
+                             "allows; try again later, or raise the limit");
         if (id == ZMQ_EVENT_HANDSHAKE_FAILED_AUTH)
           throw CommandError(args.connect + ": nuwatchd refused this client key (ZAP status " +
                              std::to_string(value) +
-                             "): is its public key in the daemon's auth.client_keys?");
+                             "): is its public key in the daemon's auth.client_keys? (or it has "
+                             "as many subscribers as its publish.max_subscribers allows)");
         if (id == ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL &&
             value == ZMQ_PROTOCOL_ERROR_ZMTP_MECHANISM_MISMATCH)
           throw CommandError(args.connect +

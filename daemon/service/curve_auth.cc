@@ -19,9 +19,11 @@ constexpr std::string_view kZapVersion = "1.0";
 constexpr std::size_t kCurveKeyBytes = 32;
 
 // The monitor events that say how a handshake ended (zmq_socket_monitor(3), libzmq 4.3).
+// Accepted and disconnected, whose value is the connection's descriptor, count the connections.
 constexpr int kWatchedEvents =
     ZMQ_EVENT_HANDSHAKE_SUCCEEDED | ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL |
-    ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL | ZMQ_EVENT_HANDSHAKE_FAILED_AUTH;
+    ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL | ZMQ_EVENT_HANDSHAKE_FAILED_AUTH | ZMQ_EVENT_ACCEPTED |
+    ZMQ_EVENT_DISCONNECTED;
 
 std::string Frame(const zmq::message_t& message) { return message.to_string(); }
 
@@ -52,7 +54,23 @@ void CurveAuthenticator::Protect(zmq::socket_t& socket, AuthSocket which,
   // A ZAP domain makes libzmq ask the handler for every handshake on the socket, and tells the
   // handler which socket asks.
   socket.set(zmq::sockopt::zap_domain, AuthSocketLabel(which));
-  Watch(socket, which, /*client=*/false);
+  Watch(socket, which, /*client=*/false, /*curve=*/true);
+}
+
+void CurveAuthenticator::Gate(zmq::socket_t& socket, AuthSocket which) {
+  socket.set(zmq::sockopt::zap_domain, AuthSocketLabel(which));
+  Watch(socket, which, /*client=*/false, /*curve=*/false);
+}
+
+void CurveAuthenticator::SetConnectionLimit(AuthSocket which, int64_t limit) {
+  if (Watched* w = ServerWatched(which)) w->limit = limit;
+}
+
+CurveAuthenticator::Watched* CurveAuthenticator::ServerWatched(AuthSocket which) {
+  for (Watched& w : watched_) {
+    if (w.which == which && !w.client) return &w;
+  }
+  return nullptr;
 }
 
 void CurveAuthenticator::ProtectClient(zmq::socket_t& socket, AuthSocket which,
@@ -61,10 +79,10 @@ void CurveAuthenticator::ProtectClient(zmq::socket_t& socket, AuthSocket which,
   socket.set(zmq::sockopt::curve_serverkey, server_public_key);
   socket.set(zmq::sockopt::curve_publickey, client.public_key);
   socket.set(zmq::sockopt::curve_secretkey, client.secret_key);
-  Watch(socket, which, /*client=*/true);
+  Watch(socket, which, /*client=*/true, /*curve=*/true);
 }
 
-void CurveAuthenticator::Watch(zmq::socket_t& socket, AuthSocket which, bool client) {
+void CurveAuthenticator::Watch(zmq::socket_t& socket, AuthSocket which, bool client, bool curve) {
   const std::string endpoint = "inproc://nuwatchd-auth-monitor-" + std::to_string(monitors_++);
   if (zmq_socket_monitor(socket.handle(), endpoint.c_str(), kWatchedEvents) != 0) {
     throw zmq::error_t();
@@ -72,7 +90,7 @@ void CurveAuthenticator::Watch(zmq::socket_t& socket, AuthSocket which, bool cli
   zmq::socket_t monitor(context_, zmq::socket_type::pair);
   monitor.set(zmq::sockopt::linger, 0);
   monitor.connect(endpoint);
-  watched_.push_back({which, client, std::move(monitor)});
+  watched_.push_back({which, client, curve, std::move(monitor), 0, {}});
 }
 
 void CurveAuthenticator::Start() {
@@ -146,6 +164,11 @@ void CurveAuthenticator::HandleZapRequest() {
   std::string status_text = "not admitted";
   std::string user_id;
   const std::string request_id = request.size() > 1 ? Frame(request[1]) : std::string();
+  // The connection asking was accepted before its handshake reached here: count it first.
+  for (Watched& w : watched_) {
+    while (HandleMonitorEvent(w)) {
+    }
+  }
   if (request.size() < 6 || Frame(request[0]) != kZapVersion) {
     status = "500";
     status_text = "malformed ZAP request";
@@ -158,13 +181,34 @@ void CurveAuthenticator::HandleZapRequest() {
     for (std::size_t i = 0; i < kAuthSocketCount; ++i) {
       if (domain == AuthSocketLabel(static_cast<AuthSocket>(i))) which = static_cast<AuthSocket>(i);
     }
-    if (mechanism != "CURVE" || request.size() < 7 || request[6].size() != kCurveKeyBytes) {
+    const Watched* watched = ServerWatched(which);
+    // Over the limit: the socket holds more connections than it admits, this one included.
+    const bool over_limit = watched != nullptr && watched->limit > 0 &&
+                            static_cast<int64_t>(watched->connections.size()) > watched->limit;
+    auto refuse_over_limit = [&] {
+      status = "400";
+      status_text = "too many connections";
+      Refuse(which, AuthRefusal::kSubscriberLimit,
+             std::to_string(watched->connections.size() - 1) + " connections already, " +
+                 "the limit is " + std::to_string(watched->limit) + "; " + address);
+    };
+    if (mechanism == "NULL" && watched != nullptr && !watched->curve) {
+      // A gated socket without CURVE: only the limit applies.
+      if (over_limit) {
+        refuse_over_limit();
+      } else {
+        status = "200";
+        status_text = "OK";
+      }
+    } else if (mechanism != "CURVE" || request.size() < 7 || request[6].size() != kCurveKeyBytes) {
       Refuse(which, AuthRefusal::kWrongMechanism, "mechanism " + mechanism + " from " + address);
     } else {
       char z85[kZ85KeyLength + 1] = {};
       zmq_z85_encode(z85, static_cast<const uint8_t*>(request[6].data()), kCurveKeyBytes);
       const std::string key(z85, kZ85KeyLength);
-      if (Allowed(key)) {
+      if (Allowed(key) && over_limit) {
+        refuse_over_limit();
+      } else if (Allowed(key)) {
         status = "200";
         status_text = "OK";
         user_id = key;
@@ -182,20 +226,36 @@ void CurveAuthenticator::HandleZapRequest() {
   }
 }
 
-void CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
+bool CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
   // zmq_socket_monitor(3), version 1: an event frame (16-bit event, 32-bit value, host order)
   // and an endpoint frame.
   std::vector<zmq::message_t> frames;
-  (void)zmq::recv_multipart(watched.monitor, std::back_inserter(frames), zmq::recv_flags::dontwait);
-  if (frames.size() != 2 || frames[0].size() < 6) return;
+  if (!zmq::recv_multipart(watched.monitor, std::back_inserter(frames),
+                           zmq::recv_flags::dontwait)) {
+    return false;
+  }
+  if (frames.size() != 2 || frames[0].size() < 6) return true;
   uint16_t event = 0;
   uint32_t value = 0;
   std::memcpy(&event, frames[0].data(), sizeof event);
   std::memcpy(&value, static_cast<const char*>(frames[0].data()) + sizeof event, sizeof value);
   const std::string endpoint = Frame(frames[1]);
   switch (event) {
+    case ZMQ_EVENT_ACCEPTED:
+    case ZMQ_EVENT_DISCONNECTED:
+      if (!watched.client) {
+        if (event == ZMQ_EVENT_ACCEPTED) {
+          watched.connections.insert(static_cast<int>(value));
+        } else {
+          watched.connections.erase(static_cast<int>(value));
+        }
+        if (watched.which == AuthSocket::kPublish) {
+          metrics_->publish_connections().Set(static_cast<double>(watched.connections.size()));
+        }
+      }
+      break;
     case ZMQ_EVENT_HANDSHAKE_SUCCEEDED:
-      metrics_->auth_admitted(watched.which).Increment();
+      if (watched.curve) metrics_->auth_admitted(watched.which).Increment();
       break;
     case ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL:
       if (value == ZMQ_PROTOCOL_ERROR_ZMTP_MECHANISM_MISMATCH) {
@@ -229,6 +289,7 @@ void CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
     default:
       break;  // MONITOR_STOPPED when the socket closes; nothing to count
   }
+  return true;
 }
 
 }  // namespace nuwatch

@@ -13,6 +13,18 @@
 // bound in the constructor, before any protected socket binds, and stops only once they are all
 // closed (Stop's requirement).
 //
+// The same handler bounds how many peers a socket holds at once (SetConnectionLimit; the result
+// socket's publish.max_subscribers), with or without CURVE: a socket without CURVE is given a ZAP
+// domain (Gate), which makes libzmq ask the handler about its NULL-mechanism handshakes too. The
+// monitor's accepted and disconnected events count a socket's connections; before answering a
+// request the handler takes every pending event, so that the connection asking is counted (libzmq
+// reports its accept before its handshake can reach ZAP). A connection over the limit is refused
+// and counted as subscriber_limit, with ZAP status 400: RFC 27's 300 (a temporary error) would
+// fit better, but libzmq then closes the connection without an ERROR command, and the peer's
+// monitor sees a bare failed handshake (EPIPE); with 400 it sees HANDSHAKE_FAILED_AUTH and the
+// status (observed with libzmq 4.3.4), so a client can say why. A peer still in its handshake holds
+// a place until libzmq's handshake timeout (ZMQ_HANDSHAKE_IVL, 30 s by default) drops it.
+//
 // Threads: one thread, "nuwatchd-auth", owns the ZAP socket and the monitor sockets from Start to
 // Stop. ReplaceAllowed may be called from any thread.
 #pragma once
@@ -53,6 +65,12 @@ class CurveAuthenticator {
   // unknown_key. Requires: as Protect, before `socket` connects.
   void ProtectClient(zmq::socket_t& socket, AuthSocket which, const CurveKeyPair& client,
                      const std::string& server_public_key);
+  // Brings a server socket without CURVE before the handler (a ZAP domain), which admits its
+  // peers within the connection limit. Requires: as Protect.
+  void Gate(zmq::socket_t& socket, AuthSocket which);
+  // At most `limit` connections at once on the server socket `which` (0: no limit). Requires:
+  // before Start; `which` protected or gated.
+  void SetConnectionLimit(AuthSocket which, int64_t limit);
   // Starts the thread. Call once, after every Protect.
   void Start();
   // The keys admitted from now on (a connection admitted before keeps its session).
@@ -64,13 +82,18 @@ class CurveAuthenticator {
  private:
   struct Watched {
     AuthSocket which;
-    bool client = false;    // a CURVE client: no ZAP request; a server's refusal is an event
-    zmq::socket_t monitor;  // PAIR, connected to the protected socket's monitor endpoint
+    bool client = false;        // a CURVE client: no ZAP request; a server's refusal is an event
+    bool curve = true;          // false: gated only (NULL mechanism)
+    zmq::socket_t monitor;      // PAIR, connected to the protected socket's monitor endpoint
+    int64_t limit = 0;          // connections at once; 0: no limit
+    std::set<int> connections;  // a server's accepted, not yet disconnected, by descriptor
   };
-  void Watch(zmq::socket_t& socket, AuthSocket which, bool client);
+  void Watch(zmq::socket_t& socket, AuthSocket which, bool client, bool curve);
+  Watched* ServerWatched(AuthSocket which);
   void Run();
   void HandleZapRequest();
-  void HandleMonitorEvent(Watched& watched);
+  // Takes one pending event of `watched`'s monitor; false when there was none.
+  bool HandleMonitorEvent(Watched& watched);
   bool Allowed(const std::string& z85_key) const EXCLUDES(mutex_);
   void Refuse(AuthSocket which, AuthRefusal reason, const std::string& detail);
 

@@ -496,8 +496,9 @@ struct Daemon::Impl final : ControlCommands {
   DaemonEndpoints endpoints;
 
   zmq::context_t context{1};
-  // CURVE ([auth]): the daemon's key pair and the ZAP handler. Declared before the sockets, so
-  // that it is destroyed after them: with no handler bound, libzmq would admit any CURVE client.
+  // CURVE ([auth]): the daemon's key pair (none without [auth]) and the ZAP handler, which is
+  // there either way (it bounds publish.max_subscribers). Declared before the sockets, so that it
+  // is destroyed after them: with no handler bound, libzmq would admit any CURVE client.
   std::optional<CurveKeyPair> server_keys;
   std::string subscribe_server_key;  // Z85; "" = the SUB socket is plain
   std::unique_ptr<CurveAuthenticator> auth;
@@ -767,7 +768,16 @@ std::vector<Stream*> Daemon::Impl::AllStreamsSorted() const {
 
 void Daemon::Impl::SetUpAuth() {
   const DaemonSettings& s = config.daemon;
-  if (s.server_secret_key_file.empty()) return;
+  if (s.server_secret_key_file.empty()) {
+    // No CURVE; the handler still bounds the result socket's connections
+    // (publish.max_subscribers).
+    try {
+      auth = std::make_unique<CurveAuthenticator>(context, std::set<std::string>(), &metrics);
+    } catch (const zmq::error_t& e) {
+      throw DaemonError(std::string("cannot start the ZAP handler: ") + e.what());
+    }
+    return;
+  }
   if (!CurveAvailable()) throw DaemonError("auth: " + CurveUnavailableMessage());
   std::set<std::string> allowed;
   try {
@@ -824,7 +834,7 @@ void Daemon::Impl::BindSockets() {
     // whenever the daemon was behind; -1 keeps them until they are read. Closing the socket at
     // the stop still drops at once what is left then (DrainIngest reads it first).
     socket.set(zmq::sockopt::linger, -1);
-    if (auth) auth->Protect(socket, AuthSocket::kIngest, *server_keys);
+    if (server_keys) auth->Protect(socket, AuthSocket::kIngest, *server_keys);
     endpoints.ingest.push_back(bind(socket, endpoint, "ingest.endpoints"));
     ingest.push_back(std::move(socket));
   }
@@ -834,11 +844,11 @@ void Daemon::Impl::BindSockets() {
     socket.set(zmq::sockopt::maxmsgsize, max_frame);
     socket.set(zmq::sockopt::linger, -1);  // as the PULL sockets': keep what a peer left
     socket.set(zmq::sockopt::subscribe, "");
-    if (auth && !subscribe_server_key.empty()) {
+    if (server_keys && !subscribe_server_key.empty()) {
       auth->ProtectClient(socket, AuthSocket::kSubscribe, *server_keys, subscribe_server_key);
       spdlog::info("auth: ingest.subscribe is a CURVE client of publisher key {}",
                    subscribe_server_key);
-    } else if (auth) {
+    } else if (server_keys) {
       spdlog::warn(
           "auth: ingest.subscribe connects without CURVE (auth.subscribe_server_key_file is "
           "not set): anything that answers at those endpoints is taken as ingest");
@@ -861,12 +871,17 @@ void Daemon::Impl::BindSockets() {
   publish.set(zmq::sockopt::sndhwm, s.publish_high_water_mark);
   publish.set(zmq::sockopt::xpub_nodrop, true);
   publish.set(zmq::sockopt::linger, kPublishLingerMs);
-  if (auth) auth->Protect(publish, AuthSocket::kPublish, *server_keys);
+  if (server_keys) {
+    auth->Protect(publish, AuthSocket::kPublish, *server_keys);
+  } else {
+    auth->Gate(publish, AuthSocket::kPublish);
+  }
+  auth->SetConnectionLimit(AuthSocket::kPublish, s.publish_max_subscribers);
   endpoints.publish = bind(publish, s.publish_endpoint, "publish.endpoint");
   control = zmq::socket_t(context, zmq::socket_type::rep);
   control.set(zmq::sockopt::maxmsgsize, static_cast<int64_t>(kAdoptMaxBytes));
   control.set(zmq::sockopt::linger, 0);
-  if (auth) auth->Protect(control, AuthSocket::kControl, *server_keys);
+  if (server_keys) auth->Protect(control, AuthSocket::kControl, *server_keys);
   std::string control_endpoint = s.control_endpoint;
   if (control_endpoint.empty()) {
     control_endpoint = DefaultControlEndpoint(s.state_dir, std::getenv("RUNTIME_DIRECTORY"),
@@ -884,7 +899,7 @@ void Daemon::Impl::BindSockets() {
     throw DaemonError("control.endpoint: cannot restrict " + control_path +
                       " to mode 0600: " + std::strerror(errno));
   }
-  if (auth) auth->Start();
+  auth->Start();
 }
 
 void Daemon::Impl::StartExposer() {
@@ -2101,7 +2116,7 @@ ReloadOutcome Daemon::Impl::Reload() {
     if (const std::string error = WireLimitsError(LimitsOf(next.daemon)); !error.empty()) {
       throw ConfigError(config.source_path + ": limits: " + error);
     }
-    if (auth) {
+    if (server_keys) {
       // Keys are added and revoked by editing the list and reloading (README, "Keys").
       if (next.daemon.client_keys.empty()) {
         throw ConfigError(config.source_path +
@@ -2133,7 +2148,7 @@ ReloadOutcome Daemon::Impl::Reload() {
   ShardsPaused paused(*this);  // they read `config`, `limits` and their streams' settings
 
   spdlog::set_level(LogLevel(next.daemon.log_level));
-  if (auth) {
+  if (server_keys) {
     spdlog::info("reload: {} client keys admitted from {}", next_allowed.size(),
                  next.daemon.client_keys);
     auth->ReplaceAllowed(std::move(next_allowed));

@@ -56,6 +56,8 @@ std::string_view AuthRefusalLabel(AuthRefusal reason) {
       return "bad_handshake";
     case AuthRefusal::kIncompleteHandshake:
       return "incomplete_handshake";
+    case AuthRefusal::kSubscriberLimit:
+      return "subscriber_limit";
   }
   return "unknown";
 }
@@ -161,6 +163,12 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
       &Build(BuildGauge(), "nuwatch_cluster_members",
              "Members in this replica's cluster.members list (0: not part of a cluster).", r)
            .Add({});
+  publish_connections_ =
+      &Build(BuildGauge(), "nuwatch_publish_connections",
+             "Connections to the result socket: subscribers, and peers still in their handshake "
+             "(publish.max_subscribers bounds them).",
+             r)
+           .Add({});
   auto& handoffs = Build(BuildCounter(), "nuwatch_stream_handoffs_total",
                          "Streams handed between members after a change of cluster.members, by "
                          "direction (sent, received) and outcome: ok (adopted), refused (for "
@@ -203,17 +211,23 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
   auto& admitted =
       Build(BuildCounter(), "nuwatch_auth_handshakes_total",
             "CURVE handshakes admitted by the daemon's ZAP handler, by socket (ingest, "
-            "publish, control); stays 0 without [auth].",
+            "publish, control, subscribe); stays 0 without [auth].",
             r);
   auto& refused = Build(BuildCounter(), "nuwatch_auth_refusals_total",
                         "Peers refused on a CURVE socket, by socket and reason: unknown_key (not "
                         "in auth.client_keys), wrong_mechanism (no CURVE), bad_handshake (e.g. a "
-                        "wrong server key), incomplete_handshake (gone before it finished).",
+                        "wrong server key), incomplete_handshake (gone before it finished); and "
+                        "on the result socket, with or without CURVE, subscriber_limit (it had "
+                        "publish.max_subscribers connections).",
                         r);
   for (std::size_t i = 0; i < kAuthSocketCount; ++i) {
     const std::string socket(AuthSocketLabel(static_cast<AuthSocket>(i)));
     auth_admitted_[i] = &admitted.Add({{"socket", socket}});
     for (std::size_t j = 0; j < kAuthRefusalCount; ++j) {
+      if (static_cast<AuthRefusal>(j) == AuthRefusal::kSubscriberLimit &&
+          static_cast<AuthSocket>(i) != AuthSocket::kPublish) {
+        continue;
+      }
       auth_refused_[i][j] =
           &refused.Add({{"socket", socket},
                         {"reason", std::string(AuthRefusalLabel(static_cast<AuthRefusal>(j)))}});

@@ -96,14 +96,16 @@ std::string_view AuthSocketLabel(AuthSocket socket);
 // Why a peer was refused (PROTOCOL.md §12): unknown_key (CURVE, but its public key is not in
 // auth.client_keys), wrong_mechanism (no CURVE), bad_handshake (the CURVE handshake failed: a wrong
 // server key, a malformed command), incomplete_handshake (the peer went away or timed out before
-// the handshake finished, e.g. a port scan).
+// the handshake finished, e.g. a port scan), subscriber_limit (the result socket had
+// publish.max_subscribers connections already; a series of the publish socket only).
 enum class AuthRefusal : uint8_t {
   kUnknownKey,
   kWrongMechanism,
   kBadHandshake,
-  kIncompleteHandshake
+  kIncompleteHandshake,
+  kSubscriberLimit
 };
-inline constexpr std::size_t kAuthRefusalCount = 4;
+inline constexpr std::size_t kAuthRefusalCount = 5;
 std::string_view AuthRefusalLabel(AuthRefusal reason);
 
 // A stream handed to another member (kSent) or taken over from one (kReceived), PROTOCOL.md §13.4.
@@ -165,6 +167,7 @@ class DaemonMetrics {
   prometheus::Counter& streams_expired() const { return *streams_expired_; }
   prometheus::Counter& streams_released() const { return *streams_released_; }
   prometheus::Gauge& cluster_members() const { return *cluster_members_; }
+  prometheus::Gauge& publish_connections() const { return *publish_connections_; }
   // Requires: not (kSent, kCorrupt), which is not a series (a sender's corrupt state is refused).
   prometheus::Counter& handoffs(HandoffDirection direction, HandoffOutcome outcome) const {
     return *handoffs_[static_cast<std::size_t>(direction)][static_cast<std::size_t>(outcome)];
@@ -174,6 +177,7 @@ class DaemonMetrics {
     return *publish_dropped_[static_cast<std::size_t>(message)][static_cast<std::size_t>(reason)];
   }
   prometheus::Counter& state_write_failures() const { return *state_write_failures_; }
+  // Requires: kSubscriberLimit only with kPublish.
   prometheus::Counter& auth_refused(AuthSocket socket, AuthRefusal reason) const {
     return *auth_refused_[static_cast<std::size_t>(socket)][static_cast<std::size_t>(reason)];
   }
@@ -207,6 +211,7 @@ class DaemonMetrics {
   prometheus::Counter* streams_expired_;
   prometheus::Counter* streams_released_;
   prometheus::Gauge* cluster_members_;
+  prometheus::Gauge* publish_connections_;
   std::array<std::array<prometheus::Counter*, kHandoffOutcomeCount>, 2> handoffs_{};
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;

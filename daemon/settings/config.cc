@@ -186,6 +186,17 @@ const Setting<S> kDaemonKeys[] = {
      .bounds_note = " (0: no limit)",
      .reload = kRestart},
     {.section = "publish",
+     .name = "max_subscribers",
+     .member = &S::publish_max_subscribers,
+     .doc = "Connections the result socket admits at once; a further one is refused (ZAP status "
+            "400) and counted (nuwatch_auth_refusals_total{reason=\"subscriber_limit\"}), so "
+            "that queued results take at most max_subscribers x high_water_mark messages; 0: no "
+            "limit.",
+     .unit = "connections",
+     .bounds = AtLeast(0),
+     .bounds_note = " (0: no limit)",
+     .reload = kRestart},
+    {.section = "publish",
      .name = "include_learning",
      .member = &S::publish_learning,
      .doc = "Also publish results for vectors that arrive while their stream has no model yet "

@@ -40,6 +40,7 @@ struct DaemonSettings {
   // [publish]
   std::string publish_endpoint = "tcp://127.0.0.1:7602";  // endpoint
   int publish_high_water_mark = 10000;                    // high_water_mark
+  int64_t publish_max_subscribers = 32;                   // max_subscribers
   bool publish_learning = true;                           // include_learning
   bool publish_batches = false;                           // batches
   // [control] ("" = ipc://STATE_DIR/nuwatchd.control, else in the runtime directory:

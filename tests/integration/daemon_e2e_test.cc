@@ -61,6 +61,10 @@ TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("Metri
 
 TEST(DaemonEndToEnd, SigtermStopsADaemonWhosePublisherIsDown) { RunScript("AbsentPublisher"); }
 
+TEST(DaemonEndToEnd, ASubscriberOverTheLimitIsRefusedAndCounted) {
+  RunScript("SubscriberLimit");
+}
+
 TEST(DaemonEndToEnd, CurveAdmitsListedKeysOnlyAndCountsRefusals) {
   RunScript("CurveAuthentication");
 }

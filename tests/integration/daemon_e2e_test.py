@@ -55,7 +55,7 @@ START_TIMEOUT = 15.0  # seconds for the ready file to appear
 WAIT_TIMEOUT = 10.0   # seconds for any one expected message or state
 
 
-def config_text(refit_every, max_streams, publish_batches=False):
+def config_text(refit_every, max_streams, publish_batches=False, max_subscribers=32):
     return """\
 # Written by daemon_e2e_test.py.
 [daemon]
@@ -64,6 +64,7 @@ refit_threads = 1
 
 [publish]
 batches = %s
+max_subscribers = %d
 
 [metrics]
 anomaly_ratio_window = 100
@@ -84,7 +85,7 @@ open_after = %d
 open_window = %d
 close_after = %d
 feature_names = [%s]
-""" % ("true" if publish_batches else "false", max_streams, MAX_DIMS, MAX_VECTORS, MAX_MESSAGE_BYTES, WINDOW, WARMUP, refit_every, BUDGET,
+""" % ("true" if publish_batches else "false", max_subscribers, max_streams, MAX_DIMS, MAX_VECTORS, MAX_MESSAGE_BYTES, WINDOW, WARMUP, refit_every, BUDGET,
        OPEN_AFTER, OPEN_WINDOW, CLOSE_AFTER, ", ".join('"%s"' % f for f in FEATURES))
 
 
@@ -92,12 +93,13 @@ class Daemon:
     """One nuwatchd process, started with wildcard ports and a ready file."""
 
     def __init__(self, workdir, state_dir, refit_every=50, max_streams=3, publish_batches=False,
-                 extra_config=""):
+                 extra_config="", max_subscribers=32):
         self.workdir = workdir
         self.state_dir = state_dir
         self.config_path = os.path.join(workdir, "nuwatchd.toml")
         with open(self.config_path, "w") as f:
-            f.write(config_text(refit_every, max_streams, publish_batches) + extra_config)
+            f.write(config_text(refit_every, max_streams, publish_batches, max_subscribers)
+                    + extra_config)
         self.ready_path = os.path.join(workdir, "ready.json")
         self.log_path = os.path.join(workdir, "nuwatchd-%d.log" % len(glob.glob(
             os.path.join(workdir, "nuwatchd-*.log"))))
@@ -959,6 +961,99 @@ def series_value(text, name, **labels):
         if found == wanted:
             return float(m.group(4))
     return None
+
+
+class SubscriberLimit(DaemonTestCase):
+    """Issue 10 §3: publish.max_subscribers bounds the result socket's connections, so that
+    subscribers that never read cannot take memory without limit. The subscribers are pyzmq SUB
+    sockets; the refusal is read from a pyzmq socket monitor (zmq_socket_monitor(3): the
+    handshake fails with the ZAP status) and from
+    /metrics; `nuwatch tail` says why it was refused. The status is 400 (RFC 27), the one the peer
+    is told: with 300 libzmq closes the connection without telling the peer why."""
+
+    def subscriber(self, endpoint):
+        sub = self.context.socket(zmq.SUB)
+        sub.setsockopt(zmq.LINGER, 0)
+        sub.setsockopt(zmq.SUBSCRIBE, b"")
+        monitor = sub.get_monitor_socket(zmq.EVENT_HANDSHAKE_SUCCEEDED
+                                         | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
+        sub.connect(endpoint)
+        return sub, monitor
+
+    @staticmethod
+    def handshake(monitor):
+        """The first handshake outcome: ("ok", 0) or ("refused", ZAP status)."""
+        from zmq.utils.monitor import recv_monitor_message
+        if not monitor.poll(int(WAIT_TIMEOUT * 1000)):
+            raise AssertionError("no handshake outcome within %.0f s" % WAIT_TIMEOUT)
+        event = recv_monitor_message(monitor)
+        if event["event"] == zmq.EVENT_HANDSHAKE_SUCCEEDED:
+            return ("ok", 0)
+        return ("refused", event["value"])
+
+    def connections(self, peer):
+        return series_value(peer.scrape(), "nuwatch_publish_connections")
+
+    def test_a_subscriber_over_the_limit_is_refused_and_counted_until_a_place_frees(self):
+        self.context = zmq.Context()
+        daemon = Daemon(self.workdir, self.state_dir, max_subscribers=2)
+        self.daemons.append(daemon)
+        endpoints = daemon.start()
+        peer = Peer.__new__(Peer)  # only its metrics scrape
+        peer.metrics_address = endpoints["metrics"]
+        try:
+            first, first_monitor = self.subscriber(endpoints["publish"])
+            second, second_monitor = self.subscriber(endpoints["publish"])
+            self.assertEqual(self.handshake(first_monitor), ("ok", 0))
+            self.assertEqual(self.handshake(second_monitor), ("ok", 0))
+            third, third_monitor = self.subscriber(endpoints["publish"])
+            self.assertEqual(self.handshake(third_monitor), ("refused", 400))
+            text = peer.scrape()
+            self.assertGreaterEqual(series_value(text, "nuwatch_auth_refusals_total",
+                                                 socket="publish", reason="subscriber_limit"), 1)
+            # Without [auth] no CURVE handshake is counted as admitted.
+            self.assertEqual(series_value(text, "nuwatch_auth_handshakes_total",
+                                          socket="publish"), 0)
+            # nuwatch tail, refused too, says why.
+            tail = subprocess.run([NUWATCH, "tail", "--connect", endpoints["publish"],
+                                   "--timeout", "20s"], capture_output=True, timeout=60)
+            self.assertEqual(tail.returncode, 1, tail.stderr.decode())
+            self.assertIn("publish.max_subscribers", tail.stderr.decode())
+
+            # The admitted two receive results; the refused one nothing.
+            push = self.context.socket(zmq.PUSH)
+            push.setsockopt(zmq.LINGER, 2000)
+            push.connect(endpoints["ingest"][0])
+            data = StreamData(seed=14)
+            t, x = data.normal()
+            push.send_multipart([b"pump-01", codec.encode_json([t], [x])])
+            for sub in (first, second):
+                self.assertTrue(sub.poll(int(WAIT_TIMEOUT * 1000)), "no result for an admitted one")
+                self.assertEqual(sub.recv_multipart()[0], b"pump-01")
+            self.assertFalse(third.poll(200))
+
+            # libzmq does not reconnect after a refused handshake (a protocol error). A place frees
+            # when a subscriber leaves; a new connection is then admitted and receives what is
+            # published from then on.
+            third.close(0)
+            first.close(0)
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while self.connections(peer) != 1:
+                self.assertLess(time.monotonic(), deadline, "the places were not freed")
+                time.sleep(0.05)  # polling /metrics, bounded by the deadline
+            fourth, fourth_monitor = self.subscriber(endpoints["publish"])
+            self.assertEqual(self.handshake(fourth_monitor), ("ok", 0))
+            t, x = data.normal()
+            push.send_multipart([b"pump-01", codec.encode_json([t], [x])])
+            self.assertTrue(fourth.poll(int(WAIT_TIMEOUT * 1000)), "no result after admission")
+            self.assertEqual(fourth.recv_multipart()[0], b"pump-01")
+            self.assertEqual(self.connections(peer), 2)
+            for s in (second, fourth, push, first_monitor, second_monitor, third_monitor,
+                      fourth_monitor):
+                s.close(0)
+        finally:
+            self.context.destroy(linger=0)
+        self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
 
 
 class CurveAuthentication(DaemonTestCase):
