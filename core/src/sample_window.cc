@@ -18,6 +18,10 @@ std::string Num(double value) {
 std::string Num(int64_t value) { return std::to_string(value); }
 std::string Num(uint64_t value) { return std::to_string(value); }
 
+// The buffer's first size: small enough that a stream with a handful of vectors costs little,
+// large enough that doubling from it reaches a window of 2000 in 7 steps.
+constexpr int64_t kFirstSlots = 16;
+
 }  // namespace
 
 SampleWindow::SampleWindow(int64_t capacity, int dims, double max_age_seconds)
@@ -32,14 +36,41 @@ SampleWindow::SampleWindow(int64_t capacity, int dims, double max_age_seconds)
     throw PreconditionError("SampleWindow: max_age_seconds = " + Num(max_age_seconds) +
                             " must be finite and >= 0");
   }
-  values_.assign(static_cast<std::size_t>(capacity) * static_cast<std::size_t>(dims), 0.0);
-  ids_.assign(static_cast<std::size_t>(capacity), 0);
-  times_.assign(static_cast<std::size_t>(capacity), 0.0);
 }
 
 int64_t SampleWindow::Physical(int64_t i) const {
   const int64_t slot = head_ + i;
-  return slot < capacity_ ? slot : slot - capacity_;
+  return slot < slots_ ? slot : slot - slots_;
+}
+
+void SampleWindow::GrowTo(int64_t slots) {
+  slots = std::min(slots, capacity_);
+  if (slots <= slots_) return;
+  const std::size_t d = static_cast<std::size_t>(dims_);
+  std::vector<double> values;
+  std::vector<uint64_t> ids;
+  std::vector<double> times;
+  values.reserve(static_cast<std::size_t>(slots) * d);
+  ids.reserve(static_cast<std::size_t>(slots));
+  times.reserve(static_cast<std::size_t>(slots));
+  // Oldest first: [head, end of the buffer), then [0, wrap).
+  const int64_t first_run = std::min(size_, slots_ - head_);
+  const int64_t second_run = size_ - first_run;
+  values.insert(values.end(), values_.begin() + head_ * dims_,
+                values_.begin() + (head_ + first_run) * dims_);
+  values.insert(values.end(), values_.begin(), values_.begin() + second_run * dims_);
+  ids.insert(ids.end(), ids_.begin() + head_, ids_.begin() + head_ + first_run);
+  ids.insert(ids.end(), ids_.begin(), ids_.begin() + second_run);
+  times.insert(times.end(), times_.begin() + head_, times_.begin() + head_ + first_run);
+  times.insert(times.end(), times_.begin(), times_.begin() + second_run);
+  values.resize(static_cast<std::size_t>(slots) * d);
+  ids.resize(static_cast<std::size_t>(slots));
+  times.resize(static_cast<std::size_t>(slots));
+  values_.swap(values);
+  ids_.swap(ids);
+  times_.swap(times);
+  head_ = 0;
+  slots_ = slots;
 }
 
 void SampleWindow::CheckIndex(int64_t i, const char* caller) const {
@@ -65,9 +96,10 @@ uint64_t SampleWindow::Push(double time, std::span<const double> x) {
   }
   int64_t slot;
   if (size_ == capacity_) {
-    slot = head_;  // overwrite the oldest
-    head_ = head_ + 1 == capacity_ ? 0 : head_ + 1;
+    slot = head_;  // overwrite the oldest (the buffer has capacity slots by now)
+    head_ = head_ + 1 == slots_ ? 0 : head_ + 1;
   } else {
+    if (size_ == slots_) GrowTo(std::max(kFirstSlots, 2 * slots_));
     slot = Physical(size_);
     ++size_;
   }
@@ -85,7 +117,7 @@ void SampleWindow::ExpireOlderThan(double now) {
   if (max_age_seconds_ == 0) return;
   const double cutoff = now - max_age_seconds_;
   while (size_ > 0 && times_[head_] < cutoff) {
-    head_ = head_ + 1 == capacity_ ? 0 : head_ + 1;
+    head_ = head_ + 1 == slots_ ? 0 : head_ + 1;
     --size_;
   }
 }
@@ -117,7 +149,7 @@ void SampleWindow::Snapshot(MatrixD* out, std::vector<uint64_t>* ids,
   if (ids != nullptr) ids->resize(static_cast<std::size_t>(size_));
   if (times != nullptr) times->resize(static_cast<std::size_t>(size_));
   // The occupied slots are at most two contiguous runs: [head, end) and [0, wrap).
-  const int64_t first_run = std::min(size_, capacity_ - head_);
+  const int64_t first_run = std::min(size_, slots_ - head_);
   const int64_t second_run = size_ - first_run;
   std::copy_n(values_.data() + head_ * dims_, first_run * dims_, out->data());
   std::copy_n(values_.data(), second_run * dims_, out->data() + first_run * dims_);
@@ -167,7 +199,9 @@ void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
                             (n > 0 ? " (" + Num(ids[n - 1]) + ")" : std::string()));
   }
   const int64_t skip = std::max<int64_t>(0, n - capacity_);
+  size_ = 0;  // the rows are replaced: GrowTo need not keep any
   head_ = 0;
+  GrowTo(n - skip);
   size_ = n - skip;
   for (int64_t r = 0; r < size_; ++r) {
     std::copy_n(rows.row(skip + r).data(), dims_, values_.data() + r * dims_);

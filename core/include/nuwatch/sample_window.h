@@ -3,8 +3,12 @@
 // increasing over the window's life (Clear does not reuse ids), so that a refit can map the
 // previous fit's alphas onto the samples that survived the slide (MapWarmStart below).
 //
-// Storage is one contiguous capacity x dims buffer allocated at construction; Push, Expire and the
-// accessors never allocate. Snapshot and Restore may (they are on the refit and state-file paths).
+// Storage is one contiguous slots x dims buffer that grows with the window, doubling from 16
+// slots up to capacity (exactly: its last step stops at capacity), so that a stream holds memory
+// for the vectors it has, not for a full window from its first vector (a fleet of new or sparse
+// streams is the common case). Push allocates only while it grows the buffer (a full window never
+// again); Expire, Clear and the accessors never allocate, and the buffer never shrinks. Snapshot
+// and Restore may allocate (they are on the refit and state-file paths).
 // Thread safety: not thread-safe. One window per stream, owned by the stream's thread; a refit
 // works on a Snapshot, never on the window itself.
 #pragma once
@@ -21,13 +25,15 @@ namespace nuwatch {
 class SampleWindow {
  public:
   // Requires: capacity >= 1, dims >= 1, max_age_seconds finite and >= 0 (0: no age limit).
-  // Throws PreconditionError naming the offending value. The first id handed out is 1.
+  // Throws PreconditionError naming the offending value. The first id handed out is 1. Allocates
+  // nothing yet.
   SampleWindow(int64_t capacity, int dims, double max_age_seconds = 0);
 
   // Appends x with its timestamp (seconds, any epoch) and returns its id. When the window is full
   // the oldest entry is evicted first. Push does not apply the age limit: call ExpireOlderThan.
   // Requires: x.size() == dims(), finite time and values (PreconditionError otherwise; the window
-  // is unchanged then). No allocation.
+  // is unchanged then). Allocates only when the window is at its buffer's size and below
+  // capacity (the buffer doubles); may throw std::bad_alloc then, the window unchanged.
   uint64_t Push(double time, std::span<const double> x);
 
   // Drops entries from the oldest end while their time < now - max_age_seconds. Entries leave in
@@ -69,17 +75,22 @@ class SampleWindow {
   void Restore(const MatrixD& rows, std::span<const uint64_t> ids, std::span<const double> times,
                uint64_t next_id);
 
-  // Bytes held by this window (object plus buffers); constant after construction.
+  // Bytes held by this window (object plus buffers): grows with the window up to capacity.
   std::size_t MemoryBytes() const;
 
  private:
   int64_t Physical(int64_t i) const;  // logical index -> slot
   void CheckIndex(int64_t i, const char* caller) const;
+  // Makes room for `slots` entries (at most capacity), the contents kept in order with the oldest
+  // at slot 0. The new buffers are reserved exactly, so that none holds more than it must, and
+  // allocated before anything changes.
+  void GrowTo(int64_t slots);
 
   int64_t capacity_;
   int dims_;
   double max_age_seconds_;
-  std::vector<double> values_;  // capacity x dims, row-major by slot
+  int64_t slots_ = 0;           // entries the buffers hold room for; the ring wraps here
+  std::vector<double> values_;  // slots x dims, row-major by slot
   std::vector<uint64_t> ids_;   // by slot
   std::vector<double> times_;   // by slot
   int64_t head_ = 0;            // slot of the oldest entry

@@ -240,13 +240,62 @@ TEST(SampleWindowTest, ConstructorRejectsBadParameters) {
   EXPECT_THROW(SampleWindow(5, 2, -1.0), PreconditionError);
 }
 
-TEST(SampleWindowTest, MemoryIsAllocatedUpFront) {
+// Issue 9 section 5: a stream holds memory for the vectors it has, not a full window from its first
+// vector. The buffer doubles from 16 slots and stops exactly at capacity.
+TEST(SampleWindowTest, MemoryGrowsWithTheWindowAndStopsAtCapacity) {
+  constexpr std::size_t kSlotBytes = 6 * sizeof(double) + sizeof(uint64_t) + sizeof(double);
   SampleWindow window(/*capacity=*/100, /*dims=*/6);
-  const std::size_t before = window.MemoryBytes();
-  // 100 x 6 doubles plus an id and a time per slot.
-  EXPECT_GE(before, 100u * 6u * sizeof(double) + 100u * (sizeof(uint64_t) + sizeof(double)));
-  for (int t = 0; t < 250; ++t) window.Push(t, std::vector<double>(6, 1.0));
-  EXPECT_EQ(window.MemoryBytes(), before);
+  const std::size_t empty = window.MemoryBytes();
+  EXPECT_EQ(empty, sizeof(SampleWindow));  // nothing allocated before the first vector
+  window.Push(0, std::vector<double>(6, 1.0));
+  EXPECT_EQ(window.MemoryBytes(), empty + 16 * kSlotBytes);
+  for (int t = 1; t < 17; ++t) window.Push(t, std::vector<double>(6, 1.0));
+  EXPECT_EQ(window.MemoryBytes(), empty + 32 * kSlotBytes);
+  for (int t = 17; t < 250; ++t) window.Push(t, std::vector<double>(6, 1.0));
+  // 64 doubled would be 128: the last step stops at the capacity, 100.
+  const std::size_t full = window.MemoryBytes();
+  EXPECT_EQ(full, empty + 100 * kSlotBytes);
+  for (int t = 250; t < 500; ++t) window.Push(t, std::vector<double>(6, 1.0));
+  EXPECT_EQ(window.MemoryBytes(), full);  // a full window never allocates again
+  window.Clear();
+  EXPECT_EQ(window.MemoryBytes(), full);  // nor does it shrink
+}
+
+// Growth moves the ring's contents into a bigger buffer: checked against the deque reference
+// through pushes, expiries (so that the ring has wrapped when it grows), clears and restores.
+TEST(SampleWindowTest, GrowingKeepsEveryEntryInOrderAgainstTheReference) {
+  std::mt19937_64 random(91);
+  for (int round = 0; round < 40; ++round) {
+    const int64_t capacity = std::uniform_int_distribution<int64_t>(1, 300)(random);
+    const double max_age = round % 2 == 0 ? 0.0 : 50.0;
+    SampleWindow window(capacity, /*dims=*/3, max_age);
+    ReferenceWindow reference(capacity, max_age);
+    double t = 0;
+    for (int step = 0; step < 600; ++step) {
+      const int op = std::uniform_int_distribution<int>(0, 99)(random);
+      if (op < 85) {
+        t += std::uniform_real_distribution<double>(0, 2)(random);
+        const std::vector<double> x = {t, -t, static_cast<double>(step)};
+        ASSERT_EQ(window.Push(t, x), reference.Push(t, x));
+      } else if (op < 97) {
+        window.ExpireOlderThan(t);
+        reference.Expire(t);
+      } else if (op < 98) {
+        window.Clear();
+        reference.entries.clear();
+      } else {
+        // A restore of the window's own contents, as a state file gives them back.
+        MatrixD rows;
+        std::vector<uint64_t> ids;
+        std::vector<double> times;
+        window.Snapshot(&rows, &ids, &times);
+        SampleWindow restored(capacity, 3, max_age);
+        restored.Restore(rows, ids, times, window.next_id());
+        window = restored;
+      }
+      ASSERT_NO_FATAL_FAILURE(ExpectSameContents(window, reference)) << "round " << round;
+    }
+  }
 }
 
 // --- MapWarmStart
