@@ -27,6 +27,7 @@
 #include <filesystem>
 #include <fstream>
 #include <future>
+#include <new>
 #include <nlohmann/json.hpp>
 #include <set>
 #include <thread>
@@ -1476,8 +1477,8 @@ void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_
     try {
       stream = shard.streams.Add(MakeStream(shard, stream_key, p.dims, stream_options));
     } catch (const std::exception& e) {
-      // PreconditionError, or a window that cannot be allocated for this many features
-      // (bad_alloc, length_error): this stream is refused, the others carry on.
+      // PreconditionError, or memory for the detector's first buffers (bad_alloc): this stream
+      // is refused, the others carry on.
       ReleaseStreamPlaces(1);
       spdlog::error("stream {}: cannot create its detector: {}", stream_key, e.what());
       return;
@@ -1490,10 +1491,17 @@ void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_
     return;
   }
   stream->last_seen = shard.turn_time;
-  if (p.count == 1) {
-    ProcessVector(shard, *stream, p, 0);
-  } else {
-    ProcessBatch(shard, *stream, p);
+  try {
+    if (p.count == 1) {
+      ProcessVector(shard, *stream, p, 0);
+    } else {
+      ProcessBatch(shard, *stream, p);
+    }
+  } catch (const std::bad_alloc&) {
+    // The stream's training window grows as it fills (SampleWindow): with a window x features
+    // beyond the memory left, this message is refused and counted; the others carry on.
+    Reject(RejectReason::kStreamLimit, "not enough memory to grow the stream's training window",
+           key);
   }
 }
 
