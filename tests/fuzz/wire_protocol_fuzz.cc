@@ -1,12 +1,14 @@
-// libFuzzer target for the wire protocol (daemon/protocol/PROTOCOL.md): DecodeIngest and the
-// encoders. Build and run: DEVELOPERS.md, "Sanitizers and fuzzing"; seeds in
-// corpus/wire_protocol_fuzz/.
+// libFuzzer target for the wire protocol (daemon/protocol/PROTOCOL.md): DecodeIngest, the
+// binary result batch decoder (§9.5) and the encoders. Build and run: DEVELOPERS.md, "Sanitizers
+// and fuzzing"; seeds in corpus/wire_protocol_fuzz/.
 //
 // Input layout: byte 0 gives the key length k (mod 131), the next k bytes are the stream key, the
 // rest is the payload. Besides the sanitizers' checks it traps when a decoded message breaks the
 // decoder's contract, when the simdjson path and the reference JSON reader disagree, when
 // re-encoding an accepted message and decoding it again changes a number, or when the result
-// encoder writes something that is not valid JSON.
+// encoder writes something that is not valid JSON. The payload is also read as a §9.5 result
+// batch: an accepted one must keep every row's entries within its entries, and encoding its rows
+// again and decoding that must give the same rows.
 #include <algorithm>
 #include <cmath>
 #include <cstdint>
@@ -17,6 +19,7 @@
 #include <string_view>
 #include <vector>
 
+#include "protocol/result_batch.h"
 #include "protocol/wire_protocol.h"
 
 namespace {
@@ -105,6 +108,59 @@ extern "C" int LLVMFuzzerTestOneInput(const std::uint8_t* data, std::size_t size
     RequireSameNumbers(encoded, times, values, view.dims, /*exact_zero_sign=*/true);
     nuwatch::EncodeJsonPayload(times, values.data(), view.dims, &encoded);
     RequireSameNumbers(encoded, times, values, view.dims, /*exact_zero_sign=*/true);
+  }
+
+  // §9.5: the payload as a binary result batch.
+  nuwatch::ResultBatch batch;
+  if (nuwatch::DecodeResultBatch(payload, &batch).empty()) {
+    Require(!batch.rows.empty());
+    nuwatch::ResultBatchEncoder encoder;
+    encoder.Begin();
+    std::vector<nuwatch::FeatureShareView> entries;
+    for (const nuwatch::ResultBatchRow& row : batch.rows) {
+      Require(std::size_t{row.first_feature} + row.feature_count <= batch.features.size());
+      Require(row.feature_count == 0 || row.anomaly);
+      entries.clear();
+      for (std::uint32_t k = 0; k < row.feature_count; ++k) {
+        const nuwatch::ResultBatchFeature& f = batch.features[row.first_feature + k];
+        // The encoder takes an int index (the daemon's columns); larger ones cannot come back.
+        entries.push_back(
+            {"", static_cast<int>(std::min<std::uint32_t>(f.index, 0x7FFFFFFF)), f.share});
+      }
+      nuwatch::ScoredVector scored;
+      scored.t = row.t;
+      scored.learning = row.state != nuwatch::ResultState::kScoring;
+      scored.history = row.state == nuwatch::ResultState::kHistory;
+      scored.decision = row.decision;
+      scored.p_value = row.p_value;
+      scored.anomaly = row.anomaly;
+      scored.incident_id = row.incident_id;
+      scored.model_version = row.model_version;
+      scored.support_vectors = row.support_vectors;
+      scored.top_features = entries;
+      encoder.Add(scored);
+    }
+    nuwatch::ResultBatch again;
+    Require(nuwatch::DecodeResultBatch(encoder.Finish(), &again).empty());
+    Require(again.rows.size() == batch.rows.size() &&
+            again.features.size() == batch.features.size());
+    for (std::size_t i = 0; i < batch.rows.size(); ++i) {
+      const nuwatch::ResultBatchRow& a = batch.rows[i];
+      const nuwatch::ResultBatchRow& b = again.rows[i];
+      const bool scoring = a.state == nuwatch::ResultState::kScoring;
+      Require(SameBits(a.t, b.t) && a.state == b.state && a.anomaly == b.anomaly &&
+              a.incident_id == b.incident_id && a.model_version == b.model_version &&
+              a.support_vectors == b.support_vectors && a.feature_count == b.feature_count &&
+              a.first_feature == b.first_feature);
+      // Not scoring: the encoder writes NaN whatever the frame held (§9.5.2).
+      Require(scoring ? SameBits(a.decision, b.decision) && SameBits(a.p_value, b.p_value)
+                      : std::isnan(b.decision) && std::isnan(b.p_value));
+    }
+    for (std::size_t k = 0; k < batch.features.size(); ++k) {
+      Require(SameBits(batch.features[k].share, again.features[k].share));
+      Require(again.features[k].index ==
+              std::min<std::uint32_t>(batch.features[k].index, 0x7FFFFFFF));
+    }
   }
 
   // The payload bytes as a feature name: whatever they are, the result must be valid JSON.

@@ -18,8 +18,13 @@ Usage:
                                           validate each line of FILE as a §9 result or incident
                                           event; print one normalised JSON line each; exit 1 with a
                                           message at the first line that breaks §9
-  python_codec_check.py --self-test       check this implementation against the §6.4 example and
-                                          §13.3's vectors
+  python_codec_check.py --decode-result-batch FILE
+                                          decode FILE as a §9.5 binary result batch; print one
+                                          normalised JSON line per row (as --check-results prints
+                                          the JSON form; NaN written as null); exit 1 with a
+                                          message when it breaks §9.5.4
+  python_codec_check.py --self-test       check this implementation against the §6.4 and §9.5.5
+                                          examples and §13.3's vectors
 """
 
 import argparse
@@ -381,6 +386,68 @@ def _parse_object(obj):
     return out
 
 
+# --- Binary result batches (§9.5) ---
+
+RESULT_MAGIC = b"NUWR"  # §9.5.1
+RESULT_HEADER = struct.Struct("<4sBBHII")  # magic, version, flags, reserved, count, features
+RESULT_ROW = struct.Struct("<dddqQIBBBB")  # §9.5.2: t, decision, p_value, incident,
+#                                            model_version, support_vectors, state, anomaly,
+#                                            top_features, reserved
+RESULT_FEATURE = struct.Struct("<dII")  # §9.5.3: share, feature, reserved
+RESULT_STATES = {0: "learning", 1: "history", 2: "scoring"}
+
+
+def decode_result_batch(frame: bytes, feature_names=None):
+    """Decodes frame 2 of a §9.5 message, checked in the order of §9.5.4. Returns its rows as the
+    normalised objects parse_published gives for the JSON form (NaN as None, incident -1 as None),
+    each top feature named feature_names[index] when names are given, else str(index) (§9.5.3).
+    Raises ProtocolError naming the failed check."""
+    _need(len(frame) >= 5 and frame[:4] == RESULT_MAGIC, "not a binary batch (magic)")
+    _need(frame[4] == 1, "a later version (%d): a v1 subscriber drops it" % frame[4])
+    _need(len(frame) >= RESULT_HEADER.size, "truncated header (%d bytes)" % len(frame))
+    _, _, flags, reserved, count, features = RESULT_HEADER.unpack_from(frame, 0)
+    _need(flags == 0 and reserved == 0, "flags or reserved not 0")
+    _need(count >= 1, "count = 0")
+    size = RESULT_HEADER.size + RESULT_ROW.size * count + RESULT_FEATURE.size * features
+    _need(len(frame) == size, "size %d, the header implies %d" % (len(frame), size))
+    rows = []
+    claimed = 0
+    for i in range(count):
+        (t, decision, p_value, incident, model_version, support_vectors, state, anomaly, top,
+         row_reserved) = RESULT_ROW.unpack_from(frame, RESULT_HEADER.size + RESULT_ROW.size * i)
+        _need(state in RESULT_STATES, "row %d: state %d" % (i, state))
+        _need(anomaly in (0, 1) and not (anomaly == 1 and state != 2),
+              "row %d: anomaly %d with state %d" % (i, anomaly, state))
+        _need(top == 0 or anomaly == 1, "row %d: top features on a row not flagged" % i)
+        _need(row_reserved == 0, "row %d: reserved byte not 0" % i)
+        _need(incident >= -1, "row %d: incident %d" % (i, incident))
+        _need(claimed + top <= features, "row %d: its top features run past the entries" % i)
+        rows.append((t, decision, p_value, incident, model_version, support_vectors, state,
+                     anomaly, claimed, top))
+        claimed += top
+    _need(claimed == features, "rows claim %d entries, the header %d" % (claimed, features))
+    entries = []
+    base = RESULT_HEADER.size + RESULT_ROW.size * count
+    for k in range(features):
+        share, index, entry_reserved = RESULT_FEATURE.unpack_from(frame,
+                                                                  base + RESULT_FEATURE.size * k)
+        _need(entry_reserved == 0, "entry %d: reserved not 0" % k)
+        name = feature_names[index] if feature_names is not None else str(index)
+        entries.append({"feature": name, "share": share})
+    out = []
+    for (t, decision, p_value, incident, model_version, support_vectors, state, anomaly, first,
+         top) in rows:
+        result = {"kind": "result", "t": t, "state": RESULT_STATES[state],
+                  "decision": None if math.isnan(decision) else decision,
+                  "p_value": None if math.isnan(p_value) else p_value,
+                  "anomaly": anomaly == 1, "incident": None if incident == -1 else incident,
+                  "model_version": model_version, "support_vectors": support_vectors}
+        if anomaly == 1:
+            result["top_features"] = entries[first:first + top]
+        out.append(result)
+    return out
+
+
 # --- Command line ---
 
 
@@ -516,11 +583,40 @@ def _check_results(path):
     return 0
 
 
+def _decode_result_batch_file(path):
+    with open(path, "rb") as f:
+        frame = f.read()
+    try:
+        rows = decode_result_batch(frame)
+    except ProtocolError as e:
+        print("%s: %s" % (path, e), file=sys.stderr)
+        return 1
+    for row in rows:
+        print(json.dumps(row))
+    return 0
+
+
 def _self_test():
     example = bytes.fromhex("4E55574201020200010000000000000000001040" "6E55DA41"
                             "000000000000F83F" "00000000000000C0")
     assert encode_binary([1767225600.25], [[1.5, -2.0]]) == example
     assert decode_payload(example) == ([1767225600.25], [[1.5, -2.0]], "f64")
+    # §9.5.5: the binary result batch example and the JSON form it carries.
+    batch = bytes.fromhex(
+        "4E555752" "01" "00" "0000" "02000000" "02000000"
+        "000010406E55DA41" "000000000000E03F" "000000000000D03F" "FFFFFFFFFFFFFFFF"
+        "0400000000000000" "76000000" "02000000"
+        "000090426E55DA41" "000000000000E0BF" "000000000000803F" "0700000000000000"
+        "0400000000000000" "76000000" "02010200"
+        "000000000000E83F" "0300000000000000" "000000000000D03F" "0400000000000000")
+    assert len(batch) == 144
+    as_json = parse_published_messages(
+        '{"results":[{"t":1767225600.25,"state":"scoring","decision":0.5,"p_value":0.25,'
+        '"anomaly":false,"incident":null,"model_version":4,"support_vectors":118},'
+        '{"t":1767225610.25,"state":"scoring","decision":-0.5,"p_value":0.0078125,'
+        '"anomaly":true,"incident":7,"model_version":4,"support_vectors":118,'
+        '"top_features":[{"feature":"3","share":0.75},{"feature":"4","share":0.25}]}]}')
+    assert decode_result_batch(batch) == as_json, decode_result_batch(batch)
     # §13.3: a weight and an owner from the tables.
     assert owner_weight("nuwatchd-1", "pump-01") == 0xe2be1b902c4f4aae
     assert owner_of("pump-03", ["nuwatchd-0", "nuwatchd-1", "nuwatchd-2", "nuwatchd-3"]) == \
@@ -536,6 +632,7 @@ def main():
     group.add_argument("--decode", metavar="FILE", nargs="+")
     group.add_argument("--check-keys", metavar="FILE")
     group.add_argument("--check-results", metavar="FILE")
+    group.add_argument("--decode-result-batch", metavar="FILE")
     group.add_argument("--self-test", action="store_true")
     args = parser.parse_args()
     if args.emit:
@@ -549,6 +646,8 @@ def main():
         return 0
     if args.check_results:
         return _check_results(args.check_results)
+    if args.decode_result_batch:
+        return _decode_result_batch_file(args.decode_result_batch)
     return _self_test()
 
 
