@@ -38,6 +38,7 @@
 #include "nuwatch/mutex.h"
 #include "protocol/curve_keys.h"
 #include "protocol/ownership.h"
+#include "protocol/result_batch.h"
 #include "protocol/wire_protocol.h"
 #include "service/control.h"
 #include "service/curve_auth.h"
@@ -330,7 +331,8 @@ struct Shard {
   zmq::message_t payload_message;
   JsonScratch scratch;
   std::string result_json;
-  std::string batch_json;  // a §9.4 batch of results (publish.batches)
+  std::string batch_json;             // a §9.4 batch of results (publish.batches)
+  ResultBatchEncoder binary_results;  // a §9.5 binary batch (publish.result_form = "binary")
   std::string event_json;
   std::array<FeatureShareView, kTopFeatures> top_features;
 
@@ -411,14 +413,19 @@ struct Daemon::Impl final : ControlCommands {
   void ProcessBatch(Shard& shard, Stream& stream, const PayloadView& payload);
   // The stream's metrics after `verdicts` (the last of them at data time `last_time`).
   void UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts, double last_time);
-  // Publishes the results of one ingest message's vectors (one message each, or one §9.4 batch
-  // with publish.batches), then their incident events. `batch`: the verdicts came from
-  // ObserveBatch (flagged rows are explained by ExplainBatchRow), else from one Observe.
+  // Publishes the results of one ingest message's vectors (one message each, one §9.4 batch
+  // with publish.batches, or one §9.5 binary batch with publish.result_form = "binary"), then
+  // their incident events. `batch`: the verdicts came from ObserveBatch (flagged rows are
+  // explained by ExplainBatchRow), else from one Observe.
   void PublishResults(Shard& shard, Stream& stream, std::span<const double> times,
                       std::span<const Verdict> verdicts, bool batch);
-  // The §9.1 result of one vector into *out; false if it is not published (learning, with
-  // publish.include_learning off). `batch_row`: its row in the last ObserveBatch, or -1 for the
-  // vector the last Observe scored.
+  // The §9.1 result of one vector into *result, its top features in shard.top_features; false if
+  // it is not published (learning, with publish.include_learning off). `batch_row`: its row in
+  // the last ObserveBatch, or -1 for the vector the last Observe scored. *explained_by keeps the
+  // feature names the result points to alive until it is encoded.
+  bool DescribeVerdict(Shard& shard, Stream& stream, double t, const Verdict& v, int batch_row,
+                       ScoredVector* result, std::shared_ptr<const Model>* explained_by);
+  // DescribeVerdict, then the §9.1 JSON into *out.
   bool EncodeVerdict(Shard& shard, Stream& stream, double t, const Verdict& v, int batch_row,
                      std::string* out);
   void PublishIncidentEvent(Shard& shard, Stream& stream, double t, const Verdict& v);
@@ -1603,6 +1610,22 @@ void Daemon::Impl::PublishResults(Shard& shard, Stream& stream, std::span<const 
   const int n = static_cast<int>(verdicts.size());
   std::string& batch_json = shard.batch_json;
   std::string& result_json = shard.result_json;
+  if (config.daemon.publish_result_form == "binary") {
+    // §9.5: one binary batch with the message's results in order, then its incident events.
+    ResultBatchEncoder& encoder = shard.binary_results;
+    encoder.Begin();
+    for (int i = 0; i < n; ++i) {
+      ScoredVector result;
+      std::shared_ptr<const Model> explained_by;
+      if (DescribeVerdict(shard, stream, times[i], verdicts[i], batch ? i : -1, &result,
+                          &explained_by))
+        encoder.Add(result);
+    }
+    if (encoder.rows() > 0)
+      Publish(stream.key, encoder.Finish(), PublishedMessage::kResult, encoder.rows());
+    for (int i = 0; i < n; ++i) PublishIncidentEvent(shard, stream, times[i], verdicts[i]);
+    return;
+  }
   if (config.daemon.publish_batches) {
     // §9.4: one message with the message's results in order, then its incident events in order.
     batch_json.assign("{\"results\":[");
@@ -1628,10 +1651,20 @@ void Daemon::Impl::PublishResults(Shard& shard, Stream& stream, std::span<const 
 
 bool Daemon::Impl::EncodeVerdict(Shard& shard, Stream& stream, double t, const Verdict& v,
                                  int batch_row, std::string* out) {
+  ScoredVector result;
+  std::shared_ptr<const Model> explained_by;
+  if (!DescribeVerdict(shard, stream, t, v, batch_row, &result, &explained_by)) return false;
+  EncodeResultJson(result, out);
+  return true;
+}
+
+bool Daemon::Impl::DescribeVerdict(Shard& shard, Stream& stream, double t, const Verdict& v,
+                                   int batch_row, ScoredVector* out,
+                                   std::shared_ptr<const Model>* explained_by) {
   auto& top_features = shard.top_features;
   const bool scoring = v.state == StreamState::kScoring;
   if (!scoring && !config.daemon.publish_learning) return false;
-  ScoredVector result;
+  ScoredVector& result = *out;
   result.t = t;
   result.learning = !scoring;
   result.history = v.state == StreamState::kHistory;
@@ -1642,9 +1675,8 @@ bool Daemon::Impl::EncodeVerdict(Shard& shard, Stream& stream, double t, const V
   result.model_version = v.model_version;
   result.support_vectors = v.support_vectors;
   std::size_t top = 0;
-  std::shared_ptr<const Model> explained_by;  // keeps the names below alive until published
   if (scoring && v.outlier) {
-    if ((explained_by = stream.detector->model())) {
+    if ((*explained_by = stream.detector->model())) {
       // Explain allocates its result; only flagged vectors pay for it. It works in the model's
       // (transformed) features, which the model names ("flow_m3h, mean of 6").
       const Detector& detector = *stream.detector;
@@ -1652,7 +1684,7 @@ bool Daemon::Impl::EncodeVerdict(Shard& shard, Stream& stream, double t, const V
           batch_row < 0
               ? detector.ExplainLast(kTopFeatures)
               : detector.ExplainBatchRow(static_cast<std::size_t>(batch_row), kTopFeatures);
-      const auto& names = explained_by->parts().feature_names;
+      const auto& names = (*explained_by)->parts().feature_names;
       for (const FeatureShare& share : shares) {
         FeatureShareView& view = top_features[top++];
         view.index = share.feature;
@@ -1665,7 +1697,6 @@ bool Daemon::Impl::EncodeVerdict(Shard& shard, Stream& stream, double t, const V
     }
   }
   result.top_features = std::span<const FeatureShareView>(top_features.data(), top);
-  EncodeResultJson(result, out);
   return true;
 }
 

@@ -115,6 +115,7 @@ using S = DaemonSettings;
 
 constexpr std::string_view kLogLevels[] = {"trace", "debug",    "info", "warn",
                                            "error", "critical", "off"};
+constexpr std::string_view kResultForms[] = {"json", "binary"};
 constexpr SettingBounds AtLeast(double min) { return {.min = min}; }
 constexpr SettingBounds Positive() { return {.min = 0, .min_open = true}; }
 constexpr ReloadEffect kNow = ReloadEffect::kImmediate;
@@ -207,7 +208,18 @@ const Setting<S> kDaemonKeys[] = {
      .member = &S::publish_batches,
      .doc = "Publish the results of one ingest message as one message, {\"results\": [...]} "
             "(PROTOCOL.md §9.4), instead of one message per vector: fewer messages for "
-            "subscribers that read batches. Off: every subscriber keeps the one-per-vector form.",
+            "subscribers that read batches. Off: every subscriber keeps the one-per-vector form. "
+            "For the JSON form only (result_form = \"binary\" always publishes one message per "
+            "ingest message).",
+     .reload = kNow},
+    {.section = "publish",
+     .name = "result_form",
+     .member = &S::publish_result_form,
+     .doc = "How results are written: \"json\", the JSON objects of PROTOCOL.md §9.1 (or §9.4 "
+            "with batches); \"binary\", one little-endian binary batch per ingest message "
+            "(§9.5), features named by column index: less CPU and fewer bytes, for subscribers "
+            "that read §9.5. Incident events stay JSON either way.",
+     .choices = kResultForms,
      .reload = kNow},
     {.section = "control",
      .name = "endpoint",

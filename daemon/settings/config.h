@@ -43,6 +43,7 @@ struct DaemonSettings {
   int64_t publish_max_subscribers = 32;                   // max_subscribers
   bool publish_learning = true;                           // include_learning
   bool publish_batches = false;                           // batches
+  std::string publish_result_form = "json";               // result_form: "json" or "binary"
   // [control] ("" = ipc://STATE_DIR/nuwatchd.control, else in the runtime directory:
   // DefaultControlEndpoint)
   std::string control_endpoint;                    // endpoint

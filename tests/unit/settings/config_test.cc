@@ -452,6 +452,11 @@ TEST(ConfigErrors, OutOfRangeDaemonValuesNameFileLineAndKey) {
   EXPECT_THAT(ErrorOf("[daemon]\nlog_level = \"verbose\"\n"),
               HasSubstr("t.toml:2:13: daemon.log_level = \"verbose\" must be one of"));
   EXPECT_THAT(ErrorOf("[daemon]\nrefit_threads = 0\n"), HasSubstr("must be at least 1"));
+  // PROTOCOL.md §9.5: the result form is JSON or the binary batch, nothing else.
+  EXPECT_EQ(Parse("[publish]\nresult_form = \"binary\"\n").daemon.publish_result_form, "binary");
+  EXPECT_THAT(ErrorOf("[publish]\nresult_form = \"msgpack\"\n"),
+              HasSubstr("t.toml:2:15: publish.result_form = \"msgpack\" must be one of \"json\", "
+                        "\"binary\""));
   EXPECT_THAT(ErrorOf("[state]\nsnapshot_interval_seconds = 0\n"),
               HasSubstr("state.snapshot_interval_seconds = 0 must be positive"));
   // PROTOCOL.md §7: dims 1..65535, a payload of at least 28 bytes.
@@ -844,9 +849,10 @@ TEST(DaemonKeys, ARestartOnlyChangeIsReportedAndKeptAtItsRunningValue) {
   DaemonSettings next = running;
   next.publish_endpoint = "tcp://127.0.0.1:7702";
   next.refit_threads = 4;
-  next.log_level = "debug";         // applies on reload
-  next.max_dims = 12;               // applies on reload
-  next.record_rotate_bytes = 1000;  // applies on reload
+  next.log_level = "debug";             // applies on reload
+  next.max_dims = 12;                   // applies on reload
+  next.record_rotate_bytes = 1000;      // applies on reload
+  next.publish_result_form = "binary";  // applies on reload (PROTOCOL.md §9.5)
   EXPECT_EQ(RestartOnlyChanges(running, next),
             (std::vector<std::string>{"daemon.refit_threads", "publish.endpoint"}));
   KeepRestartOnly(running, &next);
@@ -855,6 +861,7 @@ TEST(DaemonKeys, ARestartOnlyChangeIsReportedAndKeptAtItsRunningValue) {
   EXPECT_EQ(next.log_level, "debug");
   EXPECT_EQ(next.max_dims, 12);
   EXPECT_EQ(next.record_rotate_bytes, 1000u);
+  EXPECT_EQ(next.publish_result_form, "binary");
   EXPECT_TRUE(RestartOnlyChanges(running, next).empty());
   std::set<std::string> restart;
   for (const auto& key : DaemonKeys()) {
@@ -889,8 +896,8 @@ TEST(KnownConfigKeys, AreUniqueAndCoverEverySection) {
         "detector.feature_names", "stream.match"}) {
     EXPECT_TRUE(unique.count(key)) << key;
   }
-  // 34 daemon settings, 32 DetectorOptions members, and stream.match.
-  EXPECT_EQ(keys.size(), 67u);
+  // 35 daemon settings, 32 DetectorOptions members, and stream.match.
+  EXPECT_EQ(keys.size(), 68u);
 }
 
 // Issue 10 §1: the control socket relearns, forgets and reloads, so a TCP control socket needs
