@@ -24,6 +24,7 @@
 #include "cli/client_keys.h"
 #include "cli/commands.h"
 #include "formats/timestamps.h"
+#include "protocol/result_batch.h"
 
 namespace nuwatch::cli {
 namespace {
@@ -115,6 +116,33 @@ std::string FormatTopFeatures(const json& object) {
     }
   }
   return text;
+}
+
+// A number of a §9.5 row as the JSON form writes it: NaN (not scoring, or no p-value) is null.
+json NumberOrNull(double value) { return std::isnan(value) ? json(nullptr) : json(value); }
+
+// Row `row` of a §9.5 binary batch as the §9.1 object the JSON form carries, so that both forms
+// print alike. Features are named by their column index, as the JSON form names them for a stream
+// without feature_names (tail does not know the daemon's configuration).
+json ResultObject(const ResultBatch& batch, const ResultBatchRow& row) {
+  json object = json::object();
+  object["t"] = row.t;
+  object["state"] = std::string(ResultStateName(row.state));
+  object["decision"] = NumberOrNull(row.decision);
+  object["p_value"] = NumberOrNull(row.p_value);
+  object["anomaly"] = row.anomaly;
+  object["incident"] = row.incident_id < 0 ? json(nullptr) : json(row.incident_id);
+  object["model_version"] = row.model_version;
+  object["support_vectors"] = row.support_vectors;
+  if (row.anomaly) {
+    json features = json::array();
+    for (std::uint32_t k = 0; k < row.feature_count; ++k) {
+      const ResultBatchFeature& feature = batch.features[row.first_feature + k];
+      features.push_back({{"feature", std::to_string(feature.index)}, {"share", feature.share}});
+    }
+    object["top_features"] = std::move(features);
+  }
+  return object;
 }
 
 // One message's place in the output.
@@ -304,6 +332,7 @@ void RunTail(const TailArguments& args) {
   bool timed_out = false;
   std::vector<zmq::message_t> frames;
   std::string line;
+  ResultBatch binary_batch;
   while (open && !stop_requested && (count == 0 || tally.printed < count)) {
     auto wait = std::chrono::milliseconds(200);
     if (timeout > 0) {
@@ -396,28 +425,52 @@ void RunTail(const TailArguments& args) {
     if (!args.streams.empty() &&
         std::find(args.streams.begin(), args.streams.end(), key) == args.streams.end())
       continue;
-    const json object = json::parse(text, nullptr, /*allow_exceptions=*/false);
-    if (!object.is_object()) {
-      ++tally.malformed;
-      std::fprintf(stderr, "nuwatch tail: skipped a message for %.*s that is not a JSON object\n",
-                   static_cast<int>(key.size()), key.data());
-      continue;
+    // §9.5: a binary batch of results (publish.result_form = "binary") is printed as its
+    // results, one line each, each as the JSON form would have carried it.
+    std::vector<json> items;
+    std::string_view whole_text;  // the frame, when it is one JSON object
+    if (LooksLikeResultBatch(text)) {
+      const std::string problem = DecodeResultBatch(text, &binary_batch);
+      if (!problem.empty()) {
+        ++tally.malformed;
+        std::fprintf(stderr, "nuwatch tail: skipped a message for %.*s: %s\n",
+                     static_cast<int>(key.size()), key.data(), problem.c_str());
+        continue;
+      }
+      for (const ResultBatchRow& row : binary_batch.rows)
+        items.push_back(ResultObject(binary_batch, row));
+    } else {
+      json object = json::parse(text, nullptr, /*allow_exceptions=*/false);
+      if (!object.is_object()) {
+        ++tally.malformed;
+        std::fprintf(stderr,
+                     "nuwatch tail: skipped a message for %.*s that is neither a JSON object nor "
+                     "a binary result batch\n",
+                     static_cast<int>(key.size()), key.data());
+        continue;
+      }
+      // §9.4: a batch of results (publish.batches) is printed as its results, one line each.
+      const auto batch = object.find("results");
+      if (batch != object.end() && batch->is_array() && !object.contains("event")) {
+        items = std::move(*batch).get<std::vector<json>>();
+      } else {
+        items.push_back(std::move(object));
+        whole_text = text;  // a single object is passed on byte for byte
+      }
     }
-    // §9.4: a batch of results (publish.batches) is printed as its results, one line each.
-    const auto batch = object.find("results");
-    const bool is_batch = batch != object.end() && batch->is_array() && !object.contains("event");
-    const std::size_t entries = is_batch ? batch->size() : 1;
-    for (std::size_t i = 0; i < entries && open && (count == 0 || tally.printed < count); ++i) {
-      const json& item = is_batch ? (*batch)[i] : object;
+    for (std::size_t i = 0; i < items.size() && open && (count == 0 || tally.printed < count);
+         ++i) {
+      const json& item = items[i];
       if (!item.is_object()) {
         ++tally.malformed;
         std::fprintf(stderr, "nuwatch tail: skipped a batch entry for %.*s that is not an object\n",
                      static_cast<int>(key.size()), key.data());
         continue;
       }
-      const std::string item_text = is_batch ? item.dump() : std::string();
+      const std::string item_text = whole_text.empty() ? item.dump() : std::string();
       line.clear();
-      const Kind kind = printer.Format(key, is_batch ? item_text : text, item, &line);
+      const Kind kind =
+          printer.Format(key, whole_text.empty() ? item_text : whole_text, item, &line);
       if (kind == Kind::kSkipped) continue;
       tally.events += kind == Kind::kIncidentEvent;
       tally.anomalies += kind == Kind::kAnomaly;
