@@ -45,6 +45,8 @@ TEST(DaemonEndToEnd, ScoresFlagsRejectsCountsAndStops) { RunScript("ScoringRejec
 
 TEST(DaemonEndToEnd, BatchResultsCarryAMessagesResultsInOneMessage) { RunScript("BatchResults"); }
 
+TEST(DaemonEndToEnd, BinaryResultBatchesCarryWhatTheJsonFormCarries) { RunScript("BinaryResults"); }
+
 TEST(DaemonEndToEnd, RestartResumesModelsAndMovesCorruptStateAside) {
   RunScript("RestartFromState");
 }

@@ -55,7 +55,8 @@ START_TIMEOUT = 15.0  # seconds for the ready file to appear
 WAIT_TIMEOUT = 10.0   # seconds for any one expected message or state
 
 
-def config_text(refit_every, max_streams, publish_batches=False, max_subscribers=32):
+def config_text(refit_every, max_streams, publish_batches=False, max_subscribers=32,
+                result_form="json"):
     return """\
 # Written by daemon_e2e_test.py.
 [daemon]
@@ -65,6 +66,7 @@ refit_threads = 1
 [publish]
 batches = %s
 max_subscribers = %d
+result_form = "%s"
 
 [metrics]
 anomaly_ratio_window = 100
@@ -85,7 +87,7 @@ open_after = %d
 open_window = %d
 close_after = %d
 feature_names = [%s]
-""" % ("true" if publish_batches else "false", max_subscribers, max_streams, MAX_DIMS, MAX_VECTORS, MAX_MESSAGE_BYTES, WINDOW, WARMUP, refit_every, BUDGET,
+""" % ("true" if publish_batches else "false", max_subscribers, result_form, max_streams, MAX_DIMS, MAX_VECTORS, MAX_MESSAGE_BYTES, WINDOW, WARMUP, refit_every, BUDGET,
        OPEN_AFTER, OPEN_WINDOW, CLOSE_AFTER, ", ".join('"%s"' % f for f in FEATURES))
 
 
@@ -93,13 +95,13 @@ class Daemon:
     """One nuwatchd process, started with wildcard ports and a ready file."""
 
     def __init__(self, workdir, state_dir, refit_every=50, max_streams=3, publish_batches=False,
-                 extra_config="", max_subscribers=32):
+                 extra_config="", max_subscribers=32, result_form="json"):
         self.workdir = workdir
         self.state_dir = state_dir
         self.config_path = os.path.join(workdir, "nuwatchd.toml")
         with open(self.config_path, "w") as f:
-            f.write(config_text(refit_every, max_streams, publish_batches, max_subscribers)
-                    + extra_config)
+            f.write(config_text(refit_every, max_streams, publish_batches, max_subscribers,
+                                result_form) + extra_config)
         self.ready_path = os.path.join(workdir, "ready.json")
         self.log_path = os.path.join(workdir, "nuwatchd-%d.log" % len(glob.glob(
             os.path.join(workdir, "nuwatchd-*.log"))))
@@ -169,8 +171,10 @@ class Daemon:
 class Peer:
     """pyzmq sockets on one daemon: PUSH to ingest, SUB to results, REQ to control.
 
-    Every published message is checked by codec.parse_published (§9) and kept per stream, results
-    and events together in arrival order.
+    Every published message is checked by codec.parse_published (§9), or, when frame 2 starts with
+    "N", decoded by codec.decode_result_batch (§9.5, top features named from FEATURES as a
+    subscriber names them from its own configuration), and kept per stream, results and events
+    together in arrival order.
     """
 
     def __init__(self, endpoints):
@@ -186,6 +190,7 @@ class Peer:
         self.metrics_address = endpoints["metrics"]
         self.published = {}  # stream -> [normalised §9 objects, raw objects attached as "raw"]
         self.batches = []  # (stream, results in the message) per message; 0: not a §9.4 batch
+        self.binary_batches = 0  # §9.5 messages received
 
     def close(self):
         self.context.destroy(linger=0)
@@ -221,6 +226,18 @@ class Peer:
         if len(frames) != 2:
             raise AssertionError("a published message has %d frames, §9 says 2" % len(frames))
         key = frames[0].decode("ascii")
+        if frames[1][:1] == b"N":  # §9.5: a binary batch (a JSON object starts with "{")
+            try:
+                rows = codec.decode_result_batch(frames[1], FEATURES)
+            except codec.ProtocolError as e:
+                raise AssertionError("%s published a binary batch that breaks §9.5 (%s): %s"
+                                     % (key, e, frames[1].hex()))
+            self.binary_batches += 1
+            self.batches.append((key, len(rows)))
+            for row in rows:
+                row["raw"] = None
+                self.published.setdefault(key, []).append(row)
+            return
         text = frames[1].decode("utf-8")
         try:
             messages = codec.parse_published_messages(text)
@@ -462,8 +479,8 @@ class DaemonTestCase(unittest.TestCase):
             return True  # cannot tell: show the logs
         return any(test is self for test, _ in result.errors + result.failures)
 
-    def start_daemon(self, **kwargs):
-        daemon = Daemon(self.workdir, self.state_dir, **kwargs)
+    def start_daemon(self, state_dir=None, **kwargs):
+        daemon = Daemon(self.workdir, state_dir or self.state_dir, **kwargs)
         self.daemons.append(daemon)
         endpoints = daemon.start()
         peer = Peer(endpoints)
@@ -772,6 +789,101 @@ class BatchResults(DaemonTestCase):
         start = flat.index(times[0])
         self.assertEqual(start % 3, 0, "tail began in the middle of a batch")
         self.assertEqual(times, flat[start:start + 4])
+        self.stop_daemon(daemon, peer)
+
+
+class BinaryResults(DaemonTestCase):
+    def test_binary_batches_carry_what_the_json_form_carries(self):
+        """PROTOCOL.md §9.5 with publish.result_form = "binary", decoded by the Python decoder of
+        python_codec_check.py (struct formats from the §9.5 tables), against the JSON form (§9.1,
+        §9.4) of the same input: two daemons restored from copies of one state file score the same
+        messages, one publishing JSON batches, the other binary batches; every field of every
+        result, the incident events after the batches, and the grouping into messages agree."""
+        # A stream with a model (refit_every = 0: fit once, so both runs score with that model).
+        daemon, peer = self.start_daemon(refit_every=0, max_streams=4)
+        peer.subscribe_with_probe()
+        a = StreamData(seed=21)
+        feed_until_scoring(peer, "pump-a", a, ["f32_batch", "json"])
+        self.stop_daemon(daemon, peer)
+        copy = os.path.join(self.workdir, "state-copy")
+        os.mkdir(copy)
+        for path in glob.glob(os.path.join(self.state_dir, "*.state")):
+            shutil.copy2(path, copy)
+
+        # One input for both runs: normal rows, a burst of outliers (flagged, explained, an
+        # incident opens), normal rows again (it closes after close_after clean ones), a single
+        # vector, and a new stream that is still learning.
+        normal = [a.normal() for _ in range(5)]
+        burst = [a.outlier() for _ in range(8)]
+        calm = [a.normal() for _ in range(CLOSE_AFTER + 4)]
+        single = [a.normal()]
+        c = StreamData(seed=22)
+        learning = [c.normal() for _ in range(3)]
+
+        def exercise(peer):
+            peer.subscribe_with_probe()
+            send_vectors(peer, "pump-a", normal, "f32_batch")
+            send_vectors(peer, "pump-a", burst, "json_batch")
+            send_vectors(peer, "pump-a", calm, "f32_batch")
+            send_vectors(peer, "pump-c", learning, "json_batch")
+            send_vectors(peer, "pump-a", single, "f64")  # its result comes after every other
+            total = len(normal) + len(burst) + len(calm) + len(single)
+            peer.wait_for(lambda: len(peer.results("pump-a")) >= total and
+                          len(peer.results("pump-c")) >= len(learning), "every result")
+            strip = lambda messages: [{k: v for k, v in m.items() if k != "raw"}
+                                      for m in messages]
+            return ({s: strip(peer.published.get(s, [])) for s in ("pump-a", "pump-c")},
+                    [b for b in peer.batches if b[0] in ("pump-a", "pump-c")])
+
+        daemon, peer = self.start_daemon(refit_every=0, max_streams=4, publish_batches=True)
+        json_published, json_batches = exercise(peer)
+        self.assertEqual(peer.binary_batches, 0)
+        self.stop_daemon(daemon, peer)
+
+        daemon, peer = self.start_daemon(state_dir=copy, refit_every=0, max_streams=4,
+                                         result_form="binary")
+        binary_published, binary_batches = exercise(peer)
+        self.assertGreaterEqual(peer.binary_batches, 5)
+
+        # The run did what it was meant to: flagged and explained rows, an incident opened and
+        # closed, learning rows with their nulls.
+        results_a = [m for m in json_published["pump-a"] if m["kind"] == "result"]
+        self.assertTrue(any(r["anomaly"] and r["top_features"] and
+                            r["top_features"][0]["feature"] == "vibration" for r in results_a))
+        self.assertEqual([m["event"] for m in json_published["pump-a"] if m["kind"] == "event"][0],
+                         "incident_open")
+        self.assertEqual([r["state"] for r in json_published["pump-c"]], ["learning"] * 3)
+        # Field for field (floats exactly: the JSON form's numbers read back as the same double),
+        # events in the same places, and one message per ingest message in both forms.
+        self.assertEqual(binary_published, json_published)
+        self.assertEqual(binary_batches, json_batches)
+        self.assertEqual([b for b in binary_batches if b[0] == "pump-a"][:4],
+                         [("pump-a", 5), ("pump-a", 8), ("pump-a", 0), ("pump-a", len(calm))])
+        samples = parse_metrics(peer.scrape())
+        self.assertEqual(sum(v for (name, _), v in samples.items()
+                             if name == "nuwatch_results_dropped_total"), 0)
+
+        # `nuwatch tail --json` reads the binary form and prints each row as the §9.1 object
+        # (features by column index: tail does not know the daemon's names).
+        sent = []
+
+        def send_three():
+            rows = [a.normal() for _ in range(3)]
+            sent.append([t for t, _ in rows])
+            send_vectors(peer, "pump-a", rows, "f32_batch")
+
+        objects = tail_json_until_count(self, daemon, "pump-a", 4, send_three, poll=0.2)
+        flat = [t for message in sent for t in message]
+        peer.wait_for(lambda: all(any(r["t"] == t for r in peer.results("pump-a")) for t in flat),
+                      "the results tail printed")
+        decoded = {r["t"]: r for r in peer.results("pump-a")}
+        for obj in objects:
+            expected = {k: v for k, v in decoded[obj["t"]].items() if k not in ("raw", "kind")}
+            if "top_features" in expected:
+                expected["top_features"] = [
+                    {"feature": str(FEATURES.index(f["feature"])), "share": f["share"]}
+                    for f in expected["top_features"]]
+            self.assertEqual(obj, expected)
         self.stop_daemon(daemon, peer)
 
 
