@@ -18,11 +18,17 @@
 // together (from /proc, so that a
 // busy machine stretches wall time but not these), and then p50/p99 ingest-to-result latency at
 // half of nuwatchd's maximum rate for that form (the result's `t` is the send time).
+// --compare-result-forms: instead of the relay comparison, one nuwatchd takes 64-vector binary
+// messages while its publish.result_form alternates between "json" (with publish.batches, one
+// §9.4 JSON batch per message) and "binary" (one §9.5 batch per message), switched by `reload`
+// between phases (--rounds each); it reports vectors/s, CPU per vector and bytes per result of
+// each form and their ratios.
 // --shutdown-streams N: a second nuwatchd gets N streams (one vector each, window 2000, a state
 // directory) and the time from SIGTERM to its exit is measured, with its RSS per stream.
 //
 // Usage: nuwatch_daemon_bench [--nuwatchd PATH] [--seconds 1.0] [--rounds 2] [--json]
 //                             [--streams 4] [--scoring-threads 0] [--publish-batches]
+//                             [--compare-result-forms]
 //                             [--shutdown-streams 0] [--shutdown-without-state]
 #include <CLI/CLI.hpp>
 #include <algorithm>
@@ -183,8 +189,14 @@ class Frames {
 // --publish-batches: nuwatchd publishes a message's results as one §9.4 batch.
 bool g_publish_batches = false;
 
-// The results a published message holds: a §9.4 batch holds one "t" member per result.
+// The results a published message holds: a §9.5 binary batch says how many at offset 8; a §9.4
+// batch holds one "t" member per result.
 double ResultsIn(std::string_view text) {
+  if (text.starts_with("NUWR") && text.size() >= 12) {
+    std::uint32_t rows;
+    std::memcpy(&rows, text.data() + 8, sizeof rows);
+    return rows;
+  }
   if (!text.starts_with("{\"results\":")) return 1;
   double n = 0;
   for (std::size_t at = text.find("\"t\":"); at != std::string_view::npos;
@@ -258,6 +270,7 @@ Reading Read(const Target& t) {
 
 struct Phase {
   double vectors_sent = 0, vectors_accepted = 0, results = 0, dropped = 0, seconds = 0;
+  double result_bytes = 0;  // frame 2 of the result messages received (not of the events)
   double cpu_process = 0, cpu_thread = 0, cpu_scoring = 0;
   std::vector<double> latencies;  // seconds, latency phases only
   double rate() const { return seconds > 0 ? vectors_sent / seconds : 0; }
@@ -272,6 +285,7 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
   const Reading before = Read(t);
   std::atomic<bool> sending{true};
   std::atomic<double> results{0};
+  std::atomic<double> result_bytes{0};
   std::atomic<double> last_result{0};
   std::atomic<double> expected{-1};  // results to wait for, once known
   Phase phase;
@@ -279,6 +293,7 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
     std::vector<zmq::pollitem_t> items = {{t.sub.handle(), 0, ZMQ_POLLIN, 0}};
     zmq::message_t key, body;
     double count = 0;
+    double bytes = 0;
     auto quiet_since = Clock::now();
     while (true) {
       if (zmq::poll(items, std::chrono::milliseconds(20)) == 0) {
@@ -291,12 +306,15 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
         (void)t.sub.recv(body);
         quiet_since = Clock::now();
         const std::string_view text(static_cast<const char*>(body.data()), body.size());
-        if (t.daemon() && text.find("\"event\"") != std::string_view::npos) continue;
+        if (t.daemon() && text.starts_with("{") && text.find("\"event\"") != std::string_view::npos)
+          continue;
         count += t.daemon() ? ResultsIn(text) : per;  // the relay forwards whole messages
+        bytes += static_cast<double>(text.size());
         const double now = WallSeconds();
         if (latency) phase.latencies.push_back(now - CarriedTime(body));
         last_result = now;
         results = count;
+        result_bytes = bytes;
       }
     }
   });
@@ -339,6 +357,7 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
   phase.vectors_accepted = t.daemon() ? after.vectors - before.vectors : phase.vectors_sent;
   phase.dropped = after.dropped - before.dropped;
   phase.results = results.load();
+  phase.result_bytes = result_bytes.load();
   phase.seconds = last_result.load() - start;
   phase.cpu_process = after.cpu_process - before.cpu_process;
   phase.cpu_thread = after.cpu_thread - before.cpu_thread;
@@ -358,7 +377,7 @@ double LoadAverage() {
   return one;
 }
 
-std::string DaemonConfig(const std::string& extra) {
+std::string DaemonConfig(const std::string& extra, const std::string& result_form = "json") {
   std::string text = R"([daemon]
 log_level = "warn"
 [ingest]
@@ -385,6 +404,10 @@ refit_every = 0
   if (g_publish_batches) {
     const std::string section = "[publish]\n";
     text.insert(text.find(section) + section.size(), "batches = true\n");
+  }
+  {
+    const std::string section = "[publish]\n";
+    text.insert(text.find(section) + section.size(), "result_form = \"" + result_form + "\"\n");
   }
   return text;
 }
@@ -501,6 +524,116 @@ json MeasureShutdown(const std::string& program, const fs::path& dir, int stream
           {"exit_status", status},
           {"state_files", files},
           {"rss_bytes_per_stream", (rss_after - rss_before) / streams}};
+}
+
+// --compare-result-forms: one nuwatchd, 64-vector binary messages, publish.result_form switched
+// between "json" (with batches) and "binary" by `reload` before each phase, alternating.
+int CompareResultForms(const std::string& program, double seconds, int rounds, bool as_json) {
+  const fs::path dir =
+      fs::temp_directory_path() / ("nuwatch_daemon_bench_" + std::to_string(::getpid()));
+  fs::create_directories(dir);
+  zmq::context_t context(1);
+  const double load_before = LoadAverage();
+  g_publish_batches = true;  // the JSON form's one-message-per-ingest-message variant (§9.4)
+  Target daemon{"nuwatchd"};
+  daemon.process = StartDaemon(program, dir, "nuwatchd", DaemonConfig(""), &daemon.endpoints);
+  Connect(context, daemon);
+  const int support_vectors = WarmUp(context, daemon);
+  for (int i = 0;; ++i) {
+    const pid_t tid = testing_data::ThreadNamed(
+        daemon.process->pid(), ("nuwatchd-score" + std::to_string(i)).substr(0, 15));
+    if (tid == 0) break;
+    daemon.scoring_threads.push_back(tid);
+  }
+  const auto use_form = [&](const std::string& form) {
+    std::ofstream((dir / "nuwatchd.toml").string()) << DaemonConfig("", form);
+    const json reply = Control(context, daemon.endpoints.control, R"({"command":"reload"})");
+    if (reply.value("ok", false) != true)
+      throw std::runtime_error("reload to result_form " + form + " failed: " + reply.dump());
+  };
+  struct Totals {
+    Phase best;
+    double vectors = 0, results = 0, dropped = 0, bytes = 0, cpu_process = 0, cpu_scoring = 0;
+  };
+  const std::string forms[] = {"json", "binary"};
+  Totals totals[2];
+  for (int r = 0; r < rounds; ++r) {
+    for (int f = 0; f < 2; ++f) {
+      use_form(forms[f]);
+      const Phase p = RunPhase(daemon, Form::kBinary64, seconds, 0, false);
+      Totals& t = totals[f];
+      if (p.rate() > t.best.rate()) t.best = p;
+      t.vectors += p.vectors_accepted;
+      t.results += p.results;
+      t.dropped += p.dropped;
+      t.bytes += p.result_bytes;
+      t.cpu_process += p.cpu_process;
+      t.cpu_scoring += p.cpu_scoring;
+    }
+  }
+  daemon.process.reset();
+  fs::remove_all(dir);
+  json out = {{"dims", kDims},
+              {"support_vectors", support_vectors},
+              {"seconds_per_phase", seconds},
+              {"rounds", rounds},
+              {"streams", g_streams},
+              {"scoring_threads", daemon.scoring_threads.size()},
+              {"ingest", FormName(Form::kBinary64)},
+              {"result_forms", json::array()}};
+  for (int f = 0; f < 2; ++f) {
+    const Totals& t = totals[f];
+    out["result_forms"].push_back(
+        {{"result_form", forms[f]},
+         {"vectors_per_second", t.best.rate()},
+         {"vectors_accepted", t.vectors},
+         {"results_received", t.results},
+         {"results_dropped_counted", t.dropped},
+         {"unaccounted", t.vectors - t.results - t.dropped},
+         {"cpu_us_per_vector_process", 1e6 * t.cpu_process / t.vectors},
+         {"cpu_us_per_vector_scoring_threads", 1e6 * t.cpu_scoring / t.vectors},
+         {"bytes_per_result", t.bytes / t.results}});
+  }
+  const json& j = out["result_forms"][0];
+  const json& b = out["result_forms"][1];
+  out["binary_to_json"] = {
+      {"vectors_per_second",
+       b["vectors_per_second"].get<double>() / j["vectors_per_second"].get<double>()},
+      {"cpu_us_per_vector_process",
+       b["cpu_us_per_vector_process"].get<double>() / j["cpu_us_per_vector_process"].get<double>()},
+      {"cpu_us_per_vector_scoring_threads",
+       b["cpu_us_per_vector_scoring_threads"].get<double>() /
+           j["cpu_us_per_vector_scoring_threads"].get<double>()},
+      {"bytes_per_result",
+       b["bytes_per_result"].get<double>() / j["bytes_per_result"].get<double>()}};
+  out["load_average_before"] = load_before;
+  out["load_average_after"] = LoadAverage();
+  if (as_json) {
+    std::cout << out.dump(2) << "\n";
+    return 0;
+  }
+  std::printf(
+      "nuwatchd, %s, d = %d, %d support vectors, %d streams, %zu scoring threads; result forms "
+      "alternated by reload, best of %d x %.1f s, load average %.1f -> %.1f\n\n",
+      FormName(Form::kBinary64), kDims, support_vectors, g_streams, daemon.scoring_threads.size(),
+      rounds, seconds, load_before, LoadAverage());
+  std::printf("%-28s %12s %12s %12s %10s %10s %10s\n", "result form", "vectors/s", "cpu us/v",
+              "scoring us/v", "bytes/res", "received", "dropped");
+  for (const json& f : out["result_forms"]) {
+    std::printf("%-28s %12.0f %12.3f %12.3f %10.1f %10.0f %10.0f\n",
+                f["result_form"].get<std::string>().c_str(), f["vectors_per_second"].get<double>(),
+                f["cpu_us_per_vector_process"].get<double>(),
+                f["cpu_us_per_vector_scoring_threads"].get<double>(),
+                f["bytes_per_result"].get<double>(), f["results_received"].get<double>(),
+                f["results_dropped_counted"].get<double>());
+  }
+  const json& ratio = out["binary_to_json"];
+  std::printf("binary / json                %11.2fx %11.2fx %11.2fx %9.2fx\n",
+              ratio["vectors_per_second"].get<double>(),
+              ratio["cpu_us_per_vector_process"].get<double>(),
+              ratio["cpu_us_per_vector_scoring_threads"].get<double>(),
+              ratio["bytes_per_result"].get<double>());
+  return 0;
 }
 
 int Run(const std::string& program, double seconds, int rounds, bool as_json, int shutdown_streams,
@@ -687,10 +820,19 @@ int main(int argc, char** argv) {
   app.add_option("--scoring-threads", nuwatch::g_scoring_threads,
                  "daemon.scoring_threads of the measured nuwatchd (0: one per core)")
       ->check(CLI::Range(0, 64));
+  bool compare_result_forms = false;
+  app.add_flag("--compare-result-forms", compare_result_forms,
+               "instead of the relay comparison: 64-vector binary messages into one nuwatchd whose "
+               "publish.result_form alternates between json (batches) and binary (PROTOCOL.md "
+               "§9.5), switched by reload");
   app.add_option("--relay", relay_ready, "internal: run as the bare relay")->group("");
   CLI11_PARSE(app, argc, argv);
   try {
     if (!relay_ready.empty()) return nuwatch::RunRelay(relay_ready);
+    if (compare_result_forms) {
+      if (rounds < 1) throw std::runtime_error("--compare-result-forms needs --rounds >= 1");
+      return nuwatch::CompareResultForms(program, seconds, rounds, as_json);
+    }
     return nuwatch::Run(program, seconds, rounds, as_json, shutdown_streams, shutdown_state);
   } catch (const std::exception& e) {
     std::fprintf(stderr, "nuwatch_daemon_bench: %s\n", e.what());
