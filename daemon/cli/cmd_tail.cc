@@ -1,6 +1,7 @@
 // nuwatch tail: subscribes to nuwatchd's result socket and prints what it publishes
 // (daemon/protocol/PROTOCOL.md §9), one line per result or incident event, until a count, a timeout
-// or Ctrl-C.
+// or Ctrl-C. It reads every result form: single JSON results, JSON batches (§9.4) and binary
+// batches (§9.5).
 #include <unistd.h>
 
 #include <algorithm>
@@ -517,8 +518,9 @@ void AddTailCommand(CLI::App& app) {
       ->type_name("DURATION")
       ->capture_default_str();
   command->add_flag("--json", args->json_output,
-                    "Print each published JSON object as received, one per line, with the "
-                    "stream key added as its first member \"stream\"");
+                    "Print each result and event as one JSON object per line, with the stream key "
+                    "added as its first member \"stream\" (a single object as received; a "
+                    "batch's results, JSON or binary, as the result objects of the JSON form)");
   AddClientKeyFlags(command, &args->keys);
   command->callback([args] { RunTail(*args); });
 }
