@@ -34,6 +34,10 @@ import python_codec_check as codec  # noqa: E402
 
 NUWATCH = None
 STREAMS = 300
+# How long a test waits for results or models. Generous: under ThreadSanitizer, with another test
+# on the 2-core CI machine, four replicas took over 30 s for the 9000 vectors of one phase (CI on
+# 2026-12-03: 57 of 60 results per stream after 30 s); a release build takes about a second.
+WAIT = 120
 # Small detectors, so that 300 streams warm up in a few seconds. No periodic refit within a run
 # (refit_every is larger than what a stream receives) and no calibration: each stream's model is the
 # one fitted on its first WARMUP vectors, so a replica's decisions can be compared with a lone
@@ -238,8 +242,9 @@ class ClusterTestCase(unittest.TestCase):
     def results_by_stream(self, name, keys):
         return {k: self.peers[name].results(k) for k in keys if self.peers[name].results(k)}
 
-    def wait_for_results(self, expected, timeout=30):
+    def wait_for_results(self, expected, timeout=None):
         """Until replica n has expected[n][key] results of each key (or more)."""
+        timeout = timeout or WAIT
         def complete():
             return all(len(self.peers[n].results(k)) >= count
                        for n, counts in expected.items() for k, count in counts.items())
@@ -259,14 +264,14 @@ class ClusterTestCase(unittest.TestCase):
 
     def wait_for_models(self, name, keys):
         """Until the replica's status shows a model for every key of `keys`."""
-        deadline = time.monotonic() + 30
+        deadline = time.monotonic() + WAIT
         while True:
             status = self.peers[name].control({"command": "status"})
             versions = {s["stream"]: s["model_version"] for s in status["streams"]}
             if all(versions.get(k, 0) >= 1 for k in keys):
                 return status
             self.assertLess(time.monotonic(), deadline,
-                            "%s: streams without a model after 30 s" % name)
+                            "%s: streams without a model after %d s" % (name, WAIT))
             time.sleep(0.05)  # polling the control socket, bounded by the deadline
 
     def counter(self, name, metric, **labels):
