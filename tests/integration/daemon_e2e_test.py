@@ -414,6 +414,16 @@ def send_inside(peer, stream, data, row, best, count):
         raise AssertionError("copies of %r scored differently from %r: %r" % (row, best, results))
 
 
+def batch_sender(peer, data, stream, sent, size=3):
+    """A function that sends `size` of data's normal vectors to `stream` as one binary message and
+    keeps their times, a list per message, in `sent` (for tail_json_until_count's send_more)."""
+    def send():
+        rows = [data.normal() for _ in range(size)]
+        sent.append([t for t, _ in rows])
+        send_vectors(peer, stream, rows, "f32_batch")
+    return send
+
+
 def tail_json_until_count(test, daemon, stream, count, send_more, poll=0.1):
     """Runs `nuwatch tail --json --stream STREAM --count COUNT`, calling send_more() until tail
     exits by itself; checks that it printed COUNT lines, each a §9 object (by the independent codec)
@@ -776,11 +786,7 @@ class BatchResults(DaemonTestCase):
         # results, not messages (a 3-vector message and --count 4: the fourth line is the first
         # result of the second message).
         sent = []
-
-        def send_three():
-            rows = [a.normal() for _ in range(3)]
-            sent.append([t for t, _ in rows])
-            send_vectors(peer, "pump-a", rows, "f32_batch")
+        send_three = batch_sender(peer, a, "pump-a", sent)
 
         objects = tail_json_until_count(self, daemon, "pump-a", 4, send_three, poll=0.2)
         times = [o["t"] for o in objects]
@@ -866,11 +872,7 @@ class BinaryResults(DaemonTestCase):
         # `nuwatch tail --json` reads the binary form and prints each row as the §9.1 object
         # (features by column index: tail does not know the daemon's names).
         sent = []
-
-        def send_three():
-            rows = [a.normal() for _ in range(3)]
-            sent.append([t for t, _ in rows])
-            send_vectors(peer, "pump-a", rows, "f32_batch")
+        send_three = batch_sender(peer, a, "pump-a", sent)
 
         objects = tail_json_until_count(self, daemon, "pump-a", 4, send_three, poll=0.2)
         flat = [t for message in sent for t in message]
