@@ -2521,7 +2521,17 @@ AdoptOutcome Daemon::Impl::Adopt(const std::string& key, const std::string& from
   }
   ShardsPaused paused(*this);
   Shard& shard = ShardFor(key);
-  if (shard.streams.Find(key) != nullptr) {
+  const std::size_t digest = std::hash<std::string_view>{}(
+      std::string_view(reinterpret_cast<const char*>(bytes.data()), bytes.size()));
+  if (const Stream* tracked = shard.streams.Find(key); tracked != nullptr) {
+    if (tracked->adopted_from == from && tracked->adopted_state_digest == digest) {
+      // The same offer again: the sender did not get the first reply (lost, or later than its
+      // wait). Answered as the first was, and not counted again.
+      outcome.state_written = store && tracked->snapshot_vectors >= 0 &&
+                              tracked->write_failures == 0 && !tracked->write_queued;
+      spdlog::info("handoff: stream={} from {} again: adopted already, answered ok", key, from);
+      return outcome;
+    }
     return refuse(kRefused, "stream_exists",
                   "stream '" + key + "' is tracked here already (it started afresh here)", metrics);
   }
@@ -2549,6 +2559,8 @@ AdoptOutcome Daemon::Impl::Adopt(const std::string& key, const std::string& from
   stream->seen_coalesced = stream->detector->counters().refits_coalesced;
   stream->RefreshSlowGauges();
   stream->last_seen = Clock::now();
+  stream->adopted_from = from;
+  stream->adopted_state_digest = digest;
   Stream* s = shard.streams.Add(std::move(stream));
   ++stream_count;
   metrics.streams().Set(static_cast<double>(stream_count.load()));

@@ -104,6 +104,11 @@ struct Stream {
   // they are not removed one by one (prometheus-cpp's Family::Remove scans the family, which
   // made a shutdown of N streams cost N^2).
   bool keep_metric_series = false;
+  // Adopted from another member (PROTOCOL.md §11.7): the sender's name and a digest of the state
+  // bytes it sent, so that the same offer sent again (its reply was lost or came after the
+  // sender's 5 s wait) is answered ok instead of being refused as stream_exists.
+  std::string adopted_from;
+  std::size_t adopted_state_digest = 0;
   std::unique_ptr<StreamRecorder> recorder;  // null: not recording
   bool recording_failed = false;             // an error was logged; paused until the next flush
   int64_t recording_skipped = 0;             // rows not recorded while paused (logged on resume)

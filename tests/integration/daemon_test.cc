@@ -1009,13 +1009,31 @@ member = "A"
   const json result = client.ReceiveResultFor(key);
   EXPECT_EQ(result["state"], "scoring");  // no new warm-up
   EXPECT_EQ(result["model_version"], before["model_version"]);
-  // Once tracked, a second state for the key is refused.
+  // The same offer again from the same member (its sender missed the reply): answered ok, as the
+  // first was, and not counted again; nothing is held or replaced.
   reply = adopt(key, state);
+  EXPECT_EQ(reply["ok"], true) << reply;
+  EXPECT_EQ(reply["held_vectors"], 0);
+  EXPECT_EQ(client.StreamStatus(key)["vectors"], before["vectors"].get<int64_t>() + 1);
+  // Another state of the tracked key, or the same one from another member: refused.
+  DetectorState older = decoded.state;
+  older.counters.vectors -= 1;
+  const std::vector<uint8_t> older_bytes = EncodeStreamState(key, decoded.dims, older);
+  reply = adopt(key, std::string(older_bytes.begin(), older_bytes.end()));
   EXPECT_EQ(reply["reason"], "stream_exists") << reply;
+  {
+    const std::string request = json{{"command", "adopt"}, {"stream", key}, {"from", "C"}}.dump();
+    req.send(zmq::buffer(request), zmq::send_flags::sndmore);
+    req.send(zmq::buffer(state), zmq::send_flags::none);
+    zmq::message_t raw;
+    ASSERT_TRUE(req.recv(raw));
+    EXPECT_EQ(json::parse(raw.to_string())["reason"], "stream_exists") << raw.to_string();
+  }
 
   EXPECT_EQ(handoffs("ok"), 1);
   EXPECT_EQ(handoffs("corrupt"), 2);
-  EXPECT_EQ(handoffs("refused"), 2);  // dims_mismatch, stream_exists; not_owner is not counted
+  // dims_mismatch and stream_exists twice; not_owner and the repeated offer are not counted.
+  EXPECT_EQ(handoffs("refused"), 3);
 }
 
 // ---------------------------------------------------------------------------------------------
