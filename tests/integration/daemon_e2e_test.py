@@ -187,6 +187,7 @@ class Peer:
         self.sub.setsockopt(zmq.SUBSCRIBE, b"")
         self.sub.connect(endpoints["publish"])
         self.control_endpoint = endpoints["control"]
+        self.control_timeout = WAIT_TIMEOUT  # seconds for a control reply
         self.metrics_address = endpoints["metrics"]
         self.published = {}  # stream -> [normalised §9 objects, raw objects attached as "raw"]
         self.batches = []  # (stream, results in the message) per message; 0: not a §9.4 batch
@@ -267,13 +268,14 @@ class Peer:
     def control(self, request):
         req = self.context.socket(zmq.REQ)
         req.setsockopt(zmq.LINGER, 0)
-        req.setsockopt(zmq.RCVTIMEO, int(WAIT_TIMEOUT * 1000))
+        req.setsockopt(zmq.RCVTIMEO, int(self.control_timeout * 1000))
         req.connect(self.control_endpoint)
         try:
             req.send(json.dumps(request).encode())
             return json.loads(req.recv())
         except zmq.Again:
-            raise AssertionError("no control reply to %r within %.0f s" % (request, WAIT_TIMEOUT))
+            raise AssertionError("no control reply to %r within %.0f s"
+                                 % (request, self.control_timeout))
         finally:
             req.close()
 
