@@ -15,25 +15,8 @@
 
 #include "common/random_data.h"
 
-// Every allocation of this test program is counted, so that a test can assert that Push allocates
-// nothing in the steady state (replacing the global operator new is the usual way to count: common
-// practice).
-namespace {
-std::atomic<long> g_allocations{0};
-}  // namespace
-
-// GCC cannot see that the replaced operator new below returns malloc's memory, and would warn that
-// free() releases memory from operator new.
-#pragma GCC diagnostic push
-#pragma GCC diagnostic ignored "-Wmismatched-new-delete"
-void* operator new(std::size_t size) {
-  g_allocations.fetch_add(1, std::memory_order_relaxed);
-  if (void* p = std::malloc(size == 0 ? 1 : size)) return p;
-  throw std::bad_alloc();
-}
-void operator delete(void* p) noexcept { std::free(p); }
-void operator delete(void* p, std::size_t) noexcept { std::free(p); }
-#pragma GCC diagnostic pop
+// Every allocation is counted (g_allocations), for the tests that a path allocates nothing.
+#include "common/counting_allocator.h"
 
 namespace nuwatch {
 namespace {

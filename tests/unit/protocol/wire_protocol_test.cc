@@ -24,24 +24,8 @@
 
 #include "nuwatch/types.h"
 
-// Every allocation of this test program is counted, so that a test can assert that a code path
-// allocates nothing (the binary decode, and the encoders once their buffer is warm).
-namespace {
-std::atomic<long> g_allocations{0};
-}  // namespace
-
-// GCC cannot see that the replaced operator new below returns malloc's memory, and would warn that
-// free() releases memory from operator new.
-#pragma GCC diagnostic push
-#pragma GCC diagnostic ignored "-Wmismatched-new-delete"
-void* operator new(std::size_t size) {
-  g_allocations.fetch_add(1, std::memory_order_relaxed);
-  if (void* p = std::malloc(size == 0 ? 1 : size)) return p;
-  throw std::bad_alloc();
-}
-void operator delete(void* p) noexcept { std::free(p); }
-void operator delete(void* p, std::size_t) noexcept { std::free(p); }
-#pragma GCC diagnostic pop
+// Every allocation is counted (g_allocations), for the tests that a path allocates nothing.
+#include "common/counting_allocator.h"
 
 namespace nuwatch {
 namespace {
@@ -107,6 +91,16 @@ class TempDir {
 };
 
 // --- Reasons (§8) -----------------------------------------------------------------------------
+
+// The allocation tests below (and those of result_batch_test, feature_transform_test, which use
+// the same header) could not fail if the replaced operator new were not the one called.
+std::vector<int>* volatile g_kept = nullptr;
+TEST(CountingAllocator, CountsAnAllocation) {
+  const long before = g_allocations.load();
+  g_kept = new std::vector<int>(100);
+  EXPECT_GE(g_allocations.load() - before, 2);  // the vector object and its elements
+  delete g_kept;
+}
 
 TEST(RejectReasons, LabelsAreTheOnesInTheProtocolDocument) {
   // The §8 table of PROTOCOL.md lists each label as the first cell of a row: "| `label` | ...".
