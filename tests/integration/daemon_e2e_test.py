@@ -1216,9 +1216,30 @@ class CurveAuthentication(DaemonTestCase):
         super().tearDown()
 
     def run_nuwatch(self, *args, stdin=None):
-        run = subprocess.run([NUWATCH] + list(args), input=stdin, capture_output=True,
-                             timeout=60)
-        return run.returncode, run.stdout.decode() + run.stderr.decode()
+        process = subprocess.Popen([NUWATCH] + list(args),
+                                   stdin=subprocess.PIPE if stdin is not None else None,
+                                   stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        try:
+            out, err = process.communicate(stdin, timeout=60)
+        except subprocess.TimeoutExpired:
+            # Once, under ThreadSanitizer in CI, `control status` without keys hung here although
+            # its own --timeout is 5 s: say where each of its threads waits (proc(5) wchan).
+            threads = []
+            for task in os.listdir("/proc/%d/task" % process.pid):
+                fields = []
+                for name in ("comm", "wchan"):
+                    try:
+                        with open("/proc/%d/task/%s/%s" % (process.pid, task, name)) as f:
+                            fields.append(f.read().strip())
+                    except OSError as e:
+                        fields.append(str(e))
+                threads.append("/".join(fields))
+            process.kill()
+            out, err = process.communicate()
+            self.fail("nuwatch %s did not exit within 60 s; its threads (name/wait): %s; "
+                      "output: %s" % (" ".join(args), ", ".join(threads),
+                                      (out + err).decode(errors="replace")))
+        return process.returncode, out.decode() + err.decode()
 
     def socket(self, kind, endpoint, public=None, secret=None, server=None):
         s = self.context.socket(kind)
