@@ -69,6 +69,7 @@ constexpr int kWindow = 2000;
 constexpr int kHighWaterMark = 10000;     // both targets, both directions: the daemon's default
 const char* const kKeyPrefix = "bench-";  // the streams' keys: bench-0, bench-1, ...
 int g_streams = 4;                        // --streams
+int g_receive_high_water_mark = 10000;    // --receive-high-water-mark
 int g_scoring_threads = 0;                // --scoring-threads
 
 std::vector<std::string> Keys() {
@@ -382,7 +383,8 @@ std::string DaemonConfig(const std::string& extra, const std::string& result_for
 log_level = "warn"
 [ingest]
 endpoints = ["tcp://127.0.0.1:*"]
-receive_high_water_mark = 10000
+receive_high_water_mark = )" +
+                     std::to_string(g_receive_high_water_mark) + R"(
 [publish]
 endpoint = "tcp://127.0.0.1:*"
 high_water_mark = 10000
@@ -820,6 +822,10 @@ int main(int argc, char** argv) {
   app.add_option("--scoring-threads", nuwatch::g_scoring_threads,
                  "daemon.scoring_threads of the measured nuwatchd (0: one per core)")
       ->check(CLI::Range(0, 64));
+  app.add_option("--receive-high-water-mark", nuwatch::g_receive_high_water_mark,
+                 "ingest.receive_high_water_mark of the measured nuwatchd (messages per "
+                 "connection)")
+      ->check(CLI::Range(1, 1000000));
   bool compare_result_forms = false;
   app.add_flag("--compare-result-forms", compare_result_forms,
                "instead of the relay comparison: 64-vector binary messages into one nuwatchd whose "
