@@ -472,7 +472,17 @@ struct Daemon::Impl final : ControlCommands {
   ReloadOutcome Reload() override;
   std::optional<std::string> Forget(const std::string& stream) override;
   AdoptOutcome Adopt(const std::string& stream, const std::string& from,
-                     std::span<const uint8_t> state) override;
+                     std::span<const uint8_t> state) override {
+    return InstallState(stream, from, state, false);
+  }
+  // Adopt's work: a stream made from `state` (EncodeStreamState bytes) in its shard, its held
+  // vectors scored. `taken_back`: the state of this member's own offer, withdrawn because a
+  // later reload gave the stream back (ReportHandoff): neither counted as received nor refused
+  // for want of a member list.
+  AdoptOutcome InstallState(const std::string& key, const std::string& from,
+                            std::span<const uint8_t> bytes, bool taken_back);
+  // The socket thread's side of taken-back offers: installs each one queued in `taken_back`.
+  void InstallTakenBack();
 
   // Handoff (PROTOCOL.md §13.4). The new owner's side: whether a key without a stream here waits
   // for its state from its previous owner (scoring threads, and the socket thread while they are
@@ -599,6 +609,11 @@ struct Daemon::Impl final : ControlCommands {
   // Offers handed to handoff_sender and not yet reported (status, §11.1): the socket thread adds,
   // the handoff thread's reports take away.
   std::atomic<int64_t> handoffs_pending{0};
+  // Offers withdrawn because a later reload gave their streams back (HandoffEnd::kWithdrawn): the
+  // handoff thread's reports add, the socket thread installs them (InstallTakenBack).
+  Mutex taken_back_mutex;
+  std::vector<HandoffOffer> taken_back GUARDED_BY(taken_back_mutex);
+  std::atomic<bool> taken_back_waiting{false};  // so that the loop takes the mutex only then
 };
 
 // Holds every running scoring thread between two messages, from construction to destruction, so
@@ -1248,6 +1263,7 @@ void Daemon::Impl::Loop() {
     metrics.refits_queued().Set(static_cast<double>(pool.queued()));
     try {
       if (reload_requested.exchange(false)) Reload();
+      if (taken_back_waiting.exchange(false)) InstallTakenBack();
       if (snapshot_due.exchange(false)) {
         for (auto& shard : shards) shard->Post([this, s = shard.get()] { PeriodicSnapshot(*s); });
       }
@@ -1332,6 +1348,9 @@ void Daemon::Impl::DrainIngest() {
 void Daemon::Impl::Shutdown() {
   // Offers not adopted yet end here; their streams' state files stay (§13.4).
   handoff_sender->Stop();
+  // Taken back just before the stop: installed, so that the final state file is the stream's
+  // own and not that of a stream its held vectors would start afresh below.
+  InstallTakenBack();
   DrainIngest();
   ingest.clear();  // input stops here
   // The scoring threads finish what was handed to them (scored and published), then end: from
@@ -2249,6 +2268,15 @@ ReloadOutcome Daemon::Impl::Reload() {
                       std::chrono::duration<double>(config.daemon.cluster_handoff_timeout_seconds))
             : Clock::time_point{};
     RecordMembers();
+    if (handoff_sender) {
+      // Offers still pending for streams this member owns again (the change was taken back
+      // before they were adopted) come back with their state: the streams resume here as they
+      // were released, not afresh (PROTOCOL.md §13.4 "A change taken back").
+      handoff_sender->Withdraw([members = config.daemon.cluster_members,
+                                me = config.daemon.cluster_member](const std::string& key) {
+        return members.empty() || members[OwnerOf(key, members)] == me;
+      });
+    }
     spdlog::info("reload: cluster.member = {}, cluster.members has {} members",
                  config.daemon.cluster_member.empty() ? "(none)" : config.daemon.cluster_member,
                  config.daemon.cluster_members.size());
@@ -2402,6 +2430,34 @@ void Daemon::Impl::ReportHandoff(const HandoffOffer& offer, const HandoffReport&
       spdlog::info("handoff: stream={} not handed to {} before the stop{}", offer.stream,
                    offer.to_member, store ? "; its state file stays here" : "");
       return;
+    case HandoffEnd::kWithdrawn:
+      metrics.handoffs(HandoffDirection::kSent, HandoffOutcome::kWithdrawn).Increment();
+      {
+        MutexLock lock(&taken_back_mutex);
+        taken_back.push_back(offer);
+      }
+      taken_back_waiting = true;
+      Wake();
+      return;
+  }
+}
+
+void Daemon::Impl::InstallTakenBack() {
+  std::vector<HandoffOffer> offers;
+  {
+    MutexLock lock(&taken_back_mutex);
+    offers.swap(taken_back);
+  }
+  for (const HandoffOffer& offer : offers) {
+    const AdoptOutcome outcome =
+        InstallState(offer.stream, config.daemon.cluster_member, offer.state, true);
+    if (!outcome.ok) {
+      spdlog::warn(
+          "handoff: stream={} was offered to {}, and this member owns it again, but its state "
+          "was not installed ({}: {}){}",
+          offer.stream, offer.to_member, outcome.reason, outcome.error,
+          store ? "; its state file stays here" : "");
+    }
   }
 }
 
@@ -2471,16 +2527,17 @@ void Daemon::Impl::EndHolds(Shard& shard, bool all) {
   }
 }
 
-AdoptOutcome Daemon::Impl::Adopt(const std::string& key, const std::string& from,
-                                 std::span<const uint8_t> bytes) {
+AdoptOutcome Daemon::Impl::InstallState(const std::string& key, const std::string& from,
+                                        std::span<const uint8_t> bytes, bool taken_back) {
   AdoptOutcome outcome;
-  auto refuse = [&outcome, &key, &from](HandoffOutcome counted, const char* reason,
-                                        std::string error, DaemonMetrics& m) {
+  auto refuse = [&outcome, &key, &from, taken_back](HandoffOutcome counted, const char* reason,
+                                                    std::string error, DaemonMetrics& m) {
     outcome.ok = false;
     outcome.reason = reason;
     outcome.error = std::move(error);
-    // not_owner is the expected answer until this member has reloaded: the sender retries.
-    if (std::string_view(reason) != "not_owner") {
+    // not_owner is the expected answer until this member has reloaded: the sender retries. A
+    // state taken back was never received: the caller logs its refusal.
+    if (std::string_view(reason) != "not_owner" && !taken_back) {
       m.handoffs(HandoffDirection::kReceived, counted).Increment();
       spdlog::warn("handoff: stream {} from {} refused ({}): {}", key, from, reason, outcome.error);
     }
@@ -2491,7 +2548,7 @@ AdoptOutcome Daemon::Impl::Adopt(const std::string& key, const std::string& from
     return refuse(kRefused, "bad_stream_key", "'" + key + "' is not a valid stream key", metrics);
   }
   const std::vector<std::string>& members = config.daemon.cluster_members;
-  if (members.empty()) {
+  if (members.empty() && !taken_back) {
     return refuse(kRefused, "not_owner", "this daemon is not a member of a cluster", metrics);
   }
   if (!Owns(key)) {
@@ -2572,12 +2629,14 @@ AdoptOutcome Daemon::Impl::Adopt(const std::string& key, const std::string& from
     HandleFinishedWrites(shard);
     outcome.state_written = s->write_failures == 0;
   }
-  metrics.handoffs(HandoffDirection::kReceived, HandoffOutcome::kOk).Increment();
+  if (!taken_back) metrics.handoffs(HandoffDirection::kReceived, HandoffOutcome::kOk).Increment();
   spdlog::info(
-      "handoff: adopted stream={} from {}: state={} model_version={} window={}; {} vectors held "
+      "handoff: {} stream={} {}: state={} model_version={} window={}; {} vectors held "
       "for it scored now{}",
-      key, from, StreamStateName(s->detector->state()), s->seen_model_version,
-      s->detector->window_size(), outcome.held_vectors,
+      taken_back ? "took back" : "adopted", key,
+      taken_back ? "(its offer was withdrawn: this member owns it again)" : "from " + from,
+      StreamStateName(s->detector->state()), s->seen_model_version, s->detector->window_size(),
+      outcome.held_vectors,
       store && !outcome.state_written ? "; its state file could not be written" : "");
   return outcome;
 }

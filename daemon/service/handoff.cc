@@ -30,6 +30,7 @@ constexpr auto kFirstBackoff = std::chrono::milliseconds(50);
 constexpr auto kMaxBackoff = std::chrono::seconds(1);
 
 struct Pending {
+  int64_t serial = 0;  // order of Offer: a withdrawal applies to the offers queued before it
   HandoffOffer offer;
   std::string from;
   Clock::time_point deadline;
@@ -50,12 +51,20 @@ struct HandoffSender::State {
   int wake_fd = -1;
   std::thread thread;
 
+  struct Withdrawal {
+    int64_t before_serial;  // applies to offers with a smaller serial
+    std::function<bool(const std::string&)> owned_again;
+  };
+
   Mutex mutex;
   std::vector<Pending> incoming GUARDED_BY(mutex);
+  std::vector<Withdrawal> new_withdrawals GUARDED_BY(mutex);
+  int64_t next_serial GUARDED_BY(mutex) = 0;
   bool stopping GUARDED_BY(mutex) = false;
 
   // The handoff thread's own.
   std::vector<Pending> pending;
+  std::vector<Withdrawal> withdrawals;           // until no pending offer is older than one
   std::map<std::string, zmq::socket_t> sockets;  // by endpoint, made on first use
   Clock::time_point batch_start{};
   int64_t batch_adopted = 0;
@@ -92,6 +101,17 @@ struct HandoffSender::State {
     ++batch_ended;
     if (end == HandoffEnd::kAdopted) ++batch_adopted;
     report(p.offer, p.report);
+  }
+  // Takes the withdrawals made since the last call.
+  void CollectWithdrawals() {
+    MutexLock lock(&mutex);
+    for (Withdrawal& w : new_withdrawals) withdrawals.push_back(std::move(w));
+    new_withdrawals.clear();
+  }
+  bool Withdrawn(const Pending& p) const {
+    return std::any_of(withdrawals.begin(), withdrawals.end(), [&p](const Withdrawal& w) {
+      return p.serial < w.before_serial && w.owned_again(p.offer.stream);
+    });
   }
   // One attempt; true when the offer has ended (and was reported).
   bool TryOnce(Pending& p, std::set<std::string>& silent);
@@ -183,12 +203,31 @@ void HandoffSender::State::Run() {
     std::set<std::string> silent;
     const Clock::time_point now = Clock::now();
     std::erase_if(pending, [&](Pending& p) {
+      // Checked before each attempt, so that a withdrawal waits for one attempt at most (up to
+      // kReplyTimeout), not for a whole round.
+      CollectWithdrawals();
+      if (Withdrawn(p)) {
+        p.report.reason.clear();
+        p.report.detail.clear();
+        End(p, HandoffEnd::kWithdrawn);
+        return true;
+      }
       if (now >= p.deadline) {
         End(p, HandoffEnd::kTimedOut);
         return true;
       }
       return TryOnce(p, silent);
     });
+    if (!pending.empty()) {
+      const int64_t oldest =
+          std::min_element(pending.begin(), pending.end(), [](const Pending& a, const Pending& b) {
+            return a.serial < b.serial;
+          })->serial;
+      std::erase_if(withdrawals,
+                    [oldest](const Withdrawal& w) { return w.before_serial <= oldest; });
+    } else {
+      withdrawals.clear();
+    }
     if (pending.empty()) {
       spdlog::info("handoff: {} of {} streams adopted by their new owners in {:.3f} s",
                    batch_adopted, batch_ended, Seconds(Clock::now() - batch_start));
@@ -229,8 +268,17 @@ void HandoffSender::Offer(std::string from_member, std::vector<HandoffOffer> off
   {
     MutexLock lock(&state_->mutex);
     for (HandoffOffer& offer : offers) {
-      state_->incoming.push_back(Pending{std::move(offer), from_member, deadline, {}});
+      state_->incoming.push_back(
+          Pending{state_->next_serial++, std::move(offer), from_member, deadline, {}});
     }
+  }
+  state_->Wake();
+}
+
+void HandoffSender::Withdraw(std::function<bool(const std::string& stream)> owned_again) {
+  {
+    MutexLock lock(&state_->mutex);
+    state_->new_withdrawals.push_back({state_->next_serial, std::move(owned_again)});
   }
   state_->Wake();
 }

@@ -7,9 +7,11 @@
 // Each offer is retried, 50 ms after a round and doubling up to 1 s, while the receiver answers
 // `not_owner` (it has not reloaded yet) or does not answer (not started, restarting: a request
 // waits at most 5 s for its reply, then the connection is dropped and made again), until the
-// deadline. Any other refusal is final. Every offer ends in exactly one report.
+// deadline. Any other refusal is final. An offer may be withdrawn, when a later reload gives the
+// stream back to this member before it was adopted (the change taken back). Every offer ends in
+// exactly one report.
 //
-// Thread safety: Offer and Stop from any thread; the report runs on the handoff thread.
+// Thread safety: Offer, Withdraw and Stop from any thread; the report runs on the handoff thread.
 #pragma once
 
 #include <chrono>
@@ -37,10 +39,11 @@ struct HandoffOffer {
 };
 
 enum class HandoffEnd {
-  kAdopted,   // the new owner replied ok
-  kRefused,   // the new owner refused it for good (reason and error in the report)
-  kTimedOut,  // no adoption before the deadline (the last reason in the report)
-  kStopped,   // the daemon stopped first
+  kAdopted,    // the new owner replied ok
+  kRefused,    // the new owner refused it for good (reason and error in the report)
+  kTimedOut,   // no adoption before the deadline (the last reason in the report)
+  kStopped,    // the daemon stopped first
+  kWithdrawn,  // Withdraw took it back before it was adopted: the offer's state is the caller's
 };
 
 struct HandoffReport {
@@ -69,6 +72,11 @@ class HandoffSender {
   // this member's name, sent in each request.
   void Offer(std::string from_member, std::vector<HandoffOffer> offers,
              std::chrono::steady_clock::time_point deadline);
+  // Withdraws every offer queued before this call whose stream `owned_again` names (it is called
+  // on the handoff thread, so it must read nothing the caller changes afterwards): each is
+  // reported kWithdrawn, at once if no attempt is under way; an attempt under way ends first, and
+  // an offer it got adopted stays adopted (kAdopted).
+  void Withdraw(std::function<bool(const std::string& stream)> owned_again);
   // Ends the thread; offers still pending are reported kStopped. Idempotent.
   void Stop();
 

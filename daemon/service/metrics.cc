@@ -174,15 +174,21 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
                          "direction (sent, received) and outcome: ok (adopted), refused (for "
                          "good), corrupt (received state that did not decode), timeout (sent: "
                          "not adopted in time, the state file stays; received: held for a state "
-                         "that did not come, started afresh).",
+                         "that did not come, started afresh), withdrawn (sent: a later reload "
+                         "gave the stream back before it was adopted; it resumes here).",
                          r);
-  const char* outcomes[] = {"ok", "refused", "corrupt", "timeout"};  // HandoffOutcome's order
+  // HandoffOutcome's order
+  const char* outcomes[] = {"ok", "refused", "corrupt", "timeout", "withdrawn"};
   for (std::size_t i = 0; i < kHandoffOutcomeCount; ++i) {
-    // A sender refuses its own undecodable state before sending: no sent/corrupt series.
-    if (static_cast<HandoffOutcome>(i) != HandoffOutcome::kCorrupt) {
+    const auto outcome = static_cast<HandoffOutcome>(i);
+    // A sender refuses its own undecodable state before sending: no sent/corrupt series; only a
+    // sender withdraws: no received/withdrawn series.
+    if (outcome != HandoffOutcome::kCorrupt) {
       handoffs_[0][i] = &handoffs.Add({{"direction", "sent"}, {"outcome", outcomes[i]}});
     }
-    handoffs_[1][i] = &handoffs.Add({{"direction", "received"}, {"outcome", outcomes[i]}});
+    if (outcome != HandoffOutcome::kWithdrawn) {
+      handoffs_[1][i] = &handoffs.Add({{"direction", "received"}, {"outcome", outcomes[i]}});
+    }
   }
   refits_queued_ = &Build(BuildGauge(), "nuwatch_refits_queued",
                           "Refits waiting for a refit thread (at most one per stream).", r)

@@ -114,8 +114,10 @@ enum class HandoffDirection : uint8_t { kSent, kReceived };
 // received: stream_exists, dims_mismatch, stream_limit, not_owner). kCorrupt (received only): the
 // state did not decode. kTimeout: sent, no adoption within cluster.handoff_timeout_seconds (the
 // state file stays); received, a key held for its state that did not come (started afresh).
-enum class HandoffOutcome : uint8_t { kOk, kRefused, kCorrupt, kTimeout };
-inline constexpr std::size_t kHandoffOutcomeCount = 4;
+// kWithdrawn (sent only): a later reload gave the stream back before it was adopted; it resumes
+// here from the offered state.
+enum class HandoffOutcome : uint8_t { kOk, kRefused, kCorrupt, kTimeout, kWithdrawn };
+inline constexpr std::size_t kHandoffOutcomeCount = 5;
 
 enum class RefitResult : uint8_t { kOk, kNotConverged, kFailed, kDiscarded, kCoalesced };
 inline constexpr std::size_t kRefitResultCount = 5;
@@ -168,7 +170,8 @@ class DaemonMetrics {
   prometheus::Counter& streams_released() const { return *streams_released_; }
   prometheus::Gauge& cluster_members() const { return *cluster_members_; }
   prometheus::Gauge& publish_connections() const { return *publish_connections_; }
-  // Requires: not (kSent, kCorrupt), which is not a series (a sender's corrupt state is refused).
+  // Requires: not (kSent, kCorrupt) nor (kReceived, kWithdrawn), which are not series (a sender's
+  // corrupt state is refused; only a sender withdraws).
   prometheus::Counter& handoffs(HandoffDirection direction, HandoffOutcome outcome) const {
     return *handoffs_[static_cast<std::size_t>(direction)][static_cast<std::size_t>(outcome)];
   }

@@ -59,6 +59,12 @@ TEST(Cluster, AStateThatDoesNotComeInTimeLeavesTheStreamToStartAfresh) {
       "afresh");
 }
 
+TEST(Cluster, AChangeTakenBackBeforeTheHandoffResumesTheStreamsFromTheirState) {
+  RunScript(
+      "MembershipChanges.test_a_change_taken_back_before_the_handoff_resumes_the_streams_from_"
+      "their_state");
+}
+
 TEST(Cluster, AMemberTakenOutOfTheListHandsItsStreamsToTheOthers) {
   RunScript(
       "MembershipChanges.test_a_member_taken_out_of_the_list_hands_its_streams_to_the_others");

@@ -691,6 +691,77 @@ class MembershipChanges(ClusterTestCase):
         sys.stderr.write("handoff: %d held streams started afresh %.1f s after nuwatchd-1's "
                          "start (handoff_timeout_seconds = 2)\n" % (len(early), waited))
 
+    def test_a_change_taken_back_before_the_handoff_resumes_the_streams_from_their_state(self):
+        """PROTOCOL.md §13.4 "A change taken back": a member reloaded with a list that gives some
+        of its streams to a member that does not answer (it never started), then reloaded back
+        before any was adopted, withdraws its offers and resumes those streams from the offered
+        state, without waiting for handoff_timeout_seconds: the same model and window, no new
+        warm-up. Vectors sent right after the second reload are held until then and scored by
+        that model, each once, with the decisions of a lone daemon fed the same vectors."""
+        one, two = ["nuwatchd-0"], names(2)
+        template = "ipc://%s/{member}/state/nuwatchd.control" % self.workdir
+        # Started without handoff, which it takes with the new list (as in the scale-up above: a
+        # member started with it would hold every key it has no state file for).
+        self.start("nuwatchd-0", one)
+        self.start(None, [])
+        fleet = Fleet(seed=7)
+        warm = fleet.rows(WARMUP)
+        self.route(warm, one)
+        self.send_to_lone(warm)
+        versions = {s["stream"]: s["model_version"]
+                    for s in self.wait_for_models("nuwatchd-0", fleet.keys)["streams"]}
+        self.wait_for_models(None, fleet.keys)
+        moved = [k for k in fleet.keys if owner(k, two) == "nuwatchd-1"]
+        self.assertLess(abs(len(moved) - 150), 44, len(moved))  # Binomial(300, 1/2), 5 sd
+        probe = 1 if owner(probe_key("nuwatchd-0", one), two) == "nuwatchd-1" else 0
+
+        replica = self.replicas["nuwatchd-0"]
+        replica.control_endpoint = template
+        replica.handoff_timeout = WAIT  # far longer than the test waits for the streams to resume
+        replica.write_config(two)
+        self.assertTrue(self.peers["nuwatchd-0"].control({"command": "reload"})["ok"])
+        released = "reload: released %d streams" % (len(moved) + probe)
+        replica.wait_for_log(lambda text: released in text, released)
+        status = self.peers["nuwatchd-0"].control({"command": "status"})
+        self.assertFalse({s["stream"] for s in status["streams"]} & set(moved))
+        self.assertEqual(status["handoffs_pending"], len(moved) + probe)
+
+        # Taken back: nuwatchd-1 never answered, so nothing was adopted.
+        replica.write_config(one)
+        self.assertTrue(self.peers["nuwatchd-0"].control({"command": "reload"})["ok"])
+        scored = fleet.rows(3)
+        self.route(scored, one)
+        self.send_to_lone(scored)
+        self.wait_for_results({"nuwatchd-0": {k: WARMUP + 3 for k in fleet.keys}})
+        self.wait_for_results({None: {k: WARMUP + 3 for k in fleet.keys}})
+        try:  # anything published late (a vector scored twice) arrives meanwhile
+            self.peers["nuwatchd-0"].wait_for(lambda: False, "late results", timeout=0.5)
+        except AssertionError:
+            pass
+        for k in fleet.keys:
+            expected = self.peers[None].results(k)
+            results = self.peers["nuwatchd-0"].results(k)
+            self.assertEqual([r["t"] for r in results], [r["t"] for r in expected], k)
+            for r, e in zip(results[WARMUP:], expected[WARMUP:]):
+                self.assertEqual(r["state"], "scoring", (k, r["t"]))
+                self.assertEqual(r["model_version"], versions[k], (k, r["t"]))
+                self.assertEqual((r["decision"], r["anomaly"]), (e["decision"], e["anomaly"]),
+                                 (k, r["t"]))
+        status = self.peers["nuwatchd-0"].control({"command": "status"})
+        self.assertEqual(status["handoffs_pending"], 0)
+        counts = {s["stream"]: (s["vectors"], s["model_version"]) for s in status["streams"]}
+        for k in moved:
+            self.assertEqual(counts[k], (WARMUP + 3, versions[k]), k)
+        self.assertEqual(self.counter("nuwatchd-0", "nuwatch_stream_handoffs_total",
+                                      direction="sent", outcome="withdrawn"), len(moved) + probe)
+        for direction, outcome in (("sent", "ok"), ("sent", "timeout"), ("sent", "refused"),
+                                   ("received", "timeout")):
+            self.assertEqual(self.counter("nuwatchd-0", "nuwatch_stream_handoffs_total",
+                                          direction=direction, outcome=outcome), 0, outcome)
+        log = replica.log_text()
+        self.assertEqual(log.count("handoff: took back stream="), len(moved) + probe)
+        self.assertNotIn("starts afresh", log)
+
     def test_a_member_taken_out_of_the_list_hands_its_streams_to_the_others(self):
         """Issue 12 §3 for a scale-down, PROTOCOL.md §13.4 "A departure": reloaded with a list
         that no longer names it, a member hands every stream to its new owner and owns no key;
