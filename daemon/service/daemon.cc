@@ -126,7 +126,11 @@ namespace {
 using Clock = std::chrono::steady_clock;
 
 constexpr int kMessagesPerTurn = 256;  // then poll again, so control requests are not starved
-// Messages queued for one scoring thread before the socket thread waits for it.
+// Messages queued for one scoring thread before the socket thread waits for it. Their bytes are
+// bounded too, by ingest.scoring_queue_bytes (64 MiB by default), which keeps the daemon's own
+// queues at most scoring threads x (that + one message) however large the messages, so that the
+// ceiling of ingest memory is set by the configuration (README "Memory under a flood of maximal
+// messages"). Small messages meet the message bound first.
 constexpr int kShardQueueMessages = 1000;
 constexpr int kTrimIntervalSeconds = 5;
 // How often the socket thread reads the (un)subscriptions the XPUB socket hands up.
@@ -292,6 +296,9 @@ struct Shard {
   StreamRegistry streams;
   zmq::socket_t input;  // PULL, inproc: the socket thread's feed; two frames a message, or one
                         // empty frame (the stop marker) that ends the thread
+  // Bytes of the messages handed to `input` and not handled yet (ingest.scoring_queue_bytes): the
+  // socket thread adds before it sends, the shard's thread takes away after each message.
+  std::atomic<int64_t> queued_bytes{0};
   int wake_fd = -1;
   std::thread thread;
 
@@ -1239,6 +1246,9 @@ bool Daemon::Impl::ReceiveShardInput(Shard& shard) {
     // The socket thread hands over whole two-frame messages only.
     (void)shard.input.recv(shard.payload_message, zmq::recv_flags::none);
     HandleIngest(shard, shard.key_message.to_string_view(), shard.payload_message.to_string_view());
+    shard.queued_bytes.fetch_sub(
+        static_cast<int64_t>(shard.key_message.size() + shard.payload_message.size()),
+        std::memory_order_relaxed);
   }
   return true;
 }
@@ -1261,6 +1271,12 @@ void Daemon::Impl::Loop() {
     }
     if (stop_requested.load()) return;
     metrics.refits_queued().Set(static_cast<double>(pool.queued()));
+    {
+      int64_t queued = 0;
+      for (const auto& shard : shards)
+        queued += shard->queued_bytes.load(std::memory_order_relaxed);
+      metrics.ingest_queued_bytes().Set(static_cast<double>(queued));
+    }
     try {
       if (reload_requested.exchange(false)) Reload();
       if (taken_back_waiting.exchange(false)) InstallTakenBack();
@@ -1450,8 +1466,30 @@ void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
       Reject(RejectReason::kNotOwner, "another member of cluster.members owns the key", key);
       continue;
     }
-    zmq::socket_t& feed = feeds[ShardOf(key, feeds.size())];
-    (void)feed.send(key_message, zmq::send_flags::sndmore);
+    const std::size_t owner = ShardOf(key, feeds.size());
+    const auto bytes = static_cast<int64_t>(key_message.size() + payload_message.size());
+    std::atomic<int64_t>& queued = shards[owner]->queued_bytes;
+    // A message that would take the thread's queue past ingest.scoring_queue_bytes waits until
+    // it has room (one message always goes, however large), as a full queue of messages waits
+    // in send. With the default bound that takes messages of megabytes, each of which takes
+    // milliseconds to score: polling every 200 us costs nothing against that.
+    const int64_t bound = config.daemon.scoring_queue_bytes;
+    if (const int64_t now = queued.load(std::memory_order_relaxed);
+        now > 0 && now + bytes > bound) {
+      metrics.ingest_waits(IngestWait::kBytes).Increment();
+      while (true) {
+        std::this_thread::sleep_for(std::chrono::microseconds(200));
+        const int64_t left = queued.load(std::memory_order_relaxed);
+        if (left == 0 || left + bytes <= bound) break;
+      }
+    }
+    queued.fetch_add(bytes, std::memory_order_relaxed);
+    zmq::socket_t& feed = feeds[owner];
+    // The first frame decides: once it is queued, ZeroMQ takes the rest of the message.
+    if (!feed.send(key_message, zmq::send_flags::sndmore | zmq::send_flags::dontwait)) {
+      metrics.ingest_waits(IngestWait::kMessages).Increment();
+      (void)feed.send(key_message, zmq::send_flags::sndmore);
+    }
     (void)feed.send(payload_message, zmq::send_flags::none);
   }
 }

@@ -193,6 +193,25 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
   refits_queued_ = &Build(BuildGauge(), "nuwatch_refits_queued",
                           "Refits waiting for a refit thread (at most one per stream).", r)
                         .Add({});
+  ingest_queued_bytes_ =
+      &Build(BuildGauge(), "nuwatch_ingest_queued_bytes",
+             "Bytes of ingest messages handed to the scoring threads and not scored yet (at most "
+             "ingest.scoring_queue_bytes and one message per scoring thread; what waits beyond "
+             "that stays in ZeroMQ's queues, ingest.receive_high_water_mark messages per "
+             "connection).",
+             r)
+           .Add({});
+  auto& ingest_waits = Build(BuildCounter(), "nuwatch_ingest_waits_total",
+                             "Times the socket thread waited before handing an ingest message "
+                             "to its scoring thread, whose queue was full, by bound: messages "
+                             "(1000 queued) or bytes (ingest.scoring_queue_bytes queued). Ingest "
+                             "then backs up into ZeroMQ's queues and the senders; nothing is "
+                             "dropped.",
+                             r);
+  ingest_waits_[static_cast<std::size_t>(IngestWait::kMessages)] =
+      &ingest_waits.Add({{"bound", "messages"}});
+  ingest_waits_[static_cast<std::size_t>(IngestWait::kBytes)] =
+      &ingest_waits.Add({{"bound", "bytes"}});
   auto& results_dropped =
       Build(BuildCounter(), "nuwatch_results_dropped_total",
             "Results (one per vector processed) not handed to the result socket, by reason: "

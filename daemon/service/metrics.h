@@ -119,6 +119,11 @@ enum class HandoffDirection : uint8_t { kSent, kReceived };
 enum class HandoffOutcome : uint8_t { kOk, kRefused, kCorrupt, kTimeout, kWithdrawn };
 inline constexpr std::size_t kHandoffOutcomeCount = 5;
 
+// Why the socket thread waited before handing an ingest message to its scoring thread: that
+// thread's queue held kShardQueueMessages messages (daemon.cc), or ingest.scoring_queue_bytes.
+enum class IngestWait : uint8_t { kMessages, kBytes };
+inline constexpr std::size_t kIngestWaitCount = 2;
+
 enum class RefitResult : uint8_t { kOk, kNotConverged, kFailed, kDiscarded, kCoalesced };
 inline constexpr std::size_t kRefitResultCount = 5;
 // "ok", "not_converged", "failed", "discarded", "coalesced".
@@ -166,6 +171,10 @@ class DaemonMetrics {
   prometheus::Histogram& score_duration() const { return *score_duration_; }
   prometheus::Gauge& streams() const { return *streams_; }
   prometheus::Gauge& refits_queued() const { return *refits_queued_; }
+  prometheus::Gauge& ingest_queued_bytes() const { return *ingest_queued_bytes_; }
+  prometheus::Counter& ingest_waits(IngestWait bound) const {
+    return *ingest_waits_[static_cast<std::size_t>(bound)];
+  }
   prometheus::Counter& streams_expired() const { return *streams_expired_; }
   prometheus::Counter& streams_released() const { return *streams_released_; }
   prometheus::Gauge& cluster_members() const { return *cluster_members_; }
@@ -211,6 +220,8 @@ class DaemonMetrics {
   prometheus::Histogram* score_duration_;
   prometheus::Gauge* streams_;
   prometheus::Gauge* refits_queued_;
+  prometheus::Gauge* ingest_queued_bytes_;
+  std::array<prometheus::Counter*, kIngestWaitCount> ingest_waits_{};
   prometheus::Counter* streams_expired_;
   prometheus::Counter* streams_released_;
   prometheus::Gauge* cluster_members_;

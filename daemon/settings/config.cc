@@ -170,6 +170,16 @@ const Setting<S> kDaemonKeys[] = {
      .bounds = AtLeast(0),
      .bounds_note = " (0: no limit)",
      .reload = kRestart},
+    {.section = "ingest",
+     .name = "scoring_queue_bytes",
+     .member = &S::scoring_queue_bytes,
+     .doc = "Bytes of ingest messages handed to each scoring thread and not yet scored, at most "
+            "(one message always goes, however large); beyond it, ingest waits in ZeroMQ's "
+            "queues and then in the senders (nuwatch_ingest_waits_total{bound=\"bytes\"}).",
+     .unit = "bytes",
+     .bounds = {.min = 1, .max = int64_t{1} << 40},
+     .bounds_note = " (1 TiB)",
+     .reload = kNow},
     {.section = "publish",
      .name = "endpoint",
      .member = &S::publish_endpoint,

@@ -10,6 +10,8 @@ object: peak and settled RSS, the RSS before the flood, and the bytes sent.
 
   /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 1 --messages 300
   /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 10 --messages 30
+  /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 1 --messages 300 \
+      --receive-high-water-mark 8
 """
 import argparse
 import json
@@ -52,6 +54,8 @@ def main():
     parser.add_argument("--nuwatchd", required=True)
     parser.add_argument("--peers", type=int, default=1)
     parser.add_argument("--messages", type=int, default=300)
+    parser.add_argument("--receive-high-water-mark", type=int, default=None,
+                        help="ingest.receive_high_water_mark of the daemon (default: its own)")
     args = parser.parse_args()
 
     payload_rows = [[(i * 7 + j) % 13 * 0.1 for j in range(DIMS)] for i in range(VECTORS)]
@@ -61,6 +65,8 @@ def main():
             # A short window keeps the streams' own memory (126 x 500 x 8 bytes each) small
             # beside the queued messages, which are what this measures.
             f.write("[detector]\nwindow = 500\nwarmup = 400\nrefit_every = 0\n")
+            if args.receive_high_water_mark is not None:
+                f.write("[ingest]\nreceive_high_water_mark = %d\n" % args.receive_high_water_mark)
         ready = os.path.join(work, "ready.json")
         daemon = subprocess.Popen(
             [args.nuwatchd, "--config", config, "--ingest", "tcp://127.0.0.1:*",
@@ -126,6 +132,7 @@ def main():
             context.term()
             print(json.dumps({
                 "peers": args.peers, "messages_per_peer": args.messages,
+                "receive_high_water_mark": args.receive_high_water_mark,
                 "message_bytes": len(payloads[0]), "sent_bytes": sent_bytes,
                 "rss_before_bytes": before, "rss_peak_bytes": peak[0],
                 "rss_settled_bytes": settled, "seconds_to_count_every_vector": round(drained, 2),

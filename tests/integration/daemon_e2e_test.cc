@@ -59,6 +59,10 @@ TEST(DaemonEndToEnd, AnOversizedFrameDropsItsSenderWhileOthersKeepScoring) {
   RunScript("OversizedFrames");
 }
 
+TEST(DaemonEndToEnd, ABurstPastTheIngestByteBoundWaitsAndIsScoredWholeInOrder) {
+  RunScript("IngestQueueBytes");
+}
+
 TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("MetricsBasicAuth"); }
 
 TEST(DaemonEndToEnd, SigtermStopsADaemonWhosePublisherIsDown) { RunScript("AbsentPublisher"); }

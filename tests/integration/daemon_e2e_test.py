@@ -1646,6 +1646,65 @@ class OversizedFrames(DaemonTestCase):
         self.stop_daemon(daemon, peer)
 
 
+class IngestQueueBytes(DaemonTestCase):
+    """Issue 10 §3: the daemon's own ingest queues are bounded in bytes as well as in messages
+    (ingest.scoring_queue_bytes, config/REFERENCE.md). With the bound at 8 KiB, a burst of 300
+    batch messages of about 1.3 KB to one stream makes the socket thread wait for room again and
+    again (nuwatch_ingest_waits_total{bound="bytes"}) while the rest waits in ZeroMQ's queue;
+    nuwatch_ingest_queued_bytes never shows more than the bound and one message; and every vector
+    is still scored, once and in order, with nothing rejected."""
+
+    def test_a_burst_past_the_byte_bound_waits_and_is_scored_whole_in_order(self):
+        bound = 8192
+        daemon, peer = self.start_daemon(
+            refit_every=0, publish_batches=True,
+            extra_config="\n[ingest]\nscoring_queue_bytes = %d\n" % bound)
+        peer.subscribe_with_probe()
+        data = StreamData(seed=41)
+        feed_until_scoring(peer, "pump-a", data, ["f32_batch"])
+        before = len(peer.results("pump-a"))
+        messages = [[data.normal() for _ in range(MAX_VECTORS)] for _ in range(300)]
+        payloads = [codec.encode_binary([t for t, _ in m], [x for _, x in m], codec.DTYPE_F32)
+                    for m in messages]
+        largest = max(len(p) + len(b"pump-a") for p in payloads)
+        self.assertLess(largest * 4, bound + largest)  # several messages fill the bound
+        for payload in payloads:
+            peer.send("pump-a", payload)
+        expected = before + 300 * MAX_VECTORS
+        queued_samples = []
+        while len(peer.results("pump-a")) < expected:
+            queued_samples.append(series_value(peer.scrape(), "nuwatch_ingest_queued_bytes"))
+            try:
+                peer.wait_for(lambda: len(peer.results("pump-a")) >= expected,
+                              "the burst's results", timeout=0.05)
+            except AssertionError:
+                pass  # not all yet: sample the gauge again
+        results = peer.results("pump-a")
+        self.assertEqual([r["t"] for r in results], data.sent_times)
+        self.assertTrue(all(r["state"] == "scoring" for r in results[before:]))
+        metrics = peer.scrape()
+        self.assertGreater(series_value(metrics, "nuwatch_ingest_waits_total", bound="bytes"), 0)
+        self.assertIsNotNone(series_value(metrics, "nuwatch_ingest_waits_total",
+                                          bound="messages"))
+        rejected = [line for line in metrics.splitlines()
+                    if line.startswith("nuwatch_rejected_messages_total{")
+                    and float(line.rsplit(" ", 1)[1]) != 0]
+        self.assertEqual(rejected, [])
+        self.assertTrue(all(q is not None and q <= bound + largest for q in queued_samples),
+                        queued_samples)
+        sys.stderr.write("ingest byte bound %d: %d waits for room, queued bytes sampled %d times "
+                         "(largest %d)\n"
+                         % (bound, series_value(metrics, "nuwatch_ingest_waits_total",
+                                                bound="bytes"),
+                            len(queued_samples), max(queued_samples, default=0)))
+        # Scored: the gauge comes back to 0 (it is refreshed at least once a second).
+        deadline = time.monotonic() + WAIT_TIMEOUT
+        while series_value(peer.scrape(), "nuwatch_ingest_queued_bytes") != 0:
+            self.assertLess(time.monotonic(), deadline, "ingest_queued_bytes stays above 0")
+            time.sleep(0.1)  # polling the metrics endpoint, bounded by the deadline
+        self.stop_daemon(daemon, peer)
+
+
 class MetricsBasicAuth(DaemonTestCase):
     """Issue 10 §1: optional basic authentication on /metrics (RFC 7617), read with urllib's own
     HTTPBasicAuthHandler as the third-party client."""
