@@ -54,26 +54,36 @@ std::string Exchange(const std::string& endpoint, const std::string& request, do
   socket.set(zmq::sockopt::linger, 0);
   ApplyClientKeys(keys, socket);
   HandshakeWatch watch(context, socket, keys);
+  const auto deadline = std::chrono::steady_clock::now() +
+                        std::chrono::milliseconds(static_cast<int64_t>(timeout * 1000));
+  // Waits for `events` on the socket until the deadline, in slices, so that a refused handshake
+  // is reported at once rather than at the timeout.
+  const auto wait_for = [&](short events) {
+    zmq::pollitem_t item{socket.handle(), 0, events, 0};
+    while (zmq::poll(&item, 1, std::chrono::milliseconds(100)) == 0) {
+      if (const auto failure = watch.Failure()) throw CommandError(endpoint + ": " + *failure);
+      if (std::chrono::steady_clock::now() >= deadline) {
+        throw CommandError("no reply from " + endpoint + " within --timeout " + timeout_text +
+                           " (is nuwatchd running, and is this its control socket?)");
+      }
+    }
+  };
   try {
     socket.connect(endpoint);
-    // A REQ socket queues the request until a peer completes the handshake; a peer of another
-    // socket type (the ingest PULL, the PUB) never does, so the request never leaves and the
-    // reply never comes: the timeout below is what reports it.
-    socket.send(zmq::buffer(request), zmq::send_flags::none);
   } catch (const zmq::error_t& e) {
     throw CommandError("--connect: cannot use '" + endpoint + "': " + e.what());
   }
-  zmq::pollitem_t item{socket.handle(), 0, ZMQ_POLLIN, 0};
-  const auto deadline = std::chrono::steady_clock::now() +
-                        std::chrono::milliseconds(static_cast<int64_t>(timeout * 1000));
-  // In slices, so that a refused handshake is reported at once rather than at the timeout.
-  while (zmq::poll(&item, 1, std::chrono::milliseconds(100)) == 0) {
-    if (const auto failure = watch.Failure()) throw CommandError(endpoint + ": " + *failure);
-    if (std::chrono::steady_clock::now() >= deadline) {
-      throw CommandError("no reply from " + endpoint + " within --timeout " + timeout_text +
-                         " (is nuwatchd running, and is this its control socket?)");
-    }
+  // A REQ socket queues the request on the connection being made, so it can normally send at
+  // once. But a handshake that failed for good (ZeroMQ does not reconnect after a protocol error
+  // such as a CURVE/plain mismatch) leaves it no connection, and a blocking send would then wait
+  // for ever, past --timeout: so the send waits for the socket to be writable, bounded like the
+  // reply. A peer of another socket type (the ingest PULL, the PUB) takes the request but never
+  // answers: the wait for the reply is what reports it.
+  wait_for(ZMQ_POLLOUT);
+  if (!socket.send(zmq::buffer(request), zmq::send_flags::dontwait)) {
+    throw CommandError("--connect: '" + endpoint + "' did not take the request");
   }
+  wait_for(ZMQ_POLLIN);
   zmq::message_t reply;
   (void)socket.recv(reply, zmq::recv_flags::none);
   return reply.to_string();
