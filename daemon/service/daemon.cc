@@ -413,6 +413,12 @@ struct Daemon::Impl final : ControlCommands {
   // The hot path: the socket thread receives and hands over (ReceiveFrom), the stream's scoring
   // thread does the rest.
   void ReceiveFrom(zmq::socket_t& socket);
+  // Hands a message to scoring thread `owner` if its queue has room (ingest.scoring_queue_bytes,
+  // kShardQueueMessages); the messages are moved only when it had.
+  enum class Handed { kYes, kNoBytes, kNoPlace };
+  Handed HandTo(std::size_t owner, zmq::message_t& key, zmq::message_t& payload);
+  // Hands the parked message over if there is room now; whether none is parked any more.
+  bool HandParked();
   void HandleIngest(Shard& shard, std::string_view key, std::string_view payload);
   void ProcessVector(Shard& shard, Stream& stream, const PayloadView& payload, int index);
   // A message of several vectors: one batched product (Detector::ObserveBatch), the metrics
@@ -585,6 +591,16 @@ struct Daemon::Impl final : ControlCommands {
   zmq::message_t key_message;
   zmq::message_t payload_message;
   zmq::message_t extra_message;
+  // An ingest message taken from its socket whose scoring thread had no room for it yet: until it
+  // has gone, the socket thread reads no other ingest (the senders wait in ZeroMQ's queues, and
+  // each stream's messages keep their order) but goes on answering control requests, looking for
+  // room every millisecond.
+  struct Parked {
+    bool waiting = false;
+    std::size_t owner = 0;
+    zmq::message_t key;
+    zmq::message_t payload;
+  } parked;
   zmq::message_t subscription_message;  // DrainSubscriptions, under publish_mutex
   std::array<std::atomic<bool>, 256> rejection_logged{};
 
@@ -1259,8 +1275,12 @@ void Daemon::Impl::Loop() {
   items.push_back({control.handle(), 0, ZMQ_POLLIN, 0});
   for (auto& socket : ingest) items.push_back({socket.handle(), 0, ZMQ_POLLIN, 0});
   while (true) {
+    // While a message is parked, the ingest sockets are left unread and the loop looks for room
+    // every millisecond.
+    for (std::size_t i = 2; i < items.size(); ++i)
+      items[i].events = parked.waiting ? 0 : ZMQ_POLLIN;
     try {
-      zmq::poll(items, std::chrono::milliseconds(1000));
+      zmq::poll(items, std::chrono::milliseconds(parked.waiting ? 1 : 1000));
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
       throw;
@@ -1295,6 +1315,7 @@ void Daemon::Impl::Loop() {
         for (auto& shard : shards) shard->Post([this, s = shard.get()] { ExpireIdleStreams(*s); });
       }
       if (items[1].revents & ZMQ_POLLIN) HandleControl();
+      HandParked();  // the ingest sockets are read again at the next turn
       for (std::size_t i = 0; i < ingest.size(); ++i) {
         if (items[2 + i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
       }
@@ -1341,6 +1362,11 @@ void Daemon::Impl::DrainIngest() {
       Clock::now() + std::chrono::duration_cast<Clock::duration>(kDrainSeconds);
   while (!items.empty() && Clock::now() < until) {
     try {
+      if (!HandParked()) {
+        // The scoring threads go on until the drain is over: room comes.
+        std::this_thread::sleep_for(std::chrono::milliseconds(1));
+        continue;
+      }
       if (zmq::poll(items, kDrainQuiet) == 0) break;  // quiet: nothing more was queued
       for (std::size_t i = 0; i < ingest.size(); ++i) {
         if (items[i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
@@ -1354,6 +1380,8 @@ void Daemon::Impl::DrainIngest() {
       break;
     }
   }
+  // A message parked when the time ran out was taken from its socket: it is scored too.
+  while (!HandParked()) std::this_thread::sleep_for(std::chrono::milliseconds(1));
   if (Clock::now() >= until) {
     spdlog::warn("stopping: input still arriving after {} s; the rest is not taken",
                  kDrainSeconds.count());
@@ -1435,6 +1463,7 @@ void Daemon::Impl::Shutdown() {
 }
 
 void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
+  if (!HandParked()) return;
   for (int n = 0; n < kMessagesPerTurn; ++n) {
     if (!socket.recv(key_message, zmq::recv_flags::dontwait)) return;
     ++received_messages;
@@ -1455,9 +1484,10 @@ void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
       Reject(RejectReason::kWrongFrameCount, "the message does not have exactly two frames", {});
       continue;
     }
-    // To the thread that owns the stream: the frames move (inproc does not copy them). Waits
-    // while that thread's queue is full, so that nothing is dropped here; the ingest sockets'
-    // own queues, then the senders, take up the slack.
+    // To the thread that owns the stream: the frames move (inproc does not copy them). When
+    // that thread's queue is full the message is parked, so that nothing is dropped here, and
+    // no other ingest is read until it has gone; the ingest sockets' own queues, then the
+    // senders, take up the slack, while control requests are still answered.
     // A key another member owns never reaches a scoring thread, so it never creates a stream
     // (PROTOCOL.md §13.2). An invalid key goes on, to be rejected as bad_stream_key.
     const std::string_view key = key_message.to_string_view();
@@ -1467,31 +1497,44 @@ void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
       continue;
     }
     const std::size_t owner = ShardOf(key, feeds.size());
-    const auto bytes = static_cast<int64_t>(key_message.size() + payload_message.size());
-    std::atomic<int64_t>& queued = shards[owner]->queued_bytes;
-    // A message that would take the thread's queue past ingest.scoring_queue_bytes waits until
-    // it has room (one message always goes, however large), as a full queue of messages waits
-    // in send. With the default bound that takes messages of megabytes, each of which takes
-    // milliseconds to score: polling every 200 us costs nothing against that.
-    const int64_t bound = config.daemon.scoring_queue_bytes;
-    if (const int64_t now = queued.load(std::memory_order_relaxed);
-        now > 0 && now + bytes > bound) {
-      metrics.ingest_waits(IngestWait::kBytes).Increment();
-      while (true) {
-        std::this_thread::sleep_for(std::chrono::microseconds(200));
-        const int64_t left = queued.load(std::memory_order_relaxed);
-        if (left == 0 || left + bytes <= bound) break;
-      }
+    const Handed handed = HandTo(owner, key_message, payload_message);
+    if (handed != Handed::kYes) {
+      metrics.ingest_waits(handed == Handed::kNoBytes ? IngestWait::kBytes : IngestWait::kMessages)
+          .Increment();
+      parked.owner = owner;
+      parked.key.swap(key_message);
+      parked.payload.swap(payload_message);
+      parked.waiting = true;
+      return;
     }
-    queued.fetch_add(bytes, std::memory_order_relaxed);
-    zmq::socket_t& feed = feeds[owner];
-    // The first frame decides: once it is queued, ZeroMQ takes the rest of the message.
-    if (!feed.send(key_message, zmq::send_flags::sndmore | zmq::send_flags::dontwait)) {
-      metrics.ingest_waits(IngestWait::kMessages).Increment();
-      (void)feed.send(key_message, zmq::send_flags::sndmore);
-    }
-    (void)feed.send(payload_message, zmq::send_flags::none);
   }
+}
+
+Daemon::Impl::Handed Daemon::Impl::HandTo(std::size_t owner, zmq::message_t& key,
+                                          zmq::message_t& payload) {
+  const auto bytes = static_cast<int64_t>(key.size() + payload.size());
+  std::atomic<int64_t>& queued = shards[owner]->queued_bytes;
+  // One message always goes to an empty queue, however large.
+  if (const int64_t now = queued.load(std::memory_order_relaxed);
+      now > 0 && now + bytes > config.daemon.scoring_queue_bytes) {
+    return Handed::kNoBytes;
+  }
+  queued.fetch_add(bytes, std::memory_order_relaxed);
+  zmq::socket_t& feed = feeds[owner];
+  // The first frame decides: once it is queued, ZeroMQ takes the rest of the message.
+  if (!feed.send(key, zmq::send_flags::sndmore | zmq::send_flags::dontwait)) {
+    queued.fetch_sub(bytes, std::memory_order_relaxed);
+    return Handed::kNoPlace;
+  }
+  (void)feed.send(payload, zmq::send_flags::none);
+  return Handed::kYes;
+}
+
+bool Daemon::Impl::HandParked() {
+  if (!parked.waiting) return true;
+  if (HandTo(parked.owner, parked.key, parked.payload) != Handed::kYes) return false;
+  parked.waiting = false;
+  return true;
 }
 
 void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_view payload) {
