@@ -15,8 +15,6 @@ namespace nuwatch {
 
 namespace {
 
-[[noreturn]] void Fail(const std::string& message) { throw PreconditionError(message); }
-
 // ---------------------------------------------------------------------------------------------
 // RBF merging (Wang, Crammer, Vucetic 2012), derived here for our kernel convention.
 //
@@ -355,35 +353,35 @@ void ValidateCompressInput(const MatrixD& sv, const VectorD& coef, const Kernel&
   if (sv.rows() != coef.size()) {
     message << "support_vectors has " << sv.rows() << " rows but coefficients has " << coef.size()
             << " entries";
-    Fail(message.str());
+    throw PreconditionError(message.str());
   }
   if (sv.rows() < 1 || sv.cols() < 1) {
     message << "support_vectors is " << sv.rows() << " x " << sv.cols()
             << ", needs at least one row and one column";
-    Fail(message.str());
+    throw PreconditionError(message.str());
   }
   if (budget < 1) {
     message << "budget = " << budget << " must be >= 1";
-    Fail(message.str());
+    throw PreconditionError(message.str());
   }
   bool any_positive = false;
   for (Eigen::Index i = 0; i < coef.size(); ++i) {
     if (!std::isfinite(coef[i]) || coef[i] < 0) {
       message << "coefficient " << i << " = " << coef[i] << " must be finite and >= 0";
-      Fail(message.str());
+      throw PreconditionError(message.str());
     }
     any_positive = any_positive || coef[i] > 0;
   }
   if (!any_positive) {
     message << "all " << coef.size() << " coefficients are 0";
-    Fail(message.str());
+    throw PreconditionError(message.str());
   }
   for (Eigen::Index i = 0; i < sv.rows(); ++i) {
     for (Eigen::Index j = 0; j < sv.cols(); ++j) {
       if (!std::isfinite(sv(i, j))) {
         message << "support vector " << i << " column " << j << " = " << sv(i, j)
                 << " is not finite";
-        Fail(message.str());
+        throw PreconditionError(message.str());
       }
     }
   }
@@ -398,7 +396,7 @@ RbfMerge SolveRbfMerge(double a_m, double a_n, double scaled_distance_squared) {
     std::ostringstream message;
     message << "SolveRbfMerge: needs finite a_m, a_n >= 0 with a_m + a_n > 0 and D >= 0, got a_m = "
             << a_m << ", a_n = " << a_n << ", D = " << d;
-    Fail(message.str());
+    throw PreconditionError(message.str());
   }
   const MergePoint point = BestMergePoint(a_m, a_n, d);
   return {point.h, MergedCoefficient(a_m, a_n, d, point.h), point.degradation};
@@ -434,18 +432,18 @@ BudgetResult CompressToBudget(const MatrixD& sv, const VectorD& coef, const Kern
 
 double RecalibrateRho(const VectorD& window_kernel_sums, double nu) {
   const Eigen::Index l = window_kernel_sums.size();
-  if (l < 1) Fail("RecalibrateRho: no window kernel sums");
+  if (l < 1) throw PreconditionError("RecalibrateRho: no window kernel sums");
   if (!(nu > 0 && nu <= 1)) {
     std::ostringstream message;
     message << "RecalibrateRho: nu = " << nu << " is outside (0, 1]";
-    Fail(message.str());
+    throw PreconditionError(message.str());
   }
   for (Eigen::Index i = 0; i < l; ++i) {
     if (!std::isfinite(window_kernel_sums[i])) {
       std::ostringstream message;
       message << "RecalibrateRho: kernel sum " << i << " = " << window_kernel_sums[i]
               << " is not finite";
-      Fail(message.str());
+      throw PreconditionError(message.str());
     }
   }
   const double allowed = nu * static_cast<double>(l);
@@ -464,7 +462,7 @@ double WeightDistanceSquared(const MatrixD& sv_a, const VectorD& c_a, const Matr
     message << "WeightDistanceSquared: shapes do not match: a is " << sv_a.rows() << " x "
             << sv_a.cols() << " with " << c_a.size() << " coefficients, b is " << sv_b.rows()
             << " x " << sv_b.cols() << " with " << c_b.size() << " coefficients";
-    Fail(message.str());
+    throw PreconditionError(message.str());
   }
   // v' K v over the stacked rows [a; b] with v = [c_a; -c_b], one block of rows at a time so that
   // memory stays at block * (rows_a + rows_b).

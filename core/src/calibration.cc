@@ -11,7 +11,7 @@
 namespace nuwatch {
 namespace {
 
-std::string Num(double value) {
+std::string SixDigitText(double value) {
   char buffer[32];
   std::snprintf(buffer, sizeof buffer, "%.6g", value);
   return buffer;
@@ -89,7 +89,7 @@ double GeneralizedPareto::LogLikelihood(std::span<const double> y) const {
 
 GeneralizedPareto FitGeneralizedPareto(std::span<const double> y, double min_shape) {
   if (!(min_shape >= kMinShape && min_shape <= 0)) {
-    throw PreconditionError("FitGeneralizedPareto: min_shape = " + Num(min_shape) +
+    throw PreconditionError("FitGeneralizedPareto: min_shape = " + SixDigitText(min_shape) +
                             " must be in [-0.5, 0]");
   }
   if (y.size() < 3) {
@@ -101,7 +101,7 @@ GeneralizedPareto FitGeneralizedPareto(std::span<const double> y, double min_sha
   for (std::size_t i = 0; i < y.size(); ++i) {
     if (!std::isfinite(y[i]) || y[i] < 0) {
       throw PreconditionError("FitGeneralizedPareto: excess " + std::to_string(i) + " = " +
-                              Num(y[i]) + " is not finite and >= 0");
+                              SixDigitText(y[i]) + " is not finite and >= 0");
     }
     y_max = std::max(y_max, y[i]);
     y_min = std::min(y_min, y[i]);
@@ -109,7 +109,7 @@ GeneralizedPareto FitGeneralizedPareto(std::span<const double> y, double min_sha
   }
   if (y_max == y_min) {
     throw PreconditionError("FitGeneralizedPareto: all " + std::to_string(y.size()) +
-                            " excesses equal " + Num(y_max));
+                            " excesses equal " + SixDigitText(y_max));
   }
   const double y_mean = y_sum / static_cast<double>(y.size());
 
@@ -168,10 +168,10 @@ void CheckCalibrationOptions(const CalibrationOptions& o, std::string_view where
   };
   if (!(std::isfinite(o.false_alarm_rate) && o.false_alarm_rate >= 0 &&
         o.false_alarm_rate <= 0.5)) {
-    fail("false_alarm_rate = " + Num(o.false_alarm_rate) + " must be in [0, 0.5]");
+    fail("false_alarm_rate = " + SixDigitText(o.false_alarm_rate) + " must be in [0, 0.5]");
   }
   if (!(std::isfinite(o.false_incidents_per_day) && o.false_incidents_per_day >= 0)) {
-    fail("false_incidents_per_day = " + Num(o.false_incidents_per_day) +
+    fail("false_incidents_per_day = " + SixDigitText(o.false_incidents_per_day) +
          " must be finite and >= 0");
   }
   if (o.false_alarm_rate == 0 && o.false_incidents_per_day == 0) {
@@ -184,10 +184,10 @@ void CheckCalibrationOptions(const CalibrationOptions& o, std::string_view where
     fail("min_tail_exceedances = " + std::to_string(o.min_tail_exceedances) + " must be >= 3");
   }
   if (!(o.min_tail_shape >= kMinShape && o.min_tail_shape <= 0)) {
-    fail("min_tail_shape = " + Num(o.min_tail_shape) + " must be in [-0.5, 0]");
+    fail("min_tail_shape = " + SixDigitText(o.min_tail_shape) + " must be in [-0.5, 0]");
   }
   if (!(o.tail_fraction > 0 && o.tail_fraction <= 0.2)) {
-    fail("tail_fraction = " + Num(o.tail_fraction) + " must be in (0, 0.2]");
+    fail("tail_fraction = " + SixDigitText(o.tail_fraction) + " must be in (0, 0.2]");
   }
   if (o.reference_flags < 1) {
     fail("reference_flags = " + std::to_string(o.reference_flags) + " must be >= 1");
@@ -270,7 +270,8 @@ Calibration Calibration::FromParts(Parts parts) {
   }
   const double level = parts.summary.level;
   if (!(level > 0 && level <= 1)) {
-    throw PreconditionError("Calibration::FromParts: level = " + Num(level) + " is outside (0, 1]");
+    throw PreconditionError("Calibration::FromParts: level = " + SixDigitText(level) +
+                            " is outside (0, 1]");
   }
   if (parts.has_tail) {
     const auto& t = parts.tail;
@@ -278,10 +279,10 @@ Calibration Calibration::FromParts(Parts parts) {
           std::isfinite(parts.tail_threshold) && std::isfinite(parts.junction_score) &&
           parts.junction_score >= parts.tail_threshold && parts.junction_p > 0 &&
           parts.junction_p <= 1)) {
-      throw PreconditionError("Calibration::FromParts: inconsistent tail (shape " + Num(t.shape) +
-                              ", scale " + Num(t.scale) + ", threshold " +
-                              Num(parts.tail_threshold) + ", junction " +
-                              Num(parts.junction_score) + ")");
+      throw PreconditionError("Calibration::FromParts: inconsistent tail (shape " +
+                              SixDigitText(t.shape) + ", scale " + SixDigitText(t.scale) +
+                              ", threshold " + SixDigitText(parts.tail_threshold) + ", junction " +
+                              SixDigitText(parts.junction_score) + ")");
     }
   }
   parts.summary.scores = static_cast<int64_t>(s.size());
@@ -304,11 +305,11 @@ Calibration Calibration::Fit(std::span<const double> scores, std::span<const dou
   for (int64_t i = 0; i < n; ++i) {
     if (!std::isfinite(scores[i])) {
       throw PreconditionError("Calibration::Fit: score " + std::to_string(i) + " = " +
-                              Num(scores[i]) + " is not finite");
+                              SixDigitText(scores[i]) + " is not finite");
     }
     if (!times.empty() && !std::isfinite(times[i])) {
       throw PreconditionError("Calibration::Fit: time " + std::to_string(i) + " = " +
-                              Num(times[i]) + " is not finite");
+                              SixDigitText(times[i]) + " is not finite");
     }
   }
 

@@ -15,8 +15,6 @@ namespace {
 
 constexpr double kSecondsPerDay = 86400.0;
 
-[[noreturn]] void Fail(const std::string& message) { throw PreconditionError(message); }
-
 std::string Quote(const std::string& stream) { return "'" + stream + "'"; }
 
 std::string Number(double value) {
@@ -63,12 +61,14 @@ double Cardinality(CardinalityFactor factor, int64_t overlapped) {
 void CheckRanges(const std::vector<SampleRange>& ranges, const char* which) {
   for (std::size_t k = 0; k < ranges.size(); ++k) {
     if (ranges[k].first > ranges[k].last) {
-      Fail(std::string("ScoreRanges: ") + which + " range " + std::to_string(k) + " has first " +
-           std::to_string(ranges[k].first) + " > last " + std::to_string(ranges[k].last));
+      throw PreconditionError(std::string("ScoreRanges: ") + which + " range " + std::to_string(k) +
+                              " has first " + std::to_string(ranges[k].first) + " > last " +
+                              std::to_string(ranges[k].last));
     }
     if (k > 0 && ranges[k].first <= ranges[k - 1].last) {
-      Fail(std::string("ScoreRanges: ") + which + " ranges " + std::to_string(k - 1) + " and " +
-           std::to_string(k) + " are not sorted and disjoint");
+      throw PreconditionError(std::string("ScoreRanges: ") + which + " ranges " +
+                              std::to_string(k - 1) + " and " + std::to_string(k) +
+                              " are not sorted and disjoint");
     }
   }
 }
@@ -106,11 +106,12 @@ std::vector<OverlapReward> OverlapRewards(const std::vector<SampleRange>& scored
 
 void CheckOptions(const EvaluationOptions& options, const char* function) {
   if (!(options.alpha >= 0 && options.alpha <= 1)) {
-    Fail(std::string(function) + ": alpha = " + Number(options.alpha) + " is outside [0, 1]");
+    throw PreconditionError(std::string(function) + ": alpha = " + Number(options.alpha) +
+                            " is outside [0, 1]");
   }
   if (!std::isfinite(options.grace_seconds) || options.grace_seconds < 0) {
-    Fail(std::string(function) + ": grace_seconds = " + Number(options.grace_seconds) +
-         " is not a finite number >= 0");
+    throw PreconditionError(std::string(function) + ": grace_seconds = " +
+                            Number(options.grace_seconds) + " is not a finite number >= 0");
   }
 }
 
@@ -190,27 +191,30 @@ void CheckStream(const StreamAlarms& alarms) {
   const std::string name = Quote(alarms.stream);
   for (std::size_t k = 0; k < alarms.times.size(); ++k) {
     if (!std::isfinite(alarms.times[k])) {
-      Fail("Evaluate: stream " + name + ": times[" + std::to_string(k) + "] is not finite");
+      throw PreconditionError("Evaluate: stream " + name + ": times[" + std::to_string(k) +
+                              "] is not finite");
     }
     if (k > 0 && alarms.times[k] < alarms.times[k - 1]) {
-      Fail("Evaluate: stream " + name + ": times[" + std::to_string(k) +
-           "] = " + Number(alarms.times[k]) + " is before times[" + std::to_string(k - 1) +
-           "] = " + Number(alarms.times[k - 1]));
+      throw PreconditionError("Evaluate: stream " + name + ": times[" + std::to_string(k) +
+                              "] = " + Number(alarms.times[k]) + " is before times[" +
+                              std::to_string(k - 1) + "] = " + Number(alarms.times[k - 1]));
     }
   }
   if (alarms.events_given) {
     if (!alarms.flagged.empty()) {
-      Fail("Evaluate: stream " + name + ": both flags and events given");
+      throw PreconditionError("Evaluate: stream " + name + ": both flags and events given");
     }
   } else if (alarms.flagged.size() != alarms.times.size()) {
-    Fail("Evaluate: stream " + name + ": " + std::to_string(alarms.flagged.size()) + " flags for " +
-         std::to_string(alarms.times.size()) + " samples");
+    throw PreconditionError("Evaluate: stream " + name + ": " +
+                            std::to_string(alarms.flagged.size()) + " flags for " +
+                            std::to_string(alarms.times.size()) + " samples");
   }
   for (const TimeInterval& event : alarms.events) {
     if (!std::isfinite(event.start_seconds) || !std::isfinite(event.end_seconds) ||
         event.start_seconds > event.end_seconds) {
-      Fail("Evaluate: stream " + name + ": alarm event [" + Number(event.start_seconds) + ", " +
-           Number(event.end_seconds) + "] is not a finite interval with start <= end");
+      throw PreconditionError("Evaluate: stream " + name + ": alarm event [" +
+                              Number(event.start_seconds) + ", " + Number(event.end_seconds) +
+                              "] is not a finite interval with start <= end");
     }
   }
 }
@@ -460,16 +464,16 @@ EvaluationReport Evaluate(const std::vector<StreamAlarms>& alarms,
   for (const StreamAlarms& stream : alarms) {
     CheckStream(stream);
     if (!by_stream.emplace(stream.stream, &stream).second) {
-      Fail("Evaluate: stream " + Quote(stream.stream) + " appears twice");
+      throw PreconditionError("Evaluate: stream " + Quote(stream.stream) + " appears twice");
     }
   }
   std::map<std::string, std::vector<Incident>> incidents_by_stream;
   for (const Incident& incident : incidents) {
     if (!std::isfinite(incident.start_seconds) || !std::isfinite(incident.end_seconds) ||
         incident.start_seconds > incident.end_seconds) {
-      Fail("Evaluate: incident of stream " + Quote(incident.stream) + " [" +
-           Number(incident.start_seconds) + ", " + Number(incident.end_seconds) +
-           "] is not a finite interval with start <= end");
+      throw PreconditionError("Evaluate: incident of stream " + Quote(incident.stream) + " [" +
+                              Number(incident.start_seconds) + ", " + Number(incident.end_seconds) +
+                              "] is not a finite interval with start <= end");
     }
     incidents_by_stream[incident.stream].push_back(incident);
     by_stream.emplace(incident.stream, nullptr);  // a stream with incidents only

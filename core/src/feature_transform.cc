@@ -3,8 +3,9 @@
 #include <algorithm>
 #include <climits>
 #include <cmath>
-#include <cstdio>
 #include <string>
+
+#include "number_text.h"
 
 namespace nuwatch {
 namespace {
@@ -24,12 +25,6 @@ constexpr int kLargest = 3;  // largest full-window sum of squares since the las
 // computed exactly has lost that many bits to cancellation: it is recomputed. 2^-20 keeps the
 // relative error of the result within about 10^6 rounding errors of the largest sum.
 constexpr double kCancellationLimit = 0x1p-20;
-
-std::string Num(double value) {
-  char buffer[32];
-  std::snprintf(buffer, sizeof buffer, "%.17g", value);
-  return buffer;
-}
 
 bool AllFinite(std::span<const double> values) {
   for (double v : values) {
@@ -101,7 +96,8 @@ void CheckFeatureTransformOptions(const FeatureTransformOptions& options, std::s
     }
   }
   if (!std::isfinite(options.max_gap_seconds) || options.max_gap_seconds < 0) {
-    fail("max_gap_seconds = " + Num(options.max_gap_seconds) + " must be finite and >= 0");
+    fail("max_gap_seconds = " + RoundTripText(options.max_gap_seconds) +
+         " must be finite and >= 0");
   }
 }
 
@@ -193,13 +189,14 @@ bool FeatureTransform::Push(double time, std::span<const double> x, std::span<do
                             " values, output_dims = " + std::to_string(output_dims_));
   }
   if (!std::isfinite(time)) {
-    throw PreconditionError("FeatureTransform::Push: time = " + Num(time) + " is not finite");
+    throw PreconditionError("FeatureTransform::Push: time = " + RoundTripText(time) +
+                            " is not finite");
   }
   for (std::size_t j = 0; j < x.size(); ++j) {
     if (!std::isfinite(x[j])) {
       // Checked before anything changes: one NaN would otherwise poison the running statistics.
       throw PreconditionError("FeatureTransform::Push: value " + std::to_string(j) + " = " +
-                              Num(x[j]) + " is not finite");
+                              RoundTripText(x[j]) + " is not finite");
     }
   }
   last_push_reset_ = HistoryReset::kNone;
@@ -446,18 +443,18 @@ void FeatureTransform::ImportState(const FeatureTransformState& state) {
     for (int j = 0; j < base_dims_; ++j) {
       if (!std::isfinite(state.history(i, j))) {
         throw PreconditionError(where + "history(" + std::to_string(i) + ", " + std::to_string(j) +
-                                ") = " + Num(state.history(i, j)) + " is not finite");
+                                ") = " + RoundTripText(state.history(i, j)) + " is not finite");
       }
     }
     const double time = state.times[static_cast<std::size_t>(i)];
     if (!std::isfinite(time)) {
-      throw PreconditionError(where + "times[" + std::to_string(i) + "] = " + Num(time) +
+      throw PreconditionError(where + "times[" + std::to_string(i) + "] = " + RoundTripText(time) +
                               " is not finite");
     }
     if (i > 0 && time < state.times[static_cast<std::size_t>(i - 1)]) {
-      throw PreconditionError(where + "times[" + std::to_string(i) + "] = " + Num(time) +
+      throw PreconditionError(where + "times[" + std::to_string(i) + "] = " + RoundTripText(time) +
                               " is earlier than times[" + std::to_string(i - 1) +
-                              "] = " + Num(state.times[static_cast<std::size_t>(i - 1)]));
+                              "] = " + RoundTripText(state.times[static_cast<std::size_t>(i - 1)]));
     }
   }
   if (state.running_outputs < 0) {
@@ -495,9 +492,10 @@ void FeatureTransform::ImportState(const FeatureTransformState& state) {
         const double squares = block[kSquares * base_dims_ + j];
         const double largest = block[kLargest * base_dims_ + j];
         if (!(squares >= 0 && squares <= largest)) {
-          throw PreconditionError(where + "running sum of squares " + Num(squares) + " (window " +
-                                  std::to_string(options_.rolling_windows[k]) + ", feature " +
-                                  std::to_string(j) + ") is outside [0, " + Num(largest) + "]");
+          throw PreconditionError(where + "running sum of squares " + RoundTripText(squares) +
+                                  " (window " + std::to_string(options_.rolling_windows[k]) +
+                                  ", feature " + std::to_string(j) + ") is outside [0, " +
+                                  RoundTripText(largest) + "]");
         }
       }
     }

@@ -2,22 +2,12 @@
 
 #include <algorithm>
 #include <cmath>
-#include <cstdio>
 #include <string>
 
+#include "number_text.h"
 #include "nuwatch/types.h"
 
 namespace nuwatch {
-namespace {
-
-std::string Num(double value) {
-  char buffer[32];
-  std::snprintf(buffer, sizeof buffer, "%.17g", value);
-  return buffer;
-}
-
-}  // namespace
-
 IncidentTracker::IncidentTracker(const IncidentTrackerOptions& options) : options_(options) {
   if (options.open_window < 1) {
     throw PreconditionError(
@@ -58,10 +48,11 @@ void IncidentTracker::ClearRecent() {
 
 IncidentTransition IncidentTracker::Update(double time, bool flagged, double decision) {
   if (!std::isfinite(time)) {
-    throw PreconditionError("IncidentTracker::Update: time = " + Num(time) + " is not finite");
+    throw PreconditionError("IncidentTracker::Update: time = " + RoundTripText(time) +
+                            " is not finite");
   }
   if (!std::isfinite(decision)) {
-    throw PreconditionError("IncidentTracker::Update: decision = " + Num(decision) +
+    throw PreconditionError("IncidentTracker::Update: decision = " + RoundTripText(decision) +
                             " is not finite");
   }
   PushRecent(time, flagged, decision);
@@ -152,8 +143,8 @@ void IncidentTracker::ImportState(const IncidentTrackerState& state) {
   for (std::size_t i = 0; i < n; ++i) {
     if (!std::isfinite(state.recent_times[i]) || !std::isfinite(state.recent_decisions[i])) {
       throw PreconditionError(std::string(kCaller) + "recent entry " + std::to_string(i) +
-                              ": time = " + Num(state.recent_times[i]) +
-                              ", decision = " + Num(state.recent_decisions[i]) + " must be finite");
+                              ": time = " + RoundTripText(state.recent_times[i]) + ", decision = " +
+                              RoundTripText(state.recent_decisions[i]) + " must be finite");
     }
   }
   if (state.open_incident) {
@@ -165,12 +156,13 @@ void IncidentTracker::ImportState(const IncidentTrackerState& state) {
     }
     if (!std::isfinite(incident.start_time) || !std::isfinite(incident.end_time) ||
         !std::isfinite(incident.peak_decision) || incident.flagged_vectors < 1) {
-      throw PreconditionError(
-          std::string(kCaller) + "open incident " + std::to_string(incident.id) +
-          ": start_time = " + Num(incident.start_time) + ", end_time = " + Num(incident.end_time) +
-          ", peak_decision = " + Num(incident.peak_decision) +
-          ", flagged_vectors = " + std::to_string(incident.flagged_vectors) +
-          " (times and peak must be finite, at least one flagged vector)");
+      throw PreconditionError(std::string(kCaller) + "open incident " +
+                              std::to_string(incident.id) +
+                              ": start_time = " + RoundTripText(incident.start_time) +
+                              ", end_time = " + RoundTripText(incident.end_time) +
+                              ", peak_decision = " + RoundTripText(incident.peak_decision) +
+                              ", flagged_vectors = " + std::to_string(incident.flagged_vectors) +
+                              " (times and peak must be finite, at least one flagged vector)");
     }
     if (state.clean_run < 0) {
       throw PreconditionError(std::string(kCaller) +

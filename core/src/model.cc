@@ -15,7 +15,7 @@ namespace {
 // kernel values on the stack and allocates nothing.
 constexpr int kBlock = 256;
 // Largest dimension scored without touching the heap.
-constexpr int kMaxStackDims = 1024;
+constexpr int kMaxDimsScoredOnStack = 1024;
 
 using BlockVectorF = Eigen::Matrix<float, Eigen::Dynamic, 1, Eigen::ColMajor, kBlock, 1>;
 
@@ -71,10 +71,10 @@ Score Model::Evaluate(std::span<const double> x) const {
     throw PreconditionError("Model::Evaluate: vector has " + std::to_string(x.size()) +
                             " values, the model " + std::to_string(d));
   }
-  float stack_buffer[kMaxStackDims];
+  float stack_buffer[kMaxDimsScoredOnStack];
   std::vector<float> heap_buffer;
   float* z = stack_buffer;
-  if (d > kMaxStackDims) {
+  if (d > kMaxDimsScoredOnStack) {
     heap_buffer.resize(d);
     z = heap_buffer.data();
   }

@@ -2,19 +2,13 @@
 
 #include <algorithm>
 #include <cmath>
-#include <cstdio>
 #include <string>
 
+#include "number_text.h"
 #include "nuwatch/types.h"
 
 namespace nuwatch {
 namespace {
-
-std::string Num(double value) {
-  char buffer[32];
-  std::snprintf(buffer, sizeof buffer, "%.17g", value);
-  return buffer;
-}
 
 bool WatchesUp(DriftDirection d) { return d == DriftDirection::kUp || d == DriftDirection::kBoth; }
 bool WatchesDown(DriftDirection d) {
@@ -25,11 +19,11 @@ bool WatchesDown(DriftDirection d) {
 
 PageHinkley::PageHinkley(const PageHinkleyOptions& options) : options_(options) {
   if (!std::isfinite(options.delta) || options.delta < 0) {
-    throw PreconditionError("PageHinkley: delta = " + Num(options.delta) +
+    throw PreconditionError("PageHinkley: delta = " + RoundTripText(options.delta) +
                             " must be finite and >= 0");
   }
   if (!std::isfinite(options.lambda) || !(options.lambda > 0)) {
-    throw PreconditionError("PageHinkley: lambda = " + Num(options.lambda) +
+    throw PreconditionError("PageHinkley: lambda = " + RoundTripText(options.lambda) +
                             " must be finite and > 0");
   }
   if (options.min_samples < 0) {
@@ -45,7 +39,7 @@ PageHinkley::PageHinkley(const PageHinkleyOptions& options) : options_(options) 
 
 bool PageHinkley::Update(double x) {
   if (!std::isfinite(x)) {
-    throw PreconditionError("PageHinkley::Update: x = " + Num(x) + " is not finite");
+    throw PreconditionError("PageHinkley::Update: x = " + RoundTripText(x) + " is not finite");
   }
   PageHinkleyState& s = state_;
   ++s.count;
@@ -87,16 +81,16 @@ void PageHinkley::Restore(const PageHinkleyState& state) {
   const double values[] = {state.mean, state.up_sum, state.up_min, state.down_sum, state.down_max};
   for (double v : values) {
     if (!std::isfinite(v)) {
-      throw PreconditionError("PageHinkley::Restore: non-finite statistic " + Num(v));
+      throw PreconditionError("PageHinkley::Restore: non-finite statistic " + RoundTripText(v));
     }
   }
   if (state.up_min > state.up_sum) {
-    throw PreconditionError("PageHinkley::Restore: up_min = " + Num(state.up_min) +
-                            " exceeds up_sum = " + Num(state.up_sum));
+    throw PreconditionError("PageHinkley::Restore: up_min = " + RoundTripText(state.up_min) +
+                            " exceeds up_sum = " + RoundTripText(state.up_sum));
   }
   if (state.down_max < state.down_sum) {
-    throw PreconditionError("PageHinkley::Restore: down_max = " + Num(state.down_max) +
-                            " is below down_sum = " + Num(state.down_sum));
+    throw PreconditionError("PageHinkley::Restore: down_max = " + RoundTripText(state.down_max) +
+                            " is below down_sum = " + RoundTripText(state.down_sum));
   }
   state_ = state;
 }

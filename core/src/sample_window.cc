@@ -2,21 +2,13 @@
 
 #include <algorithm>
 #include <cmath>
-#include <cstdio>
 #include <numeric>
 #include <string>
 
+#include "number_text.h"
+
 namespace nuwatch {
 namespace {
-
-std::string Num(double value) {
-  char buffer[32];
-  std::snprintf(buffer, sizeof buffer, "%.17g", value);
-  return buffer;
-}
-
-std::string Num(int64_t value) { return std::to_string(value); }
-std::string Num(uint64_t value) { return std::to_string(value); }
 
 // The buffer's first size: small enough that a stream with a handful of vectors costs little,
 // large enough that doubling from it reaches a window of 2000 in 7 steps.
@@ -27,13 +19,14 @@ constexpr int64_t kFirstSlots = 16;
 SampleWindow::SampleWindow(int64_t capacity, int dims, double max_age_seconds)
     : capacity_(capacity), dims_(dims), max_age_seconds_(max_age_seconds) {
   if (capacity < 1) {
-    throw PreconditionError("SampleWindow: capacity = " + Num(capacity) + " must be >= 1");
+    throw PreconditionError("SampleWindow: capacity = " + RoundTripText(capacity) +
+                            " must be >= 1");
   }
   if (dims < 1) {
     throw PreconditionError("SampleWindow: dims = " + std::to_string(dims) + " must be >= 1");
   }
   if (!std::isfinite(max_age_seconds) || max_age_seconds < 0) {
-    throw PreconditionError("SampleWindow: max_age_seconds = " + Num(max_age_seconds) +
+    throw PreconditionError("SampleWindow: max_age_seconds = " + RoundTripText(max_age_seconds) +
                             " must be finite and >= 0");
   }
 }
@@ -75,8 +68,8 @@ void SampleWindow::GrowTo(int64_t slots) {
 
 void SampleWindow::CheckIndex(int64_t i, const char* caller) const {
   if (i < 0 || i >= size_) {
-    throw PreconditionError(std::string(caller) + ": index " + Num(i) + " outside [0, " +
-                            Num(size_) + ")");
+    throw PreconditionError(std::string(caller) + ": index " + RoundTripText(i) + " outside [0, " +
+                            RoundTripText(size_) + ")");
   }
 }
 
@@ -86,12 +79,12 @@ uint64_t SampleWindow::Push(double time, std::span<const double> x) {
                             " values, the window has dims = " + std::to_string(dims_));
   }
   if (!std::isfinite(time)) {
-    throw PreconditionError("SampleWindow::Push: time = " + Num(time) + " is not finite");
+    throw PreconditionError("SampleWindow::Push: time = " + RoundTripText(time) + " is not finite");
   }
   for (std::size_t j = 0; j < x.size(); ++j) {
     if (!std::isfinite(x[j])) {
-      throw PreconditionError("SampleWindow::Push: value " + std::to_string(j) + " = " + Num(x[j]) +
-                              " is not finite");
+      throw PreconditionError("SampleWindow::Push: value " + std::to_string(j) + " = " +
+                              RoundTripText(x[j]) + " is not finite");
     }
   }
   int64_t slot;
@@ -112,7 +105,8 @@ uint64_t SampleWindow::Push(double time, std::span<const double> x) {
 
 void SampleWindow::ExpireOlderThan(double now) {
   if (!std::isfinite(now)) {
-    throw PreconditionError("SampleWindow::ExpireOlderThan: now = " + Num(now) + " is not finite");
+    throw PreconditionError("SampleWindow::ExpireOlderThan: now = " + RoundTripText(now) +
+                            " is not finite");
   }
   if (max_age_seconds_ == 0) return;
   const double cutoff = now - max_age_seconds_;
@@ -167,36 +161,38 @@ void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
                            std::span<const double> times, uint64_t next_id) {
   const int64_t n = rows.rows();
   if (rows.cols() != dims_ && n > 0) {
-    throw PreconditionError("SampleWindow::Restore: rows have " + Num(int64_t{rows.cols()}) +
+    throw PreconditionError("SampleWindow::Restore: rows have " +
+                            RoundTripText(int64_t{rows.cols()}) +
                             " columns, the window has dims = " + std::to_string(dims_));
   }
   if (ids.size() != static_cast<std::size_t>(n) || times.size() != static_cast<std::size_t>(n)) {
-    throw PreconditionError("SampleWindow::Restore: " + Num(n) + " rows but " +
+    throw PreconditionError("SampleWindow::Restore: " + RoundTripText(n) + " rows but " +
                             std::to_string(ids.size()) + " ids and " +
                             std::to_string(times.size()) + " times");
   }
   for (int64_t r = 0; r < n; ++r) {
     if (ids[r] < 1 || (r > 0 && ids[r] <= ids[r - 1])) {
-      throw PreconditionError("SampleWindow::Restore: row " + Num(r) + ": id " + Num(ids[r]) +
-                              (r > 0 ? " after id " + Num(ids[r - 1]) : std::string()) +
+      throw PreconditionError("SampleWindow::Restore: row " + RoundTripText(r) + ": id " +
+                              RoundTripText(ids[r]) +
+                              (r > 0 ? " after id " + RoundTripText(ids[r - 1]) : std::string()) +
                               "; ids must be >= 1 and strictly increasing");
     }
     if (!std::isfinite(times[r])) {
-      throw PreconditionError("SampleWindow::Restore: row " + Num(r) + ": time = " + Num(times[r]) +
-                              " is not finite");
+      throw PreconditionError("SampleWindow::Restore: row " + RoundTripText(r) +
+                              ": time = " + RoundTripText(times[r]) + " is not finite");
     }
     for (int j = 0; j < dims_; ++j) {
       if (!std::isfinite(rows(r, j))) {
-        throw PreconditionError("SampleWindow::Restore: row " + Num(r) + ", column " +
-                                std::to_string(j) + ": value " + Num(rows(r, j)) +
+        throw PreconditionError("SampleWindow::Restore: row " + RoundTripText(r) + ", column " +
+                                std::to_string(j) + ": value " + RoundTripText(rows(r, j)) +
                                 " is not finite");
       }
     }
   }
   if (next_id < 1 || (n > 0 && next_id <= ids[n - 1])) {
-    throw PreconditionError("SampleWindow::Restore: next_id = " + Num(next_id) +
+    throw PreconditionError("SampleWindow::Restore: next_id = " + RoundTripText(next_id) +
                             " must be >= 1 and greater than the last id" +
-                            (n > 0 ? " (" + Num(ids[n - 1]) + ")" : std::string()));
+                            (n > 0 ? " (" + RoundTripText(ids[n - 1]) + ")" : std::string()));
   }
   const int64_t skip = std::max<int64_t>(0, n - capacity_);
   size_ = 0;  // the rows are replaced: GrowTo need not keep any
@@ -222,31 +218,31 @@ VectorD MapWarmStart(const std::vector<uint64_t>& old_ids, const VectorD& old_al
   const std::size_t l_new = new_ids.size();
   if (static_cast<std::size_t>(old_alpha.size()) != l_old) {
     throw PreconditionError("MapWarmStart: " + std::to_string(l_old) + " old ids but " +
-                            Num(int64_t{old_alpha.size()}) + " old alphas");
+                            RoundTripText(int64_t{old_alpha.size()}) + " old alphas");
   }
   if (l_new == 0) throw PreconditionError("MapWarmStart: the new window is empty");
   if (!(nu > 0 && nu <= 1)) {
-    throw PreconditionError("MapWarmStart: nu = " + Num(nu) + " is outside (0, 1]");
+    throw PreconditionError("MapWarmStart: nu = " + RoundTripText(nu) + " is outside (0, 1]");
   }
   if (new_gradient != nullptr && static_cast<std::size_t>(new_gradient->size()) != l_new) {
-    throw PreconditionError("MapWarmStart: " + Num(int64_t{new_gradient->size()}) +
+    throw PreconditionError("MapWarmStart: " + RoundTripText(int64_t{new_gradient->size()}) +
                             " gradient values for " + std::to_string(l_new) + " new samples");
   }
   for (std::size_t k = 0; k < l_old; ++k) {
     if (k > 0 && old_ids[k] <= old_ids[k - 1]) {
-      throw PreconditionError("MapWarmStart: old id " + Num(old_ids[k]) + " at " +
-                              std::to_string(k) + " follows " + Num(old_ids[k - 1]) +
+      throw PreconditionError("MapWarmStart: old id " + RoundTripText(old_ids[k]) + " at " +
+                              std::to_string(k) + " follows " + RoundTripText(old_ids[k - 1]) +
                               "; ids must be strictly increasing");
     }
     if (!std::isfinite(old_alpha[k]) || old_alpha[k] < 0) {
       throw PreconditionError("MapWarmStart: old alpha " + std::to_string(k) + " = " +
-                              Num(old_alpha[k]) + " must be finite and >= 0");
+                              RoundTripText(old_alpha[k]) + " must be finite and >= 0");
     }
   }
   for (std::size_t j = 1; j < l_new; ++j) {
     if (new_ids[j] <= new_ids[j - 1]) {
-      throw PreconditionError("MapWarmStart: new id " + Num(new_ids[j]) + " at " +
-                              std::to_string(j) + " follows " + Num(new_ids[j - 1]) +
+      throw PreconditionError("MapWarmStart: new id " + RoundTripText(new_ids[j]) + " at " +
+                              std::to_string(j) + " follows " + RoundTripText(new_ids[j - 1]) +
                               "; ids must be strictly increasing");
     }
   }
@@ -254,7 +250,7 @@ VectorD MapWarmStart(const std::vector<uint64_t>& old_ids, const VectorD& old_al
     for (std::size_t j = 0; j < l_new; ++j) {
       if (!std::isfinite((*new_gradient)[j])) {
         throw PreconditionError("MapWarmStart: gradient " + std::to_string(j) + " = " +
-                                Num((*new_gradient)[j]) + " is not finite");
+                                RoundTripText((*new_gradient)[j]) + " is not finite");
       }
     }
   }
@@ -328,14 +324,15 @@ VectorD MapWarmStart(const std::vector<uint64_t>& old_ids, const VectorD& old_al
 
   const double total = alpha.sum();
   if (std::abs(total - 1.0) > 1e-12) {
-    throw PreconditionError("MapWarmStart: the mapped alpha sums to " + Num(total) +
-                            " (nu = " + Num(nu) + ", l_new = " + std::to_string(l_new) +
-                            ", bound = " + Num(bound) + ")");
+    throw PreconditionError("MapWarmStart: the mapped alpha sums to " + RoundTripText(total) +
+                            " (nu = " + RoundTripText(nu) + ", l_new = " + std::to_string(l_new) +
+                            ", bound = " + RoundTripText(bound) + ")");
   }
   for (Eigen::Index i = 0; i < alpha.size(); ++i) {
     if (!(alpha[i] >= 0 && alpha[i] <= bound)) {
       throw PreconditionError("MapWarmStart: mapped alpha " + std::to_string(i) + " = " +
-                              Num(alpha[i]) + " is outside [0, " + Num(bound) + "]");
+                              RoundTripText(alpha[i]) + " is outside [0, " + RoundTripText(bound) +
+                              "]");
     }
   }
   return alpha;

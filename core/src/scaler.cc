@@ -126,7 +126,7 @@ MatrixD Scaler::Transform(const MatrixD& x) const {
 
 namespace {
 
-constexpr int kMaxStackDims = 1024;
+constexpr int kMaxDimsTransformedOnStack = 1024;
 
 template <typename Out>
 void StandardiseAndRotate(const double* in, Out* out, const VectorD& center,
@@ -136,19 +136,19 @@ void StandardiseAndRotate(const double* in, Out* out, const VectorD& center,
     for (int j = 0; j < d; ++j) out[j] = static_cast<Out>((in[j] - center[j]) * inverse_scale[j]);
     return;
   }
-  double stack[kMaxStackDims];
+  double stack[kMaxDimsTransformedOnStack];
   std::vector<double> heap;
   double* standardised = stack;
-  if (d > kMaxStackDims) {
+  if (d > kMaxDimsTransformedOnStack) {
     heap.resize(d);
     standardised = heap.data();
   }
   for (int j = 0; j < d; ++j) standardised[j] = (in[j] - center[j]) * inverse_scale[j];
   // whitening is row-major: out = standardised^T W, accumulated row by row in double.
-  double accumulated[kMaxStackDims];
+  double accumulated[kMaxDimsTransformedOnStack];
   std::vector<double> heap_accumulated;
   double* sum = accumulated;
-  if (d > kMaxStackDims) {
+  if (d > kMaxDimsTransformedOnStack) {
     heap_accumulated.resize(d);
     sum = heap_accumulated.data();
   }

@@ -102,15 +102,15 @@ struct SendSettings {
   std::string metrics_wait_text = "10s";
 };
 
-volatile std::sig_atomic_t stop_requested = 0;
-extern "C" void RequestSendStop(int) { stop_requested = 1; }
+volatile std::sig_atomic_t send_stop_requested = 0;
+extern "C" void RequestSendStop(int) { send_stop_requested = 1; }
 
 // SIGINT and SIGTERM end the run after the message being sent, for the lifetime of this object.
 // Installed without SA_RESTART so that a blocking wait returns at once with EINTR.
 class StopSignals {
  public:
   StopSignals() {
-    stop_requested = 0;
+    send_stop_requested = 0;
     struct sigaction action {};
     action.sa_handler = RequestSendStop;
     sigemptyset(&action.sa_mask);
@@ -350,13 +350,13 @@ class Sender {
   // Vector `index` (0-based) is due `index / rate` seconds after the first: computed from the
   // index, not by adding up intervals, so the pace does not drift however long the run.
   bool WaitUntilDue(int64_t index) {
-    if (stop_requested) return false;
+    if (send_stop_requested) return false;
     if (index == 0) start_ = Clock::now();
     if (settings_.rate == 0) return true;
     const auto due = start_ + std::chrono::duration_cast<Clock::duration>(
                                   std::chrono::duration<double>(index / settings_.rate));
     while (true) {
-      if (stop_requested) return false;
+      if (send_stop_requested) return false;
       const auto now = Clock::now();
       if (now >= due) return true;
       // Short naps so that Ctrl-C is honoured promptly even at a slow rate.
@@ -395,7 +395,7 @@ class Sender {
     const auto blocked_since = Clock::now();
     bool told_waiting = false;
     while (true) {
-      if (stop_requested) return false;
+      if (send_stop_requested) return false;
       try {
         if (socket.send(zmq::buffer(key), zmq::send_flags::sndmore | zmq::send_flags::dontwait))
           break;
@@ -495,7 +495,7 @@ class StdinFeeder {
   // the input). Throws CommandError when reading fails.
   Result Feed(CsvReader& reader, std::chrono::milliseconds wait) {
     while (true) {
-      if (stop_requested) return Result::kStopped;
+      if (send_stop_requested) return Result::kStopped;
       pollfd item{STDIN_FILENO, POLLIN, 0};
       const int ready = ::poll(&item, 1, static_cast<int>(wait.count()));
       if (ready < 0) {

@@ -104,18 +104,18 @@ PlantOptions ToOptions(const SimulateArguments& args) {
   return options;
 }
 
-volatile std::sig_atomic_t stop_requested = 0;
-extern "C" void RequestStop(int) { stop_requested = 1; }
+volatile std::sig_atomic_t simulate_stop_requested = 0;
+extern "C" void RequestSimulateStop(int) { simulate_stop_requested = 1; }
 
 // Installs the live mode's signal handling for its lifetime: SIGINT/SIGTERM end the run after the
 // current tick; SIGPIPE is ignored so that a closed stdout shows up as a failed write (EPIPE).
 class LiveSignals {
  public:
   LiveSignals() {
-    stop_requested = 0;
+    simulate_stop_requested = 0;
     previous_pipe_ = std::signal(SIGPIPE, SIG_IGN);
-    previous_int_ = std::signal(SIGINT, RequestStop);
-    previous_term_ = std::signal(SIGTERM, RequestStop);
+    previous_int_ = std::signal(SIGINT, RequestSimulateStop);
+    previous_term_ = std::signal(SIGTERM, RequestSimulateStop);
   }
   ~LiveSignals() {
     std::signal(SIGPIPE, previous_pipe_);
@@ -161,7 +161,8 @@ void RunLive(const SimulateArguments& args, const PlantOptions& options) {
   std::array<double, 6> features;
   double time = 0;
   int stream = 0;
-  for (std::int64_t tick = 0; open && !stop_requested && tick < simulator.ticks(); ++tick) {
+  for (std::int64_t tick = 0; open && !simulate_stop_requested && tick < simulator.ticks();
+       ++tick) {
     buffer.clear();
     std::string time_text;
     for (int p = 0; p < options.pumps && simulator.Next(&time, &stream, features); ++p) {
@@ -173,13 +174,13 @@ void RunLive(const SimulateArguments& args, const PlantOptions& options) {
         std::chrono::duration_cast<std::chrono::steady_clock::duration>(
             std::chrono::duration<double>(static_cast<double>(tick) * wall_seconds_per_tick));
     // Short naps so that Ctrl-C is honoured within a fraction of a second even at --speed 1.
-    while (!stop_requested) {
+    while (!simulate_stop_requested) {
       const auto now = std::chrono::steady_clock::now();
       if (now >= due) break;
       std::this_thread::sleep_for(
           std::min<std::chrono::steady_clock::duration>(due - now, std::chrono::milliseconds(100)));
     }
-    if (stop_requested) break;
+    if (simulate_stop_requested) break;
     open = WriteToStdout(buffer);
     if (open) rows += options.pumps;
   }

@@ -46,8 +46,8 @@ struct TailArguments {
   ClientKeyFlags keys;
 };
 
-volatile std::sig_atomic_t stop_requested = 0;
-extern "C" void RequestTailStop(int) { stop_requested = 1; }
+volatile std::sig_atomic_t tail_stop_requested = 0;
+extern "C" void RequestTailStop(int) { tail_stop_requested = 1; }
 
 // For the lifetime of this object: SIGINT and SIGTERM end the run (installed without SA_RESTART so
 // that a wait returns at once), and SIGPIPE is ignored so that a reader that went away (`| head`)
@@ -55,7 +55,7 @@ extern "C" void RequestTailStop(int) { stop_requested = 1; }
 class TailSignals {
  public:
   TailSignals() {
-    stop_requested = 0;
+    tail_stop_requested = 0;
     struct sigaction action {};
     action.sa_handler = RequestTailStop;
     sigemptyset(&action.sa_mask);
@@ -334,7 +334,7 @@ void RunTail(const TailArguments& args) {
   std::vector<zmq::message_t> frames;
   std::string line;
   ResultBatch binary_batch;
-  while (open && !stop_requested && (count == 0 || tally.printed < count)) {
+  while (open && !tail_stop_requested && (count == 0 || tally.printed < count)) {
     auto wait = std::chrono::milliseconds(200);
     if (timeout > 0) {
       const auto now = Clock::now();

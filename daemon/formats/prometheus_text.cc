@@ -8,10 +8,11 @@
 namespace nuwatch {
 namespace {
 
-bool IsBlank(char c) { return c == ' ' || c == '\t'; }
+// The exposition format separates tokens by spaces and tabs.
+bool IsTokenSeparator(char c) { return c == ' ' || c == '\t'; }
 
 void SkipBlanks(std::string_view line, std::size_t* at) {
-  while (*at < line.size() && IsBlank(line[*at])) ++*at;
+  while (*at < line.size() && IsTokenSeparator(line[*at])) ++*at;
 }
 
 // A sample value: a float as Go's strconv.ParseFloat reads it, which includes "+Inf", "-Inf" and
@@ -44,7 +45,8 @@ std::map<std::string, double> SamplesByLabel(std::string_view exposition, std::s
     SkipBlanks(line, &at);
     if (line.substr(at, metric.size()) != metric) continue;  // comments and other metrics too
     at += metric.size();
-    if (at < line.size() && line[at] != '{' && !IsBlank(line[at])) continue;  // metric_created
+    if (at < line.size() && line[at] != '{' && !IsTokenSeparator(line[at]))
+      continue;  // metric_created
     const auto fail = [&](const std::string& why) {
       return ExpositionError("line " + std::to_string(line_number) + " (" + std::string(metric) +
                              "): " + why);
@@ -60,7 +62,7 @@ std::map<std::string, double> SamplesByLabel(std::string_view exposition, std::s
           break;
         }
         const std::size_t name_start = at;
-        while (at < line.size() && line[at] != '=' && !IsBlank(line[at])) ++at;
+        while (at < line.size() && line[at] != '=' && !IsTokenSeparator(line[at])) ++at;
         const std::string_view name = line.substr(name_start, at - name_start);
         SkipBlanks(line, &at);
         if (name.empty() || at >= line.size() || line[at] != '=')
@@ -99,7 +101,7 @@ std::map<std::string, double> SamplesByLabel(std::string_view exposition, std::s
     }
     SkipBlanks(line, &at);
     std::size_t value_end = at;
-    while (value_end < line.size() && !IsBlank(line[value_end])) ++value_end;
+    while (value_end < line.size() && !IsTokenSeparator(line[value_end])) ++value_end;
     const std::string_view value_text = line.substr(at, value_end - at);
     if (value_text.empty()) throw fail("no value");
     const std::optional<double> value = ParseSampleValue(value_text);

@@ -15,12 +15,14 @@ namespace {
 static_assert(std::endian::native == std::endian::little,
               "the result batch code assumes a little-endian host");
 
-// §9.5.1 header offsets.
-constexpr std::size_t kVersionOffset = 4;
-constexpr std::size_t kFlagsOffset = 5;
-constexpr std::size_t kReservedOffset = 6;
-constexpr std::size_t kCountOffset = 8;
-constexpr std::size_t kFeaturesOffset = 12;
+// §9.5.1: offsets of the result batch header's fields.
+namespace batch_header {
+constexpr std::size_t kVersion = 4;
+constexpr std::size_t kFlags = 5;
+constexpr std::size_t kReserved = 6;
+constexpr std::size_t kCount = 8;
+constexpr std::size_t kFeatures = 12;
+}  // namespace batch_header
 // §9.5.2 row offsets.
 constexpr std::size_t kRowT = 0;
 constexpr std::size_t kRowDecision = 8;
@@ -70,7 +72,7 @@ std::string_view ResultStateName(ResultState state) noexcept {
 void ResultBatchEncoder::Begin() {
   frame_.assign(kResultBatchHeaderBytes, '\0');
   std::memcpy(frame_.data(), kResultBatchMagic.data(), kResultBatchMagic.size());
-  frame_[kVersionOffset] = static_cast<char>(kResultBatchVersion);
+  frame_[batch_header::kVersion] = static_cast<char>(kResultBatchVersion);
   features_.clear();
   rows_ = 0;
   feature_entries_ = 0;
@@ -129,8 +131,8 @@ const std::string& ResultBatchEncoder::Finish() {
   if (feature_entries_ > std::numeric_limits<std::uint32_t>::max())
     throw PreconditionError("ResultBatchEncoder::Finish: " + std::to_string(feature_entries_) +
                             " feature entries exceed the u32 field");
-  Store(static_cast<std::uint32_t>(rows_), frame_.data() + kCountOffset);
-  Store(static_cast<std::uint32_t>(feature_entries_), frame_.data() + kFeaturesOffset);
+  Store(static_cast<std::uint32_t>(rows_), frame_.data() + batch_header::kCount);
+  Store(static_cast<std::uint32_t>(feature_entries_), frame_.data() + batch_header::kFeatures);
   frame_.append(features_);
   features_.clear();
   return frame_;
@@ -144,9 +146,9 @@ std::string DecodeResultBatch(std::string_view frame, ResultBatch* out) {
   out->rows.clear();
   out->features.clear();
   // §9.5.4, in order: magic, version, header, counts, size, rows, entries.
-  if (frame.size() < kVersionOffset + 1 || !LooksLikeResultBatch(frame))
+  if (frame.size() < batch_header::kVersion + 1 || !LooksLikeResultBatch(frame))
     return Problem("the frame does not start with the magic NUWR");
-  const auto version = static_cast<std::uint8_t>(frame[kVersionOffset]);
+  const auto version = static_cast<std::uint8_t>(frame[batch_header::kVersion]);
   if (version != kResultBatchVersion)
     return Problem("version " + std::to_string(version) + " is not supported (this reader knows " +
                    std::to_string(kResultBatchVersion) + ")");
@@ -154,12 +156,12 @@ std::string DecodeResultBatch(std::string_view frame, ResultBatch* out) {
     return Problem("the header is cut short: " + std::to_string(frame.size()) + " of " +
                    std::to_string(kResultBatchHeaderBytes) + " bytes");
   const char* data = frame.data();
-  if (const auto flags = static_cast<std::uint8_t>(frame[kFlagsOffset]); flags != 0)
+  if (const auto flags = static_cast<std::uint8_t>(frame[batch_header::kFlags]); flags != 0)
     return Problem("flags = " + std::to_string(flags) + ", version 1 defines none (0 expected)");
-  if (const auto reserved = Load<std::uint16_t>(data + kReservedOffset); reserved != 0)
+  if (const auto reserved = Load<std::uint16_t>(data + batch_header::kReserved); reserved != 0)
     return Problem("the reserved header field is " + std::to_string(reserved) + ", not 0");
-  const auto count = Load<std::uint32_t>(data + kCountOffset);
-  const auto features = Load<std::uint32_t>(data + kFeaturesOffset);
+  const auto count = Load<std::uint32_t>(data + batch_header::kCount);
+  const auto features = Load<std::uint32_t>(data + batch_header::kFeatures);
   if (count == 0) return Problem("the batch has no rows (count = 0)");
   // At most 16 + 48 * (2^32 - 1) + 16 * (2^32 - 1) < 2^39: no overflow in 64 bits.
   const std::uint64_t expected = kResultBatchHeaderBytes +

@@ -45,12 +45,14 @@ constexpr RejectReason kAllRejectReasons[] = {
     RejectReason::kAwaitingHandoff,
 };
 
-// Offsets of the §6.1 header fields.
-constexpr std::size_t kVersionOffset = 4;
-constexpr std::size_t kDtypeOffset = 5;
-constexpr std::size_t kDimsOffset = 6;
-constexpr std::size_t kCountOffset = 8;
-constexpr std::size_t kReservedOffset = 12;
+// §6.1: offsets of the binary ingest header's fields.
+namespace ingest_header {
+constexpr std::size_t kVersion = 4;
+constexpr std::size_t kDtype = 5;
+constexpr std::size_t kDims = 6;
+constexpr std::size_t kCount = 8;
+constexpr std::size_t kReserved = 12;
+}  // namespace ingest_header
 constexpr std::size_t kTimestampBytes = 8;
 
 DecodeResult Reject(RejectReason reason, std::string_view detail) {
@@ -98,25 +100,26 @@ bool AllFiniteF32(const std::byte* at, std::size_t n) {
 DecodeResult DecodeBinary(std::string_view payload, const WireLimits& limits) {
   const auto* bytes = reinterpret_cast<const std::byte*>(payload.data());
   const std::size_t size = payload.size();
-  if (size < kVersionOffset + 1) return Reject(RejectReason::kBadHeader, "binary header truncated");
+  if (size < ingest_header::kVersion + 1)
+    return Reject(RejectReason::kBadHeader, "binary header truncated");
   if (payload.substr(0, kBinaryMagic.size()) != kBinaryMagic) {
     return Reject(RejectReason::kBadHeader, "binary magic is not NUWB");
   }
-  if (static_cast<std::uint8_t>(payload[kVersionOffset]) != kWireProtocolVersion) {
+  if (static_cast<std::uint8_t>(payload[ingest_header::kVersion]) != kWireProtocolVersion) {
     return Reject(RejectReason::kUnsupportedVersion, "binary version byte is not 1");
   }
   if (size < kBinaryHeaderBytes) {
     return Reject(RejectReason::kBadHeader, "binary header truncated");
   }
-  const auto dtype_code = static_cast<std::uint8_t>(payload[kDtypeOffset]);
+  const auto dtype_code = static_cast<std::uint8_t>(payload[ingest_header::kDtype]);
   if (dtype_code != static_cast<std::uint8_t>(Dtype::kFloat32) &&
       dtype_code != static_cast<std::uint8_t>(Dtype::kFloat64)) {
     return Reject(RejectReason::kBadDtype, "binary dtype is not 1 (f32) or 2 (f64)");
   }
   const auto dtype = static_cast<Dtype>(dtype_code);
-  const auto dims = LoadLittleEndian<std::uint16_t>(bytes + kDimsOffset);
-  const auto count = LoadLittleEndian<std::uint32_t>(bytes + kCountOffset);
-  if (LoadLittleEndian<std::uint32_t>(bytes + kReservedOffset) != 0) {
+  const auto dims = LoadLittleEndian<std::uint16_t>(bytes + ingest_header::kDims);
+  const auto count = LoadLittleEndian<std::uint32_t>(bytes + ingest_header::kCount);
+  if (LoadLittleEndian<std::uint32_t>(bytes + ingest_header::kReserved) != 0) {
     return Reject(RejectReason::kBadHeader, "binary reserved bytes 12..15 are not zero");
   }
   if (dims == 0) return Reject(RejectReason::kEmptyVector, "binary dims is 0");
@@ -801,11 +804,11 @@ void EncodeBinaryPayload(std::span<const double> times, const double* values, in
   out->resize(kBinaryHeaderBytes + kTimestampBytes * count + value_count * DtypeBytes(dtype));
   char* at = out->data();
   std::memcpy(at, kBinaryMagic.data(), kBinaryMagic.size());
-  at[kVersionOffset] = static_cast<char>(kWireProtocolVersion);
-  at[kDtypeOffset] = static_cast<char>(dtype);
-  StoreLittleEndian(static_cast<std::uint16_t>(dims), at + kDimsOffset);
-  StoreLittleEndian(static_cast<std::uint32_t>(count), at + kCountOffset);
-  StoreLittleEndian(std::uint32_t{0}, at + kReservedOffset);
+  at[ingest_header::kVersion] = static_cast<char>(kWireProtocolVersion);
+  at[ingest_header::kDtype] = static_cast<char>(dtype);
+  StoreLittleEndian(static_cast<std::uint16_t>(dims), at + ingest_header::kDims);
+  StoreLittleEndian(static_cast<std::uint32_t>(count), at + ingest_header::kCount);
+  StoreLittleEndian(std::uint32_t{0}, at + ingest_header::kReserved);
   at += kBinaryHeaderBytes;
   std::memcpy(at, times.data(), kTimestampBytes * count);
   at += kTimestampBytes * count;
