@@ -24,6 +24,7 @@
 #include <csignal>
 #include <cstdlib>
 #include <cstring>
+#include <deque>
 #include <filesystem>
 #include <fstream>
 #include <future>
@@ -133,6 +134,14 @@ constexpr int kMessagesPerTurn = 256;  // then poll again, so control requests a
 // messages"). Small messages meet the message bound first.
 constexpr int kShardQueueMessages = 1000;
 constexpr int kTrimIntervalSeconds = 5;
+// A message is scored in slices of at most this many values (rows x dims: 1024 rows of 16
+// features, about a millisecond of scoring), so that a large batch keeps its thread's other
+// streams waiting for one slice, not for the whole message (PROTOCOL.md §7).
+constexpr int kSliceValues = 16384;
+int SliceRows(int dims) { return std::max(1, kSliceValues / dims); }
+// Messages that may wait behind a stream's sliced message; one more, and the rest of it is scored
+// at once. Their bytes stay counted in ingest.scoring_queue_bytes while they wait.
+constexpr std::size_t kWaitingPerStream = 64;
 // How often the socket thread reads the (un)subscriptions the XPUB socket hands up.
 constexpr std::chrono::milliseconds kSubscriptionDrainInterval{200};
 constexpr std::size_t kControlMaxBytes = 1 << 20;
@@ -319,6 +328,8 @@ struct Shard {
   // The earliest moment a failed write is due again; none while no write has failed.
   std::optional<Clock::time_point> next_write_retry;
   Clock::time_point turn_time{};  // when the current turn of messages began (Stream::last_seen)
+  // Streams whose message is being scored in slices (Stream::sliced), in turn order.
+  std::deque<Stream*> slicing;
 
   // Ingest payloads of keys this member has just come to own and whose state is on its way from
   // their previous owner (PROTOCOL.md §13.4), in arrival order; scored once the state is adopted
@@ -356,6 +367,23 @@ struct Shard {
     }
     Wake();
   }
+};
+
+// A message's bytes in its shard's ingest.scoring_queue_bytes count: given back once the message
+// has been handled, unless Keep() hands them on (to a sliced message, or one that waits behind it).
+class QueuedBytes {
+ public:
+  QueuedBytes(Shard& shard, int64_t bytes) : shard_(shard), bytes_(bytes) {}
+  ~QueuedBytes() {
+    if (bytes_ != 0) shard_.queued_bytes.fetch_sub(bytes_, std::memory_order_relaxed);
+  }
+  QueuedBytes(const QueuedBytes&) = delete;
+  QueuedBytes& operator=(const QueuedBytes&) = delete;
+  int64_t Keep() { return std::exchange(bytes_, 0); }
+
+ private:
+  Shard& shard_;
+  int64_t bytes_;
 };
 
 int ScoringThreads(const DaemonSettings& s) {
@@ -419,11 +447,29 @@ struct Daemon::Impl final : ControlCommands {
   Handed HandTo(std::size_t owner, zmq::message_t& key, zmq::message_t& payload);
   // Hands the parked message over if there is room now; whether none is parked any more.
   bool HandParked();
-  void HandleIngest(Shard& shard, std::string_view key, std::string_view payload);
+  // `queued_bytes`: the message's bytes in the shard's ingest.scoring_queue_bytes count, given
+  // back once it has been handled (0 for held vectors, which are bounded apart).
+  void HandleIngest(Shard& shard, std::string_view key, std::string_view payload,
+                    int64_t queued_bytes = 0);
   void ProcessVector(Shard& shard, Stream& stream, const PayloadView& payload, int index);
-  // A message of several vectors: one batched product (Detector::ObserveBatch), the metrics
-  // updated once for the message, the flagged rows alone explained.
+  // A message of several vectors, at most one slice (SliceRows): one batched product
+  // (Detector::ObserveBatch), the metrics updated once for the message, the flagged rows alone
+  // explained.
   void ProcessBatch(Shard& shard, Stream& stream, const PayloadView& payload);
+  // ObserveBatch of stream.batch_rows at stream.batch_times, then metrics and results.
+  void ScoreBatchRows(Shard& shard, Stream& stream);
+  // A message of more vectors than one slice: copied into stream.sliced, its first slice scored;
+  // the shard's turns score the rest (ScoreSlices). Its bytes stay counted until the last slice.
+  void StartSliced(Shard& shard, Stream& stream, const PayloadView& payload, QueuedBytes& bytes);
+  // Scores the next slice of stream.sliced; after the last, gives back the message's bytes and
+  // handles the messages that waited behind it. Whether slices remain.
+  bool ScoreSlice(Shard& shard, Stream& stream);
+  // One slice of each sliced message, in turn (once per turn of the shard's loop).
+  void ScoreSlices(Shard& shard);
+  // The rest of `stream`'s sliced message and the messages waiting behind it, at once.
+  void FinishSliced(Shard& shard, Stream& stream);
+  // Every sliced message of the shard, at once: before a command or the stop sees its streams.
+  void FinishAllSliced(Shard& shard);
   // The stream's metrics after `verdicts` (the last of them at data time `last_time`).
   void UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts, double last_time);
   // Publishes the results of one ingest message's vectors (one message each, one §9.4 batch
@@ -1217,12 +1263,15 @@ void Daemon::Impl::RunShard(Shard& shard) {
       {{nullptr, shard.wake_fd, ZMQ_POLLIN, 0}, {shard.input.handle(), 0, ZMQ_POLLIN, 0}}};
   while (true) {
     try {
-      zmq::poll(items.data(), items.size(), std::chrono::milliseconds(1000));
+      // While a message is being sliced, the loop only looks for other work between slices.
+      zmq::poll(items.data(), items.size(),
+                std::chrono::milliseconds(shard.slicing.empty() ? 1000 : 0));
       if (items[0].revents & ZMQ_POLLIN) {
         uint64_t count;
         [[maybe_unused]] const ssize_t n = ::read(shard.wake_fd, &count, sizeof count);
         HandleShardWork(shard);
       }
+      if (!shard.slicing.empty()) ScoreSlices(shard);
       if (shard.next_write_retry && Clock::now() >= *shard.next_write_retry) {
         RetryFailedWrites(shard);
       }
@@ -1240,7 +1289,13 @@ void Daemon::Impl::RunShard(Shard& shard) {
       spdlog::error("scoring thread {}: internal error: {}", shard.index, e.what());
     }
   }
-  // Commands posted until now still run (a pause the socket thread waits for).
+  // What was handed over is scored before the thread ends, sliced messages included; commands
+  // posted until now still run (a pause the socket thread waits for).
+  try {
+    FinishAllSliced(shard);
+  } catch (const std::exception& e) {
+    spdlog::error("scoring thread {}: internal error: {}", shard.index, e.what());
+  }
   HandleShardWork(shard);
 }
 
@@ -1250,6 +1305,8 @@ void Daemon::Impl::HandleShardWork(Shard& shard) {
     MutexLock lock(&shard.commands_mutex);
     shard.command_work.swap(shard.commands);
   }
+  // A command (a pause, a snapshot, a hand-away) sees each stream between two whole messages.
+  if (!shard.command_work.empty()) FinishAllSliced(shard);
   for (auto& command : shard.command_work) command();
   HandleFinishedRefits(shard);
   HandleFinishedWrites(shard);
@@ -1261,10 +1318,8 @@ bool Daemon::Impl::ReceiveShardInput(Shard& shard) {
     if (!shard.key_message.more()) return false;  // the stop marker: nothing follows it
     // The socket thread hands over whole two-frame messages only.
     (void)shard.input.recv(shard.payload_message, zmq::recv_flags::none);
-    HandleIngest(shard, shard.key_message.to_string_view(), shard.payload_message.to_string_view());
-    shard.queued_bytes.fetch_sub(
-        static_cast<int64_t>(shard.key_message.size() + shard.payload_message.size()),
-        std::memory_order_relaxed);
+    HandleIngest(shard, shard.key_message.to_string_view(), shard.payload_message.to_string_view(),
+                 static_cast<int64_t>(shard.key_message.size() + shard.payload_message.size()));
   }
   return true;
 }
@@ -1537,12 +1592,22 @@ bool Daemon::Impl::HandParked() {
   return true;
 }
 
-void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_view payload) {
+void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_view payload,
+                                int64_t queued_bytes) {
+  QueuedBytes bytes(shard, queued_bytes);
   if (!shard.held.empty() && !shard.ending_holds && Clock::now() >= handoff_until) {
     // The wait is over, but RunShard (once a second) has not taken the held vectors yet: they
     // come first, so that each stream sees its vectors in order. Before this message is
     // decoded: scoring them reuses the shard's decoding scratch.
     EndHolds(shard, false);
+  }
+  if (!shard.slicing.empty()) {
+    // A stream whose message is being sliced takes its next messages after it, in order.
+    if (Stream* s = shard.streams.Find(key); s != nullptr && s->sliced) {
+      s->sliced->waiting.push_back({std::string(payload), bytes.Keep()});
+      if (s->sliced->waiting.size() > kWaitingPerStream) FinishSliced(shard, *s);
+      return;
+    }
   }
   const DecodeResult decoded = DecodeIngest(key, payload, limits, &shard.scratch);
   if (!decoded.ok()) {
@@ -1601,8 +1666,10 @@ void Daemon::Impl::HandleIngest(Shard& shard, std::string_view key, std::string_
   try {
     if (p.count == 1) {
       ProcessVector(shard, *stream, p, 0);
-    } else {
+    } else if (p.count <= SliceRows(stream->dims)) {
       ProcessBatch(shard, *stream, p);
+    } else {
+      StartSliced(shard, *stream, p, bytes);
     }
   } catch (const std::bad_alloc&) {
     // The stream's training window grows as it fills (SampleWindow): with a window x features
@@ -1642,15 +1709,97 @@ void Daemon::Impl::ProcessBatch(Shard& shard, Stream& stream, const PayloadView&
       Record(stream, t);
     }
   }
+  ScoreBatchRows(shard, stream);
+}
+
+void Daemon::Impl::ScoreBatchRows(Shard& shard, Stream& stream) {
   Detector& detector = *stream.detector;
   const Clock::time_point started_at = Clock::now();
   detector.ObserveBatch(stream.batch_times, stream.batch_rows, &stream.batch_verdicts);
-  // One observation per message, of the time per vector, so that the histogram keeps measuring
-  // what one vector costs (metrics.h) without a mutex-taking Observe per row.
+  // One observation per message (or slice), of the time per vector, so that the histogram keeps
+  // measuring what one vector costs (metrics.h) without a mutex-taking Observe per row.
   metrics.score_duration().Observe(
-      std::chrono::duration<double>(Clock::now() - started_at).count() / n);
+      std::chrono::duration<double>(Clock::now() - started_at).count() /
+      static_cast<double>(stream.batch_times.size()));
   UpdateStreamMetrics(stream, stream.batch_verdicts, stream.batch_times.back());
   PublishResults(shard, stream, stream.batch_times, stream.batch_verdicts, /*batch=*/true);
+}
+
+void Daemon::Impl::StartSliced(Shard& shard, Stream& stream, const PayloadView& payload,
+                               QueuedBytes& bytes) {
+  const int n = payload.count;
+  auto sliced = std::make_unique<SlicedMessage>();
+  sliced->rows.resize(n, stream.dims);
+  sliced->times.resize(static_cast<std::size_t>(n));
+  for (int i = 0; i < n; ++i) {
+    const double t = payload.time(i);
+    sliced->times[i] = t;
+    const std::span<double> row(&sliced->rows(i, 0), static_cast<std::size_t>(stream.dims));
+    payload.CopyRow(i, row);
+    if (stream.recorder) {
+      std::copy(row.begin(), row.end(), stream.row.begin());
+      Record(stream, t);
+    }
+  }
+  sliced->queued_bytes = bytes.Keep();  // after the copies, which may throw bad_alloc
+  stream.sliced = std::move(sliced);
+  // The first slice at once, as an unsliced message would be; the rest in the shard's turns.
+  if (ScoreSlice(shard, stream)) shard.slicing.push_back(&stream);
+}
+
+bool Daemon::Impl::ScoreSlice(Shard& shard, Stream& stream) {
+  SlicedMessage& sliced = *stream.sliced;
+  const int total = static_cast<int>(sliced.times.size());
+  const int begin = sliced.next;
+  const int rows = std::min(SliceRows(stream.dims), total - begin);
+  // Advanced first, so that a slice that throws is not scored again.
+  sliced.next = begin + rows;
+  try {
+    stream.batch_rows = sliced.rows.middleRows(begin, rows);
+    stream.batch_times.assign(sliced.times.begin() + begin, sliced.times.begin() + begin + rows);
+    ScoreBatchRows(shard, stream);
+  } catch (const std::bad_alloc&) {
+    // As for a whole message (HandleIngest): the rest of this one is refused and counted.
+    Reject(RejectReason::kStreamLimit, "not enough memory to grow the stream's training window",
+           stream.key);
+    sliced.next = total;
+  } catch (const std::exception& e) {
+    // A bug, not bad input: logged, as RunShard logs one in a whole message, and the rest of
+    // the message dropped rather than retried.
+    spdlog::error("stream={}: internal error scoring rows {} to {} of a message: {}", stream.key,
+                  begin, total, e.what());
+    sliced.next = total;
+  }
+  if (sliced.next < total) return true;
+  shard.queued_bytes.fetch_sub(sliced.queued_bytes, std::memory_order_relaxed);
+  std::deque<SlicedMessage::Waiting> waiting = std::move(sliced.waiting);
+  stream.sliced.reset();
+  // In their order; one of them may be sliced in turn, and those after it wait again behind it.
+  for (SlicedMessage::Waiting& message : waiting)
+    HandleIngest(shard, stream.key, message.payload, message.queued_bytes);
+  return false;
+}
+
+void Daemon::Impl::ScoreSlices(Shard& shard) {
+  for (std::size_t turn = shard.slicing.size(); turn > 0 && !shard.slicing.empty(); --turn) {
+    Stream* stream = shard.slicing.front();
+    shard.slicing.pop_front();
+    // A stream whose message is sliced again by a message that waited behind it is back in
+    // the queue already (StartSliced).
+    if (stream->sliced && ScoreSlice(shard, *stream)) shard.slicing.push_back(stream);
+  }
+}
+
+void Daemon::Impl::FinishSliced(Shard& shard, Stream& stream) {
+  while (stream.sliced) (void)ScoreSlice(shard, stream);
+  std::erase(shard.slicing, &stream);
+}
+
+void Daemon::Impl::FinishAllSliced(Shard& shard) {
+  while (!shard.slicing.empty()) {
+    Stream* stream = shard.slicing.front();
+    FinishSliced(shard, *stream);
+  }
 }
 
 void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts,
@@ -2587,6 +2736,9 @@ int64_t Daemon::Impl::ScoreHeld(Shard& shard, const std::string& key) {
   for (const std::string& payload : held.payloads) shard.held_bytes -= payload.size();
   shard.turn_time = Clock::now();
   for (const std::string& payload : held.payloads) HandleIngest(shard, key, payload);
+  // Whole, here: at the stop no scoring thread is left to score the rest.
+  if (Stream* stream = shard.streams.Find(key); stream != nullptr && stream->sliced)
+    FinishSliced(shard, *stream);
   return held.vectors;
 }
 

@@ -10,6 +10,7 @@
 
 #include <chrono>
 #include <cstdint>
+#include <deque>
 #include <functional>
 #include <memory>
 #include <set>
@@ -46,6 +47,23 @@ class AnomalyRatioRing {
   int64_t flagged_ = 0;
 };
 
+// A message of more vectors than its scoring thread scores at one go (daemon.cc, SliceRows): its
+// rows and times, copied out of the message, are scored a slice at a time, so that the thread's
+// other streams are not kept waiting behind it. The stream's own later messages wait here, in
+// arrival order, so that its vectors keep their order.
+struct SlicedMessage {
+  MatrixD rows;
+  std::vector<double> times;
+  int next = 0;  // the first row not scored yet
+  // The message's bytes, counted in ingest.scoring_queue_bytes until its last slice is scored.
+  int64_t queued_bytes = 0;
+  struct Waiting {
+    std::string payload;
+    int64_t queued_bytes = 0;  // as above, until it is handled
+  };
+  std::deque<Waiting> waiting;
+};
+
 struct Stream {
   // Creates the detector (throws PreconditionError for invalid options or dims) on `pool`, adds
   // the stream's metric series and sets the refit listener. `on_refit_finished` runs on the pool
@@ -74,6 +92,7 @@ struct Stream {
   MatrixD batch_rows;
   std::vector<double> batch_times;
   std::vector<Verdict> batch_verdicts;
+  std::unique_ptr<SlicedMessage> sliced;  // null unless a message is being scored in slices
   // When its last message arrived (its scoring thread's clock at the turn it was taken), for
   // limits.idle_expiry_seconds.
   std::chrono::steady_clock::time_point last_seen{};
