@@ -138,7 +138,6 @@ constexpr int kTrimIntervalSeconds = 5;
 // features, about a millisecond of scoring), so that a large batch keeps its thread's other
 // streams waiting for one slice, not for the whole message (PROTOCOL.md §7).
 constexpr int kSliceValues = 16384;
-int SliceRows(int dims) { return std::max(1, kSliceValues / dims); }
 // Messages that may wait behind a stream's sliced message; one more, and the rest of it is scored
 // at once. Their bytes stay counted in ingest.scoring_queue_bytes while they wait.
 constexpr std::size_t kWaitingPerStream = 64;
@@ -452,6 +451,10 @@ struct Daemon::Impl final : ControlCommands {
   void HandleIngest(Shard& shard, std::string_view key, std::string_view payload,
                     int64_t queued_bytes = 0);
   void ProcessVector(Shard& shard, Stream& stream, const PayloadView& payload, int index);
+  // Rows of `dims` features in one slice of a large message (kSliceValues, or the options').
+  int SliceRows(int dims) const {
+    return std::max(1, (options.slice_values > 0 ? options.slice_values : kSliceValues) / dims);
+  }
   // A message of several vectors, at most one slice (SliceRows): one batched product
   // (Detector::ObserveBatch), the metrics updated once for the message, the flagged rows alone
   // explained.

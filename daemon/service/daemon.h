@@ -92,6 +92,9 @@ struct DaemonOptions {
   CommandLineOverrides overrides;  // re-applied to the file on reload
   std::string ready_file;          // "" = none
   bool handle_signals = false;     // SIGTERM/SIGINT stop, SIGHUP reloads (the program; not tests)
+  // Values (rows x dims) a scoring thread scores at one go of a large message (PROTOCOL.md §7);
+  // 0: the protocol's 16,384. Tests set fewer, so that slices come in small messages.
+  int slice_values = 0;
 };
 
 struct DaemonEndpoints {
