@@ -1,7 +1,9 @@
 #include "nuwatch/sample_window.h"
 
 #include <algorithm>
+#include <bit>
 #include <cmath>
+#include <limits>
 #include <numeric>
 #include <string>
 
@@ -13,6 +15,15 @@ namespace {
 // The buffer's first size: small enough that a stream with a handful of vectors costs little,
 // large enough that doubling from it reaches a window of 2000 in 7 steps.
 constexpr int64_t kFirstSlots = 16;
+
+// Whether row id `a` is preferred to `b` as the reference: more trailing zero bits, then the newer.
+// Among consecutive ids (a window's, sample_window.h) the first is unique, so the choice depends
+// on the ids alone and a restored window makes the same one.
+bool Outranks(uint64_t a, uint64_t b) {
+  const int za = std::countr_zero(a);
+  const int zb = std::countr_zero(b);
+  return za > zb || (za == zb && a > b);
+}
 
 }  // namespace
 
@@ -36,34 +47,113 @@ int64_t SampleWindow::Physical(int64_t i) const {
   return slot < slots_ ? slot : slot - slots_;
 }
 
+// Oldest first, into a buffer of `slots` slots reserved exactly: [head, end of the buffer), then
+// [0, wrap). Allocates before it changes anything.
+template <typename T>
+std::vector<T> InOrder(const std::vector<T>& buffer, int64_t head, int64_t first_run,
+                       int64_t second_run, int64_t slots, int dims) {
+  std::vector<T> out;
+  out.reserve(static_cast<std::size_t>(slots * dims));
+  out.insert(out.end(), buffer.begin() + head * dims, buffer.begin() + (head + first_run) * dims);
+  out.insert(out.end(), buffer.begin(), buffer.begin() + second_run * dims);
+  out.resize(static_cast<std::size_t>(slots * dims));
+  return out;
+}
+
 void SampleWindow::GrowTo(int64_t slots) {
   slots = std::min(slots, capacity_);
   if (slots <= slots_) return;
-  const std::size_t d = static_cast<std::size_t>(dims_);
-  std::vector<double> values;
   std::vector<uint64_t> ids;
   std::vector<double> times;
-  values.reserve(static_cast<std::size_t>(slots) * d);
   ids.reserve(static_cast<std::size_t>(slots));
   times.reserve(static_cast<std::size_t>(slots));
-  // Oldest first: [head, end of the buffer), then [0, wrap).
   const int64_t first_run = std::min(size_, slots_ - head_);
   const int64_t second_run = size_ - first_run;
-  values.insert(values.end(), values_.begin() + head_ * dims_,
-                values_.begin() + (head_ + first_run) * dims_);
-  values.insert(values.end(), values_.begin(), values_.begin() + second_run * dims_);
+  std::vector<float> deviations;
+  std::vector<double> values;
+  if (doubles_) {
+    values = InOrder(values_, head_, first_run, second_run, slots, dims_);
+  } else {
+    deviations = InOrder(deviations_, head_, first_run, second_run, slots, dims_);
+  }
   ids.insert(ids.end(), ids_.begin() + head_, ids_.begin() + head_ + first_run);
   ids.insert(ids.end(), ids_.begin(), ids_.begin() + second_run);
   times.insert(times.end(), times_.begin() + head_, times_.begin() + head_ + first_run);
   times.insert(times.end(), times_.begin(), times_.begin() + second_run);
-  values.resize(static_cast<std::size_t>(slots) * d);
   ids.resize(static_cast<std::size_t>(slots));
   times.resize(static_cast<std::size_t>(slots));
+  deviations_.swap(deviations);
   values_.swap(values);
   ids_.swap(ids);
   times_.swap(times);
   head_ = 0;
   slots_ = slots;
+}
+
+double SampleWindow::Value(int64_t slot, int j) const {
+  const std::size_t k = static_cast<std::size_t>(slot * dims_ + j);
+  return doubles_ ? values_[k] : reference_[j] + static_cast<double>(deviations_[k]);
+}
+
+bool SampleWindow::FitsFloat(std::span<const double> x) const {
+  constexpr double kFloatMax = std::numeric_limits<float>::max();
+  for (int j = 0; j < dims_; ++j) {
+    // Negated, so that an overflow to infinity in the subtraction does not fit either.
+    if (!(std::abs(x[j] - reference_[j]) <= kFloatMax)) return false;
+  }
+  return true;
+}
+
+void SampleWindow::Store(int64_t slot, std::span<const double> x) {
+  const std::size_t k = static_cast<std::size_t>(slot * dims_);
+  if (doubles_) {
+    std::copy(x.begin(), x.end(), values_.begin() + k);
+    return;
+  }
+  for (int j = 0; j < dims_; ++j) deviations_[k + j] = static_cast<float>(x[j] - reference_[j]);
+}
+
+int64_t SampleWindow::PreferredSlot() const {
+  int64_t best = Physical(0);
+  for (int64_t i = 1; i < size_; ++i) {
+    const int64_t slot = Physical(i);
+    if (Outranks(ids_[slot], ids_[best])) best = slot;
+  }
+  return best;
+}
+
+void SampleWindow::RebaseTo(int64_t slot) {
+  if (doubles_) return;
+  for (int j = 0; j < dims_; ++j) next_reference_[j] = Value(slot, j);
+  constexpr double kFloatMax = std::numeric_limits<float>::max();
+  for (int64_t i = 0; i < size_; ++i) {
+    const int64_t s = Physical(i);
+    for (int j = 0; j < dims_; ++j) {
+      if (!(std::abs(Value(s, j) - next_reference_[j]) <= kFloatMax)) {
+        SwitchToDoubles();
+        return;
+      }
+    }
+  }
+  for (int64_t i = 0; i < size_; ++i) {
+    const int64_t s = Physical(i);
+    for (int j = 0; j < dims_; ++j) {
+      const std::size_t k = static_cast<std::size_t>(s * dims_ + j);
+      deviations_[k] = static_cast<float>(Value(s, j) - next_reference_[j]);
+    }
+  }
+  reference_.swap(next_reference_);
+  reference_id_ = ids_[slot];
+}
+
+void SampleWindow::SwitchToDoubles() {
+  std::vector<double> values(deviations_.size());  // before anything changes: may throw
+  for (int64_t slot = 0; slot < slots_; ++slot) {
+    for (int j = 0; j < dims_; ++j) values[slot * dims_ + j] = Value(slot, j);
+  }
+  values_.swap(values);
+  deviations_ = std::vector<float>();
+  doubles_ = true;
 }
 
 void SampleWindow::CheckIndex(int64_t i, const char* caller) const {
@@ -87,19 +177,36 @@ uint64_t SampleWindow::Push(double time, std::span<const double> x) {
                               RoundTripText(x[j]) + " is not finite");
     }
   }
+  const uint64_t id = next_id_;
+  if (!doubles_ && size_ == 0) {
+    // The first row of an empty window is its own reference.
+    reference_.assign(x.begin(), x.end());
+    next_reference_.resize(static_cast<std::size_t>(dims_));
+    reference_id_ = id;
+  }
+  if (!doubles_ && !FitsFloat(x)) SwitchToDoubles();
   int64_t slot;
+  bool reference_evicted = false;
   if (size_ == capacity_) {
     slot = head_;  // overwrite the oldest (the buffer has capacity slots by now)
+    reference_evicted = ids_[slot] == reference_id_;
     head_ = head_ + 1 == slots_ ? 0 : head_ + 1;
   } else {
     if (size_ == slots_) GrowTo(std::max(kFirstSlots, 2 * slots_));
     slot = Physical(size_);
     ++size_;
   }
-  std::copy(x.begin(), x.end(), values_.begin() + slot * dims_);
-  const uint64_t id = next_id_++;
+  Store(slot, x);
+  ++next_id_;
   ids_[slot] = id;
   times_[slot] = time;
+  if (!doubles_) {
+    if (Outranks(id, reference_id_)) {
+      RebaseTo(slot);
+    } else if (reference_evicted) {
+      RebaseTo(PreferredSlot());
+    }
+  }
   return id;
 }
 
@@ -110,10 +217,13 @@ void SampleWindow::ExpireOlderThan(double now) {
   }
   if (max_age_seconds_ == 0) return;
   const double cutoff = now - max_age_seconds_;
+  bool reference_expired = false;
   while (size_ > 0 && times_[head_] < cutoff) {
+    reference_expired = reference_expired || ids_[head_] == reference_id_;
     head_ = head_ + 1 == slots_ ? 0 : head_ + 1;
     --size_;
   }
+  if (reference_expired && size_ > 0) RebaseTo(PreferredSlot());
 }
 
 void SampleWindow::Clear() {
@@ -121,9 +231,12 @@ void SampleWindow::Clear() {
   size_ = 0;
 }
 
-std::span<const double> SampleWindow::Row(int64_t i) const {
+std::vector<double> SampleWindow::Row(int64_t i) const {
   CheckIndex(i, "SampleWindow::Row");
-  return {values_.data() + Physical(i) * dims_, static_cast<std::size_t>(dims_)};
+  std::vector<double> row(static_cast<std::size_t>(dims_));
+  const int64_t slot = Physical(i);
+  for (int j = 0; j < dims_; ++j) row[j] = Value(slot, j);
+  return row;
 }
 
 uint64_t SampleWindow::Id(int64_t i) const {
@@ -145,8 +258,10 @@ void SampleWindow::Snapshot(MatrixD* out, std::vector<uint64_t>* ids,
   // The occupied slots are at most two contiguous runs: [head, end) and [0, wrap).
   const int64_t first_run = std::min(size_, slots_ - head_);
   const int64_t second_run = size_ - first_run;
-  std::copy_n(values_.data() + head_ * dims_, first_run * dims_, out->data());
-  std::copy_n(values_.data(), second_run * dims_, out->data() + first_run * dims_);
+  for (int64_t i = 0; i < size_; ++i) {
+    const int64_t slot = Physical(i);
+    for (int j = 0; j < dims_; ++j) (*out)(i, j) = Value(slot, j);
+  }
   if (ids != nullptr) {
     std::copy_n(ids_.data() + head_, first_run, ids->data());
     std::copy_n(ids_.data(), second_run, ids->data() + first_run);
@@ -197,10 +312,32 @@ void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
   const int64_t skip = std::max<int64_t>(0, n - capacity_);
   size_ = 0;  // the rows are replaced: GrowTo need not keep any
   head_ = 0;
+  if (n - skip > 0) {
+    // Deviations from the row the ids prefer (Outranks), as the saved window had them, unless a
+    // row deviates beyond the float range; a window that holds doubles keeps them.
+    int64_t preferred = skip;
+    for (int64_t r = skip + 1; r < n; ++r)
+      if (Outranks(ids[r], ids[preferred])) preferred = r;
+    const auto reference = rows.row(preferred);
+    bool fits = true;
+    for (int64_t r = skip; r < n && fits; ++r)
+      for (int j = 0; j < dims_ && fits; ++j)
+        fits = std::abs(rows(r, j) - reference(j)) <= std::numeric_limits<float>::max();
+    if (fits && !doubles_) {
+      reference_.assign(reference.data(), reference.data() + dims_);
+      next_reference_.resize(static_cast<std::size_t>(dims_));
+      reference_id_ = ids[preferred];
+    } else if (!doubles_) {
+      values_.assign(deviations_.size(), 0.0);
+      deviations_ = std::vector<float>();
+      doubles_ = true;
+    }
+  }
   GrowTo(n - skip);
   size_ = n - skip;
   for (int64_t r = 0; r < size_; ++r) {
-    std::copy_n(rows.row(skip + r).data(), dims_, values_.data() + r * dims_);
+    const auto row = rows.row(skip + r);
+    Store(r, std::span<const double>(row.data(), static_cast<std::size_t>(dims_)));
     ids_[r] = ids[skip + r];
     times_[r] = times[skip + r];
   }
@@ -208,8 +345,10 @@ void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
 }
 
 std::size_t SampleWindow::MemoryBytes() const {
-  return sizeof(*this) + values_.capacity() * sizeof(double) + ids_.capacity() * sizeof(uint64_t) +
-         times_.capacity() * sizeof(double);
+  return sizeof(*this) + deviations_.capacity() * sizeof(float) +
+         values_.capacity() * sizeof(double) +
+         (reference_.capacity() + next_reference_.capacity()) * sizeof(double) +
+         ids_.capacity() * sizeof(uint64_t) + times_.capacity() * sizeof(double);
 }
 
 VectorD MapWarmStart(const std::vector<uint64_t>& old_ids, const VectorD& old_alpha,

@@ -25,11 +25,13 @@
 // each form and their ratios.
 // --shutdown-streams N: a second nuwatchd gets N streams (one vector each, window 2000, a state
 // directory) and the time from SIGTERM to its exit is measured, with its RSS per stream.
+// --shutdown-vectors M gives each stream M vectors instead (2000 fills its window).
 //
 // Usage: nuwatch_daemon_bench [--nuwatchd PATH] [--seconds 1.0] [--rounds 2] [--json]
 //                             [--streams 4] [--scoring-threads 0] [--publish-batches]
 //                             [--compare-result-forms]
 //                             [--shutdown-streams 0] [--shutdown-without-state]
+//                             [--shutdown-vectors 1]
 #include <CLI/CLI.hpp>
 #include <algorithm>
 #include <atomic>
@@ -43,6 +45,7 @@
 #include <iostream>
 #include <nlohmann/json.hpp>
 #include <random>
+#include <sstream>
 #include <string>
 #include <thread>
 #include <utility>
@@ -485,7 +488,9 @@ double RssBytes(pid_t pid) {
   return NAN;
 }
 
-// N streams, one vector each, then SIGTERM: seconds to exit and RSS per stream.
+int g_shutdown_vectors = 1;  // --shutdown-vectors
+
+// N streams, g_shutdown_vectors vectors each, then SIGTERM: seconds to exit and RSS per stream.
 json MeasureShutdown(const std::string& program, const fs::path& dir, int streams, bool state) {
   zmq::context_t context(1);
   ReadyEndpoints endpoints;
@@ -497,22 +502,39 @@ json MeasureShutdown(const std::string& program, const fs::path& dir, int stream
   zmq::socket_t push(context, zmq::socket_type::push);
   push.set(zmq::sockopt::linger, 0);
   push.connect(endpoints.ingest.at(0));
-  const std::vector<double> values = NormalValues(1, 5);
+  // Messages of at most 16 vectors, each stream's in time order (small, so that the per-stream
+  // batch buffers, which hold a message's rows, do not hide the window's memory).
+  const int per_message = std::min(g_shutdown_vectors, 16);
+  const std::vector<double> values = NormalValues(per_message, 5);
   std::string payload;
-  const double time = WallSeconds();
-  EncodeBinaryPayload(std::span<const double>(&time, 1), values.data(), kDims, Dtype::kFloat32,
-                      &payload);
-  for (int i = 0; i < streams; ++i) {
-    const std::string key = "pump-" + std::to_string(i);
-    push.send(zmq::buffer(key), zmq::send_flags::sndmore);
-    push.send(zmq::buffer(payload), zmq::send_flags::none);
+  const double time0 = WallSeconds();
+  std::vector<double> times(static_cast<std::size_t>(per_message));
+  for (int sent = 0; sent < g_shutdown_vectors; sent += per_message) {
+    const int n = std::min(per_message, g_shutdown_vectors - sent);
+    times.resize(static_cast<std::size_t>(n));
+    for (int k = 0; k < n; ++k) times[k] = time0 + sent + k;
+    EncodeBinaryPayload(times, values.data(), kDims, Dtype::kFloat32, &payload);
+    for (int i = 0; i < streams; ++i) {
+      const std::string key = "pump-" + std::to_string(i);
+      push.send(zmq::buffer(key), zmq::send_flags::sndmore);
+      push.send(zmq::buffer(payload), zmq::send_flags::none);
+    }
   }
-  const auto until = Clock::now() + std::chrono::seconds(120);
-  while (Clock::now() < until &&
-         testing_data::SeriesValue(HttpGet(endpoints.metrics, "/metrics"), "nuwatch_streams")
-                 .value_or(0) < streams) {
+  const auto until = Clock::now() + std::chrono::seconds(300);
+  const double expected = static_cast<double>(streams) * g_shutdown_vectors;
+  double windows = 0;
+  while (Clock::now() < until) {
+    const std::string text = HttpGet(endpoints.metrics, "/metrics");
+    windows = SumOfSeries(text, "nuwatch_window_vectors");
+    if (testing_data::SeriesValue(text, "nuwatch_streams").value_or(0) >= streams &&
+        SumOfSeries(text, "nuwatch_vectors_total") >= expected &&
+        testing_data::SeriesValue(text, "nuwatch_refits_queued").value_or(0) == 0)
+      break;
     std::this_thread::sleep_for(std::chrono::milliseconds(50));
   }
+  // After the daemon's periodic malloc_trim (every 5 s), which hands back what the burst of
+  // ingest messages left freed, so that RSS shows what the streams hold.
+  std::this_thread::sleep_for(std::chrono::seconds(6));
   const double rss_after = RssBytes(process->pid());
   const auto signalled = Clock::now();
   process->Signal(SIGTERM);
@@ -525,6 +547,8 @@ json MeasureShutdown(const std::string& program, const fs::path& dir, int stream
           {"sigterm_to_exit_seconds", seconds},
           {"exit_status", status},
           {"state_files", files},
+          {"vectors_per_stream", g_shutdown_vectors},
+          {"window_vectors_per_stream", windows / streams},
           {"rss_bytes_per_stream", (rss_after - rss_before) / streams}};
 }
 
@@ -811,6 +835,9 @@ int main(int argc, char** argv) {
   app.add_option("--shutdown-streams", shutdown_streams,
                  "also time SIGTERM-to-exit of a nuwatchd holding this many streams")
       ->check(CLI::Range(0, 100000));
+  app.add_option("--shutdown-vectors", nuwatch::g_shutdown_vectors,
+                 "vectors each --shutdown-streams stream gets (2000 fills its window)")
+      ->check(CLI::Range(1, 1000000));
   app.add_flag("!--shutdown-without-state", shutdown_state,
                "--shutdown-streams without a state directory: no state files to write");
   app.add_flag("--publish-batches", nuwatch::g_publish_batches,

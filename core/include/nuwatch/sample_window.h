@@ -6,11 +6,20 @@
 // Storage is one contiguous slots x dims buffer that grows with the window, doubling from 16
 // slots up to capacity (exactly: its last step stops at capacity), so that a stream holds memory
 // for the vectors it has, not for a full window from its first vector (a fleet of new or sparse
-// streams is the common case). Push allocates only while it grows the buffer (a full window never
-// again); Expire, Clear and the accessors never allocate, and the buffer never shrinks. Snapshot
-// and Restore may allocate (they are on the refit and state-file paths).
-// Thread safety: not thread-safe. One window per stream, owned by the stream's thread; a refit
-// works on a Snapshot, never on the window itself.
+// streams is the common case). The buffer holds float32 deviations from a reference row in
+// doubles, half the memory of double values (a full 2000 x 16 window: 128 KB instead of 256 KB).
+// Deviations, not the values themselves, so that a feature with a large offset keeps its
+// variation (a reading of 12,345,678.9 that moves by 0.01 would lose it to a float's 24 bits).
+// The reference is a row of the window itself, chosen by its id alone (the id with the most
+// trailing zero bits, then the newest), so that it moves with the window, about once per
+// capacity() pushes, costing O(dims) a push on average, and a window restored from a snapshot
+// chooses the same row and gives back the same values. A row that deviates beyond the float
+// range (more than about 3.4e38) turns the window to double values for good (then it holds
+// 8 x dims bytes a slot). Push allocates only while it grows the buffer (a full
+// window never again); Expire, Clear and the accessors never allocate, and the buffer never
+// shrinks. Snapshot and Restore may allocate (they are on the refit and state-file paths). Thread
+// safety: not thread-safe. One window per stream, owned by the stream's thread; a refit works on a
+// Snapshot, never on the window itself.
 #pragma once
 
 #include <cstddef>
@@ -54,14 +63,18 @@ class SampleWindow {
   uint64_t next_id() const { return next_id_; }
 
   // Logical index i: 0 is the oldest entry, size() - 1 the newest.
-  // Requires: 0 <= i < size() (PreconditionError otherwise). The span is valid until the next
-  // non-const call.
-  std::span<const double> Row(int64_t i) const;
+  // Requires: 0 <= i < size() (PreconditionError otherwise).
+  // Row ensures: the values pushed, each within 2^-20 x the window's range (the spread of each
+  // feature over the rows it held meanwhile): a deviation from a row of the window is rounded to
+  // a float (2^-24 relative) once, and again at each of the few re-bases of its life. Exact
+  // while the window holds doubles.
+  // Allocates its result (tests and diagnostics; refits take a Snapshot).
+  std::vector<double> Row(int64_t i) const;
   uint64_t Id(int64_t i) const;
   double Time(int64_t i) const;
 
-  // Copies the contents, oldest first: out becomes size() x dims(); ids and times (either may be
-  // null) get size() entries. Ids in a snapshot are strictly increasing.
+  // Copies the contents, oldest first: out becomes size() x dims() (values as Row gives them); ids
+  // and times (either may be null) get size() entries. Ids in a snapshot are strictly increasing.
   // Requires: out != nullptr.
   void Snapshot(MatrixD* out, std::vector<uint64_t>* ids, std::vector<double>* times) const;
 
@@ -77,6 +90,9 @@ class SampleWindow {
 
   // Bytes held by this window (object plus buffers): grows with the window up to capacity.
   std::size_t MemoryBytes() const;
+  // Whether the window holds double values (a row deviated beyond the float range), not float32
+  // deviations.
+  bool holds_doubles() const { return doubles_; }
 
  private:
   int64_t Physical(int64_t i) const;  // logical index -> slot
@@ -85,15 +101,33 @@ class SampleWindow {
   // at slot 0. The new buffers are reserved exactly, so that none holds more than it must, and
   // allocated before anything changes.
   void GrowTo(int64_t slots);
+  // The value of slot `slot`, feature j.
+  double Value(int64_t slot, int j) const;
+  // Whether every deviation of x from the reference fits a float.
+  bool FitsFloat(std::span<const double> x) const;
+  // Stores x in `slot` (the reference set, the mode chosen).
+  void Store(int64_t slot, std::span<const double> x);
+  // The occupied slot whose id is preferred as the reference (Outranks in the .cc).
+  int64_t PreferredSlot() const;
+  // Deviations from the row in `slot` from now on (or doubles, if one would not fit a float).
+  void RebaseTo(int64_t slot);
+  // Turns the buffer to double values (a row beyond the float range).
+  void SwitchToDoubles();
 
   int64_t capacity_;
   int dims_;
   double max_age_seconds_;
-  int64_t slots_ = 0;           // entries the buffers hold room for; the ring wraps here
-  std::vector<double> values_;  // slots x dims, row-major by slot
-  std::vector<uint64_t> ids_;   // by slot
-  std::vector<double> times_;   // by slot
-  int64_t head_ = 0;            // slot of the oldest entry
+  int64_t slots_ = 0;  // entries the buffers hold room for; the ring wraps here
+  // slots x dims, row-major by slot: float32 deviations from reference_, or (doubles_) the values.
+  std::vector<float> deviations_;
+  std::vector<double> values_;
+  std::vector<double> reference_;       // dims values: the row reference_id_ (in the window)
+  std::vector<double> next_reference_;  // dims values: RebaseTo's scratch, so it allocates nothing
+  uint64_t reference_id_ = 0;
+  bool doubles_ = false;
+  std::vector<uint64_t> ids_;  // by slot
+  std::vector<double> times_;  // by slot
+  int64_t head_ = 0;           // slot of the oldest entry
   int64_t size_ = 0;
   uint64_t next_id_ = 1;
 };
