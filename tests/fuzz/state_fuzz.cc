@@ -23,7 +23,7 @@ using nuwatch::fuzz::Require;
 
 namespace {
 
-// Larger dimensions only cost memory per run (the window is allocated up front); the decoder's
+// Larger dimensions only cost memory per run (the window's buffer grows with them); the decoder's
 // bounds do not depend on them.
 constexpr int kMaxImportDims = 16;
 
