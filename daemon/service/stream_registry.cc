@@ -43,10 +43,11 @@ Stream::Stream(std::string stream_key, int stream_dims, const DetectorOptions& s
       }) {
   detector = std::make_unique<Detector>(options, dims, &executor);
   metrics = metrics_owner->AddStream(key);
-  // Runs on the pool thread: only prometheus handles, which are thread-safe.
+  // Runs on the pool thread: only prometheus handles, which are thread-safe. The duration first,
+  // so that a scrape that sees the refit counted sees its duration too.
   detector->set_refit_listener([m = metrics, owner = metrics_owner](const RefitReport& report) {
-    m.refit(ClassifyRefit(report)).Increment();
     if (!report.discarded) owner->refit_duration().Observe(report.total_seconds);
+    m.refit(ClassifyRefit(report)).Increment();
   });
   RefreshSlowGauges();
 }

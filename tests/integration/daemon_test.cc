@@ -921,7 +921,15 @@ TEST(Daemon, ExposesThePrometheusMetricsUnderTheirNames) {
   auto daemon = Start(Options());
   Client client(daemon->endpoints());
   const std::vector<json> results = client.WarmUp("pump-01", NormalVectors(20, 4), 1000);
-  const std::string metrics = HttpGet(daemon->endpoints().metrics, "/metrics");
+  // The refit's metrics are written on the refit thread after its model is in place, so the
+  // first scored result can come before them (seen under ThreadSanitizer): wait for them.
+  std::string metrics;
+  const auto until = Clock::now() + kDeadline;
+  do {
+    metrics = HttpGet(daemon->endpoints().metrics, "/metrics");
+  } while (MetricValue(metrics, "nuwatch_refit_duration_seconds_count").value_or(0) < 1 &&
+           Clock::now() < until &&
+           (std::this_thread::sleep_for(std::chrono::milliseconds(5)), true));  // pacing
   const std::string s = "{stream=\"pump-01\"}";
   EXPECT_EQ(MetricValue(metrics, "nuwatch_vectors_total" + s), results.size());
   EXPECT_EQ(MetricValue(metrics, "nuwatch_refits_total{result=\"ok\",stream=\"pump-01\"}"), 1);
