@@ -586,7 +586,7 @@ Verdict Detector::ObserveTransformed(double time, std::span<const double> x) {
   return ObserveScored(time, x, *model, model->Evaluate(x));
 }
 
-void Detector::ObserveBatch(std::span<const double> times, const MatrixD& rows,
+void Detector::ObserveBatch(std::span<const double> times, const Eigen::Ref<const MatrixD>& rows,
                             std::vector<Verdict>* verdicts) {
   const int64_t n = rows.rows();
   if (static_cast<int64_t>(times.size()) != n) {
@@ -598,7 +598,8 @@ void Detector::ObserveBatch(std::span<const double> times, const MatrixD& rows,
                             " values, the stream " + std::to_string(dims_));
   }
   for (int64_t i = 0; i < n; ++i)
-    CheckVector(times[i], std::span<const double>(&rows(i, 0), dims_), "Detector::ObserveBatch", i);
+    CheckVector(times[i], std::span<const double>(rows.row(i).data(), dims_),
+                "Detector::ObserveBatch", i);
   verdicts->resize(static_cast<std::size_t>(n));
   batch_scored_row_.assign(static_cast<std::size_t>(n), -1);
   batch_model_ = shared_->model.load();
@@ -606,7 +607,7 @@ void Detector::ObserveBatch(std::span<const double> times, const MatrixD& rows,
     // Learning: the warm-up fit may install a model within the batch (inline executor), and the
     // rows after it are then scored by it, as Observe would.
     for (int64_t i = 0; i < n; ++i)
-      (*verdicts)[i] = Observe(times[i], std::span<const double>(&rows(i, 0), dims_));
+      (*verdicts)[i] = Observe(times[i], std::span<const double>(rows.row(i).data(), dims_));
     return;
   }
   // The transform depends on the rows alone, so it runs first; the window, the incidents and the
@@ -616,7 +617,7 @@ void Detector::ObserveBatch(std::span<const double> times, const MatrixD& rows,
   std::vector<char> ready(static_cast<std::size_t>(n), 1);
   int64_t scored = 0;
   for (int64_t i = 0; i < n; ++i) {
-    const std::span<const double> x(&rows(i, 0), dims_);
+    const std::span<const double> x(rows.row(i).data(), dims_);
     if (transform_.history_needed() == 0) {
       batch_z_.row(scored) = rows.row(i);
     } else {

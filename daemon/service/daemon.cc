@@ -459,8 +459,15 @@ struct Daemon::Impl final : ControlCommands {
   // (Detector::ObserveBatch), the metrics updated once for the message, the flagged rows alone
   // explained.
   void ProcessBatch(Shard& shard, Stream& stream, const PayloadView& payload);
-  // ObserveBatch of stream.batch_rows at stream.batch_times, then metrics and results.
-  void ScoreBatchRows(Shard& shard, Stream& stream);
+  // Copies the message's times and rows out of its frame into times and rows (resized to the
+  // message), recording each row as it goes when the stream records. Shared by whole messages and
+  // sliced ones, so that both record the same way.
+  void CopyMessageRows(Stream& stream, const PayloadView& payload, MatrixD& rows,
+                       std::vector<double>& times);
+  // ObserveBatch of the rows at their times, then metrics and results. rows may be a block of a
+  // sliced message: taken by Ref, without a copy.
+  void ScoreBatchRows(Shard& shard, Stream& stream, std::span<const double> times,
+                      const Eigen::Ref<const MatrixD>& rows);
   // A message of more vectors than one slice: copied into stream.sliced, its first slice scored;
   // the shard's turns score the rest (ScoreSlices). Its bytes stay counted until the last slice.
   void StartSliced(Shard& shard, Stream& stream, const PayloadView& payload, QueuedBytes& bytes);
@@ -1698,52 +1705,45 @@ void Daemon::Impl::ProcessVector(Shard& shard, Stream& stream, const PayloadView
 }
 
 void Daemon::Impl::ProcessBatch(Shard& shard, Stream& stream, const PayloadView& payload) {
+  CopyMessageRows(stream, payload, stream.batch_rows, stream.batch_times);
+  ScoreBatchRows(shard, stream, stream.batch_times, stream.batch_rows);
+}
+
+void Daemon::Impl::CopyMessageRows(Stream& stream, const PayloadView& payload, MatrixD& rows,
+                                   std::vector<double>& times) {
   const int n = payload.count;
-  if (stream.batch_rows.rows() != n || stream.batch_rows.cols() != stream.dims)
-    stream.batch_rows.resize(n, stream.dims);
-  stream.batch_times.resize(static_cast<std::size_t>(n));
+  if (rows.rows() != n || rows.cols() != stream.dims) rows.resize(n, stream.dims);
+  times.resize(static_cast<std::size_t>(n));
   for (int i = 0; i < n; ++i) {
     const double t = payload.time(i);
-    stream.batch_times[i] = t;
-    const std::span<double> row(&stream.batch_rows(i, 0), static_cast<std::size_t>(stream.dims));
+    times[i] = t;
+    const std::span<double> row(&rows(i, 0), static_cast<std::size_t>(stream.dims));
     payload.CopyRow(i, row);
     if (stream.recorder) {
       std::copy(row.begin(), row.end(), stream.row.begin());
       Record(stream, t);
     }
   }
-  ScoreBatchRows(shard, stream);
 }
 
-void Daemon::Impl::ScoreBatchRows(Shard& shard, Stream& stream) {
+void Daemon::Impl::ScoreBatchRows(Shard& shard, Stream& stream, std::span<const double> times,
+                                  const Eigen::Ref<const MatrixD>& rows) {
   Detector& detector = *stream.detector;
   const Clock::time_point started_at = Clock::now();
-  detector.ObserveBatch(stream.batch_times, stream.batch_rows, &stream.batch_verdicts);
+  detector.ObserveBatch(times, rows, &stream.batch_verdicts);
   // One observation per message (or slice), of the time per vector, so that the histogram keeps
   // measuring what one vector costs (metrics.h) without a mutex-taking Observe per row.
   metrics.score_duration().Observe(
       std::chrono::duration<double>(Clock::now() - started_at).count() /
-      static_cast<double>(stream.batch_times.size()));
-  UpdateStreamMetrics(stream, stream.batch_verdicts, stream.batch_times.back());
-  PublishResults(shard, stream, stream.batch_times, stream.batch_verdicts, /*batch=*/true);
+      static_cast<double>(times.size()));
+  UpdateStreamMetrics(stream, stream.batch_verdicts, times.back());
+  PublishResults(shard, stream, times, stream.batch_verdicts, /*batch=*/true);
 }
 
 void Daemon::Impl::StartSliced(Shard& shard, Stream& stream, const PayloadView& payload,
                                QueuedBytes& bytes) {
-  const int n = payload.count;
   auto sliced = std::make_unique<SlicedMessage>();
-  sliced->rows.resize(n, stream.dims);
-  sliced->times.resize(static_cast<std::size_t>(n));
-  for (int i = 0; i < n; ++i) {
-    const double t = payload.time(i);
-    sliced->times[i] = t;
-    const std::span<double> row(&sliced->rows(i, 0), static_cast<std::size_t>(stream.dims));
-    payload.CopyRow(i, row);
-    if (stream.recorder) {
-      std::copy(row.begin(), row.end(), stream.row.begin());
-      Record(stream, t);
-    }
-  }
+  CopyMessageRows(stream, payload, sliced->rows, sliced->times);
   sliced->queued_bytes = bytes.Keep();  // after the copies, which may throw bad_alloc
   stream.sliced = std::move(sliced);
   // The first slice at once, as an unsliced message would be; the rest in the shard's turns.
@@ -1758,9 +1758,10 @@ bool Daemon::Impl::ScoreSlice(Shard& shard, Stream& stream) {
   // Advanced first, so that a slice that throws is not scored again.
   sliced.next = begin + rows;
   try {
-    stream.batch_rows = sliced.rows.middleRows(begin, rows);
-    stream.batch_times.assign(sliced.times.begin() + begin, sliced.times.begin() + begin + rows);
-    ScoreBatchRows(shard, stream);
+    ScoreBatchRows(shard, stream,
+                   std::span<const double>(sliced.times)
+                       .subspan(static_cast<std::size_t>(begin), static_cast<std::size_t>(rows)),
+                   sliced.rows.middleRows(begin, rows));
   } catch (const std::bad_alloc&) {
     // As for a whole message (HandleIngest): the rest of this one is refused and counted.
     Reject(RejectReason::kStreamLimit, "not enough memory to grow the stream's training window",

@@ -156,8 +156,9 @@ class Detector {
   // Requires: times.size() == rows.rows(), rows.cols() == dims(), finite values and times
   // (PreconditionError naming the first bad row otherwise; the detector is then unchanged).
   // Ensures: verdicts->size() == rows.rows(), verdict i for row i. Allocates the batched
-  // product's buffers once per call, not per row.
-  void ObserveBatch(std::span<const double> times, const MatrixD& rows,
+  // product's buffers once per call, not per row. rows may be a block of a larger matrix (a slice
+  // of a message, say): a Ref to rows of a row-major matrix is taken without a copy.
+  void ObserveBatch(std::span<const double> times, const Eigen::Ref<const MatrixD>& rows,
                     std::vector<Verdict>* verdicts);
   // The attribution of row i of the last ObserveBatch, by the model that scored it; empty if that
   // row was not scored. Owner thread; allocates its result.
