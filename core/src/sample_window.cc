@@ -25,6 +25,12 @@ bool Outranks(uint64_t a, uint64_t b) {
   return za > zb || (za == zb && a > b);
 }
 
+// Whether value - reference can be stored as a float: its magnitude within the float range. A
+// subtraction that overflows to infinity does not fit.
+bool DeviationFitsFloat(double value, double reference) {
+  return std::abs(value - reference) <= std::numeric_limits<float>::max();
+}
+
 }  // namespace
 
 SampleWindow::SampleWindow(int64_t capacity, int dims, double max_age_seconds)
@@ -96,11 +102,8 @@ double SampleWindow::Value(int64_t slot, int j) const {
 }
 
 bool SampleWindow::FitsFloat(std::span<const double> x) const {
-  constexpr double kFloatMax = std::numeric_limits<float>::max();
-  for (int j = 0; j < dims_; ++j) {
-    // Negated, so that an overflow to infinity in the subtraction does not fit either.
-    if (!(std::abs(x[j] - reference_[j]) <= kFloatMax)) return false;
-  }
+  for (int j = 0; j < dims_; ++j)
+    if (!DeviationFitsFloat(x[j], reference_[j])) return false;
   return true;
 }
 
@@ -125,11 +128,10 @@ int64_t SampleWindow::PreferredSlot() const {
 void SampleWindow::RebaseTo(int64_t slot) {
   if (doubles_) return;
   for (int j = 0; j < dims_; ++j) next_reference_[j] = Value(slot, j);
-  constexpr double kFloatMax = std::numeric_limits<float>::max();
   for (int64_t i = 0; i < size_; ++i) {
     const int64_t s = Physical(i);
     for (int j = 0; j < dims_; ++j) {
-      if (!(std::abs(Value(s, j) - next_reference_[j]) <= kFloatMax)) {
+      if (!DeviationFitsFloat(Value(s, j), next_reference_[j])) {
         SwitchToDoubles();
         return;
       }
@@ -321,8 +323,7 @@ void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
     const auto reference = rows.row(preferred);
     bool fits = true;
     for (int64_t r = skip; r < n && fits; ++r)
-      for (int j = 0; j < dims_ && fits; ++j)
-        fits = std::abs(rows(r, j) - reference(j)) <= std::numeric_limits<float>::max();
+      for (int j = 0; j < dims_ && fits; ++j) fits = DeviationFitsFloat(rows(r, j), reference(j));
     if (fits && !doubles_) {
       reference_.assign(reference.data(), reference.data() + dims_);
       next_reference_.resize(static_cast<std::size_t>(dims_));
