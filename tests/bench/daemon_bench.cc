@@ -25,7 +25,9 @@
 // each form and their ratios.
 // --shutdown-streams N: a second nuwatchd gets N streams (one vector each, window 2000, a state
 // directory) and the time from SIGTERM to its exit is measured, with its RSS per stream.
-// --shutdown-vectors M gives each stream M vectors instead (2000 fills its window).
+// --shutdown-vectors M gives each stream M vectors instead (2000 fills its window). RSS is read
+// once the refits those vectors set off are done (rss_bytes_per_stream) and at its highest before
+// that (rss_peak_bytes_per_stream).
 //
 // Usage: nuwatch_daemon_bench [--nuwatchd PATH] [--seconds 1.0] [--rounds 2] [--json]
 //                             [--streams 4] [--scoring-threads 0] [--publish-batches]
@@ -523,17 +525,31 @@ json MeasureShutdown(const std::string& program, const fs::path& dir, int stream
   const auto until = Clock::now() + std::chrono::seconds(300);
   const double expected = static_cast<double>(streams) * g_shutdown_vectors;
   double windows = 0;
+  // Until every vector is scored and the refits they caused are done: none queued and the count
+  // of finished refits unchanged for 2 s. A queued refit holds a copy of its window (in doubles,
+  // twice the window's own bytes), so that RSS taken during the wave of refits that full windows
+  // set off measures the backlog, not the streams; its peak is reported apart.
+  double rss_peak = 0;
+  double refits_seen = -1;
+  auto refits_settled_since = Clock::now();
   while (Clock::now() < until) {
     const std::string text = HttpGet(endpoints.metrics, "/metrics");
+    rss_peak = std::max(rss_peak, RssBytes(process->pid()));
     windows = SumOfSeries(text, "nuwatch_window_vectors");
+    const double refits = SumOfSeries(text, "nuwatch_refits_total");
+    if (refits != refits_seen) {
+      refits_seen = refits;
+      refits_settled_since = Clock::now();
+    }
     if (testing_data::SeriesValue(text, "nuwatch_streams").value_or(0) >= streams &&
         SumOfSeries(text, "nuwatch_vectors_total") >= expected &&
-        testing_data::SeriesValue(text, "nuwatch_refits_queued").value_or(0) == 0)
+        testing_data::SeriesValue(text, "nuwatch_refits_queued").value_or(0) == 0 &&
+        Clock::now() - refits_settled_since >= std::chrono::seconds(2))
       break;
     std::this_thread::sleep_for(std::chrono::milliseconds(50));
   }
   // After the daemon's periodic malloc_trim (every 5 s), which hands back what the burst of
-  // ingest messages left freed, so that RSS shows what the streams hold.
+  // ingest messages and the refits left freed, so that RSS shows what the streams hold.
   std::this_thread::sleep_for(std::chrono::seconds(6));
   const double rss_after = RssBytes(process->pid());
   const auto signalled = Clock::now();
@@ -549,7 +565,8 @@ json MeasureShutdown(const std::string& program, const fs::path& dir, int stream
           {"state_files", files},
           {"vectors_per_stream", g_shutdown_vectors},
           {"window_vectors_per_stream", windows / streams},
-          {"rss_bytes_per_stream", (rss_after - rss_before) / streams}};
+          {"rss_bytes_per_stream", (rss_after - rss_before) / streams},
+          {"rss_peak_bytes_per_stream", (rss_peak - rss_before) / streams}};
 }
 
 // --compare-result-forms: one nuwatchd, 64-vector binary messages, publish.result_form switched
