@@ -103,7 +103,7 @@ const Setting<D> kDetectorKeys[] = {
      .member = &D::window,
      .doc = "Vectors kept for training; the window should span the process's normal cycle.",
      .unit = "vectors",
-     // Grows to (4 x features + 16) bytes x window as the stream fills; a larger value cannot be
+     // Grows to (4 x features + 8) bytes x window as the stream fills; a larger value cannot be
      // allocated for any useful number of features, and once overflowed the size (issue 10).
      .bounds = {.min = 2, .max = 1e7},
      .group = kRefits},

@@ -69,9 +69,7 @@ std::vector<T> InOrder(const std::vector<T>& buffer, int64_t head, int64_t first
 void SampleWindow::GrowTo(int64_t slots) {
   slots = std::min(slots, capacity_);
   if (slots <= slots_) return;
-  std::vector<uint64_t> ids;
   std::vector<double> times;
-  ids.reserve(static_cast<std::size_t>(slots));
   times.reserve(static_cast<std::size_t>(slots));
   const int64_t first_run = std::min(size_, slots_ - head_);
   const int64_t second_run = size_ - first_run;
@@ -82,15 +80,11 @@ void SampleWindow::GrowTo(int64_t slots) {
   } else {
     deviations = InOrder(deviations_, head_, first_run, second_run, slots, dims_);
   }
-  ids.insert(ids.end(), ids_.begin() + head_, ids_.begin() + head_ + first_run);
-  ids.insert(ids.end(), ids_.begin(), ids_.begin() + second_run);
   times.insert(times.end(), times_.begin() + head_, times_.begin() + head_ + first_run);
   times.insert(times.end(), times_.begin(), times_.begin() + second_run);
-  ids.resize(static_cast<std::size_t>(slots));
   times.resize(static_cast<std::size_t>(slots));
   deviations_.swap(deviations);
   values_.swap(values);
-  ids_.swap(ids);
   times_.swap(times);
   head_ = 0;
   slots_ = slots;
@@ -117,12 +111,10 @@ void SampleWindow::Store(int64_t slot, std::span<const double> x) {
 }
 
 int64_t SampleWindow::PreferredSlot() const {
-  int64_t best = Physical(0);
-  for (int64_t i = 1; i < size_; ++i) {
-    const int64_t slot = Physical(i);
-    if (Outranks(ids_[slot], ids_[best])) best = slot;
-  }
-  return best;
+  int64_t best = 0;
+  for (int64_t i = 1; i < size_; ++i)
+    if (Outranks(first_id_ + i, first_id_ + best)) best = i;
+  return Physical(best);
 }
 
 void SampleWindow::RebaseTo(int64_t slot) {
@@ -145,7 +137,8 @@ void SampleWindow::RebaseTo(int64_t slot) {
     }
   }
   reference_.swap(next_reference_);
-  reference_id_ = ids_[slot];
+  reference_id_ =
+      first_id_ + static_cast<uint64_t>(slot >= head_ ? slot - head_ : slot + slots_ - head_);
 }
 
 void SampleWindow::SwitchToDoubles() {
@@ -180,6 +173,7 @@ uint64_t SampleWindow::Push(double time, std::span<const double> x) {
     }
   }
   const uint64_t id = next_id_;
+  if (size_ == 0) first_id_ = id;
   if (!doubles_ && size_ == 0) {
     // The first row of an empty window is its own reference.
     reference_.assign(x.begin(), x.end());
@@ -191,8 +185,9 @@ uint64_t SampleWindow::Push(double time, std::span<const double> x) {
   bool reference_evicted = false;
   if (size_ == capacity_) {
     slot = head_;  // overwrite the oldest (the buffer has capacity slots by now)
-    reference_evicted = ids_[slot] == reference_id_;
+    reference_evicted = first_id_ == reference_id_;
     head_ = head_ + 1 == slots_ ? 0 : head_ + 1;
+    ++first_id_;
   } else {
     if (size_ == slots_) GrowTo(std::max(kFirstSlots, 2 * slots_));
     slot = Physical(size_);
@@ -200,7 +195,6 @@ uint64_t SampleWindow::Push(double time, std::span<const double> x) {
   }
   Store(slot, x);
   ++next_id_;
-  ids_[slot] = id;
   times_[slot] = time;
   if (!doubles_) {
     if (Outranks(id, reference_id_)) {
@@ -221,8 +215,9 @@ void SampleWindow::ExpireOlderThan(double now) {
   const double cutoff = now - max_age_seconds_;
   bool reference_expired = false;
   while (size_ > 0 && times_[head_] < cutoff) {
-    reference_expired = reference_expired || ids_[head_] == reference_id_;
+    reference_expired = reference_expired || first_id_ == reference_id_;
     head_ = head_ + 1 == slots_ ? 0 : head_ + 1;
+    ++first_id_;
     --size_;
   }
   if (reference_expired && size_ > 0) RebaseTo(PreferredSlot());
@@ -243,7 +238,7 @@ std::vector<double> SampleWindow::Row(int64_t i) const {
 
 uint64_t SampleWindow::Id(int64_t i) const {
   CheckIndex(i, "SampleWindow::Id");
-  return ids_[Physical(i)];
+  return first_id_ + static_cast<uint64_t>(i);
 }
 
 double SampleWindow::Time(int64_t i) const {
@@ -264,10 +259,7 @@ void SampleWindow::Snapshot(MatrixD* out, std::vector<uint64_t>* ids,
     const int64_t slot = Physical(i);
     for (int j = 0; j < dims_; ++j) (*out)(i, j) = Value(slot, j);
   }
-  if (ids != nullptr) {
-    std::copy_n(ids_.data() + head_, first_run, ids->data());
-    std::copy_n(ids_.data(), second_run, ids->data() + first_run);
-  }
+  if (ids != nullptr) std::iota(ids->begin(), ids->end(), first_id_);
   if (times != nullptr) {
     std::copy_n(times_.data() + head_, first_run, times->data());
     std::copy_n(times_.data(), second_run, times->data() + first_run);
@@ -288,11 +280,11 @@ void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
                             std::to_string(times.size()) + " times");
   }
   for (int64_t r = 0; r < n; ++r) {
-    if (ids[r] < 1 || (r > 0 && ids[r] <= ids[r - 1])) {
+    if (ids[r] < 1 || (r > 0 && ids[r] != ids[r - 1] + 1)) {
       throw PreconditionError("SampleWindow::Restore: row " + RoundTripText(r) + ": id " +
                               RoundTripText(ids[r]) +
                               (r > 0 ? " after id " + RoundTripText(ids[r - 1]) : std::string()) +
-                              "; ids must be >= 1 and strictly increasing");
+                              "; ids must be >= 1 and consecutive");
     }
     if (!std::isfinite(times[r])) {
       throw PreconditionError("SampleWindow::Restore: row " + RoundTripText(r) +
@@ -306,10 +298,10 @@ void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
       }
     }
   }
-  if (next_id < 1 || (n > 0 && next_id <= ids[n - 1])) {
+  if (next_id < 1 || (n > 0 && next_id != ids[n - 1] + 1)) {
     throw PreconditionError("SampleWindow::Restore: next_id = " + RoundTripText(next_id) +
-                            " must be >= 1 and greater than the last id" +
-                            (n > 0 ? " (" + RoundTripText(ids[n - 1]) + ")" : std::string()));
+                            " must be >= 1 and the last id + 1" +
+                            (n > 0 ? " (" + RoundTripText(ids[n - 1] + 1) + ")" : std::string()));
   }
   const int64_t skip = std::max<int64_t>(0, n - capacity_);
   size_ = 0;  // the rows are replaced: GrowTo need not keep any
@@ -339,9 +331,9 @@ void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
   for (int64_t r = 0; r < size_; ++r) {
     const auto row = rows.row(skip + r);
     Store(r, std::span<const double>(row.data(), static_cast<std::size_t>(dims_)));
-    ids_[r] = ids[skip + r];
     times_[r] = times[skip + r];
   }
+  first_id_ = n > 0 ? ids[skip] : 0;
   next_id_ = next_id;
 }
 
@@ -349,7 +341,7 @@ std::size_t SampleWindow::MemoryBytes() const {
   return sizeof(*this) + deviations_.capacity() * sizeof(float) +
          values_.capacity() * sizeof(double) +
          (reference_.capacity() + next_reference_.capacity()) * sizeof(double) +
-         ids_.capacity() * sizeof(uint64_t) + times_.capacity() * sizeof(double);
+         times_.capacity() * sizeof(double);
 }
 
 VectorD MapWarmStart(const std::vector<uint64_t>& old_ids, const VectorD& old_alpha,

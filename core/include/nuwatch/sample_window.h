@@ -1,7 +1,9 @@
 // The training window of one stream: a ring buffer of the vectors accepted for training, bounded by
 // count and optionally by age. Each entry carries a sample id, assigned on push and strictly
 // increasing over the window's life (Clear does not reuse ids), so that a refit can map the
-// previous fit's alphas onto the samples that survived the slide (MapWarmStart below).
+// previous fit's alphas onto the samples that survived the slide (MapWarmStart below). Entries
+// leave from the oldest end only, so the ids in the window are consecutive and only the oldest
+// one is stored (a stored id per entry was 16 KB of a full 2000-entry window).
 //
 // Storage is one contiguous slots x dims buffer that grows with the window, doubling from 16
 // slots up to capacity (exactly: its last step stops at capacity), so that a stream holds memory
@@ -74,17 +76,17 @@ class SampleWindow {
   double Time(int64_t i) const;
 
   // Copies the contents, oldest first: out becomes size() x dims() (values as Row gives them); ids
-  // and times (either may be null) get size() entries. Ids in a snapshot are strictly increasing.
+  // and times (either may be null) get size() entries. Ids in a snapshot are consecutive.
   // Requires: out != nullptr.
   void Snapshot(MatrixD* out, std::vector<uint64_t>* ids, std::vector<double>* times) const;
 
   // Replaces the contents with saved rows (oldest first), as from a state file. When there are more
   // rows than capacity() (the configured window shrank) only the newest capacity() are kept, as
   // pushing them in order would. The age limit is not applied: call ExpireOlderThan.
-  // Requires: rows.cols() == dims(); ids.size() == times.size() == rows.rows(); ids strictly
-  // increasing and >= 1; next_id > the last id (any next_id >= 1 when there are no rows); finite
-  // values and times. Throws PreconditionError naming the offending row and value; the window is
-  // unchanged then.
+  // Requires: rows.cols() == dims(); ids.size() == times.size() == rows.rows(); ids consecutive
+  // (each one more than the last, as Snapshot gives them) and >= 1; next_id the last id + 1 (any
+  // next_id >= 1 when there are no rows); finite values and times. Throws PreconditionError naming
+  // the offending row and value; the window is unchanged then.
   void Restore(const MatrixD& rows, std::span<const uint64_t> ids, std::span<const double> times,
                uint64_t next_id);
 
@@ -125,7 +127,7 @@ class SampleWindow {
   std::vector<double> next_reference_;  // dims values: RebaseTo's scratch, so it allocates nothing
   uint64_t reference_id_ = 0;
   bool doubles_ = false;
-  std::vector<uint64_t> ids_;  // by slot
+  uint64_t first_id_ = 0;      // the id of the oldest entry; entry i has first_id_ + i
   std::vector<double> times_;  // by slot
   int64_t head_ = 0;           // slot of the oldest entry
   int64_t size_ = 0;

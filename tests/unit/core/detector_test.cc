@@ -984,7 +984,7 @@ TEST(DetectorBadInput, ObserveUpdateAndImportRejectBadInputAndLeaveTheDetectorUn
 
 // The target for one stream: window x dims x 8 bytes (the training rows in double) plus
 // budget x dims x 4 bytes (the support vectors in float32 for scoring), here 2000 x 16 x 8 +
-// 256 x 16 x 4 = 272384 bytes. What the detector holds beyond that (ids and times of the window
+// 256 x 16 x 4 = 272384 bytes. What the detector holds beyond that (the times of the window
 // rows, the double copy of the support vectors, the last solution for the warm start) must stay
 // within half of it: 1.5x the target. nu 0.2 makes every fit compress (nu l = 400 > 256), so the
 // model is at the budget after every refit, and the memory must be flat over the refits.
@@ -1016,8 +1016,8 @@ TEST(DetectorMemory, WithinOneAndAHalfTimesTheTargetAndFlatOverRefits) {
   ::testing::Test::RecordProperty("memory_target_bytes", std::to_string(target));
   ::testing::Test::RecordProperty("memory_max_bytes", std::to_string(*high));
   // The target is the one set for doubles in the window; the window holds float32 deviations
-  // now (sample_window.h), so the floor is what it holds: l x (d x 4 + an id and a time).
-  EXPECT_GE(*low, static_cast<std::size_t>(window * (d * 4 + 16)));
+  // now (sample_window.h), so the floor is what it holds: l x (d x 4 + a time).
+  EXPECT_GE(*low, static_cast<std::size_t>(window * (d * 4 + 8)));
   EXPECT_LE(static_cast<double>(*high), 1.5 * static_cast<double>(target));
   // Flat: the window is allocated once and the model is at the budget every time; only the kept
   // solution (about nu l ids and alphas, 16 bytes each) varies with the number of support

@@ -173,15 +173,20 @@ TEST(SampleWindowTest, RestoreRoundTripsASnapshot) {
 TEST(SampleWindowTest, RestoreIntoASmallerWindowKeepsTheNewest) {
   MatrixD rows(3, 1);
   rows << 10, 20, 30;
-  const std::vector<uint64_t> ids = {4, 8, 9};
+  const std::vector<uint64_t> ids = {7, 8, 9};
   const std::vector<double> times = {1, 2, 3};
   SampleWindow window(/*capacity=*/2, /*dims=*/1);
-  window.Restore(rows, ids, times, /*next_id=*/12);
+  window.Restore(rows, ids, times, /*next_id=*/10);
   ASSERT_EQ(window.size(), 2);
   EXPECT_EQ(window.Id(0), 8u);
   EXPECT_EQ(window.Row(0)[0], 20.0);
   EXPECT_EQ(window.Id(1), 9u);
-  EXPECT_EQ(window.next_id(), 12u);
+  EXPECT_EQ(window.next_id(), 10u);
+  // The ids go on from the restored ones as the window slides.
+  EXPECT_EQ(window.Push(4, std::vector<double>{40.0}), 10u);
+  EXPECT_EQ(window.Id(0), 9u);
+  EXPECT_EQ(window.Id(1), 10u);
+  EXPECT_EQ(window.Row(1)[0], 40.0);
 }
 
 TEST(SampleWindowTest, RestoreRejectsBadStateAndLeavesTheWindowAlone) {
@@ -197,10 +202,22 @@ TEST(SampleWindowTest, RestoreRejectsBadStateAndLeavesTheWindowAlone) {
     EXPECT_THAT(e.what(), HasSubstr("row 1: id 7 after id 7"));
   }
   try {
+    window.Restore(rows, std::vector<uint64_t>{3, 5}, times, 6);
+    FAIL() << "a gap in the ids accepted";
+  } catch (const PreconditionError& e) {
+    EXPECT_THAT(e.what(), HasSubstr("row 1: id 5 after id 3"));
+  }
+  try {
     window.Restore(rows, std::vector<uint64_t>{3, 4}, times, 4);
     FAIL() << "next_id <= last id accepted";
   } catch (const PreconditionError& e) {
     EXPECT_THAT(e.what(), HasSubstr("next_id = 4"));
+  }
+  try {
+    window.Restore(rows, std::vector<uint64_t>{3, 4}, times, 7);
+    FAIL() << "next_id past the last id + 1 accepted";
+  } catch (const PreconditionError& e) {
+    EXPECT_THAT(e.what(), HasSubstr("next_id = 7"));
   }
   EXPECT_THROW(window.Restore(rows, std::vector<uint64_t>{1}, times, 9), PreconditionError);
   EXPECT_THROW(window.Restore(MatrixD::Zero(2, 3), std::vector<uint64_t>{1, 2}, times, 9),
@@ -247,9 +264,9 @@ TEST(SampleWindowTest, ConstructorRejectsBadParameters) {
 // Issue 9 section 5: a stream holds memory for the vectors it has, not a full window from its first
 // vector. The buffer doubles from 16 slots and stops exactly at capacity.
 TEST(SampleWindowTest, MemoryGrowsWithTheWindowAndStopsAtCapacity) {
-  // A slot: 6 float32 deviations, an id and a time; once, the reference row and its scratch, in
-  // doubles.
-  constexpr std::size_t kSlotBytes = 6 * sizeof(float) + sizeof(uint64_t) + sizeof(double);
+  // A slot: 6 float32 deviations and a time (the ids are consecutive: only the oldest is kept);
+  // once, the reference row and its scratch, in doubles.
+  constexpr std::size_t kSlotBytes = 6 * sizeof(float) + sizeof(double);
   SampleWindow window(/*capacity=*/100, /*dims=*/6);
   const std::size_t empty = window.MemoryBytes() + 2 * 6 * sizeof(double);
   EXPECT_EQ(window.MemoryBytes(), sizeof(SampleWindow));  // nothing allocated before a vector
