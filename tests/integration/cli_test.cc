@@ -435,11 +435,19 @@ TEST_F(Control, RefusalsUnknownCommandsAndSilenceAreErrors) {
   EXPECT_EQ(missing.exit_code, 1);
   EXPECT_THAT(missing.err, HasSubstr("relearn needs the stream key"));
 
-  // The ingest socket (PULL) never completes a REQ handshake: the client says so after its
-  // timeout instead of waiting for ever.
+  // The ingest socket (PULL) never completes a REQ handshake: the client says so instead of
+  // waiting for ever. Which of its two reports comes depends on how ZeroMQ ends the handshake,
+  // which varies from run to run (client_keys.cc): a protocol error leaves it to the timeout; a
+  // close without a reason, seen on a few reconnects, is reported as such, naming the wrong kind
+  // of socket as a cause (about 1 run in 10 here).
   const ProgramRun silent = Nuwatch("control status --connect " + ingest_ + " --timeout 0.3s");
   EXPECT_EQ(silent.exit_code, 1);
-  EXPECT_THAT(silent.err, HasSubstr("no reply from " + ingest_ + " within --timeout 0.3s"));
+  EXPECT_THAT(silent.err,
+              ::testing::AnyOf(
+                  HasSubstr("no reply from " + ingest_ + " within --timeout 0.3s"),
+                  HasSubstr(ingest_ + ": the connection closed during the handshake: the daemon "
+                                      "may require CURVE (pass --client-key and --server-key), "
+                                      "or this is the wrong kind of socket")));
 }
 
 // tail pointed at the ingest socket (PULL) used to wait in silence: ZeroMQ's handshake checks
