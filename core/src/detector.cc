@@ -118,9 +118,9 @@ namespace {
 
 struct RefitInput {
   DetectorOptions options;
-  MatrixD rows;
-  std::vector<uint64_t> ids;
-  std::vector<double> times;
+  // The window when the refit was posted, packed: a refit waiting in the queue holds about half
+  // the bytes of the rows in doubles, which it builds only when a refit thread takes it.
+  SampleWindow::Packed window;
   std::shared_ptr<const Model> base;  // null for a cold fit
   RefitReason reason;
   double time;
@@ -145,14 +145,17 @@ void RunRefit(SharedT& shared, const RefitInput& in) {
       }
     }
     warm.base = in.base;
-    fit = FitWindow(in.rows, in.ids, in.times, in.options, in.base ? &warm : nullptr, version);
+    MatrixD rows;
+    std::vector<uint64_t> ids;
+    in.window.Unpack(&rows, &ids);
+    fit = FitWindow(rows, ids, in.window.times, in.options, in.base ? &warm : nullptr, version);
     report = fit.report;
   } catch (const std::exception& e) {
     report.ok = false;
     report.error = e.what();
   }
   report.reason = in.reason;
-  report.window_vectors = in.rows.rows();
+  report.window_vectors = in.window.rows();
   report.total_seconds = Seconds(started);
   std::function<void(const RefitReport&)> listener;
   {
@@ -726,7 +729,7 @@ void Detector::PostRefit(double time, RefitReason reason) {
   ApplyPendingOptions();
   auto input = std::make_shared<RefitInput>();
   input->options = options_;
-  window_.Snapshot(&input->rows, &input->ids, &input->times);
+  window_.Pack(&input->window);
   const bool cold = force_cold_ || reason == RefitReason::kWarmup ||
                     refits_since_cold_ + 1 >= options_.cold_refit_every || !model();
   input->base = cold ? nullptr : model();

@@ -266,6 +266,48 @@ void SampleWindow::Snapshot(MatrixD* out, std::vector<uint64_t>* ids,
   }
 }
 
+void SampleWindow::Pack(Packed* out) const {
+  if (out == nullptr) throw PreconditionError("SampleWindow::Pack: out is null");
+  out->dims = dims_;
+  out->first_id = first_id_;
+  out->reference = reference_;
+  const int64_t first_run = std::min(size_, slots_ - head_);
+  const int64_t second_run = size_ - first_run;
+  const std::size_t head = static_cast<std::size_t>(head_);
+  const auto in_order = [&](const auto& buffer, auto& to, std::size_t width) {
+    to.resize(static_cast<std::size_t>(size_) * width);
+    std::copy_n(buffer.begin() + head * width, first_run * width, to.begin());
+    std::copy_n(buffer.begin(), second_run * width, to.begin() + first_run * width);
+  };
+  const std::size_t dims = static_cast<std::size_t>(dims_);
+  if (doubles_) {
+    in_order(values_, out->values, dims);
+    out->deviations.clear();
+  } else {
+    in_order(deviations_, out->deviations, dims);
+    out->values.clear();
+  }
+  in_order(times_, out->times, 1);
+}
+
+void SampleWindow::Packed::Unpack(MatrixD* out, std::vector<uint64_t>* ids) const {
+  if (out == nullptr) throw PreconditionError("SampleWindow::Packed::Unpack: out is null");
+  const int64_t n = rows();
+  out->resize(n, dims);
+  if (!values.empty()) {
+    std::copy(values.begin(), values.end(), out->data());
+  } else {
+    // As Value computes it, so that the rows are Snapshot's bit for bit.
+    for (int64_t r = 0; r < n; ++r)
+      for (int j = 0; j < dims; ++j)
+        (*out)(r, j) = reference[j] + static_cast<double>(deviations[r * dims + j]);
+  }
+  if (ids != nullptr) {
+    ids->resize(static_cast<std::size_t>(n));
+    std::iota(ids->begin(), ids->end(), first_id);
+  }
+}
+
 void SampleWindow::Restore(const MatrixD& rows, std::span<const uint64_t> ids,
                            std::span<const double> times, uint64_t next_id) {
   const int64_t n = rows.rows();

@@ -80,6 +80,24 @@ class SampleWindow {
   // Requires: out != nullptr.
   void Snapshot(MatrixD* out, std::vector<uint64_t>* ids, std::vector<double>* times) const;
 
+  // The contents in the window's own compact form, oldest first, to be turned into a matrix later
+  // and on another thread (Unpack): a refit waiting in a queue holds this, about half the bytes of
+  // a Snapshot (float32 deviations and a reference row, not doubles; the oldest id, not one a row).
+  struct Packed {
+    int dims = 0;
+    std::vector<float> deviations;  // rows x dims, row-major (empty when values holds the rows)
+    std::vector<double> values;     // rows x dims, row-major: a window that holds doubles
+    std::vector<double> reference;  // dims values: deviations are from this row
+    std::vector<double> times;      // one a row
+    uint64_t first_id = 0;          // row r has id first_id + r
+    int64_t rows() const { return static_cast<int64_t>(times.size()); }
+    // Ensures: out and ids (may be null) exactly as Snapshot gave them when Pack was called.
+    // Requires: out != nullptr. Reentrant: a Packed is a plain value, readable from any thread.
+    void Unpack(MatrixD* out, std::vector<uint64_t>* ids) const;
+  };
+  // Copies the contents into *out (its buffers reused). Requires: out != nullptr.
+  void Pack(Packed* out) const;
+
   // Replaces the contents with saved rows (oldest first), as from a state file. When there are more
   // rows than capacity() (the configured window shrank) only the newest capacity() are kept, as
   // pushing them in order would. The age limit is not applied: call ExpireOlderThan.

@@ -390,6 +390,48 @@ TEST(SampleWindowTest, AValueBeyondTheFloatRangeTurnsTheWindowToDoubles) {
   ExpectSameContents(restored, reference, 0);
 }
 
+// A refit waiting in the queue holds the packed window (detector.cc, RefitInput); unpacked on the
+// refit thread it must give the rows, ids and times a Snapshot gave at the time, bit for bit, so
+// that a refit fits what it would have fitted from the snapshot. Checked on a wrapped ring of
+// float32 deviations, after a re-base, and on a window of doubles.
+TEST(SampleWindowTest, APackedWindowUnpacksToTheSnapshotBitForBit) {
+  std::mt19937_64 rng(7);
+  std::normal_distribution<double> normal(1e6, 3.0);
+  const auto check = [](const SampleWindow& window) {
+    MatrixD rows, unpacked;
+    std::vector<uint64_t> ids, unpacked_ids;
+    std::vector<double> times;
+    window.Snapshot(&rows, &ids, &times);
+    SampleWindow::Packed packed;
+    window.Pack(&packed);
+    packed.Unpack(&unpacked, &unpacked_ids);
+    ASSERT_EQ(packed.rows(), window.size());
+    EXPECT_EQ(unpacked_ids, ids);
+    EXPECT_EQ(packed.times, times);
+    ASSERT_EQ(unpacked.rows(), rows.rows());
+    ASSERT_EQ(unpacked.cols(), rows.cols());
+    for (int64_t r = 0; r < rows.rows(); ++r)
+      for (int64_t j = 0; j < rows.cols(); ++j)
+        ASSERT_EQ(unpacked(r, j), rows(r, j)) << "row " << r << ", column " << j;
+    // Half the bytes of the snapshot, or less, while the window holds floats.
+    if (!window.holds_doubles()) {
+      EXPECT_LE(packed.deviations.size() * sizeof(float),
+                static_cast<std::size_t>(rows.size()) * sizeof(double) / 2);
+    }
+  };
+  SampleWindow window(/*capacity=*/50, /*dims=*/3);
+  SampleWindow::Packed empty;
+  window.Pack(&empty);
+  EXPECT_EQ(empty.rows(), 0);
+  for (int t = 0; t < 137; ++t)  // wrapped, its reference moved more than once
+    window.Push(t, std::vector<double>{normal(rng), -normal(rng), normal(rng) * 1e-6});
+  ASSERT_FALSE(window.holds_doubles());
+  check(window);
+  window.Push(137, std::vector<double>{1e39, 0, 0});
+  ASSERT_TRUE(window.holds_doubles());
+  check(window);
+}
+
 // Growth moves the ring's contents into a bigger buffer: checked against the deque reference
 // through pushes, expiries (so that the ring has wrapped when it grows), clears and restores.
 TEST(SampleWindowTest, GrowingKeepsEveryEntryInOrderAgainstTheReference) {
