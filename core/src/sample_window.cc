@@ -69,8 +69,6 @@ std::vector<T> InOrder(const std::vector<T>& buffer, int64_t head, int64_t first
 void SampleWindow::GrowTo(int64_t slots) {
   slots = std::min(slots, capacity_);
   if (slots <= slots_) return;
-  std::vector<double> times;
-  times.reserve(static_cast<std::size_t>(slots));
   const int64_t first_run = std::min(size_, slots_ - head_);
   const int64_t second_run = size_ - first_run;
   std::vector<float> deviations;
@@ -80,9 +78,7 @@ void SampleWindow::GrowTo(int64_t slots) {
   } else {
     deviations = InOrder(deviations_, head_, first_run, second_run, slots, dims_);
   }
-  times.insert(times.end(), times_.begin() + head_, times_.begin() + head_ + first_run);
-  times.insert(times.end(), times_.begin(), times_.begin() + second_run);
-  times.resize(static_cast<std::size_t>(slots));
+  std::vector<double> times = InOrder(times_, head_, first_run, second_run, slots, 1);
   deviations_.swap(deviations);
   values_.swap(values);
   times_.swap(times);
@@ -268,26 +264,16 @@ void SampleWindow::Snapshot(MatrixD* out, std::vector<uint64_t>* ids,
 
 void SampleWindow::Pack(Packed* out) const {
   if (out == nullptr) throw PreconditionError("SampleWindow::Pack: out is null");
+  const int64_t first_run = std::min(size_, slots_ - head_);
+  const int64_t second_run = size_ - first_run;
   out->dims = dims_;
   out->first_id = first_id_;
   out->reference = reference_;
-  const int64_t first_run = std::min(size_, slots_ - head_);
-  const int64_t second_run = size_ - first_run;
-  const std::size_t head = static_cast<std::size_t>(head_);
-  const auto in_order = [&](const auto& buffer, auto& to, std::size_t width) {
-    to.resize(static_cast<std::size_t>(size_) * width);
-    std::copy_n(buffer.begin() + head * width, first_run * width, to.begin());
-    std::copy_n(buffer.begin(), second_run * width, to.begin() + first_run * width);
-  };
-  const std::size_t dims = static_cast<std::size_t>(dims_);
-  if (doubles_) {
-    in_order(values_, out->values, dims);
-    out->deviations.clear();
-  } else {
-    in_order(deviations_, out->deviations, dims);
-    out->values.clear();
-  }
-  in_order(times_, out->times, 1);
+  out->deviations = doubles_ ? std::vector<float>()
+                             : InOrder(deviations_, head_, first_run, second_run, size_, dims_);
+  out->values = doubles_ ? InOrder(values_, head_, first_run, second_run, size_, dims_)
+                         : std::vector<double>();
+  out->times = InOrder(times_, head_, first_run, second_run, size_, 1);
 }
 
 void SampleWindow::Packed::Unpack(MatrixD* out, std::vector<uint64_t>* ids) const {

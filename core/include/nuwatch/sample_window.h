@@ -95,7 +95,7 @@ class SampleWindow {
     // Requires: out != nullptr. Reentrant: a Packed is a plain value, readable from any thread.
     void Unpack(MatrixD* out, std::vector<uint64_t>* ids) const;
   };
-  // Copies the contents into *out (its buffers reused). Requires: out != nullptr.
+  // Copies the contents into *out. Requires: out != nullptr.
   void Pack(Packed* out) const;
 
   // Replaces the contents with saved rows (oldest first), as from a state file. When there are more
