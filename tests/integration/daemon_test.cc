@@ -871,18 +871,30 @@ TEST(Daemon, CountsEveryRejectionByReasonAndKeepsServingOtherStreams) {
   client.Send("fourth", 1, {7});                                    // stream_limit
   send_good();
 
-  // The last good vector's result arrives after every message before it was handled (one PUSH
-  // connection delivers in order, §2).
+  // The last good vector's result arrives after every message of "good" before it was handled
+  // (one PUSH connection delivers in order, §2, and a stream's messages go to one scoring thread).
   for (int i = 0; i < good_sent; ++i) {
     const Message m = client.ReceiveFor("good");
     EXPECT_EQ(m.body["t"], 100.0 + i) << "a good vector's result is missing";
   }
 
-  const std::string metrics = HttpGet(daemon->endpoints().metrics, "/metrics");
-  ASSERT_FALSE(metrics.empty());
+  // Messages for other keys go to the scoring threads their keys hash to (the bad key too, which
+  // is refused there), so their counts may come after good's results: wait for all 8 rejections
+  // (in CI, bad_stream_key once came a millisecond after the scrape).
+  std::string metrics;
   auto rejected = [&](const std::string& reason) {
     return MetricValue(metrics, "nuwatch_rejected_messages_total{reason=\"" + reason + "\"}");
   };
+  const auto deadline = std::chrono::steady_clock::now() + std::chrono::seconds(10);
+  do {
+    metrics = HttpGet(daemon->endpoints().metrics, "/metrics");
+    double total = 0;
+    for (RejectReason reason : AllRejectReasons())
+      total += rejected(std::string(RejectReasonLabel(reason))).value_or(0);
+    if (total >= 8) break;
+    std::this_thread::sleep_for(std::chrono::milliseconds(20));
+  } while (std::chrono::steady_clock::now() < deadline);
+  ASSERT_FALSE(metrics.empty());
   EXPECT_EQ(rejected("wrong_frame_count"), 2);
   EXPECT_EQ(rejected("bad_stream_key"), 1);
   EXPECT_EQ(rejected("bad_json"), 1);
