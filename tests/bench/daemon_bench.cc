@@ -526,9 +526,9 @@ json MeasureShutdown(const std::string& program, const fs::path& dir, int stream
   const double expected = static_cast<double>(streams) * g_shutdown_vectors;
   double windows = 0;
   // Until every vector is scored and the refits they caused are done: none queued and the count
-  // of finished refits unchanged for 2 s. A queued refit holds a copy of its window (in doubles,
-  // twice the window's own bytes), so that RSS taken during the wave of refits that full windows
-  // set off measures the backlog, not the streams; its peak is reported apart.
+  // of finished refits unchanged for 2 s. A queued refit holds a packed copy of its window
+  // (SampleWindow::Packed), so that RSS taken during the wave of refits that full windows set off
+  // measures the backlog, not the streams; its peak is reported apart.
   double rss_peak = 0;
   double refits_seen = -1;
   auto refits_settled_since = Clock::now();
