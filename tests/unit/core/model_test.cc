@@ -1,5 +1,6 @@
 // Model: the float32 scoring paths against the double-precision textbook formula, the attribution
-// (Explain) against finite differences, FitModel's plumbing, and the precondition checks.
+// (Explain) against finite differences, FitModel's plumbing, and the precondition checks; and the
+// vector exp the rbf paths use (core/src/vector_exp.h) against std::exp in double.
 #include "nuwatch/model.h"
 
 #include <gmock/gmock.h>
@@ -13,6 +14,7 @@
 #include <vector>
 
 #include "common/random_data.h"
+#include "vector_exp.h"
 
 namespace nuwatch {
 namespace {
@@ -20,6 +22,53 @@ namespace {
 using ::testing::HasSubstr;
 
 using testing_data::RandomGaussian;
+
+// ExpInPlace against std::exp in double over the exponents rbf scoring produces (-gamma d^2 <= 0,
+// shifted so that the largest is 0), for every variant this machine can run: within 4 ulp of
+// float where the result is a normal float (the bound glibc's manual gives libmvec's functions,
+// from memory), and a value too small to matter where it underflows (the tail of a kernel sum,
+// next to terms of at least 1e-38).
+TEST(VectorExpTest, EveryVariantMatchesStdExpInDoubleWithinFourUlp) {
+  std::vector<float> x;
+  for (int i = 0; i <= 200000; ++i) x.push_back(-120.0f * static_cast<float>(i) / 200000.0f);
+  x.push_back(0.5f);  // a little above 0, as float rounding of the shift may leave
+  for (const ExpVariant variant : AvailableExpVariants()) {
+    std::vector<float> y = x;
+    ExpInPlace(variant, y.data(), static_cast<int64_t>(y.size()));
+    int wrong = 0;
+    for (std::size_t i = 0; i < x.size() && wrong < 5; ++i) {
+      const double exact = std::exp(static_cast<double>(x[i]));
+      const bool ok =
+          exact >= std::numeric_limits<float>::min()
+              ? std::abs(y[i] - exact) <= 4 * std::numeric_limits<float>::epsilon() * exact
+              : y[i] >= 0.0f && y[i] < 1e-37f;
+      if (!ok) ++wrong;
+      EXPECT_TRUE(ok) << ExpVariantName(variant) << ": exp(" << x[i] << ") = " << y[i]
+                      << ", exactly " << exact;
+    }
+  }
+}
+
+// A value's exp must not depend on where it sits (vector body or padded tail), or the single and
+// batch scoring paths would round one vector differently.
+TEST(VectorExpTest, AValuesExpDoesNotDependOnItsPositionOrTheLength) {
+  const std::vector<float> probes = {-0.3f, -1.7f, -12.25f, -80.0f};
+  for (const ExpVariant variant : AvailableExpVariants()) {
+    for (const float probe : probes) {
+      float first = probe;
+      ExpInPlace(variant, &first, 1);
+      for (int64_t n = 1; n <= 37; ++n) {
+        std::vector<float> y(static_cast<std::size_t>(n), probe);
+        ExpInPlace(variant, y.data(), n);
+        for (int64_t i = 0; i < n; ++i)
+          EXPECT_EQ(y[static_cast<std::size_t>(i)], first)
+              << ExpVariantName(variant) << ", n = " << n << ", position " << i;
+      }
+    }
+    ExpInPlace(variant, nullptr, 0);  // nothing to do, nothing touched
+  }
+  EXPECT_EQ(AvailableExpVariants().front(), ChosenExpVariant());
+}
 
 // Raw data with per-feature location and spread, so that scaling matters.
 MatrixD RawData(int64_t rows, int64_t cols, uint64_t seed) {
