@@ -12,6 +12,8 @@
 #include <sstream>
 #include <vector>
 
+#include "vector_exp.h"
+
 namespace nuwatch {
 namespace {
 
@@ -148,7 +150,7 @@ class ColumnCache {
     Eigen::Map<VectorF> column(out, rows_);
     column = values.template cast<float>();
     // A separate pass: exp over a mixed double-to-float expression would not be vectorised.
-    if (kernel_.type == KernelType::kRbf) column = column.array().exp().matrix();
+    if (kernel_.type == KernelType::kRbf) ExpInPlace(out, rows_);
   }
 
   void Unlink(int slot) {
