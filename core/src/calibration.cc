@@ -226,9 +226,20 @@ double Calibration::PValue(double a) const {
     return reference > 0 ? parts_.junction_p * tail / reference : 0.0;
   }
   // #{i : a_i >= a}: the scores from the first one not below a. Compared in float, the precision
-  // the scores are stored in, so that a calibration score counts itself.
-  const auto first = std::lower_bound(s.begin(), s.end(), static_cast<float>(a));
-  const double at_or_above = static_cast<double>(s.end() - first);
+  // the scores are stored in, so that a calibration score counts itself. The branch-free form of
+  // lower_bound (Khuong & Morin, "Array layouts for comparison-based searching", ACM Journal of
+  // Experimental Algorithmics 22, 2017): its comparisons become conditional moves, where
+  // std::lower_bound's mispredicted branches made this lookup a tenth of nuwatchd's CPU (perf).
+  const float key = static_cast<float>(a);
+  const float* base = s.data();
+  std::size_t length = s.size();  // valid(): at least 1
+  while (length > 1) {
+    const std::size_t half = length / 2;
+    base = base[half] < key ? base + half : base;
+    length -= half;
+  }
+  const std::size_t first = static_cast<std::size_t>(base - s.data()) + (*base < key ? 1 : 0);
+  const double at_or_above = static_cast<double>(s.size() - first);
   return (1 + at_or_above) / (n + 1);
 }
 

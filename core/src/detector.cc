@@ -666,7 +666,7 @@ Verdict Detector::ObserveScored(double time, std::span<const double> x, const Mo
   has_last_scored_ = true;
   verdict.decision = score.decision;
   verdict.p_value = model->PValue(score);
-  verdict.outlier = model->Flagged(score);
+  verdict.outlier = model->Flagged(score, verdict.p_value);
   verdict.model_version = model->version();
   verdict.support_vectors = model->num_support();
   if (verdict.outlier) LiveCounters::Bump(counters_.anomalies);

@@ -86,7 +86,7 @@ void RunScore(const ScoreArgs& a) {
       append_number(score.decision);
       text += ',';
       if (!std::isnan(p)) append_number(p);
-      text += model.Flagged(score) ? ",1" : ",0";
+      text += model.Flagged(score, p) ? ",1" : ",0";
       if (top_k > 0) {
         std::span<const double> x(rows.row(r).data(), rows.cols());
         for (const FeatureShare& s : model.Explain(x, top_k)) {

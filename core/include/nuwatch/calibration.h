@@ -142,7 +142,9 @@ class Calibration {
   // The p-value of a nonconformity score; 0 beyond the endpoint of a tail fitted with a negative
   // shape. Requires valid(); NaN in, NaN out. Allocates nothing.
   double PValue(double nonconformity) const;
-  bool Flagged(double nonconformity) const { return PValue(nonconformity) <= parts_.summary.level; }
+  bool Flagged(double nonconformity) const { return FlaggedByPValue(PValue(nonconformity)); }
+  // The same rule given the p-value already looked up (the per-vector path needs both).
+  bool FlaggedByPValue(double p_value) const { return p_value <= parts_.summary.level; }
   // The nonconformity above which vectors are flagged at `level` (informational: the boundary of
   // the alarm region; +inf when nothing can be flagged).
   double Threshold() const;

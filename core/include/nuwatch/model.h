@@ -106,6 +106,8 @@ class Model {
   double PValue(const struct Score& score) const;
   // The alarm rule: p <= the calibrated level, or decision < 0 for an uncalibrated model.
   bool Flagged(const struct Score& score) const;
+  // The same rule, given p_value = PValue(score): saves the per-vector path a second lookup.
+  bool Flagged(const struct Score& score, double p_value) const;
 
   // f(x) and the nonconformity for one raw vector of dims() values, on the float32 path.
   // Allocates nothing. Requires: x.size() == dims() (PreconditionError otherwise), finite values.

@@ -51,6 +51,31 @@ TEST(CalibrationTest, ConformalPValuesMatchTheDefinitionOnAWorkedExample) {
   EXPECT_TRUE(std::isnan(c.PValue(std::nan(""))));
 }
 
+// The same definition counted directly, for every calibration size from 2 (the least Fit takes) to
+// 64 (each length the branch-free search walks) with ties, and keys on, between, below and above
+// the scores.
+TEST(CalibrationTest, ConformalPValuesCountTheScoresAtOrAboveForEverySizeAndTies) {
+  std::mt19937_64 generator(23);
+  std::uniform_int_distribution<int> tenths(-20, 20);
+  for (int n = 2; n <= 64; ++n) {
+    std::vector<double> scores(n);
+    for (double& a : scores) a = tenths(generator) / 10.0;  // many ties among 41 values
+    const Calibration c = Calibration::Fit(scores, {}, Rate(0.5));
+    ASSERT_TRUE(c.valid());
+    ASSERT_FALSE(c.parts().has_tail) << "n = " << n;
+    for (int k = -25; k <= 25; ++k) {
+      for (const double a : {k / 10.0, k / 10.0 + 0.05}) {
+        // Counted in float, as the scores are stored (the worked example above).
+        const auto at_or_above = std::count_if(scores.begin(), scores.end(), [&](double s) {
+          return static_cast<float>(s) >= static_cast<float>(a);
+        });
+        EXPECT_DOUBLE_EQ(c.PValue(a), (1.0 + at_or_above) / (n + 1))
+            << "n = " << n << ", a = " << a;
+      }
+    }
+  }
+}
+
 // A p-value must not grow as the vector gets stranger (a property of any valid p-value family
 // built from a nonconformity score; common practice), including across the tail junction.
 TEST(CalibrationTest, PValueIsMonotoneAndContinuousAtTheTailJunction) {
