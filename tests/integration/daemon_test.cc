@@ -721,11 +721,14 @@ TEST(Daemon, AMessageLargerThanASliceIsScoredInSlicesWhileOtherStreamsAreServed)
 TEST(Daemon, ThousandsOfStreamsStartScoreAndStopInBoundedTime) {
   // issue 9 sections 5 and 7, sized for CI (the benchmark's --shutdown-streams takes 10,000):
   // 3000 streams over two scoring threads each get a vector and publish its result; the stop
-  // then takes well under the deploy files' 120 s grace. Before the metric series were left to
-  // the registry at shutdown, removing them one by one was quadratic: 12.5 s at 4000 streams.
+  // then takes well under the deploy files' 120 s grace and writes every stream's state file
+  // (side by side, kFinalWriteThreads at once). Before the metric series were left to the
+  // registry at shutdown, removing them one by one was quadratic: 12.5 s at 4000 streams.
   constexpr int kStreams = 3000;
+  TempDir dir;
   auto options = Options("", "[limits]\nmax_streams = 4000\n");
   options.config.daemon.scoring_threads = 2;
+  options.config.daemon.state_dir = dir / "state";
   auto daemon = Start(std::move(options));
   Client client(daemon->endpoints());
   std::string binary;
@@ -752,6 +755,23 @@ TEST(Daemon, ThousandsOfStreamsStartScoreAndStopInBoundedTime) {
   // with the square of the streams. A generous bound: the machine is shared and CI runs this
   // under ThreadSanitizer too.
   EXPECT_LT(seconds, 60.0);
+  // Every stream's final state file, whole, holding its one vector.
+  const StateStore store(dir / "state");
+  const std::vector<StateStore::Entry> entries = store.List();
+  EXPECT_EQ(entries.size(), static_cast<std::size_t>(kStreams) + 1);  // and probe
+  int whole = 0;
+  for (const StateStore::Entry& entry : entries) {
+    if (entry.stream_key == "probe") continue;
+    try {
+      const StreamStateFile file = store.Load(entry);
+      EXPECT_EQ(file.state.counters.vectors, 1) << entry.stream_key;
+      ++whole;
+    } catch (const StateFileError& e) {
+      ADD_FAILURE() << e.what();
+    }
+  }
+  EXPECT_EQ(whole, kStreams);
+  EXPECT_TRUE(store.RemoveStaleTemporaries().empty());  // no write left half done
 }
 
 TEST(Daemon, WithoutIncludeLearningOnlyScoredVectorsArePublished) {
