@@ -12,6 +12,7 @@
 #include <unistd.h>
 
 #include <algorithm>
+#include <iterator>
 #include <array>
 #include <atomic>
 #include <boost/asio/executor_work_guard.hpp>
@@ -1795,9 +1796,18 @@ bool Daemon::Impl::ScoreSlice(Shard& shard, Stream& stream) {
   shard.queued_bytes.fetch_sub(sliced.queued_bytes, std::memory_order_relaxed);
   std::deque<SlicedMessage::Waiting> waiting = std::move(sliced.waiting);
   stream.sliced.reset();
-  // In their order; one of them may be sliced in turn, and those after it wait again behind it.
-  for (SlicedMessage::Waiting& message : waiting)
+  // In their order. Once one of them is sliced in turn, those after it wait behind it again:
+  // moved there, not handed to HandleIngest, which would copy each one again (a flood of large
+  // batches to one stream then copied every waiting message once per message ahead of it).
+  while (!waiting.empty()) {
+    if (stream.sliced) {
+      std::move(waiting.begin(), waiting.end(), std::back_inserter(stream.sliced->waiting));
+      break;
+    }
+    SlicedMessage::Waiting message = std::move(waiting.front());
+    waiting.pop_front();
     HandleIngest(shard, stream.key, message.payload, message.queued_bytes);
+  }
   return false;
 }
 
