@@ -15,54 +15,11 @@
 namespace nuwatch::cli {
 
 FeatureFile ReadFeatureFile(const std::string& path) {
-  FeatureFile file;
-  file.path = path;
-  int64_t rows = 0;
   try {
-    CsvReader reader = CsvReader::Open(path);
-    const int time_column = reader.Column("time");
-    const int stream_column = reader.Column("stream");
-    std::vector<int> columns;
-    for (std::size_t i = 0; i < reader.header().size(); ++i) {
-      if (static_cast<int>(i) == time_column || static_cast<int>(i) == stream_column) continue;
-      columns.push_back(static_cast<int>(i));
-      file.names.push_back(reader.header()[i]);
-    }
-    if (columns.empty()) throw CsvError(path + ": no feature columns");
-    file.has_time = time_column >= 0;
-    file.has_stream = stream_column >= 0;
-    // The matrix grows in place: a row-major matrix gaining rows is one realloc, which for a large
-    // block moves pages instead of copying them (and never touches memory twice).
-    file.values.resize(1024, static_cast<int64_t>(columns.size()));
-    while (reader.Next() == CsvReader::Status::kRow) {
-      if (rows == file.values.rows()) file.values.conservativeResize(2 * rows, Eigen::NoChange);
-      double* row = file.values.row(rows).data();
-      for (std::size_t c = 0; c < columns.size(); ++c) {
-        const std::optional<double> value = ParseFiniteNumber(reader[columns[c]]);
-        if (!value) {
-          throw CsvError(reader.Where() + "column " + file.names[c] + ": '" +
-                         std::string(reader[columns[c]]) + "' is not a finite number");
-        }
-        row[c] = *value;
-      }
-      ++rows;
-      if (file.has_time) {
-        const std::optional<double> t = ParseTimestamp(reader[time_column]);
-        if (!t) {
-          throw CsvError(reader.Where() + "column time: '" + std::string(reader[time_column]) +
-                         "' is not an ISO-8601 time or epoch seconds");
-        }
-        file.times.push_back(*t);
-        file.time_text.push_back(reader[time_column]);
-      }
-      if (file.has_stream) file.streams.push_back(reader[stream_column]);
-    }
-    if (rows == 0) throw CsvError(path + ": no data rows");
-    file.values.conservativeResize(rows, Eigen::NoChange);
+    return nuwatch::ReadFeatureFile(path);
   } catch (const CsvError& e) {
     throw CommandError(e.what());
   }
-  return file;
 }
 
 FeatureFile SelectRows(FeatureFile file, const std::string& stream, double from, double until) {

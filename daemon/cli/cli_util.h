@@ -9,26 +9,14 @@
 #include <vector>
 
 #include "cli/commands.h"
+#include "formats/feature_file.h"
 #include "formats/stream_file.h"
 #include "nuwatch/types.h"
 
 namespace nuwatch::cli {
 
-// The numeric features of a CSV file: every column except `time` and `stream`, and those two when
-// present (times parsed as ISO-8601 or epoch seconds, and kept as written). Read row by row
-// (CsvReader): memory is that of the values, not of the text. CSV errors become CommandError with
-// the file and line.
-struct FeatureFile {
-  std::string path;
-  std::vector<std::string> names;
-  MatrixD values;
-  bool has_time = false;
-  bool has_stream = false;
-  std::vector<double> times;  // one per row with a time column, else empty
-  PackedStrings time_text;    // the time fields as written (with a time column)
-  PackedStrings streams;      // the stream fields (with a stream column)
-  int64_t rows() const { return values.rows(); }
-};
+// ReadFeatureFile of formats/feature_file.h, its CsvError turned into CommandError (the file and
+// line).
 FeatureFile ReadFeatureFile(const std::string& path);
 
 // The rows of `file` whose stream is `stream` (all when empty) and whose time lies in

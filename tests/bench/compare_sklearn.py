@@ -20,7 +20,9 @@ and noisy: quote ratios).
   job and no more: --scaler standard --calibration-folds 0 --gamma G (the same gamma; the data are
   standardised already, so the scaler changes nothing but is applied as in production). Wall time
   and CPU time (user + system) of the process, best of 3; scikit-learn's likewise
-  (time.perf_counter, time.process_time).
+  (time.perf_counter, time.process_time). `nuwatch score` parses the next blocks of the CSV on a
+  second thread while it scores, so its wall time is below its CPU time; decision_function is
+  single-threaded. Both ratios are printed.
 Needs Debian's python3-sklearn (run with /usr/bin/python3).
 """
 import argparse

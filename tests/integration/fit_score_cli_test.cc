@@ -275,4 +275,56 @@ TEST_F(FitScoreCli, ReadsQuotedFieldsAndWritesThemBack) {
   EXPECT_EQ(first.rfind("1767225600,\"line 1, pump \"\"a\"\"\",", 0), 0u) << first;
 }
 
+// `score` reads a file of more than one block (8192 rows) on a second thread while it scores the
+// block before. Block boundaries must not show: the scores of a 20,000-row file equal those of its
+// rows scored as three files of one block or less each, row for row, with the time and stream
+// fields copied in order. A bad row in the third block ends the command with the usual one-line
+// error naming the file and line, after the rows before it.
+TEST_F(FitScoreCli, AFileOfManyBlocksScoresAsItsPartsDo) {
+  const std::string train = TrainingFile(300);
+  ASSERT_EQ(Nuwatch("fit --input " + train + " --output " + Path("m.nuw")).exit_code, 0);
+  std::mt19937_64 generator(9);
+  std::normal_distribution<double> normal;
+  constexpr int kRows = 20000;
+  std::vector<std::string> rows;
+  for (int i = 0; i < kRows; ++i) {
+    std::ostringstream row;
+    row.precision(17);
+    row << 1767225600 + i << "," << 4 + 0.1 * normal(generator) << ","
+        << 300 + 5 * normal(generator) << "," << 50 + normal(generator) << "\n";
+    rows.push_back(row.str());
+  }
+  const std::string header = "time,pressure,flow,current\n";
+  std::string whole = header;
+  for (const std::string& row : rows) whole += row;
+  ProgramRun all = Nuwatch("score --model " + Path("m.nuw") + " --input " +
+                           Write("all.csv", whole) + " --output " + Path("all.out"));
+  ASSERT_EQ(all.exit_code, 0) << all.err;
+  std::string parts_out;
+  for (int part = 0, begin = 0; begin < kRows; ++part, begin += 7000) {
+    std::string text = header;
+    for (int i = begin; i < std::min(kRows, begin + 7000); ++i) text += rows[i];
+    ProgramRun run = Nuwatch("score --model " + Path("m.nuw") + " --input " +
+                             Write("part" + std::to_string(part) + ".csv", text));
+    ASSERT_EQ(run.exit_code, 0) << run.err;
+    // Each part's header once, at the top.
+    parts_out += part == 0 ? run.out : run.out.substr(run.out.find('\n') + 1);
+  }
+  const std::string all_out = ReadWholeFile(Path("all.out"));
+  EXPECT_EQ(CountLines(all_out), kRows + 1);
+  EXPECT_TRUE(all_out == parts_out) << "the block-by-block scores differ from the parts'";
+  EXPECT_EQ(all_out.substr(all_out.rfind('\n', all_out.size() - 2) + 1, 11),
+            std::to_string(1767225600 + kRows - 1) + ",");
+
+  std::string bad = header;
+  for (int i = 0; i < kRows; ++i) bad += i == 17000 ? "1,4,300,high\n" : rows[i];
+  ProgramRun broken = Nuwatch("score --model " + Path("m.nuw") + " --input " +
+                              Write("bad.csv", bad) + " --output " + Path("bad.out"));
+  EXPECT_EQ(broken.exit_code, 1);
+  EXPECT_EQ(CountLines(broken.err), 1) << broken.err;
+  EXPECT_THAT(broken.err,
+              HasSubstr("bad.csv:17002: column current: 'high' is not a finite number"));
+  EXPECT_LE(CountLines(ReadWholeFile(Path("bad.out"))), 17001);
+}
+
 }  // namespace
