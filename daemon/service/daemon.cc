@@ -12,7 +12,6 @@
 #include <unistd.h>
 
 #include <algorithm>
-#include <iterator>
 #include <array>
 #include <atomic>
 #include <boost/asio/executor_work_guard.hpp>
@@ -29,6 +28,7 @@
 #include <filesystem>
 #include <fstream>
 #include <future>
+#include <iterator>
 #include <new>
 #include <nlohmann/json.hpp>
 #include <set>
@@ -129,6 +129,11 @@ namespace {
 using Clock = std::chrono::steady_clock;
 
 constexpr int kMessagesPerTurn = 256;  // then poll again, so control requests are not starved
+// A scoring thread's outbox (Shard::outbox) is sent when it holds this many messages or bytes, or
+// at the end of the turn, whichever comes first: a result waits at most for a few dozen vectors'
+// scoring (about 2 us each).
+constexpr std::size_t kOutboxMessages = 32;
+constexpr std::size_t kOutboxBytes = 64 * 1024;
 // Messages queued for one scoring thread before the socket thread waits for it. Their bytes are
 // bounded too, by ingest.scoring_queue_bytes (64 MiB by default), which keeps the daemon's own
 // queues at most scoring threads x (that + one message) however large the messages, so that the
@@ -299,7 +304,12 @@ struct FinishedWrite {
 // thread), each under its own mutex and followed by a write to `wake_fd`; the per-vector path
 // takes none of them.
 struct Shard {
-  explicit Shard(int shard_index) : index(shard_index) {}
+  explicit Shard(int shard_index) : index(shard_index) {
+    // Sized once, so that steady-state publishing does not allocate: the outbox is sent before
+    // it passes kOutboxMessages, or kOutboxBytes plus one message under kOutboxBytes.
+    outbox.reserve(kOutboxMessages);
+    outbox_bytes.reserve(2 * kOutboxBytes + 128);  // 128: the longest key (§3)
+  }
   ~Shard() {
     if (wake_fd >= 0) ::close(wake_fd);
   }
@@ -358,6 +368,19 @@ struct Shard {
   ResultBatchEncoder binary_results;  // a §9.5 binary batch (publish.result_form = "binary")
   std::string event_json;
   std::array<FeatureShareView, kTopFeatures> top_features;
+
+  // Results and incident events published and not yet sent (Impl::Publish): they go out together
+  // at the end of the thread's turn (Impl::SendOutbox), under one lock of the result socket, so
+  // that ZeroMQ's I/O thread is woken about once a turn, not once a vector (a wake-up is a system
+  // call on each side). Owned by whoever scores the shard's streams: its thread, or the socket
+  // thread while the shards are paused or stopped.
+  struct Outgoing {
+    std::size_t key_end = 0, body_end = 0;  // in outbox_bytes: key, then body, after the last
+    PublishedMessage kind = PublishedMessage::kResult;
+    int64_t results = 0;
+  };
+  std::string outbox_bytes;
+  std::vector<Outgoing> outbox;
 
   void Wake() const {
     const uint64_t one = 1;
@@ -505,9 +528,16 @@ struct Daemon::Impl final : ControlCommands {
                      std::string* out);
   void PublishIncidentEvent(Shard& shard, Stream& stream, double t, const Verdict& v);
   void Reject(RejectReason reason, std::string_view detail, std::string_view key);
-  // `results`: the results the message holds (a batch, §9.4, holds several), for the drop counts.
-  void Publish(std::string_view key, const std::string& body, PublishedMessage message,
+  // Queues one result message (or incident event) in the shard's outbox; sent by SendOutbox, at
+  // once when the outbox is full or the message large. `results`: the results the message holds
+  // (a batch, §9.4, holds several), for the drop counts.
+  void Publish(Shard& shard, std::string_view key, std::string_view body, PublishedMessage message,
                int64_t results = 1) EXCLUDES(publish_mutex);
+  // Sends what the shard's outbox holds, in order; called at the end of every scoring turn and
+  // after any scoring the socket thread does for a paused or stopped shard.
+  void SendOutbox(Shard& shard) EXCLUDES(publish_mutex);
+  void SendNow(std::string_view key, std::string_view body, PublishedMessage message,
+               int64_t results) REQUIRES(publish_mutex);
   void DrainSubscriptions() EXCLUDES(publish_mutex);
   void Record(Stream& stream, double time);
 
@@ -1298,8 +1328,11 @@ void Daemon::Impl::RunShard(Shard& shard) {
       if (!shard.held.empty() && Clock::now() >= handoff_until) EndHolds(shard, false);
       if (items[1].revents & ZMQ_POLLIN) {
         shard.turn_time = Clock::now();
-        if (!ReceiveShardInput(shard)) break;
+        const bool go_on = ReceiveShardInput(shard);
+        SendOutbox(shard);
+        if (!go_on) break;
       }
+      SendOutbox(shard);
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
       if (e.num() == ETERM) break;
@@ -1317,6 +1350,7 @@ void Daemon::Impl::RunShard(Shard& shard) {
     spdlog::error("scoring thread {}: internal error: {}", shard.index, e.what());
   }
   HandleShardWork(shard);
+  SendOutbox(shard);
 }
 
 void Daemon::Impl::HandleShardWork(Shard& shard) {
@@ -1477,7 +1511,10 @@ void Daemon::Impl::Shutdown() {
   StopShards();
   // Vectors still held for a state that has not come are not dropped: they start their streams.
   handoff_until = Clock::time_point{};
-  for (auto& shard : shards) EndHolds(*shard, true);
+  for (auto& shard : shards) {
+    EndHolds(*shard, true);
+    SendOutbox(*shard);
+  }
   const std::vector<Stream*> all = AllStreamsSorted();
   int busy = 0;
   for (Stream* s : all) busy += s->executor.idle() ? 0 : 1;
@@ -1902,7 +1939,7 @@ void Daemon::Impl::PublishResults(Shard& shard, Stream& stream, std::span<const 
         encoder.Add(result);
     }
     if (encoder.rows() > 0)
-      Publish(stream.key, encoder.Finish(), PublishedMessage::kResult, encoder.rows());
+      Publish(shard, stream.key, encoder.Finish(), PublishedMessage::kResult, encoder.rows());
     for (int i = 0; i < n; ++i) PublishIncidentEvent(shard, stream, times[i], verdicts[i]);
     return;
   }
@@ -1917,14 +1954,14 @@ void Daemon::Impl::PublishResults(Shard& shard, Stream& stream, std::span<const 
       batch_json.append(result_json);
     }
     batch_json.append("]}");
-    if (results > 0) Publish(stream.key, batch_json, PublishedMessage::kResult, results);
+    if (results > 0) Publish(shard, stream.key, batch_json, PublishedMessage::kResult, results);
     for (int i = 0; i < n; ++i) PublishIncidentEvent(shard, stream, times[i], verdicts[i]);
     return;
   }
   // §9: each result, then the event of the vector that opened or closed an incident.
   for (int i = 0; i < n; ++i) {
     if (EncodeVerdict(shard, stream, times[i], verdicts[i], batch ? i : -1, &result_json))
-      Publish(stream.key, result_json, PublishedMessage::kResult);
+      Publish(shard, stream.key, result_json, PublishedMessage::kResult);
     PublishIncidentEvent(shard, stream, times[i], verdicts[i]);
   }
 }
@@ -1993,7 +2030,7 @@ void Daemon::Impl::PublishIncidentEvent(Shard& shard, Stream& stream, double t, 
     event.end = incident.end_time;
     event.peak_decision = incident.peak_decision;
     EncodeIncidentEventJson(event, &event_json);
-    Publish(stream.key, event_json, PublishedMessage::kIncidentEvent);
+    Publish(shard, stream.key, event_json, PublishedMessage::kIncidentEvent);
     spdlog::info("stream={} incident {} id={} start={} peak_decision={}", stream.key,
                  event.kind == IncidentEventKind::kOpen ? "opened" : "closed", incident.id,
                  incident.start_time, incident.peak_decision);
@@ -2015,9 +2052,40 @@ void Daemon::Impl::Reject(RejectReason reason, std::string_view detail, std::str
   }
 }
 
-void Daemon::Impl::Publish(std::string_view key, const std::string& body, PublishedMessage message,
+void Daemon::Impl::Publish(Shard& shard, std::string_view key, std::string_view body,
+                           PublishedMessage message, int64_t results) {
+  if (body.size() > kOutboxBytes) {  // not worth a copy: what waits goes first, then this
+    SendOutbox(shard);
+    MutexLock lock(&publish_mutex);
+    SendNow(key, body, message, results);
+    return;
+  }
+  shard.outbox_bytes.append(key);
+  const std::size_t key_end = shard.outbox_bytes.size();
+  shard.outbox_bytes.append(body);
+  shard.outbox.push_back({key_end, shard.outbox_bytes.size(), message, results});
+  if (shard.outbox.size() >= kOutboxMessages || shard.outbox_bytes.size() >= kOutboxBytes)
+    SendOutbox(shard);
+}
+
+void Daemon::Impl::SendOutbox(Shard& shard) {
+  if (shard.outbox.empty()) return;
+  {
+    MutexLock lock(&publish_mutex);
+    const std::string_view bytes = shard.outbox_bytes;
+    std::size_t begin = 0;
+    for (const Shard::Outgoing& m : shard.outbox) {
+      SendNow(bytes.substr(begin, m.key_end - begin),
+              bytes.substr(m.key_end, m.body_end - m.key_end), m.kind, m.results);
+      begin = m.body_end;
+    }
+  }
+  shard.outbox.clear();
+  shard.outbox_bytes.clear();
+}
+
+void Daemon::Impl::SendNow(std::string_view key, std::string_view body, PublishedMessage message,
                            int64_t results) {
-  MutexLock lock(&publish_mutex);
   try {
     // Never blocks. XPUB_NODROP checks every matching subscriber's queue before the first frame
     // and counts whole messages, so a message goes to every matching subscriber or to none, and
@@ -2775,6 +2843,7 @@ int64_t Daemon::Impl::ScoreHeld(Shard& shard, const std::string& key) {
   // Whole, here: at the stop no scoring thread is left to score the rest.
   if (Stream* stream = shard.streams.Find(key); stream != nullptr && stream->sliced)
     FinishSliced(shard, *stream);
+  SendOutbox(shard);
   return held.vectors;
 }
 

@@ -31,7 +31,7 @@
 //
 // Usage: nuwatch_daemon_bench [--nuwatchd PATH] [--seconds 1.0] [--rounds 2] [--json]
 //                             [--streams 4] [--scoring-threads 0] [--publish-batches]
-//                             [--compare-result-forms]
+//                             [--compare-result-forms] [--forms binary_1 ...]
 //                             [--shutdown-streams 0] [--shutdown-without-state]
 //                             [--shutdown-vectors 1]
 #include <CLI/CLI.hpp>
@@ -74,6 +74,7 @@ constexpr int kWindow = 2000;
 constexpr int kHighWaterMark = 10000;     // both targets, both directions: the daemon's default
 const char* const kKeyPrefix = "bench-";  // the streams' keys: bench-0, bench-1, ...
 int g_streams = 4;                        // --streams
+std::vector<std::string> g_forms;         // --forms: empty is all
 int g_receive_high_water_mark = 10000;    // --receive-high-water-mark
 int g_scoring_threads = 0;                // --scoring-threads
 
@@ -743,6 +744,10 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
               {"scoring_threads", daemon.scoring_threads.size()},
               {"forms", json::array()}};
   for (Form form : {Form::kJson1, Form::kBinary1, Form::kBinary64}) {
+    if (!g_forms.empty() &&
+        std::find(g_forms.begin(), g_forms.end(), FormId(form)) == g_forms.end()) {
+      continue;
+    }
     // Best of the rounds for each target (the machine is shared); CPU per vector summed over all.
     Phase best_relay, best_daemon;
     double daemon_sent = 0, daemon_accepted = 0, daemon_results = 0, daemon_dropped = 0;
@@ -863,6 +868,9 @@ int main(int argc, char** argv) {
   app.add_option("--streams", nuwatch::g_streams,
                  "streams the messages go to in turn (each warmed up first)")
       ->check(CLI::Range(1, 64));
+  app.add_option("--forms", nuwatch::g_forms,
+                 "measure only these message forms (json_1, binary_1, binary_64; default: all)")
+      ->check(CLI::IsMember({"json_1", "binary_1", "binary_64"}));
   app.add_option("--scoring-threads", nuwatch::g_scoring_threads,
                  "daemon.scoring_threads of the measured nuwatchd (0: one per core)")
       ->check(CLI::Range(0, 64));
