@@ -900,6 +900,44 @@ TEST(Daemon, AnAnomalyNamesItsTopFeaturesAndOpensAndClosesAnIncident) {
   EXPECT_THAT(daemon->MetricsText(), HasSubstr("nuwatch_incidents_open{stream=\"pump-01\"} 0"));
 }
 
+TEST(Daemon, ABurstComesOutInOrderWithEachIncidentEventAfterItsResult) {
+  // The results of a scoring thread's turn are sent together (the shard's outbox, sent every 32
+  // messages and at the end of the turn). 150 vectors sent back to back, more than one outbox:
+  // every result once, in the order of their times, and each incident event right after the
+  // result of the vector that opened or closed the incident (PROTOCOL.md §9.2).
+  auto daemon = Start(Options());
+  Client client(daemon->endpoints());
+  client.WarmUp("pump-01", NormalVectors(20, 5), 1000);
+  double t = client.last_time();
+  std::vector<double> times;
+  for (int i = 0; i < 150; ++i) {
+    t += 10;
+    times.push_back(t);
+    // Far out at 60-62 and 110-112 (two flags open an incident, two clean vectors close it).
+    const bool far = (i >= 60 && i < 63) || (i >= 110 && i < 113);
+    client.Send("pump-01", t, far ? std::vector<double>{40, 100} : std::vector<double>{5, 100});
+  }
+  std::vector<double> result_times;
+  std::vector<std::pair<std::string, double>> events;  // kind, t
+  while (result_times.size() < times.size()) {
+    const Message m = client.ReceiveFor("pump-01");
+    if (m.body.contains("event")) {
+      ASSERT_FALSE(result_times.empty());
+      // The event's t is that of the result just before it.
+      EXPECT_EQ(m.body["t"].get<double>(), result_times.back()) << m.body.dump();
+      events.emplace_back(m.body["event"].get<std::string>(), m.body["t"].get<double>());
+      continue;
+    }
+    result_times.push_back(m.body["t"].get<double>());
+  }
+  EXPECT_EQ(result_times, times);
+  ASSERT_EQ(events.size(), 4u);
+  EXPECT_EQ(events[0], std::make_pair(std::string("incident_open"), times[61]));
+  EXPECT_EQ(events[1], std::make_pair(std::string("incident_close"), times[64]));
+  EXPECT_EQ(events[2], std::make_pair(std::string("incident_open"), times[111]));
+  EXPECT_EQ(events[3], std::make_pair(std::string("incident_close"), times[114]));
+}
+
 // ---------------------------------------------------------------------------------------------
 // Bad input
 
