@@ -87,11 +87,7 @@ struct Stream {
   DaemonMetrics* const metrics_owner;
   StreamMetrics metrics;
   AnomalyRatioRing ratio;
-  std::vector<double> row;  // dims values: the vector being processed
-  // A message of several vectors, scored as one batch: its rows, times and verdicts (reused).
-  MatrixD batch_rows;
-  std::vector<double> batch_times;
-  std::vector<Verdict> batch_verdicts;
+  std::vector<double> row;                // dims values: the vector being processed
   std::unique_ptr<SlicedMessage> sliced;  // null unless a message is being scored in slices
   // When its last message arrived (its scoring thread's clock at the turn it was taken), for
   // limits.idle_expiry_seconds.
