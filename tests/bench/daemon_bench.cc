@@ -32,6 +32,7 @@
 // Usage: nuwatch_daemon_bench [--nuwatchd PATH] [--seconds 1.0] [--rounds 2] [--json]
 //                             [--streams 4] [--scoring-threads 0] [--publish-batches]
 //                             [--compare-result-forms] [--forms binary_1 ...]
+//                             [--result-form json|binary]
 //                             [--shutdown-streams 0] [--shutdown-without-state]
 //                             [--shutdown-vectors 1]
 #include <CLI/CLI.hpp>
@@ -75,6 +76,7 @@ constexpr int kHighWaterMark = 10000;     // both targets, both directions: the 
 const char* const kKeyPrefix = "bench-";  // the streams' keys: bench-0, bench-1, ...
 int g_streams = 4;                        // --streams
 std::vector<std::string> g_forms;         // --forms: empty is all
+std::string g_result_form = "json";       // --result-form: publish.result_form
 int g_receive_high_water_mark = 10000;    // --receive-high-water-mark
 int g_scoring_threads = 0;                // --scoring-threads
 
@@ -707,7 +709,8 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
     throw std::runtime_error("the relay did not start");
   }
   relay.endpoints = testing_data::ReadReadyFile((dir / "relay.ready.json").string());
-  daemon.process = StartDaemon(program, dir, "nuwatchd", DaemonConfig(""), &daemon.endpoints);
+  daemon.process =
+      StartDaemon(program, dir, "nuwatchd", DaemonConfig("", g_result_form), &daemon.endpoints);
   Connect(context, relay);
   Connect(context, daemon);
   const int support_vectors = WarmUp(context, daemon);
@@ -740,6 +743,7 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
               {"rounds", rounds},
               {"cores", std::thread::hardware_concurrency()},
               {"publish_batches", g_publish_batches},
+              {"result_form", g_result_form},
               {"streams", g_streams},
               {"scoring_threads", daemon.scoring_threads.size()},
               {"forms", json::array()}};
@@ -810,10 +814,10 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
   }
   std::printf(
       "nuwatchd against bare ZeroMQ (PUSH/PULL + PUB/SUB relay), d = %d, %d support "
-      "vectors, %d streams, %zu scoring threads, best of %d x %.1f s, load average %.1f -> "
-      "%.1f\n\n",
-      kDims, support_vectors, g_streams, daemon.scoring_threads.size(), rounds, seconds,
-      load_before, LoadAverage());
+      "vectors, %d streams, %zu scoring threads, %s results, best of %d x %.1f s, load "
+      "average %.1f -> %.1f\n\n",
+      kDims, support_vectors, g_streams, daemon.scoring_threads.size(), g_result_form.c_str(),
+      rounds, seconds, load_before, LoadAverage());
   std::printf("%-36s %12s %12s %6s %12s %12s %10s %9s %9s %9s\n", "form", "bare vec/s",
               "nuwatchd v/s", "ratio", "accepted", "received", "dropped", "cpu us/v", "p50 ms",
               "p99 ms");
@@ -871,6 +875,10 @@ int main(int argc, char** argv) {
   app.add_option("--forms", nuwatch::g_forms,
                  "measure only these message forms (json_1, binary_1, binary_64; default: all)")
       ->check(CLI::IsMember({"json_1", "binary_1", "binary_64"}));
+  app.add_option("--result-form", nuwatch::g_result_form,
+                 "publish.result_form of the measured nuwatchd: json (one message a result) or "
+                 "binary (one PROTOCOL.md §9.5 batch per ingest message)")
+      ->check(CLI::IsMember({"json", "binary"}));
   app.add_option("--scoring-threads", nuwatch::g_scoring_threads,
                  "daemon.scoring_threads of the measured nuwatchd (0: one per core)")
       ->check(CLI::Range(0, 64));
