@@ -102,6 +102,12 @@ void CurveAuthenticator::ReplaceAllowed(std::set<std::string> keys) {
   allowed_ = std::move(keys);
 }
 
+std::vector<CurveAuthenticator::PeerConnection> CurveAuthenticator::Connections(
+    AuthSocket which) const {
+  MutexLock lock(&mutex_);
+  return connections_[static_cast<std::size_t>(which)];
+}
+
 std::size_t CurveAuthenticator::allowed_count() const {
   MutexLock lock(&mutex_);
   return allowed_.size();
@@ -244,11 +250,16 @@ bool CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
     case ZMQ_EVENT_ACCEPTED:
     case ZMQ_EVENT_DISCONNECTED:
       if (!watched.client) {
+        const int fd = static_cast<int>(value);
         if (event == ZMQ_EVENT_ACCEPTED) {
-          watched.connections.insert(static_cast<int>(value));
+          watched.connections.insert(fd);
         } else {
-          watched.connections.erase(static_cast<int>(value));
+          watched.connections.erase(fd);
         }
+        MutexLock lock(&mutex_);
+        std::vector<PeerConnection>& listed = connections_[static_cast<std::size_t>(watched.which)];
+        std::erase_if(listed, [fd](const PeerConnection& c) { return c.fd == fd; });
+        if (event == ZMQ_EVENT_ACCEPTED) listed.push_back({fd, next_generation_++});
         if (watched.which == AuthSocket::kPublish) {
           metrics_->publish_connections().Set(static_cast<double>(watched.connections.size()));
         }

@@ -76,6 +76,15 @@ class CurveAuthenticator {
   // The keys admitted from now on (a connection admitted before keeps its session).
   void ReplaceAllowed(std::set<std::string> keys) EXCLUDES(mutex_);
   std::size_t allowed_count() const EXCLUDES(mutex_);
+  // The connections of the server sockets `which` (all of them: there may be several ingest
+  // sockets) as the handler last counted them, each with a generation that tells a reused
+  // descriptor from the connection before. Any thread; a connection accepted a moment ago may be
+  // missing, one closed a moment ago still listed.
+  struct PeerConnection {
+    int fd = -1;
+    uint64_t generation = 0;
+  };
+  std::vector<PeerConnection> Connections(AuthSocket which) const EXCLUDES(mutex_);
   // Stops and joins the thread. Requires: every protected socket is closed. Idempotent.
   void Stop();
 
@@ -109,6 +118,9 @@ class CurveAuthenticator {
 
   mutable Mutex mutex_;
   std::set<std::string> allowed_ GUARDED_BY(mutex_);
+  // The server sockets' connections, by socket kind; written by the thread, read by Connections.
+  std::array<std::vector<PeerConnection>, kAuthSocketCount> connections_ GUARDED_BY(mutex_);
+  uint64_t next_generation_ = 1;  // the thread's
 };
 
 }  // namespace nuwatch

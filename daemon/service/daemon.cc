@@ -46,6 +46,7 @@
 #include "service/control.h"
 #include "service/curve_auth.h"
 #include "service/handoff.h"
+#include "service/ingest_guard.h"
 #include "service/metrics.h"
 #include "service/recorder.h"
 #include "service/refit_pool.h"
@@ -150,6 +151,9 @@ constexpr int kSliceValues = 16384;
 constexpr std::size_t kWaitingPerStream = 64;
 // How often the socket thread reads the (un)subscriptions the XPUB socket hands up.
 constexpr std::chrono::milliseconds kSubscriptionDrainInterval{200};
+// How often the ingest connections are checked for a message that never ends (IngestGuard), when
+// the ingest sockets have nothing left to read; also the socket thread's longest wait.
+constexpr std::chrono::milliseconds kIngestGuardInterval{100};
 constexpr std::size_t kControlMaxBytes = 1 << 20;
 // The second frame of an adopt request (a stream's whole state) may be larger: ZeroMQ drops a
 // connection that sends a frame longer than this (PROTOCOL.md §11).
@@ -473,8 +477,12 @@ struct Daemon::Impl final : ControlCommands {
   class ShardsPaused;
 
   // The hot path: the socket thread receives and hands over (ReceiveFrom), the stream's scoring
-  // thread does the rest.
-  void ReceiveFrom(zmq::socket_t& socket);
+  // thread does the rest. Returns true when `socket` had nothing more to read. `guarded`: a PULL
+  // socket, whose connections the ingest guard watches.
+  bool ReceiveFrom(zmq::socket_t& socket, bool guarded);
+  // Shuts down ingest connections ZeroMQ holds too much of (service/ingest_guard.h). Requires:
+  // the PULL sockets have nothing left to read.
+  void GuardIngestConnections();
   // Hands a message to scoring thread `owner` if its queue has room (ingest.scoring_queue_bytes,
   // kShardQueueMessages); the messages are moved only when it had.
   enum class Handed { kYes, kNoBytes, kNoPlace };
@@ -665,6 +673,11 @@ struct Daemon::Impl final : ControlCommands {
   bool hold_shards GUARDED_BY(pause_mutex) = false;
   Clock::time_point last_subscription_drain{};
   Clock::time_point next_expiry_scan{};
+  // The socket thread's: the ingest guard, over the first pull_sockets sockets of `ingest`.
+  std::optional<IngestConnectionGuard> ingest_guard;
+  std::size_t pull_sockets = 0;
+  Clock::time_point next_guard_check{};
+  bool guard_cut_logged = false;
 
   boost::asio::io_context io;
   boost::asio::executor_work_guard<boost::asio::io_context::executor_type> io_work{
@@ -982,10 +995,17 @@ void Daemon::Impl::BindSockets() {
     // whenever the daemon was behind; -1 keeps them until they are read. Closing the socket at
     // the stop still drops at once what is left then (DrainIngest reads it first).
     socket.set(zmq::sockopt::linger, -1);
-    if (server_keys) auth->Protect(socket, AuthSocket::kIngest, *server_keys);
+    // Without CURVE the handler still sees the connections, for the ingest guard.
+    if (server_keys) {
+      auth->Protect(socket, AuthSocket::kIngest, *server_keys);
+    } else {
+      auth->Gate(socket, AuthSocket::kIngest);
+    }
     endpoints.ingest.push_back(bind(socket, endpoint, "ingest.endpoints"));
     ingest.push_back(std::move(socket));
   }
+  pull_sockets = ingest.size();
+  ingest_guard.emplace(max_frame, server_keys.has_value());
   if (!s.subscribe_endpoints.empty()) {
     zmq::socket_t socket(context, zmq::socket_type::sub);
     socket.set(zmq::sockopt::rcvhwm, s.receive_high_water_mark);
@@ -1395,7 +1415,7 @@ void Daemon::Impl::Loop() {
     for (std::size_t i = 2; i < items.size(); ++i)
       items[i].events = parked.waiting ? 0 : ZMQ_POLLIN;
     try {
-      zmq::poll(items, std::chrono::milliseconds(parked.waiting ? 1 : 1000));
+      zmq::poll(items, parked.waiting ? std::chrono::milliseconds(1) : kIngestGuardInterval);
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
       throw;
@@ -1431,8 +1451,16 @@ void Daemon::Impl::Loop() {
       }
       if (items[1].revents & ZMQ_POLLIN) HandleControl();
       HandParked();  // the ingest sockets are read again at the next turn
+      // Drained: each PULL socket was polled for input and had none, or was read to the end.
+      bool pull_drained = !parked.waiting;
       for (std::size_t i = 0; i < ingest.size(); ++i) {
-        if (items[2 + i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
+        bool drained = items[2 + i].events != 0;  // not polled while a message was parked
+        if (items[2 + i].revents & ZMQ_POLLIN) drained = ReceiveFrom(ingest[i], i < pull_sockets);
+        if (i < pull_sockets) pull_drained = pull_drained && drained;
+      }
+      if (pull_drained && Clock::now() >= next_guard_check) {
+        next_guard_check = Clock::now() + kIngestGuardInterval;
+        GuardIngestConnections();
       }
       if (Clock::now() - last_subscription_drain > kSubscriptionDrainInterval) {
         last_subscription_drain = Clock::now();
@@ -1484,7 +1512,7 @@ void Daemon::Impl::DrainIngest() {
       }
       if (zmq::poll(items, kDrainQuiet) == 0) break;  // quiet: nothing more was queued
       for (std::size_t i = 0; i < ingest.size(); ++i) {
-        if (items[i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i]);
+        if (items[i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i], i < pull_sockets);
       }
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
@@ -1588,21 +1616,26 @@ void Daemon::Impl::Shutdown() {
   spdlog::info("stopped");
 }
 
-void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
-  if (!HandParked()) return;
+bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
+  if (!HandParked()) return false;
   for (int n = 0; n < kMessagesPerTurn; ++n) {
-    if (!socket.recv(key_message, zmq::recv_flags::dontwait)) return;
+    if (!socket.recv(key_message, zmq::recv_flags::dontwait)) return true;
     ++received_messages;
+    // ZMQ_SRCFD: the connection the message came from, for the guard's count of what was read.
+    const int source = guarded ? zmq_msg_get(key_message.handle(), ZMQ_SRCFD) : -1;
+    if (guarded) ingest_guard->CountFrame(source, key_message.size());
     std::size_t frames = 1;
     bool more = key_message.more();
     if (more) {
       // The frames of a multipart message arrive together: these never wait.
       (void)socket.recv(payload_message, zmq::recv_flags::none);
+      if (guarded) ingest_guard->CountFrame(source, payload_message.size());
       ++frames;
       more = payload_message.more();
     }
     while (more) {
       (void)socket.recv(extra_message, zmq::recv_flags::none);
+      if (guarded) ingest_guard->CountFrame(source, extra_message.size());
       ++frames;
       more = extra_message.more();
     }
@@ -1631,8 +1664,28 @@ void Daemon::Impl::ReceiveFrom(zmq::socket_t& socket) {
       parked.key.swap(key_message);
       parked.payload.swap(payload_message);
       parked.waiting = true;
-      return;
+      return false;
     }
+  }
+  return false;  // a full turn: more may be waiting
+}
+
+void Daemon::Impl::GuardIngestConnections() {
+  if (!ingest_guard || !auth || pull_sockets == 0) return;
+  std::vector<IngestConnectionGuard::Connection> live;
+  for (const CurveAuthenticator::PeerConnection& c : auth->Connections(AuthSocket::kIngest)) {
+    live.push_back({c.fd, c.generation});
+  }
+  for (const IngestConnectionGuard::Cut& cut : ingest_guard->Check(live, Clock::now())) {
+    metrics.ingest_connections_cut().Increment();
+    const auto level = guard_cut_logged ? spdlog::level::debug : spdlog::level::warn;
+    spdlog::log(level,
+                "ingest: shut down the connection from {}: ZeroMQ held {} bytes of it that no "
+                "whole message explains (allowed {}), a message whose frames do not end; counted "
+                "in nuwatch_ingest_connections_cut_total{}",
+                cut.peer, cut.unread_bytes, cut.allowance_bytes,
+                guard_cut_logged ? "" : "; further cuts are logged at debug level");
+    guard_cut_logged = true;
   }
 }
 

@@ -193,6 +193,13 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
   refits_queued_ = &Build(BuildGauge(), "nuwatch_refits_queued",
                           "Refits waiting for a refit thread (at most one per stream).", r)
                         .Add({});
+  ingest_connections_cut_ =
+      &Build(BuildCounter(), "nuwatch_ingest_connections_cut_total",
+             "Ingest TCP connections the daemon shut down because ZeroMQ held more of their bytes "
+             "than a message in progress and the kernel's buffer explain: a message whose frames "
+             "never end (README, \"A message that never ends\").",
+             r)
+           .Add({});
   ingest_queued_bytes_ =
       &Build(BuildGauge(), "nuwatch_ingest_queued_bytes",
              "Bytes of ingest messages handed to the scoring threads and not scored yet (at most "

@@ -179,6 +179,7 @@ class DaemonMetrics {
   prometheus::Counter& streams_released() const { return *streams_released_; }
   prometheus::Gauge& cluster_members() const { return *cluster_members_; }
   prometheus::Gauge& publish_connections() const { return *publish_connections_; }
+  prometheus::Counter& ingest_connections_cut() const { return *ingest_connections_cut_; }
   // Requires: not (kSent, kCorrupt) nor (kReceived, kWithdrawn), which are not series (a sender's
   // corrupt state is refused; only a sender withdraws).
   prometheus::Counter& handoffs(HandoffDirection direction, HandoffOutcome outcome) const {
@@ -226,6 +227,7 @@ class DaemonMetrics {
   prometheus::Counter* streams_released_;
   prometheus::Gauge* cluster_members_;
   prometheus::Gauge* publish_connections_;
+  prometheus::Counter* ingest_connections_cut_;
   std::array<std::array<prometheus::Counter*, kHandoffOutcomeCount>, 2> handoffs_{};
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;

@@ -63,13 +63,13 @@ TEST(DaemonEndToEnd, ABurstPastTheIngestByteBoundWaitsAndIsScoredWholeInOrder) {
   RunScript("IngestQueueBytes");
 }
 
+TEST(DaemonEndToEnd, AMessageWhoseFramesNeverEndIsCutAndCounted) { RunScript("UnendingMessage"); }
+
 TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("MetricsBasicAuth"); }
 
 TEST(DaemonEndToEnd, SigtermStopsADaemonWhosePublisherIsDown) { RunScript("AbsentPublisher"); }
 
-TEST(DaemonEndToEnd, ASubscriberOverTheLimitIsRefusedAndCounted) {
-  RunScript("SubscriberLimit");
-}
+TEST(DaemonEndToEnd, ASubscriberOverTheLimitIsRefusedAndCounted) { RunScript("SubscriberLimit"); }
 
 TEST(DaemonEndToEnd, CurveAdmitsListedKeysOnlyAndCountsRefusals) {
   RunScript("CurveAuthentication");

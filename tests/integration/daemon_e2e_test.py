@@ -24,6 +24,7 @@ import re
 import select
 import shutil
 import signal
+import socket
 import struct
 import subprocess
 import sys
@@ -1652,6 +1653,121 @@ class OversizedFrames(DaemonTestCase):
                                       reason="message_too_large"), 0.0)
         monitor.close()
         big.close()
+        self.stop_daemon(daemon, peer)
+
+
+def peak_rss_bytes(pid):
+    """VmHWM, the process's peak resident set (proc(5))."""
+    with open("/proc/%d/status" % pid) as f:
+        for line in f:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) * 1024
+    raise AssertionError("no VmHWM in /proc/%d/status" % pid)
+
+
+def zmtp_null_push(host, port):
+    """A plain TCP socket that has opened a ZMTP 3.0 session as a PUSH peer with the NULL
+    mechanism, written by hand from ZeroMQ RFC 23 (greeting: signature, version 3.0, mechanism
+    "NULL" padded to 20 bytes, as-server 0, 31 filler bytes; then a READY command whose one
+    property is Socket-Type)."""
+    rogue = socket.create_connection((host, port), timeout=WAIT_TIMEOUT)
+    rogue.sendall(b"\xff" + b"\0" * 8 + b"\x7f" + b"\x03\x00" + b"NULL".ljust(20, b"\0")
+                  + b"\x00" + b"\0" * 31)
+    body = b"\x05READY" + b"\x0bSocket-Type" + struct.pack(">I", 4) + b"PUSH"
+    rogue.sendall(b"\x04" + bytes([len(body)]) + body)  # a short command frame
+
+    def read(n):
+        data = b""
+        while len(data) < n:
+            chunk = rogue.recv(n - len(data))
+            if not chunk:
+                raise AssertionError("nuwatchd closed the connection in the handshake")
+            data += chunk
+        return data
+
+    # A peer may send messages only once the handshake is over: the server's greeting, then its
+    # READY command (which it sends once its ZAP handler has admitted the peer).
+    greeting = read(64)
+    assert greeting[0] == 0xFF and greeting[9] == 0x7F, greeting[:10]
+    flags = read(1)[0]
+    size = read(1)[0] if not flags & 0x02 else struct.unpack(">Q", read(8))[0]
+    command = read(size)
+    assert flags & 0x04 and command.startswith(b"\x05READY"), (flags, command[:16])
+    return rogue
+
+
+class UnendingMessage(DaemonTestCase):
+    """Issue 10 §3: libzmq bounds its queue per connection in whole messages (ZMQ_RCVHWM) and each
+    frame in bytes (ZMQ_MAXMSGSIZE), but not the frames of a message still open, which it holds
+    until the last one comes. A peer writing ZMTP by hand (RFC 23, above) sends 60 kB frames with
+    the MORE flag and never a last one. nuwatchd's ingest guard (service/ingest_guard.h) must shut
+    the connection down once ZeroMQ holds more of it than a message in progress and the kernel's
+    buffer explain, count it, keep its peak memory bounded, and keep another sender's stream
+    scoring. Without the guard such a peer took a PULL socket of the same libzmq (mark 8, frame
+    limit 2 MiB) to 650 MB within a second, and the memory grew for as long as it sent."""
+
+    def test_a_message_whose_frames_never_end_is_cut_and_counted(self):
+        daemon, peer = self.start_daemon(refit_every=0)
+        peer.subscribe_with_probe()
+        data = StreamData(seed=37)
+        feed_until_scoring(peer, "pump-a", data, ["json"])
+        host, port = daemon.endpoints["ingest"][0][len("tcp://"):].rsplit(":", 1)
+        peak_before = peak_rss_bytes(daemon.process.pid)
+
+        rogue = zmtp_null_push(host, int(port))
+        frame = b"\x03" + struct.pack(">Q", 60000) + b"r" * 60000  # MORE | LONG, RFC 23 §2.3
+        limit = 1 << 30  # what the rogue would push if nothing stopped it
+        sent = 0
+        cut = False
+        started = time.monotonic()
+
+        def closed_by_daemon():
+            # Its FIN (recv gives b"") or RST; the send may instead block on a closed window.
+            readable, _, _ = select.select([rogue], [], [], 0)
+            if not readable:
+                return False
+            try:
+                return rogue.recv(1, socket.MSG_PEEK) == b""
+            except ConnectionResetError:
+                return True
+
+        rogue.settimeout(0.5)
+        deadline = time.monotonic() + WAIT_TIMEOUT
+        while sent < limit and not cut and time.monotonic() < deadline:
+            try:
+                rogue.sendall(frame)
+                sent += len(frame)
+            except (BrokenPipeError, ConnectionResetError):
+                cut = True
+            except socket.timeout:
+                pass  # the window is shut: cut (its FIN, below), or no longer read (asserted)
+            cut = cut or closed_by_daemon()
+        elapsed = time.monotonic() - started
+        rogue.close()
+        self.assertTrue(cut, "the connection was not cut after %d MB in %.1f s"
+                        % (sent >> 20, elapsed))
+        peak_after = peak_rss_bytes(daemon.process.pid)
+        sys.stderr.write("unending message: cut after %.0f MB sent in %.2f s; nuwatchd's peak RSS "
+                         "%.0f MB before, %.0f MB after\n"
+                         % (sent / 1e6, elapsed, peak_before / 1e6, peak_after / 1e6))
+        # The bound: the guard's allowance (two frames of the limit, the kernel's receive buffer,
+        # 1 MiB), plus what arrives between two checks (100 ms apart); 256 MB is a quarter of what
+        # the rogue would have pushed.
+        self.assertLess(peak_after - peak_before, 256 << 20)
+        peer.wait_for(lambda: series_value(peer.scrape(), "nuwatch_ingest_connections_cut_total")
+                      == 1, "nuwatch_ingest_connections_cut_total = 1")
+        self.assertIn("a message whose frames do not end", daemon.log_text())
+
+        # The other sender's stream scores on; the rogue's frames were never a message.
+        before = len(peer.results("pump-a"))
+        for _ in range(20):
+            t, x = data.normal()
+            peer.send("pump-a", codec.encode_json([t], [x]))
+        peer.wait_for(lambda: len(peer.results("pump-a")) >= before + 20,
+                      "pump-a's results after the cut")
+        metrics = peer.scrape()
+        self.assertEqual(series_value(metrics, "nuwatch_rejected_messages_total",
+                                      reason="wrong_frame_count"), 0.0)
         self.stop_daemon(daemon, peer)
 
 

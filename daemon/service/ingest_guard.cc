@@ -1,0 +1,126 @@
+#include "service/ingest_guard.h"
+
+#include <arpa/inet.h>
+#include <linux/tcp.h>  // tcpi_bytes_received: glibc's <netinet/tcp.h> stops before it
+#include <sys/socket.h>
+
+#include <algorithm>
+#include <cstring>
+
+namespace nuwatch {
+namespace {
+
+// A ZMTP frame's header: a flags byte, then its size in one byte up to 255, else in eight.
+int64_t FrameHeaderBytes(std::size_t body) { return body <= 255 ? 2 : 9; }
+
+std::string PeerText(const sockaddr_storage& peer) {
+  char host[INET6_ADDRSTRLEN] = "?";
+  unsigned port = 0;
+  if (peer.ss_family == AF_INET) {
+    const auto& in = reinterpret_cast<const sockaddr_in&>(peer);
+    ::inet_ntop(AF_INET, &in.sin_addr, host, sizeof host);
+    port = ntohs(in.sin_port);
+  } else if (peer.ss_family == AF_INET6) {
+    const auto& in6 = reinterpret_cast<const sockaddr_in6&>(peer);
+    ::inet_ntop(AF_INET6, &in6.sin6_addr, host, sizeof host);
+    port = ntohs(in6.sin6_port);
+    return std::string("[") + host + "]:" + std::to_string(port);
+  }
+  return std::string(host) + ":" + std::to_string(port);
+}
+
+bool SamePeer(const sockaddr_storage& a, socklen_t a_length, const sockaddr_storage& b,
+              socklen_t b_length) {
+  return a_length == b_length && std::memcmp(&a, &b, a_length) == 0;
+}
+
+}  // namespace
+
+IngestConnectionGuard::IngestConnectionGuard(int64_t max_frame_bytes, bool curve)
+    : max_frame_bytes_(max_frame_bytes), curve_(curve) {}
+
+int64_t IngestConnectionGuard::WireBytes(std::size_t size, bool curve) {
+  // CURVE (RFC 26): a MESSAGE command, "\x07MESSAGE" (8), a short nonce (8), then the box: a
+  // 16-byte authenticator over a flags byte and the frame.
+  const std::size_t body = curve ? size + 33 : size;
+  return FrameHeaderBytes(body) + static_cast<int64_t>(body);
+}
+
+void IngestConnectionGuard::CountFrame(int fd, std::size_t size) {
+  if (fd < 0) return;
+  const auto index = static_cast<std::size_t>(fd);
+  if (index >= delivered_.size()) delivered_.resize(std::max<std::size_t>(index + 1, 64) * 2);
+  delivered_[index] += WireBytes(size, curve_);
+}
+
+int64_t IngestConnectionGuard::Delivered(int fd) const {
+  const auto index = static_cast<std::size_t>(fd);
+  return index < delivered_.size() ? delivered_[index] : 0;
+}
+
+int64_t IngestConnectionGuard::last_unread_bytes(int fd) const {
+  const auto it = tracked_.find(fd);
+  return it == tracked_.end() ? 0 : it->second.last_unread;
+}
+
+std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
+    const std::vector<Connection>& live, Clock::time_point now) {
+  std::vector<Cut> cuts;
+  std::unordered_map<int, Tracked> seen;
+  seen.reserve(live.size());
+  for (const Connection& connection : live) {
+    const int fd = connection.fd;
+    tcp_info info{};
+    socklen_t info_length = sizeof info;
+    sockaddr_storage peer{};
+    socklen_t peer_length = sizeof peer;
+    // Not TCP (ipc://), or closed already: nothing to check.
+    if (::getsockopt(fd, IPPROTO_TCP, TCP_INFO, &info, &info_length) != 0 ||
+        info_length < offsetof(tcp_info, tcpi_bytes_received) + sizeof info.tcpi_bytes_received ||
+        ::getpeername(fd, reinterpret_cast<sockaddr*>(&peer), &peer_length) != 0) {
+      continue;
+    }
+    const auto received = static_cast<int64_t>(info.tcpi_bytes_received);
+    Tracked tracked;
+    if (auto it = tracked_.find(fd);
+        it != tracked_.end() && it->second.generation == connection.generation &&
+        SamePeer(it->second.peer, it->second.peer_length, peer, peer_length)) {
+      tracked = it->second;
+    } else {
+      // First seen: what it sent before is taken as read. Its messages read since, if any, were
+      // counted under this descriptor too, so this errs towards leaving it alone.
+      tracked.generation = connection.generation;
+      tracked.peer = peer;
+      tracked.peer_length = peer_length;
+      tracked.received_at_start = received;
+      tracked.delivered_at_start = Delivered(fd);
+      tracked.first_seen = now;
+      seen.emplace(fd, tracked);
+      continue;
+    }
+    if (!tracked.cut) {
+      const int64_t unread =
+          (received - tracked.received_at_start) - (Delivered(fd) - tracked.delivered_at_start);
+      tracked.last_unread = unread;
+      int receive_buffer = 0;
+      socklen_t buffer_length = sizeof receive_buffer;
+      if (::getsockopt(fd, SOL_SOCKET, SO_RCVBUF, &receive_buffer, &buffer_length) != 0) {
+        receive_buffer = 0;
+      }
+      const double hours = std::chrono::duration<double>(now - tracked.first_seen).count() / 3600;
+      const int64_t allowance = 2 * (max_frame_bytes_ + 9) + receive_buffer + kSlackBytes +
+                                static_cast<int64_t>(hours * kDriftBytesPerHour);
+      if (unread > allowance) {
+        // libzmq sees the end of the stream, closes the connection and drops what it held of it.
+        ::shutdown(fd, SHUT_RDWR);
+        tracked.cut = true;
+        cuts.push_back({PeerText(peer), unread, allowance});
+      }
+    }
+    seen.emplace(fd, tracked);
+  }
+  tracked_ = std::move(seen);
+  return cuts;
+}
+
+}  // namespace nuwatch

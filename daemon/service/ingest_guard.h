@@ -1,0 +1,98 @@
+// Cuts an ingest TCP connection that makes ZeroMQ hold more bytes than any whole message explains.
+//
+// Why: libzmq 4.3 bounds what it queues for a connection in whole messages (ZMQ_RCVHWM) and each
+// frame in bytes (ZMQ_MAXMSGSIZE), but nothing bounds the frames of a message that is still open.
+// It holds them until the last frame comes, and the daemon cannot read a message before then. A
+// peer that writes ZMTP by hand and sends frame after frame with the MORE flag, never a last one,
+// took a PULL socket with a mark of 8 and a 2 MiB frame limit to 650 MB in one second (measured
+// on this machine; tests/integration/daemon_e2e_test.py has the peer). CURVE keeps out a peer
+// without an admitted key; this guard bounds what any connected peer can make the daemon hold.
+//
+// How: for each ingest connection, the bytes the kernel received from it (TCP_INFO's
+// tcpi_bytes_received, Linux 4.1 and later) less the wire bytes of every frame the daemon read
+// from it (ZMQ_SRCFD names the connection a frame came from) are the bytes still on their way:
+// in the kernel's receive buffer, in libzmq's decoder, in its queue. Whenever the daemon has read
+// every whole message ZeroMQ holds, that queue has no whole message left, so those bytes can only
+// be the message in progress (at most two frames of the frame limit), the kernel buffer and some
+// small change (the handshake, heartbeats). A connection over that allowance is shut down
+// (shutdown(2), so libzmq closes it and drops its unfinished message) and counted. Unix-domain
+// (ipc://) connections have no TCP_INFO and are not checked: their peers passed the socket file's
+// permissions.
+//
+// Thread safety: none; one thread (nuwatchd's socket thread) calls everything.
+#pragma once
+
+#include <netinet/in.h>
+#include <sys/socket.h>
+
+#include <chrono>
+#include <cstddef>
+#include <cstdint>
+#include <string>
+#include <unordered_map>
+#include <vector>
+
+namespace nuwatch {
+
+class IngestConnectionGuard {
+ public:
+  using Clock = std::chrono::steady_clock;
+
+  // One live connection of an ingest socket: its descriptor, and a number that changes when
+  // the descriptor is reused for another connection.
+  struct Connection {
+    int fd = -1;
+    uint64_t generation = 0;
+  };
+  struct Cut {
+    std::string peer;  // "address:port"
+    int64_t unread_bytes = 0;
+    int64_t allowance_bytes = 0;
+  };
+
+  // `max_frame_bytes`: the sockets' ZMQ_MAXMSGSIZE. `curve`: the ingest sockets are CURVE servers
+  // (each frame then travels in a MESSAGE command, 33 bytes larger).
+  IngestConnectionGuard(int64_t max_frame_bytes, bool curve);
+
+  // A frame of `size` bytes was read from the connection `fd` (ZMQ_SRCFD; < 0: not a socket the
+  // guard can see, e.g. inproc). Cheap: an add into a table by descriptor.
+  void CountFrame(int fd, std::size_t size);
+
+  // Checks `live` and shuts down each connection over its allowance. Requires: every whole message
+  // ZeroMQ held on the ingest sockets has been read just before the call. Ensures: forgets
+  // connections not in `live`. Returns the connections cut.
+  std::vector<Cut> Check(const std::vector<Connection>& live, Clock::time_point now);
+
+  // What the last Check found still on its way from connection `fd` (0 if it was not checked).
+  // For the tests and diagnostics.
+  int64_t last_unread_bytes(int fd) const;
+
+  // The bytes a frame of `size` bytes takes on the wire (ZMTP 3.0, RFC 23; CURVE, RFC 26).
+  static int64_t WireBytes(std::size_t size, bool curve);
+
+  // Room above the message in progress and the kernel's buffer (the handshake, heartbeats, a
+  // batch libzmq has decoded but not yet queued), and what a connection may add to it per hour
+  // (heartbeats, 9 bytes each). Public for the tests.
+  static constexpr int64_t kSlackBytes = 1 << 20;
+  static constexpr int64_t kDriftBytesPerHour = 256 << 10;
+
+ private:
+  struct Tracked {
+    uint64_t generation = 0;
+    sockaddr_storage peer{};
+    socklen_t peer_length = 0;
+    int64_t received_at_start = 0;   // tcpi_bytes_received when first seen
+    int64_t delivered_at_start = 0;  // delivered_[fd] then
+    Clock::time_point first_seen{};
+    int64_t last_unread = 0;
+    bool cut = false;
+  };
+  int64_t Delivered(int fd) const;
+
+  int64_t max_frame_bytes_;
+  bool curve_;
+  std::vector<int64_t> delivered_;  // wire bytes read, by descriptor, since the daemon started
+  std::unordered_map<int, Tracked> tracked_;
+};
+
+}  // namespace nuwatch

@@ -1,0 +1,214 @@
+// The ingest guard on real loopback TCP connections: the kernel's count of bytes received
+// (TCP_INFO) against the frames the test says were read. The frame sizes are checked against the
+// framing of ZeroMQ RFC 23 (ZMTP 3.0, §"Framing": a flags byte, then the size in one byte up to
+// 255, else in eight) and RFC 26 (CurveZMQ: a frame travels as a MESSAGE command,
+// "\x07MESSAGE", an 8-byte nonce and a box of a 16-byte authenticator over a flags byte and the
+// frame). The daemon-level check, a hand-written ZMTP peer against nuwatchd, is
+// DaemonEndToEnd.AMessageWhoseFramesNeverEndIsCutAndCounted.
+#include "service/ingest_guard.h"
+
+#include <arpa/inet.h>
+#include <gtest/gtest.h>
+#include <netinet/in.h>
+#include <sys/socket.h>
+#include <unistd.h>
+
+#include <cstring>
+#include <string>
+#include <thread>
+#include <vector>
+#include <zmq.hpp>
+
+namespace nuwatch {
+namespace {
+
+constexpr int64_t kMaxFrame = 64 << 10;
+constexpr std::size_t kFrame = 60000;
+
+// A connected pair on 127.0.0.1: `client` writes, `server` is the daemon's end.
+struct TcpPair {
+  int client = -1;
+  int server = -1;
+  TcpPair() {
+    const int listener = ::socket(AF_INET, SOCK_STREAM, 0);
+    sockaddr_in address{};
+    address.sin_family = AF_INET;
+    address.sin_addr.s_addr = htonl(INADDR_LOOPBACK);
+    socklen_t length = sizeof address;
+    EXPECT_EQ(::bind(listener, reinterpret_cast<sockaddr*>(&address), sizeof address), 0);
+    EXPECT_EQ(::listen(listener, 1), 0);
+    EXPECT_EQ(::getsockname(listener, reinterpret_cast<sockaddr*>(&address), &length), 0);
+    client = ::socket(AF_INET, SOCK_STREAM, 0);
+    EXPECT_EQ(::connect(client, reinterpret_cast<sockaddr*>(&address), sizeof address), 0);
+    server = ::accept(listener, nullptr, nullptr);
+    EXPECT_GE(server, 0);
+    ::close(listener);
+  }
+  ~TcpPair() {
+    ::close(client);
+    ::close(server);
+  }
+  // The client sends `frames` frames of kFrame bytes (header and body, as RFC 23); the server end
+  // reads them all, as libzmq would, and says so to `guard` only when `counted`.
+  void Send(int frames, IngestConnectionGuard& guard, bool counted) {
+    const std::string header = std::string("\x03\x00\x00\x00\x00\x00\x00\xea\x60", 9);  // MORE|LONG
+    const std::string frame = header + std::string(kFrame, 'x');
+    std::thread writer([&] {
+      for (int i = 0; i < frames; ++i) {
+        std::size_t done = 0;
+        while (done < frame.size()) {
+          const ssize_t n = ::send(client, frame.data() + done, frame.size() - done, MSG_NOSIGNAL);
+          ASSERT_GT(n, 0) << std::strerror(errno);
+          done += static_cast<std::size_t>(n);
+        }
+      }
+    });
+    std::vector<char> buffer(1 << 16);
+    std::size_t total = 0;
+    while (total < frame.size() * static_cast<std::size_t>(frames)) {
+      const ssize_t n = ::recv(server, buffer.data(), buffer.size(), 0);
+      ASSERT_GT(n, 0);
+      total += static_cast<std::size_t>(n);
+    }
+    writer.join();
+    if (counted) {
+      for (int i = 0; i < frames; ++i) guard.CountFrame(server, kFrame);
+    }
+  }
+  // True once the server end has sent its FIN (the guard's shutdown).
+  bool ClosedByServer() const {
+    char byte;
+    return ::recv(client, &byte, 1, MSG_DONTWAIT) == 0;
+  }
+};
+
+TEST(IngestConnectionGuard, WireBytesFollowZmtpFramingWithAndWithoutCurve) {
+  // RFC 23: a one-byte size up to 255, then eight bytes.
+  EXPECT_EQ(IngestConnectionGuard::WireBytes(0, false), 2);
+  EXPECT_EQ(IngestConnectionGuard::WireBytes(255, false), 2 + 255);
+  EXPECT_EQ(IngestConnectionGuard::WireBytes(256, false), 9 + 256);
+  // RFC 26: the command's body is 8 + 8 + 16 + 1 bytes larger than the frame.
+  EXPECT_EQ(IngestConnectionGuard::WireBytes(0, true), 2 + 33);
+  EXPECT_EQ(IngestConnectionGuard::WireBytes(222, true), 2 + 255);
+  EXPECT_EQ(IngestConnectionGuard::WireBytes(223, true), 9 + 256);
+}
+
+// The framing checked against libzmq itself: a PUSH socket sends two-frame messages of several
+// sizes to a PULL socket; once every message is read, and each frame counted under its ZMQ_SRCFD,
+// nothing is left unexplained: the kernel's count of bytes received equals the sum of WireBytes,
+// to the byte, with and without CURVE.
+TEST(IngestConnectionGuard, WireBytesMatchWhatLibzmqSends) {
+  for (const bool curve : {false, true}) {
+    zmq::context_t context;
+    zmq::socket_t pull(context, zmq::socket_type::pull);
+    zmq::socket_t push(context, zmq::socket_type::push);
+    if (curve) {
+      char server_public[41], server_secret[41], client_public[41], client_secret[41];
+      ASSERT_EQ(zmq_curve_keypair(server_public, server_secret), 0);
+      ASSERT_EQ(zmq_curve_keypair(client_public, client_secret), 0);
+      pull.set(zmq::sockopt::curve_server, true);
+      pull.set(zmq::sockopt::curve_secretkey, std::string(server_secret));
+      push.set(zmq::sockopt::curve_serverkey, std::string(server_public));
+      push.set(zmq::sockopt::curve_publickey, std::string(client_public));
+      push.set(zmq::sockopt::curve_secretkey, std::string(client_secret));
+    }
+    pull.bind("tcp://127.0.0.1:*");
+    push.connect(pull.get(zmq::sockopt::last_endpoint));
+    IngestConnectionGuard guard(kMaxFrame, curve);
+    auto now = IngestConnectionGuard::Clock::now();
+    auto receive = [&](int count) {
+      int fd = -1;
+      for (int i = 0; i < count; ++i) {
+        bool more = true;
+        while (more) {
+          zmq::message_t frame;
+          if (!pull.recv(frame)) {
+            ADD_FAILURE() << "no message";
+            return -1;
+          }
+          fd = zmq_msg_get(frame.handle(), ZMQ_SRCFD);
+          guard.CountFrame(fd, frame.size());
+          more = frame.more();
+        }
+      }
+      return fd;
+    };
+    push.send(zmq::str_buffer("warm"), zmq::send_flags::sndmore);
+    push.send(zmq::str_buffer("up"));
+    const int fd = receive(1);
+    ASSERT_GE(fd, 0);
+    EXPECT_TRUE(guard.Check({{fd, 1}}, now).empty());  // first seen: the handshake is behind
+    const std::size_t sizes[] = {0, 100, 222, 223, 255, 256, 5000, 60000};
+    for (int round = 0; round < 20; ++round) {
+      for (const std::size_t size : sizes) {
+        push.send(zmq::buffer(std::string("pump-a")), zmq::send_flags::sndmore);
+        push.send(zmq::buffer(std::string(size, 'x')));
+      }
+    }
+    receive(20 * static_cast<int>(std::size(sizes)));
+    EXPECT_TRUE(guard.Check({{fd, 1}}, now + std::chrono::milliseconds(100)).empty());
+    EXPECT_EQ(guard.last_unread_bytes(fd), 0) << (curve ? "CURVE" : "NULL");
+  }
+}
+
+TEST(IngestConnectionGuard, AConnectionWhoseFramesWereAllReadIsLeftAlone) {
+  TcpPair pair;
+  IngestConnectionGuard guard(kMaxFrame, false);
+  const std::vector<IngestConnectionGuard::Connection> live = {{pair.server, 1}};
+  auto now = IngestConnectionGuard::Clock::now();
+  EXPECT_TRUE(guard.Check(live, now).empty());  // first seen
+  pair.Send(600, guard, /*counted=*/true);      // 36 MB, all read as whole messages
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(100)).empty());
+  EXPECT_FALSE(pair.ClosedByServer());
+}
+
+TEST(IngestConnectionGuard, BytesNoReadFrameExplainsPastTheAllowanceCutTheConnection) {
+  TcpPair pair;
+  IngestConnectionGuard guard(kMaxFrame, false);
+  const std::vector<IngestConnectionGuard::Connection> live = {{pair.server, 1}};
+  auto now = IngestConnectionGuard::Clock::now();
+  EXPECT_TRUE(guard.Check(live, now).empty());
+  // Under the allowance (two frames of the limit, the receive buffer, 1 MiB): left alone.
+  pair.Send(10, guard, /*counted=*/false);  // 600 kB held
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(100)).empty());
+  // 36 MB that no whole message explains: cut, once.
+  pair.Send(600, guard, /*counted=*/false);
+  const auto cuts = guard.Check(live, now + std::chrono::milliseconds(200));
+  ASSERT_EQ(cuts.size(), 1u);
+  EXPECT_EQ(cuts[0].peer.rfind("127.0.0.1:", 0), 0u) << cuts[0].peer;
+  // Every byte since it was first seen: the kernel counts exactly what was sent.
+  EXPECT_EQ(cuts[0].unread_bytes, int64_t{610} * static_cast<int64_t>(kFrame + 9));
+  EXPECT_GE(cuts[0].allowance_bytes, 2 * kMaxFrame + IngestConnectionGuard::kSlackBytes);
+  EXPECT_TRUE(pair.ClosedByServer());
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(300)).empty());
+}
+
+TEST(IngestConnectionGuard, AReusedDescriptorStartsAfresh) {
+  TcpPair pair;
+  IngestConnectionGuard guard(kMaxFrame, false);
+  auto now = IngestConnectionGuard::Clock::now();
+  EXPECT_TRUE(guard.Check({{pair.server, 1}}, now).empty());
+  pair.Send(600, guard, /*counted=*/false);
+  // The same descriptor under a new generation (another connection, as the monitor reported):
+  // what came before is not held against it.
+  EXPECT_TRUE(guard.Check({{pair.server, 2}}, now + std::chrono::milliseconds(100)).empty());
+  EXPECT_TRUE(guard.Check({{pair.server, 2}}, now + std::chrono::milliseconds(200)).empty());
+  EXPECT_FALSE(pair.ClosedByServer());
+}
+
+TEST(IngestConnectionGuard, AUnixDomainConnectionIsNotChecked) {
+  int ends[2];
+  ASSERT_EQ(::socketpair(AF_UNIX, SOCK_STREAM, 0, ends), 0);
+  IngestConnectionGuard guard(kMaxFrame, false);
+  auto now = IngestConnectionGuard::Clock::now();
+  EXPECT_TRUE(guard.Check({{ends[1], 1}}, now).empty());
+  // No byte of it counted as read; a socket pair's buffer takes 16 KiB without blocking.
+  const std::string bytes(16 << 10, 'x');
+  ASSERT_EQ(::send(ends[0], bytes.data(), bytes.size(), 0), static_cast<ssize_t>(bytes.size()));
+  EXPECT_TRUE(guard.Check({{ends[1], 1}}, now + std::chrono::milliseconds(100)).empty());
+  ::close(ends[0]);
+  ::close(ends[1]);
+}
+
+}  // namespace
+}  // namespace nuwatch
