@@ -63,14 +63,24 @@ void CurveAuthenticator::Gate(zmq::socket_t& socket, AuthSocket which) {
 }
 
 void CurveAuthenticator::SetConnectionLimit(AuthSocket which, int64_t limit) {
-  if (Watched* w = ServerWatched(which)) w->limit = limit;
+  for (Watched& w : watched_) {
+    if (w.which == which && !w.client) w.limit = limit;
+  }
 }
 
-CurveAuthenticator::Watched* CurveAuthenticator::ServerWatched(AuthSocket which) {
-  for (Watched& w : watched_) {
-    if (w.which == which && !w.client) return &w;
+std::size_t CurveAuthenticator::ConnectionCount(AuthSocket which) const {
+  std::size_t count = 0;
+  for (const Watched& w : watched_) {
+    if (w.which == which && !w.client) count += w.connections.size();
   }
-  return nullptr;
+  return count;
+}
+
+int64_t CurveAuthenticator::ConnectionLimit(AuthSocket which) const {
+  for (const Watched& w : watched_) {
+    if (w.which == which && !w.client) return w.limit;
+  }
+  return 0;
 }
 
 void CurveAuthenticator::ProtectClient(zmq::socket_t& socket, AuthSocket which,
@@ -187,16 +197,22 @@ void CurveAuthenticator::HandleZapRequest() {
     for (std::size_t i = 0; i < kAuthSocketCount; ++i) {
       if (domain == AuthSocketLabel(static_cast<AuthSocket>(i))) which = static_cast<AuthSocket>(i);
     }
-    const Watched* watched = ServerWatched(which);
-    // Over the limit: the socket holds more connections than it admits, this one included.
-    const bool over_limit = watched != nullptr && watched->limit > 0 &&
-                            static_cast<int64_t>(watched->connections.size()) > watched->limit;
+    const Watched* watched = nullptr;
+    for (const Watched& w : watched_) {
+      if (w.which == which && !w.client && watched == nullptr) watched = &w;
+    }
+    // Over the limit: the sockets hold more connections than they admit, this one included.
+    const std::size_t connections = ConnectionCount(which);
+    const int64_t limit = ConnectionLimit(which);
+    const bool over_limit = limit > 0 && static_cast<int64_t>(connections) > limit;
     auto refuse_over_limit = [&] {
       status = "400";
       status_text = "too many connections";
-      Refuse(which, AuthRefusal::kSubscriberLimit,
-             std::to_string(watched->connections.size() - 1) + " connections already, " +
-                 "the limit is " + std::to_string(watched->limit) + "; " + address);
+      Refuse(
+          which,
+          which == AuthSocket::kIngest ? AuthRefusal::kSenderLimit : AuthRefusal::kSubscriberLimit,
+          std::to_string(connections - 1) + " connections already, the limit is " +
+              std::to_string(limit) + "; " + address);
     };
     if (mechanism == "NULL" && watched != nullptr && !watched->curve) {
       // A gated socket without CURVE: only the limit applies.
@@ -262,6 +278,9 @@ bool CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
         if (event == ZMQ_EVENT_ACCEPTED) listed.push_back({fd, next_generation_++});
         if (watched.which == AuthSocket::kPublish) {
           metrics_->publish_connections().Set(static_cast<double>(watched.connections.size()));
+        } else if (watched.which == AuthSocket::kIngest) {
+          metrics_->ingest_connections().Set(
+              static_cast<double>(ConnectionCount(AuthSocket::kIngest)));
         }
       }
       break;

@@ -13,17 +13,18 @@
 // bound in the constructor, before any protected socket binds, and stops only once they are all
 // closed (Stop's requirement).
 //
-// The same handler bounds how many peers a socket holds at once (SetConnectionLimit; the result
-// socket's publish.max_subscribers), with or without CURVE: a socket without CURVE is given a ZAP
+// The same handler bounds how many peers the sockets of one kind hold at once (SetConnectionLimit;
+// the result socket's publish.max_subscribers, the ingest sockets' ingest.max_senders), with or
+// without CURVE: a socket without CURVE is given a ZAP
 // domain (Gate), which makes libzmq ask the handler about its NULL-mechanism handshakes too. The
 // monitor's accepted and disconnected events count a socket's connections; before answering a
 // request the handler takes every pending event, so that the connection asking is counted (libzmq
 // reports its accept before its handshake can reach ZAP). A connection over the limit is refused
-// and counted as subscriber_limit, with ZAP status 400: RFC 27's 300 (a temporary error) would
-// fit better, but libzmq then closes the connection without an ERROR command, and the peer's
-// monitor sees a bare failed handshake (EPIPE); with 400 it sees HANDSHAKE_FAILED_AUTH and the
-// status (observed with libzmq 4.3.4), so a client can say why. A peer still in its handshake holds
-// a place until libzmq's handshake timeout (ZMQ_HANDSHAKE_IVL, 30 s by default) drops it.
+// and counted as subscriber_limit or sender_limit, with ZAP status 400: RFC 27's 300 (a temporary
+// error) would fit better, but libzmq then closes the connection without an ERROR command, and the
+// peer's monitor sees a bare failed handshake (EPIPE); with 400 it sees HANDSHAKE_FAILED_AUTH and
+// the status (observed with libzmq 4.3.4), so a client can say why. A peer still in its handshake
+// holds a place until libzmq's handshake timeout (ZMQ_HANDSHAKE_IVL, 30 s by default) drops it.
 //
 // Threads: one thread, "nuwatchd-auth", owns the ZAP socket and the monitor sockets from Start to
 // Stop. ReplaceAllowed may be called from any thread.
@@ -68,8 +69,8 @@ class CurveAuthenticator {
   // Brings a server socket without CURVE before the handler (a ZAP domain), which admits its
   // peers within the connection limit. Requires: as Protect.
   void Gate(zmq::socket_t& socket, AuthSocket which);
-  // At most `limit` connections at once on the server socket `which` (0: no limit). Requires:
-  // before Start; `which` protected or gated.
+  // At most `limit` connections at once on the server sockets `which`, all of them together (0:
+  // no limit). Requires: before Start; the sockets protected or gated.
   void SetConnectionLimit(AuthSocket which, int64_t limit);
   // Starts the thread. Call once, after every Protect.
   void Start();
@@ -98,7 +99,9 @@ class CurveAuthenticator {
     std::set<int> connections;  // a server's accepted, not yet disconnected, by descriptor
   };
   void Watch(zmq::socket_t& socket, AuthSocket which, bool client, bool curve);
-  Watched* ServerWatched(AuthSocket which);
+  // The server sockets `which` hold this many connections, and may hold that many (0: no limit).
+  std::size_t ConnectionCount(AuthSocket which) const;
+  int64_t ConnectionLimit(AuthSocket which) const;
   void Run();
   void HandleZapRequest();
   // Takes one pending event of `watched`'s monitor; false when there was none.

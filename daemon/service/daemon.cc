@@ -1005,6 +1005,7 @@ void Daemon::Impl::BindSockets() {
     ingest.push_back(std::move(socket));
   }
   pull_sockets = ingest.size();
+  auth->SetConnectionLimit(AuthSocket::kIngest, s.ingest_max_senders);
   ingest_guard.emplace(max_frame, server_keys.has_value());
   if (!s.subscribe_endpoints.empty()) {
     zmq::socket_t socket(context, zmq::socket_type::sub);

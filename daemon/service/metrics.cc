@@ -58,6 +58,8 @@ std::string_view AuthRefusalLabel(AuthRefusal reason) {
       return "incomplete_handshake";
     case AuthRefusal::kSubscriberLimit:
       return "subscriber_limit";
+    case AuthRefusal::kSenderLimit:
+      return "sender_limit";
   }
   return "unknown";
 }
@@ -193,6 +195,12 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
   refits_queued_ = &Build(BuildGauge(), "nuwatch_refits_queued",
                           "Refits waiting for a refit thread (at most one per stream).", r)
                         .Add({});
+  ingest_connections_ =
+      &Build(BuildGauge(), "nuwatch_ingest_connections",
+             "Connections to the ingest sockets (PULL): senders, and peers still in their "
+             "handshake (ingest.max_senders bounds them).",
+             r)
+           .Add({});
   ingest_connections_cut_ =
       &Build(BuildCounter(), "nuwatch_ingest_connections_cut_total",
              "Ingest TCP connections the daemon shut down because ZeroMQ held more of their bytes "
@@ -250,7 +258,8 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
                         "in auth.client_keys), wrong_mechanism (no CURVE), bad_handshake (e.g. a "
                         "wrong server key), incomplete_handshake (gone before it finished); and "
                         "on the result socket, with or without CURVE, subscriber_limit (it had "
-                        "publish.max_subscribers connections).",
+                        "publish.max_subscribers connections); on the ingest socket, with or "
+                        "without CURVE, sender_limit (ingest.max_senders).",
                         r);
   for (std::size_t i = 0; i < kAuthSocketCount; ++i) {
     const std::string socket(AuthSocketLabel(static_cast<AuthSocket>(i)));
@@ -258,6 +267,10 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
     for (std::size_t j = 0; j < kAuthRefusalCount; ++j) {
       if (static_cast<AuthRefusal>(j) == AuthRefusal::kSubscriberLimit &&
           static_cast<AuthSocket>(i) != AuthSocket::kPublish) {
+        continue;
+      }
+      if (static_cast<AuthRefusal>(j) == AuthRefusal::kSenderLimit &&
+          static_cast<AuthSocket>(i) != AuthSocket::kIngest) {
         continue;
       }
       auth_refused_[i][j] =

@@ -97,15 +97,17 @@ std::string_view AuthSocketLabel(AuthSocket socket);
 // auth.client_keys), wrong_mechanism (no CURVE), bad_handshake (the CURVE handshake failed: a wrong
 // server key, a malformed command), incomplete_handshake (the peer went away or timed out before
 // the handshake finished, e.g. a port scan), subscriber_limit (the result socket had
-// publish.max_subscribers connections already; a series of the publish socket only).
+// publish.max_subscribers connections already; a series of the publish socket only),
+// sender_limit (the ingest sockets had ingest.max_senders; of the ingest socket only).
 enum class AuthRefusal : uint8_t {
   kUnknownKey,
   kWrongMechanism,
   kBadHandshake,
   kIncompleteHandshake,
-  kSubscriberLimit
+  kSubscriberLimit,
+  kSenderLimit
 };
-inline constexpr std::size_t kAuthRefusalCount = 5;
+inline constexpr std::size_t kAuthRefusalCount = 6;
 std::string_view AuthRefusalLabel(AuthRefusal reason);
 
 // A stream handed to another member (kSent) or taken over from one (kReceived), PROTOCOL.md §13.4.
@@ -180,6 +182,7 @@ class DaemonMetrics {
   prometheus::Gauge& cluster_members() const { return *cluster_members_; }
   prometheus::Gauge& publish_connections() const { return *publish_connections_; }
   prometheus::Counter& ingest_connections_cut() const { return *ingest_connections_cut_; }
+  prometheus::Gauge& ingest_connections() const { return *ingest_connections_; }
   // Requires: not (kSent, kCorrupt) nor (kReceived, kWithdrawn), which are not series (a sender's
   // corrupt state is refused; only a sender withdraws).
   prometheus::Counter& handoffs(HandoffDirection direction, HandoffOutcome outcome) const {
@@ -190,7 +193,7 @@ class DaemonMetrics {
     return *publish_dropped_[static_cast<std::size_t>(message)][static_cast<std::size_t>(reason)];
   }
   prometheus::Counter& state_write_failures() const { return *state_write_failures_; }
-  // Requires: kSubscriberLimit only with kPublish.
+  // Requires: kSubscriberLimit only with kPublish, kSenderLimit only with kIngest.
   prometheus::Counter& auth_refused(AuthSocket socket, AuthRefusal reason) const {
     return *auth_refused_[static_cast<std::size_t>(socket)][static_cast<std::size_t>(reason)];
   }
@@ -228,6 +231,7 @@ class DaemonMetrics {
   prometheus::Gauge* cluster_members_;
   prometheus::Gauge* publish_connections_;
   prometheus::Counter* ingest_connections_cut_;
+  prometheus::Gauge* ingest_connections_;
   std::array<std::array<prometheus::Counter*, kHandoffOutcomeCount>, 2> handoffs_{};
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;

@@ -171,6 +171,18 @@ const Setting<S> kDaemonKeys[] = {
      .bounds_note = " (0: no limit)",
      .reload = kRestart},
     {.section = "ingest",
+     .name = "max_senders",
+     .member = &S::ingest_max_senders,
+     .doc = "Connections the ingest sockets admit at once, all of them together; a further one is "
+            "refused (ZAP status 400) and counted (nuwatch_auth_refusals_total{reason=\"sender_"
+            "limit\"}), so that ZeroMQ's ingest queues take at most max_senders x "
+            "receive_high_water_mark messages and idle connections cannot use up the daemon's "
+            "file descriptors; 0: no limit.",
+     .unit = "connections",
+     .bounds = AtLeast(0),
+     .bounds_note = " (0: no limit)",
+     .reload = kRestart},
+    {.section = "ingest",
      .name = "scoring_queue_bytes",
      .member = &S::scoring_queue_bytes,
      .doc = "Bytes of ingest messages handed to each scoring thread and not yet scored, at most "

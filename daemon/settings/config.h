@@ -42,6 +42,7 @@ struct DaemonSettings {
   std::string publish_endpoint = "tcp://127.0.0.1:7602";  // endpoint
   int publish_high_water_mark = 10000;                    // high_water_mark
   int64_t publish_max_subscribers = 32;                   // max_subscribers
+  int64_t ingest_max_senders = 256;                       // ingest.max_senders
   bool publish_learning = true;                           // include_learning
   bool publish_batches = false;                           // batches
   std::string publish_result_form = "json";               // result_form: "json" or "binary"

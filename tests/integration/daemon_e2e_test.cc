@@ -65,6 +65,8 @@ TEST(DaemonEndToEnd, ABurstPastTheIngestByteBoundWaitsAndIsScoredWholeInOrder) {
 
 TEST(DaemonEndToEnd, AMessageWhoseFramesNeverEndIsCutAndCounted) { RunScript("UnendingMessage"); }
 
+TEST(DaemonEndToEnd, ASenderOverTheLimitIsRefusedAndCounted) { RunScript("SenderLimit"); }
+
 TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("MetricsBasicAuth"); }
 
 TEST(DaemonEndToEnd, SigtermStopsADaemonWhosePublisherIsDown) { RunScript("AbsentPublisher"); }

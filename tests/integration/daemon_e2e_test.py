@@ -1182,6 +1182,73 @@ class SubscriberLimit(DaemonTestCase):
         self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
 
 
+class SenderLimit(DaemonTestCase):
+    """Issue 10 §3: ingest.max_senders bounds the ingest sockets' connections, so that the memory
+    ZeroMQ's ingest queues can take (senders x receive_high_water_mark messages) and the daemon's
+    file descriptors have a bound whoever connects. The senders are pyzmq PUSH sockets; the refusal
+    is read from a pyzmq socket monitor (the handshake fails with ZAP status 400, RFC 27) and from
+    /metrics."""
+
+    def sender(self, endpoint):
+        push = self.context.socket(zmq.PUSH)
+        push.setsockopt(zmq.LINGER, 0)
+        monitor = push.get_monitor_socket(zmq.EVENT_HANDSHAKE_SUCCEEDED
+                                          | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
+        push.connect(endpoint)
+        return push, monitor
+
+    def test_a_sender_over_the_limit_is_refused_and_counted_until_a_place_frees(self):
+        self.context = zmq.Context()
+        daemon, peer = self.start_daemon(refit_every=0,
+                                         extra_config="\n[ingest]\nmax_senders = 2\n")
+        try:
+            peer.subscribe_with_probe()  # the peer's own PUSH socket is the first sender
+            ingest = daemon.endpoints["ingest"][0]
+            second, second_monitor = self.sender(ingest)
+            self.assertEqual(SubscriberLimit.handshake(second_monitor), ("ok", 0))
+            third, third_monitor = self.sender(ingest)
+            self.assertEqual(SubscriberLimit.handshake(third_monitor), ("refused", 400))
+            text = peer.scrape()
+            self.assertEqual(series_value(text, "nuwatch_auth_refusals_total", socket="ingest",
+                                          reason="sender_limit"), 1)
+            self.assertEqual(series_value(text, "nuwatch_ingest_connections"), 2)
+            # The result socket has no such series, nor the ingest socket subscriber_limit.
+            self.assertIsNone(series_value(text, "nuwatch_auth_refusals_total", socket="publish",
+                                           reason="sender_limit"))
+            self.assertIsNone(series_value(text, "nuwatch_auth_refusals_total", socket="ingest",
+                                           reason="subscriber_limit"))
+
+            # The admitted second sender's vectors are scored; the refused one's never arrive.
+            data = StreamData(seed=43)
+            t, x = data.normal()
+            try:
+                third.send_multipart([b"pump-refused", codec.encode_json([t], [x])], zmq.NOBLOCK)
+            except zmq.Again:
+                pass  # libzmq keeps no pipe for a refused peer: nothing could even be queued
+            for _ in range(3):
+                t, x = data.normal()
+                second.send_multipart([b"pump-02", codec.encode_json([t], [x])])
+            peer.wait_for(lambda: len(peer.results("pump-02")) == 3, "pump-02's three results")
+
+            # A place frees when a sender leaves; a new connection is then admitted.
+            second.close(0)
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while series_value(peer.scrape(), "nuwatch_ingest_connections") != 1:
+                self.assertLess(time.monotonic(), deadline, "the place was not freed")
+                time.sleep(0.05)  # polling /metrics, bounded by the deadline
+            fourth, fourth_monitor = self.sender(ingest)
+            self.assertEqual(SubscriberLimit.handshake(fourth_monitor), ("ok", 0))
+            t, x = data.normal()
+            fourth.send_multipart([b"pump-04", codec.encode_json([t], [x])])
+            peer.wait_for(lambda: len(peer.results("pump-04")) == 1, "pump-04's result")
+            self.assertEqual(peer.results("pump-refused"), [])
+            for s in (third, fourth, second_monitor, third_monitor, fourth_monitor):
+                s.close(0)
+        finally:
+            self.context.destroy(linger=0)
+        self.stop_daemon(daemon, peer)
+
+
 class CurveAuthentication(DaemonTestCase):
     """Issue 10 §1: CURVE on ingest, results and control with a ZAP handler that admits only the
     listed client keys (daemon/protocol/PROTOCOL.md §12).
