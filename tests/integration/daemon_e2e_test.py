@@ -1670,6 +1670,18 @@ class AbsentPublisher(DaemonTestCase):
         self.assertIn("stopped", daemon.log_text())
 
 
+def send_and_expect_scoring(test, peer, data, stream, when):
+    """Sends 20 normal vectors to `stream` (a model already scoring) and checks that each gets a
+    result in state "scoring"."""
+    before = len(peer.results(stream))
+    for _ in range(20):
+        t, x = data.normal()
+        peer.send(stream, codec.encode_json([t], [x]))
+    peer.wait_for(lambda: len(peer.results(stream)) >= before + 20,
+                  "%s's results %s" % (stream, when))
+    test.assertTrue(all(r["state"] == "scoring" for r in peer.results(stream)[before:]))
+
+
 class OversizedFrames(DaemonTestCase):
     """Issue 10 §3: ingest is bounded in bytes by ZeroMQ itself. nuwatchd sets ZMQ_MAXMSGSIZE on
     its ingest sockets to 2 x limits.max_message_bytes + 4096 (daemon.cc): a frame up to that
@@ -1707,13 +1719,7 @@ class OversizedFrames(DaemonTestCase):
 
         # The other sender's stream keeps scoring, and the refused frame was neither decoded nor
         # counted as a §8 rejection (it never reached nuwatchd's code).
-        before = len(peer.results("pump-a"))
-        for _ in range(20):
-            t, x = data.normal()
-            peer.send("pump-a", codec.encode_json([t], [x]))
-        peer.wait_for(lambda: len(peer.results("pump-a")) >= before + 20,
-                      "pump-a's results after the oversized frame")
-        self.assertTrue(all(r["state"] == "scoring" for r in peer.results("pump-a")[before:]))
+        send_and_expect_scoring(self, peer, data, "pump-a", "after the oversized frame")
         self.assertEqual(peer.results("pump-big"), [])
         metrics = peer.scrape()
         self.assertEqual(series_value(metrics, "nuwatch_rejected_messages_total",
@@ -1826,12 +1832,7 @@ class UnendingMessage(DaemonTestCase):
         self.assertIn("a message whose frames do not end", daemon.log_text())
 
         # The other sender's stream scores on; the rogue's frames were never a message.
-        before = len(peer.results("pump-a"))
-        for _ in range(20):
-            t, x = data.normal()
-            peer.send("pump-a", codec.encode_json([t], [x]))
-        peer.wait_for(lambda: len(peer.results("pump-a")) >= before + 20,
-                      "pump-a's results after the cut")
+        send_and_expect_scoring(self, peer, data, "pump-a", "after the cut")
         metrics = peer.scrape()
         self.assertEqual(series_value(metrics, "nuwatch_rejected_messages_total",
                                       reason="wrong_frame_count"), 0.0)
