@@ -480,9 +480,9 @@ struct Daemon::Impl final : ControlCommands {
   // thread does the rest. Returns true when `socket` had nothing more to read. `guarded`: a PULL
   // socket, whose connections the ingest guard watches.
   bool ReceiveFrom(zmq::socket_t& socket, bool guarded);
-  // Shuts down ingest connections ZeroMQ holds too much of (service/ingest_guard.h). Requires:
+  // Shuts down ingest connections ZeroMQ holds too much of (service/ingest_guard.h). `drained`:
   // the PULL sockets have nothing left to read.
-  void GuardIngestConnections();
+  void GuardIngestConnections(bool drained);
   // Hands a message to scoring thread `owner` if its queue has room (ingest.scoring_queue_bytes,
   // kShardQueueMessages); the messages are moved only when it had.
   enum class Handed { kYes, kNoBytes, kNoPlace };
@@ -1006,7 +1006,7 @@ void Daemon::Impl::BindSockets() {
   }
   pull_sockets = ingest.size();
   auth->SetConnectionLimit(AuthSocket::kIngest, s.ingest_max_senders);
-  ingest_guard.emplace(max_frame, server_keys.has_value());
+  ingest_guard.emplace(max_frame, s.receive_high_water_mark, server_keys.has_value());
   if (!s.subscribe_endpoints.empty()) {
     zmq::socket_t socket(context, zmq::socket_type::sub);
     socket.set(zmq::sockopt::rcvhwm, s.receive_high_water_mark);
@@ -1459,9 +1459,9 @@ void Daemon::Impl::Loop() {
         if (items[2 + i].revents & ZMQ_POLLIN) drained = ReceiveFrom(ingest[i], i < pull_sockets);
         if (i < pull_sockets) pull_drained = pull_drained && drained;
       }
-      if (pull_drained && Clock::now() >= next_guard_check) {
+      if (Clock::now() >= next_guard_check) {
         next_guard_check = Clock::now() + kIngestGuardInterval;
-        GuardIngestConnections();
+        GuardIngestConnections(pull_drained);
       }
       if (Clock::now() - last_subscription_drain > kSubscriptionDrainInterval) {
         last_subscription_drain = Clock::now();
@@ -1671,13 +1671,13 @@ bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
   return false;  // a full turn: more may be waiting
 }
 
-void Daemon::Impl::GuardIngestConnections() {
+void Daemon::Impl::GuardIngestConnections(bool drained) {
   if (!ingest_guard || !auth || pull_sockets == 0) return;
   std::vector<IngestConnectionGuard::Connection> live;
   for (const CurveAuthenticator::PeerConnection& c : auth->Connections(AuthSocket::kIngest)) {
     live.push_back({c.fd, c.generation});
   }
-  for (const IngestConnectionGuard::Cut& cut : ingest_guard->Check(live, Clock::now())) {
+  for (const IngestConnectionGuard::Cut& cut : ingest_guard->Check(live, Clock::now(), drained)) {
     metrics.ingest_connections_cut().Increment();
     const auto level = guard_cut_logged ? spdlog::level::debug : spdlog::level::warn;
     spdlog::log(level,

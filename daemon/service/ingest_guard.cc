@@ -36,8 +36,9 @@ bool SamePeer(const sockaddr_storage& a, socklen_t a_length, const sockaddr_stor
 
 }  // namespace
 
-IngestConnectionGuard::IngestConnectionGuard(int64_t max_frame_bytes, bool curve)
-    : max_frame_bytes_(max_frame_bytes), curve_(curve) {}
+IngestConnectionGuard::IngestConnectionGuard(int64_t max_frame_bytes, int64_t receive_mark,
+                                             bool curve)
+    : max_frame_bytes_(max_frame_bytes), receive_mark_(receive_mark), curve_(curve) {}
 
 int64_t IngestConnectionGuard::WireBytes(std::size_t size, bool curve) {
   // CURVE (RFC 26): a MESSAGE command, "\x07MESSAGE" (8), a short nonce (8), then the box: a
@@ -64,7 +65,7 @@ int64_t IngestConnectionGuard::last_unread_bytes(int fd) const {
 }
 
 std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
-    const std::vector<Connection>& live, Clock::time_point now) {
+    const std::vector<Connection>& live, Clock::time_point now, bool drained) {
   std::vector<Cut> cuts;
   std::unordered_map<int, Tracked> seen;
   seen.reserve(live.size());
@@ -108,9 +109,14 @@ std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
         receive_buffer = 0;
       }
       const double hours = std::chrono::duration<double>(now - tracked.first_seen).count() / 3600;
-      const int64_t allowance = 2 * (max_frame_bytes_ + 9) + receive_buffer + kSlackBytes +
+      // A message the protocol admits: two frames of the limit at most.
+      const int64_t message = 2 * WireBytes(static_cast<std::size_t>(max_frame_bytes_), curve_);
+      // Not drained: up to the mark of whole messages may wait too, and one more that libzmq's
+      // decoder holds while the queue is full (no mark: no bound to check).
+      const int64_t messages = drained ? 1 : receive_mark_ > 0 ? receive_mark_ + 2 : 0;
+      const int64_t allowance = messages * message + receive_buffer + kSlackBytes +
                                 static_cast<int64_t>(hours * kDriftBytesPerHour);
-      if (unread > allowance) {
+      if (messages > 0 && unread > allowance) {
         // libzmq sees the end of the stream, closes the connection and drops what it held of it.
         ::shutdown(fd, SHUT_RDWR);
         tracked.cut = true;

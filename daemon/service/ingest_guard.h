@@ -14,10 +14,14 @@
 // in the kernel's receive buffer, in libzmq's decoder, in its queue. Whenever the daemon has read
 // every whole message ZeroMQ holds, that queue has no whole message left, so those bytes can only
 // be the message in progress (at most two frames of the frame limit), the kernel buffer and some
-// small change (the handshake, heartbeats). A connection over that allowance is shut down
-// (shutdown(2), so libzmq closes it and drops its unfinished message) and counted. Unix-domain
-// (ipc://) connections have no TCP_INFO and are not checked: their peers passed the socket file's
-// permissions.
+// small change (the handshake, heartbeats). At any other moment the queue may also hold up to the
+// mark of whole messages, each of at most two frames in a message the protocol admits (PROTOCOL.md
+// §2; a message of more frames is refused only once read, and libzmq counts it as one message
+// however many frames it has), so the allowance is the mark plus two (the one in progress, one
+// the decoder holds while the queue is full) times two frames, with the same buffer and change. A
+// connection over its allowance is shut down (shutdown(2), so libzmq closes it and drops its
+// unfinished message) and counted. Unix-domain (ipc://) connections have no TCP_INFO and are not
+// checked: their peers passed the socket file's permissions.
 //
 // Thread safety: none; one thread (nuwatchd's socket thread) calls everything.
 #pragma once
@@ -50,18 +54,20 @@ class IngestConnectionGuard {
     int64_t allowance_bytes = 0;
   };
 
-  // `max_frame_bytes`: the sockets' ZMQ_MAXMSGSIZE. `curve`: the ingest sockets are CURVE servers
-  // (each frame then travels in a MESSAGE command, 33 bytes larger).
-  IngestConnectionGuard(int64_t max_frame_bytes, bool curve);
+  // `max_frame_bytes`: the sockets' ZMQ_MAXMSGSIZE. `receive_mark`: their ZMQ_RCVHWM (0: none, and
+  // then only drained checks can cut). `curve`: the ingest sockets are CURVE servers (each frame
+  // then travels in a MESSAGE command, 33 bytes larger).
+  IngestConnectionGuard(int64_t max_frame_bytes, int64_t receive_mark, bool curve);
 
   // A frame of `size` bytes was read from the connection `fd` (ZMQ_SRCFD; < 0: not a socket the
   // guard can see, e.g. inproc). Cheap: an add into a table by descriptor.
   void CountFrame(int fd, std::size_t size);
 
-  // Checks `live` and shuts down each connection over its allowance. Requires: every whole message
-  // ZeroMQ held on the ingest sockets has been read just before the call. Ensures: forgets
-  // connections not in `live`. Returns the connections cut.
-  std::vector<Cut> Check(const std::vector<Connection>& live, Clock::time_point now);
+  // Checks `live` and shuts down each connection over its allowance. `drained`: every whole
+  // message ZeroMQ held on the ingest sockets has been read just before the call (the tight
+  // allowance applies); else the allowance counts a full queue. Ensures: forgets connections not
+  // in `live`. Returns the connections cut.
+  std::vector<Cut> Check(const std::vector<Connection>& live, Clock::time_point now, bool drained);
 
   // What the last Check found still on its way from connection `fd` (0 if it was not checked).
   // For the tests and diagnostics.
@@ -90,6 +96,7 @@ class IngestConnectionGuard {
   int64_t Delivered(int fd) const;
 
   int64_t max_frame_bytes_;
+  int64_t receive_mark_;
   bool curve_;
   std::vector<int64_t> delivered_;  // wire bytes read, by descriptor, since the daemon started
   std::unordered_map<int, Tracked> tracked_;

@@ -24,6 +24,7 @@ namespace {
 
 constexpr int64_t kMaxFrame = 64 << 10;
 constexpr std::size_t kFrame = 60000;
+constexpr int64_t kMark = 8;
 
 // A connected pair on 127.0.0.1: `client` writes, `server` is the daemon's end.
 struct TcpPair {
@@ -114,7 +115,7 @@ TEST(IngestConnectionGuard, WireBytesMatchWhatLibzmqSends) {
     }
     pull.bind("tcp://127.0.0.1:*");
     push.connect(pull.get(zmq::sockopt::last_endpoint));
-    IngestConnectionGuard guard(kMaxFrame, curve);
+    IngestConnectionGuard guard(kMaxFrame, kMark, curve);
     auto now = IngestConnectionGuard::Clock::now();
     auto receive = [&](int count) {
       int fd = -1;
@@ -137,7 +138,7 @@ TEST(IngestConnectionGuard, WireBytesMatchWhatLibzmqSends) {
     push.send(zmq::str_buffer("up"));
     const int fd = receive(1);
     ASSERT_GE(fd, 0);
-    EXPECT_TRUE(guard.Check({{fd, 1}}, now).empty());  // first seen: the handshake is behind
+    EXPECT_TRUE(guard.Check({{fd, 1}}, now, true).empty());  // first seen: the handshake is behind
     const std::size_t sizes[] = {0, 100, 222, 223, 255, 256, 5000, 60000};
     for (int round = 0; round < 20; ++round) {
       for (const std::size_t size : sizes) {
@@ -146,66 +147,107 @@ TEST(IngestConnectionGuard, WireBytesMatchWhatLibzmqSends) {
       }
     }
     receive(20 * static_cast<int>(std::size(sizes)));
-    EXPECT_TRUE(guard.Check({{fd, 1}}, now + std::chrono::milliseconds(100)).empty());
+    EXPECT_TRUE(guard.Check({{fd, 1}}, now + std::chrono::milliseconds(100), true).empty());
     EXPECT_EQ(guard.last_unread_bytes(fd), 0) << (curve ? "CURVE" : "NULL");
   }
 }
 
 TEST(IngestConnectionGuard, AConnectionWhoseFramesWereAllReadIsLeftAlone) {
   TcpPair pair;
-  IngestConnectionGuard guard(kMaxFrame, false);
+  IngestConnectionGuard guard(kMaxFrame, kMark, false);
   const std::vector<IngestConnectionGuard::Connection> live = {{pair.server, 1}};
   auto now = IngestConnectionGuard::Clock::now();
-  EXPECT_TRUE(guard.Check(live, now).empty());  // first seen
-  pair.Send(600, guard, /*counted=*/true);      // 36 MB, all read as whole messages
-  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(100)).empty());
+  EXPECT_TRUE(guard.Check(live, now, true).empty());  // first seen
+  pair.Send(600, guard, /*counted=*/true);            // 36 MB, all read as whole messages
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(100), true).empty());
   EXPECT_FALSE(pair.ClosedByServer());
 }
 
 TEST(IngestConnectionGuard, BytesNoReadFrameExplainsPastTheAllowanceCutTheConnection) {
   TcpPair pair;
-  IngestConnectionGuard guard(kMaxFrame, false);
+  IngestConnectionGuard guard(kMaxFrame, kMark, false);
   const std::vector<IngestConnectionGuard::Connection> live = {{pair.server, 1}};
   auto now = IngestConnectionGuard::Clock::now();
-  EXPECT_TRUE(guard.Check(live, now).empty());
+  EXPECT_TRUE(guard.Check(live, now, true).empty());
   // Under the allowance (two frames of the limit, the receive buffer, 1 MiB): left alone.
   pair.Send(10, guard, /*counted=*/false);  // 600 kB held
-  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(100)).empty());
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(100), true).empty());
   // 36 MB that no whole message explains: cut, once.
   pair.Send(600, guard, /*counted=*/false);
-  const auto cuts = guard.Check(live, now + std::chrono::milliseconds(200));
+  const auto cuts = guard.Check(live, now + std::chrono::milliseconds(200), true);
   ASSERT_EQ(cuts.size(), 1u);
   EXPECT_EQ(cuts[0].peer.rfind("127.0.0.1:", 0), 0u) << cuts[0].peer;
   // Every byte since it was first seen: the kernel counts exactly what was sent.
   EXPECT_EQ(cuts[0].unread_bytes, int64_t{610} * static_cast<int64_t>(kFrame + 9));
   EXPECT_GE(cuts[0].allowance_bytes, 2 * kMaxFrame + IngestConnectionGuard::kSlackBytes);
   EXPECT_TRUE(pair.ClosedByServer());
-  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(300)).empty());
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(300), true).empty());
+}
+
+// Between drained checks up to the mark of whole messages may wait in ZeroMQ's queue, each of two
+// frames at most: the allowance counts them, and bytes past even that are cut at once.
+TEST(IngestConnectionGuard, WhileWholeMessagesMayWaitTheAllowanceCountsAFullQueue) {
+  TcpPair pair;
+  // A fixed receive buffer (512 KiB as the kernel doubles it): autotuning on loopback may grow it
+  // to tens of MB, which would blur the two allowances.
+  const int buffer = 256 << 10;
+  ASSERT_EQ(::setsockopt(pair.server, SOL_SOCKET, SO_RCVBUF, &buffer, sizeof buffer), 0);
+  IngestConnectionGuard guard(kMaxFrame, /*receive_mark=*/64, false);
+  const std::vector<IngestConnectionGuard::Connection> live = {{pair.server, 1}};
+  auto now = IngestConnectionGuard::Clock::now();
+  EXPECT_TRUE(guard.Check(live, now, false).empty());
+  pair.Send(85, guard, /*counted=*/false);  // 5.1 MB: under 65 messages of two 64 KiB frames
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(100), false).empty());
+  EXPECT_FALSE(pair.ClosedByServer());
+  // Drained, no whole message is left to explain them.
+  const auto cuts = guard.Check(live, now + std::chrono::milliseconds(200), true);
+  ASSERT_EQ(cuts.size(), 1u);
+  EXPECT_GT(cuts[0].unread_bytes, cuts[0].allowance_bytes);
+  EXPECT_TRUE(pair.ClosedByServer());
+
+  TcpPair flooded;
+  ASSERT_EQ(::setsockopt(flooded.server, SOL_SOCKET, SO_RCVBUF, &buffer, sizeof buffer), 0);
+  const std::vector<IngestConnectionGuard::Connection> other = {{flooded.server, 2}};
+  EXPECT_TRUE(guard.Check(other, now, false).empty());
+  flooded.Send(300, guard, /*counted=*/false);  // 18 MB: more than a full queue
+  EXPECT_EQ(guard.Check(other, now + std::chrono::milliseconds(100), false).size(), 1u);
+  EXPECT_TRUE(flooded.ClosedByServer());
+}
+
+TEST(IngestConnectionGuard, WithoutAMarkOnlyADrainedCheckCuts) {
+  TcpPair pair;
+  IngestConnectionGuard guard(kMaxFrame, /*receive_mark=*/0, false);
+  const std::vector<IngestConnectionGuard::Connection> live = {{pair.server, 1}};
+  auto now = IngestConnectionGuard::Clock::now();
+  EXPECT_TRUE(guard.Check(live, now, false).empty());
+  pair.Send(600, guard, /*counted=*/false);
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(100), false).empty());
+  EXPECT_EQ(guard.Check(live, now + std::chrono::milliseconds(200), true).size(), 1u);
 }
 
 TEST(IngestConnectionGuard, AReusedDescriptorStartsAfresh) {
   TcpPair pair;
-  IngestConnectionGuard guard(kMaxFrame, false);
+  IngestConnectionGuard guard(kMaxFrame, kMark, false);
   auto now = IngestConnectionGuard::Clock::now();
-  EXPECT_TRUE(guard.Check({{pair.server, 1}}, now).empty());
+  EXPECT_TRUE(guard.Check({{pair.server, 1}}, now, true).empty());
   pair.Send(600, guard, /*counted=*/false);
   // The same descriptor under a new generation (another connection, as the monitor reported):
   // what came before is not held against it.
-  EXPECT_TRUE(guard.Check({{pair.server, 2}}, now + std::chrono::milliseconds(100)).empty());
-  EXPECT_TRUE(guard.Check({{pair.server, 2}}, now + std::chrono::milliseconds(200)).empty());
+  EXPECT_TRUE(guard.Check({{pair.server, 2}}, now + std::chrono::milliseconds(100), true).empty());
+  EXPECT_TRUE(guard.Check({{pair.server, 2}}, now + std::chrono::milliseconds(200), true).empty());
   EXPECT_FALSE(pair.ClosedByServer());
 }
 
 TEST(IngestConnectionGuard, AUnixDomainConnectionIsNotChecked) {
   int ends[2];
   ASSERT_EQ(::socketpair(AF_UNIX, SOCK_STREAM, 0, ends), 0);
-  IngestConnectionGuard guard(kMaxFrame, false);
+  IngestConnectionGuard guard(kMaxFrame, kMark, false);
   auto now = IngestConnectionGuard::Clock::now();
-  EXPECT_TRUE(guard.Check({{ends[1], 1}}, now).empty());
+  EXPECT_TRUE(guard.Check({{ends[1], 1}}, now, true).empty());
   // No byte of it counted as read; a socket pair's buffer takes 16 KiB without blocking.
   const std::string bytes(16 << 10, 'x');
   ASSERT_EQ(::send(ends[0], bytes.data(), bytes.size(), 0), static_cast<ssize_t>(bytes.size()));
-  EXPECT_TRUE(guard.Check({{ends[1], 1}}, now + std::chrono::milliseconds(100)).empty());
+  EXPECT_TRUE(guard.Check({{ends[1], 1}}, now + std::chrono::milliseconds(100), true).empty());
   ::close(ends[0]);
   ::close(ends[1]);
 }
