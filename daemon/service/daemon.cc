@@ -686,6 +686,7 @@ struct Daemon::Impl final : ControlCommands {
   boost::asio::steady_timer snapshot_timer{io};
   boost::asio::steady_timer flush_timer{io};
   boost::asio::steady_timer trim_timer{io};
+  bool io_stopping = false;  // the io thread's: no timer is armed again once set
   std::atomic<double> snapshot_interval_seconds{300};
   std::thread io_thread;
   std::thread socket_thread;
@@ -1189,7 +1190,9 @@ void Daemon::Impl::StartTimer(boost::asio::steady_timer& timer, double seconds,
   timer.expires_after(
       std::chrono::duration_cast<Clock::duration>(std::chrono::duration<double>(seconds)));
   timer.async_wait([this, &timer, &flag, seconds](const boost::system::error_code& error) {
-    if (error) return;  // cancelled at shutdown
+    // Cancelled at shutdown; or it expired just before the cancel and was already queued, when
+    // arming it again would keep the io thread, and the stop that joins it, waiting for ever.
+    if (error || io_stopping) return;
     flag = true;
     Wake();
     const double next = &timer == &snapshot_timer ? snapshot_interval_seconds.load() : seconds;
@@ -1200,7 +1203,7 @@ void Daemon::Impl::StartTimer(boost::asio::steady_timer& timer, double seconds,
 void Daemon::Impl::StartTrimTimer() {
   trim_timer.expires_after(std::chrono::seconds(kTrimIntervalSeconds));
   trim_timer.async_wait([this](const boost::system::error_code& error) {
-    if (error) return;  // cancelled at shutdown
+    if (error || io_stopping) return;  // cancelled at shutdown (see StartTimer)
     // A burst of large ingest messages is allocated by ZeroMQ's I/O threads and freed by the
     // scoring threads; glibc keeps what was freed in its arenas (its mmap threshold rises to
     // the message size after the first large free), so without this a burst of 300 messages of
@@ -1214,7 +1217,7 @@ void Daemon::Impl::StartTrimTimer() {
 
 void Daemon::Impl::WaitForSignal() {
   signals->async_wait([this](const boost::system::error_code& error, int signal) {
-    if (error) return;
+    if (error || io_stopping) return;  // cancelled at shutdown (see StartTimer)
     if (signal == SIGHUP) {
       // This is the io thread: `config` belongs to the socket thread, whose Reload replaces it
       // (a data race ThreadSanitizer found; issue 10). The file never changes on reload, and
@@ -1598,6 +1601,7 @@ void Daemon::Impl::Shutdown() {
     spdlog::error("stopping: {}", e.what());
   }
   boost::asio::post(io, [this] {
+    io_stopping = true;
     if (signals) signals->cancel();
     snapshot_timer.cancel();
     flush_timer.cancel();
