@@ -112,10 +112,10 @@ void CurveAuthenticator::ReplaceAllowed(std::set<std::string> keys) {
   allowed_ = std::move(keys);
 }
 
-std::vector<CurveAuthenticator::PeerConnection> CurveAuthenticator::Connections(
-    AuthSocket which) const {
+void CurveAuthenticator::Connections(AuthSocket which, std::vector<PeerConnection>* out) const {
   MutexLock lock(&mutex_);
-  return connections_[static_cast<std::size_t>(which)];
+  const std::vector<PeerConnection>& listed = connections_[static_cast<std::size_t>(which)];
+  out->assign(listed.begin(), listed.end());
 }
 
 std::size_t CurveAuthenticator::allowed_count() const {

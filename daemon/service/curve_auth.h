@@ -85,7 +85,9 @@ class CurveAuthenticator {
     int fd = -1;
     uint64_t generation = 0;
   };
-  std::vector<PeerConnection> Connections(AuthSocket which) const EXCLUDES(mutex_);
+  // Fills `out` (cleared first; its capacity is reused, so a caller that keeps it allocates
+  // nothing once it is large enough).
+  void Connections(AuthSocket which, std::vector<PeerConnection>* out) const EXCLUDES(mutex_);
   // Stops and joins the thread. Requires: every protected socket is closed. Idempotent.
   void Stop();
 

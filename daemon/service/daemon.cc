@@ -677,6 +677,8 @@ struct Daemon::Impl final : ControlCommands {
   std::optional<IngestConnectionGuard> ingest_guard;
   std::size_t pull_sockets = 0;
   Clock::time_point next_guard_check{};
+  std::vector<CurveAuthenticator::PeerConnection> guard_listed;
+  std::vector<IngestConnectionGuard::Connection> guard_live;
   bool guard_cut_logged = false;
 
   boost::asio::io_context io;
@@ -1677,11 +1679,14 @@ bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
 
 void Daemon::Impl::GuardIngestConnections(bool drained) {
   if (!ingest_guard || !auth || pull_sockets == 0) return;
-  std::vector<IngestConnectionGuard::Connection> live;
-  for (const CurveAuthenticator::PeerConnection& c : auth->Connections(AuthSocket::kIngest)) {
-    live.push_back({c.fd, c.generation});
+  // Kept from check to check, so that a check allocates nothing in the steady state.
+  auth->Connections(AuthSocket::kIngest, &guard_listed);
+  guard_live.clear();
+  for (const CurveAuthenticator::PeerConnection& c : guard_listed) {
+    guard_live.push_back({c.fd, c.generation});
   }
-  for (const IngestConnectionGuard::Cut& cut : ingest_guard->Check(live, Clock::now(), drained)) {
+  for (const IngestConnectionGuard::Cut& cut :
+       ingest_guard->Check(guard_live, Clock::now(), drained)) {
     metrics.ingest_connections_cut().Increment();
     const auto level = guard_cut_logged ? spdlog::level::debug : spdlog::level::warn;
     spdlog::log(level,

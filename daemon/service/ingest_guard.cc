@@ -66,9 +66,10 @@ int64_t IngestConnectionGuard::last_unread_bytes(int fd) const {
 
 std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
     const std::vector<Connection>& live, Clock::time_point now, bool drained) {
+  // Allocates nothing in the steady state (design.md): entries are updated in place and the
+  // connections not listed any more erased afterwards; only a new connection or a cut allocates.
   std::vector<Cut> cuts;
-  std::unordered_map<int, Tracked> seen;
-  seen.reserve(live.size());
+  ++check_;
   for (const Connection& connection : live) {
     const int fd = connection.fd;
     tcp_info info{};
@@ -82,21 +83,22 @@ std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
       continue;
     }
     const auto received = static_cast<int64_t>(info.tcpi_bytes_received);
-    Tracked tracked;
-    if (auto it = tracked_.find(fd);
-        it != tracked_.end() && it->second.generation == connection.generation &&
-        SamePeer(it->second.peer, it->second.peer_length, peer, peer_length)) {
-      tracked = it->second;
-    } else {
+    auto it = tracked_.find(fd);
+    if (it == tracked_.end()) it = tracked_.emplace(fd, Tracked{}).first;
+    Tracked& tracked = it->second;
+    tracked.check = check_;
+    if (tracked.generation != connection.generation ||
+        !SamePeer(tracked.peer, tracked.peer_length, peer, peer_length)) {
       // First seen: what it sent before is taken as read. Its messages read since, if any, were
       // counted under this descriptor too, so this errs towards leaving it alone.
+      tracked = Tracked{};
+      tracked.check = check_;
       tracked.generation = connection.generation;
       tracked.peer = peer;
       tracked.peer_length = peer_length;
       tracked.received_at_start = received;
       tracked.delivered_at_start = Delivered(fd);
       tracked.first_seen = now;
-      seen.emplace(fd, tracked);
       continue;
     }
     if (!tracked.cut) {
@@ -123,9 +125,8 @@ std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
         cuts.push_back({PeerText(peer), unread, allowance});
       }
     }
-    seen.emplace(fd, tracked);
   }
-  tracked_ = std::move(seen);
+  std::erase_if(tracked_, [this](const auto& entry) { return entry.second.check != check_; });
   return cuts;
 }
 

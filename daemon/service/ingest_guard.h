@@ -91,6 +91,7 @@ class IngestConnectionGuard {
     int64_t delivered_at_start = 0;  // delivered_[fd] then
     Clock::time_point first_seen{};
     int64_t last_unread = 0;
+    uint64_t check = 0;  // the last Check that listed it
     bool cut = false;
   };
   int64_t Delivered(int fd) const;
@@ -100,6 +101,7 @@ class IngestConnectionGuard {
   bool curve_;
   std::vector<int64_t> delivered_;  // wire bytes read, by descriptor, since the daemon started
   std::unordered_map<int, Tracked> tracked_;
+  uint64_t check_ = 0;
 };
 
 }  // namespace nuwatch
