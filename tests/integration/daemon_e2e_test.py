@@ -1208,6 +1208,12 @@ class SenderLimit(DaemonTestCase):
             self.assertEqual(SubscriberLimit.handshake(second_monitor), ("ok", 0))
             third, third_monitor = self.sender(ingest)
             self.assertEqual(SubscriberLimit.handshake(third_monitor), ("refused", 400))
+            # The refused connection is counted until libzmq has closed it and its monitor has
+            # told the daemon, a moment after the refusal.
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while series_value(peer.scrape(), "nuwatch_ingest_connections") != 2:
+                self.assertLess(time.monotonic(), deadline, "the refused connection stays counted")
+                time.sleep(0.05)  # polling /metrics, bounded by the deadline
             text = peer.scrape()
             self.assertEqual(series_value(text, "nuwatch_auth_refusals_total", socket="ingest",
                                           reason="sender_limit"), 1)
