@@ -6,6 +6,7 @@
 
 #include <algorithm>
 #include <cstring>
+#include <functional>
 
 namespace nuwatch {
 namespace {
@@ -47,11 +48,13 @@ int64_t IngestConnectionGuard::WireBytes(std::size_t size, bool curve) {
   return FrameHeaderBytes(body) + static_cast<int64_t>(body);
 }
 
-void IngestConnectionGuard::CountFrame(int fd, std::size_t size) {
-  if (fd < 0) return;
+int64_t IngestConnectionGuard::CountFrame(int fd, std::size_t size) {
+  if (fd < 0) return 0;
   const auto index = static_cast<std::size_t>(fd);
   if (index >= delivered_.size()) delivered_.resize(std::max<std::size_t>(index + 1, 64) * 2);
-  delivered_[index] += WireBytes(size, curve_);
+  const int64_t wire = WireBytes(size, curve_);
+  delivered_[index] += wire;
+  return wire;
 }
 
 int64_t IngestConnectionGuard::Delivered(int fd) const {
@@ -70,6 +73,7 @@ std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
   // connections not listed any more erased afterwards; only a new connection or a cut allocates.
   std::vector<Cut> cuts;
   ++check_;
+  total_unread_ = 0;
   for (const Connection& connection : live) {
     const int fd = connection.fd;
     tcp_info info{};
@@ -105,6 +109,7 @@ std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
       const int64_t unread =
           (received - tracked.received_at_start) - (Delivered(fd) - tracked.delivered_at_start);
       tracked.last_unread = unread;
+      total_unread_ += std::max<int64_t>(unread, 0);
       int receive_buffer = 0;
       socklen_t buffer_length = sizeof receive_buffer;
       if (::getsockopt(fd, SOL_SOCKET, SO_RCVBUF, &receive_buffer, &buffer_length) != 0) {
@@ -123,11 +128,70 @@ std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
         ::shutdown(fd, SHUT_RDWR);
         tracked.cut = true;
         cuts.push_back({PeerText(peer), unread, allowance});
+        total_unread_ -= std::max<int64_t>(unread, 0);
+        quota_left_ -= tracked.quota;
+        tracked.quota = 0;
       }
     }
   }
-  std::erase_if(tracked_, [this](const auto& entry) { return entry.second.check != check_; });
+  std::erase_if(tracked_, [this](const auto& entry) {
+    if (entry.second.check == check_) return false;
+    quota_left_ -= entry.second.quota;
+    return true;
+  });
   return cuts;
+}
+
+std::vector<IngestConnectionGuard::Quota> IngestConnectionGuard::PlanShedding(
+    int64_t max_unread_bytes, int64_t held_bytes) {
+  StopShedding();
+  std::vector<Quota> quotas;
+  const int64_t total = total_unread_ + std::max<int64_t>(held_bytes, 0);
+  if (max_unread_bytes <= 0 || total <= max_unread_bytes) return quotas;
+  const auto eligible = [this](const Tracked& t) {
+    return t.check == check_ && !t.cut && t.last_unread > 0;
+  };
+  levels_.clear();
+  for (const auto& [fd, tracked] : tracked_) {
+    if (eligible(tracked)) levels_.push_back(tracked.last_unread);
+  }
+  if (levels_.empty()) return quotas;
+  std::sort(levels_.begin(), levels_.end(), std::greater<>());
+  // The level L to which the largest are brought: sum over them of (unread - L) = the excess
+  // (L = 0, all they hold, when what is held elsewhere exceeds the budget on its own).
+  const int64_t excess = total - max_unread_bytes / 2;
+  int64_t sum = 0;
+  int64_t level = 0;
+  for (std::size_t k = 0; k < levels_.size(); ++k) {
+    sum += levels_[k];
+    level = (sum - excess) / static_cast<int64_t>(k + 1);
+    if (k + 1 == levels_.size() || level >= levels_[k + 1]) break;
+  }
+  level = std::max<int64_t>(level, 0);
+  for (auto& [fd, tracked] : tracked_) {
+    if (!eligible(tracked) || tracked.last_unread <= level) continue;
+    tracked.quota = tracked.last_unread - level;
+    quota_left_ += tracked.quota;
+    quotas.push_back({PeerText(tracked.peer), tracked.last_unread, tracked.quota});
+  }
+  std::sort(quotas.begin(), quotas.end(),
+            [](const Quota& a, const Quota& b) { return a.unread_bytes > b.unread_bytes; });
+  return quotas;
+}
+
+bool IngestConnectionGuard::Shed(int fd, int64_t wire_bytes) {
+  if (quota_left_ <= 0) return false;
+  const auto it = tracked_.find(fd);
+  if (it == tracked_.end() || it->second.quota <= 0) return false;
+  const int64_t used = std::min(it->second.quota, wire_bytes);
+  it->second.quota -= used;
+  quota_left_ -= used;
+  return true;
+}
+
+void IngestConnectionGuard::StopShedding() {
+  for (auto& [fd, tracked] : tracked_) tracked.quota = 0;
+  quota_left_ = 0;
 }
 
 }  // namespace nuwatch

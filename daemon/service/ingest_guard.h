@@ -23,6 +23,17 @@
 // unfinished message) and counted. Unix-domain (ipc://) connections have no TCP_INFO and are not
 // checked: their peers passed the socket file's permissions.
 //
+// Shedding: the same measure, summed over the connections, is what ZeroMQ and the kernel hold for
+// ingest and the daemon has not read. libzmq bounds it only in whole messages per connection (a
+// mark of 10,000 maximal messages is 40 GB a sender), and shutting a connection down frees none
+// of it: the whole messages of a closed connection stay queued until read (the daemon's linger
+// of -1). So when the sum passes a budget (ingest.max_unread_bytes) while the daemon cannot keep
+// up, PlanShedding gives the connections holding most a quota, bytes to be read and dropped
+// until the sum is back at half the budget ("water-filling": the largest are brought down to a
+// common level, the others keep all they hold), and Shed tells the socket thread whether a
+// message just read falls under its connection's quota. A connection within its share loses
+// nothing, so a flood from one sender does not cost another stream its data.
+//
 // Thread safety: none; one thread (nuwatchd's socket thread) calls everything.
 #pragma once
 
@@ -53,6 +64,12 @@ class IngestConnectionGuard {
     int64_t unread_bytes = 0;
     int64_t allowance_bytes = 0;
   };
+  // A connection given a quota by PlanShedding.
+  struct Quota {
+    std::string peer;  // "address:port"
+    int64_t unread_bytes = 0;
+    int64_t quota_bytes = 0;
+  };
 
   // `max_frame_bytes`: the sockets' ZMQ_MAXMSGSIZE. `receive_mark`: their ZMQ_RCVHWM (0: none, and
   // then only drained checks can cut). `curve`: the ingest sockets are CURVE servers (each frame
@@ -60,8 +77,9 @@ class IngestConnectionGuard {
   IngestConnectionGuard(int64_t max_frame_bytes, int64_t receive_mark, bool curve);
 
   // A frame of `size` bytes was read from the connection `fd` (ZMQ_SRCFD; < 0: not a socket the
-  // guard can see, e.g. inproc). Cheap: an add into a table by descriptor.
-  void CountFrame(int fd, std::size_t size);
+  // guard can see, e.g. inproc). Cheap: an add into a table by descriptor. Returns the frame's
+  // wire bytes (0 when fd < 0).
+  int64_t CountFrame(int fd, std::size_t size);
 
   // Checks `live` and shuts down each connection over its allowance. `drained`: every whole
   // message ZeroMQ held on the ingest sockets has been read just before the call (the tight
@@ -72,6 +90,22 @@ class IngestConnectionGuard {
   // What the last Check found still on its way from connection `fd` (0 if it was not checked).
   // For the tests and diagnostics.
   int64_t last_unread_bytes(int fd) const;
+  // What the last Check found on its way from all the connections it checked, those it cut aside.
+  int64_t last_total_unread_bytes() const { return total_unread_; }
+
+  // Replaces the quotas of the last plan. When the last Check's total plus `held_bytes` (taken
+  // from ZeroMQ's queues and not handed on yet) exceeds `max_unread_bytes` (> 0), gives the
+  // connections holding most quotas that sum to that less half the budget, each at most what it
+  // holds, and returns them (largest first); else clears every quota and returns nothing.
+  // Allocates only when it returns quotas.
+  std::vector<Quota> PlanShedding(int64_t max_unread_bytes, int64_t held_bytes = 0);
+  // Whether a message of `wire_bytes` just read from connection `fd` is to be dropped: its
+  // connection still has quota left (which the message then uses up, wholly or in part).
+  bool Shed(int fd, int64_t wire_bytes);
+  // Quota left over all connections: a message read now may be shed.
+  bool shedding() const { return quota_left_ > 0; }
+  // Clears every quota (the stop's drain takes everything that was accepted into ZeroMQ).
+  void StopShedding();
 
   // The bytes a frame of `size` bytes takes on the wire (ZMTP 3.0, RFC 23; CURVE, RFC 26).
   static int64_t WireBytes(std::size_t size, bool curve);
@@ -92,6 +126,7 @@ class IngestConnectionGuard {
     Clock::time_point first_seen{};
     int64_t last_unread = 0;
     uint64_t check = 0;  // the last Check that listed it
+    int64_t quota = 0;   // bytes still to shed (PlanShedding)
     bool cut = false;
   };
   int64_t Delivered(int fd) const;
@@ -102,6 +137,9 @@ class IngestConnectionGuard {
   std::vector<int64_t> delivered_;  // wire bytes read, by descriptor, since the daemon started
   std::unordered_map<int, Tracked> tracked_;
   uint64_t check_ = 0;
+  int64_t total_unread_ = 0;
+  int64_t quota_left_ = 0;
+  std::vector<int64_t> levels_;  // PlanShedding's scratch, kept so that it allocates once
 };
 
 }  // namespace nuwatch

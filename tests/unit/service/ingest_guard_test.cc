@@ -238,6 +238,81 @@ TEST(IngestConnectionGuard, AReusedDescriptorStartsAfresh) {
   EXPECT_FALSE(pair.ClosedByServer());
 }
 
+// Shedding (ingest.max_unread_bytes): over the budget, the connections holding most are brought
+// down to a common level whose quotas sum to the total less half the budget ("water-filling", the
+// textbook allocation, here from memory); one under that level keeps everything it holds.
+TEST(IngestConnectionGuard, OverTheBudgetTheConnectionsHoldingMostShedDownToACommonLevel) {
+  TcpPair heavy, medium, light;
+  IngestConnectionGuard guard(kMaxFrame, /*receive_mark=*/1000, false);
+  const std::vector<IngestConnectionGuard::Connection> live = {
+      {heavy.server, 1}, {medium.server, 2}, {light.server, 3}};
+  auto now = IngestConnectionGuard::Clock::now();
+  EXPECT_TRUE(guard.Check(live, now, false).empty());  // first seen
+  heavy.Send(100, guard, /*counted=*/false);
+  medium.Send(30, guard, /*counted=*/false);
+  light.Send(2, guard, /*counted=*/false);
+  // Not drained, a mark of 1000: no cut, all of it is held.
+  EXPECT_TRUE(guard.Check(live, now + std::chrono::milliseconds(20), false).empty());
+  const int64_t frame = static_cast<int64_t>(kFrame) + 9;
+  EXPECT_EQ(guard.last_unread_bytes(heavy.server), 100 * frame);
+  EXPECT_EQ(guard.last_total_unread_bytes(), 132 * frame);
+
+  EXPECT_TRUE(guard.PlanShedding(0).empty());            // no budget
+  EXPECT_TRUE(guard.PlanShedding(132 * frame).empty());  // within it
+  EXPECT_FALSE(guard.shedding());
+
+  const int64_t budget = 4 << 20;
+  const auto quotas = guard.PlanShedding(budget);
+  ASSERT_EQ(quotas.size(), 2u);
+  EXPECT_EQ(quotas[0].unread_bytes, 100 * frame);
+  EXPECT_EQ(quotas[1].unread_bytes, 30 * frame);
+  const int64_t excess = 132 * frame - budget / 2;
+  EXPECT_GE(quotas[0].quota_bytes + quotas[1].quota_bytes, excess);
+  EXPECT_LT(quotas[0].quota_bytes + quotas[1].quota_bytes, excess + 2);  // the level's rounding
+  // Both come down to the same level, above what the light one holds.
+  const int64_t level = quotas[0].unread_bytes - quotas[0].quota_bytes;
+  EXPECT_EQ(quotas[1].unread_bytes - quotas[1].quota_bytes, level);
+  EXPECT_GT(level, 2 * frame);
+  EXPECT_TRUE(guard.shedding());
+
+  // The light connection loses nothing; the others shed messages until their quota is used up.
+  EXPECT_FALSE(guard.Shed(light.server, frame));
+  EXPECT_FALSE(guard.Shed(-1, frame));
+  int shed_heavy = 0;
+  while (guard.Shed(heavy.server, frame)) ++shed_heavy;
+  EXPECT_EQ(shed_heavy, (quotas[0].quota_bytes + frame - 1) / frame);
+  EXPECT_TRUE(guard.shedding());  // the medium one's quota is left
+  int shed_medium = 0;
+  while (guard.Shed(medium.server, frame)) ++shed_medium;
+  EXPECT_EQ(shed_medium, (quotas[1].quota_bytes + frame - 1) / frame);
+  EXPECT_FALSE(guard.shedding());
+
+  // A new plan replaces the old; StopShedding clears it.
+  EXPECT_EQ(guard.PlanShedding(budget).size(), 2u);
+  guard.StopShedding();
+  EXPECT_FALSE(guard.shedding());
+  EXPECT_FALSE(guard.Shed(heavy.server, frame));
+  // None of them was cut.
+  EXPECT_FALSE(heavy.ClosedByServer());
+  EXPECT_FALSE(medium.ClosedByServer());
+}
+
+// A connection that is cut frees what its quota would have shed: the quota goes with it.
+TEST(IngestConnectionGuard, AConnectionThatGoesTakesItsQuotaWithIt) {
+  TcpPair heavy;
+  IngestConnectionGuard guard(kMaxFrame, /*receive_mark=*/1000, false);
+  auto now = IngestConnectionGuard::Clock::now();
+  EXPECT_TRUE(guard.Check({{heavy.server, 1}}, now, false).empty());
+  heavy.Send(50, guard, /*counted=*/false);
+  EXPECT_TRUE(guard.Check({{heavy.server, 1}}, now + std::chrono::milliseconds(20), false).empty());
+  ASSERT_EQ(guard.PlanShedding(1 << 20).size(), 1u);
+  EXPECT_TRUE(guard.shedding());
+  // Gone from the monitor's list (closed by its peer).
+  EXPECT_TRUE(guard.Check({}, now + std::chrono::milliseconds(40), false).empty());
+  EXPECT_FALSE(guard.shedding());
+  EXPECT_EQ(guard.last_total_unread_bytes(), 0);
+}
+
 TEST(IngestConnectionGuard, AUnixDomainConnectionIsNotChecked) {
   int ends[2];
   ASSERT_EQ(::socketpair(AF_UNIX, SOCK_STREAM, 0, ends), 0);
