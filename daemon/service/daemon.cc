@@ -154,6 +154,10 @@ constexpr std::chrono::milliseconds kSubscriptionDrainInterval{200};
 // How often the ingest connections are checked for a message that never ends (IngestGuard), when
 // the ingest sockets have nothing left to read; also the socket thread's longest wait.
 constexpr std::chrono::milliseconds kIngestGuardInterval{100};
+// How often they are checked while a message waits for room: then ZeroMQ's queues fill, and what
+// they hold is held to ingest.max_unread_bytes (a flood of 4 MiB messages on loopback brings
+// 100-300 MB in 100 ms).
+constexpr std::chrono::milliseconds kIngestGuardWaitingInterval{20};
 constexpr std::size_t kControlMaxBytes = 1 << 20;
 // The second frame of an adopt request (a stream's whole state) may be larger: ZeroMQ drops a
 // connection that sends a frame longer than this (PROTOCOL.md §11).
@@ -487,8 +491,11 @@ struct Daemon::Impl final : ControlCommands {
   // kShardQueueMessages); the messages are moved only when it had.
   enum class Handed { kYes, kNoBytes, kNoPlace };
   Handed HandTo(std::size_t owner, zmq::message_t& key, zmq::message_t& payload);
-  // Hands the parked message over if there is room now; whether none is parked any more.
+  // Hands the parked messages over, in order, while there is room; whether none is parked any
+  // more.
   bool HandParked();
+  // How many bytes of messages may wait in `parked` while the socket thread reads on to shed.
+  int64_t ParkedWhileShedding() const;
   // `queued_bytes`: the message's bytes in the shard's ingest.scoring_queue_bytes count, given
   // back once it has been handled (0 for held vectors, which are bounded apart).
   void HandleIngest(Shard& shard, std::string_view key, std::string_view payload,
@@ -676,7 +683,8 @@ struct Daemon::Impl final : ControlCommands {
   // The socket thread's: the ingest guard, over the first pull_sockets sockets of `ingest`.
   std::optional<IngestConnectionGuard> ingest_guard;
   std::size_t pull_sockets = 0;
-  Clock::time_point next_guard_check{};
+  Clock::time_point last_guard_check{};
+  bool shed_logged = false;
   std::vector<CurveAuthenticator::PeerConnection> guard_listed;
   std::vector<IngestConnectionGuard::Connection> guard_live;
   bool guard_cut_logged = false;
@@ -709,16 +717,19 @@ struct Daemon::Impl final : ControlCommands {
   zmq::message_t key_message;
   zmq::message_t payload_message;
   zmq::message_t extra_message;
-  // An ingest message taken from its socket whose scoring thread had no room for it yet: until it
-  // has gone, the socket thread reads no other ingest (the senders wait in ZeroMQ's queues, and
-  // each stream's messages keep their order) but goes on answering control requests, looking for
-  // room every millisecond.
-  struct Parked {
-    bool waiting = false;
+  // Ingest messages taken from their socket whose scoring thread had no room for them yet, in the
+  // order read. Until they have gone, the socket thread reads no other ingest (the senders wait
+  // in ZeroMQ's queues, and each stream's messages keep their order) but goes on answering
+  // control requests, looking for room every millisecond. Usually one; more only while ingest is
+  // shed (a message from a sender within its share waits here, at most ParkedWhileShedding() of
+  // them and one more).
+  struct ParkedMessage {
     std::size_t owner = 0;
     zmq::message_t key;
     zmq::message_t payload;
-  } parked;
+  };
+  std::deque<ParkedMessage> parked;
+  int64_t parked_bytes = 0;
   zmq::message_t subscription_message;  // DrainSubscriptions, under publish_mutex
   std::array<std::atomic<bool>, 256> rejection_logged{};
 
@@ -1416,12 +1427,16 @@ void Daemon::Impl::Loop() {
   items.push_back({control.handle(), 0, ZMQ_POLLIN, 0});
   for (auto& socket : ingest) items.push_back({socket.handle(), 0, ZMQ_POLLIN, 0});
   while (true) {
-    // While a message is parked, the ingest sockets are left unread and the loop looks for room
-    // every millisecond.
-    for (std::size_t i = 2; i < items.size(); ++i)
-      items[i].events = parked.waiting ? 0 : ZMQ_POLLIN;
+    // While a message is parked, the ingest sockets are left unread (but while ingest is shed,
+    // when the PULL sockets are read to drop the excess) and the loop looks for room every
+    // millisecond.
+    const bool shedding = ingest_guard && ingest_guard->shedding();
+    for (std::size_t i = 2; i < items.size(); ++i) {
+      const bool pull = i - 2 < pull_sockets;
+      items[i].events = parked.empty() || (pull && shedding) ? ZMQ_POLLIN : 0;
+    }
     try {
-      zmq::poll(items, parked.waiting ? std::chrono::milliseconds(1) : kIngestGuardInterval);
+      zmq::poll(items, parked.empty() ? kIngestGuardInterval : std::chrono::milliseconds(1));
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
       throw;
@@ -1458,14 +1473,16 @@ void Daemon::Impl::Loop() {
       if (items[1].revents & ZMQ_POLLIN) HandleControl();
       HandParked();  // the ingest sockets are read again at the next turn
       // Drained: each PULL socket was polled for input and had none, or was read to the end.
-      bool pull_drained = !parked.waiting;
+      bool pull_drained = parked.empty();
       for (std::size_t i = 0; i < ingest.size(); ++i) {
         bool drained = items[2 + i].events != 0;  // not polled while a message was parked
         if (items[2 + i].revents & ZMQ_POLLIN) drained = ReceiveFrom(ingest[i], i < pull_sockets);
         if (i < pull_sockets) pull_drained = pull_drained && drained;
       }
-      if (Clock::now() >= next_guard_check) {
-        next_guard_check = Clock::now() + kIngestGuardInterval;
+      if (const Clock::time_point now = Clock::now();
+          now - last_guard_check >=
+          (parked.empty() ? kIngestGuardInterval : kIngestGuardWaitingInterval)) {
+        last_guard_check = now;
         GuardIngestConnections(pull_drained);
       }
       if (Clock::now() - last_subscription_drain > kSubscriptionDrainInterval) {
@@ -1504,6 +1521,8 @@ void Daemon::Impl::DrainIngest() {
       }
     }
   }
+  // What ZeroMQ took in is all taken now, none of it shed.
+  if (ingest_guard) ingest_guard->StopShedding();
   std::vector<zmq_pollitem_t> items;
   for (auto& socket : ingest) items.push_back({socket.handle(), 0, ZMQ_POLLIN, 0});
   const int64_t before = received_messages;
@@ -1624,27 +1643,41 @@ void Daemon::Impl::Shutdown() {
 }
 
 bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
-  if (!HandParked()) return false;
+  // Messages wait to be handed over: read on only to shed, and only while those waiting (which
+  // may come from senders within their share) are within ParkedWhileShedding().
+  if (!HandParked() &&
+      (!(guarded && ingest_guard->shedding()) || parked_bytes > ParkedWhileShedding())) {
+    return false;
+  }
   for (int n = 0; n < kMessagesPerTurn; ++n) {
     if (!socket.recv(key_message, zmq::recv_flags::dontwait)) return true;
     ++received_messages;
     // ZMQ_SRCFD: the connection the message came from, for the guard's count of what was read.
     const int source = guarded ? zmq_msg_get(key_message.handle(), ZMQ_SRCFD) : -1;
-    if (guarded) ingest_guard->CountFrame(source, key_message.size());
+    int64_t wire_bytes = guarded ? ingest_guard->CountFrame(source, key_message.size()) : 0;
     std::size_t frames = 1;
+    std::size_t bytes = key_message.size();
     bool more = key_message.more();
     if (more) {
       // The frames of a multipart message arrive together: these never wait.
       (void)socket.recv(payload_message, zmq::recv_flags::none);
-      if (guarded) ingest_guard->CountFrame(source, payload_message.size());
+      if (guarded) wire_bytes += ingest_guard->CountFrame(source, payload_message.size());
       ++frames;
+      bytes += payload_message.size();
       more = payload_message.more();
     }
     while (more) {
       (void)socket.recv(extra_message, zmq::recv_flags::none);
-      if (guarded) ingest_guard->CountFrame(source, extra_message.size());
+      if (guarded) wire_bytes += ingest_guard->CountFrame(source, extra_message.size());
       ++frames;
+      bytes += extra_message.size();
       more = extra_message.more();
+    }
+    if (guarded && ingest_guard->Shed(source, wire_bytes)) {
+      // ZeroMQ holds more than ingest.max_unread_bytes and this sender holds most of it.
+      metrics.ingest_shed_messages().Increment();
+      metrics.ingest_shed_bytes().Increment(static_cast<double>(bytes));
+      continue;
     }
     if (CheckFrameCount(frames) != RejectReason::kNone) {
       Reject(RejectReason::kWrongFrameCount, "the message does not have exactly two frames", {});
@@ -1663,14 +1696,18 @@ bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
       continue;
     }
     const std::size_t owner = ShardOf(key, feeds.size());
-    const Handed handed = HandTo(owner, key_message, payload_message);
-    if (handed != Handed::kYes) {
+    if (parked.empty()) {
+      const Handed handed = HandTo(owner, key_message, payload_message);
+      if (handed == Handed::kYes) continue;
       metrics.ingest_waits(handed == Handed::kNoBytes ? IngestWait::kBytes : IngestWait::kMessages)
           .Increment();
-      parked.owner = owner;
-      parked.key.swap(key_message);
-      parked.payload.swap(payload_message);
-      parked.waiting = true;
+    }
+    // Behind those parked already, whatever its stream: the order stays that of reading.
+    parked_bytes += static_cast<int64_t>(key_message.size() + payload_message.size());
+    parked.push_back({owner, std::move(key_message), std::move(payload_message)});
+    // Read on while shedding, to reach the messages to drop; a message from a sender within its
+    // share waits here meanwhile.
+    if (!(guarded && ingest_guard->shedding()) || parked_bytes > ParkedWhileShedding()) {
       return false;
     }
   }
@@ -1685,8 +1722,34 @@ void Daemon::Impl::GuardIngestConnections(bool drained) {
   for (const CurveAuthenticator::PeerConnection& c : guard_listed) {
     guard_live.push_back({c.fd, c.generation});
   }
-  for (const IngestConnectionGuard::Cut& cut :
-       ingest_guard->Check(guard_live, Clock::now(), drained)) {
+  const std::vector<IngestConnectionGuard::Cut> cuts =
+      ingest_guard->Check(guard_live, Clock::now(), drained);
+  metrics.ingest_unread_bytes().Set(static_cast<double>(ingest_guard->last_total_unread_bytes()));
+  // Shed only while a message waits for room: when the daemon keeps up, what ZeroMQ holds is
+  // being read anyway.
+  if (drained) {
+    ingest_guard->StopShedding();
+  } else {
+    // Planned afresh at each check, from what ZeroMQ holds now.
+    const int64_t budget = config.daemon.ingest_max_unread_bytes;
+    // The messages parked here came out of ZeroMQ's queues: they count against the budget too.
+    const std::vector<IngestConnectionGuard::Quota> quotas =
+        ingest_guard->PlanShedding(budget, parked_bytes);
+    if (!quotas.empty()) {
+      const auto level = shed_logged ? spdlog::level::debug : spdlog::level::warn;
+      spdlog::log(level,
+                  "ingest: ZeroMQ holds {} bytes not read yet, over ingest.max_unread_bytes = {}; "
+                  "dropping {} bytes of messages from {} (holding {}){}, counted in "
+                  "nuwatch_ingest_shed_messages_total{}",
+                  ingest_guard->last_total_unread_bytes(), budget, quotas.front().quota_bytes,
+                  quotas.front().peer, quotas.front().unread_bytes,
+                  quotas.size() > 1 ? fmt::format(" and {} other senders", quotas.size() - 1)
+                                    : std::string(),
+                  shed_logged ? "" : "; further shedding is logged at debug level");
+      shed_logged = true;
+    }
+  }
+  for (const IngestConnectionGuard::Cut& cut : cuts) {
     metrics.ingest_connections_cut().Increment();
     const auto level = guard_cut_logged ? spdlog::level::debug : spdlog::level::warn;
     spdlog::log(level,
@@ -1719,10 +1782,22 @@ Daemon::Impl::Handed Daemon::Impl::HandTo(std::size_t owner, zmq::message_t& key
   return Handed::kYes;
 }
 
+int64_t Daemon::Impl::ParkedWhileShedding() const {
+  // Half the budget, the level shedding aims for: these bytes were in ZeroMQ's queues and are
+  // counted against the budget at the next check. Less would stop the reading that sheds each
+  // time two senders' quotas ran out before the others' (a flood from many senders).
+  return std::max(static_cast<int64_t>(limits.max_message_bytes),
+                  config.daemon.ingest_max_unread_bytes / 2);
+}
+
 bool Daemon::Impl::HandParked() {
-  if (!parked.waiting) return true;
-  if (HandTo(parked.owner, parked.key, parked.payload) != Handed::kYes) return false;
-  parked.waiting = false;
+  while (!parked.empty()) {
+    ParkedMessage& message = parked.front();
+    const auto bytes = static_cast<int64_t>(message.key.size() + message.payload.size());
+    if (HandTo(message.owner, message.key, message.payload) != Handed::kYes) return false;
+    parked_bytes -= bytes;
+    parked.pop_front();
+  }
   return true;
 }
 

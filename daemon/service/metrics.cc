@@ -208,6 +208,23 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
              "never end (README, \"A message that never ends\").",
              r)
            .Add({});
+  ingest_unread_bytes_ =
+      &Build(BuildGauge(), "nuwatch_ingest_unread_bytes",
+             "Bytes ZeroMQ and the kernel hold for the ingest TCP connections, received and not "
+             "read by the daemon yet, at the last check (ingest.max_unread_bytes bounds it).",
+             r)
+           .Add({});
+  ingest_shed_messages_ =
+      &Build(BuildCounter(), "nuwatch_ingest_shed_messages_total",
+             "Ingest messages read and dropped unscored because ZeroMQ held more than "
+             "ingest.max_unread_bytes for the ingest connections, from the senders holding most.",
+             r)
+           .Add({});
+  ingest_shed_bytes_ = &Build(BuildCounter(), "nuwatch_ingest_shed_bytes_total",
+                              "Bytes of the messages in nuwatch_ingest_shed_messages_total (all "
+                              "their frames, as read).",
+                              r)
+                            .Add({});
   ingest_queued_bytes_ =
       &Build(BuildGauge(), "nuwatch_ingest_queued_bytes",
              "Bytes of ingest messages handed to the scoring threads and not scored yet (at most "

@@ -174,6 +174,9 @@ class DaemonMetrics {
   prometheus::Gauge& streams() const { return *streams_; }
   prometheus::Gauge& refits_queued() const { return *refits_queued_; }
   prometheus::Gauge& ingest_queued_bytes() const { return *ingest_queued_bytes_; }
+  prometheus::Gauge& ingest_unread_bytes() const { return *ingest_unread_bytes_; }
+  prometheus::Counter& ingest_shed_messages() const { return *ingest_shed_messages_; }
+  prometheus::Counter& ingest_shed_bytes() const { return *ingest_shed_bytes_; }
   prometheus::Counter& ingest_waits(IngestWait bound) const {
     return *ingest_waits_[static_cast<std::size_t>(bound)];
   }
@@ -225,6 +228,9 @@ class DaemonMetrics {
   prometheus::Gauge* streams_;
   prometheus::Gauge* refits_queued_;
   prometheus::Gauge* ingest_queued_bytes_;
+  prometheus::Gauge* ingest_unread_bytes_;
+  prometheus::Counter* ingest_shed_messages_;
+  prometheus::Counter* ingest_shed_bytes_;
   std::array<prometheus::Counter*, kIngestWaitCount> ingest_waits_{};
   prometheus::Counter* streams_expired_;
   prometheus::Counter* streams_released_;

@@ -192,6 +192,21 @@ const Setting<S> kDaemonKeys[] = {
      .bounds = {.min = 1, .max = int64_t{1} << 40},
      .bounds_note = " (1 TiB)",
      .reload = kNow},
+    {.section = "ingest",
+     .name = "max_unread_bytes",
+     .member = &S::ingest_max_unread_bytes,
+     .doc = "Bytes ZeroMQ and the kernel may hold for all ingest TCP connections together, "
+            "received and not yet read by the daemon, while it cannot keep up; past it the "
+            "daemon reads on and drops messages from the senders holding most until half of it "
+            "is left, counted in nuwatch_ingest_shed_messages_total and "
+            "nuwatch_ingest_shed_bytes_total, so that a flood of large messages cannot take "
+            "memory without bound (ZeroMQ bounds its queues in messages only). A sender within "
+            "its share loses nothing. 0: no budget (the senders wait instead, and ZeroMQ may "
+            "hold max_senders x receive_high_water_mark x limits.max_message_bytes).",
+     .unit = "bytes",
+     .bounds = {.min = 0, .max = int64_t{1} << 40},
+     .bounds_note = " (0: no budget; 1 TiB)",
+     .reload = kNow},
     {.section = "publish",
      .name = "endpoint",
      .member = &S::publish_endpoint,

@@ -38,6 +38,7 @@ struct DaemonSettings {
   std::vector<std::string> subscribe_endpoints;                          // subscribe
   int receive_high_water_mark = 10000;                                   // receive_high_water_mark
   int64_t scoring_queue_bytes = int64_t{64} << 20;                       // scoring_queue_bytes
+  int64_t ingest_max_unread_bytes = int64_t{256} << 20;                  // max_unread_bytes
   // [publish]
   std::string publish_endpoint = "tcp://127.0.0.1:7602";  // endpoint
   int publish_high_water_mark = 10000;                    // high_water_mark

@@ -65,6 +65,10 @@ TEST(DaemonEndToEnd, ABurstPastTheIngestByteBoundWaitsAndIsScoredWholeInOrder) {
 
 TEST(DaemonEndToEnd, AMessageWhoseFramesNeverEndIsCutAndCounted) { RunScript("UnendingMessage"); }
 
+TEST(DaemonEndToEnd, AFloodPastTheUnreadBudgetIsShedFromItsSenderAloneAndCounted) {
+  RunScript("UnreadBudget");
+}
+
 TEST(DaemonEndToEnd, ASenderOverTheLimitIsRefusedAndCounted) { RunScript("SenderLimit"); }
 
 TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("MetricsBasicAuth"); }

@@ -29,6 +29,7 @@ import struct
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 import unittest
 import urllib.request
@@ -1901,6 +1902,90 @@ class IngestQueueBytes(DaemonTestCase):
         while series_value(peer.scrape(), "nuwatch_ingest_queued_bytes") != 0:
             self.assertLess(time.monotonic(), deadline, "ingest_queued_bytes stays above 0")
             time.sleep(0.1)  # polling the metrics endpoint, bounded by the deadline
+        self.stop_daemon(daemon, peer)
+
+
+class UnreadBudget(DaemonTestCase):
+    """Issue 10 §3: libzmq bounds what it queues for a sender in whole messages (10,000 by
+    default), not bytes, and a connection shut down keeps its queued messages until read, so only
+    reading can free them. With ingest.max_unread_bytes at 1 MiB, one pyzmq sender floods a stream
+    with 64-vector binary messages far faster than the daemon can score and publish them one
+    result per vector, while another sender's stream goes on. The daemon must drop the flooder's
+    excess and count it (nuwatch_ingest_shed_messages_total, _bytes_total): every vector sent is
+    either counted as processed (nuwatch_vectors_total) or in a shed message, none twice, none
+    lost; and the other sender, within its share, loses nothing and keeps its order."""
+
+    def test_a_flood_past_the_budget_is_shed_from_its_sender_alone_and_counted(self):
+        budget = 1 << 20
+        # Batch results (one message per ingest message), so that the flood's results do not
+        # overrun the subscriber's queue and take the other stream's with them.
+        daemon, peer = self.start_daemon(
+            refit_every=0, publish_batches=True,
+            extra_config="\n[ingest]\nscoring_queue_bytes = 4096\nmax_unread_bytes = %d\n"
+            % budget)
+        peer.subscribe_with_probe()
+        data = StreamData(seed=43)
+        feed_until_scoring(peer, "pump-a", data, ["json"])
+        light_before = len(peer.results("pump-a"))
+
+        flood = StreamData(seed=44)
+        rows = [flood.normal() for _ in range(MAX_VECTORS)]
+        messages = 8000  # 8000 x 64 vectors, 10 MB: ten times the budget
+        payloads = []
+        for m in range(messages):
+            times = [T0 + (m * MAX_VECTORS + i) * 10.0 for i in range(MAX_VECTORS)]
+            payloads.append(codec.encode_binary(times, [x for _, x in rows], codec.DTYPE_F32))
+        flooder = peer.context.socket(zmq.PUSH)
+        flooder.setsockopt(zmq.LINGER, -1)
+        flooder.connect(daemon.endpoints["ingest"][0])
+        sender = threading.Thread(
+            target=lambda: [flooder.send_multipart([b"flood", p]) for p in payloads])
+        sender.start()
+        # The other sender's stream during the flood and while it is shed, one message at a time.
+        light_sent = 0
+        while light_sent < 100:
+            t, x = data.normal()
+            peer.send("pump-a", codec.encode_json([t], [x]))
+            light_sent += 1
+            time.sleep(0.002)  # a steady sender beside the flood, not a second flood
+        sender.join()
+
+        def counted():
+            metrics = peer.scrape()
+            return (series_value(metrics, "nuwatch_vectors_total", stream="flood") or 0,
+                    series_value(metrics, "nuwatch_ingest_shed_messages_total") or 0)
+        deadline = time.monotonic() + 6 * WAIT_TIMEOUT
+        while True:
+            processed, shed = counted()
+            if processed + shed * MAX_VECTORS >= messages * MAX_VECTORS:
+                break
+            self.assertLess(time.monotonic(), deadline,
+                            "flood: %d processed + %d shed messages of %d"
+                            % (processed, shed, messages))
+            time.sleep(0.1)  # polling the metrics endpoint, bounded by the deadline
+        time.sleep(0.3)  # nothing more may come: no vector counted twice
+        processed, shed = counted()
+        self.assertEqual(processed + shed * MAX_VECTORS, messages * MAX_VECTORS)
+        self.assertGreater(shed, 0, "nothing shed: the daemon kept up with the flood")
+        metrics = peer.scrape()
+        self.assertEqual(series_value(metrics, "nuwatch_ingest_shed_bytes_total"),
+                         shed * (len(b"flood") + len(payloads[0])))
+        rejected = [line for line in metrics.splitlines()
+                    if line.startswith("nuwatch_rejected_messages_total{")
+                    and float(line.rsplit(" ", 1)[1]) != 0]
+        self.assertEqual(rejected, [])
+        self.assertIn("over ingest.max_unread_bytes", daemon.log_text())
+        self.assertEqual(sum(float(line.rsplit(" ", 1)[1]) for line in metrics.splitlines()
+                             if line.startswith("nuwatch_results_dropped_total{")), 0.0)
+
+        # The other sender lost nothing, in order.
+        peer.wait_for(lambda: len(peer.results("pump-a")) >= light_before + light_sent,
+                      "pump-a's %d results sent during the flood" % light_sent)
+        self.assertEqual([r["t"] for r in peer.results("pump-a")], data.sent_times)
+        sys.stderr.write("unread budget %d: %d of %d flood messages shed, %d vectors processed; "
+                         "%d vectors of another sender all scored\n"
+                         % (budget, shed, messages, processed, light_sent))
+        flooder.close()
         self.stop_daemon(daemon, peer)
 
 

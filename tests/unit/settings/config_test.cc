@@ -466,6 +466,8 @@ TEST(ConfigErrors, OutOfRangeDaemonValuesNameFileLineAndKey) {
               HasSubstr("limits.max_message_bytes = 27 is outside [28, 1073741824]"));
   EXPECT_THAT(ErrorOf("[limits]\nmax_streams = 0\n"), HasSubstr("must be at least 1"));
   EXPECT_THAT(ErrorOf("[ingest]\nreceive_high_water_mark = -1\n"), HasSubstr("not be negative"));
+  EXPECT_THAT(ErrorOf("[ingest]\nmax_unread_bytes = -1\n"),
+              HasSubstr("ingest.max_unread_bytes = -1 is outside [0, 1099511627776]"));
   EXPECT_THAT(ErrorOf("[ingest]\nscoring_queue_bytes = 0\n"),
               HasSubstr("ingest.scoring_queue_bytes = 0 is outside [1, 1099511627776]"));
   EXPECT_THAT(ErrorOf("[recording]\nkeep_files = -1\n"), HasSubstr("not be negative"));
@@ -898,8 +900,8 @@ TEST(KnownConfigKeys, AreUniqueAndCoverEverySection) {
         "detector.feature_names", "stream.match"}) {
     EXPECT_TRUE(unique.count(key)) << key;
   }
-  // 36 daemon settings, 32 DetectorOptions members, and stream.match.
-  EXPECT_EQ(keys.size(), 70u);
+  // 37 daemon settings, 32 DetectorOptions members, and stream.match.
+  EXPECT_EQ(keys.size(), 71u);
 }
 
 // Issue 10 §1: the control socket relearns, forgets and reloads, so a TCP control socket needs
