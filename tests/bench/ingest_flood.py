@@ -5,13 +5,17 @@ PEERS PUSH sockets (pyzmq) each send MESSAGES valid binary messages as close to
 limits.max_message_bytes (4 MiB by default) as the protocol allows: 4096 vectors of 126 f64
 features, one stream per peer, as fast as ZeroMQ takes them, while this script samples the
 daemon's resident memory (VmRSS, /proc) every 20 ms. It waits until the daemon has counted every
-vector (nuwatch_vectors_total), lets it idle for six seconds (the daemon trims its heap every five) and reads VmRSS again. Prints one JSON
-object: peak and settled RSS, the RSS before the flood, and the bytes sent.
+vector, scored (nuwatch_vectors_total) or shed (nuwatch_ingest_shed_messages_total, 4096 each:
+ingest.max_unread_bytes), lets it idle for six seconds (the daemon trims its heap every five) and
+reads VmRSS again. Prints one JSON object: peak and settled RSS, the RSS before the flood, the
+bytes sent and the messages shed.
 
   /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 1 --messages 300
   /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 10 --messages 30
   /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 1 --messages 300 \
       --receive-high-water-mark 8
+  /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 1 --messages 300 \
+      --max-unread-bytes 0
 """
 import argparse
 import json
@@ -40,13 +44,25 @@ def rss_bytes(pid):
     return 0
 
 
+def gauge(metrics, name):
+    text = urllib.request.urlopen("http://%s/metrics" % metrics, timeout=5).read().decode()
+    for line in text.splitlines():
+        if line.startswith(name + " "):
+            return float(line.rsplit(" ", 1)[1])
+    return 0.0
+
+
 def vectors_counted(metrics):
+    """(vectors scored, messages shed) as the metrics endpoint counts them."""
     text = urllib.request.urlopen("http://%s/metrics" % metrics, timeout=5).read().decode()
     total = 0.0
+    shed = 0.0
     for line in text.splitlines():
         if line.startswith("nuwatch_vectors_total{"):
             total += float(line.rsplit(" ", 1)[1])
-    return total
+        elif line.startswith("nuwatch_ingest_shed_messages_total"):
+            shed += float(line.rsplit(" ", 1)[1])
+    return total, shed
 
 
 def main():
@@ -56,6 +72,8 @@ def main():
     parser.add_argument("--messages", type=int, default=300)
     parser.add_argument("--receive-high-water-mark", type=int, default=None,
                         help="ingest.receive_high_water_mark of the daemon (default: its own)")
+    parser.add_argument("--max-unread-bytes", type=int, default=None,
+                        help="ingest.max_unread_bytes of the daemon (default: its own; 0: none)")
     args = parser.parse_args()
 
     payload_rows = [[(i * 7 + j) % 13 * 0.1 for j in range(DIMS)] for i in range(VECTORS)]
@@ -65,8 +83,11 @@ def main():
             # A short window keeps the streams' own memory (126 x 500 x 8 bytes each) small
             # beside the queued messages, which are what this measures.
             f.write("[detector]\nwindow = 500\nwarmup = 400\nrefit_every = 0\n")
+            f.write("[ingest]\n")
             if args.receive_high_water_mark is not None:
-                f.write("[ingest]\nreceive_high_water_mark = %d\n" % args.receive_high_water_mark)
+                f.write("receive_high_water_mark = %d\n" % args.receive_high_water_mark)
+            if args.max_unread_bytes is not None:
+                f.write("max_unread_bytes = %d\n" % args.max_unread_bytes)
         ready = os.path.join(work, "ready.json")
         daemon = subprocess.Popen(
             [args.nuwatchd, "--config", config, "--ingest", "tcp://127.0.0.1:*",
@@ -83,12 +104,17 @@ def main():
             time.sleep(0.5)
             before = rss_bytes(daemon.pid)
             peak = [before]
+            # The daemon's own gauges, sampled as often: what ZeroMQ held unread at a check, and
+            # what the scoring threads had queued.
+            gauges = {"nuwatch_ingest_unread_bytes": 0.0, "nuwatch_ingest_queued_bytes": 0.0}
             sampling = threading.Event()
             sampling.set()
 
             def sample():
                 while sampling.is_set():
                     peak[0] = max(peak[0], rss_bytes(daemon.pid))
+                    for name in gauges:
+                        gauges[name] = max(gauges[name], gauge(endpoints["metrics"], name))
                     time.sleep(0.02)
 
             sampler = threading.Thread(target=sample)
@@ -120,7 +146,10 @@ def main():
             for t in peers:
                 t.join()
             expected = args.peers * args.messages * VECTORS
-            while vectors_counted(endpoints["metrics"]) < expected:
+            while True:
+                scored, shed = vectors_counted(endpoints["metrics"])
+                if scored + shed * VECTORS >= expected:
+                    break
                 assert daemon.poll() is None, "nuwatchd exited"
                 assert time.monotonic() - started < 600, "not every vector counted"
                 time.sleep(0.2)
@@ -133,9 +162,13 @@ def main():
             print(json.dumps({
                 "peers": args.peers, "messages_per_peer": args.messages,
                 "receive_high_water_mark": args.receive_high_water_mark,
+                "max_unread_bytes": args.max_unread_bytes,
+                "messages_shed": shed, "vectors_scored": scored,
                 "message_bytes": len(payloads[0]), "sent_bytes": sent_bytes,
                 "rss_before_bytes": before, "rss_peak_bytes": peak[0],
-                "rss_settled_bytes": settled, "seconds_to_count_every_vector": round(drained, 2),
+                "rss_settled_bytes": settled,
+                "peak_unread_bytes_gauge": gauges["nuwatch_ingest_unread_bytes"],
+                "peak_queued_bytes_gauge": gauges["nuwatch_ingest_queued_bytes"], "seconds_to_count_every_vector": round(drained, 2),
             }))
         finally:
             daemon.terminate()
