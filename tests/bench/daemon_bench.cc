@@ -13,7 +13,9 @@
 // sending as fast as PUSH takes them for --seconds and waiting until every message was handled.
 // Per form it reports the vectors/s through each (vectors sent / time from the first send to the
 // last result received), their ratio, results received by the subscriber against vectors accepted
-// (nuwatch_vectors_total, from /metrics) and drops counted (nuwatch_results_dropped_total), the
+// (nuwatch_vectors_total, from /metrics) and drops counted (nuwatch_results_dropped_total),
+// vectors sent against those accepted and those in messages shed at ingest
+// (nuwatch_ingest_shed_messages_total, past ingest.max_unread_bytes), the
 // CPU seconds per vector of the nuwatchd process, of its socket thread and of its scoring threads
 // together (from /proc, so that a
 // busy machine stretches wall time but not these), and then p50/p99 ingest-to-result latency at
@@ -264,6 +266,7 @@ void Connect(zmq::context_t& context, Target& t) {
 // Counters read around a phase.
 struct Reading {
   double vectors = 0, dropped = 0, cpu_process = 0, cpu_thread = 0, cpu_scoring = 0;
+  double shed_messages = 0;  // dropped unscored past ingest.max_unread_bytes
 };
 Reading Read(const Target& t) {
   Reading r;
@@ -272,6 +275,7 @@ Reading Read(const Target& t) {
   const std::string text = HttpGet(t.endpoints.metrics, "/metrics");
   r.vectors = SumOfSeries(text, "nuwatch_vectors_total");
   r.dropped = SumOfSeries(text, "nuwatch_results_dropped_total");
+  r.shed_messages = SumOfSeries(text, "nuwatch_ingest_shed_messages_total");
   r.cpu_thread = t.socket_thread > 0 ? CpuSeconds(t.process->pid(), t.socket_thread) : 0;
   for (pid_t tid : t.scoring_threads) r.cpu_scoring += CpuSeconds(t.process->pid(), tid);
   return r;
@@ -279,6 +283,7 @@ Reading Read(const Target& t) {
 
 struct Phase {
   double vectors_sent = 0, vectors_accepted = 0, results = 0, dropped = 0, seconds = 0;
+  double shed = 0;          // vectors in messages shed at ingest (never accepted)
   double result_bytes = 0;  // frame 2 of the result messages received (not of the events)
   double cpu_process = 0, cpu_thread = 0, cpu_scoring = 0;
   std::vector<double> latencies;  // seconds, latency phases only
@@ -355,7 +360,9 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
     do {
       std::this_thread::sleep_for(std::chrono::milliseconds(20));
       after = Read(t);
-    } while (after.vectors - before.vectors < phase.vectors_sent && Clock::now() < deadline);
+    } while (after.vectors - before.vectors + per * (after.shed_messages - before.shed_messages) <
+                 phase.vectors_sent &&
+             Clock::now() < deadline);
     expected = (after.vectors - before.vectors) - (after.dropped - before.dropped);
   } else {
     expected = phase.vectors_sent;
@@ -365,6 +372,7 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
   const Reading after = Read(t);
   phase.vectors_accepted = t.daemon() ? after.vectors - before.vectors : phase.vectors_sent;
   phase.dropped = after.dropped - before.dropped;
+  phase.shed = per * (after.shed_messages - before.shed_messages);
   phase.results = results.load();
   phase.result_bytes = result_bytes.load();
   phase.seconds = last_result.load() - start;
@@ -755,6 +763,7 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
     // Best of the rounds for each target (the machine is shared); CPU per vector summed over all.
     Phase best_relay, best_daemon;
     double daemon_sent = 0, daemon_accepted = 0, daemon_results = 0, daemon_dropped = 0;
+    double daemon_shed = 0;
     double cpu_process = 0, cpu_thread = 0, cpu_scoring = 0, relay_cpu = 0, relay_vectors = 0;
     for (int r = 0; r < rounds; ++r) {
       const Phase a = RunPhase(relay, form, seconds, 0, false);
@@ -767,6 +776,7 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
       daemon_accepted += b.vectors_accepted;
       daemon_results += b.results;
       daemon_dropped += b.dropped;
+      daemon_shed += b.shed;
       cpu_process += b.cpu_process;
       cpu_thread += b.cpu_thread;
       cpu_scoring += b.cpu_scoring;
@@ -779,6 +789,7 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
     daemon_accepted += lat_daemon.vectors_accepted;
     daemon_results += lat_daemon.results;
     daemon_dropped += lat_daemon.dropped;
+    daemon_shed += lat_daemon.shed;
     out["forms"].push_back(
         {{"form", FormId(form)},
          {"description", FormName(form)},
@@ -790,6 +801,9 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
          {"nuwatchd_results_received", daemon_results},
          {"nuwatchd_results_dropped_counted", daemon_dropped},
          {"nuwatchd_unaccounted", daemon_accepted - daemon_results - daemon_dropped},
+         // Sent but neither accepted nor shed (counted) at ingest.
+         {"nuwatchd_vectors_shed", daemon_shed},
+         {"nuwatchd_unaccounted_at_ingest", daemon_sent - daemon_accepted - daemon_shed},
          {"nuwatchd_cpu_us_per_vector_process", 1e6 * cpu_process / daemon_accepted},
          {"nuwatchd_cpu_us_per_vector_socket_thread", 1e6 * cpu_thread / daemon_accepted},
          {"nuwatchd_cpu_us_per_vector_scoring_threads", 1e6 * cpu_scoring / daemon_accepted},
