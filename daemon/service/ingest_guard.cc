@@ -179,8 +179,7 @@ std::vector<IngestConnectionGuard::Quota> IngestConnectionGuard::PlanShedding(
   return quotas;
 }
 
-bool IngestConnectionGuard::Shed(int fd, int64_t wire_bytes) {
-  if (quota_left_ <= 0) return false;
+bool IngestConnectionGuard::ShedFromQuota(int fd, int64_t wire_bytes) {
   const auto it = tracked_.find(fd);
   if (it == tracked_.end() || it->second.quota <= 0) return false;
   const int64_t used = std::min(it->second.quota, wire_bytes);

@@ -100,8 +100,9 @@ class IngestConnectionGuard {
   // Allocates only when it returns quotas.
   std::vector<Quota> PlanShedding(int64_t max_unread_bytes, int64_t held_bytes = 0);
   // Whether a message of `wire_bytes` just read from connection `fd` is to be dropped: its
-  // connection still has quota left (which the message then uses up, wholly or in part).
-  bool Shed(int fd, int64_t wire_bytes);
+  // connection still has quota left (which the message then uses up, wholly or in part). Inline
+  // when nothing is to be shed: the socket thread asks for every message.
+  bool Shed(int fd, int64_t wire_bytes) { return quota_left_ > 0 && ShedFromQuota(fd, wire_bytes); }
   // Quota left over all connections: a message read now may be shed.
   bool shedding() const { return quota_left_ > 0; }
   // Clears every quota (the stop's drain takes everything that was accepted into ZeroMQ).
@@ -130,6 +131,7 @@ class IngestConnectionGuard {
     bool cut = false;
   };
   int64_t Delivered(int fd) const;
+  bool ShedFromQuota(int fd, int64_t wire_bytes);
 
   int64_t max_frame_bytes_;
   int64_t receive_mark_;
