@@ -496,6 +496,12 @@ struct Daemon::Impl final : ControlCommands {
   bool HandParked();
   // How many bytes of messages may wait in `parked` while the socket thread reads on to shed.
   int64_t ParkedWhileShedding() const;
+  // While messages are parked, whether to read on from a socket (`guarded`: a PULL socket): only
+  // to shed, reaching the messages to drop, and only while those parked (a sender within its
+  // share may have sent them) are within ParkedWhileShedding().
+  bool ReadOnWhileParked(bool guarded) const {
+    return guarded && ingest_guard->shedding() && parked_bytes <= ParkedWhileShedding();
+  }
   // `queued_bytes`: the message's bytes in the shard's ingest.scoring_queue_bytes count, given
   // back once it has been handled (0 for held vectors, which are bounded apart).
   void HandleIngest(Shard& shard, std::string_view key, std::string_view payload,
@@ -1643,12 +1649,7 @@ void Daemon::Impl::Shutdown() {
 }
 
 bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
-  // Messages wait to be handed over: read on only to shed, and only while those waiting (which
-  // may come from senders within their share) are within ParkedWhileShedding().
-  if (!HandParked() &&
-      (!(guarded && ingest_guard->shedding()) || parked_bytes > ParkedWhileShedding())) {
-    return false;
-  }
+  if (!HandParked() && !ReadOnWhileParked(guarded)) return false;
   for (int n = 0; n < kMessagesPerTurn; ++n) {
     if (!socket.recv(key_message, zmq::recv_flags::dontwait)) return true;
     ++received_messages;
@@ -1705,11 +1706,7 @@ bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
     // Behind those parked already, whatever its stream: the order stays that of reading.
     parked_bytes += static_cast<int64_t>(key_message.size() + payload_message.size());
     parked.push_back({owner, std::move(key_message), std::move(payload_message)});
-    // Read on while shedding, to reach the messages to drop; a message from a sender within its
-    // share waits here meanwhile.
-    if (!(guarded && ingest_guard->shedding()) || parked_bytes > ParkedWhileShedding()) {
-      return false;
-    }
+    if (!ReadOnWhileParked(guarded)) return false;
   }
   return false;  // a full turn: more may be waiting
 }
