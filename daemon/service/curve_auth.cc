@@ -23,7 +23,7 @@ constexpr std::size_t kCurveKeyBytes = 32;
 constexpr int kWatchedEvents =
     ZMQ_EVENT_HANDSHAKE_SUCCEEDED | ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL |
     ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL | ZMQ_EVENT_HANDSHAKE_FAILED_AUTH | ZMQ_EVENT_ACCEPTED |
-    ZMQ_EVENT_DISCONNECTED;
+    ZMQ_EVENT_CONNECTED | ZMQ_EVENT_DISCONNECTED;
 
 std::string Frame(const zmq::message_t& message) { return message.to_string(); }
 
@@ -60,6 +60,10 @@ void CurveAuthenticator::Protect(zmq::socket_t& socket, AuthSocket which,
 void CurveAuthenticator::Gate(zmq::socket_t& socket, AuthSocket which) {
   socket.set(zmq::sockopt::zap_domain, AuthSocketLabel(which));
   Watch(socket, which, /*client=*/false, /*curve=*/false);
+}
+
+void CurveAuthenticator::Track(zmq::socket_t& socket, AuthSocket which) {
+  Watch(socket, which, /*client=*/true, /*curve=*/false);
 }
 
 void CurveAuthenticator::SetConnectionLimit(AuthSocket which, int64_t limit) {
@@ -262,20 +266,31 @@ bool CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
   std::memcpy(&event, frames[0].data(), sizeof event);
   std::memcpy(&value, static_cast<const char*>(frames[0].data()) + sizeof event, sizeof value);
   const std::string endpoint = Frame(frames[1]);
+  // A socket only tracked (Track) has no handshakes of its own to count: only its connections.
+  if (watched.client && !watched.curve && event != ZMQ_EVENT_CONNECTED &&
+      event != ZMQ_EVENT_DISCONNECTED) {
+    return true;
+  }
   switch (event) {
     case ZMQ_EVENT_ACCEPTED:
-    case ZMQ_EVENT_DISCONNECTED:
+    case ZMQ_EVENT_CONNECTED:
+    case ZMQ_EVENT_DISCONNECTED: {
+      // A server's connections are accepted, a client's connected; both end as disconnected.
+      if (event == (watched.client ? ZMQ_EVENT_ACCEPTED : ZMQ_EVENT_CONNECTED)) break;
+      const int fd = static_cast<int>(value);
+      const bool opened = event != ZMQ_EVENT_DISCONNECTED;
       if (!watched.client) {
-        const int fd = static_cast<int>(value);
-        if (event == ZMQ_EVENT_ACCEPTED) {
+        if (opened) {
           watched.connections.insert(fd);
         } else {
           watched.connections.erase(fd);
         }
-        MutexLock lock(&mutex_);
-        std::vector<PeerConnection>& listed = connections_[static_cast<std::size_t>(watched.which)];
-        std::erase_if(listed, [fd](const PeerConnection& c) { return c.fd == fd; });
-        if (event == ZMQ_EVENT_ACCEPTED) listed.push_back({fd, next_generation_++});
+      }
+      MutexLock lock(&mutex_);
+      std::vector<PeerConnection>& listed = connections_[static_cast<std::size_t>(watched.which)];
+      std::erase_if(listed, [fd](const PeerConnection& c) { return c.fd == fd; });
+      if (opened) listed.push_back({fd, next_generation_++});
+      if (!watched.client) {
         if (watched.which == AuthSocket::kPublish) {
           metrics_->publish_connections().Set(static_cast<double>(watched.connections.size()));
         } else if (watched.which == AuthSocket::kIngest) {
@@ -284,6 +299,7 @@ bool CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
         }
       }
       break;
+    }
     case ZMQ_EVENT_HANDSHAKE_SUCCEEDED:
       if (watched.curve) metrics_->auth_admitted(watched.which).Increment();
       break;

@@ -69,6 +69,10 @@ class CurveAuthenticator {
   // Brings a server socket without CURVE before the handler (a ZAP domain), which admits its
   // peers within the connection limit. Requires: as Protect.
   void Gate(zmq::socket_t& socket, AuthSocket which);
+  // Watches the connections of a client socket without CURVE (the plain SUB socket of
+  // ingest.subscribe), for Connections; nothing else of it is counted. Requires: as Protect,
+  // before `socket` connects.
+  void Track(zmq::socket_t& socket, AuthSocket which);
   // At most `limit` connections at once on the server sockets `which`, all of them together (0:
   // no limit). Requires: before Start; the sockets protected or gated.
   void SetConnectionLimit(AuthSocket which, int64_t limit);
@@ -77,10 +81,10 @@ class CurveAuthenticator {
   // The keys admitted from now on (a connection admitted before keeps its session).
   void ReplaceAllowed(std::set<std::string> keys) EXCLUDES(mutex_);
   std::size_t allowed_count() const EXCLUDES(mutex_);
-  // The connections of the server sockets `which` (all of them: there may be several ingest
-  // sockets) as the handler last counted them, each with a generation that tells a reused
-  // descriptor from the connection before. Any thread; a connection accepted a moment ago may be
-  // missing, one closed a moment ago still listed.
+  // The connections of the sockets `which` (all of them: there may be several ingest sockets;
+  // a server's accepted, a client's connected) as the handler last counted them, each with a
+  // generation that tells a reused descriptor from the connection before. Any thread; a connection
+  // accepted a moment ago may be missing, one closed a moment ago still listed.
   struct PeerConnection {
     int fd = -1;
     uint64_t generation = 0;

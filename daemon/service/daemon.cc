@@ -481,11 +481,14 @@ struct Daemon::Impl final : ControlCommands {
   class ShardsPaused;
 
   // The hot path: the socket thread receives and hands over (ReceiveFrom), the stream's scoring
-  // thread does the rest. Returns true when `socket` had nothing more to read. `guarded`: a PULL
-  // socket, whose connections the ingest guard watches.
-  bool ReceiveFrom(zmq::socket_t& socket, bool guarded);
-  // Shuts down ingest connections ZeroMQ holds too much of (service/ingest_guard.h). `drained`:
-  // the PULL sockets have nothing left to read.
+  // thread does the rest. Returns true when `socket` had nothing more to read. `curve`: its
+  // frames come in CURVE boxes (for the ingest guard's count of the bytes read).
+  bool ReceiveFrom(zmq::socket_t& socket, bool curve);
+  bool ReceiveFromIngest(std::size_t i) {
+    return ReceiveFrom(ingest[i], i < pull_sockets ? pull_curve : subscribe_curve);
+  }
+  // Shuts down ingest connections ZeroMQ holds too much of (service/ingest_guard.h), and plans
+  // shedding. `drained`: the ingest sockets have nothing left to read.
   void GuardIngestConnections(bool drained);
   // Hands a message to scoring thread `owner` if its queue has room (ingest.scoring_queue_bytes,
   // kShardQueueMessages); the messages are moved only when it had.
@@ -496,11 +499,11 @@ struct Daemon::Impl final : ControlCommands {
   bool HandParked();
   // How many bytes of messages may wait in `parked` while the socket thread reads on to shed.
   int64_t ParkedWhileShedding() const;
-  // While messages are parked, whether to read on from a socket (`guarded`: a PULL socket): only
-  // to shed, reaching the messages to drop, and only while those parked (a sender within its
-  // share may have sent them) are within ParkedWhileShedding().
-  bool ReadOnWhileParked(bool guarded) const {
-    return guarded && ingest_guard->shedding() && parked_bytes <= ParkedWhileShedding();
+  // While messages are parked, whether to read on from the ingest sockets: only to shed,
+  // reaching the messages to drop, and only while those parked (a sender within its share may
+  // have sent them) are within ParkedWhileShedding().
+  bool ReadOnWhileParked() const {
+    return ingest_guard && ingest_guard->shedding() && parked_bytes <= ParkedWhileShedding();
   }
   // `queued_bytes`: the message's bytes in the shard's ingest.scoring_queue_bytes count, given
   // back once it has been handled (0 for held vectors, which are bounded apart).
@@ -686,9 +689,13 @@ struct Daemon::Impl final : ControlCommands {
   bool hold_shards GUARDED_BY(pause_mutex) = false;
   Clock::time_point last_subscription_drain{};
   Clock::time_point next_expiry_scan{};
-  // The socket thread's: the ingest guard, over the first pull_sockets sockets of `ingest`.
+  // The socket thread's: the ingest guard, over the connections of every socket of `ingest`: the
+  // first pull_sockets are PULL sockets (their frames come in CURVE boxes if pull_curve), the
+  // one after them, if any, the SUB socket of ingest.subscribe (if subscribe_curve).
   std::optional<IngestConnectionGuard> ingest_guard;
   std::size_t pull_sockets = 0;
+  bool pull_curve = false;
+  bool subscribe_curve = false;
   Clock::time_point last_guard_check{};
   bool shed_logged = false;
   std::vector<CurveAuthenticator::PeerConnection> guard_listed;
@@ -1025,22 +1032,28 @@ void Daemon::Impl::BindSockets() {
     ingest.push_back(std::move(socket));
   }
   pull_sockets = ingest.size();
+  pull_curve = server_keys.has_value();
   auth->SetConnectionLimit(AuthSocket::kIngest, s.ingest_max_senders);
-  ingest_guard.emplace(max_frame, s.receive_high_water_mark, server_keys.has_value());
+  ingest_guard.emplace(max_frame, s.receive_high_water_mark);
   if (!s.subscribe_endpoints.empty()) {
     zmq::socket_t socket(context, zmq::socket_type::sub);
     socket.set(zmq::sockopt::rcvhwm, s.receive_high_water_mark);
     socket.set(zmq::sockopt::maxmsgsize, max_frame);
     socket.set(zmq::sockopt::linger, -1);  // as the PULL sockets': keep what a peer left
     socket.set(zmq::sockopt::subscribe, "");
-    if (server_keys && !subscribe_server_key.empty()) {
+    // Watched either way: the ingest guard measures its connections too.
+    subscribe_curve = server_keys && !subscribe_server_key.empty();
+    if (subscribe_curve) {
       auth->ProtectClient(socket, AuthSocket::kSubscribe, *server_keys, subscribe_server_key);
       spdlog::info("auth: ingest.subscribe is a CURVE client of publisher key {}",
                    subscribe_server_key);
-    } else if (server_keys) {
-      spdlog::warn(
-          "auth: ingest.subscribe connects without CURVE (auth.subscribe_server_key_file is "
-          "not set): anything that answers at those endpoints is taken as ingest");
+    } else {
+      auth->Track(socket, AuthSocket::kSubscribe);
+      if (server_keys) {
+        spdlog::warn(
+            "auth: ingest.subscribe connects without CURVE (auth.subscribe_server_key_file is "
+            "not set): anything that answers at those endpoints is taken as ingest");
+      }
     }
     for (const std::string& endpoint : s.subscribe_endpoints) {
       try {
@@ -1434,12 +1447,10 @@ void Daemon::Impl::Loop() {
   for (auto& socket : ingest) items.push_back({socket.handle(), 0, ZMQ_POLLIN, 0});
   while (true) {
     // While a message is parked, the ingest sockets are left unread (but while ingest is shed,
-    // when the PULL sockets are read to drop the excess) and the loop looks for room every
-    // millisecond.
+    // when they are read to drop the excess) and the loop looks for room every millisecond.
     const bool shedding = ingest_guard && ingest_guard->shedding();
     for (std::size_t i = 2; i < items.size(); ++i) {
-      const bool pull = i - 2 < pull_sockets;
-      items[i].events = parked.empty() || (pull && shedding) ? ZMQ_POLLIN : 0;
+      items[i].events = parked.empty() || shedding ? ZMQ_POLLIN : 0;
     }
     try {
       zmq::poll(items, parked.empty() ? kIngestGuardInterval : std::chrono::milliseconds(1));
@@ -1478,18 +1489,18 @@ void Daemon::Impl::Loop() {
       }
       if (items[1].revents & ZMQ_POLLIN) HandleControl();
       HandParked();  // the ingest sockets are read again at the next turn
-      // Drained: each PULL socket was polled for input and had none, or was read to the end.
-      bool pull_drained = parked.empty();
+      // Drained: each ingest socket was polled for input and had none, or was read to the end.
+      bool all_drained = parked.empty();
       for (std::size_t i = 0; i < ingest.size(); ++i) {
         bool drained = items[2 + i].events != 0;  // not polled while a message was parked
-        if (items[2 + i].revents & ZMQ_POLLIN) drained = ReceiveFrom(ingest[i], i < pull_sockets);
-        if (i < pull_sockets) pull_drained = pull_drained && drained;
+        if (items[2 + i].revents & ZMQ_POLLIN) drained = ReceiveFromIngest(i);
+        all_drained = all_drained && drained;
       }
       if (const Clock::time_point now = Clock::now();
           now - last_guard_check >=
           (parked.empty() ? kIngestGuardInterval : kIngestGuardWaitingInterval)) {
         last_guard_check = now;
-        GuardIngestConnections(pull_drained);
+        GuardIngestConnections(all_drained);
       }
       if (Clock::now() - last_subscription_drain > kSubscriptionDrainInterval) {
         last_subscription_drain = Clock::now();
@@ -1543,7 +1554,7 @@ void Daemon::Impl::DrainIngest() {
       }
       if (zmq::poll(items, kDrainQuiet) == 0) break;  // quiet: nothing more was queued
       for (std::size_t i = 0; i < ingest.size(); ++i) {
-        if (items[i].revents & ZMQ_POLLIN) ReceiveFrom(ingest[i], i < pull_sockets);
+        if (items[i].revents & ZMQ_POLLIN) ReceiveFromIngest(i);
       }
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
@@ -1648,28 +1659,29 @@ void Daemon::Impl::Shutdown() {
   spdlog::info("stopped");
 }
 
-bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
-  if (!HandParked() && !ReadOnWhileParked(guarded)) return false;
+bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool curve) {
+  if (!HandParked() && !ReadOnWhileParked()) return false;
+  const bool guarded = ingest_guard.has_value();
   for (int n = 0; n < kMessagesPerTurn; ++n) {
     if (!socket.recv(key_message, zmq::recv_flags::dontwait)) return true;
     ++received_messages;
     // ZMQ_SRCFD: the connection the message came from, for the guard's count of what was read.
     const int source = guarded ? zmq_msg_get(key_message.handle(), ZMQ_SRCFD) : -1;
-    int64_t wire_bytes = guarded ? ingest_guard->CountFrame(source, key_message.size()) : 0;
+    int64_t wire_bytes = guarded ? ingest_guard->CountFrame(source, key_message.size(), curve) : 0;
     std::size_t frames = 1;
     std::size_t bytes = key_message.size();
     bool more = key_message.more();
     if (more) {
       // The frames of a multipart message arrive together: these never wait.
       (void)socket.recv(payload_message, zmq::recv_flags::none);
-      if (guarded) wire_bytes += ingest_guard->CountFrame(source, payload_message.size());
+      if (guarded) wire_bytes += ingest_guard->CountFrame(source, payload_message.size(), curve);
       ++frames;
       bytes += payload_message.size();
       more = payload_message.more();
     }
     while (more) {
       (void)socket.recv(extra_message, zmq::recv_flags::none);
-      if (guarded) wire_bytes += ingest_guard->CountFrame(source, extra_message.size());
+      if (guarded) wire_bytes += ingest_guard->CountFrame(source, extra_message.size(), curve);
       ++frames;
       bytes += extra_message.size();
       more = extra_message.more();
@@ -1706,18 +1718,24 @@ bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool guarded) {
     // Behind those parked already, whatever its stream: the order stays that of reading.
     parked_bytes += static_cast<int64_t>(key_message.size() + payload_message.size());
     parked.push_back({owner, std::move(key_message), std::move(payload_message)});
-    if (!ReadOnWhileParked(guarded)) return false;
+    if (!ReadOnWhileParked()) return false;
   }
   return false;  // a full turn: more may be waiting
 }
 
 void Daemon::Impl::GuardIngestConnections(bool drained) {
-  if (!ingest_guard || !auth || pull_sockets == 0) return;
+  if (!ingest_guard || !auth || ingest.empty()) return;
   // Kept from check to check, so that a check allocates nothing in the steady state.
-  auth->Connections(AuthSocket::kIngest, &guard_listed);
   guard_live.clear();
+  auth->Connections(AuthSocket::kIngest, &guard_listed);
   for (const CurveAuthenticator::PeerConnection& c : guard_listed) {
-    guard_live.push_back({c.fd, c.generation});
+    guard_live.push_back({c.fd, c.generation, pull_curve});
+  }
+  if (pull_sockets < ingest.size()) {
+    auth->Connections(AuthSocket::kSubscribe, &guard_listed);
+    for (const CurveAuthenticator::PeerConnection& c : guard_listed) {
+      guard_live.push_back({c.fd, c.generation, subscribe_curve});
+    }
   }
   const std::vector<IngestConnectionGuard::Cut> cuts =
       ingest_guard->Check(guard_live, Clock::now(), drained);

@@ -37,9 +37,8 @@ bool SamePeer(const sockaddr_storage& a, socklen_t a_length, const sockaddr_stor
 
 }  // namespace
 
-IngestConnectionGuard::IngestConnectionGuard(int64_t max_frame_bytes, int64_t receive_mark,
-                                             bool curve)
-    : max_frame_bytes_(max_frame_bytes), receive_mark_(receive_mark), curve_(curve) {}
+IngestConnectionGuard::IngestConnectionGuard(int64_t max_frame_bytes, int64_t receive_mark)
+    : max_frame_bytes_(max_frame_bytes), receive_mark_(receive_mark) {}
 
 int64_t IngestConnectionGuard::WireBytes(std::size_t size, bool curve) {
   // CURVE (RFC 26): a MESSAGE command, "\x07MESSAGE" (8), a short nonce (8), then the box: a
@@ -48,11 +47,11 @@ int64_t IngestConnectionGuard::WireBytes(std::size_t size, bool curve) {
   return FrameHeaderBytes(body) + static_cast<int64_t>(body);
 }
 
-int64_t IngestConnectionGuard::CountFrame(int fd, std::size_t size) {
+int64_t IngestConnectionGuard::CountFrame(int fd, std::size_t size, bool curve) {
   if (fd < 0) return 0;
   const auto index = static_cast<std::size_t>(fd);
   if (index >= delivered_.size()) delivered_.resize(std::max<std::size_t>(index + 1, 64) * 2);
-  const int64_t wire = WireBytes(size, curve_);
+  const int64_t wire = WireBytes(size, curve);
   delivered_[index] += wire;
   return wire;
 }
@@ -98,6 +97,7 @@ std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
       tracked = Tracked{};
       tracked.check = check_;
       tracked.generation = connection.generation;
+      tracked.curve = connection.curve;
       tracked.peer = peer;
       tracked.peer_length = peer_length;
       tracked.received_at_start = received;
@@ -117,7 +117,8 @@ std::vector<IngestConnectionGuard::Cut> IngestConnectionGuard::Check(
       }
       const double hours = std::chrono::duration<double>(now - tracked.first_seen).count() / 3600;
       // A message the protocol admits: two frames of the limit at most.
-      const int64_t message = 2 * WireBytes(static_cast<std::size_t>(max_frame_bytes_), curve_);
+      const int64_t message =
+          2 * WireBytes(static_cast<std::size_t>(max_frame_bytes_), tracked.curve);
       // Not drained: up to the mark of whole messages may wait too, and one more that libzmq's
       // decoder holds while the queue is full (no mark: no bound to check).
       const int64_t messages = drained ? 1 : receive_mark_ > 0 ? receive_mark_ + 2 : 0;

@@ -8,7 +8,8 @@
 // on this machine; tests/integration/daemon_e2e_test.py has the peer). CURVE keeps out a peer
 // without an admitted key; this guard bounds what any connected peer can make the daemon hold.
 //
-// How: for each ingest connection, the bytes the kernel received from it (TCP_INFO's
+// How: for each ingest connection (a sender's to a PULL socket, or one the SUB socket of
+// ingest.subscribe made to a publisher), the bytes the kernel received from it (TCP_INFO's
 // tcpi_bytes_received, Linux 4.1 and later) less the wire bytes of every frame the daemon read
 // from it (ZMQ_SRCFD names the connection a frame came from) are the bytes still on their way:
 // in the kernel's receive buffer, in libzmq's decoder, in its queue. Whenever the daemon has read
@@ -20,8 +21,9 @@
 // however many frames it has), so the allowance is the mark plus two (the one in progress, one
 // the decoder holds while the queue is full) times two frames, with the same buffer and change. A
 // connection over its allowance is shut down (shutdown(2), so libzmq closes it and drops its
-// unfinished message) and counted. Unix-domain (ipc://) connections have no TCP_INFO and are not
-// checked: their peers passed the socket file's permissions.
+// unfinished message) and counted (a SUB socket then connects again). Unix-domain (ipc://)
+// connections have no TCP_INFO and are not checked: their peers passed the socket file's
+// permissions.
 //
 // Shedding: the same measure, summed over the connections, is what ZeroMQ and the kernel hold for
 // ingest and the daemon has not read. libzmq bounds it only in whole messages per connection (a
@@ -53,11 +55,13 @@ class IngestConnectionGuard {
  public:
   using Clock = std::chrono::steady_clock;
 
-  // One live connection of an ingest socket: its descriptor, and a number that changes when
-  // the descriptor is reused for another connection.
+  // One live connection of an ingest socket: its descriptor, a number that changes when the
+  // descriptor is reused for another connection, and whether its frames come in CURVE boxes
+  // (each then travels in a MESSAGE command, 33 bytes larger).
   struct Connection {
     int fd = -1;
     uint64_t generation = 0;
+    bool curve = false;
   };
   struct Cut {
     std::string peer;  // "address:port"
@@ -72,14 +76,13 @@ class IngestConnectionGuard {
   };
 
   // `max_frame_bytes`: the sockets' ZMQ_MAXMSGSIZE. `receive_mark`: their ZMQ_RCVHWM (0: none, and
-  // then only drained checks can cut). `curve`: the ingest sockets are CURVE servers (each frame
-  // then travels in a MESSAGE command, 33 bytes larger).
-  IngestConnectionGuard(int64_t max_frame_bytes, int64_t receive_mark, bool curve);
+  // then only drained checks can cut).
+  IngestConnectionGuard(int64_t max_frame_bytes, int64_t receive_mark);
 
   // A frame of `size` bytes was read from the connection `fd` (ZMQ_SRCFD; < 0: not a socket the
-  // guard can see, e.g. inproc). Cheap: an add into a table by descriptor. Returns the frame's
-  // wire bytes (0 when fd < 0).
-  int64_t CountFrame(int fd, std::size_t size);
+  // guard can see, e.g. inproc), in a CURVE box if `curve` (as its Connection says). Cheap: an
+  // add into a table by descriptor. Returns the frame's wire bytes (0 when fd < 0).
+  int64_t CountFrame(int fd, std::size_t size, bool curve);
 
   // Checks `live` and shuts down each connection over its allowance. `drained`: every whole
   // message ZeroMQ held on the ingest sockets has been read just before the call (the tight
@@ -128,6 +131,7 @@ class IngestConnectionGuard {
     int64_t last_unread = 0;
     uint64_t check = 0;  // the last Check that listed it
     int64_t quota = 0;   // bytes still to shed (PlanShedding)
+    bool curve = false;
     bool cut = false;
   };
   int64_t Delivered(int fd) const;
@@ -135,7 +139,6 @@ class IngestConnectionGuard {
 
   int64_t max_frame_bytes_;
   int64_t receive_mark_;
-  bool curve_;
   std::vector<int64_t> delivered_;  // wire bytes read, by descriptor, since the daemon started
   std::unordered_map<int, Tracked> tracked_;
   uint64_t check_ = 0;

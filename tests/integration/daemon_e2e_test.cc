@@ -66,7 +66,11 @@ TEST(DaemonEndToEnd, ABurstPastTheIngestByteBoundWaitsAndIsScoredWholeInOrder) {
 TEST(DaemonEndToEnd, AMessageWhoseFramesNeverEndIsCutAndCounted) { RunScript("UnendingMessage"); }
 
 TEST(DaemonEndToEnd, AFloodPastTheUnreadBudgetIsShedFromItsSenderAloneAndCounted) {
-  RunScript("UnreadBudget");
+  RunScript("UnreadBudget.test_a_flood_past_the_budget_is_shed_from_its_sender_alone_and_counted");
+}
+
+TEST(DaemonEndToEnd, AFloodFromASubscribedPublisherIsShedAndCounted) {
+  RunScript("UnreadBudget.test_a_flood_from_a_subscribed_publisher_is_shed_and_counted");
 }
 
 TEST(DaemonEndToEnd, ASenderOverTheLimitIsRefusedAndCounted) { RunScript("SenderLimit"); }

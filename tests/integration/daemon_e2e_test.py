@@ -1919,38 +1919,46 @@ class IngestQueueBytes(DaemonTestCase):
 class UnreadBudget(DaemonTestCase):
     """Issue 10 §3: libzmq bounds what it queues for a sender in whole messages (10,000 by
     default), not bytes, and a connection shut down keeps its queued messages until read, so only
-    reading can free them. With ingest.max_unread_bytes at 1 MiB, one pyzmq sender floods a stream
-    with 64-vector binary messages far faster than the daemon can score and publish them one
-    result per vector, while another sender's stream goes on. The daemon must drop the flooder's
-    excess and count it (nuwatch_ingest_shed_messages_total, _bytes_total): every vector sent is
-    either counted as processed (nuwatch_vectors_total) or in a shed message, none twice, none
-    lost; and the other sender, within its share, loses nothing and keeps its order."""
+    reading can free them. With ingest.max_unread_bytes at 1 MiB, a flood of 64-vector binary
+    messages reaches a stream far faster than the daemon can score and publish them, while another
+    sender's stream goes on. The daemon must drop the flood's excess and count it
+    (nuwatch_ingest_shed_messages_total, _bytes_total): every vector sent is either counted as
+    processed (nuwatch_vectors_total) or in a shed message, none twice, none lost; and the other
+    sender, within its share, loses nothing and keeps its order. The flood comes from a pyzmq
+    sender connected to the ingest socket, or from a pyzmq publisher the daemon subscribes to
+    (ingest.subscribe): the guard measures the connections the daemon makes as well as those it
+    accepts."""
 
-    def test_a_flood_past_the_budget_is_shed_from_its_sender_alone_and_counted(self):
-        budget = 1 << 20
+    BUDGET = 1 << 20
+    MESSAGES = 8000  # 8000 x 64 vectors, 10 MB: ten times the budget
+
+    def start(self, extra=""):
         # Batch results (one message per ingest message), so that the flood's results do not
         # overrun the subscriber's queue and take the other stream's with them.
-        daemon, peer = self.start_daemon(
-            refit_every=0, publish_batches=True,
-            extra_config="\n[ingest]\nscoring_queue_bytes = 4096\nmax_unread_bytes = %d\n"
-            % budget)
+        # Four streams: the result probe, the other sender's, the subscription's probe, the flood.
+        return self.start_daemon(
+            refit_every=0, max_streams=4, publish_batches=True,
+            extra_config="\n[ingest]\nscoring_queue_bytes = 4096\nmax_unread_bytes = %d\n%s"
+            % (self.BUDGET, extra))
+
+    def flood_payloads(self):
+        flood = StreamData(seed=44)
+        rows = [flood.normal() for _ in range(MAX_VECTORS)]
+        payloads = []
+        for m in range(self.MESSAGES):
+            times = [T0 + (m * MAX_VECTORS + i) * 10.0 for i in range(MAX_VECTORS)]
+            payloads.append(codec.encode_binary(times, [x for _, x in rows], codec.DTYPE_F32))
+        return payloads
+
+    def flood_and_check(self, daemon, peer, send_flood, label):
+        """Runs `send_flood` (sends self.MESSAGES flood payloads to stream "flood") on a thread
+        while another sender's stream goes on, then checks the counts."""
         peer.subscribe_with_probe()
         data = StreamData(seed=43)
         feed_until_scoring(peer, "pump-a", data, ["json"])
         light_before = len(peer.results("pump-a"))
-
-        flood = StreamData(seed=44)
-        rows = [flood.normal() for _ in range(MAX_VECTORS)]
-        messages = 8000  # 8000 x 64 vectors, 10 MB: ten times the budget
-        payloads = []
-        for m in range(messages):
-            times = [T0 + (m * MAX_VECTORS + i) * 10.0 for i in range(MAX_VECTORS)]
-            payloads.append(codec.encode_binary(times, [x for _, x in rows], codec.DTYPE_F32))
-        flooder = peer.context.socket(zmq.PUSH)
-        flooder.setsockopt(zmq.LINGER, -1)
-        flooder.connect(daemon.endpoints["ingest"][0])
-        sender = threading.Thread(
-            target=lambda: [flooder.send_multipart([b"flood", p]) for p in payloads])
+        payloads = self.flood_payloads()
+        sender = threading.Thread(target=lambda: send_flood(payloads))
         sender.start()
         # The other sender's stream during the flood and while it is shed, one message at a time.
         light_sent = 0
@@ -1968,15 +1976,15 @@ class UnreadBudget(DaemonTestCase):
         deadline = time.monotonic() + 6 * WAIT_TIMEOUT
         while True:
             processed, shed = counted()
-            if processed + shed * MAX_VECTORS >= messages * MAX_VECTORS:
+            if processed + shed * MAX_VECTORS >= self.MESSAGES * MAX_VECTORS:
                 break
             self.assertLess(time.monotonic(), deadline,
-                            "flood: %d processed + %d shed messages of %d"
-                            % (processed, shed, messages))
+                            "%s flood: %d processed + %d shed messages of %d"
+                            % (label, processed, shed, self.MESSAGES))
             time.sleep(0.1)  # polling the metrics endpoint, bounded by the deadline
         time.sleep(0.3)  # nothing more may come: no vector counted twice
         processed, shed = counted()
-        self.assertEqual(processed + shed * MAX_VECTORS, messages * MAX_VECTORS)
+        self.assertEqual(processed + shed * MAX_VECTORS, self.MESSAGES * MAX_VECTORS)
         self.assertGreater(shed, 0, "nothing shed: the daemon kept up with the flood")
         metrics = peer.scrape()
         self.assertEqual(series_value(metrics, "nuwatch_ingest_shed_bytes_total"),
@@ -1993,11 +2001,52 @@ class UnreadBudget(DaemonTestCase):
         peer.wait_for(lambda: len(peer.results("pump-a")) >= light_before + light_sent,
                       "pump-a's %d results sent during the flood" % light_sent)
         self.assertEqual([r["t"] for r in peer.results("pump-a")], data.sent_times)
-        sys.stderr.write("unread budget %d: %d of %d flood messages shed, %d vectors processed; "
-                         "%d vectors of another sender all scored\n"
-                         % (budget, shed, messages, processed, light_sent))
+        sys.stderr.write("unread budget %d, %s: %d of %d flood messages shed, %d vectors "
+                         "processed; %d vectors of another sender all scored\n"
+                         % (self.BUDGET, label, shed, self.MESSAGES, processed, light_sent))
+
+    def test_a_flood_past_the_budget_is_shed_from_its_sender_alone_and_counted(self):
+        daemon, peer = self.start()
+        flooder = peer.context.socket(zmq.PUSH)
+        flooder.setsockopt(zmq.LINGER, -1)
+        flooder.connect(daemon.endpoints["ingest"][0])
+
+        def send_flood(payloads):
+            for p in payloads:
+                flooder.send_multipart([b"flood", p])
+        self.flood_and_check(daemon, peer, send_flood, "a PUSH sender")
         flooder.close()
         self.stop_daemon(daemon, peer)
+
+    def test_a_flood_from_a_subscribed_publisher_is_shed_and_counted(self):
+        context = zmq.Context()
+        publisher = context.socket(zmq.PUB)
+        # No mark: a PUB drops at its mark, which would hide what the daemon sheds; with none,
+        # every message reaches the daemon's connection (back-pressure is TCP's).
+        publisher.setsockopt(zmq.SNDHWM, 0)
+        publisher.setsockopt(zmq.LINGER, 0)
+        port = publisher.bind_to_random_port("tcp://127.0.0.1")
+        try:
+            daemon, peer = self.start('subscribe = ["tcp://127.0.0.1:%d"]\n' % port)
+            # A PUB sends nothing until the subscription has reached it: send until one is taken.
+            probe = StreamData(seed=45)
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while not series_value(peer.scrape(), "nuwatch_vectors_total", stream="sub-probe"):
+                self.assertLess(time.monotonic(), deadline, "the subscription never joined")
+                t, x = probe.normal()
+                publisher.send_multipart([b"sub-probe", codec.encode_json([t], [x])])
+                time.sleep(0.02)
+
+            def send_flood(payloads):
+                for p in payloads:
+                    publisher.send_multipart([b"flood", p])
+            self.flood_and_check(daemon, peer, send_flood, "a subscribed publisher")
+            self.assertRegex(daemon.log_text(), r"dropping \d+ bytes of messages from "
+                             r"127\.0\.0\.1:%d" % port)
+            self.stop_daemon(daemon, peer)
+        finally:
+            publisher.close()
+            context.destroy(linger=0)
 
 
 class MetricsBasicAuth(DaemonTestCase):
