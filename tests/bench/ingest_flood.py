@@ -16,6 +16,11 @@ bytes sent and the messages shed.
       --receive-high-water-mark 8
   /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 1 --messages 300 \
       --max-unread-bytes 0
+  /usr/bin/python3 tests/bench/ingest_flood.py --nuwatchd build/bin/nuwatchd --peers 1 --messages 300 \
+      --subscribe
+
+With --subscribe the peers are PUB sockets (no mark, so that they drop nothing) that the daemon
+subscribes to (ingest.subscribe) instead of PUSH sockets connected to its ingest socket.
 """
 import argparse
 import json
@@ -74,9 +79,20 @@ def main():
                         help="ingest.receive_high_water_mark of the daemon (default: its own)")
     parser.add_argument("--max-unread-bytes", type=int, default=None,
                         help="ingest.max_unread_bytes of the daemon (default: its own; 0: none)")
+    parser.add_argument("--subscribe", action="store_true",
+                        help="the peers are publishers the daemon subscribes to (ingest.subscribe)")
     args = parser.parse_args()
 
     payload_rows = [[(i * 7 + j) % 13 * 0.1 for j in range(DIMS)] for i in range(VECTORS)]
+    context = zmq.Context()
+    publishers = []
+    if args.subscribe:
+        for _ in range(args.peers):
+            pub = context.socket(zmq.PUB)
+            pub.setsockopt(zmq.SNDHWM, 0)
+            pub.setsockopt(zmq.LINGER, 0)
+            port = pub.bind_to_random_port("tcp://127.0.0.1")
+            publishers.append((pub, "tcp://127.0.0.1:%d" % port))
     with tempfile.TemporaryDirectory() as work:
         config = os.path.join(work, "flood.toml")
         with open(config, "w") as f:
@@ -88,6 +104,8 @@ def main():
                 f.write("receive_high_water_mark = %d\n" % args.receive_high_water_mark)
             if args.max_unread_bytes is not None:
                 f.write("max_unread_bytes = %d\n" % args.max_unread_bytes)
+            if publishers:
+                f.write("subscribe = [%s]\n" % ", ".join('"%s"' % e for _, e in publishers))
         ready = os.path.join(work, "ready.json")
         daemon = subprocess.Popen(
             [args.nuwatchd, "--config", config, "--ingest", "tcp://127.0.0.1:*",
@@ -101,6 +119,20 @@ def main():
                 time.sleep(0.05)
             with open(ready) as f:
                 endpoints = json.load(f)
+            # A PUB sends nothing until the subscription has reached it: probe each publisher
+            # (a stream of its own, one small vector at a time) until the daemon counts one.
+            probes = 0
+            for p, (pub, _) in enumerate(publishers):
+                key = ("probe-%02d" % p).encode()
+                while True:
+                    assert time.monotonic() < deadline, "a subscription never joined"
+                    pub.send_multipart([key, codec.encode_json([float(probes)], [[0.0, 1.0]])])
+                    probes += 1
+                    time.sleep(0.02)
+                    text = urllib.request.urlopen("http://%s/metrics" % endpoints["metrics"],
+                                                  timeout=5).read().decode()
+                    if ('nuwatch_vectors_total{stream="%s"}' % key.decode()) in text:
+                        break
             time.sleep(0.5)
             before = rss_bytes(daemon.pid)
             peak = [before]
@@ -119,16 +151,18 @@ def main():
 
             sampler = threading.Thread(target=sample)
             sampler.start()
-            context = zmq.Context()
             payloads = [codec.encode_binary([float(m * VECTORS + i) for i in range(VECTORS)],
                                             payload_rows) for m in range(2)]
             sent_bytes = 0
 
             def flood(peer):
                 nonlocal sent_bytes
-                push = context.socket(zmq.PUSH)
-                push.setsockopt(zmq.LINGER, -1)
-                push.connect(endpoints["ingest"][0])
+                if publishers:
+                    push = publishers[peer][0]
+                else:
+                    push = context.socket(zmq.PUSH)
+                    push.setsockopt(zmq.LINGER, -1)
+                    push.connect(endpoints["ingest"][0])
                 key = ("flood-%02d" % peer).encode()
                 for m in range(args.messages):
                     times = [float(m * VECTORS + i) for i in range(VECTORS)]
@@ -137,15 +171,17 @@ def main():
                         payloads[0][codec.HEADER.size + 8 * VECTORS:]
                     push.send_multipart([key, payload])
                     sent_bytes += len(payload)
-                push.close()
+                if not publishers:
+                    push.close()
 
+            probes_scored = vectors_counted(endpoints["metrics"])[0]  # the subscriptions' probes
             started = time.monotonic()
             peers = [threading.Thread(target=flood, args=(p,)) for p in range(args.peers)]
             for t in peers:
                 t.start()
             for t in peers:
                 t.join()
-            expected = args.peers * args.messages * VECTORS
+            expected = args.peers * args.messages * VECTORS + probes_scored
             while True:
                 scored, shed = vectors_counted(endpoints["metrics"])
                 if scored + shed * VECTORS >= expected:
@@ -158,9 +194,12 @@ def main():
             settled = rss_bytes(daemon.pid)
             sampling.clear()
             sampler.join()
+            for pub, _ in publishers:
+                pub.close()
             context.term()
             print(json.dumps({
                 "peers": args.peers, "messages_per_peer": args.messages,
+                "subscribe": args.subscribe,
                 "receive_high_water_mark": args.receive_high_water_mark,
                 "max_unread_bytes": args.max_unread_bytes,
                 "messages_shed": shed, "vectors_scored": scored,
@@ -168,7 +207,8 @@ def main():
                 "rss_before_bytes": before, "rss_peak_bytes": peak[0],
                 "rss_settled_bytes": settled,
                 "peak_unread_bytes_gauge": gauges["nuwatch_ingest_unread_bytes"],
-                "peak_queued_bytes_gauge": gauges["nuwatch_ingest_queued_bytes"], "seconds_to_count_every_vector": round(drained, 2),
+                "peak_queued_bytes_gauge": gauges["nuwatch_ingest_queued_bytes"],
+                "seconds_to_count_every_vector": round(drained, 2),
             }))
         finally:
             daemon.terminate()
