@@ -1035,22 +1035,24 @@ charts::TimelineFigure ChosenTimelineFigure(const TuningReport& report,
     panel.y_label = "decision value";
     bool previous = false;
     // Learning rows have no decision value: a band from the first learning row to the next
-    // scored one (or the last learning row) explains the gap in the line.
-    std::optional<double> learning_since;
+    // scored one (or the last learning row) explains the gap in the line. NaN: not learning (a
+    // plain double: GCC 12 warns that an std::optional<double> here may be used uninitialized,
+    // wrongly).
+    double learning_since = kNaN;
     for (const int64_t i : by_stream[s]) {
       const double t = recording.times[i];
       panel.t.push_back(t);
       panel.value.push_back(rows[i].learning ? kNaN : rows[i].decision);
-      if (rows[i].learning && !learning_since) learning_since = t;
-      if (!rows[i].learning && learning_since) {
-        panel.learning.push_back({*learning_since, t});
-        learning_since.reset();
+      if (rows[i].learning && std::isnan(learning_since)) learning_since = t;
+      if (!rows[i].learning && !std::isnan(learning_since)) {
+        panel.learning.push_back({learning_since, t});
+        learning_since = kNaN;
       }
       const bool alarmed = Alarmed(rows[i], report.alarms);
       if (alarmed && !previous) panel.marks.push_back(t);
       previous = alarmed;
     }
-    if (learning_since) panel.learning.push_back({*learning_since, panel.t.back()});
+    if (!std::isnan(learning_since)) panel.learning.push_back({learning_since, panel.t.back()});
     for (const Incident& incident : incidents) {
       if (incident.stream == recording.streams[s]) {
         panel.shaded.push_back({incident.start_seconds, incident.end_seconds});
