@@ -18,6 +18,8 @@ import time
 
 import zmq
 
+from ingest_flood import wait_for_ready
+
 
 def cpu_seconds(pid):
     with open("/proc/%d/stat" % pid) as f:
@@ -40,12 +42,7 @@ def main():
              "--log-level", "error"])
         context = zmq.Context()
         try:
-            deadline = time.monotonic() + 30
-            while not os.path.exists(ready):
-                assert daemon.poll() is None and time.monotonic() < deadline, "no ready file"
-                time.sleep(0.05)
-            with open(ready) as f:
-                endpoints = json.load(f)
+            endpoints = wait_for_ready(daemon, ready)
             result = {"seconds": args.seconds}
             for senders in (0, args.senders):
                 sockets = []

@@ -70,6 +70,16 @@ def vectors_counted(metrics):
     return total, shed
 
 
+def wait_for_ready(daemon, ready):
+    """The endpoints nuwatchd wrote to its --ready-file once it listens (30 s at most)."""
+    deadline = time.monotonic() + 30
+    while not os.path.exists(ready):
+        assert daemon.poll() is None and time.monotonic() < deadline, "no ready file"
+        time.sleep(0.05)
+    with open(ready) as f:
+        return json.load(f)
+
+
 def main():
     parser = argparse.ArgumentParser()
     parser.add_argument("--nuwatchd", required=True)
@@ -113,12 +123,8 @@ def main():
              "--control", "ipc://" + work + "/control", "--ready-file", ready,
              "--log-level", "warn"])
         try:
+            endpoints = wait_for_ready(daemon, ready)
             deadline = time.monotonic() + 30
-            while not os.path.exists(ready):
-                assert daemon.poll() is None and time.monotonic() < deadline, "no ready file"
-                time.sleep(0.05)
-            with open(ready) as f:
-                endpoints = json.load(f)
             # A PUB sends nothing until the subscription has reached it: probe each publisher
             # (a stream of its own, one small vector at a time) until the daemon counts one.
             probes = 0
