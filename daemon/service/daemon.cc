@@ -485,8 +485,12 @@ struct Daemon::Impl final : ControlCommands {
   // frames come in CURVE boxes (for the ingest guard's count of the bytes read).
   bool ReceiveFrom(zmq::socket_t& socket, bool curve);
   bool ReceiveFromIngest(std::size_t i) {
-    return ReceiveFrom(ingest[i], i < pull_sockets ? pull_curve : subscribe_curve);
+    return ReceiveFrom(ingest[i], i < pull_sockets ? PullCurve() : SubscribeCurve());
   }
+  // Whether the frames of the PULL sockets, and of the SUB socket of ingest.subscribe, come in
+  // CURVE boxes (both set at start, before the sockets are made).
+  bool PullCurve() const { return server_keys.has_value(); }
+  bool SubscribeCurve() const { return server_keys && !subscribe_server_key.empty(); }
   // Shuts down ingest connections ZeroMQ holds too much of (service/ingest_guard.h), and plans
   // shedding. `drained`: the ingest sockets have nothing left to read.
   void GuardIngestConnections(bool drained);
@@ -690,12 +694,10 @@ struct Daemon::Impl final : ControlCommands {
   Clock::time_point last_subscription_drain{};
   Clock::time_point next_expiry_scan{};
   // The socket thread's: the ingest guard, over the connections of every socket of `ingest`: the
-  // first pull_sockets are PULL sockets (their frames come in CURVE boxes if pull_curve), the
-  // one after them, if any, the SUB socket of ingest.subscribe (if subscribe_curve).
+  // first pull_sockets are PULL sockets, the one after them, if any, the SUB socket of
+  // ingest.subscribe.
   std::optional<IngestConnectionGuard> ingest_guard;
   std::size_t pull_sockets = 0;
-  bool pull_curve = false;
-  bool subscribe_curve = false;
   Clock::time_point last_guard_check{};
   bool shed_logged = false;
   std::vector<CurveAuthenticator::PeerConnection> guard_listed;
@@ -1032,7 +1034,6 @@ void Daemon::Impl::BindSockets() {
     ingest.push_back(std::move(socket));
   }
   pull_sockets = ingest.size();
-  pull_curve = server_keys.has_value();
   auth->SetConnectionLimit(AuthSocket::kIngest, s.ingest_max_senders);
   ingest_guard.emplace(max_frame, s.receive_high_water_mark);
   if (!s.subscribe_endpoints.empty()) {
@@ -1042,8 +1043,7 @@ void Daemon::Impl::BindSockets() {
     socket.set(zmq::sockopt::linger, -1);  // as the PULL sockets': keep what a peer left
     socket.set(zmq::sockopt::subscribe, "");
     // Watched either way: the ingest guard measures its connections too.
-    subscribe_curve = server_keys && !subscribe_server_key.empty();
-    if (subscribe_curve) {
+    if (SubscribeCurve()) {
       auth->ProtectClient(socket, AuthSocket::kSubscribe, *server_keys, subscribe_server_key);
       spdlog::info("auth: ingest.subscribe is a CURVE client of publisher key {}",
                    subscribe_server_key);
@@ -1729,12 +1729,12 @@ void Daemon::Impl::GuardIngestConnections(bool drained) {
   guard_live.clear();
   auth->Connections(AuthSocket::kIngest, &guard_listed);
   for (const CurveAuthenticator::PeerConnection& c : guard_listed) {
-    guard_live.push_back({c.fd, c.generation, pull_curve});
+    guard_live.push_back({c.fd, c.generation, PullCurve()});
   }
   if (pull_sockets < ingest.size()) {
     auth->Connections(AuthSocket::kSubscribe, &guard_listed);
     for (const CurveAuthenticator::PeerConnection& c : guard_listed) {
-      guard_live.push_back({c.fd, c.generation, subscribe_curve});
+      guard_live.push_back({c.fd, c.generation, SubscribeCurve()});
     }
   }
   const std::vector<IngestConnectionGuard::Cut> cuts =
