@@ -17,8 +17,8 @@
 // vectors sent against those accepted and those in messages shed at ingest
 // (nuwatch_ingest_shed_messages_total, past ingest.max_unread_bytes), the
 // CPU seconds per vector of the nuwatchd process, of its socket thread and of its scoring threads
-// together (from /proc, so that a
-// busy machine stretches wall time but not these), and then p50/p99 ingest-to-result latency at
+// together in the full-rate phases (from /proc, so that a busy machine stretches wall time but
+// not these), and then p50/p99 ingest-to-result latency at
 // half of nuwatchd's maximum rate for that form (the result's `t` is the send time).
 // --compare-result-forms: instead of the relay comparison, one nuwatchd takes 64-vector binary
 // messages while its publish.result_form alternates between "json" (with publish.batches, one
@@ -765,6 +765,10 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
     double daemon_sent = 0, daemon_accepted = 0, daemon_results = 0, daemon_dropped = 0;
     double daemon_shed = 0;
     double cpu_process = 0, cpu_thread = 0, cpu_scoring = 0, relay_cpu = 0, relay_vectors = 0;
+    // The CPU is read over the full-rate phases only, so it is divided by their vectors alone:
+    // dividing by all those accepted (the latency phase's too) understated it by a factor
+    // rounds / (rounds + 0.5), a third with --rounds 1.
+    double cpu_vectors = 0;
     for (int r = 0; r < rounds; ++r) {
       const Phase a = RunPhase(relay, form, seconds, 0, false);
       const Phase b = RunPhase(daemon, form, seconds, 0, false);
@@ -774,6 +778,7 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
       relay_vectors += a.vectors_sent;
       daemon_sent += b.vectors_sent;
       daemon_accepted += b.vectors_accepted;
+      cpu_vectors += b.vectors_accepted;
       daemon_results += b.results;
       daemon_dropped += b.dropped;
       daemon_shed += b.shed;
@@ -804,9 +809,9 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
          // Sent but neither accepted nor shed (counted) at ingest.
          {"nuwatchd_vectors_shed", daemon_shed},
          {"nuwatchd_unaccounted_at_ingest", daemon_sent - daemon_accepted - daemon_shed},
-         {"nuwatchd_cpu_us_per_vector_process", 1e6 * cpu_process / daemon_accepted},
-         {"nuwatchd_cpu_us_per_vector_socket_thread", 1e6 * cpu_thread / daemon_accepted},
-         {"nuwatchd_cpu_us_per_vector_scoring_threads", 1e6 * cpu_scoring / daemon_accepted},
+         {"nuwatchd_cpu_us_per_vector_process", 1e6 * cpu_process / cpu_vectors},
+         {"nuwatchd_cpu_us_per_vector_socket_thread", 1e6 * cpu_thread / cpu_vectors},
+         {"nuwatchd_cpu_us_per_vector_scoring_threads", 1e6 * cpu_scoring / cpu_vectors},
          {"bare_cpu_us_per_vector", 1e6 * relay_cpu / relay_vectors},
          {"latency_rate_vectors_per_second", message_rate * VectorsPerMessage(form)},
          {"nuwatchd_latency_p50_ms", 1e3 * Percentile(lat_daemon.latencies, 0.5)},
@@ -846,7 +851,8 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
         f["nuwatchd_latency_p50_ms"].get<double>(), f["nuwatchd_latency_p99_ms"].get<double>());
   }
   std::printf(
-      "\ncpu us/v: CPU time of the whole nuwatchd process per vector accepted (the socket "
+      "\ncpu us/v: CPU time of the whole nuwatchd process per vector accepted at full rate (the "
+      "socket "
       "thread's and the scoring threads' in --json); latency at half of nuwatchd's best rate for "
       "the form.\n");
   if (out.contains("shutdown")) std::printf("shutdown: %s\n", out["shutdown"].dump().c_str());
