@@ -5,6 +5,7 @@
 #include <sys/eventfd.h>
 #include <unistd.h>
 
+#include <algorithm>
 #include <cerrno>
 #include <cstring>
 #include <iterator>
@@ -165,6 +166,24 @@ void CurveAuthenticator::Run() {
   zap_.close();
 }
 
+void CurveAuthenticator::TakeFailedHandshakes(AuthSocket which, std::vector<std::string>* out) {
+  out->clear();
+  if (!failed_handshakes_pending_.load(std::memory_order_acquire)) return;
+  MutexLock lock(&mutex_);
+  out->swap(failed_handshakes_[static_cast<std::size_t>(which)]);
+  bool pending = false;
+  for (const auto& listed : failed_handshakes_) pending = pending || !listed.empty();
+  failed_handshakes_pending_.store(pending, std::memory_order_release);
+}
+
+void CurveAuthenticator::NoteFailedHandshake(const Watched& watched, const std::string& endpoint) {
+  if (!watched.client) return;  // a server's peers connect again themselves
+  MutexLock lock(&mutex_);
+  std::vector<std::string>& listed = failed_handshakes_[static_cast<std::size_t>(watched.which)];
+  if (std::find(listed.begin(), listed.end(), endpoint) == listed.end()) listed.push_back(endpoint);
+  failed_handshakes_pending_.store(true, std::memory_order_release);
+}
+
 void CurveAuthenticator::Refuse(AuthSocket which, AuthRefusal reason, const std::string& detail) {
   metrics_->auth_refused(which, reason).Increment();
   bool& logged = logged_[static_cast<std::size_t>(reason)];
@@ -266,11 +285,8 @@ bool CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
   std::memcpy(&event, frames[0].data(), sizeof event);
   std::memcpy(&value, static_cast<const char*>(frames[0].data()) + sizeof event, sizeof value);
   const std::string endpoint = Frame(frames[1]);
-  // A socket only tracked (Track) has no handshakes of its own to count: only its connections.
-  if (watched.client && !watched.curve && event != ZMQ_EVENT_CONNECTED &&
-      event != ZMQ_EVENT_DISCONNECTED) {
-    return true;
-  }
+  // A socket only tracked (Track), a plain SUB, admits no one, but its handshakes can fail (a
+  // publisher that requires CURVE): those are counted and said below like any other refusal.
   switch (event) {
     case ZMQ_EVENT_ACCEPTED:
     case ZMQ_EVENT_CONNECTED:
@@ -304,8 +320,20 @@ bool CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
       if (watched.curve) metrics_->auth_admitted(watched.which).Increment();
       break;
     case ZMQ_EVENT_HANDSHAKE_FAILED_PROTOCOL:
+      NoteFailedHandshake(watched, endpoint);
       if (value == ZMQ_PROTOCOL_ERROR_ZMTP_MECHANISM_MISMATCH) {
-        Refuse(watched.which, AuthRefusal::kWrongMechanism, "a peer without CURVE on " + endpoint);
+        // RFC 23: both peers must use the same mechanism; the mismatch is told from this side.
+        std::string detail;
+        if (!watched.client) {
+          detail = watched.curve ? "a peer without CURVE on " + endpoint
+                                 : "a peer using CURVE on " + endpoint + ", which does not";
+        } else if (watched.curve) {
+          detail = "the publisher at " + endpoint + " does not use CURVE";
+        } else {
+          detail = "the publisher at " + endpoint +
+                   " uses CURVE: name its public key in auth.subscribe_server_key_file";
+        }
+        Refuse(watched.which, AuthRefusal::kWrongMechanism, detail);
       } else if (value >= ZMQ_PROTOCOL_ERROR_ZAP_UNSPECIFIED &&
                  value < ZMQ_PROTOCOL_ERROR_WS_UNSPECIFIED) {
         spdlog::error("auth: libzmq rejected this handler's ZAP reply (error 0x{:x})", value);
@@ -322,10 +350,11 @@ bool CurveAuthenticator::HandleMonitorEvent(Watched& watched) {
       break;
     case ZMQ_EVENT_HANDSHAKE_FAILED_AUTH:
       // On a server socket the ZAP handler has counted this refusal already (it made it).
+      NoteFailedHandshake(watched, endpoint);
       if (watched.client) {
         Refuse(watched.which, AuthRefusal::kUnknownKey,
-               "the publisher at " + endpoint + " does not admit this daemon's key (status " +
-                   std::to_string(value) + ")");
+               "the publisher at " + endpoint + " does not admit this daemon" +
+                   (watched.curve ? "'s key" : "") + " (status " + std::to_string(value) + ")");
       }
       break;
     case ZMQ_EVENT_HANDSHAKE_FAILED_NO_DETAIL:

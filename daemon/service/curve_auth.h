@@ -70,8 +70,9 @@ class CurveAuthenticator {
   // peers within the connection limit. Requires: as Protect.
   void Gate(zmq::socket_t& socket, AuthSocket which);
   // Watches the connections of a client socket without CURVE (the plain SUB socket of
-  // ingest.subscribe), for Connections; nothing else of it is counted. Requires: as Protect,
-  // before `socket` connects.
+  // ingest.subscribe), for Connections, and its failed handshakes: one with a server that requires
+  // CURVE counts as wrong_mechanism (or incomplete_handshake, when that server hung up first).
+  // Requires: as Protect, before `socket` connects.
   void Track(zmq::socket_t& socket, AuthSocket which);
   // At most `limit` connections at once on the server sockets `which`, all of them together (0:
   // no limit). Requires: before Start; the sockets protected or gated.
@@ -92,6 +93,13 @@ class CurveAuthenticator {
   // Fills `out` (cleared first; its capacity is reused, so a caller that keeps it allocates
   // nothing once it is large enough).
   void Connections(AuthSocket which, std::vector<PeerConnection>* out) const EXCLUDES(mutex_);
+  // Moves into `out` (cleared first) the endpoints of the client sockets `which` (ProtectClient,
+  // Track) whose handshake failed since the last call: a mechanism mismatch, a server key that
+  // does not match, a refusal by the server. libzmq connects again after a lost connection but
+  // never after such a failure, so the socket's owner must (a publisher set right later would
+  // otherwise never be heard again). An endpoint is listed once however often it failed. Any
+  // thread; cheap when nothing failed (an atomic read).
+  void TakeFailedHandshakes(AuthSocket which, std::vector<std::string>* out) EXCLUDES(mutex_);
   // Stops and joins the thread. Requires: every protected socket is closed. Idempotent.
   void Stop();
 
@@ -114,6 +122,8 @@ class CurveAuthenticator {
   bool HandleMonitorEvent(Watched& watched);
   bool Allowed(const std::string& z85_key) const EXCLUDES(mutex_);
   void Refuse(AuthSocket which, AuthRefusal reason, const std::string& detail);
+  // Lists `endpoint` for TakeFailedHandshakes when `watched` is a client socket.
+  void NoteFailedHandshake(const Watched& watched, const std::string& endpoint) EXCLUDES(mutex_);
 
   zmq::context_t& context_;
   DaemonMetrics* metrics_;
@@ -130,6 +140,9 @@ class CurveAuthenticator {
   // The server sockets' connections, by socket kind; written by the thread, read by Connections.
   std::array<std::vector<PeerConnection>, kAuthSocketCount> connections_ GUARDED_BY(mutex_);
   uint64_t next_generation_ = 1;  // the thread's
+  // The client sockets' endpoints whose handshake failed (TakeFailedHandshakes), by socket kind.
+  std::array<std::vector<std::string>, kAuthSocketCount> failed_handshakes_ GUARDED_BY(mutex_);
+  std::atomic<bool> failed_handshakes_pending_{false};
 };
 
 }  // namespace nuwatch

@@ -158,6 +158,10 @@ constexpr std::chrono::milliseconds kIngestGuardInterval{100};
 // they hold is held to ingest.max_unread_bytes (a flood of 4 MiB messages on loopback brings
 // 100-300 MB in 100 ms).
 constexpr std::chrono::milliseconds kIngestGuardWaitingInterval{20};
+// How long after a failed handshake with a publisher of ingest.subscribe the SUB socket connects
+// to it again (libzmq itself never does after such a failure): a publisher set right is heard
+// within this, and a wrong one is tried, and counted, once per interval.
+constexpr std::chrono::seconds kResubscribeDelay{1};
 constexpr std::size_t kControlMaxBytes = 1 << 20;
 // The second frame of an adopt request (a stream's whole state) may be larger: ZeroMQ drops a
 // connection that sends a frame longer than this (PROTOCOL.md §11).
@@ -573,6 +577,9 @@ struct Daemon::Impl final : ControlCommands {
   void SendNow(std::string_view key, std::string_view body, PublishedMessage message,
                int64_t results) REQUIRES(publish_mutex);
   void DrainSubscriptions() EXCLUDES(publish_mutex);
+  // Connects the SUB socket of ingest.subscribe again to each publisher whose handshake failed,
+  // kResubscribeDelay after the failure. The socket thread's.
+  void ResubscribeAfterFailedHandshakes();
   void Record(Stream& stream, double time);
 
   // Background work, noticed by the stream's scoring thread (or by the socket thread while the
@@ -703,6 +710,10 @@ struct Daemon::Impl final : ControlCommands {
   std::vector<CurveAuthenticator::PeerConnection> guard_listed;
   std::vector<IngestConnectionGuard::Connection> guard_live;
   bool guard_cut_logged = false;
+  // The socket thread's: publishers of ingest.subscribe to connect to again, and when.
+  std::vector<std::string> failed_subscriptions;
+  std::unordered_map<std::string, Clock::time_point> resubscribe_due;
+  bool resubscribe_logged = false;
 
   boost::asio::io_context io;
   boost::asio::executor_work_guard<boost::asio::io_context::executor_type> io_work{
@@ -1506,6 +1517,7 @@ void Daemon::Impl::Loop() {
         last_subscription_drain = Clock::now();
         DrainSubscriptions();
       }
+      ResubscribeAfterFailedHandshakes();
     } catch (const zmq::error_t& e) {
       if (e.num() == EINTR) continue;
       if (e.num() == ETERM) return;
@@ -2268,6 +2280,46 @@ void Daemon::Impl::SendNow(std::string_view key, std::string_view body, Publishe
 
 // XPUB hands the subscribers' (un)subscriptions to the application; nuwatchd needs none of them,
 // but unread ones would pile up in the socket for as long as subscribers come and go.
+void Daemon::Impl::ResubscribeAfterFailedHandshakes() {
+  if (!auth || pull_sockets >= ingest.size()) return;
+  auth->TakeFailedHandshakes(AuthSocket::kSubscribe, &failed_subscriptions);
+  if (failed_subscriptions.empty() && resubscribe_due.empty()) return;
+  const Clock::time_point now = Clock::now();
+  for (std::string& endpoint : failed_subscriptions) {
+    resubscribe_due.try_emplace(std::move(endpoint), now + kResubscribeDelay);
+  }
+  zmq::socket_t& socket = ingest[pull_sockets];
+  for (auto it = resubscribe_due.begin(); it != resubscribe_due.end();) {
+    if (it->second > now) {
+      ++it;
+      continue;
+    }
+    const std::string& endpoint = it->first;
+    try {
+      // At the linger of -1 a connection ended here would hold its unsent subscription for ever,
+      // and zmq_ctx_term with it at the stop; libzmq reads the linger when the connection ends.
+      socket.set(zmq::sockopt::linger, 0);
+      try {
+        socket.disconnect(endpoint);
+      } catch (const zmq::error_t&) {
+        // ENOENT: libzmq ended that connection itself after the failure (the usual case).
+      }
+      socket.set(zmq::sockopt::linger, -1);
+      socket.connect(endpoint);
+      const auto level = resubscribe_logged ? spdlog::level::debug : spdlog::level::info;
+      spdlog::log(level,
+                  "ingest.subscribe: connecting to {} again after its failed handshake (libzmq "
+                  "does not retry one); once a second while it fails{}",
+                  endpoint,
+                  resubscribe_logged ? "" : "; further attempts are logged at debug level");
+      resubscribe_logged = true;
+    } catch (const zmq::error_t& e) {
+      spdlog::error("ingest.subscribe: cannot connect to {} again: {}", endpoint, e.what());
+    }
+    it = resubscribe_due.erase(it);
+  }
+}
+
 void Daemon::Impl::DrainSubscriptions() {
   MutexLock lock(&publish_mutex);
   while (publish.recv(subscription_message, zmq::recv_flags::dontwait)) {

@@ -1678,6 +1678,67 @@ class CurveAuthentication(DaemonTestCase):
             authenticator.stop()
             refusing_context.destroy(linger=0)
 
+    def test_a_plain_subscription_to_a_curve_publisher_is_counted_said_and_retried(self):
+        """ingest.subscribe without auth.subscribe_server_key_file, to a publisher that is a CURVE
+        server (pyzmq PUB): the handshake fails (RFC 23: both peers must use the same mechanism) at
+        every reconnect. Nothing arrives, so the daemon must say why: each failure is counted under
+        socket="subscribe" (wrong_mechanism, or incomplete_handshake when the publisher hangs up
+        before its greeting is read), and the log
+        names the publisher and the key to set. Before, a plain SUB's failed handshakes were
+        neither counted nor logged (this test failed: the series stayed absent). Then the
+        publisher is set right, and its data must be scored: libzmq does not connect again after
+        a failed handshake, so the daemon does, a second later."""
+        _, publisher_secret = zmq.curve_keypair()
+        publisher = self.context.socket(zmq.PUB)
+        publisher.setsockopt(zmq.LINGER, 0)
+        publisher.curve_server = True
+        publisher.curve_secretkey = publisher_secret
+        port = publisher.bind_to_random_port("tcp://127.0.0.1")
+        try:
+            extra = '\n[ingest]\nsubscribe = ["tcp://127.0.0.1:%d"]\n' % port
+            daemon = Daemon(self.workdir, self.state_dir, extra_config=extra)
+            self.daemons.append(daemon)
+            endpoints = daemon.start()
+            peer = Peer.__new__(Peer)  # only its metrics scrape
+            peer.metrics_address = endpoints["metrics"]
+            # libzmq reconnects every 100 ms (ZMQ_RECONNECT_IVL), failing each time: as a
+            # mismatch when this side reads the publisher's greeting first, as a broken pipe when
+            # the publisher hung up first.
+            self.wait_for_series(peer, "nuwatch_auth_refusals_total", 3,
+                                 "the failed handshakes with the CURVE publisher",
+                                 reasons=("wrong_mechanism", "incomplete_handshake"),
+                                 socket="subscribe")
+            self.wait_for_series(peer, "nuwatch_auth_refusals_total", 1, "a mismatch said",
+                                 socket="subscribe", reason="wrong_mechanism")
+            log = daemon.log_text()
+            self.assertIn("the publisher at tcp://127.0.0.1:%d uses CURVE" % port, log)
+            self.assertIn("auth.subscribe_server_key_file", log)
+            self.assertEqual(series_value(peer.scrape(), "nuwatch_auth_handshakes_total",
+                                          socket="subscribe") or 0, 0)
+            # The publisher is set right (plain, as the daemon is) on the same port. libzmq never
+            # connects again after a failed handshake (observed with pyzmq on libzmq 4.3.4: a SUB
+            # whose handshake failed received nothing from a plain publisher bound there later),
+            # so unless the daemon connects again itself, nothing it publishes is ever read.
+            publisher.close()
+            publisher = self.context.socket(zmq.PUB)
+            publisher.setsockopt(zmq.LINGER, 0)
+            publisher.bind("tcp://127.0.0.1:%d" % port)
+            data = StreamData(seed=13)
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while (series_value(peer.scrape(), "nuwatch_vectors_total", stream="pump-fixed")
+                   or 0) < 5:
+                self.assertLess(time.monotonic(), deadline,
+                                "nothing taken from the publisher once set right\n"
+                                + daemon.log_tail())
+                t, x = data.normal()
+                publisher.send_multipart([b"pump-fixed", codec.encode_json([t], [x])])
+                time.sleep(0.02)  # a PUB drops until the SUB has joined: send until counted
+            self.assertIn("ingest.subscribe: connecting to tcp://127.0.0.1:%d again" % port,
+                          daemon.log_text())
+            self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
+        finally:
+            publisher.close()
+
     def test_a_subscribe_key_without_the_daemons_own_pair_is_refused(self):
         public_file, _ = self.zauth.create_certificates(self.keys, "publisher")
         extra = '\n[auth]\nsubscribe_server_key_file = "%s"\n' % public_file
