@@ -1256,6 +1256,20 @@ class SenderLimit(DaemonTestCase):
         self.stop_daemon(daemon, peer)
 
 
+def bind_again(socket, port):
+    """Binds `socket` to a loopback port another socket has just closed: libzmq releases the port
+    in its I/O thread a moment after close() returns, so EADDRINUSE is retried for a while."""
+    deadline = time.monotonic() + WAIT_TIMEOUT
+    while True:
+        try:
+            socket.bind("tcp://127.0.0.1:%d" % port)
+            return
+        except zmq.ZMQError as e:
+            if e.errno != zmq.EADDRINUSE or time.monotonic() > deadline:
+                raise
+            time.sleep(0.01)  # the closed socket's port is being released
+
+
 class CurveAuthentication(DaemonTestCase):
     """Issue 10 §1: CURVE on ingest, results and control with a ZAP handler that admits only the
     listed client keys (daemon/protocol/PROTOCOL.md §12).
@@ -1722,7 +1736,7 @@ class CurveAuthentication(DaemonTestCase):
             publisher.close()
             publisher = self.context.socket(zmq.PUB)
             publisher.setsockopt(zmq.LINGER, 0)
-            publisher.bind("tcp://127.0.0.1:%d" % port)
+            bind_again(publisher, port)
             data = StreamData(seed=13)
             deadline = time.monotonic() + WAIT_TIMEOUT
             while (series_value(peer.scrape(), "nuwatch_vectors_total", stream="pump-fixed")
@@ -1735,6 +1749,63 @@ class CurveAuthentication(DaemonTestCase):
                 time.sleep(0.02)  # a PUB drops until the SUB has joined: send until counted
             self.assertIn("ingest.subscribe: connecting to tcp://127.0.0.1:%d again" % port,
                           daemon.log_text())
+            self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
+        finally:
+            publisher.close()
+
+    def test_a_curve_subscription_refused_once_is_heard_when_the_publisher_is_set_right(self):
+        """auth.subscribe_server_key_file with a publisher that first runs with another key, then
+        is restarted on the same port with the configured key: its vectors must then be scored,
+        without a restart of the daemon. The first handshakes fail either way round: the
+        publisher cannot open the daemon's hello and hangs up (the daemon sees a lost connection,
+        which libzmq retries itself), or the daemon notices first (a protocol error, after which
+        libzmq never connects again, and the daemon does, a second later). Without the daemon's
+        retry it passed too in the runs made (the publisher noticed first), so the plain case
+        above is the one that pins the retry down."""
+        public_file, secret_file = self.zauth.create_certificates(self.keys, "publisher")
+        _, publisher_secret = self.zauth.load_certificate(secret_file)
+        _, wrong_secret = zmq.curve_keypair()
+
+        def pub(secret, port=None):
+            s = self.context.socket(zmq.PUB)
+            s.setsockopt(zmq.LINGER, 0)
+            s.curve_server = True
+            s.curve_secretkey = secret
+            if port is None:
+                return s, s.bind_to_random_port("tcp://127.0.0.1")
+            bind_again(s, port)
+            return s, port
+
+        publisher, port = pub(wrong_secret)
+        try:
+            extra = ('\n[ingest]\nsubscribe = ["tcp://127.0.0.1:%d"]\n'
+                     '\n[auth]\nserver_secret_key_file = "%s"\nclient_keys = "%s"\n'
+                     'subscribe_server_key_file = "%s"\n') % (
+                port, self.server_secret_file, self.clients, public_file)
+            daemon = Daemon(self.workdir, self.state_dir, extra_config=extra)
+            self.daemons.append(daemon)
+            endpoints = daemon.start()
+            peer = Peer.__new__(Peer)  # only its metrics scrape
+            peer.metrics_address = endpoints["metrics"]
+            self.wait_for_series(peer, "nuwatch_auth_refusals_total", 1,
+                                 "the failed handshake with the wrong key",
+                                 reasons=("bad_handshake", "incomplete_handshake"),
+                                 socket="subscribe")
+            publisher.close()
+            publisher, _ = pub(publisher_secret, port)
+            data = StreamData(seed=17)
+            deadline = time.monotonic() + WAIT_TIMEOUT
+            while (series_value(peer.scrape(), "nuwatch_vectors_total", stream="pump-rekeyed")
+                   or 0) < 5:
+                self.assertLess(time.monotonic(), deadline,
+                                "nothing taken from the publisher once it held the key\n"
+                                + daemon.log_tail())
+                t, x = data.normal()
+                publisher.send_multipart([b"pump-rekeyed", codec.encode_json([t], [x])])
+                time.sleep(0.02)  # a PUB drops until the SUB has joined: send until counted
+            self.assertGreaterEqual(
+                series_value(peer.scrape(), "nuwatch_auth_handshakes_total", socket="subscribe"),
+                1)
             self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
         finally:
             publisher.close()
