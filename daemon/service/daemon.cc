@@ -355,6 +355,8 @@ struct Shard {
   // The earliest moment a failed write is due again; none while no write has failed.
   std::optional<Clock::time_point> next_write_retry;
   Clock::time_point turn_time{};  // when the current turn of messages began (Stream::last_seen)
+  // nuwatch_score_duration_seconds of this thread's scoring, handed over with each SendOutbox.
+  HistogramBatch score_durations{ScoreDurationBounds()};
   // Streams whose message is being scored in slices (Stream::sliced), in turn order.
   std::deque<Stream*> slicing;
 
@@ -548,7 +550,9 @@ struct Daemon::Impl final : ControlCommands {
   // Every sliced message of the shard, at once: before a command or the stop sees its streams.
   void FinishAllSliced(Shard& shard);
   // The stream's metrics after `verdicts` (the last of them at data time `last_time`).
-  void UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts, double last_time);
+  // `now`: when the verdicts' scoring ended (the caller's clock read, so that none is taken here).
+  void UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts, double last_time,
+                           Clock::time_point now);
   // Publishes the results of one ingest message's vectors (one message each, one §9.4 batch
   // with publish.batches, or one §9.5 binary batch with publish.result_form = "binary"), then
   // their incident events. `batch`: the verdicts came from ObserveBatch (flagged rows are
@@ -1923,9 +1927,9 @@ void Daemon::Impl::ProcessVector(Shard& shard, Stream& stream, const PayloadView
   Detector& detector = *stream.detector;
   const Clock::time_point started_at = Clock::now();
   const Verdict v = detector.Observe(t, stream.row);
-  metrics.score_duration().Observe(
-      std::chrono::duration<double>(Clock::now() - started_at).count());
-  UpdateStreamMetrics(stream, std::span<const Verdict>(&v, 1), t);
+  const Clock::time_point scored_at = Clock::now();
+  shard.score_durations.Observe(std::chrono::duration<double>(scored_at - started_at).count());
+  UpdateStreamMetrics(stream, std::span<const Verdict>(&v, 1), t, scored_at);
   PublishResults(shard, stream, std::span<const double>(&t, 1), std::span<const Verdict>(&v, 1),
                  /*batch=*/false);
 }
@@ -1959,10 +1963,10 @@ void Daemon::Impl::ScoreBatchRows(Shard& shard, Stream& stream, std::span<const 
   detector.ObserveBatch(times, rows, &shard.batch_verdicts);
   // One observation per message (or slice), of the time per vector, so that the histogram keeps
   // measuring what one vector costs (metrics.h) without a mutex-taking Observe per row.
-  metrics.score_duration().Observe(
-      std::chrono::duration<double>(Clock::now() - started_at).count() /
-      static_cast<double>(times.size()));
-  UpdateStreamMetrics(stream, shard.batch_verdicts, times.back());
+  const Clock::time_point scored_at = Clock::now();
+  shard.score_durations.Observe(std::chrono::duration<double>(scored_at - started_at).count() /
+                                static_cast<double>(times.size()));
+  UpdateStreamMetrics(stream, shard.batch_verdicts, times.back(), scored_at);
   PublishResults(shard, stream, times, shard.batch_verdicts, /*batch=*/true);
 }
 
@@ -2042,7 +2046,7 @@ void Daemon::Impl::FinishAllSliced(Shard& shard) {
 }
 
 void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> verdicts,
-                                       double last_time) {
+                                       double last_time, Clock::time_point now) {
   Detector& detector = *stream.detector;
   const StreamMetrics& m = stream.metrics;
   m.vectors->Increment(static_cast<double>(verdicts.size()));
@@ -2071,7 +2075,6 @@ void Daemon::Impl::UpdateStreamMetrics(Stream& stream, std::span<const Verdict> 
     }
     if (flagged > 0) m.anomalies->Increment(static_cast<double>(flagged));
     m.model_data_age_seconds->Set(last_time - detector.model_time());
-    const Clock::time_point now = Clock::now();
     if (model_version != stream.seen_model_version) {
       stream.seen_model_version = model_version;
       stream.model_seen_at = now;
@@ -2240,6 +2243,8 @@ void Daemon::Impl::Publish(Shard& shard, std::string_view key, std::string_view 
 }
 
 void Daemon::Impl::SendOutbox(Shard& shard) {
+  // Before the results go: a subscriber that then reads /metrics finds their scoring counted.
+  shard.score_durations.FlushTo(metrics.score_duration());
   if (shard.outbox.empty()) return;
   {
     MutexLock lock(&publish_mutex);

@@ -2,9 +2,34 @@
 
 #include <prometheus/text_serializer.h>
 
+#include <algorithm>
 #include <sstream>
 
 namespace nuwatch {
+
+const prometheus::Histogram::BucketBoundaries& ScoreDurationBounds() {
+  static const prometheus::Histogram::BucketBoundaries bounds{
+      1e-6, 2.5e-6, 5e-6, 1e-5, 2.5e-5, 5e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 1e-2};
+  return bounds;
+}
+
+HistogramBatch::HistogramBatch(const prometheus::Histogram::BucketBoundaries& bounds)
+    : bounds_(bounds), counts_(bounds.size() + 1, 0.0) {}
+
+void HistogramBatch::Observe(double value) {
+  const auto bucket = std::lower_bound(bounds_.begin(), bounds_.end(), value) - bounds_.begin();
+  counts_[static_cast<std::size_t>(bucket)] += 1;
+  sum_ += value;
+  ++pending_;
+}
+
+void HistogramBatch::FlushTo(prometheus::Histogram& histogram) {
+  if (pending_ == 0) return;
+  histogram.ObserveMultiple(counts_, sum_);
+  std::fill(counts_.begin(), counts_.end(), 0.0);
+  sum_ = 0;
+  pending_ = 0;
+}
 
 std::string_view RefitResultLabel(RefitResult result) {
   switch (result) {
@@ -148,9 +173,7 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
                                                             0.1, 0.25, 0.5, 1, 2.5, 5, 10});
   score_duration_ = &Build(BuildHistogram(), "nuwatch_score_duration_seconds",
                            "Wall time of scoring one vector (Detector::Observe).", r)
-                         .Add({}, prometheus::Histogram::BucketBoundaries{
-                                      1e-6, 2.5e-6, 5e-6, 1e-5, 2.5e-5, 5e-5, 1e-4, 2.5e-4, 5e-4,
-                                      1e-3, 2.5e-3, 5e-3, 1e-2});
+                         .Add({}, ScoreDurationBounds());
   streams_ = &Build(BuildGauge(), "nuwatch_streams", "Streams tracked.", r).Add({});
   streams_expired_ =
       &Build(BuildCounter(), "nuwatch_streams_expired_total",
