@@ -1692,32 +1692,56 @@ class CurveAuthentication(DaemonTestCase):
             authenticator.stop()
             refusing_context.destroy(linger=0)
 
+    def publisher_on(self, secret=None, port=None):
+        """A pyzmq PUB on loopback, a CURVE server holding `secret` (None: plain), bound to `port`
+        (None: any free one). Returns the socket and its port."""
+        s = self.context.socket(zmq.PUB)
+        s.setsockopt(zmq.LINGER, 0)
+        if secret is not None:
+            s.curve_server = True
+            s.curve_secretkey = secret
+        if port is None:
+            return s, s.bind_to_random_port("tcp://127.0.0.1")
+        bind_again(s, port)
+        return s, port
+
+    def start_subscribing_daemon(self, port, extra=""):
+        """A daemon with ingest.subscribe = [the loopback `port`]; a Peer for its metrics only."""
+        daemon = Daemon(self.workdir, self.state_dir,
+                        extra_config='\n[ingest]\nsubscribe = ["tcp://127.0.0.1:%d"]\n%s'
+                                     % (port, extra))
+        self.daemons.append(daemon)
+        endpoints = daemon.start()
+        peer = Peer.__new__(Peer)  # only its metrics scrape
+        peer.metrics_address = endpoints["metrics"]
+        return daemon, peer
+
+    def publish_until_scored(self, daemon, peer, publisher, stream, seed, what):
+        """Publishes vectors of `stream` until the daemon has counted 5 of them."""
+        data = StreamData(seed=seed)
+        deadline = time.monotonic() + WAIT_TIMEOUT
+        while (series_value(peer.scrape(), "nuwatch_vectors_total", stream=stream) or 0) < 5:
+            self.assertLess(time.monotonic(), deadline,
+                            "nothing taken from the publisher %s\n%s" % (what, daemon.log_tail()))
+            t, x = data.normal()
+            publisher.send_multipart([stream.encode(), codec.encode_json([t], [x])])
+            time.sleep(0.02)  # a PUB drops until the SUB has joined: send until counted
+
     def test_a_plain_subscription_to_a_curve_publisher_is_counted_said_and_retried(self):
         """ingest.subscribe without auth.subscribe_server_key_file, to a publisher that is a CURVE
         server (pyzmq PUB): the handshake fails (RFC 23: both peers must use the same mechanism) at
         every reconnect. Nothing arrives, so the daemon must say why: each failure is counted under
         socket="subscribe" (wrong_mechanism, or incomplete_handshake when the publisher hangs up
-        before its greeting is read), and the log
-        names the publisher and the key to set. Before, a plain SUB's failed handshakes were
-        neither counted nor logged (this test failed: the series stayed absent). Then the
-        publisher is set right, and its data must be scored: libzmq does not connect again after
-        a failed handshake, so the daemon does, a second later."""
-        _, publisher_secret = zmq.curve_keypair()
-        publisher = self.context.socket(zmq.PUB)
-        publisher.setsockopt(zmq.LINGER, 0)
-        publisher.curve_server = True
-        publisher.curve_secretkey = publisher_secret
-        port = publisher.bind_to_random_port("tcp://127.0.0.1")
+        before its greeting is read), and the log names the publisher and the key to set. Before,
+        a plain SUB's failed handshakes were neither counted nor logged (this test failed: the
+        series stayed absent). Then the publisher is set right, and its data must be scored:
+        libzmq does not connect again after a failed handshake, so the daemon does, a second
+        later."""
+        publisher, port = self.publisher_on(zmq.curve_keypair()[1])
         try:
-            extra = '\n[ingest]\nsubscribe = ["tcp://127.0.0.1:%d"]\n' % port
-            daemon = Daemon(self.workdir, self.state_dir, extra_config=extra)
-            self.daemons.append(daemon)
-            endpoints = daemon.start()
-            peer = Peer.__new__(Peer)  # only its metrics scrape
-            peer.metrics_address = endpoints["metrics"]
-            # libzmq reconnects every 100 ms (ZMQ_RECONNECT_IVL), failing each time: as a
-            # mismatch when this side reads the publisher's greeting first, as a broken pipe when
-            # the publisher hung up first.
+            daemon, peer = self.start_subscribing_daemon(port)
+            # libzmq reconnects every 100 ms (ZMQ_RECONNECT_IVL) after a broken pipe (the
+            # publisher hung up first); after a mismatch this side noticed, the daemon does.
             self.wait_for_series(peer, "nuwatch_auth_refusals_total", 3,
                                  "the failed handshakes with the CURVE publisher",
                                  reasons=("wrong_mechanism", "incomplete_handshake"),
@@ -1734,19 +1758,8 @@ class CurveAuthentication(DaemonTestCase):
             # whose handshake failed received nothing from a plain publisher bound there later),
             # so unless the daemon connects again itself, nothing it publishes is ever read.
             publisher.close()
-            publisher = self.context.socket(zmq.PUB)
-            publisher.setsockopt(zmq.LINGER, 0)
-            bind_again(publisher, port)
-            data = StreamData(seed=13)
-            deadline = time.monotonic() + WAIT_TIMEOUT
-            while (series_value(peer.scrape(), "nuwatch_vectors_total", stream="pump-fixed")
-                   or 0) < 5:
-                self.assertLess(time.monotonic(), deadline,
-                                "nothing taken from the publisher once set right\n"
-                                + daemon.log_tail())
-                t, x = data.normal()
-                publisher.send_multipart([b"pump-fixed", codec.encode_json([t], [x])])
-                time.sleep(0.02)  # a PUB drops until the SUB has joined: send until counted
+            publisher, _ = self.publisher_on(None, port)
+            self.publish_until_scored(daemon, peer, publisher, "pump-fixed", 13, "once set right")
             self.assertIn("ingest.subscribe: connecting to tcp://127.0.0.1:%d again" % port,
                           daemon.log_text())
             self.assertEqual(daemon.stop(signal.SIGTERM), 0, daemon.log_tail())
@@ -1764,45 +1777,20 @@ class CurveAuthentication(DaemonTestCase):
         above is the one that pins the retry down."""
         public_file, secret_file = self.zauth.create_certificates(self.keys, "publisher")
         _, publisher_secret = self.zauth.load_certificate(secret_file)
-        _, wrong_secret = zmq.curve_keypair()
-
-        def pub(secret, port=None):
-            s = self.context.socket(zmq.PUB)
-            s.setsockopt(zmq.LINGER, 0)
-            s.curve_server = True
-            s.curve_secretkey = secret
-            if port is None:
-                return s, s.bind_to_random_port("tcp://127.0.0.1")
-            bind_again(s, port)
-            return s, port
-
-        publisher, port = pub(wrong_secret)
+        publisher, port = self.publisher_on(zmq.curve_keypair()[1])  # another key
         try:
-            extra = ('\n[ingest]\nsubscribe = ["tcp://127.0.0.1:%d"]\n'
-                     '\n[auth]\nserver_secret_key_file = "%s"\nclient_keys = "%s"\n'
-                     'subscribe_server_key_file = "%s"\n') % (
-                port, self.server_secret_file, self.clients, public_file)
-            daemon = Daemon(self.workdir, self.state_dir, extra_config=extra)
-            self.daemons.append(daemon)
-            endpoints = daemon.start()
-            peer = Peer.__new__(Peer)  # only its metrics scrape
-            peer.metrics_address = endpoints["metrics"]
+            daemon, peer = self.start_subscribing_daemon(
+                port, '\n[auth]\nserver_secret_key_file = "%s"\nclient_keys = "%s"\n'
+                      'subscribe_server_key_file = "%s"\n'
+                      % (self.server_secret_file, self.clients, public_file))
             self.wait_for_series(peer, "nuwatch_auth_refusals_total", 1,
                                  "the failed handshake with the wrong key",
                                  reasons=("bad_handshake", "incomplete_handshake"),
                                  socket="subscribe")
             publisher.close()
-            publisher, _ = pub(publisher_secret, port)
-            data = StreamData(seed=17)
-            deadline = time.monotonic() + WAIT_TIMEOUT
-            while (series_value(peer.scrape(), "nuwatch_vectors_total", stream="pump-rekeyed")
-                   or 0) < 5:
-                self.assertLess(time.monotonic(), deadline,
-                                "nothing taken from the publisher once it held the key\n"
-                                + daemon.log_tail())
-                t, x = data.normal()
-                publisher.send_multipart([b"pump-rekeyed", codec.encode_json([t], [x])])
-                time.sleep(0.02)  # a PUB drops until the SUB has joined: send until counted
+            publisher, _ = self.publisher_on(publisher_secret, port)
+            self.publish_until_scored(daemon, peer, publisher, "pump-rekeyed", 17,
+                                      "once it held the key")
             self.assertGreaterEqual(
                 series_value(peer.scrape(), "nuwatch_auth_handshakes_total", socket="subscribe"),
                 1)
