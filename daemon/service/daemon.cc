@@ -2283,8 +2283,6 @@ void Daemon::Impl::SendNow(std::string_view key, std::string_view body, Publishe
   }
 }
 
-// XPUB hands the subscribers' (un)subscriptions to the application; nuwatchd needs none of them,
-// but unread ones would pile up in the socket for as long as subscribers come and go.
 void Daemon::Impl::ResubscribeAfterFailedHandshakes() {
   if (!auth || pull_sockets >= ingest.size()) return;
   auth->TakeFailedHandshakes(AuthSocket::kSubscribe, &failed_subscriptions);
@@ -2325,6 +2323,8 @@ void Daemon::Impl::ResubscribeAfterFailedHandshakes() {
   }
 }
 
+// XPUB hands the subscribers' (un)subscriptions to the application; nuwatchd needs none of them,
+// but unread ones would pile up in the socket for as long as subscribers come and go.
 void Daemon::Impl::DrainSubscriptions() {
   MutexLock lock(&publish_mutex);
   while (publish.recv(subscription_message, zmq::recv_flags::dontwait)) {
