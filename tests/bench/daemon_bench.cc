@@ -81,6 +81,7 @@ std::vector<std::string> g_forms;         // --forms: empty is all
 std::string g_result_form = "json";       // --result-form: publish.result_form
 int g_receive_high_water_mark = 10000;    // --receive-high-water-mark
 int g_scoring_threads = 0;                // --scoring-threads
+double g_latency_rate = 0;                // --latency-rate: vectors/s, 0 for half the best rate
 
 std::vector<std::string> Keys() {
   std::vector<std::string> keys;
@@ -786,8 +787,9 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
       cpu_thread += b.cpu_thread;
       cpu_scoring += b.cpu_scoring;
     }
-    // Latency at half of nuwatchd's best rate, through both.
-    const double message_rate = 0.5 * best_daemon.rate() / VectorsPerMessage(form);
+    // Latency at half of nuwatchd's best rate (or at --latency-rate), through both.
+    const double message_rate =
+        (g_latency_rate > 0 ? g_latency_rate : 0.5 * best_daemon.rate()) / VectorsPerMessage(form);
     const Phase lat_daemon = RunPhase(daemon, form, seconds, message_rate, true);
     const Phase lat_relay = RunPhase(relay, form, seconds, message_rate, true);
     daemon_sent += lat_daemon.vectors_sent;
@@ -906,6 +908,10 @@ int main(int argc, char** argv) {
                  "ingest.receive_high_water_mark of the measured nuwatchd (messages per "
                  "connection)")
       ->check(CLI::Range(1, 1000000));
+  app.add_option("--latency-rate", nuwatch::g_latency_rate,
+                 "vectors/s of the latency phases (default: half of nuwatchd's best rate), to "
+                 "compare two builds at the same load")
+      ->check(CLI::Range(1.0, 1e8));
   bool compare_result_forms = false;
   app.add_flag("--compare-result-forms", compare_result_forms,
                "instead of the relay comparison: 64-vector binary messages into one nuwatchd whose "
