@@ -137,7 +137,15 @@ void Model::EvaluateBatch(const MatrixD& x, VectorD* decisions, VectorD* nonconf
     const int64_t m = std::min(kRows, x.rows() - start);
     MatrixF z = parts_.scaler.Transform(x.middleRows(start, m)).cast<float>();
     if (parts_.kernel.type != KernelType::kRbf) {
-      MatrixF k = parts_.kernel.Matrix(z, support_vectors_f_);
+      // Kernel::Matrix takes row-major matrices and would copy the support vectors; linear and
+      // polynomial kernels as in Evaluate.
+      MatrixF k(m, support_vectors_f_.rows());
+      k.noalias() = z * support_vectors_f_.transpose();
+      if (parts_.kernel.type == KernelType::kPolynomial) {
+        k = (gamma * k.array() + static_cast<float>(parts_.kernel.coef0))
+                .pow(static_cast<float>(parts_.kernel.degree))
+                .matrix();
+      }
       const VectorD f = (k * coefficients_f_).cast<double>().array() - parts_.rho;
       if (decisions != nullptr) decisions->segment(start, m) = f;
       if (nonconformity != nullptr) nonconformity->segment(start, m) = -f;
