@@ -709,6 +709,7 @@ struct Daemon::Impl final : ControlCommands {
   // ingest.subscribe.
   std::optional<IngestConnectionGuard> ingest_guard;
   std::size_t pull_sockets = 0;
+  bool HasSubscribeSocket() const { return pull_sockets < ingest.size(); }
   Clock::time_point last_guard_check{};
   bool shed_logged = false;
   std::vector<CurveAuthenticator::PeerConnection> guard_listed;
@@ -1747,7 +1748,7 @@ void Daemon::Impl::GuardIngestConnections(bool drained) {
   for (const CurveAuthenticator::PeerConnection& c : guard_listed) {
     guard_live.push_back({c.fd, c.generation, PullCurve()});
   }
-  if (pull_sockets < ingest.size()) {
+  if (HasSubscribeSocket()) {
     auth->Connections(AuthSocket::kSubscribe, &guard_listed);
     for (const CurveAuthenticator::PeerConnection& c : guard_listed) {
       guard_live.push_back({c.fd, c.generation, SubscribeCurve()});
@@ -2284,7 +2285,7 @@ void Daemon::Impl::SendNow(std::string_view key, std::string_view body, Publishe
 }
 
 void Daemon::Impl::ResubscribeAfterFailedHandshakes() {
-  if (!auth || pull_sockets >= ingest.size()) return;
+  if (!auth || !HasSubscribeSocket()) return;
   auth->TakeFailedHandshakes(AuthSocket::kSubscribe, &failed_subscriptions);
   if (failed_subscriptions.empty() && resubscribe_due.empty()) return;
   const Clock::time_point now = Clock::now();
