@@ -20,6 +20,13 @@ constexpr int kMaxDimsScoredOnStack = 1024;
 
 using BlockVectorF = Eigen::Matrix<float, Eigen::Dynamic, 1, Eigen::ColMajor, kBlock, 1>;
 
+// The polynomial kernel's values (gamma x.y + coef0)^degree from the dot products x.y, in place.
+template <typename Dots>
+void PolynomialOfDots(const Kernel& kernel, Dots&& dots) {
+  dots = (static_cast<float>(kernel.gamma) * dots + static_cast<float>(kernel.coef0))
+             .pow(static_cast<float>(kernel.degree));
+}
+
 void ValidateParts(const ModelParts& p) {
   const auto n = p.support_vectors.rows();
   if (n < 1 || p.coefficients.size() != n) {
@@ -83,7 +90,6 @@ Score Model::Evaluate(std::span<const double> x) const {
   Eigen::Map<const VectorF> zf(z, d);
   const float zz = zf.squaredNorm();
   const float gamma = static_cast<float>(parts_.kernel.gamma);
-  const float coef0 = static_cast<float>(parts_.kernel.coef0);
   const int n = num_support();
   BlockVectorF k;
   if (parts_.kernel.type == KernelType::kRbf) {
@@ -115,9 +121,7 @@ Score Model::Evaluate(std::span<const double> x) const {
     const int m = std::min(kBlock, n - start);
     k.resize(m);
     k.noalias() = support_vectors_f_.middleRows(start, m) * zf;
-    if (parts_.kernel.type == KernelType::kPolynomial) {
-      k = (gamma * k.array() + coef0).pow(static_cast<float>(parts_.kernel.degree)).matrix();
-    }
+    if (parts_.kernel.type == KernelType::kPolynomial) PolynomialOfDots(parts_.kernel, k.array());
     total += k.dot(coefficients_f_.segment(start, m));
   }
   const double decision = total - parts_.rho;
@@ -137,15 +141,10 @@ void Model::EvaluateBatch(const MatrixD& x, VectorD* decisions, VectorD* nonconf
     const int64_t m = std::min(kRows, x.rows() - start);
     MatrixF z = parts_.scaler.Transform(x.middleRows(start, m)).cast<float>();
     if (parts_.kernel.type != KernelType::kRbf) {
-      // Kernel::Matrix takes row-major matrices and would copy the support vectors; linear and
-      // polynomial kernels as in Evaluate.
+      // Not Kernel::Matrix: it takes row-major matrices and would copy the support vectors.
       MatrixF k(m, support_vectors_f_.rows());
       k.noalias() = z * support_vectors_f_.transpose();
-      if (parts_.kernel.type == KernelType::kPolynomial) {
-        k = (gamma * k.array() + static_cast<float>(parts_.kernel.coef0))
-                .pow(static_cast<float>(parts_.kernel.degree))
-                .matrix();
-      }
+      if (parts_.kernel.type == KernelType::kPolynomial) PolynomialOfDots(parts_.kernel, k.array());
       const VectorD f = (k * coefficients_f_).cast<double>().array() - parts_.rho;
       if (decisions != nullptr) decisions->segment(start, m) = f;
       if (nonconformity != nullptr) nonconformity->segment(start, m) = -f;
