@@ -20,6 +20,7 @@
 // together in the full-rate phases (from /proc, so that a busy machine stretches wall time but
 // not these), and then p50/p99 ingest-to-result latency at
 // half of nuwatchd's maximum rate for that form (the result's `t` is the send time).
+// --latency-trace FILE appends every latency sample to a CSV file, with when it came in.
 // --compare-result-forms: instead of the relay comparison, one nuwatchd takes 64-vector binary
 // messages while its publish.result_form alternates between "json" (with publish.batches, one
 // §9.4 JSON batch per message) and "binary" (one §9.5 batch per message), switched by `reload`
@@ -36,7 +37,8 @@
 //                             [--compare-result-forms] [--forms binary_1 ...]
 //                             [--result-form json|binary]
 //                             [--shutdown-streams 0] [--shutdown-without-state]
-//                             [--shutdown-vectors 1]
+//                             [--shutdown-vectors 1] [--latency-rate V]
+//                             [--latency-trace FILE]
 #include <CLI/CLI.hpp>
 #include <algorithm>
 #include <atomic>
@@ -82,6 +84,7 @@ std::string g_result_form = "json";       // --result-form: publish.result_form
 int g_receive_high_water_mark = 10000;    // --receive-high-water-mark
 int g_scoring_threads = 0;                // --scoring-threads
 double g_latency_rate = 0;                // --latency-rate: vectors/s, 0 for half the best rate
+std::string g_latency_trace;              // --latency-trace: a CSV file of every latency sample
 
 std::vector<std::string> Keys() {
   std::vector<std::string> keys;
@@ -288,8 +291,26 @@ struct Phase {
   double result_bytes = 0;  // frame 2 of the result messages received (not of the events)
   double cpu_process = 0, cpu_thread = 0, cpu_scoring = 0;
   std::vector<double> latencies;  // seconds, latency phases only
+  std::vector<double> arrivals;   // wall seconds each latency sample was taken at
   double rate() const { return seconds > 0 ? vectors_sent / seconds : 0; }
 };
+
+// Appends one row per latency sample of `phase` to the --latency-trace file: when it came in
+// (seconds from the phase's first result) and its latency, so that stalls show as runs of late
+// results at one time and queueing as a spread.
+void WriteLatencyTrace(const std::string& form, const std::string& target, const Phase& phase) {
+  const bool fresh = !fs::exists(g_latency_trace);
+  std::ofstream out(g_latency_trace, std::ios::app);
+  if (fresh) out << "form,target,seconds_from_first_result,latency_ms\n";
+  const double first = phase.arrivals.empty() ? 0 : phase.arrivals.front();
+  char line[128];
+  for (std::size_t i = 0; i < phase.latencies.size(); ++i) {
+    std::snprintf(line, sizeof line, ",%.6f,%.4f\n", phase.arrivals[i] - first,
+                  1e3 * phase.latencies[i]);
+    out << form << ',' << target << line;
+  }
+  if (!out) throw std::runtime_error("cannot write --latency-trace " + g_latency_trace);
+}
 
 // Sends `form` to `t` for `seconds` (at `rate` messages/s, or as fast as PUSH takes them when 0),
 // then waits until every vector was processed and its result received or counted as dropped.
@@ -304,6 +325,12 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
   std::atomic<double> last_result{0};
   std::atomic<double> expected{-1};  // results to wait for, once known
   Phase phase;
+  if (latency) {
+    // Grown in the receiver, a vector of a million samples would copy itself while results wait.
+    const std::size_t expected_samples = static_cast<std::size_t>(rate * seconds * 1.25) + 1024;
+    phase.latencies.reserve(expected_samples);
+    phase.arrivals.reserve(expected_samples);
+  }
   std::thread receiver([&] {
     std::vector<zmq::pollitem_t> items = {{t.sub.handle(), 0, ZMQ_POLLIN, 0}};
     zmq::message_t key, body;
@@ -326,7 +353,10 @@ Phase RunPhase(Target& t, Form form, double seconds, double rate, bool latency) 
         count += t.daemon() ? ResultsIn(text) : per;  // the relay forwards whole messages
         bytes += static_cast<double>(text.size());
         const double now = WallSeconds();
-        if (latency) phase.latencies.push_back(now - CarriedTime(body));
+        if (latency) {
+          phase.latencies.push_back(now - CarriedTime(body));
+          phase.arrivals.push_back(now);
+        }
         last_result = now;
         results = count;
         result_bytes = bytes;
@@ -792,6 +822,10 @@ int Run(const std::string& program, double seconds, int rounds, bool as_json, in
         (g_latency_rate > 0 ? g_latency_rate : 0.5 * best_daemon.rate()) / VectorsPerMessage(form);
     const Phase lat_daemon = RunPhase(daemon, form, seconds, message_rate, true);
     const Phase lat_relay = RunPhase(relay, form, seconds, message_rate, true);
+    if (!g_latency_trace.empty()) {
+      WriteLatencyTrace(FormId(form), "nuwatchd", lat_daemon);
+      WriteLatencyTrace(FormId(form), "bare", lat_relay);
+    }
     daemon_sent += lat_daemon.vectors_sent;
     daemon_accepted += lat_daemon.vectors_accepted;
     daemon_results += lat_daemon.results;
@@ -912,6 +946,9 @@ int main(int argc, char** argv) {
                  "vectors/s of the latency phases (default: half of nuwatchd's best rate), to "
                  "compare two builds at the same load")
       ->check(CLI::Range(1.0, 1e8));
+  app.add_option("--latency-trace", nuwatch::g_latency_trace,
+                 "append every latency sample (form, target, seconds from the phase's first "
+                 "result, latency in ms) to this CSV file, to tell stalls from queueing");
   bool compare_result_forms = false;
   app.add_flag("--compare-result-forms", compare_result_forms,
                "instead of the relay comparison: 64-vector binary messages into one nuwatchd whose "
