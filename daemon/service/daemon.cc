@@ -357,6 +357,7 @@ struct Shard {
   Clock::time_point turn_time{};  // when the current turn of messages began (Stream::last_seen)
   // nuwatch_score_duration_seconds of this thread's scoring, handed over with each SendOutbox.
   HistogramBatch score_durations{ScoreDurationBounds()};
+  std::optional<ThreadCpuMeter> cpu;  // nuwatch_thread_cpu_seconds_total{thread="scoring_<index>"}
   // Streams whose message is being scored in slices (Stream::sliced), in turn order.
   std::deque<Stream*> slicing;
 
@@ -658,6 +659,7 @@ struct Daemon::Impl final : ControlCommands {
   Config config;  // in force
   WireLimits limits;
   DaemonMetrics metrics{NUWATCH_VERSION};
+  ThreadCpuMeter socket_cpu{metrics.thread_cpu("socket")};  // the socket thread's
   std::unique_ptr<prometheus::Exposer> exposer;
   std::string metrics_host;
   int metrics_port = 0;
@@ -873,6 +875,7 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
   const int scoring_threads = ScoringThreads(config.daemon);
   for (int i = 0; i < scoring_threads; ++i) {
     auto shard = std::make_unique<Shard>(i);
+    shard->cpu.emplace(metrics.thread_cpu("scoring_" + std::to_string(i)));
     shard->wake_fd = ::eventfd(0, EFD_NONBLOCK | EFD_CLOEXEC);
     if (shard->wake_fd < 0)
       throw DaemonError(std::string("eventfd failed: ") + std::strerror(errno));
@@ -1350,6 +1353,7 @@ void Daemon::Impl::Start() {
 
 void Daemon::Impl::RunSocketThread() {
   NameThisThread("nuwatchd-socket");
+  socket_cpu.Begin();
   try {
     Loop();
   } catch (const std::exception& e) {
@@ -1357,6 +1361,7 @@ void Daemon::Impl::RunSocketThread() {
     spdlog::critical("socket thread failed: {}; stopping", e.what());
   }
   Shutdown();
+  socket_cpu.Report(Clock::now());
 }
 
 void Daemon::Impl::StartShards() {
@@ -1389,11 +1394,13 @@ void Daemon::Impl::StopShards() {
 void Daemon::Impl::RunShard(Shard& shard) {
   std::array<zmq_pollitem_t, 2> items{
       {{nullptr, shard.wake_fd, ZMQ_POLLIN, 0}, {shard.input.handle(), 0, ZMQ_POLLIN, 0}}};
+  shard.cpu->Begin();
   while (true) {
     try {
       // While a message is being sliced, the loop only looks for other work between slices.
       zmq::poll(items.data(), items.size(),
                 std::chrono::milliseconds(shard.slicing.empty() ? 1000 : 0));
+      shard.cpu->Tick(Clock::now());
       if (items[0].revents & ZMQ_POLLIN) {
         uint64_t count;
         [[maybe_unused]] const ssize_t n = ::read(shard.wake_fd, &count, sizeof count);
@@ -1429,6 +1436,7 @@ void Daemon::Impl::RunShard(Shard& shard) {
   }
   HandleShardWork(shard);
   SendOutbox(shard);
+  shard.cpu->Report(Clock::now());
 }
 
 void Daemon::Impl::HandleShardWork(Shard& shard) {
@@ -1474,6 +1482,7 @@ void Daemon::Impl::Loop() {
       if (e.num() == EINTR) continue;
       throw;
     }
+    socket_cpu.Tick(Clock::now());
     if (items[0].revents & ZMQ_POLLIN) {
       uint64_t count;
       [[maybe_unused]] const ssize_t n = ::read(wake_fd, &count, sizeof count);

@@ -3,6 +3,7 @@
 #include <prometheus/text_serializer.h>
 
 #include <algorithm>
+#include <ctime>  // clock_gettime, CLOCK_THREAD_CPUTIME_ID (POSIX)
 #include <sstream>
 
 namespace nuwatch {
@@ -285,6 +286,11 @@ DaemonMetrics::DaemonMetrics(const std::string& version)
     publish_dropped_[static_cast<std::size_t>(PublishedMessage::kIncidentEvent)][i] =
         &events_dropped.Add(labels);
   }
+  thread_cpu_ = &Build(BuildCounter(), "nuwatch_thread_cpu_seconds_total",
+                       "CPU time of nuwatchd's hot-path threads: socket (ingest and control) and "
+                       "scoring_0, scoring_1, ... (daemon.scoring_threads). A rate near 1 is a "
+                       "thread at a full core. Brought up to date about once a second.",
+                       r);
   state_write_failures_ = &Build(BuildCounter(), "nuwatch_state_write_failures_total",
                                  "State files that could not be written.", r)
                                .Add({});
@@ -365,6 +371,20 @@ void DaemonMetrics::RemoveStream(const StreamMetrics& m) {
 
 void DaemonMetrics::CountRejected(RejectReason reason) const {
   if (prometheus::Counter* c = rejected_[static_cast<std::size_t>(reason)]) c->Increment();
+}
+
+void ThreadCpuMeter::Begin() {
+  reported_seconds_ = 0;
+  due_ = {};
+}
+
+void ThreadCpuMeter::Report(std::chrono::steady_clock::time_point now) {
+  timespec cpu{};
+  if (::clock_gettime(CLOCK_THREAD_CPUTIME_ID, &cpu) != 0) return;  // never for the own thread
+  const double seconds = static_cast<double>(cpu.tv_sec) + 1e-9 * static_cast<double>(cpu.tv_nsec);
+  if (seconds > reported_seconds_) counter_->Increment(seconds - reported_seconds_);
+  reported_seconds_ = std::max(reported_seconds_, seconds);
+  due_ = now + std::chrono::seconds(1);
 }
 
 std::string DaemonMetrics::Serialize() const {

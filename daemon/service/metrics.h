@@ -56,6 +56,11 @@
 //   nuwatch_auth_refusals_total{socket,reason}  counter  peers refused: unknown_key,
 //                                                      wrong_mechanism, bad_handshake,
 //                                                      incomplete_handshake (curve_auth.h)
+//   nuwatch_thread_cpu_seconds_total{thread}  counter  CPU time of nuwatchd's hot-path threads:
+//                                                      socket (ingest, control) and scoring_0,
+//                                                      scoring_1, ... (daemon.scoring_threads);
+//                                                      a rate near 1 is a thread at a full core.
+//                                                      Brought up to date about once a second
 //   nuwatch_build_info{version}               gauge    always 1
 //
 // Thread safety: counters, gauges and histograms are prometheus-cpp objects (atomic, or locked
@@ -70,6 +75,7 @@
 #include <prometheus/registry.h>
 
 #include <array>
+#include <chrono>
 #include <cstdint>
 #include <memory>
 #include <string>
@@ -159,6 +165,30 @@ class HistogramBatch {
   int64_t pending_ = 0;
 };
 
+// Adds the calling thread's CPU time (CLOCK_THREAD_CPUTIME_ID) to its
+// nuwatch_thread_cpu_seconds_total series about once a second, so that an operator can see a
+// thread near a full core (a hot stream, too few scoring threads) where the process's CPU alone
+// would hide it. Not thread-safe: one per thread, used only by the thread it measures.
+class ThreadCpuMeter {
+ public:
+  explicit ThreadCpuMeter(prometheus::Counter& counter) : counter_(&counter) {}
+  // Requires: called by the measured thread before its first Tick; its CPU time counts from the
+  // thread's start.
+  void Begin();
+  // Reports if a second has passed since the last report. `now`: the caller's reading of the
+  // steady clock, so that a call between reports costs one comparison.
+  void Tick(std::chrono::steady_clock::time_point now) {
+    if (now >= due_) Report(now);
+  }
+  // Reports at once (at the thread's end). Ensures: the counter holds the thread's CPU time.
+  void Report(std::chrono::steady_clock::time_point now);
+
+ private:
+  prometheus::Counter* counter_;
+  double reported_seconds_ = 0;
+  std::chrono::steady_clock::time_point due_{};
+};
+
 // The series of one stream. Valid until DaemonMetrics::RemoveStream.
 struct StreamMetrics {
   prometheus::Counter* vectors = nullptr;
@@ -230,6 +260,11 @@ class DaemonMetrics {
     return *auth_admitted_[static_cast<std::size_t>(socket)];
   }
 
+  // nuwatch_thread_cpu_seconds_total{thread}; one call per thread (the series is created).
+  prometheus::Counter& thread_cpu(const std::string& thread) const {
+    return thread_cpu_->Add({{"thread", thread}});
+  }
+
   // The text exposition format, as /metrics serves it.
   std::string Serialize() const;
 
@@ -264,6 +299,7 @@ class DaemonMetrics {
   prometheus::Gauge* publish_connections_;
   prometheus::Counter* ingest_connections_cut_;
   prometheus::Gauge* ingest_connections_;
+  prometheus::Family<prometheus::Counter>* thread_cpu_;
   std::array<std::array<prometheus::Counter*, kHandoffOutcomeCount>, 2> handoffs_{};
   std::array<std::array<prometheus::Counter*, kPublishDropReasonCount>, 2> publish_dropped_{};
   prometheus::Counter* state_write_failures_;

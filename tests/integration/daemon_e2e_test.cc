@@ -77,6 +77,8 @@ TEST(DaemonEndToEnd, ASenderOverTheLimitIsRefusedAndCounted) { RunScript("Sender
 
 TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("MetricsBasicAuth"); }
 
+TEST(DaemonEndToEnd, EachThreadsCpuSecondsAgreeWithTheKernelsCount) { RunScript("ThreadCpu"); }
+
 TEST(DaemonEndToEnd, SigtermStopsADaemonWhosePublisherIsDown) { RunScript("AbsentPublisher"); }
 
 TEST(DaemonEndToEnd, ASubscriberOverTheLimitIsRefusedAndCounted) { RunScript("SubscriberLimit"); }

@@ -2195,6 +2195,73 @@ class UnreadBudget(DaemonTestCase):
             context.destroy(linger=0)
 
 
+def thread_cpu_from_proc(pid):
+    """{comm: CPU seconds} of each thread of `pid`, from /proc/PID/task/TID/stat: utime + stime in
+    clock ticks (proc(5), fields 14 and 15), the kernel's own accounting. A name shared by several
+    threads (comm keeps 15 characters) maps to None."""
+    ticks = os.sysconf("SC_CLK_TCK")
+    seconds = {}
+    for stat_path in glob.glob("/proc/%d/task/*/stat" % pid):
+        try:
+            with open(stat_path) as f:
+                text = f.read()
+        except FileNotFoundError:
+            continue  # the thread ended meanwhile
+        comm = text[text.index("(") + 1:text.rindex(")")]
+        fields = text[text.rindex(")") + 2:].split()  # from field 3 (state) on
+        value = (int(fields[11]) + int(fields[12])) / ticks
+        seconds[comm] = None if comm in seconds else value
+    return seconds
+
+
+class ThreadCpu(DaemonTestCase):
+    def test_thread_cpu_agrees_with_the_kernels_count_of_each_thread(self):
+        """nuwatch_thread_cpu_seconds_total{thread} against the kernel's count for the thread of
+        the same name (/proc/PID/task/TID/stat): the socket thread ("nuwatchd-socket") and each
+        scoring thread ("nuwatchd-scoreN", thread="scoring_N"). The daemon brings the series up to
+        date about once a second (an idle scoring thread wakes once a second), so they are read
+        2.5 s after the load, when the threads use next to nothing; the tolerance is /proc's two
+        clock ticks of rounding and a little for what an idle thread uses meanwhile."""
+        daemon, peer = self.start_daemon(refit_every=0, max_streams=4)
+        peer.sub.setsockopt(zmq.UNSUBSCRIBE, b"")  # the results are not needed here
+        streams = {"pump-%d" % i: StreamData(seed=40 + i) for i in range(4)}
+        sent = 0
+        deadline = time.monotonic() + 1.5
+        while time.monotonic() < deadline:  # as fast as PUSH takes them, one vector a message
+            for key, data in streams.items():
+                send_vectors(peer, key, [data.normal() for _ in range(10)], "json")
+                sent += 10
+        peer.wait_for(lambda: sum(series_value(peer.scrape(), "nuwatch_vectors_total",
+                                               stream=key) or 0 for key in streams) >= sent,
+                      "the %d vectors processed" % sent)
+        time.sleep(2.5)
+        text = peer.scrape()
+        kernel = thread_cpu_from_proc(daemon.process.pid)
+        compared = 0
+        scoring_seconds = 0.0
+        for comm, seconds in kernel.items():
+            if comm == "nuwatchd-socket":
+                label = "socket"
+            elif comm.startswith("nuwatchd-score"):
+                label = "scoring_" + comm[len("nuwatchd-score"):]
+            else:
+                continue
+            if seconds is None:
+                continue  # two threads share the name: the kernel's count cannot be told apart
+            exported = series_value(text, "nuwatch_thread_cpu_seconds_total", thread=label)
+            self.assertIsNotNone(exported, "no series for thread %s" % label)
+            self.assertAlmostEqual(exported, seconds, delta=0.025,
+                                   msg="%s: exported %.3f s, the kernel counts %.3f s"
+                                   % (label, exported, seconds))
+            compared += 1
+            if label != "socket":
+                scoring_seconds += seconds
+        self.assertGreaterEqual(compared, 2, kernel)  # the socket thread and a scoring thread
+        # Enough CPU that agreement means something (the vectors' decoding, scoring, results).
+        self.assertGreater(scoring_seconds, 0.05, kernel)
+        self.stop_daemon(daemon, peer)
+
+
 class MetricsBasicAuth(DaemonTestCase):
     """Issue 10 §1: optional basic authentication on /metrics (RFC 7617), read with urllib's own
     HTTPBasicAuthHandler as the third-party client."""
