@@ -316,7 +316,7 @@ struct FinishedWrite {
 // thread), each under its own mutex and followed by a write to `wake_fd`; the per-vector path
 // takes none of them.
 struct Shard {
-  explicit Shard(int shard_index) : index(shard_index) {
+  Shard(int shard_index, prometheus::Counter& cpu_seconds) : index(shard_index), cpu(cpu_seconds) {
     // Sized once, so that steady-state publishing does not allocate: the outbox is sent before
     // it passes kOutboxMessages, or kOutboxBytes plus one message under kOutboxBytes.
     outbox.reserve(kOutboxMessages);
@@ -357,7 +357,7 @@ struct Shard {
   Clock::time_point turn_time{};  // when the current turn of messages began (Stream::last_seen)
   // nuwatch_score_duration_seconds of this thread's scoring, handed over with each SendOutbox.
   HistogramBatch score_durations{ScoreDurationBounds()};
-  std::optional<ThreadCpuMeter> cpu;  // nuwatch_thread_cpu_seconds_total{thread="scoring_<index>"}
+  ThreadCpuMeter cpu;  // nuwatch_thread_cpu_seconds_total{thread="scoring_<index>"}
   // Streams whose message is being scored in slices (Stream::sliced), in turn order.
   std::deque<Stream*> slicing;
 
@@ -874,8 +874,7 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
   StartExposer();
   const int scoring_threads = ScoringThreads(config.daemon);
   for (int i = 0; i < scoring_threads; ++i) {
-    auto shard = std::make_unique<Shard>(i);
-    shard->cpu.emplace(metrics.thread_cpu("scoring_" + std::to_string(i)));
+    auto shard = std::make_unique<Shard>(i, metrics.thread_cpu("scoring_" + std::to_string(i)));
     shard->wake_fd = ::eventfd(0, EFD_NONBLOCK | EFD_CLOEXEC);
     if (shard->wake_fd < 0)
       throw DaemonError(std::string("eventfd failed: ") + std::strerror(errno));
@@ -1394,13 +1393,13 @@ void Daemon::Impl::StopShards() {
 void Daemon::Impl::RunShard(Shard& shard) {
   std::array<zmq_pollitem_t, 2> items{
       {{nullptr, shard.wake_fd, ZMQ_POLLIN, 0}, {shard.input.handle(), 0, ZMQ_POLLIN, 0}}};
-  shard.cpu->Begin();
+  shard.cpu.Begin();
   while (true) {
     try {
       // While a message is being sliced, the loop only looks for other work between slices.
       zmq::poll(items.data(), items.size(),
                 std::chrono::milliseconds(shard.slicing.empty() ? 1000 : 0));
-      shard.cpu->Tick(Clock::now());
+      shard.cpu.Tick(Clock::now());
       if (items[0].revents & ZMQ_POLLIN) {
         uint64_t count;
         [[maybe_unused]] const ssize_t n = ::read(shard.wake_fd, &count, sizeof count);
@@ -1436,7 +1435,7 @@ void Daemon::Impl::RunShard(Shard& shard) {
   }
   HandleShardWork(shard);
   SendOutbox(shard);
-  shard.cpu->Report(Clock::now());
+  shard.cpu.Report(Clock::now());
 }
 
 void Daemon::Impl::HandleShardWork(Shard& shard) {
