@@ -121,21 +121,22 @@ void PrintStatusTable(const json& reply) {
   if (streams.empty()) return;
   std::size_t width = 6;
   for (const json& s : streams) width = std::max(width, Text(s.value("stream", json())).size());
-  std::printf("%-*s  %-8s  %4s  %10s  %9s  %6s  %6s  %5s  %6s  %-8s  %10s\n",
+  std::printf("%-*s  %-8s  %4s  %10s  %9s  %6s  %6s  %5s  %6s  %-8s  %10s  %6s\n",
               static_cast<int>(width), "STREAM", "STATE", "DIMS", "VECTORS", "ANOMALIES", "SV",
-              "WINDOW", "MODEL", "REFITS", "INCIDENT", "MEMORY");
+              "WINDOW", "MODEL", "REFITS", "INCIDENT", "MEMORY", "THREAD");
   for (const json& s : streams) {
     const json& incident = s.value("incident", json());
     const std::string incident_text =
         incident.is_object() ? std::to_string(incident.value("id", int64_t{0})) : "-";
     std::printf(
-        "%-*s  %-8s  %4s  %10s  %9s  %6s  %6s  %5s  %6s  %-8s  %10s\n", static_cast<int>(width),
-        Text(s.value("stream", json())).c_str(), Text(s.value("state", json())).c_str(),
-        Text(s.value("dims", json())).c_str(), Text(s.value("vectors", json())).c_str(),
-        Text(s.value("anomalies", json())).c_str(),
+        "%-*s  %-8s  %4s  %10s  %9s  %6s  %6s  %5s  %6s  %-8s  %10s  %6s\n",
+        static_cast<int>(width), Text(s.value("stream", json())).c_str(),
+        Text(s.value("state", json())).c_str(), Text(s.value("dims", json())).c_str(),
+        Text(s.value("vectors", json())).c_str(), Text(s.value("anomalies", json())).c_str(),
         Text(s.value("support_vectors", json())).c_str(), Text(s.value("window", json())).c_str(),
         Text(s.value("model_version", json())).c_str(), Text(s.value("refits", json())).c_str(),
-        incident_text.c_str(), Text(s.value("memory_bytes", json())).c_str());
+        incident_text.c_str(), Text(s.value("memory_bytes", json())).c_str(),
+        Text(s.value("scoring_thread", json())).c_str());
   }
 }
 

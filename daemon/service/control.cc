@@ -36,6 +36,7 @@ json StatusJson(const std::vector<StreamStatus>& streams, const ClusterStatus& c
          {"refits", s.refits},
          {"incident", incident},
          {"memory_bytes", s.memory_bytes},
+         {"scoring_thread", s.scoring_thread},
          {"snapshot_vectors", s.snapshot_vectors < 0 ? json(nullptr) : json(s.snapshot_vectors)},
          {"snapshot_error", s.snapshot_error.empty() ? json(nullptr) : json(s.snapshot_error)}});
   }

@@ -2615,6 +2615,8 @@ std::vector<StreamStatus> Daemon::Impl::Status() {
     st.refits = c.refits_started;
     st.incident = d.open_incident();
     st.memory_bytes = d.MemoryBytes();
+    // What routes the stream's messages, so that this is the thread that scores them.
+    st.scoring_thread = static_cast<int>(ShardOf(s->key, shards.size()));
     st.snapshot_vectors = s->snapshot_vectors;
     st.snapshot_error = s->write_error;
     out.push_back(std::move(st));

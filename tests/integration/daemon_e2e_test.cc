@@ -77,7 +77,9 @@ TEST(DaemonEndToEnd, ASenderOverTheLimitIsRefusedAndCounted) { RunScript("Sender
 
 TEST(DaemonEndToEnd, MetricsNeedTheConfiguredUserAndPassword) { RunScript("MetricsBasicAuth"); }
 
-TEST(DaemonEndToEnd, EachThreadsCpuSecondsAgreeWithTheKernelsCount) { RunScript("ThreadCpu"); }
+TEST(DaemonEndToEnd, EachThreadsCpuSecondsAgreeWithTheKernelsCountAndStatusNamesTheOwner) {
+  RunScript("ThreadCpu");
+}
 
 TEST(DaemonEndToEnd, SigtermStopsADaemonWhosePublisherIsDown) { RunScript("AbsentPublisher"); }
 

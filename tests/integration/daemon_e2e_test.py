@@ -2216,7 +2216,8 @@ def thread_cpu_from_proc(pid):
 
 class ThreadCpu(DaemonTestCase):
     def test_thread_cpu_agrees_with_the_kernels_count_of_each_thread(self):
-        """nuwatch_thread_cpu_seconds_total{thread} against the kernel's count for the thread of
+        """A stream's scoring_thread in `status` is the thread that works when only it has load;
+        and nuwatch_thread_cpu_seconds_total{thread} against the kernel's count for the thread of
         the same name (/proc/PID/task/TID/stat): the socket thread ("nuwatchd-socket") and each
         scoring thread ("nuwatchd-scoreN", thread="scoring_N"). The daemon brings the series up to
         date about once a second (an idle scoring thread wakes once a second), so they are read
@@ -2225,18 +2226,40 @@ class ThreadCpu(DaemonTestCase):
         daemon, peer = self.start_daemon(refit_every=0, max_streams=4)
         peer.sub.setsockopt(zmq.UNSUBSCRIBE, b"")  # the results are not needed here
         streams = {"pump-%d" % i: StreamData(seed=40 + i) for i in range(4)}
+        pid = daemon.process.pid
+
+        def processed(keys):
+            return sum(series_value(peer.scrape(), "nuwatch_vectors_total", stream=key) or 0
+                       for key in keys)
+
+        # One stream alone for a second: the thread `status` names for it (PROTOCOL.md §11,
+        # scoring_thread) is the one whose CPU the kernel sees grow most.
+        before = thread_cpu_from_proc(pid)
         sent = 0
+        deadline = time.monotonic() + 1.0
+        while time.monotonic() < deadline:
+            send_vectors(peer, "pump-0", [streams["pump-0"].normal() for _ in range(10)], "json")
+            sent += 10
+        peer.wait_for(lambda: processed(["pump-0"]) >= sent, "pump-0's %d vectors" % sent)
+        after = thread_cpu_from_proc(pid)
+        status = peer.control({"command": "status"})
+        owner = [s for s in status["streams"] if s["stream"] == "pump-0"][0]["scoring_thread"]
+        scoring = [comm for comm in after if comm.startswith("nuwatchd-score")]
+        self.assertIn("nuwatchd-score%d" % owner, scoring, status)
+        gains = {comm: after[comm] - before[comm] for comm in scoring
+                 if after[comm] is not None and before.get(comm) is not None}
+        if len(gains) >= 2:
+            self.assertEqual(max(gains, key=gains.get), "nuwatchd-score%d" % owner, gains)
+
         deadline = time.monotonic() + 1.5
         while time.monotonic() < deadline:  # as fast as PUSH takes them, one vector a message
             for key, data in streams.items():
                 send_vectors(peer, key, [data.normal() for _ in range(10)], "json")
                 sent += 10
-        peer.wait_for(lambda: sum(series_value(peer.scrape(), "nuwatch_vectors_total",
-                                               stream=key) or 0 for key in streams) >= sent,
-                      "the %d vectors processed" % sent)
+        peer.wait_for(lambda: processed(streams) >= sent, "the %d vectors processed" % sent)
         time.sleep(2.5)
         text = peer.scrape()
-        kernel = thread_cpu_from_proc(daemon.process.pid)
+        kernel = thread_cpu_from_proc(pid)
         compared = 0
         scoring_seconds = 0.0
         for comm, seconds in kernel.items():
