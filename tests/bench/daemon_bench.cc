@@ -7,7 +7,8 @@
 //   nuwatchd  the daemon, --streams streams warmed up first (d = 16, window 2000, nu chosen for
 //             about 150 support vectors, refit_every = 0 so that only scoring runs during the
 //             phases), daemon.scoring_threads = --scoring-threads (0: one per core). Messages go
-//             to the streams in turn, so that every scoring thread has work.
+//             to the streams in turn, and the keys are chosen so that each scoring thread owns
+//             an equal share of the streams (checked against status's scoring_thread).
 // For each message form (1 vector JSON, 1 vector binary, 64 vectors binary; frames made by the
 // protocol library's encoders) the phases alternate relay and nuwatchd (--rounds times), each
 // sending as fast as PUSH takes them for --seconds and waiting until every message was handled.
@@ -49,11 +50,13 @@
 #include <cstring>
 #include <filesystem>
 #include <fstream>
+#include <functional>
 #include <iostream>
 #include <nlohmann/json.hpp>
 #include <random>
 #include <sstream>
 #include <string>
+#include <string_view>
 #include <thread>
 #include <utility>
 #include <vector>
@@ -86,9 +89,29 @@ int g_scoring_threads = 0;                // --scoring-threads
 double g_latency_rate = 0;                // --latency-rate: vectors/s, 0 for half the best rate
 std::string g_latency_trace;              // --latency-trace: a CSV file of every latency sample
 
+// The scoring threads of the measured nuwatchd (daemon.scoring_threads; 0 is one per core).
+int ScoringThreadsOfDaemon() {
+  return g_scoring_threads > 0 ? g_scoring_threads
+                               : std::max(1, static_cast<int>(std::thread::hardware_concurrency()));
+}
+
+// g_streams keys, bench-0, bench-1, ... skipping those that would crowd one scoring thread: as
+// equal a share of the streams as possible for each thread. nuwatchd gives a key to a thread by a
+// hash of the key, so that the first four keys fall three to one on two threads, which measured
+// one thread's speed more than the daemon's. The thread a key falls to is computed here as
+// nuwatchd does (std::hash of the key, modulo the threads), and WarmUp checks it against status.
 std::vector<std::string> Keys() {
+  const int threads = ScoringThreadsOfDaemon();
+  std::vector<int> per_thread(static_cast<std::size_t>(threads), 0);
+  const int quota = (g_streams + threads - 1) / threads;
   std::vector<std::string> keys;
-  for (int i = 0; i < g_streams; ++i) keys.push_back(kKeyPrefix + std::to_string(i));
+  for (int i = 0; static_cast<int>(keys.size()) < g_streams; ++i) {
+    std::string key = kKeyPrefix + std::to_string(i);
+    int& taken = per_thread[std::hash<std::string_view>{}(key) % per_thread.size()];
+    if (taken == quota) continue;
+    ++taken;
+    keys.push_back(std::move(key));
+  }
   return keys;
 }
 
@@ -514,12 +537,23 @@ int WarmUp(zmq::context_t& context, Target& t) {
     const json status = Control(context, t.endpoints.control, R"({"command":"status"})");
     int scoring = 0;
     int support_vectors = 0;
+    std::vector<int> per_thread(static_cast<std::size_t>(ScoringThreadsOfDaemon()), 0);
     for (const json& s : status["streams"]) {
+      const int thread = s["scoring_thread"];
+      if (thread >= 0 && thread < static_cast<int>(per_thread.size())) ++per_thread[thread];
       if (s["state"] != "scoring") continue;
       if (s["stream"] == keys.front()) support_vectors = s["support_vectors"];
       ++scoring;
     }
-    if (scoring == g_streams) return support_vectors;
+    if (scoring == g_streams) {
+      const auto [fewest, most] = std::minmax_element(per_thread.begin(), per_thread.end());
+      if (*most - *fewest > 1) {
+        throw std::runtime_error(
+            "the streams are not spread evenly over nuwatchd's scoring threads (status: " +
+            status["streams"].dump() + "); has its routing of keys changed? (Keys())");
+      }
+      return support_vectors;
+    }
   }
   throw std::runtime_error("the streams never left their warm-up");
 }
