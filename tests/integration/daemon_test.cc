@@ -6,16 +6,13 @@
 // it.
 #include "service/daemon.h"
 
-#include <fcntl.h>
 #include <gmock/gmock.h>
 #include <gtest/gtest.h>
 #include <netinet/in.h>
 #include <pthread.h>
 #include <signal.h>
-#include <spawn.h>
 #include <sys/mount.h>
 #include <sys/socket.h>
-#include <sys/wait.h>
 #include <unistd.h>
 
 #include <algorithm>
@@ -47,8 +44,6 @@
 #include "protocol/wire_protocol.h"
 #include "service/state_store.h"
 #include "settings/config.h"
-
-extern char** environ;
 
 // Counting the allocations of the daemon's socket thread and scoring threads (named
 // "nuwatchd-socket" and "nuwatchd-scoreN" by daemon.cc): while g_count_socket_thread_allocations
@@ -1485,50 +1480,12 @@ TEST(Daemon, RecordsVectorsInTheReplayFormatAndRotates) {
 // ---------------------------------------------------------------------------------------------
 // The program: flags, log lines, ready file, signals, exit status, kill -9
 
-class Process {
- public:
-  Process(const std::vector<std::string>& args, const std::string& log_path) {
-    std::vector<char*> argv;
-    for (const auto& a : args) argv.push_back(const_cast<char*>(a.c_str()));
-    argv.push_back(nullptr);
-    posix_spawn_file_actions_t actions;
-    posix_spawn_file_actions_init(&actions);
-    posix_spawn_file_actions_addopen(&actions, 2, log_path.c_str(), O_WRONLY | O_CREAT | O_TRUNC,
-                                     0644);
-    posix_spawn_file_actions_addopen(&actions, 1, "/dev/null", O_WRONLY, 0);
-    const int rc = posix_spawn(&pid_, argv[0], &actions, nullptr, argv.data(), environ);
-    posix_spawn_file_actions_destroy(&actions);
-    if (rc != 0) pid_ = -1;
-  }
-  ~Process() {
-    if (pid_ > 0 && !exited_) {
-      ::kill(pid_, SIGKILL);
-      Wait();
-    }
-  }
-  pid_t pid() const { return pid_; }
-  void Signal(int signal) { ::kill(pid_, signal); }
-  // The exit status, or -signal when killed.
-  int Wait() {
-    int status = 0;
-    ::waitpid(pid_, &status, 0);
-    exited_ = true;
-    return WIFEXITED(status) ? WEXITSTATUS(status) : -WTERMSIG(status);
-  }
-
- private:
-  pid_t pid_ = -1;
-  bool exited_ = false;
-};
+// The child-process tests share the helper of the benchmarks and the end-to-end tests.
+using Process = testing_data::ChildProcess;
 
 const std::string kNuwatchd = std::string(NUWATCHD_PROGRAM);
 
-std::string ReadText(const std::string& path) {
-  std::ifstream in(path);
-  std::ostringstream text;
-  text << in.rdbuf();
-  return text.str();
-}
+using testing_data::ReadWholeFile;
 
 // Polls (every few milliseconds) until `condition` holds or the deadline passes.
 bool PollUntil(const std::function<bool()>& condition) {
@@ -1541,12 +1498,12 @@ bool PollUntil(const std::function<bool()>& condition) {
 }
 
 DaemonEndpoints ReadyEndpoints(const std::string& ready_file) {
-  const json ready = json::parse(ReadText(ready_file));
+  const testing_data::ReadyEndpoints ready = testing_data::ReadReadyFile(ready_file);
   DaemonEndpoints endpoints;
-  endpoints.ingest = ready["ingest"].get<std::vector<std::string>>();
-  endpoints.publish = ready["publish"];
-  endpoints.control = ready["control"];
-  endpoints.metrics = ready["metrics"];
+  endpoints.ingest = ready.ingest;
+  endpoints.publish = ready.publish;
+  endpoints.control = ready.control;
+  endpoints.metrics = ready.metrics;
   return endpoints;
 }
 
@@ -1602,7 +1559,7 @@ TEST(Nuwatchd, ResumesScoringAfterKill9FromItsPeriodicSnapshot) {
     ASSERT_GT(daemon.pid(), 0);
     ASSERT_TRUE(PollUntil([&] { return fs::exists(dir / "ready.json"); }));
     const DaemonEndpoints endpoints = ReadyEndpoints(dir / "ready.json");
-    const std::string log = ReadText(dir / "log1.txt");
+    const std::string log = ReadWholeFile(dir / "log1.txt");
     EXPECT_THAT(log, HasSubstr(" info listening ingest=" + endpoints.ingest[0] + "\n"));
     EXPECT_THAT(log, HasSubstr(" info listening publish=" + endpoints.publish + "\n"));
     EXPECT_THAT(log, HasSubstr(" info listening control=" + endpoints.control + "\n"));
@@ -1629,7 +1586,7 @@ TEST(Nuwatchd, ResumesScoringAfterKill9FromItsPeriodicSnapshot) {
   Process daemon(DaemonArgs(dir, config), dir / "log2.txt");
   ASSERT_TRUE(PollUntil([&] { return fs::exists(dir / "ready.json"); }));
   Client client(ReadyEndpoints(dir / "ready.json"));
-  EXPECT_THAT(ReadText(dir / "log2.txt"), HasSubstr("state: restored stream=pump-01"));
+  EXPECT_THAT(ReadWholeFile(dir / "log2.txt"), HasSubstr("state: restored stream=pump-01"));
   const json after = client.StreamStatus("pump-01");
   EXPECT_EQ(after["state"], "scoring");
   EXPECT_EQ(after["model_version"], before["model_version"]);
@@ -1639,13 +1596,14 @@ TEST(Nuwatchd, ResumesScoringAfterKill9FromItsPeriodicSnapshot) {
   // SIGHUP with a broken file: refused, logged, the daemon keeps serving; SIGTERM: exit 0.
   std::ofstream(config) << ConfigText("nuu = 0.2\n");
   daemon.Signal(SIGHUP);
-  ASSERT_TRUE(PollUntil(
-      [&] { return ReadText(dir / "log2.txt").find("reload rejected") != std::string::npos; }));
-  EXPECT_THAT(ReadText(dir / "log2.txt"), HasSubstr("'detector.nuu' is not a known key"));
+  ASSERT_TRUE(PollUntil([&] {
+    return ReadWholeFile(dir / "log2.txt").find("reload rejected") != std::string::npos;
+  }));
+  EXPECT_THAT(ReadWholeFile(dir / "log2.txt"), HasSubstr("'detector.nuu' is not a known key"));
   EXPECT_EQ(client.Status()["ok"], true);
   daemon.Signal(SIGTERM);
   EXPECT_EQ(daemon.Wait(), 0);
-  const std::string log = ReadText(dir / "log2.txt");
+  const std::string log = ReadWholeFile(dir / "log2.txt");
   EXPECT_EQ(log.substr(log.rfind(' ', log.size() - 2) + 1), "stopped\n");
 }
 
@@ -1695,9 +1653,10 @@ TEST(NuwatchdCrashSafety, Kill9DuringRefitsAndStateWritesLosesNoStateFile) {
     fs::remove(dir / "ready.json");
     Process daemon(DaemonArgs(dir, config), log_path);
     ASSERT_GT(daemon.pid(), 0);
-    ASSERT_TRUE(PollUntil([&] { return fs::exists(dir / "ready.json"); })) << ReadText(log_path);
+    ASSERT_TRUE(PollUntil([&] { return fs::exists(dir / "ready.json"); }))
+        << ReadWholeFile(log_path);
     Client client(ReadyEndpoints(dir / "ready.json"));
-    const std::string log = ReadText(log_path);
+    const std::string log = ReadWholeFile(log_path);
     if (log.find("left by an interrupted write") != std::string::npos) ++interrupted_writes;
     if (log.find("moved it to") != std::string::npos) {
       ++quarantined;
@@ -1833,7 +1792,8 @@ TEST(NuwatchdDiskFull, AFailedSnapshotIsReportedAsFailedAndRetriedWhenSpaceRetur
       << "the failed write was not retried";
   EXPECT_TRUE(
       PollUntil([&] { return client.StreamStatus("pump-01")["snapshot_error"].is_null(); }));
-  EXPECT_THAT(ReadText(dir / "log.txt"), HasSubstr("state: stream pump-01 written again after"));
+  EXPECT_THAT(ReadWholeFile(dir / "log.txt"),
+              HasSubstr("state: stream pump-01 written again after"));
   const json after = client.Control(R"({"command":"snapshot"})");
   EXPECT_EQ(after["ok"], true) << after;
   EXPECT_EQ(vectors_on_disk(), client.StreamStatus("pump-01")["vectors"]);
@@ -1861,7 +1821,7 @@ TEST(NuwatchdDiskFull, AFinalWriteThatFailsMakesTheExitStatus1) {
   for (int i = 0; i < 5; ++i) (void)client.ReceiveFor("pump-01");
   daemon.Signal(SIGTERM);
   EXPECT_EQ(daemon.Wait(), 1);
-  const std::string log = ReadText(dir / "log.txt");
+  const std::string log = ReadWholeFile(dir / "log.txt");
   EXPECT_THAT(log, HasSubstr("stopping: stream pump-01: the state file could not be written"));
   EXPECT_THAT(log, HasSubstr("No space left on device"));
 }
@@ -1904,11 +1864,11 @@ TEST(Nuwatchd, SigtermScoresWhatWasQueuedAndWritesItToTheStateFile) {
     if (m.key.empty()) break;                 // the deadline passed (reported by ReceiveFor)
     if (m.body.contains("event")) --results;  // an incident event, not a result
   }
-  EXPECT_EQ(daemon.Wait(), 0) << ReadText(dir / "log.txt");
+  EXPECT_EQ(daemon.Wait(), 0) << ReadWholeFile(dir / "log.txt");
   EXPECT_EQ(results, kVectors);
   const StateStore store(dir / "state");
   EXPECT_EQ(store.Load({store.PathFor("pump-01"), "pump-01"}).state.counters.vectors, kVectors);
-  const std::string log = ReadText(dir / "log.txt");
+  const std::string log = ReadWholeFile(dir / "log.txt");
   const auto took = log.find("stopping: took ");
   ASSERT_NE(took, std::string::npos) << log;
   EXPECT_THAT(log, HasSubstr("state files written"));
@@ -1930,7 +1890,7 @@ TEST(Nuwatchd, ASecondDaemonOnTheSameStateDirectoryExitsWithStatus2AndOneLine) {
   args.back() = dir / "ready2.json";
   Process second(args, dir / "log2.txt");
   EXPECT_EQ(second.Wait(), 2);
-  EXPECT_EQ(ReadText(dir / "log2.txt"),
+  EXPECT_EQ(ReadWholeFile(dir / "log2.txt"),
             "nuwatchd: state.dir " + (dir / "state") + " is in use by another nuwatchd (pid " +
                 std::to_string(first.pid()) +
                 "); stop it first, or give this one another --state-dir\n");
@@ -1942,7 +1902,7 @@ TEST(Nuwatchd, ASecondDaemonOnTheSameStateDirectoryExitsWithStatus2AndOneLine) {
   // The lock goes with its holder: a daemon started now takes the directory.
   Process third(args, dir / "log3.txt");
   EXPECT_TRUE(PollUntil([&] { return fs::exists(dir / "ready2.json"); }))
-      << ReadText(dir / "log3.txt");
+      << ReadWholeFile(dir / "log3.txt");
   third.Signal(SIGTERM);
   EXPECT_EQ(third.Wait(), 0);
 }
@@ -1953,13 +1913,13 @@ TEST(Nuwatchd, AConfigurationErrorExitsWithStatus2AndOneLine) {
   std::ofstream(config) << "[detector]\nrefit_evry = 10\n";
   Process daemon({kNuwatchd, "--config", config}, dir / "log.txt");
   EXPECT_EQ(daemon.Wait(), 2);
-  const std::string log = ReadText(dir / "log.txt");
+  const std::string log = ReadWholeFile(dir / "log.txt");
   EXPECT_EQ(log, "nuwatchd: " + config +
                      ":2:1: key 'detector.refit_evry' is not a known key (did you mean "
                      "'refit_every'?)\n");
   Process flags({kNuwatchd, "--metrics", "no-port"}, dir / "log2.txt");
   EXPECT_EQ(flags.Wait(), 2);
-  EXPECT_THAT(ReadText(dir / "log2.txt"), HasSubstr("metrics.listen"));
+  EXPECT_THAT(ReadWholeFile(dir / "log2.txt"), HasSubstr("metrics.listen"));
 }
 
 }  // namespace
