@@ -2,11 +2,8 @@
 // every subcommand, a typo named with a suggestion, the last of a repeated flag wins, an endpoint
 // without its transport gets the hint to write tcp://, and a range error names what the user set.
 // The programs run as a user runs them; each check states the convention it holds them to.
-#include <fcntl.h>
 #include <gmock/gmock.h>
 #include <gtest/gtest.h>
-#include <spawn.h>
-#include <sys/wait.h>
 #include <unistd.h>
 
 #include <algorithm>
@@ -25,6 +22,7 @@
 #include <thread>
 #include <vector>
 
+#include "common/child_daemon.h"
 #include "common/program_test.h"
 
 namespace {
@@ -285,31 +283,7 @@ TEST_F(Cli, RangeRuleNamesWhatTheUserSet) {
 // ---------------------------------------------------------------------------------------------
 // nuwatch control against a real nuwatchd child process.
 
-class Process {
- public:
-  Process(const std::vector<std::string>& args, const std::string& log_path) {
-    std::vector<char*> argv;
-    for (const auto& a : args) argv.push_back(const_cast<char*>(a.c_str()));
-    argv.push_back(nullptr);
-    posix_spawn_file_actions_t actions;
-    posix_spawn_file_actions_init(&actions);
-    posix_spawn_file_actions_addopen(&actions, 2, log_path.c_str(), O_WRONLY | O_CREAT | O_TRUNC,
-                                     0644);
-    posix_spawn_file_actions_addopen(&actions, 1, "/dev/null", O_WRONLY, 0);
-    if (posix_spawn(&pid_, argv[0], &actions, nullptr, argv.data(), environ) != 0) pid_ = -1;
-    posix_spawn_file_actions_destroy(&actions);
-  }
-  ~Process() {
-    if (pid_ <= 0) return;
-    ::kill(pid_, SIGTERM);
-    int status = 0;
-    ::waitpid(pid_, &status, 0);
-  }
-  pid_t pid() const { return pid_; }
-
- private:
-  pid_t pid_ = -1;
-};
+using nuwatch::testing_data::ChildProcess;
 
 // Polls until `condition` holds, for at most a minute (pacing, not a wait for time).
 bool PollUntil(const std::function<bool()>& condition) {
@@ -331,7 +305,7 @@ window = 40
 warmup = 20
 refit_every = 0
 )");
-    daemon_ = std::make_unique<Process>(
+    daemon_ = std::make_unique<ChildProcess>(
         std::vector<std::string>{kNuwatchd, "--config", config, "--ingest", "tcp://127.0.0.1:*",
                                  "--publish", "tcp://127.0.0.1:*", "--metrics", "127.0.0.1:0",
                                  "--state-dir", Path("state"), "--ready-file", Path("ready.json")},
@@ -344,6 +318,10 @@ refit_every = 0
     ingest_ = ready["ingest"][0];
   }
   void TearDown() override {
+    if (daemon_ && daemon_->pid() > 0) {  // a graceful stop, as a user's would be
+      daemon_->Signal(SIGTERM);
+      daemon_->Wait();
+    }
     daemon_.reset();
     Cli::TearDown();
   }
@@ -370,7 +348,7 @@ refit_every = 0
     return -1;
   }
 
-  std::unique_ptr<Process> daemon_;
+  std::unique_ptr<ChildProcess> daemon_;
   std::string control_, ingest_;
 };
 
