@@ -313,9 +313,9 @@ refit_every = 0
     ASSERT_GT(daemon_->pid(), 0);
     ASSERT_TRUE(PollUntil([&] { return std::filesystem::exists(Path("ready.json")); }))
         << ReadWholeFile(Path("nuwatchd.log"));
-    const json ready = json::parse(ReadWholeFile(Path("ready.json")));
-    control_ = ready["control"];
-    ingest_ = ready["ingest"][0];
+    const auto ready = nuwatch::testing_data::ReadReadyFile(Path("ready.json"));
+    control_ = ready.control;
+    ingest_ = ready.ingest.at(0);
   }
   void TearDown() override {
     if (daemon_ && daemon_->pid() > 0) {  // a graceful stop, as a user's would be
