@@ -27,8 +27,8 @@ struct StreamStatus {
   int64_t refits = 0;  // refits started
   std::optional<TrackedIncident> incident;
   std::size_t memory_bytes = 0;
-  int scoring_thread =
-      0;  // the scoring thread that owns the stream, 0 to daemon.scoring_threads - 1
+  // The scoring thread that owns the stream, 0 to daemon.scoring_threads - 1.
+  int scoring_thread = 0;
   int64_t snapshot_vectors = -1;  // the vectors count the state file holds; -1: none
   std::string snapshot_error;     // why the last state write failed; "" when it succeeded
 };

@@ -1352,7 +1352,6 @@ void Daemon::Impl::Start() {
 
 void Daemon::Impl::RunSocketThread() {
   NameThisThread("nuwatchd-socket");
-  socket_cpu.Begin();
   try {
     Loop();
   } catch (const std::exception& e) {
@@ -1393,7 +1392,6 @@ void Daemon::Impl::StopShards() {
 void Daemon::Impl::RunShard(Shard& shard) {
   std::array<zmq_pollitem_t, 2> items{
       {{nullptr, shard.wake_fd, ZMQ_POLLIN, 0}, {shard.input.handle(), 0, ZMQ_POLLIN, 0}}};
-  shard.cpu.Begin();
   while (true) {
     try {
       // While a message is being sliced, the loop only looks for other work between slices.

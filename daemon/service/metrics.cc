@@ -373,11 +373,6 @@ void DaemonMetrics::CountRejected(RejectReason reason) const {
   if (prometheus::Counter* c = rejected_[static_cast<std::size_t>(reason)]) c->Increment();
 }
 
-void ThreadCpuMeter::Begin() {
-  reported_seconds_ = 0;
-  due_ = {};
-}
-
 void ThreadCpuMeter::Report(std::chrono::steady_clock::time_point now) {
   timespec cpu{};
   if (::clock_gettime(CLOCK_THREAD_CPUTIME_ID, &cpu) != 0) return;  // never for the own thread

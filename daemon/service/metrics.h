@@ -172,9 +172,8 @@ class HistogramBatch {
 class ThreadCpuMeter {
  public:
   explicit ThreadCpuMeter(prometheus::Counter& counter) : counter_(&counter) {}
-  // Requires: called by the measured thread before its first Tick; its CPU time counts from the
-  // thread's start.
-  void Begin();
+  // Requires (Tick, Report): called by the measured thread only; its CPU time counts from the
+  // thread's start, so the meter may be built on another thread.
   // Reports if a second has passed since the last report. `now`: the caller's reading of the
   // steady clock, so that a call between reports costs one comparison.
   void Tick(std::chrono::steady_clock::time_point now) {

@@ -47,7 +47,6 @@ TEST(ThreadCpuMeter, TheCounterHoldsTheThreadsCpuTimeAsTheKernelCountsIt) {
   // A fresh thread, so that its CPU time is only what this test gives it.
   std::thread measured([&] {
     ThreadCpuMeter meter(counter);
-    meter.Begin();
     BurnCpu(0.05);
     meter.Report(SteadyClock::now());
     reference = RusageThreadSeconds();
@@ -62,7 +61,6 @@ TEST(ThreadCpuMeter, TicksReportAtMostOnceASecondAndAddOnlyTheNewTime) {
   prometheus::Counter counter;
   std::thread measured([&] {
     ThreadCpuMeter meter(counter);
-    meter.Begin();
     const SteadyClock::time_point t0 = SteadyClock::now();
     meter.Tick(t0);  // the first tick reports
     const double first = counter.Value();
