@@ -320,16 +320,17 @@ struct Phase {
 
 // Appends one row per latency sample of `phase` to the --latency-trace file: when it came in
 // (seconds from the phase's first result) and its latency, so that stalls show as runs of late
-// results at one time and queueing as a spread.
+// results at one time and queueing as a spread; and when it came in as Unix time, to line the
+// trace up with what other tools saw at that moment (perf sched, /proc, core_stalls.py).
 void WriteLatencyTrace(const std::string& form, const std::string& target, const Phase& phase) {
   const bool fresh = !fs::exists(g_latency_trace);
   std::ofstream out(g_latency_trace, std::ios::app);
-  if (fresh) out << "form,target,seconds_from_first_result,latency_ms\n";
+  if (fresh) out << "form,target,seconds_from_first_result,latency_ms,unix_seconds\n";
   const double first = phase.arrivals.empty() ? 0 : phase.arrivals.front();
   char line[128];
   for (std::size_t i = 0; i < phase.latencies.size(); ++i) {
-    std::snprintf(line, sizeof line, ",%.6f,%.4f\n", phase.arrivals[i] - first,
-                  1e3 * phase.latencies[i]);
+    std::snprintf(line, sizeof line, ",%.6f,%.4f,%.6f\n", phase.arrivals[i] - first,
+                  1e3 * phase.latencies[i], phase.arrivals[i]);
     out << form << ',' << target << line;
   }
   if (!out) throw std::runtime_error("cannot write --latency-trace " + g_latency_trace);
@@ -993,7 +994,8 @@ int main(int argc, char** argv) {
       ->check(CLI::Range(1.0, 1e8));
   app.add_option("--latency-trace", nuwatch::g_latency_trace,
                  "append every latency sample (form, target, seconds from the phase's first "
-                 "result, latency in ms) to this CSV file, to tell stalls from queueing");
+                 "result, latency in ms, Unix time) to this CSV file, to tell stalls from "
+                 "queueing");
   bool compare_result_forms = false;
   app.add_flag("--compare-result-forms", compare_result_forms,
                "instead of the relay comparison: 64-vector binary messages into one nuwatchd whose "
