@@ -51,6 +51,7 @@
 #include "service/recorder.h"
 #include "service/refit_pool.h"
 #include "service/state_store.h"
+#include "service/stream_placement.h"
 #include "service/stream_registry.h"
 #include "settings/secret_file.h"
 #include "settings/setting_text.h"
@@ -440,8 +441,13 @@ int ScoringThreads(const DaemonSettings& s) {
   return std::max(1, static_cast<int>(std::thread::hardware_concurrency()));
 }
 
-std::size_t ShardOf(std::string_view key, std::size_t shards) {
-  return std::hash<std::string_view>{}(key) % shards;
+// Keys the StreamPlacement table holds before new keys go by hash: four times the streams the
+// daemon starts with room for (limits.max_streams), so that streams that expire and come back
+// under new keys, and some made-up keys, still find room; at least 4096. Fixed at start: a table
+// that grew again once full would move keys that went by hash meanwhile. At most about 200 bytes
+// a key (the longest key, 128 bytes, and the table's node).
+std::size_t PlacementCapacity(int64_t max_streams) {
+  return static_cast<std::size_t>(std::max<int64_t>(4096, 4 * max_streams));
 }
 
 }  // namespace
@@ -457,7 +463,12 @@ struct Daemon::Impl final : ControlCommands {
   void RestoreStreams();
   std::unique_ptr<Stream> MakeStream(Shard& shard, const std::string& key, int dims,
                                      const DetectorOptions& options);
-  Shard& ShardFor(std::string_view key) { return *shards[ShardOf(key, shards.size())]; }
+  // The shard of a stream that exists (placed when it was created), or of a key a control request
+  // names; places nothing. Socket thread.
+  Shard& ShardFor(std::string_view key) { return *shards[placement.Find(key)]; }
+  // The shard a stream about to be created goes to (restored, adopted): placed for good if new.
+  // Socket thread.
+  Shard& PlaceStream(std::string_view key) { return *shards[placement.Place(key)]; }
   // Every stream of every shard, sorted by key. Only while the shards are paused or stopped.
   std::vector<Stream*> AllStreamsSorted() const;
 
@@ -692,6 +703,8 @@ struct Daemon::Impl final : ControlCommands {
   // queue (feeds[i] to shards[i]->input).
   std::vector<std::unique_ptr<Shard>> shards;
   std::vector<zmq::socket_t> feeds;
+  // Which shard owns each key (socket thread; set up with the shards).
+  StreamPlacement placement{1, 0};
   bool shards_running = false;  // socket thread
   // Streams over every shard: a new stream takes a place (TakeStreamPlace) before it is created,
   // so that shards together never exceed limits.max_streams.
@@ -873,6 +886,8 @@ Daemon::Impl::Impl(DaemonOptions daemon_options)
   BindSockets();
   StartExposer();
   const int scoring_threads = ScoringThreads(config.daemon);
+  placement = StreamPlacement(static_cast<std::size_t>(scoring_threads),
+                              PlacementCapacity(config.daemon.max_streams));
   for (int i = 0; i < scoring_threads; ++i) {
     auto shard = std::make_unique<Shard>(i, metrics.thread_cpu("scoring_" + std::to_string(i)));
     shard->wake_fd = ::eventfd(0, EFD_NONBLOCK | EFD_CLOEXEC);
@@ -1189,7 +1204,7 @@ void Daemon::Impl::RestoreStreams() {
                              " features but the configuration names " +
                              std::to_string(stream_options.feature_names.size()));
       }
-      Shard& shard = ShardFor(file.stream_key);
+      Shard& shard = PlaceStream(file.stream_key);
       std::unique_ptr<Stream> stream =
           MakeStream(shard, file.stream_key, file.dims, stream_options);
       stream->detector->ImportState(file.state);
@@ -1731,7 +1746,11 @@ bool Daemon::Impl::ReceiveFrom(zmq::socket_t& socket, bool curve) {
       Reject(RejectReason::kNotOwner, "another member of cluster.members owns the key", key);
       continue;
     }
-    const std::size_t owner = ShardOf(key, feeds.size());
+    // A valid key is placed on the least busy thread when first seen; an invalid one goes by
+    // hash, to be rejected there, and takes no place in the table.
+    const std::size_t owner = placement.Place(key, [this](std::string_view new_key) {
+      return ValidateStreamKey(new_key, limits) == RejectReason::kNone;
+    });
     if (parked.empty()) {
       const Handed handed = HandTo(owner, key_message, payload_message);
       if (handed == Handed::kYes) continue;
@@ -2614,7 +2633,7 @@ std::vector<StreamStatus> Daemon::Impl::Status() {
     st.incident = d.open_incident();
     st.memory_bytes = d.MemoryBytes();
     // What routes the stream's messages, so that this is the thread that scores them.
-    st.scoring_thread = static_cast<int>(ShardOf(s->key, shards.size()));
+    st.scoring_thread = static_cast<int>(placement.Find(s->key));
     st.snapshot_vectors = s->snapshot_vectors;
     st.snapshot_error = s->write_error;
     out.push_back(std::move(st));
@@ -3140,7 +3159,8 @@ AdoptOutcome Daemon::Impl::InstallState(const std::string& key, const std::strin
                   metrics);
   }
   ShardsPaused paused(*this);
-  Shard& shard = ShardFor(key);
+  // Placed already if vectors of the key came in and wait for this handoff (Hold).
+  Shard& shard = PlaceStream(key);
   const std::size_t digest = std::hash<std::string_view>{}(
       std::string_view(reinterpret_cast<const char*>(bytes.data()), bytes.size()));
   if (const Stream* tracked = shard.streams.Find(key); tracked != nullptr) {

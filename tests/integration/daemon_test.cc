@@ -538,6 +538,48 @@ TEST(Daemon, StreamsSpreadOverScoringThreadsKeepTheirOrder) {
   EXPECT_EQ(streams, kStreams);
 }
 
+TEST(Daemon, FewStreamsShareTheScoringThreadsEvenly) {
+  // issue 9 §1, every core scoring: four streams whose keys a hash would all give to the same one
+  // of two scoring threads (std::hash of the key modulo the threads, the routing before
+  // service/stream_placement.h) are placed two and two; and a stream forgotten and started again
+  // under its key goes back to the thread that had it, which may still hold its messages.
+  auto options = Options();
+  options.config.daemon.scoring_threads = 2;
+  auto daemon = Start(std::move(options));
+  Client client(daemon->endpoints());
+  std::vector<std::string> keys;
+  for (int i = 0; keys.size() < 4; ++i) {
+    std::string key = "line-" + std::to_string(i);
+    if (std::hash<std::string_view>{}(key) % 2 == 0) keys.push_back(std::move(key));
+  }
+  const std::vector<std::vector<double>> vectors = NormalVectors(2, 31);
+  for (const std::string& key : keys) {
+    client.Send(key, 1000, vectors[0]);
+    ASSERT_EQ(client.ReceiveResultFor(key)["state"], "learning") << key;
+  }
+  std::map<std::string, int> thread_of;
+  int per_thread[2] = {0, 0};
+  for (const std::string& key : keys) {
+    const json status = client.StreamStatus(key);
+    ASSERT_FALSE(status.is_null()) << key;
+    const int thread = status["scoring_thread"];
+    ASSERT_TRUE(thread == 0 || thread == 1) << status;
+    thread_of[key] = thread;
+    ++per_thread[thread];
+  }
+  EXPECT_EQ(per_thread[0], 2) << client.Status();
+  EXPECT_EQ(per_thread[1], 2) << client.Status();
+
+  const std::string& again = keys[1];
+  ASSERT_EQ(client.Control(R"({"command":"forget","stream":")" + again + R"("})")["ok"], true);
+  EXPECT_TRUE(client.StreamStatus(again).is_null());
+  client.Send(again, 2000, vectors[1]);
+  ASSERT_EQ(client.ReceiveResultFor(again)["state"], "learning");
+  const json status = client.StreamStatus(again);
+  ASSERT_FALSE(status.is_null());
+  EXPECT_EQ(status["scoring_thread"], thread_of[again]);
+}
+
 // The results of the next §9.4 batch for `key` (publish.batches = true), skipping other keys and
 // incident events.
 std::vector<json> ReceiveBatchFor(Client& client, const std::string& key) {
