@@ -7,8 +7,8 @@
 //   nuwatchd  the daemon, --streams streams warmed up first (d = 16, window 2000, nu chosen for
 //             about 150 support vectors, refit_every = 0 so that only scoring runs during the
 //             phases), daemon.scoring_threads = --scoring-threads (0: one per core). Messages go
-//             to the streams in turn, and the keys are chosen so that each scoring thread owns
-//             an equal share of the streams (checked against status's scoring_thread).
+//             to the streams in turn; nuwatchd gives each scoring thread an equal share of the
+//             streams (checked against status's scoring_thread).
 // For each message form (1 vector JSON, 1 vector binary, 64 vectors binary; frames made by the
 // protocol library's encoders) the phases alternate relay and nuwatchd (--rounds times), each
 // sending as fast as PUSH takes them for --seconds and waiting until every message was handled.
@@ -95,23 +95,13 @@ int ScoringThreadsOfDaemon() {
                                : std::max(1, static_cast<int>(std::thread::hardware_concurrency()));
 }
 
-// g_streams keys, bench-0, bench-1, ... skipping those that would crowd one scoring thread: as
-// equal a share of the streams as possible for each thread. nuwatchd gives a key to a thread by a
-// hash of the key, so that the first four keys fall three to one on two threads, which measured
-// one thread's speed more than the daemon's. The thread a key falls to is computed here as
-// nuwatchd does (std::hash of the key, modulo the threads), and WarmUp checks it against status.
+// g_streams keys, bench-0, bench-1, ... nuwatchd places each new stream on the scoring thread with
+// the fewest (service/stream_placement.h), so the streams share the threads evenly; WarmUp checks
+// that against status. Before that placement a hash of the key put the first four keys three to
+// one on two threads, and the bench measured one thread's speed more than the daemon's.
 std::vector<std::string> Keys() {
-  const int threads = ScoringThreadsOfDaemon();
-  std::vector<int> per_thread(static_cast<std::size_t>(threads), 0);
-  const int quota = (g_streams + threads - 1) / threads;
   std::vector<std::string> keys;
-  for (int i = 0; static_cast<int>(keys.size()) < g_streams; ++i) {
-    std::string key = kKeyPrefix + std::to_string(i);
-    int& taken = per_thread[std::hash<std::string_view>{}(key) % per_thread.size()];
-    if (taken == quota) continue;
-    ++taken;
-    keys.push_back(std::move(key));
-  }
+  for (int i = 0; i < g_streams; ++i) keys.push_back(kKeyPrefix + std::to_string(i));
   return keys;
 }
 
@@ -560,7 +550,7 @@ int WarmUp(zmq::context_t& context, Target& t) {
       if (*most - *fewest > 1) {
         throw std::runtime_error(
             "the streams are not spread evenly over nuwatchd's scoring threads (status: " +
-            status["streams"].dump() + "); has its routing of keys changed? (Keys())");
+            status["streams"].dump() + "); has its placement of streams changed?");
       }
       return support_vectors;
     }
