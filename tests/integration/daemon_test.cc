@@ -983,8 +983,13 @@ TEST(Daemon, ABurstComesOutInOrderWithEachIncidentEventAfterItsResult) {
 // Bad input
 
 TEST(Daemon, CountsEveryRejectionByReasonAndKeepsServingOtherStreams) {
-  // Limits low enough to reach: 3 streams (the probe, "good", "third"), 1 KiB payloads.
-  auto daemon = Start(Options("", "[limits]\nmax_streams = 3\nmax_message_bytes = 1024\n"));
+  // Limits low enough to reach: 3 streams (the probe, "good", "third"), 1 KiB payloads. One
+  // scoring thread, so that "third", sent just before "fourth", takes the last place: on two
+  // threads the two new streams would be created on different ones, in either order (PROTOCOL.md
+  // §8, stream_limit).
+  auto options = Options("", "[limits]\nmax_streams = 3\nmax_message_bytes = 1024\n");
+  options.config.daemon.scoring_threads = 1;
+  auto daemon = Start(std::move(options));
   Client client(daemon->endpoints());
   int good_sent = 0;
   auto send_good = [&] { client.Send("good", 100.0 + good_sent++, {1, 2}); };

@@ -58,6 +58,12 @@ refit_every = 0
 
 [limits]
 max_streams = 2
+
+[daemon]
+# One scoring thread: which new stream takes the last place under max_streams follows the order
+# of sending only on one thread (PROTOCOL.md §8, stream_limit). With two, "wide" and "third"
+# are placed on two threads and either may take the place.
+scoring_threads = 1
 )" + extra_config);
     daemon_ = std::make_unique<ChildProcess>(
         std::vector<std::string>{kNuwatchd, "--config", config, "--ingest", "tcp://127.0.0.1:*",
