@@ -56,10 +56,8 @@ class StreamPlacement {
     return std::hash<std::string_view>{}(key) % threads;
   }
 
-  std::size_t threads() const { return placed_on_.size(); }
-  std::size_t capacity() const { return capacity_; }
   std::size_t placed() const { return table_.size(); }
-  // Keys placed on `thread` (requires: thread < threads()).
+  // Keys placed on `thread` (std::out_of_range unless it is one of the threads).
   std::size_t placed_on(std::size_t thread) const { return placed_on_.at(thread); }
 
  private:
